@@ -1,0 +1,53 @@
+package main
+
+import (
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+)
+
+const goodConfig = `
+data_dir: /tmp/sw
+cameras:
+  - id: pool
+    source: rtsp://user:pw@127.0.0.1:554/stream1
+    transport: udp
+    pool: {length_m: 8, width_m: 4}
+    corners: [[145, 390], [229, 42], [420, 42], [500, 390]]
+    detect:
+      persist: 900ms
+`
+
+func TestParseConfigMergesDefaults(t *testing.T) {
+	cfg, err := ParseConfig([]byte(goodConfig))
+	require.NoError(t, err)
+	require.Len(t, cfg.Cameras, 1)
+	d := cfg.Cameras[0].Detect
+	assert.Equal(t, Duration(900*time.Millisecond), d.Persist)
+	assert.Equal(t, 640, d.ProcessWidth)
+	assert.Equal(t, MinChildArea, d.MinArea)
+	assert.Equal(t, "127.0.0.1:9310", cfg.HTTP.Listen)
+	assert.Equal(t, "stillwater", cfg.Bus.Prefix)
+}
+
+func TestParseConfigErrors(t *testing.T) {
+	tests := []struct {
+		name, yaml, want string
+	}{
+		{"unknown key", "data_dir: /x\ncolour: blue\n", "line 2: field colour not found"},
+		{"no cameras", "data_dir: /x\n", "cameras: none configured"},
+		{"three corners", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1]]}]`, "corners: 3 given"},
+		{"negative area", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1],[0,1]], detect: {min_area_m2: -1}}]`, "min_area_m2 -1"},
+		{"bad duration", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1],[0,1]], detect: {persist: soon}}]`, `"soon" is not a duration`},
+		{"dotted id", `cameras: [{id: a.b, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1],[0,1]]}]`, "cameras[0].id"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			_, err := ParseConfig([]byte(tt.yaml))
+			require.Error(t, err)
+			assert.Contains(t, err.Error(), tt.want)
+		})
+	}
+}

@@ -1,0 +1,236 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"image"
+	"io"
+	"log/slog"
+	"math"
+	"time"
+
+	"stillwater/alert"
+	"stillwater/homography"
+	"stillwater/vision"
+)
+
+// outMsg is one message on its way to the bus (or a replay file).
+type outMsg struct {
+	Camera string
+	Kind   string
+	ID     string // de-duplication id, stable across retries
+	Data   []byte
+	Frame  int
+	Media  time.Duration
+}
+
+// sink receives the pipeline's messages.
+type sink interface {
+	send(ctx context.Context, m outMsg) error
+}
+
+// processor is the per-camera decision chain after the vision stage: pixels
+// to pool metres, physical-size gating, tracking and alarm logic. It is the
+// same for the daemon and for replays.
+type processor struct {
+	cam     CameraConfig
+	toPool  homography.H // pixels → pool metres
+	tracker *vision.Tracker
+	alarm   *alert.Alarm
+	log     *slog.Logger
+	seq     uint64
+	epoch   time.Time // wall time of media time 0
+	now     func() time.Time
+	metrics *cameraMetrics
+}
+
+func newProcessor(cam CameraConfig, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *cameraMetrics) (*processor, error) {
+	h, err := poolHomography(cam)
+	if err != nil {
+		return nil, err
+	}
+	d := cam.Detect
+	return &processor{
+		cam:     cam,
+		toPool:  h,
+		tracker: vision.NewTracker(vision.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
+		alarm:   alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio}, fps),
+		log:     log,
+		epoch:   epoch,
+		now:     now,
+		metrics: m,
+	}, nil
+}
+
+// poolHomography solves the pixel → pool-metre transform from the four
+// configured corners A (0,0), B (L,0), C (L,W), D (0,W).
+func poolHomography(cam CameraConfig) (homography.H, error) {
+	L, W := cam.Pool.Length, cam.Pool.Width
+	pool := []homography.Point{{X: 0, Y: 0}, {X: L, Y: 0}, {X: L, Y: W}, {X: 0, Y: W}}
+	px := make([]homography.Point, len(cam.Corners))
+	for i, c := range cam.Corners {
+		px[i] = homography.Point{X: c[0], Y: c[1]}
+	}
+	h, err := homography.Solve(px, pool)
+	if err != nil {
+		return homography.H{}, fmt.Errorf("camera %s: corners: %w", cam.ID, err)
+	}
+	return h, nil
+}
+
+// cornersPolygon returns the pool outline in source pixels.
+func cornersPolygon(cam CameraConfig) []vision.Point {
+	out := make([]vision.Point, len(cam.Corners))
+	for i, c := range cam.Corners {
+		out[i] = vision.Point{X: c[0], Y: c[1]}
+	}
+	return out
+}
+
+// step turns one frame's blobs into messages and returns the boxes to hold
+// out of background learning on the next frame.
+func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectangle) {
+	d := p.cam.Detect
+	var dets []vision.Detection
+	for _, b := range r.Blobs {
+		c, ok := p.toPool.Map(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y})
+		if !ok {
+			continue
+		}
+		poly := make([]homography.Point, len(b.Contour))
+		for i, q := range b.Contour {
+			poly[i] = homography.Point{X: q.X, Y: q.Y}
+		}
+		area := homography.MappedArea(p.toPool, poly)
+		inside := c.X >= 0 && c.Y >= 0 && c.X <= p.cam.Pool.Length && c.Y <= p.cam.Pool.Width
+		switch {
+		case !inside:
+			p.log.Debug("blob rejected: centre outside the pool", "frame", r.Index, "x_m", c.X, "y_m", c.Y)
+			p.metrics.rejected("outside")
+			continue
+		case area < d.MinArea:
+			p.log.Debug("blob rejected: too small", "frame", r.Index, "area_m2", area, "min_m2", d.MinArea)
+			p.metrics.rejected("small")
+			continue
+		case area > d.MaxArea:
+			p.log.Debug("blob rejected: too large", "frame", r.Index, "area_m2", area, "max_m2", d.MaxArea)
+			p.metrics.rejected("large")
+			continue
+		}
+		dets = append(dets, vision.Detection{X: c.X, Y: c.Y, Area: area, Box: b.Box})
+	}
+	tracks := p.tracker.Update(r.Media, dets)
+	obs := make([]alert.Observation, len(tracks))
+	var hold []image.Rectangle
+	for i, t := range tracks {
+		obs[i] = alert.Observation{Track: t.ID, X: t.X, Y: t.Y, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits}
+		hold = append(hold, t.Box.Inset(-4))
+	}
+	p.metrics.tracks(len(tracks))
+	var out []outMsg
+	for _, dec := range p.alarm.Step(r.Media, obs, armed) {
+		m, err := p.message(r, dec)
+		if err != nil {
+			p.log.Error("cannot encode message", "err", err)
+			continue
+		}
+		out = append(out, m)
+	}
+	return out, hold
+}
+
+func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error) {
+	p.seq++
+	frameTime := p.epoch.Add(r.Media).UTC()
+	now := p.now().UTC()
+	o := dec.Obs
+	var v any
+	switch dec.Kind {
+	case alert.KindTarget:
+		p.log.Debug("track raised a target", "track", o.Track, "event", dec.Event, "dwell", dec.Dwell)
+		v = alert.Target{
+			V: alert.Version, Kind: alert.KindTarget, Camera: p.cam.ID, Track: o.Track, Seq: p.seq, Event: dec.Event,
+			Time: now, FrameTime: frameTime, Frame: r.Index,
+			Surface:    alert.Position{X: round3(o.X), Y: round3(o.Y)},
+			Floor:      alert.FloorPosition{X: round3(o.X), Y: round3(o.Y)},
+			Area:       round4(o.Area),
+			Velocity:   alert.Velocity{X: round3(o.VX), Y: round3(o.VY)},
+			Dwell:      round3(dec.Dwell.Seconds()),
+			Confidence: dec.Confidence,
+		}
+	case alert.KindCleared:
+		v = alert.Cleared{
+			V: alert.Version, Kind: alert.KindCleared, Camera: p.cam.ID, Track: o.Track, Seq: p.seq,
+			Time: now, FrameTime: frameTime, Frame: r.Index,
+			Last: alert.Position{X: round3(o.X), Y: round3(o.Y)}, Duration: round3(dec.Dwell.Seconds()),
+		}
+	default:
+		return outMsg{}, fmt.Errorf("unknown decision kind %q", dec.Kind)
+	}
+	b, err := alert.Encode(v)
+	if err != nil {
+		return outMsg{}, err
+	}
+	id := fmt.Sprintf("%s-%d-%d-%s", p.cam.ID, p.epoch.UnixNano(), p.seq, dec.Kind)
+	return outMsg{Camera: p.cam.ID, Kind: dec.Kind, ID: id, Data: b, Frame: r.Index, Media: r.Media}, nil
+}
+
+func round3(v float64) float64 { return math.Round(v*1000) / 1000 }
+func round4(v float64) float64 { return math.Round(v*10000) / 10000 }
+
+// watchCamera runs one camera until ctx ends or a file source is done.
+func watchCamera(ctx context.Context, cam CameraConfig, out sink, armed func() bool, now func() time.Time, log *slog.Logger, m *cameraMetrics) error {
+	log = log.With("camera", cam.ID)
+	vc, err := vision.OpenCamera(
+		vision.SourceConfig{URI: cam.Source, Transport: cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: 5 * time.Second},
+		vision.DetectorConfig{
+			ProcessWidth: cam.Detect.ProcessWidth, Method: cam.Detect.Method, History: cam.Detect.History,
+			Threshold: cam.Detect.Threshold, LearningRate: -1, MinPixels: 6, Mask: cornersPolygon(cam),
+		})
+	if err != nil {
+		return err
+	}
+	defer vc.Close()
+	fps := vc.FPS()
+	start := now()
+	proc, err := newProcessor(cam, fps, start, now, log, m)
+	if err != nil {
+		return err
+	}
+	log.Info("camera open", "source", vision.Redact(cam.Source), "size", vc.Size(), "fps", fps)
+	var hold []image.Rectangle
+	for {
+		if err := ctx.Err(); err != nil {
+			return nil
+		}
+		t0 := time.Now()
+		r, err := vc.Next(hold)
+		if errors.Is(err, io.EOF) {
+			log.Info("source ended", "frames", r.Index)
+			return nil
+		}
+		if err != nil {
+			return fmt.Errorf("camera %s: %w", cam.ID, err)
+		}
+		m.frame(time.Since(t0))
+		msgs, h := proc.step(r, armed())
+		hold = h
+		for _, msg := range msgs {
+			if err := out.send(ctx, msg); err != nil {
+				log.Error("publish failed", "kind", msg.Kind, "err", err)
+				m.publishError()
+			}
+		}
+		if cam.Realtime && fps > 0 {
+			due := start.Add(time.Duration(float64(r.Index+1) / fps * float64(time.Second)))
+			if d := time.Until(due); d > 0 {
+				select {
+				case <-ctx.Done():
+					return nil
+				case <-time.After(d):
+				}
+			}
+		}
+	}
+}

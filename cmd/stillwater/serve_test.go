@@ -1,0 +1,54 @@
+package main
+
+import (
+	"context"
+	"io"
+	"log/slog"
+	"math"
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+)
+
+// TestEndToEnd renders clips, runs the daemon on them with the embedded
+// NATS server and checks what a real subscriber on that server receives.
+func TestEndToEnd(t *testing.T) {
+	if testing.Short() {
+		t.Skip("renders and processes two 20 s clips")
+	}
+	tests := []struct {
+		scenario string
+		intruder bool
+	}{
+		{"child", true},
+		{"empty", false},
+	}
+	for _, tt := range tests {
+		t.Run(tt.scenario, func(t *testing.T) {
+			s, ok := scenarioByName(tt.scenario, 7)
+			require.True(t, ok)
+			ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+			defer cancel()
+			log := slog.New(slog.NewTextHandler(io.Discard, nil))
+			res, err := demo(ctx, s, t.TempDir(), false, log, io.Discard)
+			require.NoError(t, err)
+			assert.Equal(t, 200, res.Frames)
+			if !tt.intruder {
+				assert.Empty(t, res.Targets, "an empty pool must raise no target")
+				return
+			}
+			require.NotEmpty(t, res.Targets)
+			// Issue bound: first target within 2 s of media time after the
+			// intruder enters (ASTM F2208 allows 20 s; this is far inside).
+			require.False(t, math.IsNaN(res.FirstAlert))
+			assert.GreaterOrEqual(t, res.delay(), 0.0)
+			assert.LessOrEqual(t, res.delay(), 2.0)
+			require.NotEmpty(t, res.Errors)
+			for _, e := range res.Errors {
+				assert.LessOrEqual(t, e, 0.5, "position error against the generator's ground truth, m")
+			}
+		})
+	}
+}

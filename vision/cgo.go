@@ -1,0 +1,123 @@
+package vision
+
+// #cgo pkg-config: opencv4
+// #cgo CXXFLAGS: -std=c++11
+// #include <stdlib.h>
+// #include "shim.h"
+import "C"
+
+import (
+	"errors"
+	"fmt"
+	"unsafe"
+
+	"gocv.io/x/gocv"
+)
+
+const errBufLen = 512
+
+// background is a background subtractor owned by this package, so that each
+// apply can carry its own learning rate (the pinned binding's Apply cannot).
+type background struct {
+	p C.SwBackground
+}
+
+const (
+	bgMOG2 = 0
+	bgKNN  = 1
+)
+
+func newBackground(kind, history int, threshold float64, shadows bool) *background {
+	s := 0
+	if shadows {
+		s = 1
+	}
+	return &background{p: C.sw_bg_new(C.int(kind), C.int(history), C.double(threshold), C.int(s))}
+}
+
+// apply updates the model with img at learning rate lr (negative: OpenCV's
+// automatic rate, 0: no learning) and writes the foreground mask to fg.
+func (b *background) apply(img gocv.Mat, fg *gocv.Mat, lr float64) error {
+	var buf [errBufLen]C.char
+	if C.sw_bg_apply(b.p, unsafe.Pointer(img.Ptr()), unsafe.Pointer(fg.Ptr()), C.double(lr), &buf[0], errBufLen) != 0 {
+		return fmt.Errorf("background apply: %s", C.GoString(&buf[0]))
+	}
+	return nil
+}
+
+// image writes the model's current background estimate to dst.
+func (b *background) image(dst *gocv.Mat) error {
+	var buf [errBufLen]C.char
+	if C.sw_bg_background(b.p, unsafe.Pointer(dst.Ptr()), &buf[0], errBufLen) != 0 {
+		return fmt.Errorf("background image: %s", C.GoString(&buf[0]))
+	}
+	return nil
+}
+
+// Close frees the model. It is safe to call twice.
+func (b *background) Close() error {
+	if b.p != nil {
+		C.sw_bg_close(b.p)
+		b.p = nil
+	}
+	return nil
+}
+
+// capture is a video capture opened with open-time timeouts.
+type capture struct {
+	p C.SwCapture
+}
+
+// OpenCV videoio property ids (opencv2/videoio.hpp).
+const (
+	capPropFPS        = 5
+	capPropFrameCount = 7
+	capPropPosMsec    = 0
+	capFFmpeg         = 1900
+)
+
+var errCaptureClosed = errors.New("capture closed")
+
+func openCapture(uri string, api int, openMs, readMs int) (*capture, error) {
+	cs := C.CString(uri)
+	defer C.free(unsafe.Pointer(cs))
+	var buf [errBufLen]C.char
+	p := C.sw_cap_open(cs, C.int(api), C.int(openMs), C.int(readMs), &buf[0], errBufLen)
+	if p == nil {
+		return nil, errors.New(C.GoString(&buf[0]))
+	}
+	return &capture{p: p}, nil
+}
+
+// read grabs and decodes the next frame into dst. ok is false at the end of
+// the stream or when the backend gave no frame.
+func (c *capture) read(dst *gocv.Mat) (ok bool, err error) {
+	if c.p == nil {
+		return false, errCaptureClosed
+	}
+	var buf [errBufLen]C.char
+	switch C.sw_cap_read(c.p, unsafe.Pointer(dst.Ptr()), &buf[0], errBufLen) {
+	case 1:
+		return true, nil
+	case 0:
+		return false, nil
+	default:
+		return false, fmt.Errorf("read frame: %s", C.GoString(&buf[0]))
+	}
+}
+
+func (c *capture) get(prop int) float64 {
+	if c.p == nil {
+		return 0
+	}
+	return float64(C.sw_cap_get(c.p, C.int(prop)))
+}
+
+// Close releases the capture. It is safe to call twice.
+func (c *capture) Close() error {
+	if c.p != nil {
+		C.sw_cap_close(c.p)
+		c.p = nil
+	}
+	return nil
+}

@@ -1,0 +1,175 @@
+package vision
+
+import (
+	"image"
+	"math"
+	"sort"
+	"time"
+)
+
+// Detection is one blob placed on the pool plane by the caller. X and Y are
+// in the caller's plane units (stillwater uses pool metres).
+type Detection struct {
+	X, Y float64
+	Area float64         // plane units²
+	Box  image.Rectangle // source pixels
+}
+
+// Track is an object followed across frames, in plane units.
+type Track struct {
+	ID          int
+	X, Y        float64
+	VX, VY      float64 // units per second
+	Area        float64
+	Box         image.Rectangle // source pixels, latest
+	First, Last time.Duration   // media time first and last seen
+	Hits        int             // frames with a detection
+}
+
+// TrackerConfig tunes association.
+type TrackerConfig struct {
+	// Gate is the largest distance from a track's predicted position at
+	// which a detection is still the same object (plane units).
+	Gate float64
+	// MergeRadius joins detections closer than this into one object before
+	// association, so that arms and splashes stay with their body.
+	MergeRadius float64
+	// MaxMissing is how long a track survives without a detection.
+	MaxMissing time.Duration
+}
+
+// Tracker associates detections across frames by nearest neighbour within
+// a gate. Not safe for concurrent use.
+type Tracker struct {
+	cfg    TrackerConfig
+	next   int
+	tracks []*Track
+	last   time.Duration
+}
+
+// NewTracker returns an empty tracker.
+func NewTracker(cfg TrackerConfig) *Tracker {
+	if cfg.Gate <= 0 {
+		cfg.Gate = 1.0
+	}
+	if cfg.MergeRadius < 0 {
+		cfg.MergeRadius = 0
+	}
+	if cfg.MaxMissing <= 0 {
+		cfg.MaxMissing = 2 * time.Second
+	}
+	return &Tracker{cfg: cfg, next: 1}
+}
+
+// Update feeds the detections of the frame at media time now and returns
+// the live tracks, those seen in this frame first, ordered by id.
+func (t *Tracker) Update(now time.Duration, dets []Detection) []Track {
+	groups := mergeDetections(dets, t.cfg.MergeRadius)
+	type pair struct {
+		ti, gi int
+		d      float64
+	}
+	var pairs []pair
+	for ti, tr := range t.tracks {
+		dt := (now - tr.Last).Seconds()
+		px, py := tr.X+tr.VX*dt, tr.Y+tr.VY*dt
+		for gi, g := range groups {
+			d := math.Hypot(g.X-px, g.Y-py)
+			if d <= t.cfg.Gate {
+				pairs = append(pairs, pair{ti, gi, d})
+			}
+		}
+	}
+	sort.Slice(pairs, func(i, j int) bool { return pairs[i].d < pairs[j].d })
+	usedT := make([]bool, len(t.tracks))
+	usedG := make([]bool, len(groups))
+	for _, p := range pairs {
+		if usedT[p.ti] || usedG[p.gi] {
+			continue
+		}
+		usedT[p.ti], usedG[p.gi] = true, true
+		tr, g := t.tracks[p.ti], groups[p.gi]
+		if dt := (now - tr.Last).Seconds(); dt > 0 {
+			const a = 0.3
+			tr.VX = (1-a)*tr.VX + a*(g.X-tr.X)/dt
+			tr.VY = (1-a)*tr.VY + a*(g.Y-tr.Y)/dt
+		}
+		tr.X, tr.Y, tr.Area, tr.Box = g.X, g.Y, g.Area, g.Box
+		tr.Last = now
+		tr.Hits++
+	}
+	for gi, g := range groups {
+		if usedG[gi] {
+			continue
+		}
+		t.tracks = append(t.tracks, &Track{ID: t.next, X: g.X, Y: g.Y, Area: g.Area, Box: g.Box, First: now, Last: now, Hits: 1})
+		t.next++
+	}
+	keep := t.tracks[:0]
+	for _, tr := range t.tracks {
+		if now-tr.Last <= t.cfg.MaxMissing {
+			keep = append(keep, tr)
+		}
+	}
+	t.tracks = keep
+	t.last = now
+	out := make([]Track, len(t.tracks))
+	for i, tr := range t.tracks {
+		out[i] = *tr
+	}
+	return out
+}
+
+// Reset forgets every track (after the model was rebuilt or the camera
+// moved); ids keep counting up.
+func (t *Tracker) Reset() { t.tracks = nil }
+
+// mergeDetections joins detections closer than r (single linkage) into one,
+// with the area-weighted centre, summed area and the union box.
+func mergeDetections(dets []Detection, r float64) []Detection {
+	n := len(dets)
+	parent := make([]int, n)
+	for i := range parent {
+		parent[i] = i
+	}
+	var find func(int) int
+	find = func(i int) int {
+		for parent[i] != i {
+			parent[i] = parent[parent[i]]
+			i = parent[i]
+		}
+		return i
+	}
+	for i := 0; i < n; i++ {
+		for j := i + 1; j < n; j++ {
+			if math.Hypot(dets[i].X-dets[j].X, dets[i].Y-dets[j].Y) <= r {
+				parent[find(i)] = find(j)
+			}
+		}
+	}
+	idx := map[int]int{}
+	var out []Detection
+	var wsum []float64
+	for i, d := range dets {
+		root := find(i)
+		k, ok := idx[root]
+		if !ok {
+			k = len(out)
+			idx[root] = k
+			out = append(out, Detection{Box: d.Box})
+			wsum = append(wsum, 0)
+		}
+		w := math.Max(d.Area, 1e-9)
+		o := &out[k]
+		o.X += d.X * w
+		o.Y += d.Y * w
+		o.Area += d.Area
+		o.Box = o.Box.Union(d.Box)
+		wsum[k] += w
+	}
+	for k := range out {
+		out[k].X /= wsum[k]
+		out[k].Y /= wsum[k]
+	}
+	return out
+}
