@@ -8,16 +8,22 @@ COPY go.mod go.sum ./
 RUN go mod download
 COPY . .
 RUN CGO_ENABLED=1 go build -trimpath -ldflags="-s -w" -o /out/stillwater ./cmd/stillwater
+# Record the Debian packages that own the shared libraries the binary links,
+# so the runtime stage installs exactly those (usrmerge: try both prefixes).
+RUN for f in $(ldd /out/stillwater | awk '/=> \//{print $3}'); do \
+      dpkg -S "$f" 2>/dev/null || dpkg -S "/usr$f" 2>/dev/null || dpkg -S "${f#/usr}" 2>/dev/null; \
+    done | cut -d: -f1 | sort -u > /out/runtime-packages \
+ && grep -q libopencv-core /out/runtime-packages
 
-# Runtime: only the OpenCV runtime libraries gocv links against.
+# Runtime: only the runtime libraries the binary links (the OpenCV 4.6
+# modules: libopencv-core406, -imgproc406, -videoio406, ...), plus curl for
+# the health check.
 FROM debian:bookworm-slim
+COPY --from=build /out/runtime-packages /tmp/runtime-packages
 RUN apt-get update \
  && DEBIAN_FRONTEND=noninteractive apt-get install -y --no-install-recommends \
-      libopencv-core406 libopencv-imgproc406 libopencv-imgcodecs406 libopencv-videoio406 \
-      libopencv-video406 libopencv-calib3d406 libopencv-features2d406 libopencv-objdetect406 \
-      libopencv-dnn406 libopencv-photo406 libopencv-highgui406 libopencv-contrib406 \
-      ca-certificates curl \
- && rm -rf /var/lib/apt/lists/* \
+      $(cat /tmp/runtime-packages) ca-certificates curl \
+ && rm -rf /var/lib/apt/lists/* /tmp/runtime-packages \
  && useradd --system --uid 10001 --home-dir /var/lib/stillwater --create-home stillwater
 COPY --from=build /out/stillwater /usr/local/bin/stillwater
 USER stillwater

@@ -18,11 +18,15 @@ type AlarmConfig struct {
 	// it must have been detected before it can raise an alarm: water makes
 	// short-lived blobs that a nearest-neighbour tracker can chain.
 	MinHitRatio float64
+	// MaxSpeed, m/s, is the fastest a track may move and still raise an
+	// alarm: a bird gliding over the water is faster than a child can swim
+	// (from memory: small children swim well under 1.5 m/s). Zero is no limit.
+	MaxSpeed float64
 }
 
 // DefaultAlarm is 0.7 s persistence, 2 Hz updates and 3 s clearing.
 func DefaultAlarm() AlarmConfig {
-	return AlarmConfig{Persist: 700 * time.Millisecond, UpdateEvery: 500 * time.Millisecond, ClearAfter: 3 * time.Second, MinHitRatio: 0.7}
+	return AlarmConfig{Persist: 700 * time.Millisecond, UpdateEvery: 500 * time.Millisecond, ClearAfter: 3 * time.Second, MinHitRatio: 0.7, MaxSpeed: 2.0}
 }
 
 // Observation is one live track as the alarm sees it, in pool metres.
@@ -85,7 +89,8 @@ func (a *Alarm) Step(now time.Duration, tracks []Observation, armed bool) []Deci
 			}
 			continue
 		}
-		if armed && dwell >= a.cfg.Persist && a.hitRatio(o) >= a.cfg.MinHitRatio {
+		fast := a.cfg.MaxSpeed > 0 && math.Hypot(o.VX, o.VY) > a.cfg.MaxSpeed
+		if armed && dwell >= a.cfg.Persist && a.hitRatio(o) >= a.cfg.MinHitRatio && !fast {
 			a.active[o.Track] = &alarmed{obs: o, lastSent: now}
 			out = append(out, Decision{Kind: KindTarget, Event: "start", Obs: o, Dwell: dwell, Confidence: a.confidence(o)})
 		}

@@ -39,6 +39,10 @@ func TestAlarmNeedsConsistentTrackAndArming(t *testing.T) {
 	// Consistent, but disarmed: nothing starts.
 	got = a.Step(ms(800), []Observation{{Track: 2, First: 0, Last: ms(800), Hits: 9}}, false)
 	assert.Empty(t, got)
+	// Consistent and armed, but gliding at 3 m/s: a bird, not a swimmer.
+	a.cfg.MaxSpeed = 2
+	got = a.Step(ms(800), []Observation{{Track: 3, First: 0, Last: ms(800), Hits: 9, VX: 3}}, true)
+	assert.Empty(t, got)
 	got = a.Step(ms(900), []Observation{{Track: 2, First: 0, Last: ms(900), Hits: 10}}, true)
 	require.Len(t, got, 1)
 	assert.Equal(t, "start", got[0].Event)

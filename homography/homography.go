@@ -121,7 +121,7 @@ func (h H) Inverse() (H, error) {
 // the same index, by the normalised direct linear transform (Hartley and
 // Zisserman, Multiple View Geometry, 2nd ed., algorithm 4.2). With more than
 // four pairs it is the algebraic least-squares fit. It checks only that the
-// problem is well posed; Validate gives installers the detailed diagnosis.
+// problem is well posed; ValidateCorners gives installers the detailed diagnosis.
 func Solve(src, dst []Point) (H, error) {
 	if len(src) != len(dst) {
 		return H{}, fmt.Errorf("solve homography: %d source points but %d destination points", len(src), len(dst))

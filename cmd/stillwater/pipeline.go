@@ -55,7 +55,7 @@ func newProcessor(cam CameraConfig, fps float64, epoch time.Time, now func() tim
 		cam:     cam,
 		toPool:  h,
 		tracker: vision.NewTracker(vision.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
-		alarm:   alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio}, fps),
+		alarm:   alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio, MaxSpeed: alert.DefaultAlarm().MaxSpeed}, fps),
 		log:     log,
 		epoch:   epoch,
 		now:     now,
