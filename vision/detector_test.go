@@ -21,17 +21,23 @@ func frameWith(sq image.Rectangle) gocv.Mat {
 	return m
 }
 
-func TestDetectorFindsDarkSquare(t *testing.T) {
-	d, err := NewDetector(DetectorConfig{LearningRate: -1, MinPixels: 4}, image.Pt(320, 240))
-	require.NoError(t, err)
-	defer d.Close()
-	for i := 0; i < 30; i++ {
+// warmUp feeds n frames of empty water and checks that none has a blob.
+func warmUp(t *testing.T, d *Detector, n int) {
+	t.Helper()
+	for i := 0; i < n; i++ {
 		f := frameWith(image.Rectangle{})
 		blobs, _, err := d.Detect(f, nil)
 		f.Close()
 		require.NoError(t, err)
 		assert.Empty(t, blobs, "frame %d of an empty scene", i)
 	}
+}
+
+func TestDetectorFindsDarkSquare(t *testing.T) {
+	d, err := NewDetector(DetectorConfig{LearningRate: -1, MinPixels: 4}, image.Pt(320, 240))
+	require.NoError(t, err)
+	defer d.Close()
+	warmUp(t, d, 30)
 	sq := image.Rect(100, 80, 120, 100)
 	f := frameWith(sq)
 	blobs, _, err := d.Detect(f, nil)
@@ -50,12 +56,7 @@ func TestDetectorIgnoresOutsideMaskAndBrightSpots(t *testing.T) {
 	d, err := NewDetector(DetectorConfig{LearningRate: -1, MinPixels: 4, Mask: mask}, image.Pt(320, 240))
 	require.NoError(t, err)
 	defer d.Close()
-	for i := 0; i < 30; i++ {
-		f := frameWith(image.Rectangle{})
-		_, _, err := d.Detect(f, nil)
-		f.Close()
-		require.NoError(t, err)
-	}
+	warmUp(t, d, 30)
 	// A dark square outside the mask and a bright (caustic-like) one inside.
 	f := frameWith(image.Rect(200, 80, 220, 100))
 	gocv.Rectangle(&f, image.Rect(40, 40, 60, 60), color.RGBA{230, 230, 200, 0}, -1)
@@ -70,12 +71,7 @@ func TestDetectorKeepsStillObjectUnderHold(t *testing.T) {
 	d, err := NewDetector(DetectorConfig{LearningRate: -1, MinPixels: 4, History: 50}, image.Pt(320, 240))
 	require.NoError(t, err)
 	defer d.Close()
-	for i := 0; i < 30; i++ {
-		f := frameWith(image.Rectangle{})
-		_, _, err := d.Detect(f, nil)
-		f.Close()
-		require.NoError(t, err)
-	}
+	warmUp(t, d, 30)
 	sq := image.Rect(100, 80, 120, 100)
 	var hold []image.Rectangle
 	// 300 frames (30 s at 10 fps) still, with the track's box held: with a
@@ -95,11 +91,7 @@ func TestDetectorAbsorbsStillObjectWithoutHold(t *testing.T) {
 	d, err := NewDetector(DetectorConfig{LearningRate: -1, MinPixels: 4, History: 50}, image.Pt(320, 240))
 	require.NoError(t, err)
 	defer d.Close()
-	for i := 0; i < 30; i++ {
-		f := frameWith(image.Rectangle{})
-		_, _, _ = d.Detect(f, nil)
-		f.Close()
-	}
+	warmUp(t, d, 30)
 	var last int
 	for i := 0; i < 300; i++ {
 		f := frameWith(image.Rect(100, 80, 120, 100))

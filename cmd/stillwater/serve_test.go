@@ -12,18 +12,24 @@ import (
 	"github.com/stretchr/testify/require"
 )
 
-// TestEndToEnd renders clips, runs the daemon on them with the embedded
-// NATS server and checks what a real subscriber on that server receives.
+// TestEndToEnd renders synthetic scenes, runs the daemon on each with the
+// embedded NATS server and checks what a real subscriber on that server
+// receives: every intruder detected within 2 s of media time after entry
+// (ASTM F2208 allows 20 s; this is far inside) and within 0.5 m of the
+// generator's ground truth, and no target at all in intruder-free scenes.
+// The windy, far-corner and five-minute still-child scenes are not in this
+// list yet; see the detection issue's notes.
 func TestEndToEnd(t *testing.T) {
 	if testing.Short() {
-		t.Skip("renders and processes two 20 s clips")
+		t.Skip("renders and processes eleven 20 s clips")
 	}
 	tests := []struct {
 		scenario string
 		intruder bool
 	}{
-		{"child", true},
-		{"empty", false},
+		{"child", true}, {"submerged", true}, {"cloud-child", true},
+		{"empty", false}, {"calm", false}, {"glints", false}, {"cloud", false},
+		{"leaves", false}, {"bird", false}, {"deck", false}, {"night", false},
 	}
 	for _, tt := range tests {
 		t.Run(tt.scenario, func(t *testing.T) {
@@ -36,56 +42,15 @@ func TestEndToEnd(t *testing.T) {
 			require.NoError(t, err)
 			assert.Equal(t, 200, res.Frames)
 			if !tt.intruder {
-				assert.Empty(t, res.Targets, "an empty pool must raise no target")
+				assert.Empty(t, res.Targets, "false alarm in an intruder-free scene")
 				return
 			}
-			require.NotEmpty(t, res.Targets)
-			// Issue bound: first target within 2 s of media time after the
-			// intruder enters (ASTM F2208 allows 20 s; this is far inside).
-			require.False(t, math.IsNaN(res.FirstAlert))
+			require.False(t, math.IsNaN(res.FirstAlert), "intruder not detected")
 			assert.GreaterOrEqual(t, res.delay(), 0.0)
 			assert.LessOrEqual(t, res.delay(), 2.0)
 			require.NotEmpty(t, res.Errors)
 			for _, e := range res.Errors {
 				assert.LessOrEqual(t, e, 0.5, "position error against the generator's ground truth, m")
-			}
-		})
-	}
-}
-
-// TestScenarioSuite runs the daemon over the synthetic scenes that the
-// current detector handles: every intruder detected within 2 s of entry
-// and within 0.5 m, and no target at all in intruder-free scenes. The
-// windy, far-corner and five-minute still-child scenes are not in this list
-// yet; see the detection issue's notes.
-func TestScenarioSuite(t *testing.T) {
-	if testing.Short() {
-		t.Skip("renders and processes nine 20 s clips")
-	}
-	tests := []struct {
-		scenario string
-		intruder bool
-	}{
-		{"calm", false}, {"glints", false}, {"cloud", false}, {"leaves", false},
-		{"bird", false}, {"deck", false}, {"night", false},
-		{"submerged", true}, {"cloud-child", true},
-	}
-	for _, tt := range tests {
-		t.Run(tt.scenario, func(t *testing.T) {
-			s, ok := scenarioByName(tt.scenario, 3)
-			require.True(t, ok)
-			ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
-			defer cancel()
-			res, err := demo(ctx, s, t.TempDir(), false, slog.New(slog.NewTextHandler(io.Discard, nil)), io.Discard)
-			require.NoError(t, err)
-			if !tt.intruder {
-				assert.Empty(t, res.Targets, "false alarm in an intruder-free scene")
-				return
-			}
-			require.False(t, math.IsNaN(res.FirstAlert), "intruder not detected")
-			assert.LessOrEqual(t, res.delay(), 2.0)
-			for _, e := range res.Errors {
-				assert.LessOrEqual(t, e, 0.5)
 			}
 		})
 	}
