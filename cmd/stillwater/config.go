@@ -35,43 +35,17 @@ type LogConfig struct {
 	Format string `yaml:"format"` // text or json
 }
 
-// BusConfig selects the message bus: the embedded server when URL is empty.
-type BusConfig struct {
-	URL    string `yaml:"url"`
-	Listen string `yaml:"listen"` // embedded server's client listener
-	MQTT   string `yaml:"mqtt"`   // embedded server's MQTT listener; empty is off
-	Prefix string `yaml:"subject_prefix"`
-}
-
 // CameraConfig is one camera and the pool it sees.
 type CameraConfig struct {
 	ID        string `yaml:"id"`
 	Source    string `yaml:"source"`
 	Transport string `yaml:"transport"`
 	// Realtime paces a file source at its frame rate, as a live camera would.
-	Realtime bool         `yaml:"realtime"`
-	Pool     PoolConfig   `yaml:"pool"`
-	Corners  [][2]float64 `yaml:"corners"`
-	Detect   DetectConfig `yaml:"detect"`
-}
-
-// PoolConfig is the pool rectangle in metres.
-type PoolConfig struct {
-	Length float64 `yaml:"length_m"`
-	Width  float64 `yaml:"width_m"`
-}
-
-// DetectConfig tunes detection and alarming for one camera.
-type DetectConfig struct {
-	ProcessWidth int      `yaml:"process_width"`
-	Method       string   `yaml:"method"`
-	History      int      `yaml:"history"`
-	Threshold    float64  `yaml:"threshold"`
-	MinArea      float64  `yaml:"min_area_m2"`
-	MaxArea      float64  `yaml:"max_area_m2"`
-	Persist      Duration `yaml:"persist"`
-	UpdateEvery  Duration `yaml:"update_every"`
-	ClearAfter   Duration `yaml:"clear_after"`
+	Realtime bool `yaml:"realtime"`
+	// Calibration is inline: pool, corners, lens and water keys sit
+	// directly under the camera.
+	CalibrationConfig `yaml:",inline"`
+	Detect            DetectConfig `yaml:"detect"`
 }
 
 // Duration is a time.Duration written as "700ms" or "2s" in YAML.
@@ -93,30 +67,6 @@ func (d *Duration) UnmarshalYAML(n *yaml.Node) error {
 
 // MarshalYAML writes the duration as a string.
 func (d Duration) MarshalYAML() (any, error) { return time.Duration(d).String(), nil }
-
-// MinChildArea is the default smallest blob, m², that may be a child.
-// The WHO Child Growth Standards put a 12-month-old girl's median head
-// circumference at 44.9 cm (head diameter about 0.143 m, a top-down disc of
-// about 0.016 m²); head and shoulders together seen from above are about
-// 0.02–0.06 m² (derived). The default sits below the smallest of these, so
-// that a one-year-old's head alone still passes.
-const MinChildArea = 0.012
-
-// defaultDetect returns the detection defaults.
-func defaultDetect() DetectConfig {
-	a := alert.DefaultAlarm()
-	return DetectConfig{
-		ProcessWidth: 640,
-		Method:       "mog2",
-		History:      500,
-		Threshold:    16,
-		MinArea:      MinChildArea,
-		MaxArea:      2.5,
-		Persist:      Duration(a.Persist),
-		UpdateEvery:  Duration(a.UpdateEvery),
-		ClearAfter:   Duration(a.ClearAfter),
-	}
-}
 
 // Defaults returns the configuration before any file is read.
 func Defaults() Config {
@@ -158,48 +108,13 @@ func ParseConfig(b []byte) (Config, error) {
 	return cfg, nil
 }
 
-// mergeDetect fills the zero fields of d from def.
-func mergeDetect(def, d DetectConfig) DetectConfig {
-	if d.ProcessWidth == 0 {
-		d.ProcessWidth = def.ProcessWidth
-	}
-	if d.Method == "" {
-		d.Method = def.Method
-	}
-	if d.History == 0 {
-		d.History = def.History
-	}
-	if d.Threshold == 0 {
-		d.Threshold = def.Threshold
-	}
-	if d.MinArea == 0 {
-		d.MinArea = def.MinArea
-	}
-	if d.MaxArea == 0 {
-		d.MaxArea = def.MaxArea
-	}
-	if d.Persist == 0 {
-		d.Persist = def.Persist
-	}
-	if d.UpdateEvery == 0 {
-		d.UpdateEvery = def.UpdateEvery
-	}
-	if d.ClearAfter == 0 {
-		d.ClearAfter = def.ClearAfter
-	}
-	return d
-}
-
 // Validate checks every field and names the first one that is wrong.
 func (c Config) Validate() error {
 	if c.DataDir == "" {
 		return errors.New("data_dir: empty; set a writable directory such as /var/lib/stillwater")
 	}
-	if c.Bus.URL == "" && c.Bus.Listen == "" {
-		return errors.New("bus: neither url nor listen is set; set url for an external server or listen for the embedded one")
-	}
-	if err := alert.ValidToken(c.Bus.Prefix); err != nil {
-		return fmt.Errorf("bus.subject_prefix: %v; use a single word such as stillwater", err)
+	if err := validateBus(c.Bus); err != nil {
+		return err
 	}
 	switch c.Log.Level {
 	case "debug", "info", "warn", "error":
@@ -239,26 +154,8 @@ func (c Config) Validate() error {
 		if len(cam.Corners) != 4 {
 			return fmt.Errorf("%s.corners: %d given; list the 4 pool corners A, B, C, D in pixels, A at the origin, B along the length", where, len(cam.Corners))
 		}
-		d := cam.Detect
-		switch d.Method {
-		case "mog2", "knn":
-		default:
-			return fmt.Errorf("%s.detect.method: %q; want mog2 or knn", where, d.Method)
-		}
-		if d.ProcessWidth < 80 {
-			return fmt.Errorf("%s.detect.process_width: %d; want at least 80 px (640 is typical)", where, d.ProcessWidth)
-		}
-		if d.History < 1 {
-			return fmt.Errorf("%s.detect.history: %d; want a positive number of frames", where, d.History)
-		}
-		if d.Threshold < 0 {
-			return fmt.Errorf("%s.detect.threshold: %g; want a positive value", where, d.Threshold)
-		}
-		if d.MinArea < 0 || d.MaxArea <= d.MinArea {
-			return fmt.Errorf("%s.detect: min_area_m2 %g and max_area_m2 %g; want 0 ≤ min < max", where, d.MinArea, d.MaxArea)
-		}
-		if d.Persist < 0 || d.UpdateEvery <= 0 || d.ClearAfter <= 0 {
-			return fmt.Errorf("%s.detect: persist, update_every and clear_after must be positive durations", where)
+		if err := validateDetect(where, cam.Detect); err != nil {
+			return err
 		}
 	}
 	return nil

@@ -185,8 +185,8 @@ func demoConfig(t synth.Truth, clip, dir string, realtime bool) Config {
 	cfg.Bus.Listen = "127.0.0.1:-1"
 	cam := CameraConfig{
 		ID: "demo", Source: clip, Realtime: realtime,
-		Pool:   PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width},
-		Detect: defaultDetect(),
+		CalibrationConfig: CalibrationConfig{Pool: PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width}},
+		Detect:            defaultDetect(),
 	}
 	for _, c := range t.Corners {
 		cam.Corners = append(cam.Corners, c.Pixel)

@@ -30,9 +30,15 @@ var errUsage = errors.New("usage")
 const usage = `usage: stillwater <command> [flags]
 
 commands:
-  run     watch the cameras of a config file (the daemon)
-  demo    run the daemon on a generated clip with an in-process bus
-  synth   render a synthetic pool clip and its label file
+  run        watch the cameras of a config file (the daemon)
+  check      validate a config file and print what the daemon would do
+  listen     print live messages from the bus
+  calibrate  solve a camera's pool calibration from a frame and its corners
+  replay     run the detection pipeline over a recorded clip, messages as JSON lines
+  score      compare replay output with a label file
+  sweep      replay and score clips over a grid of detection settings
+  demo       run the daemon on a generated clip with an in-process bus
+  synth      render a synthetic pool clip and its label file
 
 run "stillwater <command> -h" for a command's flags`
 
@@ -49,6 +55,18 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		return runDemo(ctx, rest, stdout, stderr)
 	case "synth":
 		return runSynth(ctx, rest, stdout, stderr)
+	case "check":
+		return runCheck(ctx, rest, stdout, stderr)
+	case "listen":
+		return runListen(ctx, rest, stdout, stderr)
+	case "calibrate":
+		return runCalibrate(ctx, rest, stdout, stderr)
+	case "replay":
+		return runReplay(ctx, rest, stdout, stderr)
+	case "score":
+		return runScore(ctx, rest, stdout, stderr)
+	case "sweep":
+		return runSweep(ctx, rest, stdout, stderr)
 	case "-h", "-help", "--help", "help":
 		fmt.Fprintln(stdout, usage)
 		return nil
