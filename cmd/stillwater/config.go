@@ -21,6 +21,7 @@ type Config struct {
 	HTTP    HTTPConfig     `yaml:"http"`
 	Log     LogConfig      `yaml:"log"`
 	Bus     BusConfig      `yaml:"bus"`
+	Control ControlConfig  `yaml:"control"`
 	Cameras []CameraConfig `yaml:"cameras"`
 }
 
@@ -46,6 +47,8 @@ type CameraConfig struct {
 	// directly under the camera.
 	CalibrationConfig `yaml:",inline"`
 	Detect            DetectConfig `yaml:"detect"`
+	// Zones are exclusion polygons (fountain, ladder, cleaner's dock).
+	Zones []ZoneConfig `yaml:"zones"`
 }
 
 // Duration is a time.Duration written as "700ms" or "2s" in YAML.

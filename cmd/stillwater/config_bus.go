@@ -25,3 +25,6 @@ func validateBus(b BusConfig) error {
 	}
 	return nil
 }
+
+// ControlConfig is who may arm and disarm, over HTTP and NATS.
+type ControlConfig struct{}

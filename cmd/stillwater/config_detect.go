@@ -99,3 +99,6 @@ func validateDetect(where string, d DetectConfig) error {
 	}
 	return nil
 }
+
+// ZoneConfig is one exclusion polygon.
+type ZoneConfig struct{}
