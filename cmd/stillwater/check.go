@@ -2,11 +2,129 @@ package main
 
 import (
 	"context"
-	"errors"
+	"flag"
+	"fmt"
 	"io"
+	"strings"
+	"text/tabwriter"
+	"time"
+
+	"stillwater/alert"
+	"stillwater/homography"
+	"stillwater/vision"
 )
 
-// runCheck is being written; see the issue notes.
-func runCheck(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	return errors.New("check: not built yet")
+// runCheck is "stillwater check": validate a config file and print what
+// the daemon would do with it, without opening any camera or port.
+func runCheck(_ context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := flag.NewFlagSet("check", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	path := fs.String("config", "/etc/stillwater/stillwater.yaml", "config `file` to check")
+	at := fs.String("at", "", "evaluate the arming schedule at this RFC 3339 `time` instead of now")
+	if err := fs.Parse(args); err != nil {
+		return errUsage
+	}
+	now := time.Now()
+	if *at != "" {
+		t, err := time.Parse(time.RFC3339, *at)
+		if err != nil {
+			return fmt.Errorf("check -at %q: want an RFC 3339 time such as 2026-06-01T21:00:00+02:00", *at)
+		}
+		now = t
+	}
+	cfg, err := LoadConfig(*path)
+	if err != nil {
+		return fmt.Errorf("config is not valid: %w", err)
+	}
+	return describe(stdout, *path, cfg, now)
+}
+
+// describe prints the plan for a valid config: cameras, schedule in local
+// time, bus and storage.
+func describe(w io.Writer, path string, cfg Config, now time.Time) error {
+	sch, err := cfg.schedules()
+	if err != nil {
+		return err
+	}
+	loc, err := loadZone(cfg.Arming.TimeZone)
+	if err != nil {
+		return err
+	}
+	fmt.Fprintf(w, "%s: valid\n\n", path)
+	fmt.Fprintf(w, "cameras (%d):\n", len(cfg.Cameras))
+	for _, cam := range cfg.Cameras {
+		transport := cam.Transport
+		if transport == "" {
+			transport = "backend default"
+		}
+		fmt.Fprintf(w, "  %s  %s (transport %s)\n", cam.ID, vision.Redact(cam.Source), transport)
+		fmt.Fprintf(w, "    pool %g × %g m, corners A %v B %v C %v D %v px\n", cam.Pool.Length, cam.Pool.Width, cam.Corners[0], cam.Corners[1], cam.Corners[2], cam.Corners[3])
+		if h, err := poolHomography(cam); err == nil {
+			fmt.Fprintf(w, "    %s\n", resolution(cam, h))
+		}
+		d := cam.Detect
+		fmt.Fprintf(w, "    detect %s at %d px wide, threshold %g, blobs %g–%g m², alarm after %v, updates every %v, cleared after %v\n",
+			d.Method, d.ProcessWidth, d.Threshold, d.MinArea, d.MaxArea, time.Duration(d.Persist), time.Duration(d.UpdateEvery), time.Duration(d.ClearAfter))
+		fmt.Fprintf(w, "    camera lost after %v without a frame while armed\n", time.Duration(cam.FrameTimeout))
+		fmt.Fprintf(w, "    %s\n", armingLine(sch[cam.ID], loc, now))
+	}
+	fmt.Fprintln(w)
+	fmt.Fprintln(w, "bus:")
+	if cfg.Bus.URL == "" {
+		fmt.Fprintf(w, "  embedded NATS server on %s, JetStream store in %s/jetstream\n", cfg.Bus.Listen, cfg.DataDir)
+		if cfg.Bus.MQTT != "" {
+			fmt.Fprintf(w, "  MQTT listener on %s (topics %s/CAMERA/KIND)\n", cfg.Bus.MQTT, cfg.Bus.Prefix)
+		}
+	} else {
+		fmt.Fprintf(w, "  external NATS %s\n", vision.Redact(cfg.Bus.URL))
+	}
+	tw := tabwriter.NewWriter(w, 2, 4, 2, ' ', 0)
+	for _, k := range []string{alert.KindTarget, alert.KindCleared, alert.KindFault, alert.KindArmed, alert.KindBeat} {
+		fmt.Fprintf(tw, "  %s\t%s\n", k, alert.Subject(cfg.Bus.Prefix, "CAMERA", k))
+	}
+	tw.Flush()
+	fmt.Fprintf(w, "  heartbeat every %v per camera\n\n", time.Duration(cfg.HeartbeatEvery))
+	fmt.Fprintf(w, "http: metrics, /healthz and /readyz on %s\n", cfg.HTTP.Listen)
+	if cfg.Evidence.on() {
+		e := cfg.Evidence
+		fmt.Fprintf(w, "evidence: %s/evidence, %v before and %v after each alarm; keep at most %d files, %d MB, %v\n",
+			cfg.DataDir, time.Duration(e.PreRoll), time.Duration(e.PostRoll), e.MaxFiles, e.MaxMB, time.Duration(e.MaxAge))
+	} else {
+		fmt.Fprintln(w, "evidence: off")
+	}
+	return nil
+}
+
+// resolution reports metres per pixel at the nearest and farthest corner,
+// which says how small a child the camera can resolve.
+func resolution(cam CameraConfig, h homography.H) string {
+	best, worst := 0.0, 0.0
+	for i, c := range cam.Corners {
+		m := homography.MetresPerPixel(h, homography.Point{X: c[0], Y: c[1]})
+		if i == 0 || m < best {
+			best = m
+		}
+		if m > worst {
+			worst = m
+		}
+	}
+	return fmt.Sprintf("resolution %.1f–%.1f cm per pixel across the pool corners", best*100, worst*100)
+}
+
+// armingLine says whether the camera is armed at now and when that
+// changes, in the schedule's zone.
+func armingLine(s *alert.Schedule, loc *time.Location, now time.Time) string {
+	if s == nil {
+		return "armed around the clock (no schedule)"
+	}
+	state := "disarmed"
+	if s.Armed(now) {
+		state = "armed"
+	}
+	var b strings.Builder
+	fmt.Fprintf(&b, "schedule in %s: %s at %s", loc, state, now.In(loc).Format("Mon 2006-01-02 15:04 MST"))
+	if next, ok := s.Next(now); ok {
+		fmt.Fprintf(&b, ", changes at %s", next.In(loc).Format("Mon 2006-01-02 15:04 MST"))
+	}
+	return b.String()
 }

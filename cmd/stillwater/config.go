@@ -6,6 +6,8 @@ import (
 	"fmt"
 	"io"
 	"os"
+	"regexp"
+	"strconv"
 	"strings"
 	"time"
 
@@ -17,13 +19,40 @@ import (
 // Config is the daemon's whole configuration, from defaults, the YAML
 // file and flags, in that order.
 type Config struct {
-	DataDir string         `yaml:"data_dir"`
-	HTTP    HTTPConfig     `yaml:"http"`
-	Log     LogConfig      `yaml:"log"`
-	Bus     BusConfig      `yaml:"bus"`
-	Control ControlConfig  `yaml:"control"`
-	Cameras []CameraConfig `yaml:"cameras"`
+	DataDir string        `yaml:"data_dir"`
+	HTTP    HTTPConfig    `yaml:"http"`
+	Log     LogConfig     `yaml:"log"`
+	Bus     BusConfig     `yaml:"bus"`
+	Control ControlConfig `yaml:"control"`
+	Arming  ArmingConfig  `yaml:"arming"`
+	// HeartbeatEvery is how often each camera publishes a heartbeat.
+	HeartbeatEvery Duration       `yaml:"heartbeat_every"`
+	Evidence       EvidenceConfig `yaml:"evidence"`
+	Cameras        []CameraConfig `yaml:"cameras"`
 }
+
+// ArmingConfig is the default weekly schedule for every camera. A window
+// reads "mon-fri 18:00-08:00" or "sat,sun 20:00-07:30" (a window may cross
+// midnight) in the named IANA time zone. No windows means armed around
+// the clock.
+type ArmingConfig struct {
+	TimeZone string   `yaml:"time_zone"`
+	Schedule []string `yaml:"schedule"`
+}
+
+// EvidenceConfig says what is kept for each alarm: an annotated JPEG and a
+// clip with pre-roll, under data_dir/evidence, pruned oldest first.
+type EvidenceConfig struct {
+	Enabled  *bool    `yaml:"enabled"` // default true
+	PreRoll  Duration `yaml:"pre_roll"`
+	PostRoll Duration `yaml:"post_roll"`
+	MaxFiles int      `yaml:"max_files"`
+	MaxMB    int64    `yaml:"max_mb"`
+	MaxAge   Duration `yaml:"max_age"`
+}
+
+// on reports whether evidence is kept.
+func (e EvidenceConfig) on() bool { return e.Enabled == nil || *e.Enabled }
 
 // HTTPConfig is the metrics and health listener.
 type HTTPConfig struct {
@@ -43,6 +72,13 @@ type CameraConfig struct {
 	Transport string `yaml:"transport"`
 	// Realtime paces a file source at its frame rate, as a live camera would.
 	Realtime bool `yaml:"realtime"`
+	// Loop plays a file source again from the start when it ends.
+	Loop bool `yaml:"loop"`
+	// FrameTimeout is how long without a frame, while armed, before the
+	// camera is reported lost.
+	FrameTimeout Duration `yaml:"frame_timeout"`
+	// Schedule replaces arming.schedule for this camera when set.
+	Schedule []string `yaml:"schedule"`
 	// Calibration is inline: pool, corners, lens and water keys sit
 	// directly under the camera.
 	CalibrationConfig `yaml:",inline"`
@@ -78,6 +114,13 @@ func Defaults() Config {
 		HTTP:    HTTPConfig{Listen: "127.0.0.1:9310"},
 		Log:     LogConfig{Level: "info", Format: "text"},
 		Bus:     BusConfig{Listen: "127.0.0.1:4222", Prefix: "stillwater"},
+		Arming:  ArmingConfig{TimeZone: "Local"},
+
+		HeartbeatEvery: Duration(10 * time.Second),
+		Evidence: EvidenceConfig{
+			PreRoll: Duration(5 * time.Second), PostRoll: Duration(10 * time.Second),
+			MaxFiles: 200, MaxMB: 2048, MaxAge: Duration(30 * 24 * time.Hour),
+		},
 	}
 }
 
@@ -88,28 +131,120 @@ func LoadConfig(path string) (Config, error) {
 		return Config{}, fmt.Errorf("load config: %w", err)
 	}
 	cfg, err := ParseConfig(b)
-	if err != nil {
-		return Config{}, fmt.Errorf("load config %s: %w", path, err)
+	var le *lineError
+	switch {
+	case errors.As(err, &le):
+		return Config{}, fmt.Errorf("%s:%d: %s", path, le.line, le.msg)
+	case err != nil:
+		return Config{}, fmt.Errorf("%s: %w", path, err)
 	}
 	return cfg, nil
 }
 
+var envRef = regexp.MustCompile(`\$\{([A-Za-z_][A-Za-z0-9_]*)\}`)
+
+// expandEnv replaces each ${NAME} in s; an unset variable is an error.
+func expandEnv(s string, env func(string) (string, bool)) (string, error) {
+	var missing []string
+	out := envRef.ReplaceAllStringFunc(s, func(ref string) string {
+		name := envRef.FindStringSubmatch(ref)[1]
+		v, ok := env(name)
+		if !ok {
+			missing = append(missing, name)
+		}
+		return v
+	})
+	if len(missing) > 0 {
+		return "", fmt.Errorf("environment variable %s is not set; export it (for systemd: an EnvironmentFile) or write the value", strings.Join(missing, ", "))
+	}
+	return out, nil
+}
+
+// lineError is a decoding problem at a line of the YAML text.
+type lineError struct {
+	line int
+	msg  string
+}
+
+func (e *lineError) Error() string { return fmt.Sprintf("line %d: %s", e.line, e.msg) }
+
+var (
+	yamlLine    = regexp.MustCompile(`^line (\d+): (.*)$`)
+	yamlUnknown = regexp.MustCompile(`^field (\S+) not found in type main\.(\w+)$`)
+)
+
+// yamlError rewrites the decoder's message into one naming the line and,
+// for an unknown key, the section it was found in.
+func yamlError(err error) error {
+	var te *yaml.TypeError
+	msg := strings.TrimPrefix(err.Error(), "yaml: ")
+	if errors.As(err, &te) && len(te.Errors) > 0 {
+		msg = te.Errors[0]
+	}
+	m := yamlLine.FindStringSubmatch(msg)
+	if m == nil {
+		return errors.New(msg)
+	}
+	line, _ := strconv.Atoi(m[1])
+	text := m[2]
+	if u := yamlUnknown.FindStringSubmatch(text); u != nil {
+		text = fmt.Sprintf("unknown key %q in %s; check its spelling and indentation against deploy/stillwater.example.yaml", u[1], sectionName(u[2]))
+	}
+	return &lineError{line: line, msg: text}
+}
+
+// sectionName names a config type as the installer sees it.
+func sectionName(typ string) string {
+	switch typ {
+	case "Config":
+		return "the top level"
+	case "CameraConfig":
+		return "a camera"
+	case "CalibrationConfig":
+		return "a camera's calibration"
+	case "DetectConfig":
+		return "a camera's detect section"
+	}
+	s := strings.TrimSuffix(typ, "Config")
+	return "the " + strings.ToLower(s) + " section"
+}
+
 // ParseConfig decodes YAML over the defaults and validates the result.
+// ${NAME} in a camera source or the bus URL is replaced from the process
+// environment.
 func ParseConfig(b []byte) (Config, error) {
+	return parseConfig(b, os.LookupEnv)
+}
+
+func parseConfig(b []byte, env func(string) (string, bool)) (Config, error) {
 	cfg := Defaults()
 	dec := yaml.NewDecoder(bytes.NewReader(b))
 	dec.KnownFields(true)
 	if err := dec.Decode(&cfg); err != nil && !errors.Is(err, io.EOF) {
-		return Config{}, fmt.Errorf("%s", strings.TrimPrefix(err.Error(), "yaml: "))
+		return Config{}, yamlError(err)
+	}
+	var err error
+	if cfg.Bus.URL, err = expandEnv(cfg.Bus.URL, env); err != nil {
+		return Config{}, fmt.Errorf("bus.url: %w", err)
 	}
 	for i := range cfg.Cameras {
+		if cfg.Cameras[i].Source, err = expandEnv(cfg.Cameras[i].Source, env); err != nil {
+			return Config{}, fmt.Errorf("cameras[%d].source: %w", i, err)
+		}
 		cfg.Cameras[i].Detect = mergeDetect(defaultDetect(), cfg.Cameras[i].Detect)
+		if cfg.Cameras[i].FrameTimeout == 0 {
+			cfg.Cameras[i].FrameTimeout = Duration(defaultFrameTimeout)
+		}
 	}
 	if err := cfg.Validate(); err != nil {
 		return Config{}, err
 	}
 	return cfg, nil
 }
+
+// defaultFrameTimeout is how long a camera may go without a frame while
+// armed before it is reported lost.
+const defaultFrameTimeout = 3 * time.Second
 
 // Validate checks every field and names the first one that is wrong.
 func (c Config) Validate() error {
@@ -128,6 +263,15 @@ func (c Config) Validate() error {
 	case "text", "json":
 	default:
 		return fmt.Errorf("log.format: %q; want text or json", c.Log.Format)
+	}
+	if c.HeartbeatEvery < Duration(time.Second) {
+		return fmt.Errorf("heartbeat_every: %v; want at least 1s (10s is typical)", time.Duration(c.HeartbeatEvery))
+	}
+	if err := c.Evidence.validate(); err != nil {
+		return err
+	}
+	if _, err := c.schedules(); err != nil {
+		return err
 	}
 	if len(c.Cameras) == 0 {
 		return errors.New("cameras: none configured; add at least one camera with id, source, pool and corners")
@@ -160,6 +304,69 @@ func (c Config) Validate() error {
 		if err := validateDetect(where, cam.Detect); err != nil {
 			return err
 		}
+		if cam.FrameTimeout < Duration(500*time.Millisecond) || cam.FrameTimeout > Duration(20*time.Second) {
+			return fmt.Errorf("%s.frame_timeout: %v; want between 500ms and 20s (3s is the default)", where, time.Duration(cam.FrameTimeout))
+		}
 	}
 	return nil
+}
+
+func (e EvidenceConfig) validate() error {
+	switch {
+	case e.PreRoll < 0 || e.PreRoll > Duration(60*time.Second):
+		return fmt.Errorf("evidence.pre_roll: %v; want 0 to 60s", time.Duration(e.PreRoll))
+	case e.PostRoll < 0 || e.PostRoll > Duration(120*time.Second):
+		return fmt.Errorf("evidence.post_roll: %v; want 0 to 120s", time.Duration(e.PostRoll))
+	case e.MaxFiles < 1:
+		return fmt.Errorf("evidence.max_files: %d; want a positive count", e.MaxFiles)
+	case e.MaxMB < 1:
+		return fmt.Errorf("evidence.max_mb: %d; want a positive size in MB", e.MaxMB)
+	case e.MaxAge < Duration(time.Hour):
+		return fmt.Errorf("evidence.max_age: %v; want at least 1h", time.Duration(e.MaxAge))
+	}
+	return nil
+}
+
+// schedules parses each camera's arming schedule (its own or the default).
+// A camera with no windows anywhere is armed around the clock (nil).
+func (c Config) schedules() (map[string]*alert.Schedule, error) {
+	if _, err := loadZone(c.Arming.TimeZone); err != nil {
+		return nil, fmt.Errorf("arming.time_zone: %v", err)
+	}
+	def, err := parseSchedule(c.Arming.TimeZone, c.Arming.Schedule)
+	if err != nil {
+		return nil, fmt.Errorf("arming.schedule: %w", err)
+	}
+	out := map[string]*alert.Schedule{}
+	for i, cam := range c.Cameras {
+		out[cam.ID] = def
+		if len(cam.Schedule) == 0 {
+			continue
+		}
+		s, err := parseSchedule(c.Arming.TimeZone, cam.Schedule)
+		if err != nil {
+			return nil, fmt.Errorf("cameras[%d] (%s).schedule: %w", i, cam.ID, err)
+		}
+		out[cam.ID] = s
+	}
+	return out, nil
+}
+
+func parseSchedule(zone string, windows []string) (*alert.Schedule, error) {
+	if len(windows) == 0 {
+		return nil, nil
+	}
+	return alert.ParseSchedule(zone, windows)
+}
+
+// loadZone loads an IANA zone with an error that says how to write one.
+func loadZone(name string) (*time.Location, error) {
+	if name == "" {
+		return nil, errors.New("empty; write an IANA zone such as Europe/Berlin, or Local for the system zone")
+	}
+	loc, err := time.LoadLocation(name)
+	if err != nil {
+		return nil, fmt.Errorf("%q is not a known IANA time zone (write e.g. Europe/Berlin or America/New_York)", name)
+	}
+	return loc, nil
 }

@@ -187,6 +187,7 @@ func demoConfig(t synth.Truth, clip, dir string, realtime bool) Config {
 		ID: "demo", Source: clip, Realtime: realtime,
 		CalibrationConfig: CalibrationConfig{Pool: PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width}},
 		Detect:            defaultDetect(),
+		FrameTimeout:      Duration(defaultFrameTimeout),
 	}
 	for _, c := range t.Corners {
 		cam.Corners = append(cam.Corners, c.Pixel)

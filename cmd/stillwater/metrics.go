@@ -1,49 +1,84 @@
 package main
 
 import (
+	"runtime"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
 )
 
 // metrics are the daemon's own collectors, registered on the registry
-// that serve creates.
+// that serve creates. Names follow Prometheus conventions: a unit suffix,
+// _total on counters, one "camera" label.
 type metrics struct {
-	frames    *prometheus.CounterVec
-	procSecs  *prometheus.HistogramVec
-	rejected  *prometheus.CounterVec
-	tracks    *prometheus.GaugeVec
-	published *prometheus.CounterVec
-	pubErrors *prometheus.CounterVec
+	read        *prometheus.CounterVec
+	processed   *prometheus.CounterVec
+	dropped     *prometheus.CounterVec
+	decodeErrs  *prometheus.CounterVec
+	procSecs    *prometheus.HistogramVec
+	stageSecs   *prometheus.HistogramVec
+	rejected    *prometheus.CounterVec
+	tracks      *prometheus.GaugeVec
+	up          *prometheus.GaugeVec
+	reconnects  *prometheus.CounterVec
+	armed       *prometheus.GaugeVec
+	alarms      *prometheus.CounterVec
+	faults      *prometheus.CounterVec
+	faultActive *prometheus.GaugeVec
+	beatTime    *prometheus.GaugeVec
+	published   *prometheus.CounterVec
+	pubErrors   *prometheus.CounterVec
+	pubSecs     *prometheus.HistogramVec
+	refused     *prometheus.CounterVec
+	build       *prometheus.GaugeVec
 }
 
-func newMetrics(reg prometheus.Registerer) *metrics {
-	m := &metrics{
-		frames: prometheus.NewCounterVec(prometheus.CounterOpts{
-			Name: "stillwater_frames_processed_total", Help: "Frames read and processed, by camera.",
-		}, []string{"camera"}),
-		procSecs: prometheus.NewHistogramVec(prometheus.HistogramOpts{
-			Name: "stillwater_frame_processing_seconds", Help: "Time to read and process one frame, by camera.",
-			Buckets: []float64{0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1},
-		}, []string{"camera"}),
-		rejected: prometheus.NewCounterVec(prometheus.CounterOpts{
-			Name: "stillwater_blobs_rejected_total", Help: "Foreground blobs dropped before tracking, by camera and reason.",
-		}, []string{"camera", "reason"}),
-		tracks: prometheus.NewGaugeVec(prometheus.GaugeOpts{
-			Name: "stillwater_active_tracks", Help: "Tracks currently followed, by camera.",
-		}, []string{"camera"}),
-		published: prometheus.NewCounterVec(prometheus.CounterOpts{
-			Name: "stillwater_messages_published_total", Help: "Messages published, by camera and kind.",
-		}, []string{"camera", "kind"}),
-		pubErrors: prometheus.NewCounterVec(prometheus.CounterOpts{
-			Name: "stillwater_publish_errors_total", Help: "Publishes that failed, by camera.",
-		}, []string{"camera"}),
+func newMetrics(reg prometheus.Registerer, version string) *metrics {
+	cam := []string{"camera"}
+	counter := func(name, help string, labels ...string) *prometheus.CounterVec {
+		return prometheus.NewCounterVec(prometheus.CounterOpts{Name: name, Help: help}, labels)
 	}
-	reg.MustRegister(m.frames, m.procSecs, m.rejected, m.tracks, m.published, m.pubErrors)
+	gauge := func(name, help string, labels ...string) *prometheus.GaugeVec {
+		return prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: name, Help: help}, labels)
+	}
+	secs := []float64{0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1, 2, 5}
+	m := &metrics{
+		read:       counter("stillwater_frames_read_total", "Frames read from the camera.", cam...),
+		processed:  counter("stillwater_frames_processed_total", "Frames that went through the whole pipeline.", cam...),
+		dropped:    counter("stillwater_frames_dropped_total", "Frames read but not processed.", cam...),
+		decodeErrs: counter("stillwater_decode_errors_total", "Reads that returned no decodable frame.", cam...),
+		procSecs: prometheus.NewHistogramVec(prometheus.HistogramOpts{
+			Name: "stillwater_frame_processing_seconds", Help: "Time to read and process one frame.", Buckets: secs,
+		}, cam),
+		stageSecs: prometheus.NewHistogramVec(prometheus.HistogramOpts{
+			Name: "stillwater_stage_seconds", Help: "Time spent per frame in each stage: vision (read and detect), track, publish.", Buckets: secs,
+		}, []string{"camera", "stage"}),
+		rejected:    counter("stillwater_blobs_rejected_total", "Foreground blobs dropped before tracking, by reason.", "camera", "reason"),
+		tracks:      gauge("stillwater_active_tracks", "Tracks currently followed.", cam...),
+		up:          gauge("stillwater_camera_up", "1 while frames arrive within the frame timeout.", cam...),
+		reconnects:  counter("stillwater_camera_reconnects_total", "Times the camera was opened again after a failure.", cam...),
+		armed:       gauge("stillwater_armed", "1 while the camera's pool is armed.", cam...),
+		alarms:      counter("stillwater_alarms_total", "Alarms raised (target start events).", cam...),
+		faults:      counter("stillwater_faults_total", "Faults raised, by kind.", "camera", "fault"),
+		faultActive: gauge("stillwater_fault_active", "1 while a fault of the kind is active.", "camera", "fault"),
+		beatTime:    gauge("stillwater_heartbeat_timestamp_seconds", "Unix time of the last heartbeat sent.", cam...),
+		published:   counter("stillwater_messages_published_total", "Messages handed to the bus, by kind.", "camera", "kind"),
+		pubErrors:   counter("stillwater_publish_errors_total", "Publishes that failed.", cam...),
+		pubSecs: prometheus.NewHistogramVec(prometheus.HistogramOpts{
+			Name: "stillwater_publish_seconds", Help: "Time to publish one message, by kind.", Buckets: secs,
+		}, []string{"kind"}),
+		refused: counter("stillwater_control_refused_total", "Control requests refused, by channel.", "via"),
+		build:   gauge("stillwater_build_info", "Always 1; labels carry the version.", "version", "goversion"),
+	}
+	reg.MustRegister(m.read, m.processed, m.dropped, m.decodeErrs, m.procSecs, m.stageSecs, m.rejected, m.tracks,
+		m.up, m.reconnects, m.armed, m.alarms, m.faults, m.faultActive, m.beatTime, m.published, m.pubErrors, m.pubSecs,
+		m.refused, m.build)
+	m.build.WithLabelValues(version, runtime.Version()).Set(1)
 	return m
 }
 
-// cameraMetrics is the per-camera view; a nil one records nothing.
+// cameraMetrics is the per-camera view; a nil one records nothing, so
+// replays and tests can run the pipeline without a registry.
 type cameraMetrics struct {
 	m  *metrics
 	id string
@@ -51,12 +86,26 @@ type cameraMetrics struct {
 
 func (m *metrics) camera(id string) *cameraMetrics { return &cameraMetrics{m: m, id: id} }
 
-func (c *cameraMetrics) frame(d time.Duration) {
+func (c *cameraMetrics) frame() {
 	if c == nil {
 		return
 	}
-	c.m.frames.WithLabelValues(c.id).Inc()
+	c.m.read.WithLabelValues(c.id).Inc()
+}
+
+func (c *cameraMetrics) processed(d time.Duration) {
+	if c == nil {
+		return
+	}
+	c.m.processed.WithLabelValues(c.id).Inc()
 	c.m.procSecs.WithLabelValues(c.id).Observe(d.Seconds())
+}
+
+func (c *cameraMetrics) stage(name string, d time.Duration) {
+	if c == nil {
+		return
+	}
+	c.m.stageSecs.WithLabelValues(c.id, name).Observe(d.Seconds())
 }
 
 func (c *cameraMetrics) rejected(reason string) {
@@ -73,11 +122,64 @@ func (c *cameraMetrics) tracks(n int) {
 	c.m.tracks.WithLabelValues(c.id).Set(float64(n))
 }
 
-func (c *cameraMetrics) published(kind string) {
+func (c *cameraMetrics) cameraUp(up bool) {
+	if c == nil {
+		return
+	}
+	c.m.up.WithLabelValues(c.id).Set(b2f(up))
+}
+
+func (c *cameraMetrics) armedState(armed bool) {
+	if c == nil {
+		return
+	}
+	c.m.armed.WithLabelValues(c.id).Set(b2f(armed))
+}
+
+func (c *cameraMetrics) reconnect() {
+	if c == nil {
+		return
+	}
+	c.m.reconnects.WithLabelValues(c.id).Inc()
+}
+
+func (c *cameraMetrics) decodeErrors(n int) {
+	if c == nil || n <= 0 {
+		return
+	}
+	c.m.decodeErrs.WithLabelValues(c.id).Add(float64(n))
+}
+
+func (c *cameraMetrics) alarm() {
+	if c == nil {
+		return
+	}
+	c.m.alarms.WithLabelValues(c.id).Inc()
+}
+
+func (c *cameraMetrics) fault(kind string, active bool) {
+	if c == nil {
+		return
+	}
+	if active {
+		c.m.faults.WithLabelValues(c.id, kind).Inc()
+	}
+	c.m.faultActive.WithLabelValues(c.id, kind).Set(b2f(active))
+}
+
+func (c *cameraMetrics) heartbeat(t time.Time) {
+	if c == nil {
+		return
+	}
+	c.m.beatTime.WithLabelValues(c.id).Set(float64(t.UnixNano()) / 1e9)
+}
+
+func (c *cameraMetrics) published(kind string, d time.Duration) {
 	if c == nil {
 		return
 	}
 	c.m.published.WithLabelValues(c.id, kind).Inc()
+	c.m.pubSecs.WithLabelValues(kind).Observe(d.Seconds())
 }
 
 func (c *cameraMetrics) publishError() {
@@ -85,4 +187,11 @@ func (c *cameraMetrics) publishError() {
 		return
 	}
 	c.m.pubErrors.WithLabelValues(c.id).Inc()
+}
+
+func b2f(b bool) float64 {
+	if b {
+		return 1
+	}
+	return 0
 }

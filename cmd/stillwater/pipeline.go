@@ -2,10 +2,8 @@ package main
 
 import (
 	"context"
-	"errors"
 	"fmt"
 	"image"
-	"io"
 	"log/slog"
 	"math"
 	"time"
@@ -149,6 +147,9 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 	switch dec.Kind {
 	case alert.KindTarget:
 		p.log.Debug("track raised a target", "track", o.Track, "event", dec.Event, "dwell", dec.Dwell)
+		if dec.Event == "start" {
+			p.metrics.alarm()
+		}
 		v = alert.Target{
 			V: alert.Version, Kind: alert.KindTarget, Camera: p.cam.ID, Track: o.Track, Seq: p.seq, Event: dec.Event,
 			Time: now, FrameTime: frameTime, Frame: r.Index,
@@ -176,61 +177,17 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 	return outMsg{Camera: p.cam.ID, Kind: dec.Kind, ID: id, Data: b, Frame: r.Index, Media: r.Media}, nil
 }
 
+// reload swaps in a camera's new calibration, zones and detection
+// thresholds between frames, keeping tracks and alarms. The background
+// model is not touched: the source and its size stay the same.
+func (p *processor) reload(cam CameraConfig) error {
+	h, err := poolHomography(cam)
+	if err != nil {
+		return err
+	}
+	p.cam, p.toPool = cam, h
+	return nil
+}
+
 func round3(v float64) float64 { return math.Round(v*1000) / 1000 }
 func round4(v float64) float64 { return math.Round(v*10000) / 10000 }
-
-// watchCamera runs one camera until ctx ends or a file source is done.
-func watchCamera(ctx context.Context, cam CameraConfig, out sink, armed func() bool, now func() time.Time, log *slog.Logger, m *cameraMetrics) error {
-	log = log.With("camera", cam.ID)
-	vc, err := vision.OpenCamera(
-		vision.SourceConfig{URI: cam.Source, Transport: cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: 5 * time.Second},
-		vision.DetectorConfig{
-			ProcessWidth: cam.Detect.ProcessWidth, Method: cam.Detect.Method, History: cam.Detect.History,
-			Threshold: cam.Detect.Threshold, LearningRate: -1, MinPixels: 6, Mask: cornersPolygon(cam),
-		})
-	if err != nil {
-		return err
-	}
-	defer vc.Close()
-	fps := vc.FPS()
-	start := now()
-	proc, err := newProcessor(cam, fps, start, now, log, m)
-	if err != nil {
-		return err
-	}
-	log.Info("camera open", "source", vision.Redact(cam.Source), "size", vc.Size(), "fps", fps)
-	var hold []image.Rectangle
-	for {
-		if err := ctx.Err(); err != nil {
-			return nil
-		}
-		t0 := time.Now()
-		r, err := vc.Next(hold)
-		if errors.Is(err, io.EOF) {
-			log.Info("source ended", "frames", r.Index)
-			return nil
-		}
-		if err != nil {
-			return fmt.Errorf("camera %s: %w", cam.ID, err)
-		}
-		m.frame(time.Since(t0))
-		msgs, h := proc.step(r, armed())
-		hold = h
-		for _, msg := range msgs {
-			if err := out.send(ctx, msg); err != nil {
-				log.Error("publish failed", "kind", msg.Kind, "err", err)
-				m.publishError()
-			}
-		}
-		if cam.Realtime && fps > 0 {
-			due := start.Add(time.Duration(float64(r.Index+1) / fps * float64(time.Second)))
-			if d := time.Until(due); d > 0 {
-				select {
-				case <-ctx.Done():
-					return nil
-				case <-time.After(d):
-				}
-			}
-		}
-	}
-}

@@ -6,6 +6,9 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
+	"os"
+	"os/signal"
+	"syscall"
 )
 
 // runDaemon is "stillwater run": the daemon from a config file.
@@ -19,23 +22,57 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err := fs.Parse(args); err != nil {
 		return errUsage
 	}
-	cfg, err := LoadConfig(*path)
+	load := func() (Config, error) {
+		cfg, err := LoadConfig(*path)
+		if err != nil {
+			return Config{}, fmt.Errorf("couldn't load configuration (-config %q): %w", *path, err)
+		}
+		if *httpAddr != "" {
+			cfg.HTTP.Listen = *httpAddr
+		}
+		if *dataDir != "" {
+			cfg.DataDir = *dataDir
+		}
+		if *level != "" {
+			cfg.Log.Level = *level
+		}
+		if err := cfg.Validate(); err != nil {
+			return Config{}, fmt.Errorf("configuration after flags: %w", err)
+		}
+		return cfg, nil
+	}
+	cfg, err := load()
 	if err != nil {
-		return fmt.Errorf("couldn't load configuration (--config=%q): %w", *path, err)
+		return err
 	}
-	if *httpAddr != "" {
-		cfg.HTTP.Listen = *httpAddr
-	}
-	if *dataDir != "" {
-		cfg.DataDir = *dataDir
-	}
-	if *level != "" {
-		cfg.Log.Level = *level
-	}
-	if err := cfg.Validate(); err != nil {
-		return fmt.Errorf("configuration after flags: %w", err)
-	}
-	return serve(ctx, cfg, deps{Log: newLogger(cfg.Log, stderr)})
+	log := newLogger(cfg.Log, stderr)
+
+	// SIGHUP reloads the file; a broken file is refused and logged, and
+	// the daemon goes on with what it has.
+	hup := make(chan os.Signal, 1)
+	signal.Notify(hup, syscall.SIGHUP)
+	defer signal.Stop(hup)
+	reload := make(chan Config, 1)
+	go func() {
+		for {
+			select {
+			case <-ctx.Done():
+				return
+			case <-hup:
+			}
+			next, err := load()
+			if err != nil {
+				log.Error("reload refused; keeping the running configuration", "err", err)
+				continue
+			}
+			select {
+			case reload <- next:
+			case <-ctx.Done():
+				return
+			}
+		}
+	}()
+	return serve(ctx, cfg, deps{Log: log, Reload: reload})
 }
 
 func newLogger(c LogConfig, w io.Writer) *slog.Logger {

@@ -10,6 +10,7 @@ import (
 	"net/http"
 	"os"
 	"path/filepath"
+	"runtime/debug"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -33,6 +34,10 @@ type deps struct {
 	Registry *prometheus.Registry
 	// Ready, when set, receives the bus URL and HTTP address once both are up.
 	Ready func(busURL, httpAddr string)
+	// Reload delivers a new, validated configuration (on SIGHUP).
+	// Calibration, zones, detection settings and schedules take effect
+	// between frames; anything else needs a restart and is logged.
+	Reload <-chan Config
 }
 
 // serve runs the daemon until ctx ends or every camera source has ended.
@@ -77,11 +82,36 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 		reg = prometheus.NewRegistry()
 	}
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
-	met := newMetrics(reg)
+	version := buildVersion()
+	met := newMetrics(reg, version)
+	log.Info("stillwater starting", "version", version, "cameras", len(cfg.Cameras))
+
+	arm, err := newArmBoard(cfg)
+	if err != nil {
+		return err
+	}
+	bs := &busSink{pub: pub, nc: nc, prefix: cfg.Bus.Prefix, met: met}
+	watches := make([]*cameraWatch, len(cfg.Cameras))
+	for i, cam := range cfg.Cameras {
+		id := cam.ID
+		armed := func(t time.Time) bool { return arm.armed(id, t) }
+		watches[i] = newCameraWatch(cam, bs, armed, now, log, met.camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version)
+	}
 
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
 	mux.HandleFunc("/healthz", func(w http.ResponseWriter, _ *http.Request) { fmt.Fprintln(w, "ok") })
+	mux.HandleFunc("/readyz", func(w http.ResponseWriter, _ *http.Request) {
+		problems := readiness(now(), watches, nc.IsConnected())
+		if len(problems) > 0 {
+			w.WriteHeader(http.StatusServiceUnavailable)
+			for _, p := range problems {
+				fmt.Fprintln(w, p)
+			}
+			return
+		}
+		fmt.Fprintln(w, "ready")
+	})
 	ln, err := net.Listen("tcp", cfg.HTTP.Listen)
 	if err != nil {
 		return fmt.Errorf("http.listen %s: %w", cfg.HTTP.Listen, err)
@@ -107,19 +137,28 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	}()
 
 	g, gctx := errgroup.WithContext(ctx)
-	bs := &busSink{pub: pub, met: met}
-	for _, cam := range cfg.Cameras {
-		cam := cam
+	camsDone := make(chan struct{})
+	go func() {
+		for {
+			select {
+			case <-camsDone:
+				return
+			case nc := <-d.Reload:
+				applyReload(log, cfg, nc, watches, arm)
+			}
+		}
+	}()
+	for _, w := range watches {
 		// One goroutine per camera; a failing camera logs and ends alone.
 		g.Go(func() error {
-			err := watchCamera(gctx, cam, bs, func() bool { return true }, now, log, met.camera(cam.ID))
-			if err != nil {
-				log.Error("camera stopped", "camera", cam.ID, "err", err)
+			if err := w.run(gctx); err != nil {
+				log.Error("camera stopped", "camera", w.cam.ID, "err", err)
 			}
 			return nil
 		})
 	}
 	g.Wait()
+	close(camsDone)
 
 	fctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
 	defer cancel()
@@ -130,18 +169,111 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	return <-httpDone
 }
 
-// busSink publishes to the bus and counts.
+// applyReload hands each running camera its new settings and swaps the
+// schedules. Cameras added, removed or pointed at another source need a
+// restart; that is logged, not done.
+func applyReload(log *slog.Logger, old, next Config, watches []*cameraWatch, arm *armBoard) {
+	sch, err := next.schedules()
+	if err != nil {
+		log.Error("reload refused", "err", err)
+		return
+	}
+	byID := map[string]CameraConfig{}
+	for _, c := range next.Cameras {
+		byID[c.ID] = c
+	}
+	for _, w := range watches {
+		c, ok := byID[w.cam.ID]
+		switch {
+		case !ok:
+			log.Warn("reload: camera removed from the config; it keeps running until restart", "camera", w.cam.ID)
+			continue
+		case c.Source != w.cam.Source || c.Transport != w.cam.Transport:
+			log.Warn("reload: camera source changed; restart to use it", "camera", w.cam.ID)
+			continue
+		}
+		delete(byID, c.ID)
+		select {
+		case <-w.reload: // an older reload not yet taken: replace it
+		default:
+		}
+		w.reload <- c
+	}
+	for id := range byID {
+		log.Warn("reload: new camera in the config; restart to start it", "camera", id)
+	}
+	arm.setSchedules(sch)
+	log.Info("configuration reloaded", "cameras", len(watches))
+}
+
+// readiness lists why the daemon is not ready: an armed camera without
+// frames, or the bus unreachable. Empty means ready.
+func readiness(now time.Time, watches []*cameraWatch, busUp bool) []string {
+	var out []string
+	if !busUp {
+		out = append(out, "bus: not connected")
+	}
+	for _, w := range watches {
+		if err := w.ready(now); err != nil {
+			out = append(out, err.Error())
+		}
+	}
+	return out
+}
+
+// buildVersion is the module version, or the VCS revision of a
+// development build.
+func buildVersion() string {
+	bi, ok := debug.ReadBuildInfo()
+	if !ok {
+		return "unknown"
+	}
+	if v := bi.Main.Version; v != "" && v != "(devel)" {
+		return v
+	}
+	rev, dirty := "", false
+	for _, s := range bi.Settings {
+		switch s.Key {
+		case "vcs.revision":
+			rev = s.Value
+		case "vcs.modified":
+			dirty = s.Value == "true"
+		}
+	}
+	if rev == "" {
+		return "devel"
+	}
+	if len(rev) > 12 {
+		rev = rev[:12]
+	}
+	if dirty {
+		rev += "-dirty"
+	}
+	return "devel-" + rev
+}
+
+// busSink publishes to the bus and counts. Heartbeats go out as plain
+// messages; everything else goes to the stream.
 type busSink struct {
-	pub *alert.Publisher
-	met *metrics
+	pub    *alert.Publisher
+	nc     *nats.Conn
+	prefix string
+	met    *metrics
 }
 
 func (b *busSink) send(ctx context.Context, m outMsg) error {
-	pctx, cancel := context.WithTimeout(ctx, 5*time.Second)
-	defer cancel()
-	if err := b.pub.Publish(pctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
-		return err
+	t0 := time.Now()
+	if m.Kind == alert.KindBeat {
+		if err := b.nc.Publish(alert.Subject(b.prefix, m.Camera, m.Kind), m.Data); err != nil {
+			return err
+		}
+	} else {
+		pctx, cancel := context.WithTimeout(ctx, 5*time.Second)
+		defer cancel()
+		if err := b.pub.Publish(pctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
+			return err
+		}
 	}
-	b.met.camera(m.Camera).published(m.Kind)
+	b.met.camera(m.Camera).published(m.Kind, time.Since(t0))
 	return nil
 }
