@@ -1,0 +1,86 @@
+package main
+
+import (
+	"context"
+	"path/filepath"
+	"runtime"
+	"testing"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"stillwater/vision"
+	"stillwater/vision/synth"
+)
+
+// TestDaemonLeavesNothingBehind runs the whole daemon (embedded bus, HTTP,
+// one camera looping a short clip) for 10 000 frames, stops it as SIGINT
+// would, and checks that every goroutine has ended and, with -tags
+// matprofile (the README's test command), that every Mat is closed.
+func TestDaemonLeavesNothingBehind(t *testing.T) {
+	if testing.Short() {
+		t.Skip("processes 10 000 frames")
+	}
+	const frames = 10000
+	dir := t.TempDir()
+	s, ok := scenarioByName("child", 3)
+	require.True(t, ok)
+	s.Width, s.Height, s.Duration = 320, 240, 10
+	clip := filepath.Join(dir, "loop.avi")
+	truth, err := synth.Render(context.Background(), s, clip, filepath.Join(dir, "loop.json"))
+	require.NoError(t, err)
+	cfg := demoConfig(truth, clip, dir, false)
+	cfg.Cameras[0].Loop = true
+	cfg.Cameras[0].Detect.ProcessWidth = 160
+	require.NoError(t, cfg.Validate())
+
+	runtime.GC()
+	goBase := runtime.NumGoroutine()
+	matBase, counting := vision.OpenMats()
+
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	reg := prometheus.NewRegistry()
+	done := make(chan error, 1)
+	start := time.Now()
+	go func() { done <- serve(ctx, cfg, deps{Registry: reg}) }()
+	read := func() float64 {
+		mfs, err := reg.Gather()
+		if err != nil {
+			return 0
+		}
+		for _, mf := range mfs {
+			if mf.GetName() == "stillwater_frames_read_total" {
+				return mf.GetMetric()[0].GetCounter().GetValue()
+			}
+		}
+		return 0
+	}
+	require.Eventually(t, func() bool { return read() >= frames }, 5*time.Minute, 100*time.Millisecond)
+	n := read()
+	cancel()
+	select {
+	case err := <-done:
+		require.NoError(t, err)
+	case <-time.After(30 * time.Second):
+		t.Fatal("daemon did not stop within 30 s of cancel")
+	}
+	t.Logf("%0.f frames in %.1f s", n, time.Since(start).Seconds())
+	// Polled here, not with assert.Eventually, whose own goroutines would count.
+	left := runtime.NumGoroutine()
+	for deadline := time.Now().Add(10 * time.Second); left > goBase && time.Now().Before(deadline); left = runtime.NumGoroutine() {
+		time.Sleep(50 * time.Millisecond)
+	}
+	if !assert.LessOrEqual(t, left, goBase, "goroutines before and after") {
+		buf := make([]byte, 1<<20)
+		t.Logf("goroutines left:\n%s", buf[:runtime.Stack(buf, true)])
+	}
+	if counting {
+		m, _ := vision.OpenMats()
+		assert.Equal(t, matBase, m, "gocv Mats open before and after")
+	} else {
+		t.Log("Mats not counted: build with -tags matprofile")
+	}
+}
