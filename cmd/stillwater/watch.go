@@ -151,9 +151,12 @@ func (w *cameraWatch) send(ctx context.Context, m outMsg) {
 }
 
 // capture opens the source, runs the pipeline over its frames and opens it
-// again after a failure, with exponential backoff and jitter.
+// again after a failure, with exponential backoff and jitter. The backoff
+// stops growing at 2 s: a pool camera that comes back must be watched
+// again within seconds, and one attempt every 2 s costs a home network
+// nothing.
 func (w *cameraWatch) capture(ctx context.Context) error {
-	bo := backoff{min: 250 * time.Millisecond, max: 15 * time.Second}
+	bo := backoff{min: 100 * time.Millisecond, max: 2 * time.Second}
 	var proc *processor
 	var offset, lastMedia time.Duration
 	for ctx.Err() == nil {
