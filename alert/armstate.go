@@ -79,34 +79,39 @@ func (a *ArmState) SaveOverride(path string) error {
 	if err != nil {
 		return fmt.Errorf("save override %s: %w", path, err)
 	}
+	if err := writeFileAtomic(path, append(data, '\n')); err != nil {
+		return fmt.Errorf("save override %s: %w", path, err)
+	}
+	return nil
+}
+
+// writeFileAtomic writes a temporary file in the same directory and
+// renames it over path, so that a crash leaves either the old or the new
+// content, never a torn file; then it syncs the directory so the rename
+// itself survives a power cut.
+func writeFileAtomic(path string, data []byte) error {
 	dir := filepath.Dir(path)
 	tmp, err := os.CreateTemp(dir, "."+filepath.Base(path)+".*.tmp")
 	if err != nil {
-		return fmt.Errorf("save override %s: %w", path, err)
+		return err
 	}
 	defer os.Remove(tmp.Name()) // no-op after a successful rename
-	if _, err := tmp.Write(append(data, '\n')); err != nil {
+	if _, err := tmp.Write(data); err != nil {
 		tmp.Close()
-		return fmt.Errorf("save override %s: write temp file: %w", path, err)
+		return fmt.Errorf("write temp file: %w", err)
 	}
 	if err := tmp.Sync(); err != nil {
 		tmp.Close()
-		return fmt.Errorf("save override %s: sync temp file: %w", path, err)
+		return fmt.Errorf("sync temp file: %w", err)
 	}
 	if err := tmp.Close(); err != nil {
-		return fmt.Errorf("save override %s: close temp file: %w", path, err)
+		return fmt.Errorf("close temp file: %w", err)
 	}
 	if err := os.Rename(tmp.Name(), path); err != nil {
-		return fmt.Errorf("save override %s: %w", path, err)
+		return err
 	}
-	// Sync the directory so the rename itself survives a power cut.
-	d, err := os.Open(dir)
-	if err != nil {
-		return fmt.Errorf("save override %s: open directory: %w", path, err)
-	}
-	defer d.Close()
-	if err := d.Sync(); err != nil {
-		return fmt.Errorf("save override %s: sync directory: %w", path, err)
+	if err := syncDir(dir); err != nil {
+		return fmt.Errorf("sync directory: %w", err)
 	}
 	return nil
 }

@@ -1,17 +1,52 @@
 package alert
 
 import (
-	"context"
 	"errors"
 	"fmt"
 	"net"
+	"net/url"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/nats-io/nats-server/v2/server"
-	"github.com/nats-io/nats.go"
-	"github.com/nats-io/nats.go/jetstream"
 )
+
+// Roles of the embedded server's users. Each maps to NATS publish and
+// subscribe permissions under the subject prefix (see rolePermissions).
+const (
+	// RoleDaemon may publish PREFIX.> and use JetStream: the stillwater
+	// daemon itself, which also answers PREFIX.control.>.
+	RoleDaemon = "daemon"
+	// RoleResponder may subscribe PREFIX.> (but not the control requests)
+	// and request PREFIX.control.status.
+	RoleResponder = "responder"
+	// RoleOperator is a responder that may also request arm, disarm and
+	// clear.
+	RoleOperator = "operator"
+)
+
+// BusUser is one user of the embedded server. Password may be plain or a
+// bcrypt hash ("$2a$..."), which nats-server accepts as such.
+type BusUser struct {
+	Name     string
+	Password string
+	Role     string // RoleDaemon, RoleResponder or RoleOperator
+}
+
+// LeafRemote is a server the embedded one connects to as a leaf node, so
+// that messages published at home also reach a central cluster (and its
+// subscribers' interest reaches home).
+type LeafRemote struct {
+	// URLs of the central cluster's leaf-node listeners, nats-leaf://host:7422
+	// or tls://host:7422; user:password@ in the URL is accepted.
+	URLs []string
+	// CredsFile is a JWT credentials file for the remote account.
+	CredsFile string
+	// CAFile, CertFile and KeyFile configure TLS to the remote; CertFile
+	// and KeyFile go together.
+	CAFile, CertFile, KeyFile string
+}
 
 // EmbeddedConfig sets up the in-process NATS server.
 type EmbeddedConfig struct {
@@ -22,8 +57,21 @@ type EmbeddedConfig struct {
 	StoreDir string
 	// Name is the server name (JetStream and MQTT need one).
 	Name string
-	// MQTT is host:port for the MQTT listener; empty leaves it off.
+	// MQTT is host:port for the MQTT listener; empty leaves it off. The
+	// host defaults to 127.0.0.1 so MQTT stays local unless asked.
 	MQTT string
+	// Prefix is the subject prefix the user roles are written against;
+	// required when Users is not empty.
+	Prefix string
+	// Users, when not empty, turn on authentication: every client (MQTT
+	// too) must log in as one of them.
+	Users []BusUser
+	// Leaf lists remote servers to join as a leaf node.
+	Leaf []LeafRemote
+	// Domain is the JetStream domain of this server; it defaults to
+	// "stillwater" when Leaf is set, so that the local stream and the
+	// central cluster's JetStream do not merge.
+	Domain string
 }
 
 // Embedded is a running in-process NATS server.
@@ -34,6 +82,32 @@ type Embedded struct {
 // StartEmbedded starts a NATS server with JetStream in this process and
 // waits until it accepts clients.
 func StartEmbedded(cfg EmbeddedConfig) (*Embedded, error) {
+	opts, err := embeddedOptions(cfg)
+	if err != nil {
+		return nil, err
+	}
+	srv, err := startServer(opts)
+	if err != nil {
+		return nil, fmt.Errorf("embedded bus: %w", err)
+	}
+	return &Embedded{srv: srv}, nil
+}
+
+func startServer(opts *server.Options) (*server.Server, error) {
+	srv, err := server.NewServer(opts)
+	if err != nil {
+		return nil, err
+	}
+	srv.Start()
+	if !srv.ReadyForConnections(10 * time.Second) {
+		srv.Shutdown()
+		return nil, errors.New("not ready within 10 s")
+	}
+	return srv, nil
+}
+
+// embeddedOptions turns cfg into nats-server options.
+func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 	host, port, err := splitListen(cfg.Listen, 4222)
 	if err != nil {
 		return nil, fmt.Errorf("embedded bus listen %q: %w", cfg.Listen, err)
@@ -58,16 +132,106 @@ func StartEmbedded(cfg EmbeddedConfig) (*Embedded, error) {
 		}
 		opts.MQTT.Host, opts.MQTT.Port = mh, mp
 	}
-	srv, err := server.NewServer(opts)
+	if len(cfg.Users) > 0 {
+		if err := ValidToken(cfg.Prefix); err != nil {
+			return nil, fmt.Errorf("embedded bus users: prefix: %v", err)
+		}
+		seen := map[string]bool{}
+		for i, u := range cfg.Users {
+			if u.Name == "" || u.Password == "" {
+				return nil, fmt.Errorf("embedded bus users[%d]: name and password are both required", i)
+			}
+			if seen[u.Name] {
+				return nil, fmt.Errorf("embedded bus users[%d]: name %q used twice", i, u.Name)
+			}
+			seen[u.Name] = true
+			perms, err := rolePermissions(cfg.Prefix, u.Role)
+			if err != nil {
+				return nil, fmt.Errorf("embedded bus users[%d] (%s): %w", i, u.Name, err)
+			}
+			opts.Users = append(opts.Users, &server.User{Username: u.Name, Password: u.Password, Permissions: perms})
+		}
+	}
+	for i, l := range cfg.Leaf {
+		r, err := leafRemote(l)
+		if err != nil {
+			return nil, fmt.Errorf("embedded bus leaf[%d]: %w", i, err)
+		}
+		opts.LeafNode.Remotes = append(opts.LeafNode.Remotes, r)
+	}
+	opts.JetStreamDomain = cfg.Domain
+	if len(cfg.Leaf) > 0 && opts.JetStreamDomain == "" {
+		opts.JetStreamDomain = "stillwater"
+	}
+	return opts, nil
+}
+
+// rolePermissions returns the NATS permissions of a role. Everyone may
+// subscribe to _INBOX.> because request replies and JetStream acks arrive
+// there. Control requests are hidden from responders and operators: they
+// may carry the control token.
+func rolePermissions(prefix, role string) (*server.Permissions, error) {
+	ctl := prefix + ".control."
+	inbox := "_INBOX.>"
+	switch role {
+	case RoleDaemon:
+		return &server.Permissions{
+			Publish:   &server.SubjectPermission{Allow: []string{prefix + ".>", "$JS.API.>", inbox}},
+			Subscribe: &server.SubjectPermission{Allow: []string{ctl + ">", inbox}},
+		}, nil
+	case RoleResponder, RoleOperator:
+		pub := []string{ctl + ActionStatus}
+		if role == RoleOperator {
+			pub = append(pub, ctl+ActionArm, ctl+ActionDisarm, ctl+ActionClear)
+		}
+		return &server.Permissions{
+			Publish:   &server.SubjectPermission{Allow: pub},
+			Subscribe: &server.SubjectPermission{Allow: []string{prefix + ".>", inbox}, Deny: []string{ctl + ">"}},
+		}, nil
+	}
+	return nil, fmt.Errorf("role %q: want %s, %s or %s", role, RoleDaemon, RoleResponder, RoleOperator)
+}
+
+func leafRemote(l LeafRemote) (*server.RemoteLeafOpts, error) {
+	if len(l.URLs) == 0 {
+		return nil, errors.New("no urls; give the central cluster's leaf-node URLs, e.g. nats-leaf://hub.example:7422")
+	}
+	r := &server.RemoteLeafOpts{Credentials: l.CredsFile}
+	for _, s := range l.URLs {
+		u, err := url.Parse(s)
+		if err != nil || u.Host == "" {
+			return nil, fmt.Errorf("url %q: not a URL like nats-leaf://host:7422", redactURL(s))
+		}
+		r.URLs = append(r.URLs, u)
+		if u.Scheme == "tls" {
+			r.TLS = true
+		}
+	}
+	if l.CredsFile != "" {
+		if err := readable(l.CredsFile); err != nil {
+			return nil, fmt.Errorf("creds file: %w", err)
+		}
+	}
+	tc, err := clientTLS(BusAuth{CAFile: l.CAFile, CertFile: l.CertFile, KeyFile: l.KeyFile})
 	if err != nil {
-		return nil, fmt.Errorf("embedded bus: %w", err)
+		return nil, err
 	}
-	srv.Start()
-	if !srv.ReadyForConnections(10 * time.Second) {
-		srv.Shutdown()
-		return nil, errors.New("embedded bus: not ready within 10 s")
+	if tc != nil {
+		r.TLS, r.TLSConfig = true, tc
 	}
-	return &Embedded{srv: srv}, nil
+	return r, nil
+}
+
+// redactURL hides the password of a URL for messages and logs.
+func redactURL(s string) string {
+	u, err := url.Parse(s)
+	if err != nil || u.User == nil {
+		if i := strings.LastIndex(s, "@"); i >= 0 {
+			return "…" + s[i:]
+		}
+		return s
+	}
+	return u.Redacted()
 }
 
 // URL returns the client URL of the server.
@@ -96,68 +260,3 @@ func splitListen(s string, def int) (string, int, error) {
 	}
 	return h, n, nil
 }
-
-// StreamConfig describes the JetStream stream that keeps alarm messages.
-type StreamConfig struct {
-	Name     string        // default STILLWATER
-	MaxAge   time.Duration // default 30 days
-	MaxBytes int64         // default 256 MiB
-}
-
-// Publisher sends messages to subjects under a prefix. Targets, cleared
-// and faults go through JetStream with a de-duplication id and wait for
-// the acknowledgement; others are plain publishes.
-type Publisher struct {
-	nc     *nats.Conn
-	js     jetstream.JetStream
-	prefix string
-}
-
-// NewPublisher makes sure the stream exists and returns a publisher on nc.
-func NewPublisher(ctx context.Context, nc *nats.Conn, prefix string, sc StreamConfig) (*Publisher, error) {
-	js, err := jetstream.New(nc)
-	if err != nil {
-		return nil, fmt.Errorf("publisher: %w", err)
-	}
-	if sc.Name == "" {
-		sc.Name = "STILLWATER"
-	}
-	if sc.MaxAge == 0 {
-		sc.MaxAge = 30 * 24 * time.Hour
-	}
-	if sc.MaxBytes == 0 {
-		sc.MaxBytes = 256 << 20
-	}
-	_, err = js.CreateOrUpdateStream(ctx, jetstream.StreamConfig{
-		Name:       sc.Name,
-		Subjects:   []string{prefix + ".*." + KindTarget, prefix + ".*." + KindCleared, prefix + ".*." + KindFault},
-		Storage:    jetstream.FileStorage,
-		MaxAge:     sc.MaxAge,
-		MaxBytes:   sc.MaxBytes,
-		Duplicates: 2 * time.Minute,
-	})
-	if err != nil {
-		return nil, fmt.Errorf("publisher: create stream %s: %w", sc.Name, err)
-	}
-	return &Publisher{nc: nc, js: js, prefix: prefix}, nil
-}
-
-// Publish sends data for camera and kind; id de-duplicates retries.
-func (p *Publisher) Publish(ctx context.Context, camera, kind, id string, data []byte) error {
-	subj := Subject(p.prefix, camera, kind)
-	switch kind {
-	case KindTarget, KindCleared, KindFault:
-		if _, err := p.js.Publish(ctx, subj, data, jetstream.WithMsgID(id)); err != nil {
-			return fmt.Errorf("publish %s: %w", subj, err)
-		}
-		return nil
-	default:
-		if err := p.nc.Publish(subj, data); err != nil {
-			return fmt.Errorf("publish %s: %w", subj, err)
-		}
-		return nil
-	}
-}
-
-// Flush waits until the server has processed everything sent so far.
-func (p *Publisher) Flush(ctx context.Context) error { return p.nc.FlushWithContext(ctx) }

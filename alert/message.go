@@ -1,6 +1,7 @@
 // Package alert decides when a tracked object is an alarm, and carries the
-// result to the message bus: wire messages, subjects, the embedded server
-// and publishing. Positions are pool metres (origin at corner A, x along
+// result to the message bus: wire messages, subjects, the embedded server,
+// publishing with an on-disk outbox, per-camera arming and the control
+// API that changes it. Positions are pool metres (origin at corner A, x along
 // the length, y along the width); times are UTC.
 package alert
 

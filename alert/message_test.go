@@ -30,16 +30,15 @@ func exampleMessages() map[string]any {
 		KindCleared: Cleared{V: Version, Kind: KindCleared, Camera: "north", Track: 7, Seq: 43,
 			Time: t0.Add(5 * time.Second), FrameTime: t0.Add(4900 * time.Millisecond), Frame: 1284,
 			Last: Position{X: 4, Y: 2.5}, Duration: 4.5},
-		KindFault: Fault{V: Version, Kind: KindFault, Camera: "north", Seq: 44, Time: t0,
-			Fault: FaultCameraFrozen, Message: "the same frame for 5 s", Active: true},
-		KindArmed: ArmedChange{V: Version, Kind: KindArmed, Time: t0, Armed: false,
-			Reason: "disarmed by override until 2026-06-10T18:30:00Z", Until: &until},
+		KindFault: NewDriftFault("north", 44, t0, true, 0.35),
+		KindArmed: ArmedChange{V: Version, Kind: KindArmed, Camera: "north", Time: t0, Armed: false,
+			Reason: "disarmed by override until 2026-06-10T18:30:00Z", Until: &until, By: "http:alice"},
 		KindBeat: Heartbeat{V: Version, Kind: KindBeat, Camera: "north", Time: t0, FPS: 9.8,
 			CameraOK: true, Armed: true, Version: "0.3.0"},
 	}
 }
 
-func goldenPath(kind string) string { return filepath.Join("..", "testdata", "golden", kind+".json") }
+func goldenPath(kind string) string { return filepath.Join("testdata", "golden", kind+".json") }
 
 func TestGoldenMessages(t *testing.T) {
 	for kind, m := range exampleMessages() {
@@ -121,7 +120,7 @@ func TestSchemaRejectsWrongTypes(t *testing.T) {
 	cases := map[string]map[string]any{
 		KindTarget:  {"confidence": 1.5, "event": "stop", "surface": map[string]any{"x_m": "1"}},
 		KindCleared: {"duration_s": -1, "seq": -3},
-		KindFault:   {"fault": "camera_sad", "active": "yes"},
+		KindFault:   {"fault": "camera_sad", "active": "yes", "shift_m": -0.1, "message": ""},
 		KindArmed:   {"armed": 1, "until": "soon"},
 		KindBeat:    {"fps": "ten", "camera_ok": nil, "camera": "a.b"},
 	}
@@ -154,4 +153,49 @@ func sortedKeys[V any](m map[string]V) []string {
 	}
 	sort.Strings(keys)
 	return keys
+}
+
+// validateMessage checks one produced message against the schema of its
+// kind; tests of code that makes messages call it.
+func validateMessage(t *testing.T, kind string, m any) {
+	t.Helper()
+	b, err := Encode(m)
+	require.NoError(t, err)
+	assert.NoError(t, compileSchema(t, kind).Validate(decodeAny(t, b)), "%s", b)
+}
+
+func TestProducedFaultsMatchSchema(t *testing.T) {
+	at := time.Date(2026, 12, 2, 1, 0, 0, 0, time.FixedZone("CET", 3600))
+	for _, kind := range FaultKinds() {
+		for _, active := range []bool{true, false} {
+			f := NewFault("north", 3, at, kind, active, "")
+			assert.NotEmpty(t, f.Message)
+			assert.Equal(t, time.UTC, f.Time.Location())
+			validateMessage(t, KindFault, f)
+		}
+	}
+	validateMessage(t, KindFault, NewDriftFault("north", 4, at, true, 0.2))
+
+	// A shift belongs to calibration_drift only.
+	s := compileSchema(t, KindFault)
+	bad := NewFault("north", 5, at, FaultCameraLost, true, "")
+	shift := 0.3
+	bad.Shift = &shift
+	b, err := Encode(bad)
+	require.NoError(t, err)
+	assert.Error(t, s.Validate(decodeAny(t, b)))
+}
+
+func TestFaultKindsMatchSchemaEnum(t *testing.T) {
+	raw, err := Schema(KindFault)
+	require.NoError(t, err)
+	var sch struct {
+		Properties struct {
+			Fault struct {
+				Enum []string `json:"enum"`
+			} `json:"fault"`
+		} `json:"properties"`
+	}
+	require.NoError(t, json.Unmarshal(raw, &sch))
+	assert.Equal(t, FaultKinds(), sch.Properties.Fault.Enum)
 }

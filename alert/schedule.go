@@ -269,6 +269,7 @@ func wallInstant(wall time.Time, loc *time.Location) time.Time {
 type Override struct {
 	Armed bool      `json:"armed"`
 	Until time.Time `json:"until"`
+	By    string    `json:"by,omitempty"` // who set it, for reasons and status
 }
 
 // Active reports whether the override still applies at now.

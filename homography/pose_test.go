@@ -67,13 +67,13 @@ func TestEstimatePoseSyntheticCamera(t *testing.T) {
 		useFOVAPI bool
 	}{
 		{
-			name:    "brief's camera, z-up pool frame",
+			name:    "end camera 5 m up, z-up pool frame",
 			cam:     pinhole{c: [3]float64{-2, 2, 5}, yaw: 0, pitch: 50 * deg, k: fov},
 			toWorld: zUp, wantX: -2, wantY: 2, wantH: 5, useFOVAPI: true,
 		},
 		{
 			// Pool y runs along world -y, so pool x × y points down.
-			name:    "brief's camera, mirrored pool frame",
+			name:    "end camera 5 m up, mirrored pool frame",
 			cam:     pinhole{c: [3]float64{-2, -2, 5}, yaw: 0, pitch: 50 * deg, k: fov},
 			toWorld: mirrored, wantX: -2, wantY: 2, wantH: 5, wantMirr: true, useFOVAPI: true,
 		},
@@ -106,7 +106,7 @@ func TestEstimatePoseSyntheticCamera(t *testing.T) {
 				p, err = EstimatePose(h, tt.cam.k)
 			}
 			require.NoError(t, err)
-			// The brief's acceptance bound: height within 1 %.
+			// Exact corners leave only rounding: height within 1 %.
 			assert.InDelta(t, tt.wantH, p.Height, 0.01*tt.wantH, "height")
 			assert.InDelta(t, tt.wantX, p.X, 0.02*tt.wantH, "x")
 			assert.InDelta(t, tt.wantY, p.Y, 0.02*tt.wantH, "y")

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"image"
 	"io"
+	"math"
 	"net/url"
 	"os"
 	"strings"
@@ -16,36 +17,117 @@ import (
 
 // SourceConfig says where frames come from.
 type SourceConfig struct {
-	// URI is a file path or an rtsp://, http:// URL.
+	// URI is one of: an rtsp:// URL, an http:// or https:// MJPEG URL, a
+	// V4L2 device path (/dev/video0, /dev/v4l/by-id/...), or a video file
+	// path.
 	URI string
 	// Transport is "tcp" or "udp" for RTSP; empty lets OpenCV choose.
 	Transport string
-	// OpenTimeout and ReadTimeout bound the backend's blocking calls; zero
-	// keeps OpenCV's default (30 s).
+	// OpenTimeout and ReadTimeout bound the FFmpeg backend's blocking calls
+	// (RTSP, HTTP, files); zero keeps OpenCV's default (30 s). V4L2 devices
+	// use the driver's own wait instead.
 	OpenTimeout, ReadTimeout time.Duration
+	// Loop plays a file source again from the start at its end instead of
+	// returning io.EOF; media time keeps increasing across passes.
+	Loop bool
 }
 
 // Result is what one frame yielded.
 type Result struct {
-	Index int           // frame number from 0
-	Media time.Duration // media time of the frame from the first one
-	Size  image.Point   // source frame size, px
-	Blobs []Blob
-	Stats FrameStats
+	Index  int           // frame number from 0, counted across loops and reconnects
+	Media  time.Duration // media time of the frame from the first one
+	Size   image.Point   // source frame size, px
+	Blobs  []Blob
+	Stats  FrameStats
+	Health HealthStats // image statistics for the camera health monitor
+}
+
+// CaptureStats counts what happened at the capture since OpenCamera.
+type CaptureStats struct {
+	// FramesRead is the number of frames decoded, the first one read by
+	// OpenCamera or Reconnect included.
+	FramesRead int64
+	// EmptyReads is the number of reads of a live source that gave no frame
+	// (a timeout, a dropped stream).
+	EmptyReads int64
+	// DecodeErrors is the number of reads of a file that failed before the
+	// frame count the file declares (damaged or truncated media).
+	DecodeErrors int64
+	// Loops is the number of times a looped file started again.
+	Loops int64
+	// Reconnects is the number of successful Reconnect calls.
+	Reconnects int64
+}
+
+// ReconnectInfo says what Reconnect found.
+type ReconnectInfo struct {
+	// Size is the frame size after reconnecting, px.
+	Size image.Point
+	// Rebuilt is true when the frame size changed: the detector was rebuilt
+	// with its mask polygons scaled to the new size, and the background
+	// model starts from scratch. Pixel calibrations made at OldSize no longer
+	// apply.
+	Rebuilt bool
+	// OldSize is the frame size before reconnecting, px.
+	OldSize image.Point
+}
+
+// Errors Next and Reconnect return; callers branch on them with errors.Is.
+var (
+	// ErrNoFrame means a live source gave no frame within the read timeout.
+	ErrNoFrame = errors.New("camera gave no frame")
+	// ErrDamagedMedia means a file stopped decoding before its declared end.
+	ErrDamagedMedia = errors.New("damaged media")
+	// ErrDisconnected means the capture is closed after a failed Reconnect;
+	// call Reconnect again.
+	ErrDisconnected = errors.New("camera disconnected")
+)
+
+type sourceKind int
+
+const (
+	kindFile sourceKind = iota
+	kindRTSP
+	kindHTTP
+	kindV4L2
+)
+
+func kindOf(uri string) sourceKind {
+	switch {
+	case strings.HasPrefix(uri, "rtsp://"), strings.HasPrefix(uri, "rtsps://"):
+		return kindRTSP
+	case strings.HasPrefix(uri, "http://"), strings.HasPrefix(uri, "https://"):
+		return kindHTTP
+	case strings.HasPrefix(uri, "/dev/video"), strings.HasPrefix(uri, "/dev/v4l/"):
+		return kindV4L2
+	default:
+		return kindFile
+	}
 }
 
 // Camera reads frames from a source and runs a Detector over them. It owns
 // the capture and every Mat; Close frees them. Not safe for concurrent use.
 type Camera struct {
-	cap     *capture
-	det     *Detector
-	frame   gocv.Mat
-	primed  bool // frame holds an unprocessed first frame
-	fps     float64
-	index   int
-	isFile  bool
-	started time.Time
-	closed  bool
+	sc       SourceConfig
+	dc       DetectorConfig
+	kind     sourceKind
+	cap      *capture
+	det      *Detector
+	frame    gocv.Mat // latest full-resolution BGR frame
+	scratch  gocv.Mat // read target; swapped with frame on success, so a failed read keeps the last frame
+	primed   bool     // frame holds an unprocessed first frame
+	fps      float64
+	declared int // frames the file declares, 0 when unknown
+	index    int
+	passBase int // index of the first frame of the current file pass
+	// passOffset is the media time a looped file's current pass starts at.
+	passOffset time.Duration
+	started    time.Time
+	media      time.Duration // media time of the latest frame
+	stats      CaptureStats
+	health     healthProbe
+	ev         *evidence
+	closed     bool
 }
 
 // envMu serialises changes to OpenCV's FFmpeg options variable, which the
@@ -64,46 +146,23 @@ func Redact(uri string) string {
 	return u.String()
 }
 
+// maxDecodeRetries is how many failed reads in a row a file may give before
+// its declared end until Next reports it as damaged.
+const maxDecodeRetries = 3
+
 // OpenCamera opens the source, reads its first frame to learn the frame
 // size and sets up the detector for it.
 func OpenCamera(sc SourceConfig, dc DetectorConfig) (*Camera, error) {
 	red := Redact(sc.URI)
-	isFile := !strings.Contains(sc.URI, "://")
-	if isFile {
-		if _, err := os.Stat(sc.URI); err != nil {
-			return nil, fmt.Errorf("open camera %q: %w", red, err)
-		}
+	if sc.Transport != "" && sc.Transport != "tcp" && sc.Transport != "udp" {
+		return nil, fmt.Errorf("open camera %q: transport %q: want tcp, udp or empty", red, sc.Transport)
 	}
-	api := 0
-	envMu.Lock()
-	if strings.HasPrefix(sc.URI, "rtsp://") {
-		api = capFFmpeg
-		opts := ""
-		if sc.Transport != "" {
-			opts = "rtsp_transport;" + sc.Transport
-		}
-		os.Setenv("OPENCV_FFMPEG_CAPTURE_OPTIONS", opts)
-	}
-	c, err := openCapture(sc.URI, api, int(sc.OpenTimeout/time.Millisecond), int(sc.ReadTimeout/time.Millisecond))
-	envMu.Unlock()
-	if err != nil {
-		return nil, fmt.Errorf("open camera %q: %w", red, err)
-	}
-	cam := &Camera{cap: c, frame: gocv.NewMat(), isFile: isFile, started: time.Now()}
-	ok, err := c.read(&cam.frame)
-	if err == nil && (!ok || cam.frame.Empty()) {
-		err = errors.New("no first frame")
-	}
-	if err != nil {
+	cam := &Camera{sc: sc, dc: dc, kind: kindOf(sc.URI), frame: gocv.NewMat(), scratch: gocv.NewMat(), started: time.Now()}
+	if err := cam.open(); err != nil {
 		cam.Close()
 		return nil, fmt.Errorf("open camera %q: %w", red, err)
 	}
-	cam.primed = true
-	cam.fps = c.get(capPropFPS)
-	if cam.fps <= 0 || cam.fps > 240 {
-		cam.fps = 0
-	}
-	det, err := NewDetector(dc, image.Pt(cam.frame.Cols(), cam.frame.Rows()))
+	det, err := NewDetector(dc, cam.frameSize())
 	if err != nil {
 		cam.Close()
 		return nil, fmt.Errorf("open camera %q: %w", red, err)
@@ -112,41 +171,93 @@ func OpenCamera(sc SourceConfig, dc DetectorConfig) (*Camera, error) {
 	return cam, nil
 }
 
+// open opens the capture and reads the first frame into c.frame.
+func (c *Camera) open() error {
+	if c.kind == kindFile || c.kind == kindV4L2 {
+		if _, err := os.Stat(c.sc.URI); err != nil {
+			return err
+		}
+	}
+	api := capFFmpeg
+	openMs, readMs := int(c.sc.OpenTimeout/time.Millisecond), int(c.sc.ReadTimeout/time.Millisecond)
+	if c.kind == kindV4L2 {
+		// The V4L2 backend takes no open-time timeouts; it waits on the
+		// device itself.
+		api, openMs, readMs = capV4L2, 0, 0
+	}
+	envMu.Lock()
+	opts := ""
+	if c.kind == kindRTSP && c.sc.Transport != "" {
+		opts = "rtsp_transport;" + c.sc.Transport
+	}
+	os.Setenv("OPENCV_FFMPEG_CAPTURE_OPTIONS", opts)
+	cp, err := openCapture(c.sc.URI, api, openMs, readMs)
+	envMu.Unlock()
+	if err != nil {
+		return err
+	}
+	ok, err := cp.read(&c.scratch)
+	if err == nil && (!ok || c.scratch.Empty()) {
+		err = errors.New("no first frame")
+	}
+	if err != nil {
+		cp.Close()
+		return err
+	}
+	c.frame, c.scratch = c.scratch, c.frame
+	c.cap = cp
+	c.primed = true
+	c.stats.FramesRead++
+	c.fps = cp.get(capPropFPS)
+	if c.fps <= 0 || c.fps > 240 {
+		c.fps = 0
+	}
+	c.declared = 0
+	if c.kind == kindFile {
+		if n := cp.get(capPropFrameCount); n > 0 && n < 1e9 {
+			c.declared = int(n)
+		}
+	}
+	return nil
+}
+
+func (c *Camera) frameSize() image.Point { return image.Pt(c.frame.Cols(), c.frame.Rows()) }
+
 // FPS returns the source's nominal frame rate, or 0 when it does not say.
 func (c *Camera) FPS() float64 { return c.fps }
 
 // Size returns the source frame size in pixels.
 func (c *Camera) Size() image.Point { return c.det.src }
 
+// Stats returns the capture counters.
+func (c *Camera) Stats() CaptureStats { return c.stats }
+
 // Next reads and processes the next frame. hold are source-pixel boxes
-// whose pixels must not be learned into the background. At the end of a
-// file it returns io.EOF.
+// whose pixels must not be learned into the background. It blocks for at
+// most about ReadTimeout on a live source. At the end of a file that does
+// not loop it returns io.EOF; a file that stops decoding before its
+// declared end gives an error wrapping ErrDamagedMedia; a live source that
+// gives no frame gives one wrapping ErrNoFrame, after which the caller
+// decides when to Reconnect.
 func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 	if c.closed {
 		return Result{}, errCaptureClosed
 	}
-	if c.primed {
-		c.primed = false
-	} else {
-		ok, err := c.cap.read(&c.frame)
-		if err != nil {
-			return Result{}, err
-		}
-		if !ok || c.frame.Empty() {
-			if c.isFile {
-				return Result{}, io.EOF
-			}
-			return Result{}, errors.New("camera gave no frame")
-		}
+	if c.cap == nil {
+		return Result{}, ErrDisconnected
 	}
-	r := Result{Index: c.index, Size: c.det.src}
-	switch {
-	case c.fps > 0 && c.isFile:
-		r.Media = time.Duration(float64(c.index) / c.fps * float64(time.Second))
-	default:
-		r.Media = time.Since(c.started)
+	if err := c.advance(); err != nil {
+		return Result{}, err
 	}
+	r := Result{Index: c.index, Size: c.det.src, Media: c.mediaTime()}
 	c.index++
+	c.media = r.Media
+	r.Health = c.health.measure(c.frame)
+	if c.ev != nil {
+		if err := c.ev.add(c.frame, r.Media); err != nil {
+			return r, fmt.Errorf("frame %d: %w", r.Index, err)
+		}
+	}
 	blobs, st, err := c.det.Detect(c.frame, hold)
 	if err != nil {
 		return r, fmt.Errorf("frame %d: %w", r.Index, err)
@@ -155,15 +266,189 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 	return r, nil
 }
 
-// Close frees the capture, the detector and the frame. Safe to call twice.
+// mediaTime returns the media time of the frame just read. A file's comes
+// from the frame's own timestamp (files with uneven frame spacing exist,
+// such as the opencv-doc tree.avi), offset by the passes already played; a
+// live source's is the wall time since opening.
+func (c *Camera) mediaTime() time.Duration {
+	if c.kind != kindFile {
+		return time.Since(c.started)
+	}
+	ms := c.cap.get(capPropPosMsec)
+	var t time.Duration
+	switch {
+	case ms >= 0 && !math.IsNaN(ms) && !math.IsInf(ms, 0):
+		t = time.Duration(math.Round(ms*1000)) * time.Microsecond
+	case c.fps > 0:
+		t = time.Duration(math.Round(float64(c.index-c.passBase) / c.fps * float64(time.Second)))
+	}
+	t += c.passOffset
+	// Never step back: a stream whose timestamps repeat still moves on.
+	if c.index > 0 && t <= c.media {
+		t = c.media + time.Millisecond
+	}
+	return t
+}
+
+// frameInterval is the nominal time between frames, 100 ms when unknown.
+func (c *Camera) frameInterval() time.Duration {
+	if c.fps > 0 {
+		return time.Duration(math.Round(float64(time.Second) / c.fps))
+	}
+	return 100 * time.Millisecond
+}
+
+// declaredDuration is the length of the file by its header.
+func (c *Camera) declaredDuration() time.Duration {
+	return time.Duration(math.Round(float64(c.declared) / c.fps * float64(time.Second)))
+}
+
+// advance puts the next frame into c.frame.
+func (c *Camera) advance() error {
+	if c.primed {
+		c.primed = false
+		return nil
+	}
+	for tries := 0; ; tries++ {
+		ok, err := c.cap.read(&c.scratch)
+		if err != nil {
+			return err
+		}
+		if ok && !c.scratch.Empty() {
+			c.frame, c.scratch = c.scratch, c.frame
+			c.stats.FramesRead++
+			return nil
+		}
+		if c.kind != kindFile {
+			c.stats.EmptyReads++
+			return ErrNoFrame
+		}
+		// Compare timestamps, not frame counts: a file with sparse frames
+		// (tree.avi declares 444 and holds 68 spread over its 29.6 s) still
+		// ends at its declared duration.
+		played := c.media - c.passOffset
+		if c.index == c.passBase {
+			played = 0
+		}
+		if c.declared > 0 && c.fps > 0 && played+3*c.frameInterval() < c.declaredDuration() {
+			// The file says it has more frames: a damaged packet or a
+			// truncated file. Try a few more reads before giving up.
+			c.stats.DecodeErrors++
+			if tries < maxDecodeRetries {
+				continue
+			}
+			return fmt.Errorf("%w: no frame decodes after %v of the %v the file declares (frame %d of %d)",
+				ErrDamagedMedia, played.Round(time.Millisecond), c.declaredDuration().Round(time.Millisecond), c.index-c.passBase, c.declared)
+		}
+		if !c.sc.Loop {
+			return io.EOF
+		}
+		return c.rewind()
+	}
+}
+
+// rewind reopens a looped file at its first frame.
+func (c *Camera) rewind() error {
+	if c.index == c.passBase {
+		return fmt.Errorf("loop %s: the file gave no frames", c.sc.URI)
+	}
+	c.cap.Close()
+	c.cap = nil
+	if err := c.open(); err != nil {
+		return fmt.Errorf("loop %s: %w", c.sc.URI, err)
+	}
+	if oldSize := c.det.src; c.frameSize() != oldSize {
+		return fmt.Errorf("loop %s: frame size changed from %v to %v", c.sc.URI, oldSize, c.frameSize())
+	}
+	c.primed = false
+	c.passBase = c.index
+	c.passOffset = c.media + c.frameInterval()
+	c.stats.Loops++
+	return nil
+}
+
+// Reconnect closes the capture and opens the source again, keeping the
+// detector and its learned background when the frame size is unchanged so
+// that a camera coming back needs no relearning. When the size changed the
+// detector is rebuilt (see ReconnectInfo) and any clip being recorded is
+// finished. On failure the camera stays disconnected: Next returns
+// ErrDisconnected until a later Reconnect succeeds. Media time and frame
+// numbering continue.
+func (c *Camera) Reconnect() (ReconnectInfo, error) {
+	if c.closed {
+		return ReconnectInfo{}, errCaptureClosed
+	}
+	info := ReconnectInfo{OldSize: c.det.src}
+	if c.cap != nil {
+		c.cap.Close()
+		c.cap = nil
+	}
+	red := Redact(c.sc.URI)
+	if err := c.open(); err != nil {
+		return info, fmt.Errorf("reconnect camera %q: %w", red, err)
+	}
+	info.Size = c.frameSize()
+	c.passBase = c.index
+	c.passOffset = c.media + c.frameInterval()
+	c.health.reset()
+	c.stats.Reconnects++
+	if info.Size == info.OldSize {
+		return info, nil
+	}
+	dc := c.dc
+	dc.Mask = scalePoly(dc.Mask, info.OldSize, info.Size)
+	dc.Exclude = make([][]Point, len(c.dc.Exclude))
+	for i, ex := range c.dc.Exclude {
+		dc.Exclude[i] = scalePoly(ex, info.OldSize, info.Size)
+	}
+	det, err := NewDetector(dc, info.Size)
+	if err != nil {
+		c.cap.Close()
+		c.cap = nil
+		return info, fmt.Errorf("reconnect camera %q: %w", red, err)
+	}
+	c.det.Close()
+	c.det, c.dc = det, dc
+	info.Rebuilt = true
+	if c.ev != nil {
+		if err := c.ev.resize(); err != nil {
+			return info, fmt.Errorf("reconnect camera %q: %w", red, err)
+		}
+	}
+	return info, nil
+}
+
+func scalePoly(pts []Point, from, to image.Point) []Point {
+	if len(pts) == 0 {
+		return nil
+	}
+	sx, sy := float64(to.X)/float64(from.X), float64(to.Y)/float64(from.Y)
+	out := make([]Point, len(pts))
+	for i, p := range pts {
+		out[i] = Point{p.X * sx, p.Y * sy}
+	}
+	return out
+}
+
+// Close finishes any clip being recorded and frees the capture, the
+// detector and the frames. Safe to call twice; the first error is returned.
 func (c *Camera) Close() error {
 	if c.closed {
 		return nil
 	}
 	c.closed = true
+	var err error
+	if c.ev != nil {
+		err = c.ev.Close()
+	}
 	if c.det != nil {
 		c.det.Close()
 	}
+	c.health.Close()
 	c.frame.Close()
-	return c.cap.Close()
+	c.scratch.Close()
+	if c.cap != nil {
+		c.cap.Close()
+	}
+	return err
 }

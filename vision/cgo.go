@@ -74,6 +74,7 @@ const (
 	capPropFrameCount = 7
 	capPropPosMsec    = 0
 	capFFmpeg         = 1900
+	capV4L2           = 200
 )
 
 var errCaptureClosed = errors.New("capture closed")

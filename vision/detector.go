@@ -60,7 +60,28 @@ type DetectorConfig struct {
 	// treated as a scene-wide change (cloud, lights, exposure): the model
 	// relearns fast and no blobs are reported. Zero selects 0.35.
 	SceneChangeFraction float64
+	// WarmUp is the number of first frames that only train the model: a
+	// model that has seen a few frames marks most moving water as
+	// foreground. Zero selects 25 (2.5 s at 10 fps); negative is none.
+	WarmUp int
+	// PixelArea, when set, gives the plane area (the caller's units²;
+	// stillwater uses m²) that one source pixel covers at a source pixel.
+	// With MinArea it makes the noise clean-up scale-aware: where a blob of
+	// MinArea would be too few pixels to survive the 3×3 opening (far from
+	// a low camera), the opening is skipped and the caller's size gate in
+	// plane units does the work.
+	PixelArea func(Point) float64
+	// MinArea is the smallest blob the caller wants, plane units².
+	MinArea float64
 }
+
+// openMinPixels is the fewest processing pixels a blob of MinArea must
+// cover for the 3×3 opening to be applied there: a 5×5 px patch, below
+// which thin or foreshortened bodies lose most of their pixels to it.
+const openMinPixels = 25
+
+// fineCell is the grid step, processing px, at which PixelArea is sampled.
+const fineCell = 8
 
 // FrameStats describes one processed frame.
 type FrameStats struct {
@@ -70,6 +91,8 @@ type FrameStats struct {
 	SceneChange bool
 	// Relearning is true while the model is catching up after a scene change.
 	Relearning bool
+	// WarmingUp is true for the first frames, which only train the model.
+	WarmingUp bool
 	// MeanLevel is the mean grey level inside the watched area, 0–255.
 	MeanLevel float64
 	// Glints is the number of saturated pixels suppressed.
@@ -101,6 +124,9 @@ type Detector struct {
 	kOpen    gocv.Mat
 	kGlint   gocv.Mat
 	kClose   gocv.Mat
+	fine     gocv.Mat // 255 where the opening is skipped (see PixelArea)
+	hasFine  bool
+	opened   gocv.Mat
 	relearn  int
 	frames   int
 	closed   bool
@@ -138,6 +164,9 @@ func NewDetector(cfg DetectorConfig, src image.Point) (*Detector, error) {
 	if cfg.SceneChangeFraction <= 0 {
 		cfg.SceneChangeFraction = 0.35
 	}
+	if cfg.WarmUp == 0 {
+		cfg.WarmUp = 25
+	}
 	d := &Detector{cfg: cfg, src: src}
 	d.size = src
 	if cfg.ProcessWidth > 0 && cfg.ProcessWidth < src.X {
@@ -158,8 +187,32 @@ func NewDetector(cfg DetectorConfig, src image.Point) (*Detector, error) {
 	d.kGlint = gocv.GetStructuringElement(gocv.MorphEllipse, image.Pt(7, 7))
 	d.kOpen = gocv.GetStructuringElement(gocv.MorphEllipse, image.Pt(3, 3))
 	d.kClose = gocv.GetStructuringElement(gocv.MorphEllipse, image.Pt(7, 7))
+	d.fine = gocv.NewMatWithSize(d.size.Y, d.size.X, gocv.MatTypeCV8U)
+	d.opened = gocv.NewMat()
 	d.buildMask()
+	d.buildFine()
 	return d, nil
+}
+
+// buildFine marks the processing pixels where a blob of cfg.MinArea would
+// cover fewer than openMinPixels pixels.
+func (d *Detector) buildFine() {
+	d.fine.SetTo(gocv.NewScalar(0, 0, 0, 0))
+	if d.cfg.PixelArea == nil || d.cfg.MinArea <= 0 {
+		return
+	}
+	for y := 0; y < d.size.Y; y += fineCell {
+		for x := 0; x < d.size.X; x += fineCell {
+			c := Point{(float64(x) + fineCell/2) * d.scale, (float64(y) + fineCell/2) * d.scale}
+			a := d.cfg.PixelArea(c) * d.scale * d.scale // plane area of one processing pixel
+			if !(a > 0) || math.IsInf(a, 0) || d.cfg.MinArea/a >= openMinPixels {
+				continue
+			}
+			r := image.Rect(x, y, x+fineCell, y+fineCell).Intersect(image.Rect(0, 0, d.size.X, d.size.Y))
+			gocv.Rectangle(&d.fine, r, white, -1)
+			d.hasFine = true
+		}
+	}
 }
 
 func (d *Detector) toProc(pts []Point) []image.Point {
@@ -257,7 +310,14 @@ func (d *Detector) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, Frame
 		gocv.BitwiseNot(d.glint, &d.glint)
 		gocv.BitwiseAnd(d.bin, d.glint, &d.bin)
 	}
-	gocv.MorphologyEx(d.bin, &d.bin, gocv.MorphOpen, d.kOpen)
+	if d.hasFine {
+		// Keep the unopened mask where the pixels are coarse.
+		gocv.MorphologyEx(d.bin, &d.opened, gocv.MorphOpen, d.kOpen)
+		gocv.BitwiseAnd(d.bin, d.fine, &d.bin)
+		gocv.BitwiseOr(d.bin, d.opened, &d.bin)
+	} else {
+		gocv.MorphologyEx(d.bin, &d.bin, gocv.MorphOpen, d.kOpen)
+	}
 	gocv.MorphologyEx(d.bin, &d.bin, gocv.MorphClose, d.kClose)
 
 	if d.maskArea > 0 {
@@ -276,11 +336,21 @@ func (d *Detector) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, Frame
 			return nil, st, nil
 		}
 	}
+	if d.frames <= d.cfg.WarmUp {
+		st.WarmingUp = true
+		return nil, st, nil
+	}
 	// Pixels clearly darker than the background in at least one colour
 	// channel: caustics and reflections brighten water in every channel, so
 	// a blob with almost none of these is a highlight, not a body.
 	if err := d.bg.image(&d.bgImg); err != nil {
 		return nil, st, err
+	}
+	// Compare against the background scaled to this frame's light: under a
+	// cloud all the water is darker than the model learned in the sun, and
+	// light scales every pixel's level by about the same factor.
+	if g := d.gain(); math.Abs(g-1) > 0.02 {
+		d.bgImg.ConvertToWithParams(&d.bgImg, d.bgImg.Type(), float32(g), 0)
 	}
 	gocv.Subtract(d.bgImg, d.small, &d.dark)
 	if d.dark.Channels() == 3 {
@@ -296,6 +366,17 @@ func (d *Detector) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, Frame
 	blobs, highlights := d.blobs()
 	st.Highlights = highlights
 	return blobs, st, nil
+}
+
+// gain is the ratio of the frame's mean level to the background
+// estimate's inside the watched area (1 when either is black).
+func (d *Detector) gain() float64 {
+	f, b := d.small.MeanWithMask(d.mask), d.bgImg.MeanWithMask(d.mask)
+	fs, bs := f.Val1+f.Val2+f.Val3, b.Val1+b.Val2+b.Val3
+	if fs <= 0 || bs <= 0 {
+		return 1
+	}
+	return fs / bs
 }
 
 // darkDelta is how many grey levels below the background a pixel must be
@@ -333,16 +414,18 @@ func (d *Detector) blobs() ([]Blob, int) {
 	highlights := 0
 	for i := 0; i < contours.Size(); i++ {
 		c := contours.At(i)
-		area := gocv.ContourArea(c)
-		if area < d.cfg.MinPixels || area <= 0 {
+		pr := gocv.BoundingRect(c)
+		// Gate on counted pixels, not the contour's polygon area: a thin,
+		// foreshortened body far from a low camera has a polygon area near
+		// zero however many pixels it covers.
+		roi := d.bin.Region(pr)
+		px := gocv.CountNonZero(roi)
+		roi.Close()
+		if px == 0 || float64(px) < d.cfg.MinPixels {
 			continue
 		}
-		pr := gocv.BoundingRect(c)
-		roi := d.dark.Region(pr)
+		roi = d.dark.Region(pr)
 		darkPx := gocv.CountNonZero(roi)
-		roi.Close()
-		roi = d.bin.Region(pr)
-		px := gocv.CountNonZero(roi)
 		roi.Close()
 		if float64(darkPx) < minDarkShare*float64(px) {
 			highlights++
@@ -353,16 +436,19 @@ func (d *Detector) blobs() ([]Blob, int) {
 		for j, p := range pts {
 			poly[j] = Point{float64(p.X) * d.scale, float64(p.Y) * d.scale}
 		}
+		box := image.Rect(int(float64(pr.Min.X)*d.scale), int(float64(pr.Min.Y)*d.scale), int(math.Ceil(float64(pr.Max.X)*d.scale)), int(math.Ceil(float64(pr.Max.Y)*d.scale)))
 		cen, ok := polygonCentroid(poly)
 		if !ok {
-			continue
+			// A one-pixel-thin blob: its box centre, and its outline as the
+			// box so that the caller can still measure it.
+			cen = Point{float64(box.Min.X+box.Max.X) / 2, float64(box.Min.Y+box.Max.Y) / 2}
+			poly = []Point{{float64(box.Min.X), float64(box.Min.Y)}, {float64(box.Max.X), float64(box.Min.Y)}, {float64(box.Max.X), float64(box.Max.Y)}, {float64(box.Min.X), float64(box.Max.Y)}}
 		}
-		r := pr
 		out = append(out, Blob{
 			Centroid: cen,
 			Area:     float64(px) * d.scale * d.scale,
 			Pixels:   px,
-			Box:      image.Rect(int(float64(r.Min.X)*d.scale), int(float64(r.Min.Y)*d.scale), int(math.Ceil(float64(r.Max.X)*d.scale)), int(math.Ceil(float64(r.Max.Y)*d.scale))),
+			Box:      box,
 			Contour:  poly,
 		})
 	}
@@ -392,7 +478,7 @@ func (d *Detector) Close() error {
 		return nil
 	}
 	d.closed = true
-	for _, m := range []*gocv.Mat{&d.mask, &d.small, &d.gray, &d.fg, &d.bin, &d.learnImg, &d.bgImg, &d.hold, &d.glint, &d.dark, &d.kOpen, &d.kGlint, &d.kClose} {
+	for _, m := range []*gocv.Mat{&d.mask, &d.small, &d.gray, &d.fg, &d.bin, &d.learnImg, &d.bgImg, &d.hold, &d.glint, &d.dark, &d.kOpen, &d.kGlint, &d.kClose, &d.fine, &d.opened} {
 		m.Close()
 	}
 	return d.bg.Close()

@@ -254,6 +254,9 @@ func (c Config) Validate() error {
 	if err := validateBus(c.Bus); err != nil {
 		return err
 	}
+	if err := validateControl(c.Control, c.Bus); err != nil {
+		return err
+	}
 	switch c.Log.Level {
 	case "debug", "info", "warn", "error":
 	default:
@@ -281,6 +284,9 @@ func (c Config) Validate() error {
 		where := fmt.Sprintf("cameras[%d]", i)
 		if err := alert.ValidToken(cam.ID); err != nil {
 			return fmt.Errorf("%s.id: %v; use a short name such as pool or north", where, err)
+		}
+		if err := alert.ReservedCamera(cam.ID); err != nil {
+			return fmt.Errorf("%s.id: %v; choose another name", where, err)
 		}
 		if ids[cam.ID] {
 			return fmt.Errorf("%s.id: %q is used twice; camera ids must be unique", where, cam.ID)

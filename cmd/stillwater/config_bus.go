@@ -1,30 +1,533 @@
 package main
 
 import (
+	"context"
 	"errors"
 	"fmt"
+	"log/slog"
+	"net/url"
+	"os"
+	"path/filepath"
+	"strings"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"golang.org/x/sync/errgroup"
 
 	"stillwater/alert"
 )
 
-// BusConfig selects the message bus: the embedded server when URL is empty.
+// BusConfig selects the message bus: the embedded server when neither url
+// nor urls is set.
 type BusConfig struct {
-	URL    string `yaml:"url"`
-	Listen string `yaml:"listen"` // embedded server's client listener
-	MQTT   string `yaml:"mqtt"`   // embedded server's MQTT listener; empty is off
-	Prefix string `yaml:"subject_prefix"`
+	URL    string   `yaml:"url"`
+	URLs   []string `yaml:"urls"`   // more servers of the same cluster; joined with url
+	Listen string   `yaml:"listen"` // embedded server's client listener
+	MQTT   string   `yaml:"mqtt"`   // embedded server's MQTT listener; empty is off, host defaults to 127.0.0.1
+	Prefix string   `yaml:"subject_prefix"`
+
+	// Auth is how the daemon logs in. With the embedded server and users
+	// it may stay empty: the daemon then uses the first daemon-role user.
+	Auth BusAuthConfig `yaml:"auth"`
+	TLS  BusTLSConfig  `yaml:"tls"`
+
+	// Users turn on authentication in the embedded server.
+	Users []BusUserConfig `yaml:"users"`
+	// Leaf makes the embedded server join central servers as a leaf node.
+	Leaf []LeafConfig `yaml:"leaf"`
+	// JetStreamDomain of the embedded server; defaults to "stillwater"
+	// when leaf is set.
+	JetStreamDomain string `yaml:"jetstream_domain"`
+
+	Stream StreamSection `yaml:"stream"`
+	Outbox OutboxSection `yaml:"outbox"`
 }
 
-// validateBus checks the bus section.
+// BusAuthConfig holds at most one way to log in. Secrets come from
+// *_env (an environment variable's name) or *_file (a file's path);
+// inline password and token work but are reported as a warning.
+type BusAuthConfig struct {
+	User         string `yaml:"user"`
+	Password     string `yaml:"password"`
+	PasswordEnv  string `yaml:"password_env"`
+	PasswordFile string `yaml:"password_file"`
+	Token        string `yaml:"token"`
+	TokenEnv     string `yaml:"token_env"`
+	TokenFile    string `yaml:"token_file"`
+	NKeySeedFile string `yaml:"nkey_seed_file"`
+	CredsFile    string `yaml:"creds_file"`
+}
+
+// BusTLSConfig verifies the server (ca_file) and presents a client
+// certificate (cert_file + key_file).
+type BusTLSConfig struct {
+	CAFile   string `yaml:"ca_file"`
+	CertFile string `yaml:"cert_file"`
+	KeyFile  string `yaml:"key_file"`
+}
+
+// BusUserConfig is a user of the embedded server.
+type BusUserConfig struct {
+	Name         string `yaml:"name"`
+	Role         string `yaml:"role"`     // daemon, responder or operator
+	Password     string `yaml:"password"` // plain (warned) or a bcrypt hash
+	PasswordEnv  string `yaml:"password_env"`
+	PasswordFile string `yaml:"password_file"`
+}
+
+// LeafConfig is one central cluster the embedded server joins.
+type LeafConfig struct {
+	URLs      []string `yaml:"urls"`
+	CredsFile string   `yaml:"creds_file"`
+	CAFile    string   `yaml:"ca_file"`
+	CertFile  string   `yaml:"cert_file"`
+	KeyFile   string   `yaml:"key_file"`
+}
+
+// StreamSection sizes the JetStream stream; zero values take alert's
+// defaults (30 days, 256 MiB, 1 h de-duplication, 1 replica).
+type StreamSection struct {
+	Name       string   `yaml:"name"`
+	MaxAge     Duration `yaml:"max_age"`
+	MaxBytes   int64    `yaml:"max_bytes"`
+	Duplicates Duration `yaml:"duplicates"`
+	Replicas   int      `yaml:"replicas"`
+}
+
+// OutboxSection bounds the on-disk queue of unacknowledged messages;
+// zero values take alert's defaults (10000 messages, 16 MiB, 2 s).
+type OutboxSection struct {
+	MaxMessages int      `yaml:"max_messages"`
+	MaxBytes    int64    `yaml:"max_bytes"`
+	AckTimeout  Duration `yaml:"ack_timeout"`
+}
+
+// embedded reports whether the daemon runs its own server.
+func (b BusConfig) embedded() bool { return b.URL == "" && len(b.URLs) == 0 }
+
+// serverURLs is the comma-joined list nats.Connect takes.
+func (b BusConfig) serverURLs() string {
+	var all []string
+	if b.URL != "" {
+		all = append(all, b.URL)
+	}
+	return strings.Join(append(all, b.URLs...), ",")
+}
+
+// validateBus checks the bus section. It reads no files and no
+// environment: secrets are resolved when the daemon starts.
 func validateBus(b BusConfig) error {
-	if b.URL == "" && b.Listen == "" {
+	if b.embedded() && b.Listen == "" {
 		return errors.New("bus: neither url nor listen is set; set url for an external server or listen for the embedded one")
 	}
 	if err := alert.ValidToken(b.Prefix); err != nil {
 		return fmt.Errorf("bus.subject_prefix: %v; use a single word such as stillwater", err)
 	}
+	for i, s := range append([]string{b.URL}, b.URLs...) {
+		if s == "" {
+			continue
+		}
+		field := "bus.url"
+		if i > 0 {
+			field = fmt.Sprintf("bus.urls[%d]", i-1)
+		}
+		if err := checkBusURL(s, "nats", "tls", "ws", "wss"); err != nil {
+			return fmt.Errorf("%s: %v; write e.g. nats://bus.example:4222", field, err)
+		}
+	}
+	if !b.embedded() {
+		switch {
+		case b.MQTT != "":
+			return errors.New("bus.mqtt: only the embedded server has an MQTT listener; remove it or clear bus.url")
+		case len(b.Users) > 0:
+			return errors.New("bus.users: only the embedded server takes users; configure users on the external server")
+		case len(b.Leaf) > 0:
+			return errors.New("bus.leaf: only the embedded server joins as a leaf node; remove it or clear bus.url")
+		}
+	}
+	if err := validateBusAuth(b.Auth); err != nil {
+		return err
+	}
+	if (b.TLS.CertFile == "") != (b.TLS.KeyFile == "") {
+		return errors.New("bus.tls: cert_file and key_file go together; set both or neither")
+	}
+	daemonUser := false
+	names := map[string]bool{}
+	for i, u := range b.Users {
+		where := fmt.Sprintf("bus.users[%d]", i)
+		if err := alert.ValidToken(u.Name); err != nil {
+			return fmt.Errorf("%s.name: %v", where, err)
+		}
+		if names[u.Name] {
+			return fmt.Errorf("%s.name: %q is used twice", where, u.Name)
+		}
+		names[u.Name] = true
+		switch u.Role {
+		case alert.RoleDaemon:
+			daemonUser = true
+		case alert.RoleResponder, alert.RoleOperator:
+		default:
+			return fmt.Errorf("%s (%s).role: %q; want daemon, responder or operator", where, u.Name, u.Role)
+		}
+		if err := oneSecretSource(u.Password, u.PasswordEnv, u.PasswordFile, true); err != nil {
+			return fmt.Errorf("%s (%s): password: %v", where, u.Name, err)
+		}
+	}
+	if len(b.Users) > 0 && !daemonUser && b.Auth.User == "" {
+		return errors.New("bus.users: no user has role daemon, so stillwater itself could not log in; add one")
+	}
+	for i, l := range b.Leaf {
+		where := fmt.Sprintf("bus.leaf[%d]", i)
+		if len(l.URLs) == 0 {
+			return fmt.Errorf("%s.urls: empty; list the central cluster's leaf-node URLs, e.g. nats-leaf://hub.example:7422", where)
+		}
+		for j, s := range l.URLs {
+			if err := checkBusURL(s, "nats-leaf", "nats", "tls", "ws", "wss"); err != nil {
+				return fmt.Errorf("%s.urls[%d]: %v", where, j, err)
+			}
+		}
+		if (l.CertFile == "") != (l.KeyFile == "") {
+			return fmt.Errorf("%s: cert_file and key_file go together", where)
+		}
+	}
+	s := b.Stream
+	switch {
+	case s.Name != "" && alert.ValidToken(s.Name) != nil:
+		return fmt.Errorf("bus.stream.name: %q; use letters, digits, - and _", s.Name)
+	case s.MaxAge < 0 || s.MaxBytes < 0 || s.Duplicates < 0:
+		return errors.New("bus.stream: max_age, max_bytes and duplicates must not be negative")
+	case s.Replicas < 0 || s.Replicas > 5:
+		return fmt.Errorf("bus.stream.replicas: %d; JetStream keeps 1 to 5 copies", s.Replicas)
+	case s.MaxAge > 0 && s.Duplicates > s.MaxAge:
+		return errors.New("bus.stream.duplicates: longer than max_age; make it shorter")
+	}
+	o := b.Outbox
+	switch {
+	case o.MaxMessages < 0 || o.MaxBytes < 0:
+		return errors.New("bus.outbox: max_messages and max_bytes must not be negative")
+	case o.AckTimeout < 0 || time.Duration(o.AckTimeout) > 30*time.Second:
+		return errors.New("bus.outbox.ack_timeout: want 0 (default 2s) up to 30s; the camera loop waits this long at most")
+	}
 	return nil
 }
 
-// ControlConfig is who may arm and disarm, over HTTP and NATS.
-type ControlConfig struct{}
+func validateBusAuth(a BusAuthConfig) error {
+	kinds := 0
+	pw := a.Password != "" || a.PasswordEnv != "" || a.PasswordFile != ""
+	if a.User != "" || pw {
+		if a.User == "" || !pw {
+			return errors.New("bus.auth: user and a password (password_env, password_file or password) go together")
+		}
+		if err := oneSecretSource(a.Password, a.PasswordEnv, a.PasswordFile, false); err != nil {
+			return fmt.Errorf("bus.auth password: %v", err)
+		}
+		kinds++
+	}
+	if a.Token != "" || a.TokenEnv != "" || a.TokenFile != "" {
+		if err := oneSecretSource(a.Token, a.TokenEnv, a.TokenFile, false); err != nil {
+			return fmt.Errorf("bus.auth token: %v", err)
+		}
+		kinds++
+	}
+	if a.NKeySeedFile != "" {
+		kinds++
+	}
+	if a.CredsFile != "" {
+		kinds++
+	}
+	if kinds > 1 {
+		return errors.New("bus.auth: use one of user/password, token, nkey_seed_file or creds_file")
+	}
+	return nil
+}
+
+// oneSecretSource checks that at most one (or, if required, exactly one) source
+// is given.
+func oneSecretSource(inline, env, file string, required bool) error {
+	n := 0
+	for _, v := range []string{inline, env, file} {
+		if v != "" {
+			n++
+		}
+	}
+	switch {
+	case n > 1:
+		return errors.New("give it one way only: inline, *_env or *_file")
+	case n == 0 && required:
+		return errors.New("missing; set password_env or password_file")
+	}
+	return nil
+}
+
+func checkBusURL(s string, schemes ...string) error {
+	u, err := url.Parse(s)
+	if err != nil || u.Host == "" {
+		return fmt.Errorf("%q is not a URL with a host", busRedact(s))
+	}
+	for _, sc := range schemes {
+		if u.Scheme == sc {
+			return nil
+		}
+	}
+	return fmt.Errorf("scheme %q; want one of %s", u.Scheme, strings.Join(schemes, ", "))
+}
+
+func busRedact(s string) string {
+	if u, err := url.Parse(s); err == nil && u.User != nil {
+		return u.Redacted()
+	}
+	if i := strings.LastIndex(s, "@"); i >= 0 {
+		return "…" + s[i:]
+	}
+	return s
+}
+
+// resolveSecret resolves one secret through alert.Secret; inline secrets add a
+// warning naming the field.
+func resolveSecret(field, inline, env, file string, getenv func(string) string, warn *[]string) (string, error) {
+	v, isInline, err := alert.Secret{Value: inline, Env: env, File: file}.Resolve(getenv)
+	if err != nil {
+		return "", fmt.Errorf("%s: %w", field, err)
+	}
+	if isInline && !strings.HasPrefix(v, "$2") { // a bcrypt hash is no secret to hide
+		*warn = append(*warn, field+" is written in the config file; prefer "+field+"_env or "+field+"_file")
+	}
+	return v, nil
+}
+
+// connectOptions returns the nats.Options of the daemon's connection and
+// warnings to log. With the embedded server, users and no auth section,
+// the first daemon-role user logs in.
+func (b BusConfig) connectOptions(getenv func(string) string) ([]nats.Option, []string, error) {
+	var warn []string
+	a := b.Auth
+	auth := alert.BusAuth{User: a.User, NKeySeedFile: a.NKeySeedFile, CredsFile: a.CredsFile,
+		CAFile: b.TLS.CAFile, CertFile: b.TLS.CertFile, KeyFile: b.TLS.KeyFile}
+	var err error
+	if auth.Password, err = resolveSecret("bus.auth.password", a.Password, a.PasswordEnv, a.PasswordFile, getenv, &warn); err != nil {
+		return nil, nil, err
+	}
+	if auth.Token, err = resolveSecret("bus.auth.token", a.Token, a.TokenEnv, a.TokenFile, getenv, &warn); err != nil {
+		return nil, nil, err
+	}
+	if b.embedded() && auth.User == "" && auth.Token == "" && auth.NKeySeedFile == "" && auth.CredsFile == "" {
+		for i, u := range b.Users {
+			if u.Role != alert.RoleDaemon {
+				continue
+			}
+			pw, err := resolveSecret(fmt.Sprintf("bus.users[%d].password", i), u.Password, u.PasswordEnv, u.PasswordFile, getenv, &warn)
+			if err != nil {
+				return nil, nil, err
+			}
+			if strings.HasPrefix(pw, "$2") {
+				return nil, nil, fmt.Errorf("bus.users[%d] (%s): a bcrypt hash cannot log in; give stillwater the plain password in bus.auth", i, u.Name)
+			}
+			auth.User, auth.Password = u.Name, pw
+			break
+		}
+	}
+	opts, err := alert.ConnectOptions(auth)
+	if err != nil {
+		return nil, nil, err
+	}
+	return opts, warn, nil
+}
+
+// embeddedConfig returns the embedded server's configuration, secrets
+// resolved, and warnings to log.
+func (b BusConfig) embeddedConfig(dataDir string, getenv func(string) string) (alert.EmbeddedConfig, []string, error) {
+	var warn []string
+	ec := alert.EmbeddedConfig{Listen: b.Listen, StoreDir: filepath.Join(dataDir, "jetstream"), MQTT: b.MQTT,
+		Prefix: b.Prefix, Domain: b.JetStreamDomain}
+	for i, u := range b.Users {
+		pw, err := resolveSecret(fmt.Sprintf("bus.users[%d].password", i), u.Password, u.PasswordEnv, u.PasswordFile, getenv, &warn)
+		if err != nil {
+			return alert.EmbeddedConfig{}, nil, err
+		}
+		ec.Users = append(ec.Users, alert.BusUser{Name: u.Name, Password: pw, Role: u.Role})
+	}
+	for _, l := range b.Leaf {
+		ec.Leaf = append(ec.Leaf, alert.LeafRemote{URLs: l.URLs, CredsFile: l.CredsFile, CAFile: l.CAFile, CertFile: l.CertFile, KeyFile: l.KeyFile})
+	}
+	if b.MQTT != "" && len(b.Users) == 0 && !strings.HasPrefix(b.MQTT, "127.") && !strings.HasPrefix(b.MQTT, "localhost:") && !strings.HasPrefix(b.MQTT, ":") && !strings.HasPrefix(b.MQTT, "[::1]") {
+		warn = append(warn, "bus.mqtt listens beyond loopback without bus.users: anyone on the network can read the alarms")
+	}
+	return ec, warn, nil
+}
+
+// publisherConfig returns the publisher's configuration without its
+// callbacks, which the daemon adds (metrics, log).
+func (b BusConfig) publisherConfig(dataDir string) alert.PublisherConfig {
+	return alert.PublisherConfig{
+		Prefix: b.Prefix,
+		Stream: alert.StreamConfig{Name: b.Stream.Name, MaxAge: time.Duration(b.Stream.MaxAge), MaxBytes: b.Stream.MaxBytes,
+			Duplicates: time.Duration(b.Stream.Duplicates), Replicas: b.Stream.Replicas},
+		Outbox:     alert.OutboxConfig{Dir: filepath.Join(dataDir, "outbox"), MaxMessages: b.Outbox.MaxMessages, MaxBytes: b.Outbox.MaxBytes},
+		AckTimeout: time.Duration(b.Outbox.AckTimeout),
+	}
+}
+
+// ControlConfig is who may arm and disarm, over HTTP and NATS. The
+// secret is a bearer token; give it as secret_env or secret_file (inline
+// secret works and is warned about).
+type ControlConfig struct {
+	Secret     string `yaml:"secret"`
+	SecretEnv  string `yaml:"secret_env"`
+	SecretFile string `yaml:"secret_file"`
+	// TrustNATS accepts NATS control requests without the token, relying
+	// on the bus users' roles (operator). Needs bus.users or an external
+	// server with its own permissions.
+	TrustNATS bool `yaml:"trust_nats"`
+	// MaxDisarm is the longest disarm accepted; default 24h, at most 7 days.
+	MaxDisarm Duration `yaml:"max_disarm"`
+}
+
+// validateControl checks the control section against the bus section.
+func validateControl(c ControlConfig, b BusConfig) error {
+	if err := oneSecretSource(c.Secret, c.SecretEnv, c.SecretFile, false); err != nil {
+		return fmt.Errorf("control.secret: %v", err)
+	}
+	if c.TrustNATS && b.embedded() && len(b.Users) == 0 {
+		return errors.New("control.trust_nats: the embedded server has no bus.users, so anyone on the bus could disarm; add users with roles or drop trust_nats")
+	}
+	if c.MaxDisarm < 0 || time.Duration(c.MaxDisarm) > 7*24*time.Hour {
+		return errors.New("control.max_disarm: want 0 (default 24h) up to 168h")
+	}
+	return nil
+}
+
+// controlSecret resolves the control secret; warnings are to be logged.
+func (c ControlConfig) controlSecret(getenv func(string) string) (string, []string, error) {
+	var warn []string
+	s, err := resolveSecret("control.secret", c.Secret, c.SecretEnv, c.SecretFile, getenv, &warn)
+	return s, warn, err
+}
+
+// busHooks are the daemon's callbacks into its metrics; any may be nil.
+type busHooks struct {
+	OnResult  func(alert.PublishResult)        // stillwater_publish_seconds, publish errors
+	OnBacklog func(active bool, s alert.Stats) // bus_backlog fault
+	OnRefused func(via string)                 // stillwater_control_refused_total{via}
+}
+
+// busParts is the bus side of the daemon, opened by openBus. Run drives
+// it; Close releases it after Run has returned.
+type busParts struct {
+	Embedded *alert.Embedded // nil with an external server
+	URL      string          // redacted
+	Conn     *nats.Conn
+	Pub      *alert.Publisher
+	Arming   *alert.Arming
+	Control  *alert.Control
+	now      func() time.Time
+	log      *slog.Logger
+}
+
+// openBus starts the embedded server (unless bus.url is set), connects,
+// opens the publisher with its outbox in data_dir/outbox, the per-camera
+// arming with its state in data_dir/arming.json and the control API. An
+// external server that is down is not an error: messages wait in the
+// outbox. An unreadable arming state is logged and every camera runs
+// armed. The caller sets ac's cameras and schedules.
+func openBus(ctx context.Context, cfg Config, ac alert.ArmingConfig, now func() time.Time, log *slog.Logger, h busHooks) (_ *busParts, err error) {
+	getenv := os.Getenv
+	b := &busParts{now: now, log: log}
+	defer func() {
+		if err != nil {
+			b.Close()
+		}
+	}()
+	busURL := cfg.Bus.serverURLs()
+	if cfg.Bus.embedded() {
+		ec, warn, err := cfg.Bus.embeddedConfig(cfg.DataDir, getenv)
+		if err != nil {
+			return nil, err
+		}
+		logWarnings(log, warn)
+		if b.Embedded, err = alert.StartEmbedded(ec); err != nil {
+			return nil, err
+		}
+		busURL = b.Embedded.URL()
+		log.Info("embedded bus started", "url", busURL, "mqtt", cfg.Bus.MQTT, "users", len(ec.Users), "leaf_remotes", len(ec.Leaf))
+	}
+	b.URL = busRedactList(busURL)
+	opts, warn, err := cfg.Bus.connectOptions(getenv)
+	if err != nil {
+		return nil, err
+	}
+	logWarnings(log, warn)
+	opts = append(opts, nats.Name("stillwater"), nats.MaxReconnects(-1), nats.ReconnectWait(500*time.Millisecond),
+		nats.RetryOnFailedConnect(true),
+		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) { log.Warn("bus disconnected", "err", err) }),
+		nats.ReconnectHandler(func(nc *nats.Conn) { log.Info("bus reconnected", "url", nc.ConnectedUrlRedacted()) }))
+	if b.Conn, err = nats.Connect(busURL, opts...); err != nil {
+		return nil, fmt.Errorf("connect bus %s: %w", b.URL, err)
+	}
+	pc := cfg.Bus.publisherConfig(cfg.DataDir)
+	pc.OnResult, pc.OnBacklog, pc.Log = h.OnResult, h.OnBacklog, log
+	if b.Pub, err = alert.NewPublisherWith(ctx, b.Conn, pc); err != nil {
+		return nil, err
+	}
+	ac.StatePath = filepath.Join(cfg.DataDir, "arming.json")
+	ac.MaxDisarm = time.Duration(cfg.Control.MaxDisarm)
+	b.Arming, err = alert.NewArming(ac, now())
+	if errors.Is(err, alert.ErrStateUnreadable) {
+		log.Error("arming state unreadable; every camera is armed until an operator sets the state", "err", err)
+	} else if err != nil {
+		return nil, err
+	}
+	secret, warn, err := cfg.Control.controlSecret(getenv)
+	if err != nil {
+		return nil, err
+	}
+	logWarnings(log, warn)
+	if secret == "" && !cfg.Control.TrustNATS {
+		log.Warn("no control secret configured: arm, disarm and clear requests are refused; set control.secret_env or control.secret_file")
+	}
+	b.Control, err = alert.NewControl(alert.ControlConfig{Prefix: cfg.Bus.Prefix, Arming: b.Arming, Secret: secret,
+		TrustNATS: cfg.Control.TrustNATS, OnRefused: h.OnRefused, Log: log, Now: now})
+	if err != nil {
+		return nil, err
+	}
+	return b, nil
+}
+
+func logWarnings(log *slog.Logger, warn []string) {
+	for _, w := range warn {
+		log.Warn(w)
+	}
+}
+
+// Run drains the outbox, answers control requests and publishes armed
+// changes until ctx ends. Cancel it after the cameras have stopped and
+// Pub.Flush has run, so that nothing queued is left behind needlessly.
+func (b *busParts) Run(ctx context.Context) error {
+	g, gctx := errgroup.WithContext(ctx)
+	g.Go(func() error { return b.Pub.Run(gctx) })
+	g.Go(func() error { return b.Control.Serve(gctx, b.Conn) })
+	g.Go(func() error {
+		return b.Arming.Run(gctx, b.now, time.Second, func(c alert.ArmedChange) {
+			b.log.Info("armed state", "camera", c.Camera, "armed", c.Armed, "reason", c.Reason)
+			if err := b.Pub.PublishArmed(gctx, c); err != nil {
+				b.log.Error("publish armed change", "camera", c.Camera, "err", err)
+			}
+		})
+	})
+	return g.Wait()
+}
+
+// Close releases the outbox, the connection and the embedded server, in
+// that order. Safe on a partly opened busParts.
+func (b *busParts) Close() {
+	if b.Pub != nil {
+		if err := b.Pub.Close(); err != nil {
+			b.log.Error("close outbox", "err", err)
+		}
+	}
+	if b.Conn != nil {
+		b.Conn.Close()
+	}
+	if b.Embedded != nil {
+		b.Embedded.Shutdown()
+	}
+}

@@ -1,9 +1,15 @@
 package main
 
 import (
+	"flag"
 	"fmt"
+	"log/slog"
+	"math"
+	"time"
 
 	"stillwater/alert"
+	"stillwater/homography"
+	"stillwater/vision"
 )
 
 // DetectConfig tunes detection and alarming for one camera.
@@ -100,5 +106,261 @@ func validateDetect(where string, d DetectConfig) error {
 	return nil
 }
 
-// ZoneConfig is one exclusion polygon.
-type ZoneConfig struct{}
+// ZoneConfig is one exclusion polygon under a camera (a ladder, a fountain,
+// the cleaner's dock): blobs whose centre falls inside never track or
+// alarm. Give the outline either in pool metres (origin at corner A, x along
+// the length) or in source pixels (origin top-left, y down), not both.
+type ZoneConfig struct {
+	Name   string       `yaml:"name"`
+	PoolM  [][2]float64 `yaml:"pool_m"`
+	Pixels [][2]float64 `yaml:"pixels"`
+}
+
+// zoneMargin is how far, m, a zone's corner may reach beyond the water's
+// edge (a ladder's handrails stand on the coping).
+const zoneMargin = 0.5
+
+// validateZones checks a camera's zones; where names the camera. The
+// camera's pool and corners must already be valid.
+func validateZones(where string, cam CameraConfig) error {
+	if len(cam.Zones) == 0 {
+		return nil
+	}
+	h, err := poolHomography(cam)
+	if err != nil {
+		return fmt.Errorf("%s.zones: %w", where, err)
+	}
+	names := map[string]bool{}
+	for i, z := range cam.Zones {
+		at := fmt.Sprintf("%s.zones[%d]", where, i)
+		if z.Name != "" {
+			at = fmt.Sprintf("%s (%s)", at, z.Name)
+			if names[z.Name] {
+				return fmt.Errorf("%s.name: %q is used twice; zone names must be unique", at, z.Name)
+			}
+			names[z.Name] = true
+		}
+		var pts [][2]float64
+		var field string
+		switch {
+		case len(z.PoolM) > 0 && len(z.Pixels) > 0:
+			return fmt.Errorf("%s: both pool_m and pixels given; outline the zone in one frame only", at)
+		case len(z.PoolM) > 0:
+			pts, field = z.PoolM, "pool_m"
+		case len(z.Pixels) > 0:
+			pts, field = z.Pixels, "pixels"
+		default:
+			return fmt.Errorf("%s: no outline; give pool_m: [[x,y],...] in metres or pixels: [[u,v],...]", at)
+		}
+		if len(pts) < 3 {
+			return fmt.Errorf("%s.%s: %d points; a zone needs at least 3", at, field, len(pts))
+		}
+		if i, j, ok := selfIntersection(pts); ok {
+			return fmt.Errorf("%s.%s: edges %d and %d cross; list the points in order around the outline", at, field, i, j)
+		}
+		if math.Abs(shoelace(pts)) < 1e-9 {
+			return fmt.Errorf("%s.%s: the outline has no area", at, field)
+		}
+		L, W := cam.Pool.Length, cam.Pool.Width
+		for k, p := range pts {
+			q := homography.Point{X: p[0], Y: p[1]}
+			if field == "pixels" {
+				m, ok := h.Map(q)
+				if !ok {
+					return fmt.Errorf("%s.pixels[%d]: (%g, %g) does not map onto the pool plane (above the horizon?)", at, k, p[0], p[1])
+				}
+				q = m
+			}
+			if q.X < -zoneMargin || q.Y < -zoneMargin || q.X > L+zoneMargin || q.Y > W+zoneMargin {
+				return fmt.Errorf("%s.%s[%d]: (%g, %g) lies at (%.2f, %.2f) m, outside the %gx%g m pool (more than %g m beyond its edge)",
+					at, field, k, p[0], p[1], q.X, q.Y, L, W, zoneMargin)
+			}
+		}
+	}
+	return nil
+}
+
+// shoelace returns twice the signed area of a polygon.
+func shoelace(pts [][2]float64) float64 {
+	var a float64
+	for i := range pts {
+		j := (i + 1) % len(pts)
+		a += pts[i][0]*pts[j][1] - pts[j][0]*pts[i][1]
+	}
+	return a
+}
+
+// selfIntersection returns the first pair of non-adjacent edges of the
+// closed polygon that touch or cross (edge k runs from point k to k+1).
+func selfIntersection(pts [][2]float64) (int, int, bool) {
+	n := len(pts)
+	for i := 0; i < n; i++ {
+		a, b := pts[i], pts[(i+1)%n]
+		for j := i + 1; j < n; j++ {
+			if j == i+1 || (i == 0 && j == n-1) {
+				continue // adjacent edges share a corner
+			}
+			c, d := pts[j], pts[(j+1)%n]
+			if segmentsMeet(a, b, c, d) {
+				return i, j, true
+			}
+		}
+	}
+	return 0, 0, false
+}
+
+// segmentsMeet reports whether segments ab and cd share a point (the
+// orientation test with the collinear cases).
+func segmentsMeet(a, b, c, d [2]float64) bool {
+	o := func(p, q, r [2]float64) float64 {
+		return (q[0]-p[0])*(r[1]-p[1]) - (q[1]-p[1])*(r[0]-p[0])
+	}
+	on := func(p, q, r [2]float64) bool {
+		return math.Min(p[0], q[0]) <= r[0] && r[0] <= math.Max(p[0], q[0]) &&
+			math.Min(p[1], q[1]) <= r[1] && r[1] <= math.Max(p[1], q[1])
+	}
+	d1, d2, d3, d4 := o(c, d, a), o(c, d, b), o(a, b, c), o(a, b, d)
+	if ((d1 > 0 && d2 < 0) || (d1 < 0 && d2 > 0)) && ((d3 > 0 && d4 < 0) || (d3 < 0 && d4 > 0)) {
+		return true
+	}
+	return (d1 == 0 && on(c, d, a)) || (d2 == 0 && on(c, d, b)) || (d3 == 0 && on(a, b, c)) || (d4 == 0 && on(a, b, d))
+}
+
+// zone is one validated exclusion polygon in its own frame.
+type zone struct {
+	name   string
+	pixels bool // outline in source pixels; else pool metres
+	pts    [][2]float64
+}
+
+// zoneSet is a camera's exclusion zones.
+type zoneSet []zone
+
+// newZoneSet validates cam's zones and returns them.
+func newZoneSet(cam CameraConfig) (zoneSet, error) {
+	if err := validateZones("camera "+cam.ID, cam); err != nil {
+		return nil, err
+	}
+	var zs zoneSet
+	for i, z := range cam.Zones {
+		name := z.Name
+		if name == "" {
+			name = fmt.Sprintf("zone%d", i)
+		}
+		if len(z.Pixels) > 0 {
+			zs = append(zs, zone{name: name, pixels: true, pts: z.Pixels})
+		} else {
+			zs = append(zs, zone{name: name, pts: z.PoolM})
+		}
+	}
+	return zs, nil
+}
+
+// excluded returns the zone containing a blob centre, given in source
+// pixels and in pool metres.
+func (zs zoneSet) excluded(px, pool homography.Point) (string, bool) {
+	for _, z := range zs {
+		p := pool
+		if z.pixels {
+			p = px
+		}
+		if insidePolygon(z.pts, p.X, p.Y) {
+			return z.name, true
+		}
+	}
+	return "", false
+}
+
+// filter returns r without the blobs whose centre lies in a zone; each is
+// logged at debug level and counted as rejected for reason "zone".
+func (zs zoneSet) filter(r vision.Result, toPool homography.H, log *slog.Logger, m *cameraMetrics) vision.Result {
+	if len(zs) == 0 || len(r.Blobs) == 0 {
+		return r
+	}
+	keep := make([]vision.Blob, 0, len(r.Blobs))
+	for _, b := range r.Blobs {
+		px := homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}
+		pool, ok := toPool.Map(px)
+		if ok {
+			if name, in := zs.excluded(px, pool); in {
+				log.Debug("blob rejected: in exclusion zone", "frame", r.Index, "zone", name, "x_m", pool.X, "y_m", pool.Y)
+				m.rejected("zone")
+				continue
+			}
+		}
+		keep = append(keep, b)
+	}
+	r.Blobs = keep
+	return r
+}
+
+// insidePolygon is the even-odd ray-crossing test.
+func insidePolygon(pts [][2]float64, x, y float64) bool {
+	in := false
+	for i, j := 0, len(pts)-1; i < len(pts); j, i = i, i+1 {
+		xi, yi, xj, yj := pts[i][0], pts[i][1], pts[j][0], pts[j][1]
+		if (yi > y) != (yj > y) && x < (xj-xi)*(y-yi)/(yj-yi)+xi {
+			in = !in
+		}
+	}
+	return in
+}
+
+// detectorConfig is the vision stage's setup for a camera: the detect
+// section, the pool outline as the watched mask and the pool-plane
+// footprint of a pixel, so that clean-up is scale-aware. The daemon and
+// replay both use it so that they see the same blobs.
+func detectorConfig(cam CameraConfig) vision.DetectorConfig {
+	dc := vision.DetectorConfig{
+		ProcessWidth: cam.Detect.ProcessWidth, Method: cam.Detect.Method, History: cam.Detect.History,
+		Threshold: cam.Detect.Threshold, LearningRate: -1, MinPixels: 6, Mask: cornersPolygon(cam),
+		MinArea: cam.Detect.MinArea,
+	}
+	if h, err := poolHomography(cam); err == nil {
+		dc.PixelArea = func(p vision.Point) float64 {
+			m := homography.MetresPerPixel(h, homography.Point{X: p.X, Y: p.Y})
+			return m * m
+		}
+	}
+	return dc
+}
+
+// detectOverrides are the detect settings a replay or sweep may set from
+// flags; zero values keep the camera's own.
+type detectOverrides struct {
+	Threshold float64
+	MinArea   float64
+	Persist   time.Duration
+}
+
+func (o *detectOverrides) register(fs *flag.FlagSet) {
+	fs.Float64Var(&o.Threshold, "threshold", 0, "background model `threshold` (0: the camera's)")
+	fs.Float64Var(&o.MinArea, "min-area", 0, "smallest blob in `m²` that may alarm (0: the camera's)")
+	fs.DurationVar(&o.Persist, "persist", 0, "how long a track must last before it alarms (0: the camera's)")
+}
+
+// validate rejects negative overrides.
+func (o detectOverrides) validate() error {
+	switch {
+	case o.Threshold < 0:
+		return fmt.Errorf("-threshold %g: want a positive value", o.Threshold)
+	case o.MinArea < 0:
+		return fmt.Errorf("-min-area %g: want a positive area in m²", o.MinArea)
+	case o.Persist < 0:
+		return fmt.Errorf("-persist %v: want a positive duration such as 700ms", o.Persist)
+	}
+	return nil
+}
+
+func (o detectOverrides) apply(d DetectConfig) DetectConfig {
+	if o.Threshold > 0 {
+		d.Threshold = o.Threshold
+	}
+	if o.MinArea > 0 {
+		d.MinArea = o.MinArea
+	}
+	if o.Persist > 0 {
+		d.Persist = Duration(o.Persist)
+	}
+	return d
+}

@@ -1,12 +1,253 @@
+// Command stillwater replay runs the daemon's detection pipeline over a
+// recorded clip as fast as the CPU allows and writes every message it would
+// publish as one JSON line.
 package main
 
 import (
+	"bufio"
 	"context"
+	"encoding/json"
 	"errors"
+	"flag"
+	"fmt"
+	"image"
 	"io"
+	"log/slog"
+	"math"
+	"os"
+	"time"
+
+	"stillwater/alert"
+	"stillwater/vision"
+	"stillwater/vision/synth"
 )
 
-// runReplay is being written; see the issue notes.
+// replayEpoch is the wall time given to media time 0 of a replayed clip, so
+// that the same clip gives the same bytes on every run.
+func replayEpoch() time.Time { return time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC) }
+
+// replayLine is one line of replay output: the subject and payload the
+// daemon would publish, with the clip's frame index and media time.
+type replayLine struct {
+	Subject string          `json:"subject"`
+	Frame   int             `json:"frame"`
+	Media   float64         `json:"media_s"` // seconds from the first frame
+	Msg     json.RawMessage `json:"msg"`     // the bus payload, verbatim
+}
+
+// replayStats summarises one replay.
+type replayStats struct {
+	Frames   int
+	Media    time.Duration // media time of the last frame
+	Messages int
+	Elapsed  time.Duration
+}
+
+// runReplay is "stillwater replay".
 func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	return errors.New("replay: not built yet")
+	fs := flag.NewFlagSet("replay", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	clip := fs.String("clip", "", "video `file` to replay")
+	cfgPath := fs.String("config", "", "daemon config `file` (with -camera)")
+	camID := fs.String("camera", "", "camera `id` in the config whose settings to use")
+	labels := fs.String("labels", "", "stillwater.labels/v1 `file` giving pool size and corners (instead of -config)")
+	out := fs.String("out", "", "output `file` (default standard output)")
+	prefix := fs.String("prefix", "stillwater", "bus subject `prefix` with -labels")
+	verbose := fs.Bool("v", false, "log at debug level to standard error")
+	var ov detectOverrides
+	ov.register(fs)
+	if err := fs.Parse(args); err != nil {
+		return errUsage
+	}
+	if *clip == "" {
+		return fmt.Errorf("replay: -clip is required: %w", errUsage)
+	}
+	if err := ov.validate(); err != nil {
+		return fmt.Errorf("replay: %w: %w", err, errUsage)
+	}
+	var cam CameraConfig
+	pfx := *prefix
+	switch {
+	case *labels != "" && *cfgPath != "":
+		return fmt.Errorf("replay: give either -labels or -config, not both: %w", errUsage)
+	case *labels != "":
+		t, err := synth.ReadTruth(*labels)
+		if err != nil {
+			return fmt.Errorf("replay: %w", err)
+		}
+		cam, err = cameraFromLabels(t, *clip)
+		if err != nil {
+			return fmt.Errorf("replay: labels %s: %w", *labels, err)
+		}
+	case *cfgPath != "":
+		cfg, err := LoadConfig(*cfgPath)
+		if err != nil {
+			return fmt.Errorf("replay: %w", err)
+		}
+		c, ok := findCamera(cfg, *camID)
+		if !ok {
+			return fmt.Errorf("replay: config %s has no camera %q (use -camera): %w", *cfgPath, *camID, errUsage)
+		}
+		cam, pfx = c, cfg.Bus.Prefix
+		cam.Source = *clip
+	default:
+		return fmt.Errorf("replay: give -labels or -config and -camera: %w", errUsage)
+	}
+	cam.Detect = ov.apply(cam.Detect)
+	if err := validateDetect("replay", cam.Detect); err != nil {
+		return fmt.Errorf("replay: %w", err)
+	}
+	w := stdout
+	if *out != "" {
+		f, err := os.Create(*out)
+		if err != nil {
+			return fmt.Errorf("replay: %w", err)
+		}
+		defer f.Close()
+		w = f
+	}
+	lv := slog.LevelWarn
+	if *verbose {
+		lv = slog.LevelDebug
+	}
+	log := slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: lv}))
+	bw := bufio.NewWriter(w)
+	st, err := replayClip(ctx, cam, pfx, bw, log)
+	if ferr := bw.Flush(); err == nil && ferr != nil {
+		err = fmt.Errorf("replay: write output: %w", ferr)
+	}
+	if err != nil {
+		return err
+	}
+	fmt.Fprintf(stderr, "replay: %d frames (%.1f s of media) in %.1f s, %d messages\n", st.Frames, st.Media.Seconds(), st.Elapsed.Seconds(), st.Messages)
+	return nil
+}
+
+// findCamera returns the camera with id, or the only camera when id is empty.
+func findCamera(cfg Config, id string) (CameraConfig, bool) {
+	if id == "" && len(cfg.Cameras) == 1 {
+		return cfg.Cameras[0], true
+	}
+	for _, c := range cfg.Cameras {
+		if c.ID == id {
+			return c, true
+		}
+	}
+	return CameraConfig{}, false
+}
+
+// cameraFromLabels builds a camera with the default detect settings from a
+// label file's pool size and corners A, B, C, D.
+func cameraFromLabels(t synth.Truth, clip string) (CameraConfig, error) {
+	if t.Pool.Length <= 0 || t.Pool.Width <= 0 {
+		return CameraConfig{}, fmt.Errorf("pool %gx%g m: both sides must be positive", t.Pool.Length, t.Pool.Width)
+	}
+	if len(t.Corners) != 4 {
+		return CameraConfig{}, fmt.Errorf("%d corners; want A, B, C, D", len(t.Corners))
+	}
+	cam := CameraConfig{
+		ID: "clip", Source: clip,
+		CalibrationConfig: CalibrationConfig{Pool: PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width}},
+		Detect:            defaultDetect(),
+	}
+	for _, c := range t.Corners {
+		cam.Corners = append(cam.Corners, c.Pixel)
+	}
+	return cam, nil
+}
+
+// replaySink collects a frame's messages.
+type replaySink struct {
+	prefix string
+	enc    *json.Encoder
+	n      int
+}
+
+func (s *replaySink) write(m outMsg) error {
+	s.n++
+	return s.enc.Encode(replayLine{
+		Subject: alert.Subject(s.prefix, m.Camera, m.Kind),
+		Frame:   m.Frame,
+		Media:   math.Round(m.Media.Seconds()*1e6) / 1e6,
+		Msg:     json.RawMessage(m.Data),
+	})
+}
+
+// replayClip runs the daemon's pipeline (the same camera, detector,
+// processor and step, always armed) over cam.Source and writes each message
+// to w. Wall-clock fields of the messages are taken from media time after
+// replayEpoch, so the output is reproducible.
+func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Writer, log *slog.Logger) (replayStats, error) {
+	var st replayStats
+	start := time.Now()
+	zones, err := newZoneSet(cam)
+	if err != nil {
+		return st, err
+	}
+	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source}, detectorConfig(cam))
+	if err != nil {
+		return st, err
+	}
+	defer vc.Close()
+	epoch := replayEpoch()
+	var media time.Duration
+	now := func() time.Time { return epoch.Add(media) }
+	proc, err := newProcessor(cam, vc.FPS(), epoch, now, log, nil)
+	if err != nil {
+		return st, err
+	}
+	sink := &replaySink{prefix: prefix, enc: json.NewEncoder(w)}
+	sink.enc.SetEscapeHTML(false)
+	var hold []image.Rectangle
+	for {
+		if err := ctx.Err(); err != nil {
+			return st, err
+		}
+		r, err := vc.Next(hold)
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		if err != nil {
+			return st, fmt.Errorf("replay %s: %w", vision.Redact(cam.Source), err)
+		}
+		media = r.Media
+		st.Frames, st.Media = r.Index+1, r.Media
+		r = zones.filter(r, proc.toPool, log, nil)
+		msgs, h := proc.step(r, true)
+		hold = h
+		for _, m := range msgs {
+			if err := sink.write(m); err != nil {
+				return st, fmt.Errorf("replay: write output: %w", err)
+			}
+		}
+	}
+	st.Messages = sink.n
+	st.Elapsed = time.Since(start)
+	return st, nil
+}
+
+// readReplay parses replay output.
+func readReplay(r io.Reader, name string) ([]replayLine, error) {
+	var out []replayLine
+	sc := bufio.NewScanner(r)
+	sc.Buffer(make([]byte, 64<<10), 4<<20)
+	n := 0
+	for sc.Scan() {
+		n++
+		if len(sc.Bytes()) == 0 {
+			continue
+		}
+		var l replayLine
+		if err := json.Unmarshal(sc.Bytes(), &l); err != nil {
+			return nil, fmt.Errorf("%s:%d: %w", name, n, err)
+		}
+		if len(l.Msg) == 0 {
+			return nil, fmt.Errorf("%s:%d: no msg", name, n)
+		}
+		out = append(out, l)
+	}
+	if err := sc.Err(); err != nil {
+		return nil, fmt.Errorf("%s: %w", name, err)
+	}
+	return out, nil
 }

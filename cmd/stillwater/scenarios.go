@@ -33,9 +33,13 @@ func scenarios(seed int64) map[string]synth.Scene {
 		"cloud":  with(func(s *synth.Scene) { s.Cloud = &synth.Cloud{Start: 6, Ramp: 2, Hold: 5, Depth: 0.45} }),
 		"leaves": with(func(s *synth.Scene) { s.Leaves = 25 }),
 		// The bird lands on the coping beside the long wall, outside the water.
-		"bird":  with(func(s *synth.Scene) { s.Bird = &synth.Bird{Start: 6, Stay: 3, X: 4, Y: -0.45} }),
-		"deck":  with(func(s *synth.Scene) { s.DeckWalker = true }),
-		"night": with(func(s *synth.Scene) { s.Night = true }),
+		"bird": with(func(s *synth.Scene) { s.Bird = &synth.Bird{Start: 6, Stay: 3, X: 4, Y: -0.45} }),
+		// The same bird sits on the water for 3 s. The renderer's bird is
+		// pigeon-sized (about 0.026 m² from above), above the smallest child
+		// area, so this is a known limit, not an intruder-free scene.
+		"bird-water": with(func(s *synth.Scene) { s.Bird = &synth.Bird{Start: 6, Stay: 3, X: 4, Y: 1.5} }),
+		"deck":       with(func(s *synth.Scene) { s.DeckWalker = true }),
+		"night":      with(func(s *synth.Scene) { s.Night = true }),
 		"submerged": with(func(s *synth.Scene) {
 			*s = child(*s, walkIn)
 			s.Intruders[0].Contrast = 0.35

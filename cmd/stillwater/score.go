@@ -1,12 +1,342 @@
+// Command stillwater score compares replay output with the clip's labels:
+// detection, first-alert delay, false alarms, position error and track
+// breaks, per clip and in total.
 package main
 
 import (
 	"context"
-	"errors"
+	"encoding/json"
+	"flag"
+	"fmt"
 	"io"
+	"math"
+	"os"
+	"sort"
+	"strings"
+	"text/tabwriter"
+	"time"
+
+	"stillwater/alert"
+	"stillwater/vision/synth"
 )
 
-// runScore is being written; see the issue notes.
+// scoreRules say how replay messages are matched to the labels.
+type scoreRules struct {
+	// Grace is how long after a presence interval ends a target still
+	// belongs to it (the alarm reports what it saw a moment ago).
+	Grace time.Duration
+	// FarM is the distance, m, beyond which a target's first position is
+	// not the labelled intruder: its track is a false alarm.
+	FarM float64
+	// MaxGap is the longest silence between two targets of one track that
+	// still counts as tracked without a break (twice the default 0.5 s
+	// update interval).
+	MaxGap time.Duration
+}
+
+func defaultScoreRules() scoreRules {
+	return scoreRules{Grace: time.Second, FarM: 1.0, MaxGap: time.Second}
+}
+
+// clipScore is the result for one clip. Times are seconds of media time.
+type clipScore struct {
+	Name      string
+	Duration  float64 // s of footage
+	FreeHours float64 // hours of intruder-free footage
+	Presences int
+	Detected  int       // presence intervals with a target
+	Delays    []float64 // s from entry to the first target, per detected interval
+	False     int       // target tracks not explained by an intruder
+	Errors    []float64 // m, per target message with a labelled position
+	Breaks    int       // extra track ids and clears during presence intervals
+	// Tracked is the longest time, s, one track kept reporting an intruder
+	// with no silence longer than MaxGap.
+	Tracked float64
+}
+
+// missed returns the number of presence intervals without a target.
+func (c clipScore) missed() int { return c.Presences - c.Detected }
+
+// scoreClip scores one replay against its labels.
+func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules) (clipScore, error) {
+	cs := clipScore{Name: name, Presences: len(t.Presence)}
+	if t.Frames <= 0 {
+		return cs, fmt.Errorf("score %s: labels give no frame count; set \"frames\" to the clip's number of frames", name)
+	}
+	cs.Duration = float64(t.Frames) / t.FPS
+	free := cs.Duration
+	for _, p := range t.Presence {
+		free -= math.Min(p.To, cs.Duration) - p.From
+	}
+	cs.FreeHours = math.Max(0, free) / 3600
+	grace := rules.Grace.Seconds()
+	during := func(s float64) int {
+		for i, p := range t.Presence {
+			if s >= p.From && s < p.To+grace {
+				return i
+			}
+		}
+		return -1
+	}
+	truthAt := func(frame int) *synth.Occupation {
+		if frame < 0 || frame >= len(t.PerFrame) || t.PerFrame[frame].Frame != frame {
+			return nil
+		}
+		return t.PerFrame[frame].Intruder
+	}
+	// A track is judged at its start: false when no intruder is present, or
+	// when the labelled intruder is farther than FarM.
+	falseTrack := map[int]bool{}
+	first := make([]float64, len(t.Presence))
+	for i := range first {
+		first[i] = math.NaN()
+	}
+	type run struct {
+		track       int
+		from, until float64
+	}
+	runs := make([]run, len(t.Presence))
+	ids := make([]map[int]bool, len(t.Presence))
+	for i := range ids {
+		ids[i] = map[int]bool{}
+	}
+	for n, l := range lines {
+		var k struct {
+			Kind string `json:"kind"`
+		}
+		if err := json.Unmarshal(l.Msg, &k); err != nil {
+			return cs, fmt.Errorf("score %s: line %d: %w", name, n+1, err)
+		}
+		switch k.Kind {
+		case alert.KindTarget:
+			var tg alert.Target
+			if err := json.Unmarshal(l.Msg, &tg); err != nil {
+				return cs, fmt.Errorf("score %s: line %d: %w", name, n+1, err)
+			}
+			pi := during(l.Media)
+			occ := truthAt(l.Frame)
+			if tg.Event == "start" {
+				far := occ != nil && math.Hypot(tg.Surface.X-occ.X, tg.Surface.Y-occ.Y) > rules.FarM
+				if pi < 0 || far {
+					falseTrack[tg.Track] = true
+					cs.False++
+					continue
+				}
+			}
+			if falseTrack[tg.Track] || pi < 0 {
+				continue
+			}
+			if math.IsNaN(first[pi]) {
+				first[pi] = l.Media
+				runs[pi] = run{tg.Track, l.Media, l.Media}
+			}
+			if r := &runs[pi]; r.track != tg.Track || l.Media-r.until > rules.MaxGap.Seconds() {
+				*r = run{tg.Track, l.Media, l.Media}
+			} else {
+				r.until = l.Media
+			}
+			cs.Tracked = math.Max(cs.Tracked, runs[pi].until-runs[pi].from)
+			ids[pi][tg.Track] = true
+			if occ != nil {
+				cs.Errors = append(cs.Errors, math.Hypot(tg.Surface.X-occ.X, tg.Surface.Y-occ.Y))
+			}
+		case alert.KindCleared:
+			var c alert.Cleared
+			if err := json.Unmarshal(l.Msg, &c); err != nil {
+				return cs, fmt.Errorf("score %s: line %d: %w", name, n+1, err)
+			}
+			for _, p := range t.Presence {
+				// A clear while the intruder is still in the water.
+				if l.Media >= p.From && l.Media < p.To && !falseTrack[c.Track] {
+					cs.Breaks++
+				}
+			}
+		}
+	}
+	for i, p := range t.Presence {
+		if !math.IsNaN(first[i]) {
+			cs.Detected++
+			cs.Delays = append(cs.Delays, first[i]-p.From)
+		}
+		if len(ids[i]) > 1 {
+			cs.Breaks += len(ids[i]) - 1
+		}
+	}
+	return cs, nil
+}
+
+// scoreTotal pools clip scores.
+type scoreTotal struct {
+	Clips, Presences, Detected, False, Breaks int
+	FreeHours                                 float64
+	Delays, Errors                            []float64
+}
+
+func totalOf(cs []clipScore) scoreTotal {
+	var t scoreTotal
+	for _, c := range cs {
+		t.Clips++
+		t.Presences += c.Presences
+		t.Detected += c.Detected
+		t.False += c.False
+		t.Breaks += c.Breaks
+		t.FreeHours += c.FreeHours
+		t.Delays = append(t.Delays, c.Delays...)
+		t.Errors = append(t.Errors, c.Errors...)
+	}
+	return t
+}
+
+// falsePerHour is false alarms per hour of intruder-free footage; NaN
+// without such footage.
+func (t scoreTotal) falsePerHour() float64 {
+	if t.FreeHours == 0 {
+		return math.NaN()
+	}
+	return float64(t.False) / t.FreeHours
+}
+
+// quantile returns the q-quantile of v by linear interpolation between
+// order statistics (NaN for none).
+func quantile(v []float64, q float64) float64 {
+	if len(v) == 0 {
+		return math.NaN()
+	}
+	s := append([]float64(nil), v...)
+	sort.Float64s(s)
+	pos := q * float64(len(s)-1)
+	lo := int(math.Floor(pos))
+	hi := int(math.Ceil(pos))
+	return s[lo] + (pos-float64(lo))*(s[hi]-s[lo])
+}
+
+func maxOf(v []float64) float64 {
+	m := math.NaN()
+	for _, x := range v {
+		if math.IsNaN(m) || x > m {
+			m = x
+		}
+	}
+	return m
+}
+
+// scoreLimits turn a score into pass or fail; negative fields are unset.
+type scoreLimits struct {
+	MaxDelay  time.Duration // worst first-alert delay
+	MaxFalse  int           // false alarms in total
+	MaxP95    float64       // m, 95th percentile position error
+	MaxBreaks int
+}
+
+// check returns one line per broken limit.
+func (l scoreLimits) check(t scoreTotal) []string {
+	var out []string
+	if t.Detected < t.Presences {
+		out = append(out, fmt.Sprintf("%d of %d intruder presences never raised a target", t.Presences-t.Detected, t.Presences))
+	}
+	if l.MaxDelay >= 0 {
+		if d := maxOf(t.Delays); d > l.MaxDelay.Seconds() {
+			out = append(out, fmt.Sprintf("worst first-alert delay %.2f s exceeds %v", d, l.MaxDelay))
+		}
+	}
+	if l.MaxFalse >= 0 && t.False > l.MaxFalse {
+		out = append(out, fmt.Sprintf("%d false alarms exceed %d", t.False, l.MaxFalse))
+	}
+	if l.MaxP95 >= 0 {
+		if p := quantile(t.Errors, 0.95); p > l.MaxP95 {
+			out = append(out, fmt.Sprintf("p95 position error %.3f m exceeds %g m", p, l.MaxP95))
+		}
+	}
+	if l.MaxBreaks >= 0 && t.Breaks > l.MaxBreaks {
+		out = append(out, fmt.Sprintf("%d track breaks exceed %d", t.Breaks, l.MaxBreaks))
+	}
+	return out
+}
+
+// writeScores prints the per-clip table and the total.
+func writeScores(w io.Writer, cs []clipScore) {
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
+	fmt.Fprintln(tw, "clip\tfootage s\tdetected\tdelay s\tfalse\tfalse/h\terr med m\terr p95 m\tbreaks\t")
+	row := func(name string, dur float64, t scoreTotal) {
+		det := "-"
+		if t.Presences > 0 {
+			det = fmt.Sprintf("%d/%d", t.Detected, t.Presences)
+		}
+		fmt.Fprintf(tw, "%s\t%.0f\t%s\t%s\t%d\t%s\t%s\t%s\t%d\t\n", name, dur, det, fmtNum(maxOf(t.Delays), 2), t.False,
+			fmtNum(t.falsePerHour(), 1), fmtNum(quantile(t.Errors, 0.5), 3), fmtNum(quantile(t.Errors, 0.95), 3), t.Breaks)
+	}
+	var dur float64
+	for _, c := range cs {
+		row(c.Name, c.Duration, totalOf([]clipScore{c}))
+		dur += c.Duration
+	}
+	t := totalOf(cs)
+	row("total", dur, t)
+	tw.Flush()
+	fmt.Fprintf(w, "first-alert delay: median %s s, worst %s s over %d detections; intruder-free footage %.2f h\n",
+		fmtNum(quantile(t.Delays, 0.5), 2), fmtNum(maxOf(t.Delays), 2), len(t.Delays), t.FreeHours)
+}
+
+func fmtNum(v float64, prec int) string {
+	if math.IsNaN(v) {
+		return "-"
+	}
+	return fmt.Sprintf("%.*f", prec, v)
+}
+
+// runScore is "stillwater score replay.jsonl labels.json [replay labels ...]".
 func runScore(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	return errors.New("score: not built yet")
+	fs := flag.NewFlagSet("score", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	fs.Usage = func() {
+		fmt.Fprintln(stderr, "usage: stillwater score [flags] replay.jsonl labels.json [replay.jsonl labels.json ...]")
+		fs.PrintDefaults()
+	}
+	lim := scoreLimits{}
+	fs.DurationVar(&lim.MaxDelay, "max-delay", -1, "fail when the worst first-alert delay exceeds this `duration`")
+	fs.IntVar(&lim.MaxFalse, "max-false", -1, "fail when there are more false alarms than this `count`")
+	fs.Float64Var(&lim.MaxP95, "max-p95", -1, "fail when the 95th percentile position error exceeds this many `metres`")
+	fs.IntVar(&lim.MaxBreaks, "max-breaks", -1, "fail when there are more track breaks than this `count`")
+	rules := defaultScoreRules()
+	fs.Float64Var(&rules.FarM, "far", rules.FarM, "`metres` from the intruder beyond which a new target is a false alarm")
+	fs.DurationVar(&rules.Grace, "grace", rules.Grace, "how long after the intruder leaves a target still counts as theirs")
+	if err := fs.Parse(args); err != nil {
+		return errUsage
+	}
+	rest := fs.Args()
+	if len(rest) == 0 || len(rest)%2 != 0 {
+		fs.Usage()
+		return fmt.Errorf("score: want pairs of replay output and label file, got %d arguments: %w", len(rest), errUsage)
+	}
+	var cs []clipScore
+	for i := 0; i < len(rest); i += 2 {
+		c, err := scoreFiles(rest[i], rest[i+1], rules)
+		if err != nil {
+			return err
+		}
+		cs = append(cs, c)
+	}
+	writeScores(stdout, cs)
+	if bad := lim.check(totalOf(cs)); len(bad) > 0 {
+		return fmt.Errorf("score: %s", strings.Join(bad, "; "))
+	}
+	return nil
+}
+
+// scoreFiles reads one replay output and its labels and scores them.
+func scoreFiles(replayPath, labelPath string, rules scoreRules) (clipScore, error) {
+	f, err := os.Open(replayPath)
+	if err != nil {
+		return clipScore{}, fmt.Errorf("score: %w", err)
+	}
+	defer f.Close()
+	lines, err := readReplay(f, replayPath)
+	if err != nil {
+		return clipScore{}, fmt.Errorf("score: %w", err)
+	}
+	t, err := synth.ReadTruth(labelPath)
+	if err != nil {
+		return clipScore{}, fmt.Errorf("score: %w", err)
+	}
+	return scoreClip(replayPath, lines, t, rules)
 }

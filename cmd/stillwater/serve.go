@@ -9,11 +9,10 @@ import (
 	"net"
 	"net/http"
 	"os"
-	"path/filepath"
 	"runtime/debug"
+	"sync"
 	"time"
 
-	"github.com/nats-io/nats.go"
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
@@ -55,28 +54,6 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 		return fmt.Errorf("data_dir %s: %w", cfg.DataDir, err)
 	}
 
-	busURL := cfg.Bus.URL
-	var emb *alert.Embedded
-	if busURL == "" {
-		var err error
-		emb, err = alert.StartEmbedded(alert.EmbeddedConfig{Listen: cfg.Bus.Listen, StoreDir: filepath.Join(cfg.DataDir, "jetstream"), MQTT: cfg.Bus.MQTT})
-		if err != nil {
-			return err
-		}
-		defer emb.Shutdown()
-		busURL = emb.URL()
-		log.Info("embedded bus started", "url", busURL)
-	}
-	nc, err := nats.Connect(busURL, nats.Name("stillwater"), nats.MaxReconnects(-1), nats.ReconnectWait(500*time.Millisecond))
-	if err != nil {
-		return fmt.Errorf("connect bus %s: %w", busURL, err)
-	}
-	defer nc.Close()
-	pub, err := alert.NewPublisher(ctx, nc, cfg.Bus.Prefix, alert.StreamConfig{})
-	if err != nil {
-		return err
-	}
-
 	reg := d.Registry
 	if reg == nil {
 		reg = prometheus.NewRegistry()
@@ -86,21 +63,59 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	met := newMetrics(reg, version)
 	log.Info("stillwater starting", "version", version, "cameras", len(cfg.Cameras))
 
-	arm, err := newArmBoard(cfg)
+	sch, err := cfg.schedules()
 	if err != nil {
 		return err
 	}
-	bs := &busSink{pub: pub, nc: nc, prefix: cfg.Bus.Prefix, met: met}
-	watches := make([]*cameraWatch, len(cfg.Cameras))
-	for i, cam := range cfg.Cameras {
-		id := cam.ID
-		armed := func(t time.Time) bool { return arm.armed(id, t) }
-		watches[i] = newCameraWatch(cam, bs, armed, now, log, met.camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version)
+	ids := make([]string, len(cfg.Cameras))
+	for i, c := range cfg.Cameras {
+		ids[i] = c.ID
 	}
+	var watches []*cameraWatch
+	var watchMu sync.Mutex // watches is filled after the bus opens; hooks may fire before
+	bus, err := openBus(ctx, cfg, alert.ArmingConfig{Cameras: ids, Schedules: sch}, now, log, busHooks{
+		OnResult: func(r alert.PublishResult) {
+			if r.Err == nil {
+				met.pubSecs.WithLabelValues(r.Kind).Observe(r.Latency.Seconds())
+			}
+		},
+		OnBacklog: func(active bool, st alert.Stats) {
+			watchMu.Lock()
+			defer watchMu.Unlock()
+			detail := fmt.Sprintf("%d messages wait in the outbox, oldest from %s", st.Depth, st.Oldest.UTC().Format(time.RFC3339))
+			for _, w := range watches {
+				w.raise(ctx, alert.FaultBusBacklog, active, detail)
+			}
+		},
+		OnRefused: func(via string) { met.refused.WithLabelValues(via).Inc() },
+	})
+	if err != nil {
+		return err
+	}
+	defer bus.Close()
+	busURL, nc, pub := bus.URL, bus.Conn, bus.Pub
+	if bus.Embedded != nil {
+		busURL = bus.Embedded.URL()
+	}
+	reg.MustRegister(
+		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_depth", Help: "Messages waiting in the outbox for the bus."},
+			func() float64 { return float64(pub.Stats().Depth) }),
+		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_dropped_total", Help: "Messages the outbox dropped or refused because it was full."},
+			func() float64 { return float64(pub.Stats().Lost()) }))
+
+	bs := &busSink{pub: pub, met: met}
+	watchMu.Lock()
+	for _, cam := range cfg.Cameras {
+		id := cam.ID
+		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
+		watches = append(watches, newCameraWatch(cam, bs, armed, now, log, met.camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version))
+	}
+	watchMu.Unlock()
 
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
 	mux.HandleFunc("/healthz", func(w http.ResponseWriter, _ *http.Request) { fmt.Fprintln(w, "ok") })
+	mux.Handle("/control/", bus.Control.Handler())
 	mux.HandleFunc("/readyz", func(w http.ResponseWriter, _ *http.Request) {
 		problems := readiness(now(), watches, nc.IsConnected())
 		if len(problems) > 0 {
@@ -136,6 +151,13 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 		httpDone <- nil
 	}()
 
+	// The bus side (outbox drain, control requests, armed changes) runs
+	// until the cameras have stopped and the outbox has been flushed.
+	busCtx, stopBus := context.WithCancel(context.Background())
+	defer stopBus()
+	busDone := make(chan error, 1)
+	go func() { busDone <- bus.Run(busCtx) }()
+
 	g, gctx := errgroup.WithContext(ctx)
 	camsDone := make(chan struct{})
 	go func() {
@@ -144,7 +166,9 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 			case <-camsDone:
 				return
 			case nc := <-d.Reload:
-				applyReload(log, cfg, nc, watches, arm)
+				applyReload(log, cfg, nc, watches, func(sch map[string]*alert.Schedule) error {
+					return bus.Arming.SetSchedules(nil, sch, now())
+				})
 			}
 		}
 	}()
@@ -163,7 +187,11 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	fctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
 	defer cancel()
 	if err := pub.Flush(fctx); err != nil {
-		log.Error("flush bus", "err", err)
+		log.Error("flush bus; what is left stays in the outbox for the next start", "err", err, "depth", pub.Stats().Depth)
+	}
+	stopBus()
+	if err := <-busDone; err != nil {
+		log.Error("bus", "err", err)
 	}
 	stopHTTP()
 	return <-httpDone
@@ -172,7 +200,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 // applyReload hands each running camera its new settings and swaps the
 // schedules. Cameras added, removed or pointed at another source need a
 // restart; that is logged, not done.
-func applyReload(log *slog.Logger, old, next Config, watches []*cameraWatch, arm *armBoard) {
+func applyReload(log *slog.Logger, old, next Config, watches []*cameraWatch, setSchedules func(map[string]*alert.Schedule) error) {
 	sch, err := next.schedules()
 	if err != nil {
 		log.Error("reload refused", "err", err)
@@ -202,7 +230,9 @@ func applyReload(log *slog.Logger, old, next Config, watches []*cameraWatch, arm
 	for id := range byID {
 		log.Warn("reload: new camera in the config; restart to start it", "camera", id)
 	}
-	arm.setSchedules(sch)
+	if err := setSchedules(sch); err != nil {
+		log.Error("reload: schedules refused", "err", err)
+	}
 	log.Info("configuration reloaded", "cameras", len(watches))
 }
 
@@ -252,27 +282,21 @@ func buildVersion() string {
 	return "devel-" + rev
 }
 
-// busSink publishes to the bus and counts. Heartbeats go out as plain
-// messages; everything else goes to the stream.
+// busSink hands messages to the publisher: targets, clears, faults and
+// armed changes go to the stream (or the outbox while the bus is down);
+// heartbeats are plain messages, dropped while disconnected.
 type busSink struct {
-	pub    *alert.Publisher
-	nc     *nats.Conn
-	prefix string
-	met    *metrics
+	pub *alert.Publisher
+	met *metrics
 }
 
 func (b *busSink) send(ctx context.Context, m outMsg) error {
 	t0 := time.Now()
-	if m.Kind == alert.KindBeat {
-		if err := b.nc.Publish(alert.Subject(b.prefix, m.Camera, m.Kind), m.Data); err != nil {
-			return err
+	if err := b.pub.Publish(ctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
+		if m.Kind == alert.KindBeat && errors.Is(err, alert.ErrBusDown) {
+			return nil
 		}
-	} else {
-		pctx, cancel := context.WithTimeout(ctx, 5*time.Second)
-		defer cancel()
-		if err := b.pub.Publish(pctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
-			return err
-		}
+		return err
 	}
 	b.met.camera(m.Camera).published(m.Kind, time.Since(t0))
 	return nil

@@ -115,14 +115,17 @@ func (w *cameraWatch) raise(ctx context.Context, kind string, active bool, msg s
 	} else {
 		w.log.Warn("camera fault cleared", "fault", kind, "detail", msg)
 	}
-	seq := w.seq.Add(1)
-	f := alert.Fault{V: alert.Version, Kind: alert.KindFault, Camera: w.cam.ID, Seq: seq, Time: w.now().UTC(), Fault: kind, Message: msg, Active: active}
+	f := alert.NewFault(w.cam.ID, w.seq.Add(1), w.now(), kind, active, msg)
+	w.sendFault(ctx, f)
+}
+
+func (w *cameraWatch) sendFault(ctx context.Context, f alert.Fault) {
 	b, err := alert.Encode(f)
 	if err != nil {
 		w.log.Error("cannot encode fault", "err", err)
 		return
 	}
-	w.send(ctx, outMsg{Camera: w.cam.ID, Kind: alert.KindFault, ID: w.msgID(seq, kind), Data: b})
+	w.send(ctx, outMsg{Camera: w.cam.ID, Kind: alert.KindFault, ID: alert.FaultID(f, w.epoch), Data: b})
 }
 
 func (w *cameraWatch) beat(ctx context.Context, now time.Time, fps float64, up, armed bool) {

@@ -6,6 +6,7 @@ import (
 	"io"
 	"log/slog"
 	"path/filepath"
+	"runtime"
 	"sync"
 	"testing"
 	"time"
@@ -86,6 +87,8 @@ func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
 			select {
 			case result = <-done:
 			case <-time.After(20 * time.Second):
+				buf := make([]byte, 1<<20)
+				t.Logf("daemon did not stop; goroutines:\n%s", buf[:runtime.Stack(buf, true)])
 				result = context.DeadlineExceeded
 			}
 			nc.Close()

@@ -37,11 +37,22 @@ type FrameTruth struct {
 }
 
 // Occupation is where an intruder is: the centre of its visible outline in
-// pool metres on the water surface, and that outline's area.
+// pool metres on the water surface, and that outline's area. For an
+// intruder below the surface, X and Y are where the camera sees it (the
+// refracted, apparent position) and Under says where it really is.
 type Occupation struct {
-	X    float64 `json:"x_m"`
-	Y    float64 `json:"y_m"`
-	Area float64 `json:"area_m2"`
+	X     float64    `json:"x_m"`
+	Y     float64    `json:"y_m"`
+	Area  float64    `json:"area_m2"`
+	Under *Submerged `json:"submerged,omitempty"`
+}
+
+// Submerged is the true position of an intruder below the water surface:
+// the centre of its outline in pool metres and its depth in metres.
+type Submerged struct {
+	X     float64 `json:"x_m"`
+	Y     float64 `json:"y_m"`
+	Depth float64 `json:"depth_m"`
 }
 
 // Truth is the label file written beside a clip. Hand-written labels for a
@@ -523,7 +534,16 @@ func (r *renderer) paintIntruders(t, light float64) *Occupation {
 			sv += float64(i / r.top.X)
 		}
 		ppm := r.s.PPM
-		cu, cv := r.toTop(x, y)
+		// Below the surface the child is drawn where its sight line
+		// enters the water; the shift is undone in the labels.
+		ax, ay := x, y
+		if in.Depth > 0 {
+			var err error
+			if ax, ay, err = r.s.Apparent(x, y, in.Depth); err != nil {
+				ax, ay = x, y
+			}
+		}
+		cu, cv := r.toTop(ax, ay)
 		ca, sa := math.Cos(ang), math.Sin(ang)
 		if in.Lying {
 			// Face-down float: torso and limbs along the heading.
@@ -538,6 +558,9 @@ func (r *renderer) paintIntruders(t, light float64) *Occupation {
 		if out == nil && cnt > 0 {
 			px, py := r.toPool(su/cnt, sv/cnt)
 			out = &Occupation{X: round6(px), Y: round6(py), Area: round6(cnt / (ppm * ppm))}
+			if in.Depth > 0 {
+				out.Under = &Submerged{X: round6(px + x - ax), Y: round6(py + y - ay), Depth: in.Depth}
+			}
 		}
 	}
 	return out

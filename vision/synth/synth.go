@@ -47,7 +47,17 @@ type Intruder struct {
 	Contrast float64
 	// Lying draws a child floating at the surface instead of upright.
 	Lying bool
+	// Depth is how far below the water surface the child is, metres (0 at
+	// the surface). Path then gives its true position at that depth, and
+	// it is drawn where the camera sees it: displaced by refraction at the
+	// surface (Snell's law, water index WaterIndex) towards the camera.
+	Depth float64
 }
+
+// WaterIndex is the refractive index of water the renderer bends sight
+// lines with: 1.33299 for pure water at 20 °C (CRC Handbook of Chemistry
+// and Physics), rounded.
+const WaterIndex = 1.333
 
 // Cloud dims the whole scene: it starts at Start, takes Ramp seconds to
 // reach Depth (0–1 fraction of light removed), holds for Hold seconds and
@@ -134,6 +144,9 @@ func (s Scene) Validate() error {
 		}
 		if in.Contrast < 0 || in.Contrast > 1 {
 			return fmt.Errorf("intruder %d: contrast %g outside 0–1", i, in.Contrast)
+		}
+		if in.Depth < 0 || in.Depth > 5 || math.IsNaN(in.Depth) {
+			return fmt.Errorf("intruder %d: depth %g m outside 0–5 m below the surface", i, in.Depth)
 		}
 	}
 	return nil

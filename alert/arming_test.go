@@ -1,0 +1,374 @@
+package alert
+
+import (
+	"context"
+	"os"
+	"path/filepath"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+)
+
+func mustSchedule(t testing.TB, zone string, windows ...string) *Schedule {
+	t.Helper()
+	s, err := ParseSchedule(zone, windows)
+	require.NoError(t, err)
+	return s
+}
+
+// pollEvery polls a from..to in steps and returns the changes after the
+// first poll, validating each against the armed schema.
+func pollEvery(t *testing.T, a *Arming, from, to time.Time, step time.Duration) []ArmedChange {
+	t.Helper()
+	a.Poll(from)
+	var out []ArmedChange
+	for now := from.Add(step); !now.After(to); now = now.Add(step) {
+		for _, c := range a.Poll(now) {
+			validateMessage(t, KindArmed, c)
+			out = append(out, c)
+		}
+	}
+	return out
+}
+
+type edge struct {
+	camera string
+	at     time.Time
+	armed  bool
+}
+
+func edges(cs []ArmedChange) []edge {
+	var out []edge
+	for _, c := range cs {
+		out = append(out, edge{c.Camera, c.Time, c.Armed})
+	}
+	return out
+}
+
+// The change instants follow the DST rules quoted in
+// TestDSTDatesFromTzdata (EU: last Sunday of March/October at 01:00 UTC;
+// US: second Sunday of March, first Sunday of November at 02:00 local).
+func TestArmingScheduleEdgesAcrossDST(t *testing.T) {
+	cases := []struct {
+		name     string
+		zone     string
+		windows  []string
+		from, to time.Time
+		want     []edge
+	}{
+		{
+			// 22:00 CET is 21:00 UTC; 06:00 CEST after the change is 04:00
+			// UTC: seven hours of arming, not eight.
+			name: "berlin spring night", zone: "Europe/Berlin", windows: []string{"daily 22:00-06:00"},
+			from: utc(2026, 3, 28, 20, 0), to: utc(2026, 3, 29, 6, 0),
+			want: []edge{{"north", utc(2026, 3, 28, 21, 0), true}, {"north", utc(2026, 3, 29, 4, 0), false}},
+		},
+		{
+			// 22:00 CEST is 20:00 UTC; 06:00 CET is 05:00 UTC: nine hours.
+			name: "berlin autumn night", zone: "Europe/Berlin", windows: []string{"daily 22:00-06:00"},
+			from: utc(2026, 10, 24, 19, 0), to: utc(2026, 10, 25, 6, 0),
+			want: []edge{{"north", utc(2026, 10, 24, 20, 0), true}, {"north", utc(2026, 10, 25, 5, 0), false}},
+		},
+		{
+			// 01:30 EST is 06:30 UTC; the clock jumps 02:00→03:00 and
+			// 03:00 EDT is 07:00 UTC: half an hour.
+			name: "new york spring", zone: "America/New_York", windows: []string{"sun 01:30-03:00"},
+			from: utc(2026, 3, 8, 5, 0), to: utc(2026, 3, 8, 9, 0),
+			want: []edge{{"north", utc(2026, 3, 8, 6, 30), true}, {"north", utc(2026, 3, 8, 7, 0), false}},
+		},
+		{
+			// 01:30 happens twice; the first (EDT, 05:30 UTC) starts it and
+			// 03:00 EST (08:00 UTC) ends it: two and a half hours.
+			name: "new york autumn", zone: "America/New_York", windows: []string{"sun 01:30-03:00"},
+			from: utc(2026, 11, 1, 4, 0), to: utc(2026, 11, 1, 9, 0),
+			want: []edge{{"north", utc(2026, 11, 1, 5, 30), true}, {"north", utc(2026, 11, 1, 8, 0), false}},
+		},
+		{
+			// A weekday window crossing midnight belongs to the day it
+			// starts on: Friday's runs into Saturday morning and no window
+			// starts on Saturday. CET is UTC+1 in December.
+			name: "across midnight into the weekend", zone: "Europe/Berlin", windows: []string{"mon-fri 18:00-08:00"},
+			from: utc(2026, 12, 4, 12, 0), to: utc(2026, 12, 6, 12, 0),
+			want: []edge{{"north", utc(2026, 12, 4, 17, 0), true}, {"north", utc(2026, 12, 5, 7, 0), false}},
+		},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"},
+				Schedules: map[string]*Schedule{"north": mustSchedule(t, c.zone, c.windows...)}}, c.from)
+			require.NoError(t, err)
+			// Polling every 7 minutes still dates each change exactly.
+			got := pollEvery(t, a, c.from, c.to, 7*time.Minute)
+			assert.Equal(t, c.want, edges(got), "south has no schedule and stays armed without a change")
+		})
+	}
+}
+
+func TestArmingFirstPollReportsEveryCamera(t *testing.T) {
+	now := utc(2026, 12, 2, 12, 0)
+	a, err := NewArming(ArmingConfig{Cameras: []string{"south", "north"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, now)
+	require.NoError(t, err)
+	cs := a.Poll(now)
+	require.Len(t, cs, 2)
+	assert.Equal(t, "north", cs[0].Camera)
+	assert.False(t, cs[0].Armed)
+	assert.Contains(t, cs[0].Reason, "outside every schedule window")
+	assert.Empty(t, a.Poll(now.Add(time.Second)), "no change, nothing to report")
+}
+
+func TestArmingOverrideExpires(t *testing.T) {
+	t0 := utc(2026, 12, 2, 12, 0) // outside the 20:00-06:00 window
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, t0)
+	require.NoError(t, err)
+	a.Poll(t0)
+
+	setAt := t0.Add(10 * time.Minute)
+	until := utc(2026, 12, 2, 15, 0)
+	require.NoError(t, a.Arm(AllCameras, until, "http:alice", setAt))
+	select {
+	case <-a.Changed():
+	default:
+		t.Fatal("Changed not signalled")
+	}
+	cs := a.Poll(setAt.Add(300 * time.Millisecond))
+	require.Len(t, cs, 2)
+	for _, c := range cs {
+		validateMessage(t, KindArmed, c)
+		assert.True(t, c.Armed)
+		assert.Equal(t, setAt, c.Time, "dated by the request")
+		require.NotNil(t, c.Until)
+		assert.Equal(t, until, *c.Until)
+		assert.Equal(t, "http:alice", c.By)
+		assert.Contains(t, c.Reason, "set by http:alice")
+	}
+	cs = pollEvery(t, a, setAt.Add(time.Second), utc(2026, 12, 2, 21, 0), time.Minute)
+	assert.Equal(t, []edge{
+		{"north", until, false}, {"south", until, false}, // override lapses exactly at until
+		{"north", utc(2026, 12, 2, 20, 0), true}, {"south", utc(2026, 12, 2, 20, 0), true},
+	}, edges(cs))
+
+	// Disarm one camera inside the armed window; it re-arms at the end.
+	t1 := utc(2026, 12, 2, 22, 0)
+	require.NoError(t, a.DisarmUntil("north", t1.Add(30*time.Minute), "nats:bob", t1))
+	armed, reason := a.Armed("north", t1.Add(time.Minute))
+	assert.False(t, armed)
+	assert.Contains(t, reason, "disarmed by override until 2026-12-02T22:30:00Z (set by nats:bob)")
+	armed, _ = a.Armed("south", t1.Add(time.Minute))
+	assert.True(t, armed, "the other camera keeps its state")
+	cs = pollEvery(t, a, t1, t1.Add(time.Hour), time.Minute)
+	assert.Equal(t, []edge{{"north", t1.Add(30 * time.Minute), true}}, edges(cs))
+
+	st := a.Status(t1.Add(10 * time.Minute))
+	require.Len(t, st.Cameras, 2)
+	require.NotNil(t, st.Cameras[0].Override)
+	assert.Equal(t, "nats:bob", st.Cameras[0].Override.By)
+	require.NotNil(t, st.Cameras[0].NextChange)
+	assert.Equal(t, t1.Add(30*time.Minute), *st.Cameras[0].NextChange)
+	require.NotNil(t, st.Cameras[1].NextChange)
+	assert.Equal(t, utc(2026, 12, 3, 6, 0), *st.Cameras[1].NextChange)
+}
+
+func TestArmingRefusesBadRequests(t *testing.T) {
+	now := utc(2026, 12, 2, 22, 0)
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, MaxDisarm: 12 * time.Hour}, now)
+	require.NoError(t, err)
+	cases := []struct {
+		name string
+		do   func() error
+		want string
+	}{
+		{"disarm without end", func() error { return a.DisarmUntil("north", time.Time{}, "x", now) }, "always ends"},
+		{"disarm in the past", func() error { return a.DisarmUntil("north", now.Add(-time.Minute), "x", now) }, "not in the future"},
+		{"disarm too long", func() error { return a.DisarmUntil("north", now.Add(13*time.Hour), "x", now) }, "longer than the 12h0m0s allowed"},
+		{"unknown camera", func() error { return a.DisarmUntil("south", now.Add(time.Hour), "x", now) }, `unknown camera "south"`},
+		{"arm in the past", func() error { return a.Arm("north", now.Add(-time.Hour), "x", now) }, "not in the future"},
+	}
+	for _, c := range cases {
+		err := c.do()
+		require.Error(t, err, c.name)
+		assert.Contains(t, err.Error(), c.want, c.name)
+		armed, _ := a.Armed("north", now)
+		assert.True(t, armed, "%s: state unchanged", c.name)
+	}
+	_, err = NewArming(ArmingConfig{Cameras: []string{"all"}}, now)
+	assert.ErrorContains(t, err, "reserved")
+	_, err = NewArming(ArmingConfig{Cameras: []string{"north"}, Schedules: map[string]*Schedule{"south": nil}}, now)
+	assert.ErrorContains(t, err, `unknown camera "south"`)
+}
+
+func TestArmingArmWithoutEnd(t *testing.T) {
+	now := utc(2026, 12, 2, 12, 0)
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, now)
+	require.NoError(t, err)
+	require.NoError(t, a.Arm("north", time.Time{}, "http", now))
+	armed, reason := a.Armed("north", now.Add(48*time.Hour))
+	assert.True(t, armed)
+	assert.Equal(t, "armed by override until cleared (set by http)", reason)
+	cs := a.Poll(now)
+	require.Len(t, cs, 1)
+	assert.Nil(t, cs[0].Until)
+	validateMessage(t, KindArmed, cs[0])
+	require.NoError(t, a.Clear("north", "http", now.Add(time.Hour)))
+	armed, _ = a.Armed("north", now.Add(time.Hour))
+	assert.False(t, armed, "cleared: the schedule decides again")
+}
+
+func TestArmingPersistsAcrossRestart(t *testing.T) {
+	dir := t.TempDir()
+	path := filepath.Join(dir, "arming.json")
+	now := utc(2026, 12, 2, 22, 0)
+	cfg := ArmingConfig{Cameras: []string{"north", "south"}, StatePath: path}
+	a, err := NewArming(cfg, now)
+	require.NoError(t, err)
+	require.NoError(t, a.DisarmUntil("north", now.Add(2*time.Hour), "http:alice", now))
+
+	b, err := NewArming(cfg, now.Add(time.Minute))
+	require.NoError(t, err)
+	armed, reason := b.Armed("north", now.Add(time.Minute))
+	assert.False(t, armed, "the disarm survived the restart")
+	assert.Contains(t, reason, "set by http:alice")
+	armed, _ = b.Armed("north", now.Add(2*time.Hour))
+	assert.True(t, armed, "and still lapses on time")
+	armed, _ = b.Armed("south", now)
+	assert.True(t, armed)
+
+	// A save that fails changes nothing.
+	bad, err := NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: filepath.Join(dir, "missing", "arming.json")}, now)
+	require.NoError(t, err)
+	require.Error(t, bad.DisarmUntil("north", now.Add(time.Hour), "x", now))
+	armed, _ = bad.Armed("north", now)
+	assert.True(t, armed, "not disarmed when the state could not be saved")
+}
+
+func TestArmingUnreadableStateFailsArmed(t *testing.T) {
+	now := utc(2026, 12, 2, 22, 0)
+	for name, content := range map[string]string{
+		"garbage":       "{not json",
+		"wrong version": `{"v":7,"overrides":{}}`,
+		"no until":      `{"v":1,"overrides":{"north":{"armed":false}}}`,
+		"unknown field": `{"v":1,"overrides":{},"extra":1}`,
+	} {
+		t.Run(name, func(t *testing.T) {
+			path := filepath.Join(t.TempDir(), "arming.json")
+			require.NoError(t, os.WriteFile(path, []byte(content), 0o600))
+			a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: path, Default: mustSchedule(t, "UTC", "daily 06:00-07:00")}, now)
+			require.ErrorIs(t, err, ErrStateUnreadable)
+			assert.Contains(t, err.Error(), path)
+			require.NotNil(t, a)
+			armed, reason := a.Armed("north", now)
+			assert.True(t, armed, "outside the window, yet armed for safety")
+			assert.Contains(t, reason, "unreadable")
+			assert.True(t, a.Status(now).Cameras[0].FailSafe)
+			cs := a.Poll(now)
+			require.Len(t, cs, 1)
+			assert.True(t, cs[0].Armed)
+			validateMessage(t, KindArmed, cs[0])
+
+			// An operator's clear ends fail-safe and writes a good file.
+			require.NoError(t, a.Clear(AllCameras, "http", now))
+			armed, _ = a.Armed("north", now)
+			assert.False(t, armed)
+			_, err = NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: path}, now)
+			assert.NoError(t, err)
+		})
+	}
+}
+
+func TestArmingConcurrentUse(t *testing.T) {
+	now := utc(2026, 12, 2, 22, 0)
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, StatePath: filepath.Join(t.TempDir(), "a.json")}, now)
+	require.NoError(t, err)
+	var wg sync.WaitGroup
+	for i := 0; i < 4; i++ {
+		wg.Add(1)
+		go func(i int) {
+			defer wg.Done()
+			for j := 0; j < 50; j++ {
+				at := now.Add(time.Duration(j) * time.Second)
+				if i%2 == 0 {
+					assert.NoError(t, a.DisarmUntil(AllCameras, at.Add(time.Hour), "t", at))
+				} else {
+					a.Armed("north", at)
+					a.Status(at)
+					a.Poll(at)
+				}
+			}
+		}(i)
+	}
+	wg.Wait()
+	armed, _ := a.Armed("south", now.Add(time.Minute))
+	assert.False(t, armed)
+}
+
+// TestArmingRunPublishesChanges drives Run with a fake clock into a real
+// stream: the start-up state and an operator's disarm both arrive as armed
+// messages on PREFIX.CAMERA.armed.
+func TestArmingRunPublishesChanges(t *testing.T) {
+	opts := singleNode(t, t.TempDir())
+	srv := mustStart(t, opts)
+	defer stop(srv)
+	nc := connect(t, srv.ClientURL())
+	p, err := NewPublisher(context.Background(), nc, "sw", StreamConfig{})
+	require.NoError(t, err)
+	defer p.Close()
+	sub, err := nc.SubscribeSync("sw.*.armed")
+	require.NoError(t, err)
+
+	var mu sync.Mutex
+	clock := utc(2026, 12, 2, 12, 0)
+	now := func() time.Time { mu.Lock(); defer mu.Unlock(); return clock }
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}}, now())
+	require.NoError(t, err)
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	done := make(chan error, 1)
+	go func() {
+		done <- a.Run(ctx, now, time.Hour, func(c ArmedChange) { assert.NoError(t, p.PublishArmed(ctx, c)) })
+	}()
+	first, err := sub.NextMsg(5 * time.Second)
+	require.NoError(t, err)
+	assert.Equal(t, "sw.north.armed", first.Subject)
+	assert.Contains(t, string(first.Data), `"armed":true`)
+
+	require.NoError(t, a.DisarmUntil("north", now().Add(time.Hour), "http:alice", now()))
+	second, err := sub.NextMsg(5 * time.Second) // long before the hourly tick
+	require.NoError(t, err)
+	assert.Contains(t, string(second.Data), `"armed":false`)
+	assert.Contains(t, string(second.Data), `"by":"http:alice"`)
+	cancel()
+	require.NoError(t, <-done)
+	ids := streamIDs(t, srv.ClientURL(), "STILLWATER")
+	assert.Len(t, ids, 2, "both armed changes are in the stream")
+}
+
+func TestArmingNoOpRequestDoesNotDateLaterChange(t *testing.T) {
+	t0 := utc(2026, 12, 2, 19, 0)
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, t0)
+	require.NoError(t, err)
+	a.Poll(t0)
+	require.NoError(t, a.Clear("north", "http", t0.Add(time.Minute))) // nothing to clear
+	assert.Empty(t, a.Poll(t0.Add(2*time.Minute)))
+	cs := a.Poll(utc(2026, 12, 2, 20, 30))
+	require.Len(t, cs, 1)
+	assert.Equal(t, utc(2026, 12, 2, 20, 0), cs[0].Time, "dated by the schedule, not by the earlier clear")
+}
+
+func TestArmingSetSchedulesKeepsOverrides(t *testing.T) {
+	now := utc(2026, 12, 2, 12, 0)
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}}, now)
+	require.NoError(t, err)
+	a.Poll(now)
+	require.NoError(t, a.DisarmUntil("north", now.Add(time.Hour), "http", now))
+	a.Poll(now)
+	reload := now.Add(time.Minute)
+	require.NoError(t, a.SetSchedules(mustSchedule(t, "UTC", "daily 20:00-06:00"), nil, reload))
+	cs := a.Poll(reload.Add(time.Second))
+	assert.Equal(t, []edge{{"south", reload, false}}, edges(cs), "south follows the new schedule; north keeps its disarm")
+	armed, reason := a.Armed("north", reload)
+	assert.False(t, armed)
+	assert.Contains(t, reason, "override")
+	assert.Error(t, a.SetSchedules(nil, map[string]*Schedule{"east": nil}, reload))
+}

@@ -1,0 +1,126 @@
+package main
+
+import (
+	"bytes"
+	"io"
+	"log/slog"
+	"testing"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+	"gopkg.in/yaml.v3"
+
+	"stillwater/homography"
+	"stillwater/vision"
+)
+
+// zoneCamera sees an 8 m × 4 m pool square-on at 50 px/m: corner A at
+// pixel (100, 300), x to the right, pool y up the image.
+func zoneCamera(zones ...ZoneConfig) CameraConfig {
+	return CameraConfig{
+		ID: "pool", Source: "clip.avi",
+		CalibrationConfig: CalibrationConfig{
+			Pool:    PoolConfig{Length: 8, Width: 4},
+			Corners: [][2]float64{{100, 300}, {500, 300}, {500, 100}, {100, 100}},
+		},
+		Detect: defaultDetect(),
+		Zones:  zones,
+	}
+}
+
+func TestValidateZones(t *testing.T) {
+	ladder := [][2]float64{{7, 1}, {8.2, 1}, {8.2, 2}, {7, 2}}
+	tests := []struct {
+		name    string
+		zones   []ZoneConfig
+		wantErr string
+	}{
+		{"none", nil, ""},
+		{"pool metres, over the coping", []ZoneConfig{{Name: "ladder", PoolM: ladder}}, ""},
+		{"pixels", []ZoneConfig{{Name: "skimmer", Pixels: [][2]float64{{120, 120}, {160, 120}, {160, 160}}}}, ""},
+		{"two points", []ZoneConfig{{Name: "a", PoolM: [][2]float64{{1, 1}, {2, 2}}}}, "zones[0] (a).pool_m: 2 points; a zone needs at least 3"},
+		{"bow tie", []ZoneConfig{{Name: "x", PoolM: [][2]float64{{1, 1}, {2, 2}, {2, 1}, {1, 2}}}}, "pool_m: edges 0 and 2 cross"},
+		{"no area", []ZoneConfig{{PoolM: [][2]float64{{1, 1}, {2, 1}, {3, 1}}}}, "the outline has no area"},
+		{"outside the pool", []ZoneConfig{{Name: "shed", PoolM: [][2]float64{{1, 1}, {2, 1}, {2, 6}}}}, "pool_m[2]: (2, 6) lies at (2.00, 6.00) m, outside the 8x4 m pool"},
+		{"pixels outside the pool", []ZoneConfig{{Name: "deck", Pixels: [][2]float64{{10, 10}, {60, 10}, {60, 60}}}}, "pixels[0]: (10, 10) lies at (-1.80, 5.80) m, outside"},
+		{"both frames", []ZoneConfig{{Name: "b", PoolM: ladder, Pixels: ladder}}, "both pool_m and pixels given"},
+		{"no outline", []ZoneConfig{{Name: "empty"}}, "no outline"},
+		{"same name twice", []ZoneConfig{{Name: "l", PoolM: ladder}, {Name: "l", PoolM: ladder}}, "zones[1] (l).name: \"l\" is used twice"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			err := validateZones("cameras[0] (pool)", zoneCamera(tt.zones...))
+			if tt.wantErr == "" {
+				assert.NoError(t, err)
+				return
+			}
+			require.Error(t, err)
+			assert.Contains(t, err.Error(), tt.wantErr)
+			assert.Contains(t, err.Error(), "cameras[0] (pool).zones[")
+		})
+	}
+}
+
+func TestZoneYAML(t *testing.T) {
+	src := []byte("- name: ladder\n  pool_m: [[7, 1], [8.2, 1], [8.2, 2], [7, 2]]\n- pixels: [[120, 120], [160, 120], [160, 160]]\n")
+	var zs []ZoneConfig
+	dec := yaml.NewDecoder(bytes.NewReader(src))
+	dec.KnownFields(true)
+	require.NoError(t, dec.Decode(&zs))
+	require.Len(t, zs, 2)
+	assert.Equal(t, "ladder", zs[0].Name)
+	assert.Equal(t, [2]float64{8.2, 2}, zs[0].PoolM[2])
+	assert.Equal(t, [2]float64{160, 160}, zs[1].Pixels[2])
+	bad := yaml.NewDecoder(bytes.NewReader([]byte("- name: x\n  polygon: [[1, 1]]\n")))
+	bad.KnownFields(true)
+	assert.ErrorContains(t, bad.Decode(&zs), "field polygon not found")
+}
+
+func TestSegmentsAndInside(t *testing.T) {
+	// Hand-worked: the diagonals of the unit square cross at (0.5, 0.5);
+	// two parallel sides never meet; a T touching at an end point meets.
+	assert.True(t, segmentsMeet([2]float64{0, 0}, [2]float64{1, 1}, [2]float64{0, 1}, [2]float64{1, 0}))
+	assert.False(t, segmentsMeet([2]float64{0, 0}, [2]float64{1, 0}, [2]float64{0, 1}, [2]float64{1, 1}))
+	assert.True(t, segmentsMeet([2]float64{0, 0}, [2]float64{2, 0}, [2]float64{1, 0}, [2]float64{1, 1}))
+	sq := [][2]float64{{0, 0}, {2, 0}, {2, 2}, {0, 2}}
+	assert.True(t, insidePolygon(sq, 1, 1))
+	assert.False(t, insidePolygon(sq, 3, 1))
+	// An L-shape: (1.5, 1.5) is in its notch, outside.
+	l := [][2]float64{{0, 0}, {2, 0}, {2, 1}, {1, 1}, {1, 2}, {0, 2}}
+	assert.True(t, insidePolygon(l, 0.5, 1.5))
+	assert.False(t, insidePolygon(l, 1.5, 1.5))
+}
+
+func TestZoneFilter(t *testing.T) {
+	cam := zoneCamera(
+		ZoneConfig{Name: "ladder", PoolM: [][2]float64{{7, 1}, {8.2, 1}, {8.2, 2}, {7, 2}}},
+		ZoneConfig{Name: "skimmer", Pixels: [][2]float64{{120, 120}, {160, 120}, {160, 160}, {120, 160}}},
+	)
+	zs, err := newZoneSet(cam)
+	require.NoError(t, err)
+	h, err := poolHomography(cam)
+	require.NoError(t, err)
+	// Pool (x, y) m is pixel (100 + 50x, 300 − 50y).
+	blob := func(x, y float64) vision.Blob {
+		return vision.Blob{Centroid: vision.Point{X: 100 + 50*x, Y: 300 - 50*y}}
+	}
+	r := vision.Result{Index: 4, Blobs: []vision.Blob{
+		blob(7.5, 1.5), // in the ladder zone
+		blob(0.8, 3.2), // pixel (140, 140): in the skimmer zone
+		blob(4, 2),     // open water
+		blob(6.9, 1.5), // just outside the ladder zone
+	}}
+	var logs bytes.Buffer
+	log := slog.New(slog.NewTextHandler(&logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
+	got := zs.filter(r, h, log, nil)
+	require.Len(t, got.Blobs, 2)
+	p0, _ := h.Map(homography.Point{X: got.Blobs[0].Centroid.X, Y: got.Blobs[0].Centroid.Y})
+	assert.InDelta(t, 4, p0.X, 1e-9)
+	assert.Contains(t, logs.String(), "zone=ladder")
+	assert.Contains(t, logs.String(), "zone=skimmer")
+	assert.Len(t, r.Blobs, 4, "the input result is not changed")
+
+	none, err := newZoneSet(zoneCamera())
+	require.NoError(t, err)
+	assert.Len(t, none.filter(r, h, slog.New(slog.NewTextHandler(io.Discard, nil)), nil).Blobs, 4)
+}

@@ -1,0 +1,212 @@
+package main
+
+import (
+	"bytes"
+	"encoding/json"
+	"fmt"
+	"math"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"stillwater/alert"
+	"stillwater/vision/synth"
+)
+
+// targetLine is a replay line for a target message at frame f (10 fps).
+func targetLine(t *testing.T, f, track int, event string, x, y float64) replayLine {
+	t.Helper()
+	b, err := alert.Encode(alert.Target{V: alert.Version, Kind: alert.KindTarget, Camera: "clip", Track: track, Event: event,
+		Frame: f, Surface: alert.Position{X: x, Y: y}, Area: 0.04})
+	require.NoError(t, err)
+	return replayLine{Subject: "stillwater.clip.target", Frame: f, Media: float64(f) / 10, Msg: b}
+}
+
+func clearedLine(t *testing.T, f, track int) replayLine {
+	t.Helper()
+	b, err := alert.Encode(alert.Cleared{V: alert.Version, Kind: alert.KindCleared, Camera: "clip", Track: track, Frame: f})
+	require.NoError(t, err)
+	return replayLine{Subject: "stillwater.clip.cleared", Frame: f, Media: float64(f) / 10, Msg: b}
+}
+
+// handTruth is a 20 s clip at 10 fps with an intruder at (2, 1) m from 8 s
+// to 16 s; withFrames adds the per-frame positions.
+func handTruth(withFrames bool) synth.Truth {
+	t := synth.Truth{Format: synth.LabelFormat, FPS: 10, Frames: 200, Presence: []synth.Presence{{From: 8, To: 16}}}
+	if withFrames {
+		for f := 0; f < 200; f++ {
+			ft := synth.FrameTruth{Frame: f, T: float64(f) / 10}
+			if f >= 80 && f < 160 {
+				ft.Intruder = &synth.Occupation{X: 2, Y: 1, Area: 0.04}
+			}
+			t.PerFrame = append(t.PerFrame, ft)
+		}
+	}
+	return t
+}
+
+func TestScoreClip(t *testing.T) {
+	tests := []struct {
+		name   string
+		lines  func(t *testing.T) []replayLine
+		frames bool
+		want   clipScore
+	}{
+		{
+			// Worked by hand:
+			//  3.0 s start track 1 at (5,3): nobody in the water → false 1
+			//  3.5 s update track 1: belongs to a false track, ignored
+			//  8.7 s start track 2 at (2.1,1): 0.1 m from the intruder →
+			//        detected, delay 8.7 − 8 = 0.7 s, error 0.1
+			//  9.2 s update track 2 at (2,1.2): error 0.2
+			//  9.7 s start track 3 at (4,1): 2 m from the intruder > 1 m → false 2
+			// 10.0 s cleared track 2 while the intruder is in → break 1
+			// 10.5 s start track 4 at (2,1.3): error 0.3; ids {2,4} → break 2
+			// Free footage 20 − 8 = 12 s. Longest unbroken run: track 2,
+			// 8.7–9.2 s = 0.5 s.
+			name: "labelled positions",
+			lines: func(t *testing.T) []replayLine {
+				return []replayLine{
+					targetLine(t, 30, 1, "start", 5, 3),
+					targetLine(t, 35, 1, "update", 5, 3),
+					targetLine(t, 87, 2, "start", 2.1, 1),
+					targetLine(t, 92, 2, "update", 2, 1.2),
+					targetLine(t, 97, 3, "start", 4, 1),
+					clearedLine(t, 100, 2),
+					targetLine(t, 105, 4, "start", 2, 1.3),
+				}
+			},
+			frames: true,
+			want: clipScore{Name: "c", Duration: 20, FreeHours: 12.0 / 3600, Presences: 1, Detected: 1,
+				Delays: []float64{0.7}, False: 2, Errors: []float64{0.1, 0.2, 0.3}, Breaks: 2, Tracked: 0.5},
+		},
+		{
+			// Presence only, as written by hand for a real clip:
+			//  9.0 s start track 1 → detected, delay 1.0 s; no position to
+			//        compare with
+			//  9.5 s and 10.0 s updates, then 16.5 s (within the 1 s grace):
+			//        one track; the 6.5 s silence breaks the run, so the
+			//        longest unbroken run is 9.0–10.0 = 1.0 s
+			// 17.5 s start track 5: after 16 s + 1 s grace → false
+			name: "presence only",
+			lines: func(t *testing.T) []replayLine {
+				return []replayLine{
+					targetLine(t, 90, 1, "start", 2, 1),
+					targetLine(t, 95, 1, "update", 2, 1),
+					targetLine(t, 100, 1, "update", 2, 1),
+					targetLine(t, 165, 1, "update", 2, 1),
+					targetLine(t, 175, 5, "start", 6, 3),
+				}
+			},
+			want: clipScore{Name: "c", Duration: 20, FreeHours: 12.0 / 3600, Presences: 1, Detected: 1,
+				Delays: []float64{1.0}, False: 1, Tracked: 1.0},
+		},
+		{
+			name:  "missed",
+			lines: func(t *testing.T) []replayLine { return nil },
+			want:  clipScore{Name: "c", Duration: 20, FreeHours: 12.0 / 3600, Presences: 1},
+		},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			got, err := scoreClip("c", tt.lines(t), handTruth(tt.frames), defaultScoreRules())
+			require.NoError(t, err)
+			assert.Equal(t, tt.want.Presences, got.Presences)
+			assert.Equal(t, tt.want.Detected, got.Detected)
+			assert.Equal(t, tt.want.False, got.False)
+			assert.Equal(t, tt.want.Breaks, got.Breaks)
+			assert.InDelta(t, tt.want.Duration, got.Duration, 1e-9)
+			assert.InDelta(t, tt.want.FreeHours, got.FreeHours, 1e-12)
+			assert.InDelta(t, tt.want.Tracked, got.Tracked, 1e-9)
+			assert.InDeltaSlice(t, tt.want.Delays, got.Delays, 1e-9)
+			assert.InDeltaSlice(t, tt.want.Errors, got.Errors, 1e-9)
+		})
+	}
+}
+
+func TestScoreTotals(t *testing.T) {
+	// Errors 0.1, 0.2, 0.3: median 0.2; p95 at rank 0.95·2 = 1.9, so
+	// 0.2 + 0.9·(0.3 − 0.2) = 0.29 (linear interpolation between order
+	// statistics). Two false alarms in 12 s are 600 per hour.
+	c := clipScore{Presences: 1, Detected: 1, Delays: []float64{0.7}, False: 2, FreeHours: 12.0 / 3600, Errors: []float64{0.3, 0.1, 0.2}, Breaks: 2}
+	tot := totalOf([]clipScore{c})
+	assert.InDelta(t, 0.2, quantile(tot.Errors, 0.5), 1e-12)
+	assert.InDelta(t, 0.29, quantile(tot.Errors, 0.95), 1e-12)
+	assert.InDelta(t, 600, tot.falsePerHour(), 1e-9)
+	assert.True(t, math.IsNaN(quantile(nil, 0.5)))
+
+	tests := []struct {
+		name string
+		lim  scoreLimits
+		want int // broken limits
+	}{
+		{"none set", scoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}, 0},
+		{"delay", scoreLimits{MaxDelay: 500 * time.Millisecond, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}, 1},
+		{"delay met", scoreLimits{MaxDelay: time.Second, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}, 0},
+		{"false", scoreLimits{MaxDelay: -1, MaxFalse: 0, MaxP95: -1, MaxBreaks: -1}, 1},
+		{"p95", scoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: 0.25, MaxBreaks: -1}, 1},
+		{"all", scoreLimits{MaxDelay: 0, MaxFalse: 0, MaxP95: 0, MaxBreaks: 0}, 4},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			assert.Len(t, tt.lim.check(tot), tt.want)
+		})
+	}
+	missed := totalOf([]clipScore{{Presences: 2, Detected: 1}})
+	assert.Len(t, scoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}.check(missed), 1, "a missed intruder always fails")
+}
+
+func TestRunScoreFiles(t *testing.T) {
+	dir := t.TempDir()
+	var rb bytes.Buffer
+	enc := json.NewEncoder(&rb)
+	for _, l := range []replayLine{targetLine(t, 87, 2, "start", 2.1, 1), targetLine(t, 97, 3, "start", 4, 1)} {
+		require.NoError(t, enc.Encode(l))
+	}
+	rp := filepath.Join(dir, "r.jsonl")
+	require.NoError(t, os.WriteFile(rp, rb.Bytes(), 0o644))
+	// A hand-written label file: format, fps, frames and presence only.
+	lp := filepath.Join(dir, "l.json")
+	require.NoError(t, os.WriteFile(lp, []byte(`{"format":"stillwater.labels/v1","fps":10,"frames":200,"presence":[{"from_s":8,"to_s":16}]}`), 0o644))
+
+	tests := []struct {
+		name    string
+		args    []string
+		wantErr string
+	}{
+		{"no limits", []string{rp, lp}, ""},
+		{"delay met", []string{"-max-delay", "1s", rp, lp}, ""},
+		// Without positions the 4 m start counts as the intruder's track (a
+		// second id: one break), not as a false alarm.
+		{"breaks", []string{"-max-breaks", "0", rp, lp}, "1 track breaks exceed 0"},
+		{"delay missed", []string{"-max-delay", "500ms", rp, lp}, "worst first-alert delay 0.70 s exceeds 500ms"},
+		{"odd args", []string{rp}, "usage"},
+		{"bad labels", []string{rp, rp}, "read labels"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			var out, errb bytes.Buffer
+			err := runScore(t.Context(), tt.args, &out, &errb)
+			if tt.wantErr == "" {
+				require.NoError(t, err)
+				assert.Contains(t, out.String(), "1/1")
+				return
+			}
+			require.Error(t, err)
+			assert.Contains(t, err.Error(), tt.wantErr)
+		})
+	}
+}
+
+func TestReadReplayErrors(t *testing.T) {
+	_, err := readReplay(strings.NewReader("{\"subject\":\"a\",\"msg\":{}}\nnot json\n"), "x.jsonl")
+	require.Error(t, err)
+	assert.Contains(t, err.Error(), "x.jsonl:2")
+	_, err = readReplay(strings.NewReader(`{"subject":"a"}`), "y.jsonl")
+	assert.ErrorContains(t, err, fmt.Sprintf("%s:1: no msg", "y.jsonl"))
+}

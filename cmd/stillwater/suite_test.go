@@ -1,0 +1,261 @@
+package main
+
+import (
+	"context"
+	"fmt"
+	"io"
+	"log/slog"
+	"os"
+	"path/filepath"
+	"runtime"
+	"sort"
+	"strings"
+	"testing"
+	"time"
+
+	"golang.org/x/sync/errgroup"
+
+	"stillwater/vision/synth"
+)
+
+// suiteClip is one generated clip of the scenario suite.
+type suiteClip struct {
+	Scene    string
+	Seed     int64
+	Duration float64 // s; 0 keeps the scene's own
+	Intruder bool
+	// Gate is false for a scene that is reported but not held to the
+	// suite's limits (a known limit of today's detector).
+	Gate bool
+}
+
+func (c suiteClip) name() string { return fmt.Sprintf("%s/%d", c.Scene, c.Seed) }
+
+// suiteClips is every intruder scene once (seed 7, as the end-to-end test)
+// plus intruder-free footage: the nine intruder-free scenes over seeds
+// 101–104 at 50 s each, 1800 s (30 min) in all.
+func suiteClips() []suiteClip {
+	var out []suiteClip
+	for _, s := range []string{"child", "submerged", "far-corner", "cloud-child", "still-child"} {
+		out = append(out, suiteClip{Scene: s, Seed: 7, Intruder: true, Gate: true})
+	}
+	for seed := int64(101); seed <= 104; seed++ {
+		for _, s := range []string{"empty", "calm", "windy", "glints", "cloud", "leaves", "bird", "deck", "night"} {
+			out = append(out, suiteClip{Scene: s, Seed: seed, Duration: 50, Gate: true})
+		}
+	}
+	out = append(out, suiteClip{Scene: "bird-water", Seed: 7})
+	return out
+}
+
+// suiteResult is a clip's score and how long its render and replay took.
+type suiteResult struct {
+	Clip   suiteClip
+	Score  clipScore
+	Render time.Duration
+	Replay time.Duration
+	Frames int
+}
+
+// runSuite renders and replays every clip, limit at a time.
+func runSuite(ctx context.Context, dir string, clips []suiteClip, limit int) ([]suiteResult, error) {
+	out := make([]suiteResult, len(clips))
+	g, gctx := errgroup.WithContext(ctx)
+	g.SetLimit(limit)
+	log := slog.New(slog.NewTextHandler(io.Discard, nil))
+	for i, c := range clips {
+		g.Go(func() error {
+			s, ok := scenarioByName(c.Scene, c.Seed)
+			if !ok {
+				return fmt.Errorf("no scene %q", c.Scene)
+			}
+			if c.Duration > 0 {
+				s.Duration = c.Duration
+			}
+			base := filepath.Join(dir, fmt.Sprintf("%s-%d", c.Scene, c.Seed))
+			t0 := time.Now()
+			truth, err := synth.Render(gctx, s, base+".avi", "")
+			if err != nil {
+				return fmt.Errorf("render %s: %w", c.name(), err)
+			}
+			t1 := time.Now()
+			cam, err := cameraFromLabels(truth, base+".avi")
+			if err != nil {
+				return err
+			}
+			cs, st, err := replayScore(gctx, clipJob{Name: c.name(), Clip: base + ".avi", Truth: truth}, cam, defaultScoreRules(), log)
+			if err != nil {
+				return err
+			}
+			os.Remove(base + ".avi")
+			out[i] = suiteResult{Clip: c, Score: cs, Render: t1.Sub(t0), Replay: time.Since(t1), Frames: st.Frames}
+			return nil
+		})
+	}
+	return out, g.Wait()
+}
+
+// suiteLimits are the suite's targets. The delay and position limits are
+// this project's own; ASTM F2208 (residential pool alarms) allows 20 s
+// from entry to alarm, far beyond them.
+type suiteLimits struct {
+	DelayMedian, DelayWorst time.Duration
+	ErrMedian, ErrP95       float64 // m
+	FalseAlarms             int     // over all intruder-free footage
+	StillFor                time.Duration
+}
+
+func defaultSuiteLimits() suiteLimits {
+	return suiteLimits{DelayMedian: time.Second, DelayWorst: 2 * time.Second, ErrMedian: 0.25, ErrP95: 0.5, StillFor: 5 * time.Minute}
+}
+
+// judgeSuite returns every broken limit; free is the intruder-free footage
+// scored, s.
+func judgeSuite(rs []suiteResult, lim suiteLimits) (fails []string, free float64) {
+	var gated []clipScore
+	for _, r := range rs {
+		if !r.Clip.Gate {
+			continue
+		}
+		c := r.Score
+		gated = append(gated, c)
+		if r.Clip.Intruder && c.missed() > 0 {
+			fails = append(fails, fmt.Sprintf("%s: intruder missed", c.Name))
+		}
+		if !r.Clip.Intruder {
+			free += c.Duration
+		}
+		if r.Clip.Scene == "still-child" {
+			if c.Breaks > 0 {
+				fails = append(fails, fmt.Sprintf("%s: %d track breaks", c.Name, c.Breaks))
+			}
+			if c.Tracked < lim.StillFor.Seconds() {
+				fails = append(fails, fmt.Sprintf("%s: tracked without a gap for %.1f s, want %v", c.Name, c.Tracked, lim.StillFor))
+			}
+		}
+	}
+	t := totalOf(gated)
+	if t.False > lim.FalseAlarms {
+		fails = append(fails, fmt.Sprintf("%d false alarms over %.0f s of intruder-free footage, want ≤ %d", t.False, free, lim.FalseAlarms))
+	}
+	if m := quantile(t.Delays, 0.5); !(m <= lim.DelayMedian.Seconds()) {
+		fails = append(fails, fmt.Sprintf("median first-alert delay %.2f s, want ≤ %v", m, lim.DelayMedian))
+	}
+	if m := maxOf(t.Delays); !(m <= lim.DelayWorst.Seconds()) {
+		fails = append(fails, fmt.Sprintf("worst first-alert delay %.2f s, want ≤ %v", m, lim.DelayWorst))
+	}
+	if m := quantile(t.Errors, 0.5); !(m <= lim.ErrMedian) {
+		fails = append(fails, fmt.Sprintf("median position error %.3f m, want ≤ %g m", m, lim.ErrMedian))
+	}
+	if m := quantile(t.Errors, 0.95); !(m <= lim.ErrP95) {
+		fails = append(fails, fmt.Sprintf("p95 position error %.3f m, want ≤ %g m", m, lim.ErrP95))
+	}
+	return fails, free
+}
+
+// BenchmarkScenarioSuite renders every scenario scene and 30 min of
+// intruder-free footage, replays each through the daemon's pipeline, scores
+// it against the generator's labels and fails when a target is missed. Run
+// it once: go test -run '^$' -bench ScenarioSuite -benchtime 1x ./cmd/stillwater/
+func BenchmarkScenarioSuite(b *testing.B) {
+	clips := suiteClips()
+	for i := 0; i < b.N; i++ {
+		start := time.Now()
+		rs, err := runSuite(context.Background(), b.TempDir(), clips, runtime.NumCPU())
+		if err != nil {
+			b.Fatal(err)
+		}
+		wall := time.Since(start)
+		var sb strings.Builder
+		printSuite(&sb, rs)
+		fails, free := judgeSuite(rs, defaultSuiteLimits())
+		frames := 0
+		for _, r := range rs {
+			frames += r.Frames
+		}
+		fmt.Fprintf(&sb, "suite: %d clips, %d frames, %.0f s intruder-free, wall %.1f s on %d CPUs (%.0f frames/s rendered and replayed)\n",
+			len(rs), frames, free, wall.Seconds(), runtime.NumCPU(), float64(frames)/wall.Seconds())
+		// Printed, not logged: the benchmark log keeps only ten lines.
+		fmt.Print(sb.String())
+		b.ReportMetric(float64(frames)/wall.Seconds(), "frames/s")
+		b.ReportMetric(free, "free_s")
+		if len(fails) > 0 {
+			b.Fatal("scenario suite targets missed:\n  " + strings.Join(fails, "\n  "))
+		}
+	}
+}
+
+// printSuite writes the per-clip table, the intruder-free clips pooled per
+// scene, and the totals.
+func printSuite(w io.Writer, rs []suiteResult) {
+	var intr []clipScore
+	byScene := map[string][]clipScore{}
+	var known []clipScore
+	for _, r := range rs {
+		switch {
+		case !r.Clip.Gate:
+			known = append(known, r.Score)
+		case r.Clip.Intruder:
+			intr = append(intr, r.Score)
+		default:
+			byScene[r.Clip.Scene] = append(byScene[r.Clip.Scene], r.Score)
+		}
+	}
+	var rows []clipScore
+	rows = append(rows, intr...)
+	var scenes []string
+	for s := range byScene {
+		scenes = append(scenes, s)
+	}
+	sort.Strings(scenes)
+	for _, s := range scenes {
+		rows = append(rows, pooled(s+" ×"+fmt.Sprint(len(byScene[s])), byScene[s]))
+	}
+	writeScores(w, rows)
+	for _, r := range rs {
+		if r.Clip.Scene == "still-child" {
+			fmt.Fprintf(w, "%s: tracked without a gap for %.1f s, %d track breaks\n", r.Score.Name, r.Score.Tracked, r.Score.Breaks)
+		}
+	}
+	if len(known) > 0 {
+		fmt.Fprintln(w, "known limits, not gated:")
+		writeScores(w, known)
+	}
+}
+
+// pooled merges clip scores into one row named name.
+func pooled(name string, cs []clipScore) clipScore {
+	t := totalOf(cs)
+	var d float64
+	for _, c := range cs {
+		d += c.Duration
+	}
+	return clipScore{Name: name, Duration: d, FreeHours: t.FreeHours, Presences: t.Presences, Detected: t.Detected,
+		Delays: t.Delays, False: t.False, Errors: t.Errors, Breaks: t.Breaks}
+}
+
+// TestScenarioQuick is the suite's quick cousin: three 20 s scenes that
+// exercise the detector's recent fixes (wind ripples, a far corner, a cloud
+// with a child), on seed 3, with looser limits than the benchmark.
+func TestScenarioQuick(t *testing.T) {
+	if testing.Short() {
+		t.Skip("renders and replays three 20 s clips")
+	}
+	clips := []suiteClip{
+		{Scene: "windy", Seed: 3, Gate: true},
+		{Scene: "far-corner", Seed: 3, Intruder: true, Gate: true},
+		{Scene: "cloud-child", Seed: 3, Intruder: true, Gate: true},
+	}
+	rs, err := runSuite(context.Background(), t.TempDir(), clips, runtime.NumCPU())
+	if err != nil {
+		t.Fatal(err)
+	}
+	var sb strings.Builder
+	printSuite(&sb, rs)
+	t.Log("\n" + sb.String())
+	lim := defaultSuiteLimits()
+	lim.DelayMedian, lim.DelayWorst, lim.ErrP95 = 2*time.Second, 3*time.Second, 0.6
+	if fails, _ := judgeSuite(rs, lim); len(fails) > 0 {
+		t.Fatal(strings.Join(fails, "\n"))
+	}
+}

@@ -1,0 +1,412 @@
+package vision
+
+import (
+	"errors"
+	"fmt"
+	"image"
+	"image/color"
+	"math"
+	"os"
+	"path/filepath"
+	"sort"
+	"strings"
+	"time"
+
+	"gocv.io/x/gocv"
+)
+
+// EvidenceConfig sets up the recent-frame buffer and clip recording.
+type EvidenceConfig struct {
+	// PreRoll is how much recent video is kept and starts each clip, media
+	// time; zero selects 5 s.
+	PreRoll time.Duration
+	// PostRoll is how long a clip goes on after StartClip, media time; zero
+	// selects 10 s.
+	PostRoll time.Duration
+	// Quality is the JPEG quality of buffered frames and snapshots, 1–100;
+	// zero selects 80.
+	Quality int
+	// FPS is the frame rate written into clips; zero takes the source's
+	// nominal rate, or 10 when it has none.
+	FPS float64
+}
+
+// Annotation is what Snapshot draws over the latest frame. Coordinates are
+// source pixels, origin top-left, y down. Text is drawn with OpenCV's
+// Hershey font, which has ASCII glyphs only: other characters are replaced
+// (· by -, ² by 2, others by ?).
+type Annotation struct {
+	Outline []Point // pool outline polygon, closed
+	Boxes   []LabeledBox
+	Caption string // one line across the top
+}
+
+// LabeledBox is a box with a label above it.
+type LabeledBox struct {
+	Box   image.Rectangle
+	Label string
+}
+
+// Colours of the annotation: the pool outline amber, boxes and their
+// labels red, the caption white on a dark band.
+var (
+	outlineColor = color.RGBA{R: 255, G: 210, B: 0}
+	boxColor     = color.RGBA{R: 255, G: 40, B: 40}
+	captionColor = color.RGBA{R: 255, G: 255, B: 255}
+)
+
+// jpegFrame is one buffered frame.
+type jpegFrame struct {
+	media time.Duration
+	data  []byte
+}
+
+// evidence holds the pre-roll ring and the clip being written.
+type evidence struct {
+	cfg     EvidenceConfig
+	fps     float64
+	ring    []jpegFrame
+	writer  *gocv.VideoWriter
+	path    string
+	until   time.Duration // media time of the last frame of the clip
+	written int
+	size    image.Point
+}
+
+// EnableEvidence starts buffering recent frames (JPEG in memory) from the
+// next call to Next, so that StartClip can include a pre-roll. Calling it
+// again changes the settings for later clips.
+func (c *Camera) EnableEvidence(cfg EvidenceConfig) error {
+	if cfg.PreRoll < 0 || cfg.PostRoll < 0 {
+		return fmt.Errorf("evidence: pre-roll %v and post-roll %v must not be negative", cfg.PreRoll, cfg.PostRoll)
+	}
+	if cfg.Quality < 0 || cfg.Quality > 100 {
+		return fmt.Errorf("evidence: jpeg quality %d: want 1–100", cfg.Quality)
+	}
+	if cfg.PreRoll == 0 {
+		cfg.PreRoll = 5 * time.Second
+	}
+	if cfg.PostRoll == 0 {
+		cfg.PostRoll = 10 * time.Second
+	}
+	if cfg.Quality == 0 {
+		cfg.Quality = 80
+	}
+	fps := cfg.FPS
+	if fps <= 0 {
+		fps = c.fps
+	}
+	if fps <= 0 {
+		fps = 10
+	}
+	if c.ev != nil {
+		c.ev.cfg, c.ev.fps = cfg, fps
+		return nil
+	}
+	c.ev = &evidence{cfg: cfg, fps: fps}
+	return nil
+}
+
+// add buffers frame and, while a clip is open, writes it.
+func (e *evidence) add(frame gocv.Mat, media time.Duration) error {
+	data, err := encodeJPEG(frame, e.cfg.Quality)
+	if err != nil {
+		return fmt.Errorf("evidence: %w", err)
+	}
+	e.size = image.Pt(frame.Cols(), frame.Rows())
+	e.ring = append(e.ring, jpegFrame{media: media, data: data})
+	cut := 0
+	for cut < len(e.ring) && e.ring[cut].media <= media-e.cfg.PreRoll {
+		cut++
+	}
+	if cut > 0 {
+		e.ring = append(e.ring[:0], e.ring[cut:]...)
+	}
+	if e.writer == nil {
+		return nil
+	}
+	if err := e.writer.Write(frame); err != nil {
+		return fmt.Errorf("evidence: write %s: %w", e.path, err)
+	}
+	e.written++
+	if media >= e.until {
+		return e.finish()
+	}
+	return nil
+}
+
+// finish closes the clip being written, if any.
+func (e *evidence) finish() error {
+	if e.writer == nil {
+		return nil
+	}
+	err := e.writer.Close()
+	e.writer, e.path = nil, ""
+	if err != nil {
+		return fmt.Errorf("evidence: close clip: %w", err)
+	}
+	return nil
+}
+
+// resize finishes the clip and drops the buffer after a frame size change.
+func (e *evidence) resize() error {
+	e.ring = e.ring[:0]
+	return e.finish()
+}
+
+// Close finishes the clip being written.
+func (e *evidence) Close() error { return e.finish() }
+
+// ClipInfo describes the clip StartClip is writing.
+type ClipInfo struct {
+	Path     string        // the file being written
+	Extended bool          // true when a clip was already open and now runs longer
+	Until    time.Duration // media time of the clip's last frame
+	PreRoll  int           // frames written from the buffer
+}
+
+// StartClip writes the buffered pre-roll to path (an MJPG .avi) and keeps
+// writing every frame Next reads until PostRoll of media time after the
+// latest frame. If a clip is already being written it is extended instead
+// and path is ignored. Close finishes an open clip.
+func (c *Camera) StartClip(path string) (ClipInfo, error) {
+	if c.closed {
+		return ClipInfo{}, errCaptureClosed
+	}
+	e := c.ev
+	if e == nil {
+		return ClipInfo{}, errors.New("start clip: evidence is not enabled (call EnableEvidence)")
+	}
+	until := c.media + e.cfg.PostRoll
+	if e.writer != nil {
+		e.until = until
+		return ClipInfo{Path: e.path, Extended: true, Until: until}, nil
+	}
+	if len(e.ring) == 0 {
+		return ClipInfo{}, fmt.Errorf("start clip %s: no frame read yet", path)
+	}
+	w, err := gocv.VideoWriterFile(path, "MJPG", e.fps, e.size.X, e.size.Y, true)
+	if err != nil {
+		return ClipInfo{}, fmt.Errorf("start clip %s: %w", path, err)
+	}
+	if !w.IsOpened() {
+		w.Close()
+		return ClipInfo{}, fmt.Errorf("start clip %s: the MJPG video writer did not open", path)
+	}
+	e.writer, e.path, e.until, e.written = w, path, until, 0
+	for _, f := range e.ring {
+		if err := e.writeJPEG(f.data); err != nil {
+			e.finish()
+			return ClipInfo{}, fmt.Errorf("start clip %s: %w", path, err)
+		}
+	}
+	return ClipInfo{Path: path, Until: until, PreRoll: len(e.ring)}, nil
+}
+
+func (e *evidence) writeJPEG(data []byte) error {
+	m, err := gocv.IMDecode(data, gocv.IMReadColor)
+	if err != nil {
+		return fmt.Errorf("decode buffered frame: %w", err)
+	}
+	defer m.Close()
+	if m.Empty() {
+		return errors.New("decode buffered frame: empty image")
+	}
+	if err := e.writer.Write(m); err != nil {
+		return fmt.Errorf("write buffered frame: %w", err)
+	}
+	e.written++
+	return nil
+}
+
+// Recording returns the path of the clip being written, or "".
+func (c *Camera) Recording() string {
+	if c.ev == nil {
+		return ""
+	}
+	return c.ev.path
+}
+
+// Snapshot returns the latest frame as a JPEG with the annotation drawn over it. It
+// needs no EnableEvidence.
+func (c *Camera) Snapshot(a Annotation) ([]byte, error) {
+	if c.closed {
+		return nil, errCaptureClosed
+	}
+	if c.frame.Empty() {
+		return nil, errors.New("snapshot: no frame read yet")
+	}
+	img := c.frame.Clone()
+	defer img.Close()
+	annotate(&img, a)
+	q := 80
+	if c.ev != nil {
+		q = c.ev.cfg.Quality
+	}
+	b, err := encodeJPEG(img, q)
+	if err != nil {
+		return nil, fmt.Errorf("snapshot: %w", err)
+	}
+	return b, nil
+}
+
+func annotate(img *gocv.Mat, a Annotation) {
+	thick := max(2, img.Cols()/320)
+	if len(a.Outline) >= 2 {
+		pts := make([]image.Point, len(a.Outline))
+		for i, p := range a.Outline {
+			pts[i] = image.Pt(int(math.Round(p.X)), int(math.Round(p.Y)))
+		}
+		pv := gocv.NewPointsVectorFromPoints([][]image.Point{pts})
+		gocv.Polylines(img, pv, true, outlineColor, thick)
+		pv.Close()
+	}
+	scale := math.Max(0.4, float64(img.Cols())/1280)
+	for _, b := range a.Boxes {
+		gocv.Rectangle(img, b.Box, boxColor, thick)
+		if b.Label == "" {
+			continue
+		}
+		txt := asciiLabel(b.Label)
+		sz := gocv.GetTextSize(txt, gocv.FontHersheySimplex, scale, 1)
+		org := image.Pt(b.Box.Min.X, b.Box.Min.Y-4)
+		if org.Y-sz.Y < 0 {
+			org.Y = b.Box.Max.Y + sz.Y + 4
+		}
+		gocv.Rectangle(img, image.Rect(org.X, org.Y-sz.Y-3, org.X+sz.X+4, org.Y+3), color.RGBA{}, -1)
+		gocv.PutText(img, txt, image.Pt(org.X+2, org.Y), gocv.FontHersheySimplex, scale, boxColor, 1)
+	}
+	if a.Caption != "" {
+		txt := asciiLabel(a.Caption)
+		sz := gocv.GetTextSize(txt, gocv.FontHersheySimplex, scale, 1)
+		gocv.Rectangle(img, image.Rect(0, 0, img.Cols(), sz.Y+10), color.RGBA{}, -1)
+		gocv.PutText(img, txt, image.Pt(5, sz.Y+5), gocv.FontHersheySimplex, scale, captionColor, 1)
+	}
+}
+
+// asciiLabel maps text onto the Hershey font's ASCII glyphs.
+func asciiLabel(s string) string {
+	var b strings.Builder
+	for _, r := range s {
+		switch {
+		case r == '·' || r == '–' || r == '—':
+			b.WriteByte('-')
+		case r == '²':
+			b.WriteByte('2')
+		case r == '×':
+			b.WriteByte('x')
+		case r < 0x20 || r > 0x7e:
+			b.WriteByte('?')
+		default:
+			b.WriteRune(r)
+		}
+	}
+	return b.String()
+}
+
+func encodeJPEG(m gocv.Mat, quality int) ([]byte, error) {
+	buf, err := gocv.IMEncodeWithParams(gocv.JPEGFileExt, m, []int{gocv.IMWriteJpegQuality, quality})
+	if err != nil {
+		return nil, fmt.Errorf("encode jpeg: %w", err)
+	}
+	defer buf.Close()
+	b := buf.GetBytes()
+	if len(b) == 0 {
+		return nil, errors.New("encode jpeg: empty result")
+	}
+	out := make([]byte, len(b))
+	copy(out, b)
+	return out, nil
+}
+
+// Retention limits an evidence directory. Zero fields do not limit.
+type Retention struct {
+	MaxFiles int           // keep at most this many files
+	MaxBytes int64         // keep at most this many bytes in total
+	MaxAge   time.Duration // remove files modified longer ago than this
+	// Keep are paths never removed, such as the clip being recorded.
+	Keep []string
+}
+
+// isEvidence says whether PruneEvidence manages a file of this name; it
+// leaves any other file in the directory alone.
+func isEvidence(name string) bool {
+	switch strings.ToLower(filepath.Ext(name)) {
+	case ".avi", ".jpg", ".jpeg":
+		return true
+	}
+	return false
+}
+
+// PruneEvidence removes evidence files (.avi, .jpg, .jpeg) directly in dir
+// until the newest ones left fit every limit of r, deleting oldest first by
+// modification time. It returns how many files it removed.
+func PruneEvidence(dir string, r Retention, now time.Time) (int, error) {
+	entries, err := os.ReadDir(dir)
+	if err != nil {
+		return 0, fmt.Errorf("prune evidence %s: %w", dir, err)
+	}
+	keep := map[string]bool{}
+	for _, k := range r.Keep {
+		keep[filepath.Clean(k)] = true
+	}
+	type file struct {
+		path string
+		size int64
+		mod  time.Time
+	}
+	var files []file
+	for _, e := range entries {
+		if !e.Type().IsRegular() || !isEvidence(e.Name()) {
+			continue
+		}
+		info, err := e.Info()
+		if err != nil {
+			continue // removed meanwhile
+		}
+		files = append(files, file{filepath.Join(dir, e.Name()), info.Size(), info.ModTime()})
+	}
+	sort.Slice(files, func(i, j int) bool {
+		if !files[i].mod.Equal(files[j].mod) {
+			return files[i].mod.After(files[j].mod)
+		}
+		return files[i].path > files[j].path
+	})
+	var (
+		count   int
+		total   int64
+		removed int
+		full    bool // a newer file did not fit: every older one goes
+		errs    []error
+	)
+	// Files that must stay count against the limits first.
+	for _, f := range files {
+		if keep[filepath.Clean(f.path)] {
+			count++
+			total += f.size
+		}
+	}
+	for _, f := range files {
+		if keep[filepath.Clean(f.path)] {
+			continue
+		}
+		fits := !full && (r.MaxFiles <= 0 || count+1 <= r.MaxFiles) &&
+			(r.MaxBytes <= 0 || total+f.size <= r.MaxBytes) &&
+			(r.MaxAge <= 0 || now.Sub(f.mod) <= r.MaxAge)
+		full = !fits
+		if fits {
+			count++
+			total += f.size
+			continue
+		}
+		if err := os.Remove(f.path); err != nil && !errors.Is(err, os.ErrNotExist) {
+			errs = append(errs, err)
+			continue
+		}
+		removed++
+	}
+	if len(errs) > 0 {
+		return removed, fmt.Errorf("prune evidence %s: %w", dir, errors.Join(errs...))
+	}
+	return removed, nil
+}
