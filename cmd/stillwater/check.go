@@ -10,7 +10,6 @@ import (
 	"time"
 
 	"stillwater/alert"
-	"stillwater/homography"
 	"stillwater/vision"
 )
 
@@ -58,9 +57,24 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 			transport = "backend default"
 		}
 		fmt.Fprintf(w, "  %s  %s (transport %s)\n", cam.ID, vision.Redact(cam.Source), transport)
-		fmt.Fprintf(w, "    pool %g × %g m, corners A %v B %v C %v D %v px\n", cam.Pool.Length, cam.Pool.Width, cam.Corners[0], cam.Corners[1], cam.Corners[2], cam.Corners[3])
-		if h, err := poolHomography(cam); err == nil {
-			fmt.Fprintf(w, "    %s\n", resolution(cam, h))
+		cal, err := newCalibration(cam)
+		if err != nil {
+			return err
+		}
+		fmt.Fprintf(w, "    %s\n", calibrationLine(cam))
+		if cal.hasCam {
+			how := "measured"
+			if cal.estimated {
+				how = "estimated from the calibration"
+			}
+			fmt.Fprintf(w, "    camera at x %.2f m, y %.2f m, %.2f m above the water (%s)\n", cal.cam.X, cal.cam.Y, cal.cam.Height, how)
+		}
+		if cam.ReferenceFrame != "" {
+			fmt.Fprintf(w, "    camera-moved check against %s\n", cam.ReferenceFrame)
+		}
+		fmt.Fprintf(w, "    %s\n", resolution(cal))
+		if n := len(cam.Zones); n > 0 {
+			fmt.Fprintf(w, "    %d exclusion zone(s)\n", n)
 		}
 		d := cam.Detect
 		fmt.Fprintf(w, "    detect %s at %d px wide, threshold %g, blobs %g–%g m², alarm after %v, updates every %v, cleared after %v\n",
@@ -83,7 +97,20 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 		fmt.Fprintf(tw, "  %s\t%s\n", k, alert.Subject(cfg.Bus.Prefix, "CAMERA", k))
 	}
 	tw.Flush()
-	fmt.Fprintf(w, "  heartbeat every %v per camera\n\n", time.Duration(cfg.HeartbeatEvery))
+	fmt.Fprintf(w, "  heartbeat every %v per camera\n", time.Duration(cfg.HeartbeatEvery))
+	fmt.Fprintf(w, "  unacknowledged messages wait in %s/outbox\n", cfg.DataDir)
+	switch c := cfg.Control; {
+	case c.SecretEnv != "":
+		fmt.Fprintf(w, "  control (arm, disarm) needs the secret from $%s\n\n", c.SecretEnv)
+	case c.SecretFile != "":
+		fmt.Fprintf(w, "  control (arm, disarm) needs the secret in %s\n\n", c.SecretFile)
+	case c.Secret != "":
+		fmt.Fprint(w, "  control (arm, disarm) needs the secret written in the config (better: secret_env or secret_file)\n\n")
+	case c.TrustNATS:
+		fmt.Fprint(w, "  control (arm, disarm) over NATS by the operator role; HTTP control refused\n\n")
+	default:
+		fmt.Fprint(w, "  control: no secret, so arm and disarm requests are refused; status only\n\n")
+	}
 	fmt.Fprintf(w, "http: metrics, /healthz and /readyz on %s\n", cfg.HTTP.Listen)
 	if cfg.Evidence.on() {
 		e := cfg.Evidence
@@ -95,12 +122,38 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	return nil
 }
 
-// resolution reports metres per pixel at the nearest and farthest corner,
-// which says how small a child the camera can resolve.
-func resolution(cam CameraConfig, h homography.H) string {
+// calibrationLine summarises how pixels become pool metres.
+func calibrationLine(cam CameraConfig) string {
+	c := cam.CalibrationConfig
+	var b strings.Builder
+	if len(c.Reference) > 0 {
+		fmt.Fprintf(&b, "freeform pool from %d reference points, outline of %d points", len(c.Reference), len(c.Outline))
+	} else {
+		fmt.Fprintf(&b, "pool %g × %g m, corners A %v B %v C %v D %v px", c.Pool.Length, c.Pool.Width, c.Corners[0], c.Corners[1], c.Corners[2], c.Corners[3])
+	}
+	switch {
+	case c.Lens != nil && len(c.Lens.Dist) > 0:
+		b.WriteString(", lens distortion corrected")
+	case c.Lens != nil && c.Lens.HFOVDeg > 0:
+		fmt.Fprintf(&b, ", field of view %g°", c.Lens.HFOVDeg)
+	}
+	switch {
+	case c.Water.Depth > 0:
+		fmt.Fprintf(&b, ", floor positions at %g m depth", c.Water.Depth)
+	case c.Water.Deep > 0:
+		fmt.Fprintf(&b, ", floor positions on a %g–%g m floor", c.Water.Shallow, c.Water.Deep)
+	default:
+		b.WriteString(", floor position = surface position (no water depth set)")
+	}
+	return b.String()
+}
+
+// resolution reports metres per pixel at the sharpest and coarsest point
+// of the water outline, which says how small a child the camera resolves.
+func resolution(cal *calibration) string {
 	best, worst := 0.0, 0.0
-	for i, c := range cam.Corners {
-		m := homography.MetresPerPixel(h, homography.Point{X: c[0], Y: c[1]})
+	for i, p := range cal.mask() {
+		m := cal.metresPerPixel(p)
 		if i == 0 || m < best {
 			best = m
 		}
@@ -108,7 +161,7 @@ func resolution(cam CameraConfig, h homography.H) string {
 			worst = m
 		}
 	}
-	return fmt.Sprintf("resolution %.1f–%.1f cm per pixel across the pool corners", best*100, worst*100)
+	return fmt.Sprintf("resolution %.1f–%.1f cm per pixel across the water outline", best*100, worst*100)
 }
 
 // armingLine says whether the camera is armed at now and when that

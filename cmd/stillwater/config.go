@@ -204,6 +204,30 @@ func sectionName(typ string) string {
 		return "a camera's calibration"
 	case "DetectConfig":
 		return "a camera's detect section"
+	case "LensConfig":
+		return "a camera's lens section"
+	case "WaterConfig":
+		return "a camera's water section"
+	case "DriftConfig":
+		return "a camera's drift section"
+	case "CameraPositionConfig":
+		return "a camera's camera_position"
+	case "ReferencePoint":
+		return "a reference point"
+	case "ZoneConfig":
+		return "a zone"
+	case "OutboxSection":
+		return "the bus.outbox section"
+	case "StreamSection":
+		return "the bus.stream section"
+	case "BusAuthConfig":
+		return "the bus.auth section"
+	case "BusTLSConfig":
+		return "the bus.tls section"
+	case "BusUserConfig":
+		return "a bus user"
+	case "LeafConfig":
+		return "a bus leaf remote"
 	}
 	s := strings.TrimSuffix(typ, "Config")
 	return "the " + strings.ToLower(s) + " section"
@@ -301,11 +325,11 @@ func (c Config) Validate() error {
 		default:
 			return fmt.Errorf("%s.transport: %q; want tcp or udp", where, cam.Transport)
 		}
-		if cam.Pool.Length <= 0 || cam.Pool.Width <= 0 {
-			return fmt.Errorf("%s.pool: length_m %g and width_m %g must both be positive metres", where, cam.Pool.Length, cam.Pool.Width)
+		if err := validateCalibration(where, cam.CalibrationConfig); err != nil {
+			return err
 		}
-		if len(cam.Corners) != 4 {
-			return fmt.Errorf("%s.corners: %d given; list the 4 pool corners A, B, C, D in pixels, A at the origin, B along the length", where, len(cam.Corners))
+		if _, err := buildCalibration(cam.CalibrationConfig); err != nil {
+			return fmt.Errorf("%s: calibration: %w", where, err)
 		}
 		if err := validateDetect(where, cam.Detect); err != nil {
 			return err

@@ -185,9 +185,12 @@ func demoConfig(t synth.Truth, clip, dir string, realtime bool) Config {
 	cfg.Bus.Listen = "127.0.0.1:-1"
 	cam := CameraConfig{
 		ID: "demo", Source: clip, Realtime: realtime,
-		CalibrationConfig: CalibrationConfig{Pool: PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width}},
-		Detect:            defaultDetect(),
-		FrameTimeout:      Duration(defaultFrameTimeout),
+		CalibrationConfig: CalibrationConfig{
+			Pool:           PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width},
+			CameraPosition: &CameraPositionConfig{X: t.Camera.X, Y: t.Camera.Y, Height: t.Camera.Height},
+		},
+		Detect:       defaultDetect(),
+		FrameTimeout: Duration(defaultFrameTimeout),
 	}
 	for _, c := range t.Corners {
 		cam.Corners = append(cam.Corners, c.Pixel)

@@ -32,26 +32,36 @@ type sink interface {
 // to pool metres, physical-size gating, tracking and alarm logic. It is the
 // same for the daemon and for replays.
 type processor struct {
-	cam     CameraConfig
-	toPool  homography.H // pixels → pool metres
-	tracker *vision.Tracker
-	alarm   *alert.Alarm
-	log     *slog.Logger
-	seq     uint64
-	epoch   time.Time // wall time of media time 0
-	now     func() time.Time
-	metrics *cameraMetrics
+	cam    CameraConfig
+	cal    *calibration // frame pixels → pool metres: lens, homography, refraction
+	zones  zoneSet      // exclusion polygons
+	tracks []vision.Track
+	// evidence, when set, keeps the evidence of an alarm starting at this
+	// frame and returns its reference for the target message.
+	evidence func(r vision.Result, o alert.Observation) string
+	tracker  *vision.Tracker
+	alarm    *alert.Alarm
+	log      *slog.Logger
+	seq      uint64
+	epoch    time.Time // wall time of media time 0
+	now      func() time.Time
+	metrics  *cameraMetrics
 }
 
 func newProcessor(cam CameraConfig, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *cameraMetrics) (*processor, error) {
-	h, err := poolHomography(cam)
+	cal, err := newCalibration(cam)
+	if err != nil {
+		return nil, err
+	}
+	zones, err := newZoneSet(cam)
 	if err != nil {
 		return nil, err
 	}
 	d := cam.Detect
 	return &processor{
 		cam:     cam,
-		toPool:  h,
+		cal:     cal,
+		zones:   zones,
 		tracker: vision.NewTracker(vision.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
 		alarm:   alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio, MaxSpeed: alert.DefaultAlarm().MaxSpeed}, fps),
 		log:     log,
@@ -92,16 +102,19 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 	d := p.cam.Detect
 	var dets []vision.Detection
 	for _, b := range r.Blobs {
-		c, ok := p.toPool.Map(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y})
+		c, ok := p.cal.surface(b.Centroid)
 		if !ok {
+			p.log.Debug("blob rejected: beyond the pool plane", "frame", r.Index, "px", b.Centroid)
+			p.metrics.rejected("outside")
 			continue
 		}
-		poly := make([]homography.Point, len(b.Contour))
-		for i, q := range b.Contour {
-			poly[i] = homography.Point{X: q.X, Y: q.Y}
+		if name, in := p.zones.excluded(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}, c); in {
+			p.log.Debug("blob rejected: in exclusion zone", "frame", r.Index, "zone", name, "x_m", c.X, "y_m", c.Y)
+			p.metrics.rejected("zone")
+			continue
 		}
-		area := homography.MappedArea(p.toPool, poly)
-		inside := c.X >= 0 && c.Y >= 0 && c.X <= p.cam.Pool.Length && c.Y <= p.cam.Pool.Width
+		area := p.cal.area(b.Contour)
+		inside := p.cal.inside(c)
 		switch {
 		case !inside:
 			p.log.Debug("blob rejected: centre outside the pool", "frame", r.Index, "x_m", c.X, "y_m", c.Y)
@@ -119,6 +132,7 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 		dets = append(dets, vision.Detection{X: c.X, Y: c.Y, Area: area, Box: b.Box})
 	}
 	tracks := p.tracker.Update(r.Media, dets)
+	p.tracks = tracks
 	obs := make([]alert.Observation, len(tracks))
 	var hold []image.Rectangle
 	for i, t := range tracks {
@@ -147,18 +161,23 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 	switch dec.Kind {
 	case alert.KindTarget:
 		p.log.Debug("track raised a target", "track", o.Track, "event", dec.Event, "dwell", dec.Dwell)
+		var ref string
 		if dec.Event == "start" {
 			p.metrics.alarm()
+			if p.evidence != nil {
+				ref = p.evidence(r, o)
+			}
 		}
 		v = alert.Target{
 			V: alert.Version, Kind: alert.KindTarget, Camera: p.cam.ID, Track: o.Track, Seq: p.seq, Event: dec.Event,
 			Time: now, FrameTime: frameTime, Frame: r.Index,
 			Surface:    alert.Position{X: round3(o.X), Y: round3(o.Y)},
-			Floor:      alert.FloorPosition{X: round3(o.X), Y: round3(o.Y)},
+			Floor:      floorOf(p.cal.floor(homography.Point{X: o.X, Y: o.Y})),
 			Area:       round4(o.Area),
 			Velocity:   alert.Velocity{X: round3(o.VX), Y: round3(o.VY)},
 			Dwell:      round3(dec.Dwell.Seconds()),
 			Confidence: dec.Confidence,
+			Evidence:   ref,
 		}
 	case alert.KindCleared:
 		v = alert.Cleared{
@@ -181,12 +200,20 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 // thresholds between frames, keeping tracks and alarms. The background
 // model is not touched: the source and its size stay the same.
 func (p *processor) reload(cam CameraConfig) error {
-	h, err := poolHomography(cam)
+	cal, err := newCalibration(cam)
 	if err != nil {
 		return err
 	}
-	p.cam, p.toPool = cam, h
+	zones, err := newZoneSet(cam)
+	if err != nil {
+		return err
+	}
+	p.cam, p.cal, p.zones = cam, cal, zones
 	return nil
+}
+
+func floorOf(f alert.FloorPosition) alert.FloorPosition {
+	return alert.FloorPosition{X: round3(f.X), Y: round3(f.Y), Depth: round3(f.Depth)}
 }
 
 func round3(v float64) float64 { return math.Round(v*1000) / 1000 }

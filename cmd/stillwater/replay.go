@@ -180,10 +180,6 @@ func (s *replaySink) write(m outMsg) error {
 func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Writer, log *slog.Logger) (replayStats, error) {
 	var st replayStats
 	start := time.Now()
-	zones, err := newZoneSet(cam)
-	if err != nil {
-		return st, err
-	}
 	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source}, detectorConfig(cam))
 	if err != nil {
 		return st, err
@@ -212,7 +208,6 @@ func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Write
 		}
 		media = r.Media
 		st.Frames, st.Media = r.Index+1, r.Media
-		r = zones.filter(r, proc.toPool, log, nil)
 		msgs, h := proc.step(r, true)
 		hold = h
 		for _, m := range msgs {

@@ -10,7 +10,6 @@ import (
 	"net/http"
 	"os"
 	"runtime/debug"
-	"sync"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -72,19 +71,20 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 		ids[i] = c.ID
 	}
 	var watches []*cameraWatch
-	var watchMu sync.Mutex // watches is filled after the bus opens; hooks may fire before
+	backlog := make(chan backlogEvent, 64)
 	bus, err := openBus(ctx, cfg, alert.ArmingConfig{Cameras: ids, Schedules: sch}, now, log, busHooks{
 		OnResult: func(r alert.PublishResult) {
 			if r.Err == nil {
 				met.pubSecs.WithLabelValues(r.Kind).Observe(r.Latency.Seconds())
 			}
 		},
+		// The publisher calls this from inside its own publish path: hand
+		// the fault to a goroutine rather than publish from here.
 		OnBacklog: func(active bool, st alert.Stats) {
-			watchMu.Lock()
-			defer watchMu.Unlock()
-			detail := fmt.Sprintf("%d messages wait in the outbox, oldest from %s", st.Depth, st.Oldest.UTC().Format(time.RFC3339))
-			for _, w := range watches {
-				w.raise(ctx, alert.FaultBusBacklog, active, detail)
+			select {
+			case backlog <- backlogEvent{active: active, stats: st}:
+			default:
+				log.Error("bus backlog event dropped: too many queued", "active", active)
 			}
 		},
 		OnRefused: func(via string) { met.refused.WithLabelValues(via).Inc() },
@@ -104,18 +104,34 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 			func() float64 { return float64(pub.Stats().Lost()) }))
 
 	bs := &busSink{pub: pub, met: met}
-	watchMu.Lock()
 	for _, cam := range cfg.Cameras {
 		id := cam.ID
 		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
-		watches = append(watches, newCameraWatch(cam, bs, armed, now, log, met.camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version))
+		watches = append(watches, newCameraWatch(cam, bs, armed, now, log, met.camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version, newEvidenceSettings(cfg)))
 	}
-	watchMu.Unlock()
+	backlogCtx, stopBacklog := context.WithCancel(ctx)
+	backlogDone := make(chan struct{})
+	defer func() { stopBacklog(); <-backlogDone }()
+	go func() {
+		defer close(backlogDone)
+		for {
+			select {
+			case <-backlogCtx.Done():
+				return
+			case ev := <-backlog:
+				detail := fmt.Sprintf("%d messages wait in the outbox, oldest from %s", ev.stats.Depth, ev.stats.Oldest.UTC().Format(time.RFC3339))
+				for _, w := range watches {
+					w.raise(backlogCtx, alert.FaultBusBacklog, ev.active, detail)
+				}
+			}
+		}
+	}()
 
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
 	mux.HandleFunc("/healthz", func(w http.ResponseWriter, _ *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.Handle("/control/", bus.Control.Handler())
+	mux.Handle("GET /cameras/{id}/latest.jpg", latestHandler(watches))
 	mux.HandleFunc("/readyz", func(w http.ResponseWriter, _ *http.Request) {
 		problems := readiness(now(), watches, nc.IsConnected())
 		if len(problems) > 0 {
@@ -280,6 +296,12 @@ func buildVersion() string {
 		rev += "-dirty"
 	}
 	return "devel-" + rev
+}
+
+// backlogEvent is the outbox starting or ending a backlog.
+type backlogEvent struct {
+	active bool
+	stats  alert.Stats
 }
 
 // busSink hands messages to the publisher: targets, clears, faults and

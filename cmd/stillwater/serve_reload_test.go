@@ -43,7 +43,7 @@ func TestApplyReload(t *testing.T) {
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
 	var watches []*cameraWatch
 	for _, c := range old.Cameras {
-		watches = append(watches, newCameraWatch(c, nil, func(time.Time) bool { return true }, time.Now, log, nil, 0, "test"))
+		watches = append(watches, newCameraWatch(c, nil, func(time.Time) bool { return true }, time.Now, log, nil, 0, "test", evidenceSettings{}))
 	}
 	noon := time.Date(2026, 7, 1, 12, 0, 0, 0, time.UTC)
 	require.False(t, armed("north", noon), "the old schedule is disarmed at noon")

@@ -37,13 +37,16 @@ type cameraWatch struct {
 	nframes   atomic.Int64  // frames read since start
 	faults    faultBoard
 
-	reload chan CameraConfig // new calibration, zones, detection for this camera
+	reload   chan CameraConfig // new calibration, zones, detection for this camera
+	evidence evidenceSettings
+	snapReq  chan chan snapshot // HTTP asks the capture goroutine for a frame
 }
 
-func newCameraWatch(cam CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *cameraMetrics, heartbeat time.Duration, version string) *cameraWatch {
+func newCameraWatch(cam CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *cameraMetrics, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
 	w := &cameraWatch{
 		cam: cam, out: out, armed: armed, now: now, log: log.With("camera", cam.ID), met: met,
 		heartbeat: heartbeat, version: version, epoch: now(), reload: make(chan CameraConfig, 1),
+		evidence: ev, snapReq: make(chan chan snapshot),
 	}
 	w.lastFrame.Store(w.epoch.UnixNano())
 	return w
@@ -153,132 +156,230 @@ func (w *cameraWatch) send(ctx context.Context, m outMsg) {
 	w.met.stage("publish", time.Since(t0))
 }
 
-// capture opens the source, runs the pipeline over its frames and opens it
-// again after a failure, with exponential backoff and jitter. The backoff
-// stops growing at 2 s: a pool camera that comes back must be watched
-// again within seconds, and one attempt every 2 s costs a home network
-// nothing.
+// capture opens the source, runs the pipeline over its frames and, after
+// a failure, reconnects with exponential backoff and jitter, keeping the
+// learned background (a warm start: no relearning, no false blobs). The
+// backoff stops growing at 2 s: a pool camera that comes back must be
+// watched again within seconds, and one attempt every 2 s costs a home
+// network nothing.
 func (w *cameraWatch) capture(ctx context.Context) error {
 	bo := backoff{min: 100 * time.Millisecond, max: 2 * time.Second}
-	var proc *processor
-	var offset, lastMedia time.Duration
+	var vc *vision.Camera
+	for vc == nil {
+		var err error
+		vc, err = w.open()
+		if err == nil {
+			break
+		}
+		d := bo.next()
+		w.log.Warn("camera open failed; trying again", "err", err, "in", d.Round(time.Millisecond))
+		if !sleep(ctx, d) {
+			return nil
+		}
+	}
+	defer vc.Close()
+	bo.reset()
+	proc, err := newProcessor(w.cam, vc.FPS(), w.epoch, w.now, w.log, w.met)
+	if err != nil {
+		return err
+	}
+	drift, err := newDriftChecker(w.cam, proc.cal)
+	if err != nil {
+		// The pool is still watched; only the camera-moved check is off.
+		w.log.Error("camera-moved check off", "err", err)
+	}
+	defer func() { drift.Close() }()
+	st := &captureState{proc: proc, drift: drift, health: vision.NewHealthMonitor(vision.HealthConfig{})}
 	for ctx.Err() == nil {
-		vc, err := vision.OpenCamera(w.sourceConfig(), w.detectorConfig())
-		if err != nil {
-			d := bo.next()
-			w.log.Warn("camera open failed; trying again", "err", err, "in", d.Round(time.Millisecond))
-			w.met.reconnect()
-			if !sleep(ctx, d) {
-				return nil
-			}
-			continue
-		}
-		bo.reset()
-		if proc == nil {
-			if proc, err = newProcessor(w.cam, vc.FPS(), w.epoch, w.now, w.log, w.met); err != nil {
-				vc.Close()
-				return err
-			}
-		}
-		w.log.Info("camera open", "source", vision.Redact(w.cam.Source), "size", vc.Size(), "fps", vc.FPS())
-		// Media time keeps running across reopenings: a reopened file
-		// starts at 0 again and a live camera's clock restarts.
-		if lastMedia > 0 {
-			offset = lastMedia + frameStep(vc.FPS())
-		}
-		lastMedia, err = w.frames(ctx, vc, proc, offset)
-		vc.Close()
+		err := w.frames(ctx, vc, st)
 		switch {
 		case ctx.Err() != nil:
 			return nil
-		case errors.Is(err, io.EOF) && !w.cam.Loop:
+		case errors.Is(err, io.EOF):
 			w.log.Info("source ended", "frames", w.nframes.Load())
 			return nil
-		case errors.Is(err, io.EOF):
-			continue
-		case err != nil:
+		case errors.Is(err, vision.ErrDamagedMedia):
+			return fmt.Errorf("camera %s: %w", w.cam.ID, err)
+		}
+		w.log.Warn("camera read failed; reconnecting", "err", err)
+		for ctx.Err() == nil {
 			d := bo.next()
-			w.log.Warn("camera read failed; reconnecting", "err", err, "in", d.Round(time.Millisecond))
-			w.met.reconnect()
 			if !sleep(ctx, d) {
 				return nil
 			}
+			w.met.reconnect()
+			info, err := vc.Reconnect()
+			if err != nil {
+				w.log.Warn("reconnect failed; trying again", "err", err, "next_in", bo.peek().Round(time.Millisecond))
+				continue
+			}
+			bo.reset()
+			w.log.Info("camera back", "size", info.Size, "model_kept", !info.Rebuilt)
+			if err := proc.cal.checkFrame(info.Size); err != nil {
+				w.raise(ctx, alert.FaultCalibrationDrift, true, err.Error())
+			}
+			break
 		}
 	}
 	return nil
 }
 
-// frames processes frames until the source fails or ends, returning the
-// media time of the last frame.
-func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, proc *processor, offset time.Duration) (time.Duration, error) {
+// open opens the source with the camera's detector.
+func (w *cameraWatch) open() (*vision.Camera, error) {
+	cal, err := newCalibration(w.cam)
+	if err != nil {
+		return nil, err
+	}
+	vc, err := vision.OpenCamera(w.sourceConfig(), detectorConfig(w.cam))
+	if err != nil {
+		return nil, err
+	}
+	if err := cal.checkFrame(vc.Size()); err != nil {
+		vc.Close()
+		return nil, fmt.Errorf("camera %s: %w", w.cam.ID, err)
+	}
+	if w.evidence.on {
+		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll}); err != nil {
+			vc.Close()
+			return nil, fmt.Errorf("camera %s: evidence: %w", w.cam.ID, err)
+		}
+	}
+	w.log.Info("camera open", "source", vision.Redact(w.cam.Source), "size", vc.Size(), "fps", vc.FPS())
+	return vc, nil
+}
+
+// captureState is what lives across reconnects of one camera.
+type captureState struct {
+	proc   *processor
+	drift  *driftChecker
+	health *vision.HealthMonitor
+	stats  vision.CaptureStats
+	hold   []image.Rectangle
+}
+
+// healthFaults maps the picture conditions to fault kinds.
+var healthFaults = map[vision.Condition]string{
+	vision.CondDark:    alert.FaultCameraBlinded,
+	vision.CondUniform: alert.FaultCameraBlinded,
+	vision.CondFrozen:  alert.FaultCameraFrozen,
+	vision.CondNoise:   alert.FaultCameraNoise,
+}
+
+// frames processes frames until the source fails or ends.
+func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *captureState) error {
 	fps := vc.FPS()
 	live := strings.Contains(w.cam.Source, "://")
 	paceStart := time.Now()
-	var hold []image.Rectangle
-	var last time.Duration
+	proc := st.proc
+	proc.evidence = func(r vision.Result, o alert.Observation) string { return w.saveEvidence(vc, proc, r, o) }
+	defer func() { proc.evidence = nil }()
 	for {
 		if ctx.Err() != nil {
-			return last, nil
+			return nil
 		}
-		select {
-		case c := <-w.reload:
-			if err := proc.reload(c); err != nil {
-				w.log.Error("reload refused; keeping the running settings", "err", err)
-			} else {
-				w.cam = c
-				w.log.Info("calibration, zones and detection settings reloaded")
-			}
-		default:
-		}
+		w.takeReload(proc, st)
+		w.answerSnapshot(vc, proc)
 		t0 := time.Now()
-		r, err := vc.Next(hold)
+		r, err := vc.Next(st.hold)
+		w.countStats(vc, st)
 		if err != nil {
-			return last, err
+			return err
 		}
 		w.lastFrame.Store(w.now().UnixNano())
 		w.nframes.Add(1)
-		w.met.frame()
 		w.met.stage("vision", time.Since(t0))
 		if live {
 			r.Media = w.now().Sub(w.epoch)
-		} else {
-			r.Media += offset
 		}
-		last = r.Media
+		armed := w.armed(w.now())
+		w.checkHealth(ctx, r.Media, st.health.Observe(r.Media, r.Health), armed)
 		t1 := time.Now()
-		msgs, h := proc.step(r, w.armed(w.now()))
-		hold = h
+		msgs, h := proc.step(r, armed)
+		st.hold = h
 		w.met.stage("track", time.Since(t1))
 		for _, m := range msgs {
 			w.send(ctx, m)
+		}
+		if st.drift.due(r.Media) {
+			w.checkDrift(ctx, st.drift.check(r.Media, vc))
 		}
 		w.met.processed(time.Since(t0))
 		if w.cam.Realtime && fps > 0 && !live {
 			due := paceStart.Add(time.Duration(float64(r.Index+1) / fps * float64(time.Second)))
 			if !sleep(ctx, time.Until(due)) {
-				return last, nil
+				return nil
 			}
 		}
 	}
 }
 
+// countStats exports the capture counters' growth.
+func (w *cameraWatch) countStats(vc *vision.Camera, st *captureState) {
+	s := vc.Stats()
+	w.met.decodeErrors(int(s.DecodeErrors - st.stats.DecodeErrors))
+	st.stats = s
+}
+
+// takeReload applies a pending reload between frames.
+func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
+	select {
+	case c := <-w.reload:
+		if err := proc.reload(c); err != nil {
+			w.log.Error("reload refused; keeping the running settings", "err", err)
+			return
+		}
+		w.cam = c
+		if d, err := newDriftChecker(c, proc.cal); err != nil {
+			w.log.Error("reload: camera-moved check off", "err", err)
+		} else {
+			st.drift.Close()
+			st.drift = d
+		}
+		w.log.Info("calibration, zones and detection settings reloaded")
+	default:
+	}
+}
+
+// checkHealth turns picture conditions into faults while armed; a
+// condition that clears clears its fault whether armed or not.
+func (w *cameraWatch) checkHealth(ctx context.Context, media time.Duration, rep vision.HealthReport, armed bool) {
+	want := healthFaults[rep.Condition]
+	for _, kind := range []string{alert.FaultCameraBlinded, alert.FaultCameraFrozen, alert.FaultCameraNoise} {
+		switch {
+		case kind == want && armed:
+			w.raise(ctx, kind, true, fmt.Sprintf("picture %s for %.1f s", rep.Condition, (time.Duration(0)+rep.Since).Seconds()))
+		case kind != want:
+			w.raise(ctx, kind, false, "")
+		}
+	}
+}
+
+// checkDrift raises or clears calibration_drift from one comparison.
+func (w *cameraWatch) checkDrift(ctx context.Context, st driftStatus) {
+	var active bool
+	switch {
+	case st.Moved || st.Lost:
+		active = true
+	case st.Err == nil:
+		active = false
+	default:
+		return // one failed registration decides nothing
+	}
+	if !w.faults.set(alert.FaultCalibrationDrift, active) {
+		return
+	}
+	w.met.fault(alert.FaultCalibrationDrift, active)
+	if active {
+		w.log.Error("camera moved: positions are not trustworthy until recalibrated", "shift_m", st.ShiftM, "lost", st.Lost)
+	} else {
+		w.log.Warn("camera matches its calibration again", "shift_m", st.ShiftM)
+	}
+	w.sendFault(ctx, alert.NewDriftFault(w.cam.ID, w.seq.Add(1), w.now(), active, round3(st.ShiftM)))
+}
+
 func (w *cameraWatch) sourceConfig() vision.SourceConfig {
-	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: 5 * time.Second}
-}
-
-func (w *cameraWatch) detectorConfig() vision.DetectorConfig {
-	d := w.cam.Detect
-	return vision.DetectorConfig{
-		ProcessWidth: d.ProcessWidth, Method: d.Method, History: d.History,
-		Threshold: d.Threshold, LearningRate: -1, MinPixels: 6, Mask: cornersPolygon(w.cam),
-	}
-}
-
-func frameStep(fps float64) time.Duration {
-	if fps <= 0 {
-		return 100 * time.Millisecond
-	}
-	return time.Duration(float64(time.Second) / fps)
+	rt := w.frameTimeout()
+	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop}
 }
 
 // sleep waits d or until ctx ends; it reports whether ctx is still live.
@@ -314,6 +415,9 @@ func (b *backoff) next() time.Duration {
 }
 
 func (b *backoff) reset() { b.cur = 0 }
+
+// peek is the delay the next call will start from, without jitter.
+func (b *backoff) peek() time.Duration { return min(max(2*b.cur, b.min), b.max) }
 
 // faultBoard holds which faults are active for one camera.
 type faultBoard struct {

@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"io"
 	"log/slog"
+	"os"
 	"path/filepath"
 	"runtime"
 	"sync"
@@ -59,8 +60,12 @@ func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
 	ready := make(chan string, 1)
 	done := make(chan error, 1)
 	go func() {
+		var w io.Writer = io.Discard
+		if os.Getenv("STILLWATER_TEST_LOG") != "" {
+			w = os.Stderr // a daemon's log for a failing test: STILLWATER_TEST_LOG=1
+		}
 		done <- serve(ctx, cfg, deps{
-			Log:   slog.New(slog.NewTextHandler(io.Discard, nil)),
+			Log:   slog.New(slog.NewTextHandler(w, nil)),
 			Ready: func(busURL, _ string) { ready <- busURL },
 		})
 	}()
