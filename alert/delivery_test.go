@@ -1,6 +1,8 @@
 package alert
 
 import (
+	"stillwater/vision/refdata"
+
 	"context"
 	"fmt"
 	"net"
@@ -185,7 +187,7 @@ func TestOutageLosesNothing(t *testing.T) {
 	ids := streamIDs(t, url, "STILLWATER")
 	lost, dup := exactlyOnce(t, ids, sent)
 	st := p.Stats()
-	t.Logf("outage %.1f s; sent %d, in stream %d, lost %d, duplicated %d; outbox depth at restart %d, drained %.2f s after the restart; longest Publish call %v; stats %+v",
+	refdata.Report(t, "outage %.1f s; sent %d, in stream %d, lost %d, duplicated %d; outbox depth at restart %d, drained %.2f s after the restart; longest Publish call %v; stats %+v",
 		restarted.Sub(stopped).Seconds(), len(sent), len(ids), lost, dup, depthAtRestart, drain.Seconds(), maxBlock, st)
 	mu.Lock()
 	t.Logf("publish latency: longest acknowledged directly %v, longest through the outbox %v; backlog transitions %v", maxDirect, maxQueued, backlog)
@@ -246,7 +248,7 @@ func TestOutboxSurvivesRestart(t *testing.T) {
 	waitDrained(t, p2, 30*time.Second)
 	ids := streamIDs(t, url, "STILLWATER")
 	lost, dup := exactlyOnce(t, ids, sent)
-	t.Logf("sent %d (20 through a restart), in stream %d, lost %d, duplicated %d", len(sent), len(ids), lost, dup)
+	refdata.Report(t, "sent %d (20 through a restart), in stream %d, lost %d, duplicated %d", len(sent), len(ids), lost, dup)
 }
 
 func TestOutboxOverflowPolicy(t *testing.T) {
@@ -432,7 +434,7 @@ func TestClusterFailover(t *testing.T) {
 	}
 	assert.Zero(t, missing, "acknowledged messages missing from the stream")
 	lost, dup := exactlyOnce(t, ids, sent)
-	t.Logf("leader %s stopped after 150 of %d; acked %d, in stream (via %s) %d, missing acked %d, lost %d, duplicated %d; failover (stop to first ack after) %v; stats %+v",
+	refdata.Report(t, "leader %s stopped after 150 of %d; acked %d, in stream (via %s) %d, missing acked %d, lost %d, duplicated %d; failover (stop to first ack after) %v; stats %+v",
 		leader, len(sent), nAcked, srvs[survivor].Name(), len(ids), missing, lost, dup, failover, p.Stats())
 	assert.Greater(t, failover, time.Duration(0), "no acknowledgement after the leader stopped")
 }

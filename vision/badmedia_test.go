@@ -97,8 +97,7 @@ func TestBadMedia(t *testing.T) {
 			require.Error(t, err)
 			assert.NotContains(t, err.Error(), "panic")
 			msg := fmt.Sprintf("%s: %d frames read, stats %+v, end: %v", tc.name, n, st, err)
-			t.Log(msg)
-			fmt.Println("badmedia: " + msg)
+			report(t, "badmedia: %s", msg)
 			switch {
 			case tc.openErr:
 				assert.ErrorContains(t, err, "open camera")

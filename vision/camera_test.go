@@ -9,6 +9,7 @@ import (
 	"net/http"
 	"net/http/httptest"
 	"net/textproto"
+	"stillwater/vision/refdata"
 	"testing"
 	"time"
 
@@ -19,12 +20,11 @@ import (
 	"stillwater/vision/rtsptest"
 )
 
-// report prints a measured figure both to the test log and to stdout, so
-// that it shows in runs without -v.
+// report records a measured figure in the test log and in the CI report
+// (see refdata.Report).
 func report(t *testing.T, format string, args ...any) {
 	t.Helper()
-	t.Logf(format, args...)
-	fmt.Printf(format+"\n", args...)
+	refdata.Report(t, format, args...)
 }
 
 func TestLoopKeepsMediaTimeIncreasing(t *testing.T) {

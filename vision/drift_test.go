@@ -77,7 +77,7 @@ func TestDriftGraffitiGroundTruth(t *testing.T) {
 		t.Logf("corner (%4.0f, %4.0f): estimated (%7.2f, %7.2f), ground truth (%7.2f, %7.2f), error %.2f px", c.X, c.Y, a.X, a.Y, w.X, w.Y, e)
 		worst = math.Max(worst, e)
 	}
-	t.Logf("graffiti 1→3: %d ratio-test matches, %d RANSAC inliers, worst corner error %.2f px", res.Matches, res.Inliers, worst)
+	refdata.Report(t, "graffiti 1→3: %d ratio-test matches, %d RANSAC inliers, worst corner error %.2f px", res.Matches, res.Inliers, worst)
 	assert.LessOrEqual(t, worst, 5.0, "corner error against H1to3p, px")
 }
 

@@ -3,7 +3,6 @@ package vision
 import (
 	"context"
 	"errors"
-	"fmt"
 	"image"
 	"io"
 	"os"
@@ -88,7 +87,7 @@ func TestClipHasPreRollAndPostRoll(t *testing.T) {
 	assert.Equal(t, image.Pt(320, 240), sz)
 	_, err = os.Stat(filepath.Join(t.TempDir(), "other.avi"))
 	assert.True(t, errors.Is(err, os.ErrNotExist))
-	fmt.Printf("evidence: clip %d frames (pre-roll %d), media of StartClip %v\n", n, info.PreRoll, last)
+	report(t, "evidence: clip %d frames (pre-roll %d), media of StartClip %v", n, info.PreRoll, last)
 }
 
 // TestCloseFinishesClip: a clip still recording when the camera closes is

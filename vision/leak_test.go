@@ -65,8 +65,7 @@ func TestNoLeakOverTenThousandFrames(t *testing.T) {
 	assert.Equal(t, 10+999, b)
 	msg := fmt.Sprintf("leak: 10000 frames in %v (%.0f frames/s), %d loops, Mats %d→%d, goroutines %d→%d, clips %d and %d frames",
 		took.Round(time.Millisecond), 10000/took.Seconds(), st.Loops, mats0, matsOpen(), goroutines0, runtime.NumGoroutine(), a, b)
-	t.Log(msg)
-	fmt.Println(msg)
+	report(t, "%s", msg)
 }
 
 // matsOpen is the open Mat count, or 0 when Mats are not counted (without

@@ -1,6 +1,8 @@
 package main
 
 import (
+	"stillwater/vision/refdata"
+
 	"context"
 	"image"
 	"image/png"
@@ -119,7 +121,7 @@ func TestCalibrationPoseAndRefraction(t *testing.T) {
 
 			// Pose: height within 10 % of the generator's.
 			herr := math.Abs(cal.cam.Height-tc.pose.Height) / tc.pose.Height
-			t.Logf("camera estimated at (%.2f, %.2f) m, %.3f m up; generator (%.2f, %.2f) m, %.2f m: height error %.1f %%",
+			refdata.Report(t, "camera estimated at (%.2f, %.2f) m, %.3f m up; generator (%.2f, %.2f) m, %.2f m: height error %.1f %%",
 				cal.cam.X, cal.cam.Y, cal.cam.Height, tc.pose.X, tc.pose.Y, tc.pose.Height, 100*herr)
 			assert.LessOrEqual(t, herr, 0.10, "relative height error")
 
@@ -148,8 +150,8 @@ func TestCalibrationPoseAndRefraction(t *testing.T) {
 					assert.InDelta(t, d, f.Depth, 0.05, "depth at (%g, %g)", x, y)
 				}
 			}
-			t.Logf("surface points: worst error %.3f m (homography only)", worstSurf)
-			t.Logf("floor targets 1.0–2.0 m deep: refraction on worst %.3f m, mean %.3f m; off (surface position taken as floor) worst %.3f m, mean %.3f m",
+			refdata.Report(t, "surface points: worst error %.3f m (homography only)", worstSurf)
+			refdata.Report(t, "floor targets 1.0–2.0 m deep: refraction on worst %.3f m, mean %.3f m; off (surface position taken as floor) worst %.3f m, mean %.3f m",
 				worstOn, sumOn/float64(n), worstOff, sumOff/float64(n))
 			assert.LessOrEqual(t, worstSurf, 0.05, "surface error, m")
 			assert.LessOrEqual(t, worstOn, 0.10, "floor error with refraction, m")
@@ -444,10 +446,10 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 					assert.False(t, st.Moved, "at %.1f s: shift %.3f m", at, st.ShiftM)
 				} else if st.Moved && firstMoved < 0 {
 					firstMoved = at
-					t.Logf("moved reported at %.1f s (%.1f s after the pan): corners shifted %.2f m, %d inliers", at, at-tc.panAt, st.ShiftM, st.Inliers)
+					refdata.Report(t, "moved reported at %.1f s (%.1f s after the pan): corners shifted %.2f m, %d inliers", at, at-tc.panAt, st.ShiftM, st.Inliers)
 				}
 			}
-			t.Logf("largest shift while still: %.3f m (threshold %.2f m)", worstStill, defaultDriftMaxShift)
+			refdata.Report(t, "largest shift while still: %.3f m (threshold %.2f m)", worstStill, defaultDriftMaxShift)
 			if tc.panAt > 0 {
 				require.GreaterOrEqual(t, firstMoved, tc.panAt, "pan never reported")
 				assert.LessOrEqual(t, firstMoved-tc.panAt, 10.0, "delay, s")
@@ -509,7 +511,7 @@ func TestRefractionOnRenderedFrames(t *testing.T) {
 	}
 	require.Greater(t, len(on), 40, "frames with the child detected")
 	mOn, mOff, mSeen := median(on), median(off), median(seen)
-	t.Logf("%d frames: floor error median %.3f m with refraction, %.3f m without; blob vs drawn (apparent) position median %.3f m", len(on), mOn, mOff, mSeen)
+	refdata.Report(t, "%d frames: floor error median %.3f m with refraction, %.3f m without; blob vs drawn (apparent) position median %.3f m", len(on), mOn, mOff, mSeen)
 	assert.LessOrEqual(t, mOn, 0.10, "floor error with refraction, m")
 	assert.Greater(t, mOff, 3*mOn, "refraction off is measurably worse")
 }

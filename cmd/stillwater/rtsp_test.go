@@ -3,7 +3,6 @@ package main
 import (
 	"context"
 	"encoding/json"
-	"fmt"
 	"path/filepath"
 	"testing"
 	"time"
@@ -12,6 +11,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
 	"stillwater/vision/synth"
 )
@@ -68,9 +68,8 @@ func TestRTSPCameraLostAndBack(t *testing.T) {
 	resumed := waitFault(t, log, faults, alert.FaultCameraLost, false, back, 20*time.Second)
 	resumeDelay := resumed.Sub(back)
 
-	fmt.Printf("rtsp: camera_lost %.2f s after the pusher was killed (limit 5 s); frames again %.2f s after the stream returned (limit 3 s)\n",
+	refdata.Report(t, "rtsp: camera_lost %.2f s after the pusher was killed (limit 5 s); frames again %.2f s after the stream returned (limit 3 s)",
 		lostDelay.Seconds(), resumeDelay.Seconds())
-	t.Logf("camera_lost after %v, resumed after %v", lostDelay, resumeDelay)
 	assert.LessOrEqual(t, lostDelay, 5*time.Second)
 	assert.LessOrEqual(t, resumeDelay, 3*time.Second)
 

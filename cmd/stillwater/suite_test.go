@@ -259,3 +259,50 @@ func TestScenarioQuick(t *testing.T) {
 		t.Fatal(strings.Join(fails, "\n"))
 	}
 }
+
+// TestStillChildFiveMinutes checks that a child who enters and then floats
+// still for five minutes (10 fps) stays tracked the whole time: one track
+// id, no cleared message while the child is in the water, and no silence
+// longer than 1 s between its target messages. The clip is rendered at
+// 320×240 to keep the replay short; the scene and the pipeline keep their
+// default settings. The benchmark runs the same scene at 640×480.
+func TestStillChildFiveMinutes(t *testing.T) {
+	if testing.Short() {
+		t.Skip("renders and replays a 320 s clip")
+	}
+	s, ok := scenarioByName("still-child", 7)
+	if !ok {
+		t.Fatal("no still-child scene")
+	}
+	s.Width, s.Height = 320, 240
+	clip := filepath.Join(t.TempDir(), "still.avi")
+	truth, err := synth.Render(context.Background(), s, clip, "")
+	if err != nil {
+		t.Fatal(err)
+	}
+	cam, err := cameraFromLabels(truth, clip)
+	if err != nil {
+		t.Fatal(err)
+	}
+	cs, st, err := replayScore(context.Background(), clipJob{Name: "still-child", Clip: clip, Truth: truth}, cam, defaultScoreRules(), slog.New(slog.NewTextHandler(io.Discard, nil)))
+	if err != nil {
+		t.Fatal(err)
+	}
+	var sb strings.Builder
+	writeScores(&sb, []clipScore{cs})
+	t.Logf("%d frames\n%s tracked without a gap for %.1f s", st.Frames, sb.String(), cs.Tracked)
+	if cs.missed() > 0 {
+		t.Fatal("the child was never detected")
+	}
+	if cs.Breaks != 0 {
+		t.Errorf("%d track breaks (a new track id or a cleared message while the child is in the water)", cs.Breaks)
+	}
+	// From the first alert to the end of the clip, less one update interval.
+	p := truth.Presence[0]
+	if want := p.To - p.From - cs.Delays[0] - 0.5; cs.Tracked < want {
+		t.Errorf("tracked without a gap for %.1f s of %.1f s", cs.Tracked, want)
+	}
+	if e := quantile(cs.Errors, 0.95); e > 0.5 {
+		t.Errorf("p95 position error %.3f m, want ≤ 0.5 m", e)
+	}
+}

@@ -8,6 +8,7 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"testing"
 )
 
 // rel is where deploy/setup unpacks the package, from the module root.
@@ -36,4 +37,25 @@ func Path(name string) (string, error) {
 		return "", fmt.Errorf("reference data %s: %w (run deploy/setup to fetch Debian's opencv-doc examples)", name, err)
 	}
 	return p, nil
+}
+
+// Report logs a measured figure with t.Logf and, when the environment
+// variable STILLWATER_REPORT names a file, appends it there as one line,
+// so that CI can print the figures of tests that passed (go test shows
+// a passing package's output only with -v).
+func Report(tb testing.TB, format string, args ...any) {
+	tb.Helper()
+	line := fmt.Sprintf(format, args...)
+	tb.Log(line)
+	path := os.Getenv("STILLWATER_REPORT")
+	if path == "" {
+		return
+	}
+	f, err := os.OpenFile(path, os.O_APPEND|os.O_CREATE|os.O_WRONLY, 0o644)
+	if err != nil {
+		tb.Errorf("report: %v", err)
+		return
+	}
+	defer f.Close()
+	fmt.Fprintf(f, "%s: %s\n", tb.Name(), line)
 }
