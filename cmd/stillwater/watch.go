@@ -285,7 +285,17 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 		if err != nil {
 			return err
 		}
-		w.lastFrame.Store(w.now().UnixNano())
+		// A frame that took most of the frame timeout to come is the
+		// decoder flushing what it held when the stream stopped, not a
+		// sign of life: FFmpeg hands over one such frame after its read
+		// timeout (measured in the RTSP test: 3.0 s of waiting, then one
+		// frame, then the error). It is processed but does not feed the
+		// watchdog.
+		if waited := time.Since(t0); waited < w.frameTimeout()*4/5 {
+			w.lastFrame.Store(w.now().UnixNano())
+		} else {
+			w.log.Warn("late frame after a stalled read", "waited", waited.Round(time.Millisecond))
+		}
 		w.nframes.Add(1)
 		w.met.stage("vision", time.Since(t0))
 		if live {
