@@ -68,6 +68,7 @@ type demoResult struct {
 	FirstAlert  float64 // s of media time, NaN when none
 	Errors      []float64
 	ClearedSeen int
+	Faults      []alert.Fault
 }
 
 func (r demoResult) delay() float64 { return r.FirstAlert - r.Entry }
@@ -141,6 +142,13 @@ func demo(ctx context.Context, s synth.Scene, dir string, realtime bool, log *sl
 				}
 				res.ClearedSeen++
 				fmt.Fprintf(out, "%s  cleared camera=%s track=%d after %.1f s\n", c.FrameTime.Format("15:04:05.0"), c.Camera, c.Track, c.Duration)
+			case alert.KindFault:
+				var f alert.Fault
+				if json.Unmarshal(m.Data, &f) != nil {
+					return
+				}
+				res.Faults = append(res.Faults, f)
+				fmt.Fprintf(out, "%s  fault   camera=%s %s active=%v: %s\n", f.Time.Format("15:04:05.0"), f.Camera, f.Fault, f.Active, f.Message)
 			}
 		})
 	}

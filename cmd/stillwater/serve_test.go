@@ -41,6 +41,9 @@ func TestEndToEnd(t *testing.T) {
 			res, err := demo(ctx, s, t.TempDir(), false, log, io.Discard)
 			require.NoError(t, err)
 			assert.Equal(t, 200, res.Frames)
+			// A normal scene is no camera fault: not blinded (night is dark
+			// but not black), not frozen, not noise, not moved.
+			assert.Empty(t, res.Faults, "camera fault in a normal scene")
 			if !tt.intruder {
 				assert.Empty(t, res.Targets, "false alarm in an intruder-free scene")
 				return

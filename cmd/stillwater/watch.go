@@ -357,7 +357,7 @@ func (w *cameraWatch) checkHealth(ctx context.Context, media time.Duration, rep 
 	for _, kind := range []string{alert.FaultCameraBlinded, alert.FaultCameraFrozen, alert.FaultCameraNoise} {
 		switch {
 		case kind == want && armed:
-			w.raise(ctx, kind, true, fmt.Sprintf("picture %s for %.1f s", rep.Condition, (time.Duration(0)+rep.Since).Seconds()))
+			w.raise(ctx, kind, true, fmt.Sprintf("picture %s for %.1f s", rep.Condition, (media-rep.Since).Seconds()))
 		case kind != want:
 			w.raise(ctx, kind, false, "")
 		}
