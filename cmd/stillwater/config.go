@@ -334,6 +334,9 @@ func (c Config) Validate() error {
 		if err := validateDetect(where, cam.Detect); err != nil {
 			return err
 		}
+		if err := validateZones(where, cam); err != nil {
+			return err
+		}
 		if cam.FrameTimeout < Duration(500*time.Millisecond) || cam.FrameTimeout > Duration(20*time.Second) {
 			return fmt.Errorf("%s.frame_timeout: %v; want between 500ms and 20s (3s is the default)", where, time.Duration(cam.FrameTimeout))
 		}

@@ -3,7 +3,6 @@ package main
 import (
 	"flag"
 	"fmt"
-	"log/slog"
 	"math"
 	"time"
 
@@ -126,7 +125,7 @@ func validateZones(where string, cam CameraConfig) error {
 	if len(cam.Zones) == 0 {
 		return nil
 	}
-	h, err := poolHomography(cam)
+	cal, err := newCalibration(cam)
 	if err != nil {
 		return fmt.Errorf("%s.zones: %w", where, err)
 	}
@@ -165,13 +164,13 @@ func validateZones(where string, cam CameraConfig) error {
 		for k, p := range pts {
 			q := homography.Point{X: p[0], Y: p[1]}
 			if field == "pixels" {
-				m, ok := h.Map(q)
+				m, ok := cal.surface(vision.Point{X: p[0], Y: p[1]})
 				if !ok {
 					return fmt.Errorf("%s.pixels[%d]: (%g, %g) does not map onto the pool plane (above the horizon?)", at, k, p[0], p[1])
 				}
 				q = m
 			}
-			if q.X < -zoneMargin || q.Y < -zoneMargin || q.X > L+zoneMargin || q.Y > W+zoneMargin {
+			if cal.outline == nil && (q.X < -zoneMargin || q.Y < -zoneMargin || q.X > L+zoneMargin || q.Y > W+zoneMargin) {
 				return fmt.Errorf("%s.%s[%d]: (%g, %g) lies at (%.2f, %.2f) m, outside the %gx%g m pool (more than %g m beyond its edge)",
 					at, field, k, p[0], p[1], q.X, q.Y, L, W, zoneMargin)
 			}
@@ -271,29 +270,6 @@ func (zs zoneSet) excluded(px, pool homography.Point) (string, bool) {
 	return "", false
 }
 
-// filter returns r without the blobs whose centre lies in a zone; each is
-// logged at debug level and counted as rejected for reason "zone".
-func (zs zoneSet) filter(r vision.Result, toPool homography.H, log *slog.Logger, m *cameraMetrics) vision.Result {
-	if len(zs) == 0 || len(r.Blobs) == 0 {
-		return r
-	}
-	keep := make([]vision.Blob, 0, len(r.Blobs))
-	for _, b := range r.Blobs {
-		px := homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}
-		pool, ok := toPool.Map(px)
-		if ok {
-			if name, in := zs.excluded(px, pool); in {
-				log.Debug("blob rejected: in exclusion zone", "frame", r.Index, "zone", name, "x_m", pool.X, "y_m", pool.Y)
-				m.rejected("zone")
-				continue
-			}
-		}
-		keep = append(keep, b)
-	}
-	r.Blobs = keep
-	return r
-}
-
 // insidePolygon is the even-odd ray-crossing test.
 func insidePolygon(pts [][2]float64, x, y float64) bool {
 	in := false
@@ -310,19 +286,12 @@ func insidePolygon(pts [][2]float64, x, y float64) bool {
 // section, the pool outline as the watched mask and the pool-plane
 // footprint of a pixel, so that clean-up is scale-aware. The daemon and
 // replay both use it so that they see the same blobs.
-func detectorConfig(cam CameraConfig) vision.DetectorConfig {
-	dc := vision.DetectorConfig{
+func detectorConfig(cam CameraConfig, cal *calibration) vision.DetectorConfig {
+	return vision.DetectorConfig{
 		ProcessWidth: cam.Detect.ProcessWidth, Method: cam.Detect.Method, History: cam.Detect.History,
-		Threshold: cam.Detect.Threshold, LearningRate: -1, MinPixels: 6, Mask: cornersPolygon(cam),
-		MinArea: cam.Detect.MinArea,
+		Threshold: cam.Detect.Threshold, LearningRate: -1, MinPixels: 6, Mask: cal.mask(),
+		MinArea: cam.Detect.MinArea, PixelArea: cal.pixelArea,
 	}
-	if h, err := poolHomography(cam); err == nil {
-		dc.PixelArea = func(p vision.Point) float64 {
-			m := homography.MetresPerPixel(h, homography.Point{X: p.X, Y: p.Y})
-			return m * m
-		}
-	}
-	return dc
 }
 
 // detectOverrides are the detect settings a replay or sweep may set from

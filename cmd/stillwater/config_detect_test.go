@@ -2,15 +2,15 @@ package main
 
 import (
 	"bytes"
-	"io"
+	"image"
 	"log/slog"
 	"testing"
+	"time"
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 	"gopkg.in/yaml.v3"
 
-	"stillwater/homography"
 	"stillwater/vision"
 )
 
@@ -91,36 +91,54 @@ func TestSegmentsAndInside(t *testing.T) {
 	assert.False(t, insidePolygon(l, 1.5, 1.5))
 }
 
-func TestZoneFilter(t *testing.T) {
+// TestZoneStep feeds the processor one blob per frame for 2 s: a blob in a
+// zone (in pool metres or in pixels) never becomes a track, while the same
+// blob in open water does.
+func TestZoneStep(t *testing.T) {
 	cam := zoneCamera(
 		ZoneConfig{Name: "ladder", PoolM: [][2]float64{{7, 1}, {8.2, 1}, {8.2, 2}, {7, 2}}},
 		ZoneConfig{Name: "skimmer", Pixels: [][2]float64{{120, 120}, {160, 120}, {160, 160}, {120, 160}}},
 	)
-	zs, err := newZoneSet(cam)
-	require.NoError(t, err)
-	h, err := poolHomography(cam)
-	require.NoError(t, err)
-	// Pool (x, y) m is pixel (100 + 50x, 300 − 50y).
+	// A 0.3 m square blob centred on pool (x, y) m, which is pixel
+	// (100 + 50x, 300 − 50y).
 	blob := func(x, y float64) vision.Blob {
-		return vision.Blob{Centroid: vision.Point{X: 100 + 50*x, Y: 300 - 50*y}}
+		u, v := 100+50*x, 300-50*y
+		return vision.Blob{
+			Centroid: vision.Point{X: u, Y: v},
+			Box:      image.Rect(int(u)-8, int(v)-8, int(u)+8, int(v)+8),
+			Contour:  []vision.Point{{X: u - 7.5, Y: v - 7.5}, {X: u + 7.5, Y: v - 7.5}, {X: u + 7.5, Y: v + 7.5}, {X: u - 7.5, Y: v + 7.5}},
+		}
 	}
-	r := vision.Result{Index: 4, Blobs: []vision.Blob{
-		blob(7.5, 1.5), // in the ladder zone
-		blob(0.8, 3.2), // pixel (140, 140): in the skimmer zone
-		blob(4, 2),     // open water
-		blob(6.9, 1.5), // just outside the ladder zone
-	}}
-	var logs bytes.Buffer
-	log := slog.New(slog.NewTextHandler(&logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
-	got := zs.filter(r, h, log, nil)
-	require.Len(t, got.Blobs, 2)
-	p0, _ := h.Map(homography.Point{X: got.Blobs[0].Centroid.X, Y: got.Blobs[0].Centroid.Y})
-	assert.InDelta(t, 4, p0.X, 1e-9)
-	assert.Contains(t, logs.String(), "zone=ladder")
-	assert.Contains(t, logs.String(), "zone=skimmer")
-	assert.Len(t, r.Blobs, 4, "the input result is not changed")
-
-	none, err := newZoneSet(zoneCamera())
-	require.NoError(t, err)
-	assert.Len(t, none.filter(r, h, slog.New(slog.NewTextHandler(io.Discard, nil)), nil).Blobs, 4)
+	tests := []struct {
+		name       string
+		x, y       float64
+		wantTracks bool
+		wantLog    string
+	}{
+		{"ladder zone", 7.5, 1.5, false, "zone=ladder"},
+		{"skimmer zone (pixels)", 0.8, 3.2, false, "zone=skimmer"},
+		{"open water", 4, 2, true, ""},
+		{"just outside the ladder zone", 6.8, 1.5, true, ""},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			var logs bytes.Buffer
+			log := slog.New(slog.NewTextHandler(&logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
+			p, err := newProcessor(cam, 10, time.Time{}, time.Now, log, nil)
+			require.NoError(t, err)
+			var msgs []outMsg
+			for i := 0; i < 20; i++ {
+				out, _ := p.step(vision.Result{Index: i, Media: time.Duration(i) * 100 * time.Millisecond, Blobs: []vision.Blob{blob(tt.x, tt.y)}}, true)
+				msgs = append(msgs, out...)
+			}
+			if !tt.wantTracks {
+				assert.Empty(t, p.tracks)
+				assert.Empty(t, msgs)
+				assert.Contains(t, logs.String(), tt.wantLog)
+				return
+			}
+			require.Len(t, p.tracks, 1)
+			assert.NotEmpty(t, msgs, "a blob seen for 2 s in open water alarms")
+		})
+	}
 }

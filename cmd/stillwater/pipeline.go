@@ -71,31 +71,6 @@ func newProcessor(cam CameraConfig, fps float64, epoch time.Time, now func() tim
 	}, nil
 }
 
-// poolHomography solves the pixel → pool-metre transform from the four
-// configured corners A (0,0), B (L,0), C (L,W), D (0,W).
-func poolHomography(cam CameraConfig) (homography.H, error) {
-	L, W := cam.Pool.Length, cam.Pool.Width
-	pool := []homography.Point{{X: 0, Y: 0}, {X: L, Y: 0}, {X: L, Y: W}, {X: 0, Y: W}}
-	px := make([]homography.Point, len(cam.Corners))
-	for i, c := range cam.Corners {
-		px[i] = homography.Point{X: c[0], Y: c[1]}
-	}
-	h, err := homography.Solve(px, pool)
-	if err != nil {
-		return homography.H{}, fmt.Errorf("camera %s: corners: %w", cam.ID, err)
-	}
-	return h, nil
-}
-
-// cornersPolygon returns the pool outline in source pixels.
-func cornersPolygon(cam CameraConfig) []vision.Point {
-	out := make([]vision.Point, len(cam.Corners))
-	for i, c := range cam.Corners {
-		out[i] = vision.Point{X: c[0], Y: c[1]}
-	}
-	return out
-}
-
 // step turns one frame's blobs into messages and returns the boxes to hold
 // out of background learning on the next frame.
 func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectangle) {

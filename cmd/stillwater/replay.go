@@ -180,7 +180,11 @@ func (s *replaySink) write(m outMsg) error {
 func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Writer, log *slog.Logger) (replayStats, error) {
 	var st replayStats
 	start := time.Now()
-	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source}, detectorConfig(cam))
+	cal, err := newCalibration(cam)
+	if err != nil {
+		return st, err
+	}
+	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source}, detectorConfig(cam, cal))
 	if err != nil {
 		return st, err
 	}

@@ -230,7 +230,7 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 	if err != nil {
 		return nil, err
 	}
-	vc, err := vision.OpenCamera(w.sourceConfig(), detectorConfig(w.cam))
+	vc, err := vision.OpenCamera(w.sourceConfig(), detectorConfig(w.cam, cal))
 	if err != nil {
 		return nil, err
 	}

@@ -23,6 +23,7 @@ import (
 // busLog collects every message a real subscriber receives, with the
 // wall time of arrival.
 type busLog struct {
+	URL  string // the daemon's bus
 	mu   sync.Mutex
 	msgs []busMsg
 }
@@ -79,6 +80,7 @@ func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
 		cancel()
 		t.Fatal("daemon not ready within 20 s")
 	}
+	log.URL = url
 	nc, err := nats.Connect(url)
 	require.NoError(t, err)
 	_, err = nc.Subscribe(cfg.Bus.Prefix+".>", log.add)
