@@ -63,6 +63,11 @@ func (w *cameraWatch) run(ctx context.Context) error {
 		w.watchdog(ctx)
 	}()
 	err := w.capture(ctx)
+	if err != nil && ctx.Err() == nil {
+		// The camera stops being watched: say so on the bus, not only in
+		// the log.
+		w.raise(context.WithoutCancel(ctx), alert.FaultCameraLost, true, "camera stopped: "+err.Error())
+	}
 	cancel()
 	wg.Wait()
 	return err

@@ -1,13 +1,16 @@
 package main
 
 import (
+	"bytes"
 	"context"
 	"encoding/json"
 	"io"
 	"log/slog"
+	"net/http"
 	"os"
 	"path/filepath"
 	"runtime"
+	"strings"
 	"sync"
 	"testing"
 	"time"
@@ -24,6 +27,7 @@ import (
 // wall time of arrival.
 type busLog struct {
 	URL  string // the daemon's bus
+	HTTP string // the daemon's HTTP listener, host:port
 	mu   sync.Mutex
 	msgs []busMsg
 }
@@ -52,13 +56,24 @@ func (l *busLog) bySubject(subj string) []busMsg {
 	return out
 }
 
+func httpGet(t *testing.T, url string) (int, string) {
+	t.Helper()
+	c := http.Client{Timeout: 10 * time.Second}
+	resp, err := c.Get(url)
+	require.NoError(t, err)
+	defer resp.Body.Close()
+	b, err := io.ReadAll(resp.Body)
+	require.NoError(t, err)
+	return resp.StatusCode, string(b)
+}
+
 // startDaemon runs serve on cfg in the background with a subscriber on
 // every subject; stop ends it and waits.
 func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	log = &busLog{}
-	ready := make(chan string, 1)
+	ready := make(chan [2]string, 1)
 	done := make(chan error, 1)
 	go func() {
 		var w io.Writer = io.Discard
@@ -67,12 +82,13 @@ func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
 		}
 		done <- serve(ctx, cfg, deps{
 			Log:   slog.New(slog.NewTextHandler(w, nil)),
-			Ready: func(busURL, _ string) { ready <- busURL },
+			Ready: func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },
 		})
 	}()
 	var url string
 	select {
-	case url = <-ready:
+	case r := <-ready:
+		url, log.HTTP = r[0], r[1]
 	case err := <-done:
 		cancel()
 		t.Fatalf("daemon ended before it was ready: %v", err)
@@ -141,9 +157,31 @@ func TestDeadCameraIsAFaultAndDoesNotStallOthers(t *testing.T) {
 	assert.Contains(t, fault.Message, "no frame")
 	assert.Less(t, delay, 3*time.Second+time.Second)
 
+	// Not ready while an armed camera is dead; the reason names it.
+	code, body := httpGet(t, "http://"+log.HTTP+"/readyz")
+	assert.Equal(t, http.StatusServiceUnavailable, code)
+	assert.Contains(t, body, "camera dead")
+	// The live camera's latest annotated frame.
+	code, body = httpGet(t, "http://"+log.HTTP+"/cameras/demo/latest.jpg")
+	require.Equal(t, http.StatusOK, code, body)
+	assert.True(t, strings.HasPrefix(body, "\xff\xd8\xff"), "not a JPEG")
+	code, _ = httpGet(t, "http://"+log.HTTP+"/cameras/nosuch/latest.jpg")
+	assert.Equal(t, http.StatusNotFound, code)
+
 	// The live camera's clip plays in real time; its child enters at 5 s.
 	require.Eventually(t, func() bool { return len(log.bySubject("stillwater.demo.target")) > 0 }, 25*time.Second, 100*time.Millisecond,
 		"the working camera raised no target while the other was dead")
+	// The alarm's start names its evidence, kept in the data directory.
+	var first alert.Target
+	require.NoError(t, json.Unmarshal(log.bySubject("stillwater.demo.target")[0].Data, &first))
+	require.Equal(t, "start", first.Event)
+	require.NotEmpty(t, first.Evidence, "the start target names no evidence")
+	jpg, err := os.ReadFile(filepath.Join(cfg.DataDir, first.Evidence))
+	require.NoError(t, err)
+	assert.True(t, bytes.HasPrefix(jpg, []byte{0xff, 0xd8, 0xff}), "evidence is not a JPEG")
+	evClip := strings.TrimSuffix(filepath.Join(cfg.DataDir, first.Evidence), ".jpg") + ".avi"
+	require.Eventually(t, func() bool { st, err := os.Stat(evClip); return err == nil && st.Size() > 0 }, 5*time.Second, 100*time.Millisecond,
+		"no evidence clip beside the snapshot")
 	require.NoError(t, stop())
 	assert.Empty(t, log.bySubject("stillwater.demo.fault"), "the working camera reported a fault")
 }
