@@ -36,11 +36,11 @@ func TestParseConfigErrors(t *testing.T) {
 	tests := []struct {
 		name, yaml, want string
 	}{
-		{"unknown key", "data_dir: /x\ncolour: blue\n", "line 2: field colour not found"},
+		{"unknown key", "data_dir: /x\ncolour: blue\n", `line 2: unknown key "colour" in the top level`},
 		{"no cameras", "data_dir: /x\n", "cameras: none configured"},
 		{"three corners", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1]]}]`, "corners: 3 given"},
-		{"negative area", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1],[0,1]], detect: {min_area_m2: -1}}]`, "min_area_m2 -1"},
-		{"bad duration", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1],[0,1]], detect: {persist: soon}}]`, `"soon" is not a duration`},
+		{"negative area", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]], detect: {min_area_m2: -1}}]`, "min_area_m2 -1"},
+		{"bad duration", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]], detect: {persist: soon}}]`, `"soon" is not a duration`},
 		{"dotted id", `cameras: [{id: a.b, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1],[0,1]]}]`, "cameras[0].id"},
 	}
 	for _, tt := range tests {

@@ -4,7 +4,6 @@ import (
 	"context"
 	"encoding/json"
 	"fmt"
-	"path/filepath"
 	"testing"
 	"time"
 
@@ -14,7 +13,6 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
-	"stillwater/vision/synth"
 )
 
 // TestDisarmedPublishesNoTarget runs the child scene while the schedule
@@ -24,12 +22,7 @@ func TestDisarmedPublishesNoTarget(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders a 20 s clip")
 	}
-	dir := t.TempDir()
-	s, ok := scenarioByName("child", 7)
-	require.True(t, ok)
-	clip := filepath.Join(dir, "child.avi")
-	truth, err := synth.Render(context.Background(), s, clip, filepath.Join(dir, "child.json"))
-	require.NoError(t, err)
+	truth, clip, dir := renderScene(t, "child", 7, nil)
 	cfg := demoConfig(truth, clip, dir, false)
 	// A one-hour window that starts two hours from now: disarmed now.
 	from := time.Now().UTC().Add(2 * time.Hour)

@@ -2,7 +2,6 @@ package main
 
 import (
 	"context"
-	"path/filepath"
 	"runtime"
 	"testing"
 	"time"
@@ -12,6 +11,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/vision"
+	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
 
@@ -24,13 +24,7 @@ func TestDaemonLeavesNothingBehind(t *testing.T) {
 		t.Skip("processes 10 000 frames")
 	}
 	const frames = 10000
-	dir := t.TempDir()
-	s, ok := scenarioByName("child", 3)
-	require.True(t, ok)
-	s.Width, s.Height, s.Duration = 320, 240, 10
-	clip := filepath.Join(dir, "loop.avi")
-	truth, err := synth.Render(context.Background(), s, clip, filepath.Join(dir, "loop.json"))
-	require.NoError(t, err)
+	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10 })
 	cfg := demoConfig(truth, clip, dir, false)
 	cfg.Cameras[0].Loop = true
 	cfg.Cameras[0].Detect.ProcessWidth = 160
@@ -67,7 +61,7 @@ func TestDaemonLeavesNothingBehind(t *testing.T) {
 	case <-time.After(30 * time.Second):
 		t.Fatal("daemon did not stop within 30 s of cancel")
 	}
-	t.Logf("%0.f frames in %.1f s", n, time.Since(start).Seconds())
+	refdata.Report(t, "daemon leak test: %0.f frames in %.1f s; goroutines %d before", n, time.Since(start).Seconds(), goBase)
 	// Polled here, not with assert.Eventually, whose own goroutines would count.
 	left := runtime.NumGoroutine()
 	for deadline := time.Now().Add(10 * time.Second); left > goBase && time.Now().Before(deadline); left = runtime.NumGoroutine() {

@@ -1,7 +1,6 @@
 package main
 
 import (
-	"context"
 	"encoding/json"
 	"os/exec"
 	"path/filepath"
@@ -26,13 +25,7 @@ func TestPictureFaults(t *testing.T) {
 	if testing.Short() {
 		t.Skip("plays three 11 s clips in real time")
 	}
-	dir := t.TempDir()
-	s, ok := scenarioByName("calm", 5)
-	require.True(t, ok)
-	s.Duration = 5
-	scene := filepath.Join(dir, "calm.avi")
-	truth, err := synth.Render(context.Background(), s, scene, filepath.Join(dir, "calm.json"))
-	require.NoError(t, err)
+	truth, scene, dir := renderScene(t, "calm", 5, func(s *synth.Scene) { s.Duration = 5 })
 	size := "640x480"
 	const onset, bad = 5 * time.Second, 6
 

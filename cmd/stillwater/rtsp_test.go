@@ -1,9 +1,7 @@
 package main
 
 import (
-	"context"
 	"encoding/json"
-	"path/filepath"
 	"testing"
 	"time"
 
@@ -13,7 +11,6 @@ import (
 	"stillwater/alert"
 	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
-	"stillwater/vision/synth"
 )
 
 // TestRTSPCameraLostAndBack runs the daemon against a live RTSP stream on
@@ -34,12 +31,7 @@ func TestRTSPCameraLostAndBack(t *testing.T) {
 	if testing.Short() {
 		t.Skip("runs a live RTSP relay for about a minute")
 	}
-	dir := t.TempDir()
-	s, ok := scenarioByName("child", 7)
-	require.True(t, ok)
-	clip := filepath.Join(dir, "child.avi")
-	truth, err := synth.Render(context.Background(), s, clip, filepath.Join(dir, "child.json"))
-	require.NoError(t, err)
+	truth, clip, dir := renderScene(t, "child", 7, nil)
 	require.NotEmpty(t, truth.Presence)
 	entry := time.Duration(truth.Presence[0].From * float64(time.Second))
 

@@ -63,13 +63,14 @@ func (w *cameraWatch) run(ctx context.Context) error {
 		w.watchdog(ctx)
 	}()
 	err := w.capture(ctx)
-	if err != nil && ctx.Err() == nil {
+	stopped := ctx.Err() == nil
+	cancel()
+	wg.Wait() // the watchdog is gone: nothing can clear the fault below
+	if err != nil && stopped {
 		// The camera stops being watched: say so on the bus, not only in
 		// the log.
 		w.raise(context.WithoutCancel(ctx), alert.FaultCameraLost, true, "camera stopped: "+err.Error())
 	}
-	cancel()
-	wg.Wait()
 	return err
 }
 
@@ -302,6 +303,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			w.log.Warn("late frame after a stalled read", "waited", waited.Round(time.Millisecond))
 		}
 		w.nframes.Add(1)
+		w.met.frame()
 		w.met.stage("vision", time.Since(t0))
 		if live {
 			r.Media = w.now().Sub(w.epoch)
@@ -343,7 +345,9 @@ func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
 			w.log.Error("reload refused; keeping the running settings", "err", err)
 			return
 		}
-		w.cam = c
+		// w.cam keeps the source settings (and is read by the watchdog
+		// and HTTP); the processor now holds the new calibration, zones
+		// and detection settings.
 		if d, err := newDriftChecker(c, proc.cal); err != nil {
 			w.log.Error("reload: camera-moved check off", "err", err)
 		} else {

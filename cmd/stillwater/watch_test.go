@@ -67,6 +67,23 @@ func httpGet(t *testing.T, url string) (int, string) {
 	return resp.StatusCode, string(b)
 }
 
+// renderScene renders a named scenario at a seed, after edit (may be nil)
+// has changed it, into a fresh directory, and returns the labels, the
+// clip's path and the directory.
+func renderScene(t *testing.T, name string, seed int64, edit func(*synth.Scene)) (synth.Truth, string, string) {
+	t.Helper()
+	dir := t.TempDir()
+	s, ok := scenarioByName(name, seed)
+	require.True(t, ok, "scenario %q", name)
+	if edit != nil {
+		edit(&s)
+	}
+	clip := filepath.Join(dir, name+".avi")
+	truth, err := synth.Render(context.Background(), s, clip, filepath.Join(dir, name+".json"))
+	require.NoError(t, err)
+	return truth, clip, dir
+}
+
 // startDaemon runs serve on cfg in the background with a subscriber on
 // every subject; stop ends it and waits.
 func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
@@ -132,12 +149,7 @@ func TestDeadCameraIsAFaultAndDoesNotStallOthers(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders a 20 s clip")
 	}
-	dir := t.TempDir()
-	s, ok := scenarioByName("child", 7)
-	require.True(t, ok)
-	clip := filepath.Join(dir, "child.avi")
-	truth, err := synth.Render(context.Background(), s, clip, filepath.Join(dir, "child.json"))
-	require.NoError(t, err)
+	truth, clip, dir := renderScene(t, "child", 7, nil)
 	cfg := demoConfig(truth, clip, dir, true)
 	dead := cfg.Cameras[0]
 	dead.ID, dead.Source = "dead", "rtsp://127.0.0.1:9/nothing"
