@@ -20,51 +20,15 @@ import (
 	"stillwater/vision/synth"
 )
 
-// normalScenes mirrors the scene list of cmd/stillwater/scenarios.go (that
-// package cannot be imported): every one is a working camera. still-child
-// is cut to 20 s, which covers its entry; its last five minutes are the
-// same still picture.
+// normalScenes are the named synthetic scenes at the generator's default
+// seed: every one is a working camera. still-child is cut to 20 s, which
+// covers its entry; its last five minutes are the same still picture.
 func normalScenes() map[string]synth.Scene {
-	base := synth.Default()
-	walkIn := []synth.Waypoint{{T: 8, X: 1.2, Y: 0.8}, {T: 12, X: 3.0, Y: 1.8}, {T: 16, X: 5.0, Y: 2.4}}
-	child := func(s synth.Scene, path []synth.Waypoint) synth.Scene {
-		s.Intruders = []synth.Intruder{{Enter: path[0].T, Path: path, AgeMonths: 24, Contrast: 1}}
-		return s
-	}
-	with := func(f func(*synth.Scene)) synth.Scene {
-		s := base
-		f(&s)
-		return s
-	}
-	return map[string]synth.Scene{
-		"empty":      base,
-		"child":      child(base, walkIn),
-		"calm":       with(func(s *synth.Scene) { s.Ripple, s.Glints = 0.1, 0.5 }),
-		"windy":      with(func(s *synth.Scene) { s.Ripple = 1.0 }),
-		"glints":     with(func(s *synth.Scene) { s.Glints = 12 }),
-		"cloud":      with(func(s *synth.Scene) { s.Cloud = &synth.Cloud{Start: 6, Ramp: 2, Hold: 5, Depth: 0.45} }),
-		"leaves":     with(func(s *synth.Scene) { s.Leaves = 25 }),
-		"bird":       with(func(s *synth.Scene) { s.Bird = &synth.Bird{Start: 6, Stay: 3, X: 4, Y: -0.45} }),
-		"bird-water": with(func(s *synth.Scene) { s.Bird = &synth.Bird{Start: 6, Stay: 3, X: 4, Y: 1.5} }),
-		"deck":       with(func(s *synth.Scene) { s.DeckWalker = true }),
-		"night":      with(func(s *synth.Scene) { s.Night = true }),
-		"submerged": with(func(s *synth.Scene) {
-			*s = child(*s, walkIn)
-			s.Intruders[0].Contrast = 0.35
-		}),
-		"far-corner": with(func(s *synth.Scene) {
-			s.Camera = synth.Pose{X: -1.2, Y: -1.0, Height: 2.5, YawDeg: 22, PitchDeg: 24, HFOVDeg: 80}
-			*s = child(*s, []synth.Waypoint{{T: 8, X: 7.2, Y: 3.0}, {T: 16, X: 6.5, Y: 2.2}})
-		}),
-		"cloud-child": with(func(s *synth.Scene) {
-			s.Cloud = &synth.Cloud{Start: 7, Ramp: 2, Hold: 6, Depth: 0.45}
-			*s = child(*s, walkIn)
-		}),
-		"still-child": with(func(s *synth.Scene) {
-			*s = child(*s, []synth.Waypoint{{T: 8, X: 2.0, Y: 1.0}, {T: 14, X: 3.5, Y: 2.0}})
-			s.Intruders[0].Lying = true
-		}),
-	}
+	m := synth.Scenarios(synth.Default().Seed)
+	s := m["still-child"]
+	s.Duration = 20
+	m["still-child"] = s
+	return m
 }
 
 // healthRun plays a clip through a Camera and a HealthMonitor and returns
