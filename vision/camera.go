@@ -40,6 +40,13 @@ type Result struct {
 	Blobs  []Blob
 	Stats  FrameStats
 	Health HealthStats // image statistics for the camera health monitor
+	// Rejoining is true for a frame that was only probed, not searched:
+	// after a reconnect, or when a live source is first opened, the
+	// picture is not trusted until it is whole again (see rejoin.go).
+	Rejoining bool
+	// Rejoined is set on the frame that ends the probing: RejoinKept,
+	// RejoinRebuilt or RejoinForced.
+	Rejoined string
 }
 
 // CaptureStats counts what happened at the capture since OpenCamera.
@@ -127,6 +134,7 @@ type Camera struct {
 	stats      CaptureStats
 	health     healthProbe
 	ev         *evidence
+	rejoin     *rejoin // non-nil while frames are only probed
 	closed     bool
 }
 
@@ -168,6 +176,9 @@ func OpenCamera(sc SourceConfig, dc DetectorConfig) (*Camera, error) {
 		return nil, fmt.Errorf("open camera %q: %w", red, err)
 	}
 	cam.det = det
+	if cam.kind == kindRTSP || cam.kind == kindHTTP {
+		cam.rejoin = &rejoin{}
+	}
 	return cam, nil
 }
 
@@ -258,11 +269,36 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 			return r, fmt.Errorf("frame %d: %w", r.Index, err)
 		}
 	}
+	if c.rejoin != nil {
+		return c.probe(r)
+	}
 	blobs, st, err := c.det.Detect(c.frame, hold)
 	if err != nil {
 		return r, fmt.Errorf("frame %d: %w", r.Index, err)
 	}
 	r.Blobs, r.Stats = blobs, st
+	return r, nil
+}
+
+// probe probes the frame while the picture after a (re)connect is not
+// trusted yet, and ends the probing when it is.
+func (c *Camera) probe(r Result) (Result, error) {
+	r.Rejoining = true
+	p, err := c.det.probe(c.frame)
+	if err != nil {
+		return r, fmt.Errorf("frame %d: %w", r.Index, err)
+	}
+	out := c.rejoin.step(r.Media, p)
+	if out == "" {
+		return r, nil
+	}
+	if out != RejoinKept {
+		if err := c.det.reset(); err != nil {
+			return r, fmt.Errorf("frame %d: %w", r.Index, err)
+		}
+	}
+	c.rejoin = nil
+	r.Rejoined = out
 	return r, nil
 }
 
@@ -392,6 +428,7 @@ func (c *Camera) Reconnect() (ReconnectInfo, error) {
 	c.passOffset = c.media + c.frameInterval()
 	c.health.reset()
 	c.stats.Reconnects++
+	c.rejoin = &rejoin{}
 	if info.Size == info.OldSize {
 		return info, nil
 	}

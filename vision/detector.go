@@ -109,8 +109,10 @@ type Detector struct {
 	src      image.Point // source frame size
 	size     image.Point // processing size
 	scale    float64     // source px per processing px
+	kind     int         // bgMOG2 or bgKNN
 	bg       *background
 	mask     gocv.Mat
+	prevGray gocv.Mat // the previous probed frame, grey (see probe)
 	maskArea int
 	small    gocv.Mat
 	gray     gocv.Mat
@@ -173,7 +175,9 @@ func NewDetector(cfg DetectorConfig, src image.Point) (*Detector, error) {
 		d.size = image.Pt(cfg.ProcessWidth, int(math.Round(float64(src.Y)*float64(cfg.ProcessWidth)/float64(src.X))))
 	}
 	d.scale = float64(src.X) / float64(d.size.X)
+	d.kind = kind
 	d.bg = newBackground(kind, cfg.History, cfg.Threshold, true)
+	d.prevGray = gocv.NewMat()
 	d.mask = gocv.NewMatWithSize(d.size.Y, d.size.X, gocv.MatTypeCV8U)
 	d.small = gocv.NewMat()
 	d.gray = gocv.NewMat()
@@ -252,21 +256,8 @@ func (d *Detector) Size() image.Point { return d.size }
 // into the background, so a still intruder is never absorbed.
 func (d *Detector) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameStats, error) {
 	var st FrameStats
-	if frame.Empty() {
-		return nil, st, ErrEmptyFrame
-	}
-	if frame.Cols() != d.src.X || frame.Rows() != d.src.Y {
-		return nil, st, fmt.Errorf("detect: frame is %dx%d, detector was set up for %dx%d", frame.Cols(), frame.Rows(), d.src.X, d.src.Y)
-	}
-	if d.size != d.src {
-		gocv.Resize(frame, &d.small, d.size, 0, 0, gocv.InterpolationArea)
-	} else {
-		frame.CopyTo(&d.small)
-	}
-	if d.small.Channels() == 3 {
-		gocv.CvtColor(d.small, &d.gray, gocv.ColorBGRToGray)
-	} else {
-		d.small.CopyTo(&d.gray)
+	if err := d.prepare(frame); err != nil {
+		return nil, st, err
 	}
 	// The model sees colour: skin and swimsuits differ from water more in
 	// hue than in brightness.
@@ -366,6 +357,28 @@ func (d *Detector) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, Frame
 	blobs, highlights := d.blobs()
 	st.Highlights = highlights
 	return blobs, st, nil
+}
+
+// prepare scales the frame to the processing size into d.small and its
+// grey version into d.gray.
+func (d *Detector) prepare(frame gocv.Mat) error {
+	if frame.Empty() {
+		return ErrEmptyFrame
+	}
+	if frame.Cols() != d.src.X || frame.Rows() != d.src.Y {
+		return fmt.Errorf("detect: frame is %dx%d, detector was set up for %dx%d", frame.Cols(), frame.Rows(), d.src.X, d.src.Y)
+	}
+	if d.size != d.src {
+		gocv.Resize(frame, &d.small, d.size, 0, 0, gocv.InterpolationArea)
+	} else {
+		frame.CopyTo(&d.small)
+	}
+	if d.small.Channels() == 3 {
+		gocv.CvtColor(d.small, &d.gray, gocv.ColorBGRToGray)
+	} else {
+		d.small.CopyTo(&d.gray)
+	}
+	return nil
 }
 
 // gain is the ratio of the frame's mean level to the background
@@ -478,7 +491,7 @@ func (d *Detector) Close() error {
 		return nil
 	}
 	d.closed = true
-	for _, m := range []*gocv.Mat{&d.mask, &d.small, &d.gray, &d.fg, &d.bin, &d.learnImg, &d.bgImg, &d.hold, &d.glint, &d.dark, &d.kOpen, &d.kGlint, &d.kClose, &d.fine, &d.opened} {
+	for _, m := range []*gocv.Mat{&d.mask, &d.small, &d.gray, &d.fg, &d.bin, &d.learnImg, &d.bgImg, &d.hold, &d.glint, &d.dark, &d.kOpen, &d.kGlint, &d.kClose, &d.fine, &d.opened, &d.prevGray} {
 		m.Close()
 	}
 	return d.bg.Close()

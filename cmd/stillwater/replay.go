@@ -212,6 +212,9 @@ func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Write
 		}
 		media = r.Media
 		st.Frames, st.Media = r.Index+1, r.Media
+		if r.Rejoining {
+			continue // probed only, as in the daemon (see watch.go)
+		}
 		msgs, h := proc.step(r, true)
 		hold = h
 		for _, m := range msgs {

@@ -164,7 +164,9 @@ func (w *cameraWatch) send(ctx context.Context, m outMsg) {
 
 // capture opens the source, runs the pipeline over its frames and, after
 // a failure, reconnects with exponential backoff and jitter, keeping the
-// learned background (a warm start: no relearning, no false blobs). The
+// learned background when the camera comes back to the same view (a warm
+// start: a child who entered during the outage is found at once; see
+// vision.Result.Rejoining for how the picture is trusted again). The
 // backoff stops growing at 2 s: a pool camera that comes back must be
 // watched again within seconds, and one attempt every 2 s costs a home
 // network nothing.
@@ -310,15 +312,23 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 		}
 		armed := w.armed(w.now())
 		w.checkHealth(ctx, r.Media, st.health.Observe(r.Media, r.Health), armed)
-		t1 := time.Now()
-		msgs, h := proc.step(r, armed)
-		st.hold = h
-		w.met.stage("track", time.Since(t1))
-		for _, m := range msgs {
-			w.send(ctx, m)
+		if r.Rejoined != "" {
+			w.log.Info("picture trusted again after connecting", "background", r.Rejoined)
 		}
-		if st.drift.due(r.Media) {
-			w.checkDrift(ctx, st.drift.check(r.Media, vc))
+		// A frame that was only probed (see vision.Result.Rejoining) does
+		// not move tracks, alarms or the camera-moved check: they wait for
+		// a picture that can be trusted.
+		if !r.Rejoining {
+			t1 := time.Now()
+			msgs, h := proc.step(r, armed)
+			st.hold = h
+			w.met.stage("track", time.Since(t1))
+			for _, m := range msgs {
+				w.send(ctx, m)
+			}
+			if st.drift.due(r.Media) {
+				w.checkDrift(ctx, st.drift.check(r.Media, vc))
+			}
 		}
 		w.met.processed(time.Since(t0))
 		if w.cam.Realtime && fps > 0 && !live {

@@ -1,0 +1,152 @@
+package vision
+
+import (
+	"fmt"
+	"time"
+
+	"gocv.io/x/gocv"
+)
+
+// A decoder that joins a stream between key frames has no reference
+// picture for the frames it receives until the next key frame, and FFmpeg's
+// decoders then paint the missing picture mid-grey and patch in the
+// macroblocks each new frame updates (seen in the RTSP test: "first frame
+// is no keyframe", then frames of flat grey filling in block by block,
+// measured as BGR 128–132 after the YUV conversion). Such frames would be
+// foreground everywhere, and a model that learns them reports blocks of
+// real water as blobs once the key frame comes. So after a reconnect, and
+// when a live source is first opened, frames are only probed until the
+// picture can be trusted again:
+//
+//   - it matches the background kept from before the outage for
+//     rejoinMatchFrames frames in a row (the camera came back to the same
+//     view: the model is kept, and a child who entered during the outage is
+//     found at once); or
+//   - it has been whole and steady for rejoinSteady (the view changed during
+//     the outage, e.g. the light did: the model is rebuilt and warms up
+//     again); or
+//   - rejoinLimit has passed (the model is rebuilt whatever the picture: a
+//     camera is never left unwatched for longer than this).
+const (
+	// fillLo and fillHi bound the decoder's grey in every channel: Y = 128
+	// is BGR 130 in limited range and 128 in full range.
+	fillLo, fillHi = 124, 136
+	// rejoinFillMax is the share of the watched area that may be fill grey
+	// in a whole picture: under one 16×16 macroblock in a 640×480 frame's
+	// pool area.
+	rejoinFillMax = 0.001
+	// rejoinMatchMax is the share of the watched area that may differ from
+	// the kept model in a picture that matches it; a child is about 1 %.
+	rejoinMatchMax    = 0.05
+	rejoinMatchFrames = 3
+	// rejoinSteadyMax is the share of the watched area that may change by
+	// more than rejoinStep grey levels from one frame to the next in a
+	// steady picture.
+	rejoinSteadyMax = 0.05
+	rejoinStep      = 25
+	rejoinSteady    = 1500 * time.Millisecond
+	rejoinLimit     = 10 * time.Second
+)
+
+// Rejoin outcomes, reported in Result.Rejoined on the frame that ends the
+// probing.
+const (
+	RejoinKept    = "kept"    // the picture matches the kept background
+	RejoinRebuilt = "rebuilt" // the view changed: the model starts again
+	RejoinForced  = "forced"  // rejoinLimit passed: the model starts again
+)
+
+// probeStats is what probe measured on one frame.
+type probeStats struct {
+	Fill     float64 // share of the watched area in decoder-fill grey
+	Change   float64 // share that changed since the previous probed frame; -1 for the first
+	Mismatch float64 // share that is foreground against the kept model; -1 with no model
+}
+
+// probe measures a frame against the kept model without learning from it
+// and without reporting blobs.
+func (d *Detector) probe(frame gocv.Mat) (probeStats, error) {
+	st := probeStats{Change: -1, Mismatch: -1}
+	if err := d.prepare(frame); err != nil {
+		return st, err
+	}
+	if d.maskArea == 0 {
+		return st, nil
+	}
+	area := float64(d.maskArea)
+	if d.small.Channels() == 3 {
+		gocv.InRangeWithScalar(d.small, gocv.NewScalar(fillLo, fillLo, fillLo, 0), gocv.NewScalar(fillHi, fillHi, fillHi, 0), &d.glint)
+	} else {
+		gocv.InRangeWithScalar(d.small, gocv.NewScalar(fillLo, 0, 0, 0), gocv.NewScalar(fillHi, 0, 0, 0), &d.glint)
+	}
+	gocv.BitwiseAnd(d.glint, d.mask, &d.glint)
+	st.Fill = float64(gocv.CountNonZero(d.glint)) / area
+	if !d.prevGray.Empty() {
+		gocv.AbsDiff(d.gray, d.prevGray, &d.dark)
+		gocv.Threshold(d.dark, &d.dark, rejoinStep, 255, gocv.ThresholdBinary)
+		gocv.BitwiseAnd(d.dark, d.mask, &d.dark)
+		st.Change = float64(gocv.CountNonZero(d.dark)) / area
+	}
+	d.gray.CopyTo(&d.prevGray)
+	if d.frames > 0 {
+		if err := d.bg.apply(d.small, &d.fg, 0); err != nil {
+			return st, err
+		}
+		gocv.Threshold(d.fg, &d.bin, 200, 255, gocv.ThresholdBinary)
+		gocv.BitwiseAnd(d.bin, d.mask, &d.bin)
+		gocv.MorphologyEx(d.bin, &d.bin, gocv.MorphOpen, d.kOpen)
+		st.Mismatch = float64(gocv.CountNonZero(d.bin)) / area
+	}
+	return st, nil
+}
+
+// reset drops the background model: the next frames warm a new one up.
+func (d *Detector) reset() error {
+	if err := d.bg.Close(); err != nil {
+		return fmt.Errorf("reset detector: %w", err)
+	}
+	d.bg = newBackground(d.kind, d.cfg.History, d.cfg.Threshold, true)
+	d.frames, d.relearn = 0, 0
+	return nil
+}
+
+// rejoin follows the probing of one (re)connect.
+type rejoin struct {
+	begun   bool
+	start   time.Duration // media time of the first probed frame
+	matched int
+	steady  int
+	since   time.Duration // media time the picture became steady
+}
+
+// step takes one probed frame at media time t and returns the outcome, or
+// "" while the picture is not trusted yet.
+func (j *rejoin) step(t time.Duration, p probeStats) string {
+	if !j.begun {
+		j.begun, j.start = true, t
+	}
+	whole := p.Fill <= rejoinFillMax
+	if whole && p.Mismatch >= 0 && p.Mismatch <= rejoinMatchMax {
+		j.matched++
+	} else {
+		j.matched = 0
+	}
+	if j.matched >= rejoinMatchFrames {
+		return RejoinKept
+	}
+	if whole && p.Change >= 0 && p.Change <= rejoinSteadyMax {
+		if j.steady == 0 {
+			j.since = t
+		}
+		j.steady++
+	} else {
+		j.steady = 0
+	}
+	if j.steady >= rejoinMatchFrames && t-j.since >= rejoinSteady {
+		return RejoinRebuilt
+	}
+	if t-j.start >= rejoinLimit {
+		return RejoinForced
+	}
+	return ""
+}
