@@ -25,7 +25,7 @@ import (
 //   - it has been whole and steady for rejoinSteady (the view changed during
 //     the outage, e.g. the light did: the model is rebuilt and warms up
 //     again); or
-//   - rejoinLimit has passed (the model is rebuilt whatever the picture: a
+//   - RejoinLimit has passed (the model is rebuilt whatever the picture: a
 //     camera is never left unwatched for longer than this).
 const (
 	// fillLo and fillHi bound the decoder's grey in every channel: Y = 128
@@ -45,15 +45,18 @@ const (
 	rejoinSteadyMax = 0.05
 	rejoinStep      = 25
 	rejoinSteady    = 1500 * time.Millisecond
-	rejoinLimit     = 10 * time.Second
 )
+
+// RejoinLimit is the longest a (re)connected camera's frames are only
+// probed: after it the background is learned anew whatever the picture.
+const RejoinLimit = 10 * time.Second
 
 // Rejoin outcomes, reported in Result.Rejoined on the frame that ends the
 // probing.
 const (
 	RejoinKept    = "kept"    // the picture matches the kept background
 	RejoinRebuilt = "rebuilt" // the view changed: the model starts again
-	RejoinForced  = "forced"  // rejoinLimit passed: the model starts again
+	RejoinForced  = "forced"  // RejoinLimit passed: the model starts again
 )
 
 // probeStats is what probe measured on one frame.
@@ -123,7 +126,8 @@ type rejoin struct {
 // "" while the picture is not trusted yet.
 func (j *rejoin) step(t time.Duration, p probeStats) string {
 	if !j.begun {
-		j.begun, j.start = true, t
+		// The detector's previous frame is from before the outage.
+		j.begun, j.start, p.Change = true, t, -1
 	}
 	whole := p.Fill <= rejoinFillMax
 	if whole && p.Mismatch >= 0 && p.Mismatch <= rejoinMatchMax {
@@ -145,7 +149,7 @@ func (j *rejoin) step(t time.Duration, p probeStats) string {
 	if j.steady >= rejoinMatchFrames && t-j.since >= rejoinSteady {
 		return RejoinRebuilt
 	}
-	if t-j.start >= rejoinLimit {
+	if t-j.start >= RejoinLimit {
 		return RejoinForced
 	}
 	return ""

@@ -32,10 +32,12 @@ func TestRejoinStep(t *testing.T) {
 			[]probeStats{grey, grey, grey, grey, grey}, "", -1},
 		{"a broken streak starts again",
 			[]probeStats{whole(-1, 0.01), whole(0.01, 0.01), whole(0.3, 0.5), whole(0.01, 0.01), whole(0.01, 0.01), whole(0.01, 0.01)}, RejoinKept, 5},
+		// The first frame's change is against a frame from before the
+		// outage and does not count: steady from frame 1, 1.5 s later.
 		{"a new but steady view: rebuilt after 1.5 s",
-			repeat(whole(0.01, 0.6), 20), RejoinRebuilt, 15},
+			repeat(whole(0.01, 0.6), 20), RejoinRebuilt, 16},
 		{"no model (first open): rebuilt once steady",
-			repeat(whole(0.01, -1), 20), RejoinRebuilt, 15},
+			repeat(whole(0.01, -1), 20), RejoinRebuilt, 16},
 		{"a picture that never settles: forced at the limit",
 			repeat(whole(0.5, 0.6), 120), RejoinForced, 100},
 	}

@@ -312,7 +312,11 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 		}
 		armed := w.armed(w.now())
 		w.checkHealth(ctx, r.Media, st.health.Observe(r.Media, r.Health), armed)
-		if r.Rejoined != "" {
+		switch r.Rejoined {
+		case "":
+		case vision.RejoinForced:
+			w.log.Warn("picture never settled after connecting; learning the background anew", "after", vision.RejoinLimit)
+		default:
 			w.log.Info("picture trusted again after connecting", "background", r.Rejoined)
 		}
 		// A frame that was only probed (see vision.Result.Rejoining) does
