@@ -126,6 +126,7 @@ type Detector struct {
 	kOpen    gocv.Mat
 	kGlint   gocv.Mat
 	kClose   gocv.Mat
+	kFill    gocv.Mat // erosion that keeps only flat areas of decoder grey (see probe)
 	fine     gocv.Mat // 255 where the opening is skipped (see PixelArea)
 	hasFine  bool
 	opened   gocv.Mat
@@ -191,6 +192,7 @@ func NewDetector(cfg DetectorConfig, src image.Point) (*Detector, error) {
 	d.kGlint = gocv.GetStructuringElement(gocv.MorphEllipse, image.Pt(7, 7))
 	d.kOpen = gocv.GetStructuringElement(gocv.MorphEllipse, image.Pt(3, 3))
 	d.kClose = gocv.GetStructuringElement(gocv.MorphEllipse, image.Pt(7, 7))
+	d.kFill = gocv.GetStructuringElement(gocv.MorphRect, image.Pt(fillBlock, fillBlock))
 	d.fine = gocv.NewMatWithSize(d.size.Y, d.size.X, gocv.MatTypeCV8U)
 	d.opened = gocv.NewMat()
 	d.buildMask()
@@ -491,7 +493,7 @@ func (d *Detector) Close() error {
 		return nil
 	}
 	d.closed = true
-	for _, m := range []*gocv.Mat{&d.mask, &d.small, &d.gray, &d.fg, &d.bin, &d.learnImg, &d.bgImg, &d.hold, &d.glint, &d.dark, &d.kOpen, &d.kGlint, &d.kClose, &d.fine, &d.opened, &d.prevGray} {
+	for _, m := range []*gocv.Mat{&d.mask, &d.small, &d.gray, &d.fg, &d.bin, &d.learnImg, &d.bgImg, &d.hold, &d.glint, &d.dark, &d.kOpen, &d.kGlint, &d.kClose, &d.kFill, &d.fine, &d.opened, &d.prevGray} {
 		m.Close()
 	}
 	return d.bg.Close()

@@ -6,6 +6,8 @@ import (
 	"os"
 	"os/exec"
 	"path/filepath"
+	"sort"
+	"stillwater/vision/refdata"
 	"testing"
 	"time"
 
@@ -68,9 +70,10 @@ func repeat(p probeStats, n int) []probeStats {
 // midGOPClip renders the empty synthetic pool and re-encodes it with
 // FFmpeg's MPEG-4 encoder, a key frame every 20 frames, once whole and once
 // with its first key frame dropped (the noise bitstream filter), which is
-// what a decoder that joins a live stream between key frames receives. It
-// returns the two paths and the scene's pool corners in pixels.
-func midGOPClip(t *testing.T) (whole, joined string, pool []Point) {
+// what a decoder that joins a live stream between key frames receives, and
+// once more in H.264 with its first key frame dropped. It returns the three
+// paths and the scene's pool corners in pixels.
+func midGOPClip(t *testing.T) (whole, joined, joinedH264 string, pool []Point) {
 	t.Helper()
 	if _, err := exec.LookPath("ffmpeg"); err != nil {
 		t.Fatalf("ffmpeg not found (run deploy/setup): %v", err)
@@ -85,20 +88,28 @@ func midGOPClip(t *testing.T) (whole, joined string, pool []Point) {
 		pool = append(pool, Point{c.Pixel[0], c.Pixel[1]})
 	}
 	whole, joined = filepath.Join(dir, "whole.avi"), filepath.Join(dir, "joined.avi")
-	for path, bsf := range map[string][]string{whole: nil, joined: {"-bsf:v", "noise=drop=eq(n\\,0)"}} {
+	for path, bsf := range map[string][]string{whole: nil, joined: dropFirst} {
 		args := append([]string{"-nostdin", "-loglevel", "error", "-y", "-i", src, "-c:v", "mpeg4", "-q:v", "4", "-g", "20"}, bsf...)
 		out, err := exec.Command("ffmpeg", append(args, path)...).CombinedOutput()
 		require.NoError(t, err, "ffmpeg: %s", out)
 	}
-	return whole, joined, pool
+	// The same with H.264, which most IP cameras send.
+	h264 := filepath.Join(dir, "joined-h264.mkv")
+	args := append([]string{"-nostdin", "-loglevel", "error", "-y", "-i", src, "-c:v", "libx264", "-g", "20", "-bf", "0"}, dropFirst...)
+	out, err := exec.Command("ffmpeg", append(args, h264)...).CombinedOutput()
+	require.NoError(t, err, "ffmpeg: %s", out)
+	return whole, joined, h264, pool
 }
 
+// dropFirst makes FFmpeg drop the first packet it writes: the key frame.
+var dropFirst = []string{"-bsf:v", "noise=drop=eq(n\\,0)"}
+
 // TestDecoderFillIsRecognised checks the premise of the rejoin probing
-// against FFmpeg itself: frames decoded without their key frame are largely
-// the decoder's fill grey until the next key frame, and whole frames of the
-// pool have none of it.
+// against FFmpeg itself: MPEG-4 frames decoded without their key frame are
+// largely the decoder's fill grey until the next key frame, whole frames of
+// the pool have none of it, and H.264 decoding skips to the next key frame.
 func TestDecoderFillIsRecognised(t *testing.T) {
-	whole, joined, pool := midGOPClip(t)
+	whole, joined, h264, pool := midGOPClip(t)
 	fills := func(path string) []float64 {
 		vc, err := gocv.VideoCaptureFile(path)
 		require.NoError(t, err)
@@ -135,8 +146,15 @@ func TestDecoderFillIsRecognised(t *testing.T) {
 	for i := 19; i < len(j); i++ {
 		assert.LessOrEqual(t, j[i], rejoinFillMax, "frame %d, after the key frame", i)
 	}
-	report(t, "rejoin: decoder fill in the pool area: %.2f on the first frame without a key frame, %.3f on the last before it, 0 after; whole clip max %.4f",
-		j[0], j[18], maxOf(w))
+	// FFmpeg's H.264 decoder gives no frame until the next key frame, so
+	// there is nothing grey to probe: the first frame read is whole.
+	h := fills(h264)
+	assert.Len(t, h, 60, "H.264 frames decoded after dropping the first key frame")
+	for i, f := range h {
+		assert.LessOrEqual(t, f, rejoinFillMax, "H.264, frame %d", i)
+	}
+	report(t, "rejoin: MPEG-4 joined mid-GOP: decoder fill in the pool area %.2f on the first frame, %.3f on the last before the key frame, 0 after; whole clip max %.4f; H.264 joined mid-GOP: %d of the 79 frames sent decoded, max fill %.4f",
+		j[0], j[18], maxOf(w), len(h), maxOf(h))
 }
 
 // TestReconnectMidGOPRaisesNothing reconnects a camera that has learned the
@@ -146,7 +164,7 @@ func TestDecoderFillIsRecognised(t *testing.T) {
 // test) the grey frames were a scene change and 446 blobs of real water
 // followed in the 79 frames.
 func TestReconnectMidGOPRaisesNothing(t *testing.T) {
-	whole, joined, pool := midGOPClip(t)
+	whole, joined, _, pool := midGOPClip(t)
 	live := filepath.Join(filepath.Dir(whole), "live.avi")
 	require.NoError(t, os.Link(whole, live))
 	cam, err := OpenCamera(SourceConfig{URI: live}, DetectorConfig{Mask: pool, LearningRate: -1, MinPixels: 6})
@@ -189,4 +207,75 @@ func maxOf(v []float64) float64 {
 		m = max(m, x)
 	}
 	return m
+}
+
+// TestWorkingCamerasSettle probes every named synthetic scene (and
+// Debian's reference footage) as a freshly opened live camera would be
+// probed: a working camera's picture must count as whole and steady, or
+// every start-up would wait for RejoinLimit. The synthetic scenes are
+// asserted; vtest.avi (a grey street, not a pool) and tree.avi are only
+// reported.
+func TestWorkingCamerasSettle(t *testing.T) {
+	dir := t.TempDir()
+	scenes := normalScenes()
+	names := make([]string, 0, len(scenes))
+	for n := range scenes {
+		names = append(names, n)
+	}
+	sort.Strings(names)
+	for _, n := range names {
+		t.Run(n, func(t *testing.T) {
+			s := scenes[n]
+			s.Duration = min(s.Duration, 12)
+			p := filepath.Join(dir, n+".avi")
+			truth, err := synth.Render(context.Background(), s, p, "")
+			require.NoError(t, err)
+			var pool []Point
+			for _, c := range truth.Corners {
+				pool = append(pool, Point{c.Pixel[0], c.Pixel[1]})
+			}
+			fill, change, at := settle(t, p, pool)
+			assert.LessOrEqual(t, fill, rejoinFillMax, "decoder-grey share")
+			assert.LessOrEqual(t, change, rejoinSteadyMax, "frame-to-frame change")
+			assert.GreaterOrEqual(t, at, 0, "never trusted")
+			report(t, "rejoin: %s: max fill %.4f, max change %.4f (limits %.4f, %.2f): trusted on frame %d at first open", n, fill, change, rejoinFillMax, rejoinSteadyMax, at)
+		})
+	}
+	for _, ref := range []string{"vtest.avi", "tree.avi"} {
+		p, err := refdata.Path(ref)
+		require.NoError(t, err)
+		fill, change, at := settle(t, p, nil)
+		report(t, "rejoin: %s (whole frame, not a pool): max fill %.4f, max change %.4f: trusted on frame %d at first open", ref, fill, change, at)
+	}
+}
+
+// settle probes a clip's frames with no model, as at a live camera's first
+// open, and returns the largest decoder-grey share and frame-to-frame
+// change, and the frame at which the probing would end (-1: none).
+func settle(t *testing.T, path string, pool []Point) (fill, change float64, at int) {
+	t.Helper()
+	vc, err := gocv.VideoCaptureFile(path)
+	require.NoError(t, err)
+	defer vc.Close()
+	frame := gocv.NewMat()
+	defer frame.Close()
+	var det *Detector
+	var j rejoin
+	fps := vc.Get(gocv.VideoCaptureFPS)
+	require.Greater(t, fps, 0.0, "%s declares no frame rate", path)
+	at = -1
+	for i := 0; vc.Read(&frame) && !frame.Empty(); i++ {
+		if det == nil {
+			det, err = NewDetector(DetectorConfig{Mask: pool, LearningRate: -1, MinPixels: 6}, image.Pt(frame.Cols(), frame.Rows()))
+			require.NoError(t, err)
+			defer det.Close()
+		}
+		p, err := det.probe(frame)
+		require.NoError(t, err)
+		fill, change = max(fill, p.Fill), max(change, p.Change)
+		if at < 0 && j.step(time.Duration(float64(i)/fps*float64(time.Second)), p) != "" {
+			at = i
+		}
+	}
+	return fill, change, at
 }
