@@ -30,6 +30,11 @@ type SourceConfig struct {
 	// Loop plays a file source again from the start at its end instead of
 	// returning io.EOF; media time keeps increasing across passes.
 	Loop bool
+	// MaxLag bounds how far behind a live (RTSP or HTTP) stream frames are
+	// searched: when the frame taken is older than this against the newest
+	// one, frames are dropped unsearched until it is not (see backlog.go).
+	// Zero selects 500 ms; negative never drops.
+	MaxLag time.Duration
 }
 
 // Result is what one frame yielded.
@@ -64,6 +69,9 @@ type CaptureStats struct {
 	Loops int64
 	// Reconnects is the number of successful Reconnect calls.
 	Reconnects int64
+	// Dropped is the number of a live source's frames decoded and dropped
+	// unsearched to catch up with the stream (see SourceConfig.MaxLag).
+	Dropped int64
 }
 
 // ReconnectInfo says what Reconnect found.
@@ -135,6 +143,7 @@ type Camera struct {
 	health     healthProbe
 	ev         *evidence
 	rejoin     *rejoin // non-nil while frames are only probed
+	lag        backlog
 	closed     bool
 }
 
@@ -345,6 +354,9 @@ func (c *Camera) advance() error {
 		c.primed = false
 		return nil
 	}
+	if c.kind == kindRTSP || c.kind == kindHTTP {
+		return c.advanceLive()
+	}
 	for tries := 0; ; tries++ {
 		ok, err := c.cap.read(&c.scratch)
 		if err != nil {
@@ -381,6 +393,51 @@ func (c *Camera) advance() error {
 		}
 		return c.rewind()
 	}
+}
+
+// advanceLive takes a live source's next frame into c.frame, dropping
+// frames while the one taken lags the stream by more than MaxLag.
+func (c *Camera) advanceLive() error {
+	maxLag := c.sc.MaxLag
+	if maxLag == 0 {
+		maxLag = defaultMaxLag
+	}
+	// A read that took half a frame interval or more waited for its frame;
+	// decoding one from the queue takes a few milliseconds.
+	wait := c.frameInterval() / 2
+	for first := true; ; first = false {
+		t0 := time.Now()
+		ok, err := c.cap.grab()
+		if err != nil {
+			return err
+		}
+		if !ok {
+			c.stats.EmptyReads++
+			return ErrNoFrame
+		}
+		c.stats.FramesRead++
+		if !first {
+			c.stats.Dropped++
+		}
+		stream := c.cap.get(capPropPosMsec)
+		if math.IsNaN(stream) || math.IsInf(stream, 0) {
+			stream = 0
+		}
+		lag := c.lag.observe(time.Since(c.started), time.Duration(stream*float64(time.Millisecond)), time.Since(t0) >= wait)
+		if maxLag < 0 || lag <= maxLag {
+			break
+		}
+	}
+	ok, err := c.cap.retrieve(&c.scratch)
+	if err != nil {
+		return err
+	}
+	if !ok || c.scratch.Empty() {
+		c.stats.EmptyReads++
+		return ErrNoFrame
+	}
+	c.frame, c.scratch = c.scratch, c.frame
+	return nil
 }
 
 // rewind reopens a looped file at its first frame.
@@ -429,6 +486,7 @@ func (c *Camera) Reconnect() (ReconnectInfo, error) {
 	c.health.reset()
 	c.stats.Reconnects++
 	c.rejoin = &rejoin{}
+	c.lag.reset()
 	if info.Size == info.OldSize {
 		return info, nil
 	}

@@ -107,6 +107,38 @@ func (c *capture) read(dst *gocv.Mat) (ok bool, err error) {
 	}
 }
 
+// grab takes the next frame, decoded but not converted (see retrieve).
+func (c *capture) grab() (ok bool, err error) {
+	if c.p == nil {
+		return false, errCaptureClosed
+	}
+	var buf [errBufLen]C.char
+	switch C.sw_cap_grab(c.p, &buf[0], errBufLen) {
+	case 1:
+		return true, nil
+	case 0:
+		return false, nil
+	default:
+		return false, fmt.Errorf("grab frame: %s", C.GoString(&buf[0]))
+	}
+}
+
+// retrieve converts the frame last grabbed into dst.
+func (c *capture) retrieve(dst *gocv.Mat) (ok bool, err error) {
+	if c.p == nil {
+		return false, errCaptureClosed
+	}
+	var buf [errBufLen]C.char
+	switch C.sw_cap_retrieve(c.p, unsafe.Pointer(dst.Ptr()), &buf[0], errBufLen) {
+	case 1:
+		return true, nil
+	case 0:
+		return false, nil
+	default:
+		return false, fmt.Errorf("retrieve frame: %s", C.GoString(&buf[0]))
+	}
+}
+
 func (c *capture) get(prop int) float64 {
 	if c.p == nil {
 		return 0

@@ -93,6 +93,24 @@ int sw_cap_read(SwCapture c, void* dst, char* err, int errlen) {
     }
 }
 
+int sw_cap_grab(SwCapture c, char* err, int errlen) {
+    try {
+        return static_cast<cv::VideoCapture*>(c)->grab() ? 1 : 0;
+    } catch (const std::exception& e) {
+        copyErr(e, err, errlen);
+        return -1;
+    }
+}
+
+int sw_cap_retrieve(SwCapture c, void* dst, char* err, int errlen) {
+    try {
+        return static_cast<cv::VideoCapture*>(c)->retrieve(*static_cast<cv::Mat*>(dst)) ? 1 : 0;
+    } catch (const std::exception& e) {
+        copyErr(e, err, errlen);
+        return -1;
+    }
+}
+
 double sw_cap_get(SwCapture c, int prop) { return static_cast<cv::VideoCapture*>(c)->get(prop); }
 
 void sw_cap_close(SwCapture c) { delete static_cast<cv::VideoCapture*>(c); }

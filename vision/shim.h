@@ -24,6 +24,11 @@ SwCapture sw_cap_open(const char* uri, int api, int openTimeoutMs, int readTimeo
 // Returns 1 when a frame was read into dst, 0 at end of stream or on a
 // failed read, -1 on an OpenCV exception (message in err).
 int sw_cap_read(SwCapture c, void* dst, char* err, int errlen);
+// sw_cap_grab takes (and decodes) the next frame without converting it;
+// sw_cap_retrieve converts the grabbed frame into dst. Both return as
+// sw_cap_read does.
+int sw_cap_grab(SwCapture c, char* err, int errlen);
+int sw_cap_retrieve(SwCapture c, void* dst, char* err, int errlen);
 double sw_cap_get(SwCapture c, int prop);
 void sw_cap_close(SwCapture c);
 

@@ -45,7 +45,7 @@ func newMetrics(reg prometheus.Registerer, version string) *metrics {
 	m := &metrics{
 		read:       counter("stillwater_frames_read_total", "Frames read from the camera.", cam...),
 		processed:  counter("stillwater_frames_processed_total", "Frames that went through the whole pipeline.", cam...),
-		dropped:    counter("stillwater_frames_dropped_total", "Frames read but not processed.", cam...),
+		dropped:    counter("stillwater_frames_dropped_total", "Frames of a live camera dropped unsearched to catch up with the stream.", cam...),
 		decodeErrs: counter("stillwater_decode_errors_total", "Reads that returned no decodable frame.", cam...),
 		procSecs: prometheus.NewHistogramVec(prometheus.HistogramOpts{
 			Name: "stillwater_frame_processing_seconds", Help: "Time to read and process one frame.", Buckets: secs,
@@ -141,6 +141,13 @@ func (c *cameraMetrics) reconnect() {
 		return
 	}
 	c.m.reconnects.WithLabelValues(c.id).Inc()
+}
+
+func (c *cameraMetrics) droppedFrames(n int) {
+	if c == nil || n <= 0 {
+		return
+	}
+	c.m.dropped.WithLabelValues(c.id).Add(float64(n))
 }
 
 func (c *cameraMetrics) decodeErrors(n int) {

@@ -348,6 +348,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 func (w *cameraWatch) countStats(vc *vision.Camera, st *captureState) {
 	s := vc.Stats()
 	w.met.decodeErrors(int(s.DecodeErrors - st.stats.DecodeErrors))
+	w.met.droppedFrames(int(s.Dropped - st.stats.Dropped))
 	st.stats = s
 }
 
