@@ -18,31 +18,90 @@ import (
 func TestBacklogObserve(t *testing.T) {
 	ms := func(v int) time.Duration { return time.Duration(v) * time.Millisecond }
 	type read struct {
-		wall, stream int // ms
-		waited       bool
-		lag          int // ms, want
+		wall, stream, took int // ms
+		lag                int // ms, want
 	}
 	cases := []struct {
 		name  string
 		reads []read
 	}{
 		{"a reader keeping up waits on every read: no lag", []read{
-			{1000, 0, true, 0}, {1100, 100, true, 0}, {1200, 200, true, 0}}},
+			{1000, 0, 90, 0}, {1100, 100, 90, 0}, {1200, 200, 90, 0}}},
 		{"a slow reader takes queued frames: the lag grows", []read{
-			{1000, 0, true, 0}, {1300, 100, false, 200}, {1600, 200, false, 400}, {1900, 300, false, 600}}},
+			{1000, 0, 90, 0}, {1300, 100, 5, 200}, {1600, 200, 5, 400}, {1900, 300, 5, 600}}},
 		{"a frame that came sooner than the baseline lowers it", []read{
-			{1000, 0, false, 0}, {1050, 100, false, 0}, {1400, 200, false, 250}}},
+			{1000, 0, 5, 0}, {1050, 100, 5, 0}, {1400, 200, 5, 250}}},
 		{"the stream clock running slow is followed by the reads that wait", []read{
-			{1000, 0, true, 0}, {61010, 60000, true, 0}, {61400, 60100, false, 290}}},
+			{1000, 0, 90, 0}, {1100, 100, 90, 0}, {61010, 60000, 90, 0}, {61400, 60100, 5, 290}}},
 		{"a jump back in stream time is forgotten at the next wait", []read{
-			{1000, 5000, true, 0}, {1100, 100, false, 5000}, {1200, 200, true, 0}, {1300, 300, true, 0}}},
+			{1000, 5000, 90, 0}, {1100, 100, 5, 5000}, {1200, 200, 90, 0}, {1300, 300, 90, 0}}},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
 			var b backlog
 			for i, r := range c.reads {
-				assert.Equal(t, ms(r.lag), b.observe(ms(r.wall), ms(r.stream), r.waited), "read %d", i)
+				assert.Equal(t, ms(r.lag), b.observe(grabbed{wall: ms(r.wall), stream: ms(r.stream), took: ms(r.took)}), "read %d", i)
 			}
+		})
+	}
+}
+
+// TestBacklogRead runs the drop policy against a simulated camera: frames
+// come every period (stream time running slow by drift against the wall),
+// each grab decodes for 5 ms, and each frame kept costs the reader cost.
+// A frame's age is the wall time it is kept minus when it came.
+func TestBacklogRead(t *testing.T) {
+	const decode = 5 * time.Millisecond
+	cases := []struct {
+		name         string
+		period, cost time.Duration
+		drift        float64
+		frames       int
+		maxDropShare float64       // of the frames that came
+		maxAge       time.Duration // of a kept frame, after the first second
+	}{
+		{"keeping up at 10 fps", 100 * time.Millisecond, 50 * time.Millisecond, 0, 3000, 0, 10 * time.Millisecond},
+		{"2.5 times too slow at 10 fps", 100 * time.Millisecond, 250 * time.Millisecond, 0, 3000, 0.65, 600 * time.Millisecond},
+		{"10 times too slow at 25 fps", 40 * time.Millisecond, 400 * time.Millisecond, 0, 3000, 0.92, 600 * time.Millisecond},
+		// A stream clock 0.1 % slow over 2.8 hours, the reader keeping up
+		// and its waits long enough to be seen: nothing is dropped.
+		{"keeping up, clock drifting, waits seen", 100 * time.Millisecond, 50 * time.Millisecond, 0.001, 100000, 0, 10 * time.Millisecond},
+		// The same at 25 fps with a reader so close to the frame rate that
+		// its waits (5 ms) look like decoding: the drift must not make it
+		// drop live frames for long.
+		{"keeping up, clock drifting, waits unseen", 40 * time.Millisecond, 30 * time.Millisecond, 0.001, 250000, 0.001, 10 * time.Millisecond},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			var b backlog
+			now, next := time.Duration(0), 0
+			arrival := func(i int) time.Duration { return time.Duration(i) * c.period }
+			grab := func() (grabbed, error) {
+				if next >= c.frames {
+					return grabbed{}, ErrNoFrame
+				}
+				i := next
+				next++
+				t0 := now
+				now = max(now, arrival(i)) + decode
+				return grabbed{wall: now, stream: time.Duration(float64(arrival(i)) * (1 - c.drift)), took: now - t0}, nil
+			}
+			dropped, worst := 0, time.Duration(0)
+			for {
+				n, err := b.read(grab, defaultMaxLag)
+				dropped += n
+				if err != nil {
+					break
+				}
+				if now > time.Second {
+					worst = max(worst, now-arrival(next-1))
+				}
+				now += c.cost
+			}
+			share := float64(dropped) / float64(c.frames)
+			assert.LessOrEqual(t, share, c.maxDropShare, "share of frames dropped")
+			assert.LessOrEqual(t, worst, c.maxAge, "oldest frame kept")
+			report(t, "backlog: simulated %s: %d of %d frames dropped (%.2f %%), oldest frame kept %v", c.name, dropped, c.frames, 100*share, worst)
 		})
 	}
 }

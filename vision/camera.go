@@ -402,31 +402,27 @@ func (c *Camera) advanceLive() error {
 	if maxLag == 0 {
 		maxLag = defaultMaxLag
 	}
-	// A read that took half a frame interval or more waited for its frame;
-	// decoding one from the queue takes a few milliseconds.
-	wait := c.frameInterval() / 2
-	for first := true; ; first = false {
+	grab := func() (grabbed, error) {
 		t0 := time.Now()
 		ok, err := c.cap.grab()
 		if err != nil {
-			return err
+			return grabbed{}, err
 		}
 		if !ok {
 			c.stats.EmptyReads++
-			return ErrNoFrame
+			return grabbed{}, ErrNoFrame
 		}
 		c.stats.FramesRead++
-		if !first {
-			c.stats.Dropped++
-		}
 		stream := c.cap.get(capPropPosMsec)
 		if math.IsNaN(stream) || math.IsInf(stream, 0) {
 			stream = 0
 		}
-		lag := c.lag.observe(time.Since(c.started), time.Duration(stream*float64(time.Millisecond)), time.Since(t0) >= wait)
-		if maxLag < 0 || lag <= maxLag {
-			break
-		}
+		return grabbed{wall: time.Since(c.started), stream: time.Duration(stream * float64(time.Millisecond)), took: time.Since(t0)}, nil
+	}
+	dropped, err := c.lag.read(grab, maxLag)
+	c.stats.Dropped += int64(dropped)
+	if err != nil {
+		return err
 	}
 	ok, err := c.cap.retrieve(&c.scratch)
 	if err != nil {
