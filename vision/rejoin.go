@@ -8,16 +8,16 @@ import (
 )
 
 // A decoder that joins a stream between key frames has no reference
-// picture for the frames it receives until the next key frame, and FFmpeg's
-// decoders then paint the missing picture mid-grey and patch in the
-// macroblocks each new frame updates (seen in the RTSP test: "first frame
-// is no keyframe", then frames of flat grey filling in block by block,
-// measured as BGR 128–132 after the YUV conversion, flat over whole
-// blocks). Such frames would be
-// foreground everywhere, and a model that learns them reports blocks of
-// real water as blobs once the key frame comes. So after a reconnect, and
-// when a live source is first opened, frames are only probed until the
-// picture can be trusted again:
+// picture for the frames it receives until the next key frame. FFmpeg's
+// MPEG-4 decoder then paints the missing picture mid-grey and patches in
+// the macroblocks each new frame updates (seen in the RTSP test: "first
+// frame is no keyframe", then frames of flat grey filling in block by
+// block, BGR 130 after the YUV conversion); its H.264 decoder gives no
+// frame until the key frame instead (TestDecoderFillIsRecognised). Grey
+// frames would be foreground everywhere, and a model that learns them
+// reports blocks of real water as blobs once the key frame comes. So
+// after a reconnect, and when a live source is first opened, frames are
+// only probed until the picture can be trusted again:
 //
 //   - it matches the background kept from before the outage for
 //     rejoinMatchFrames frames in a row (the camera came back to the same
@@ -44,7 +44,8 @@ const (
 	// synthetic scene, 0.0002 in vtest.avi's grey street (TestWorkingCamerasSettle).
 	rejoinFillMax = 0.0003
 	// rejoinMatchMax is the share of the watched area that may differ from
-	// the kept model in a picture that matches it; a child is about 1 %.
+	// the kept model in a picture that matches it; a small child's head
+	// and shoulders are well under 1 % of a 8 × 4 m pool.
 	rejoinMatchMax    = 0.05
 	rejoinMatchFrames = 3
 	// rejoinSteadyMax is the share of the watched area that may change by
