@@ -41,6 +41,14 @@ func GrabFrame(uri, transport string, timeout time.Duration) (image.Image, error
 		return nil, fmt.Errorf("grab frame: %w", err)
 	}
 	defer cam.Close()
+	// A live stream's first frames may be a decoder's grey (see rejoin.go):
+	// take the first frame the detector would trust. The probing ends by
+	// RejoinLimit at the latest.
+	for cam.rejoin != nil {
+		if _, err := cam.Next(nil); err != nil {
+			return nil, fmt.Errorf("grab frame %q: %w", red, err)
+		}
+	}
 	img, err := matImage(cam.frame)
 	if err != nil {
 		return nil, fmt.Errorf("grab frame %q: %w", red, err)
