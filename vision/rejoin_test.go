@@ -112,23 +112,8 @@ var dropFirst = []string{"-bsf:v", "noise=drop=eq(n\\,0)"}
 func TestDecoderFillIsRecognised(t *testing.T) {
 	whole, joined, h264, pool := midGOPClip(t)
 	fills := func(path string) []float64 {
-		vc, err := gocv.VideoCaptureFile(path)
-		require.NoError(t, err)
-		defer vc.Close()
-		frame := gocv.NewMat()
-		defer frame.Close()
-		var det *Detector
 		var out []float64
-		for vc.Read(&frame) && !frame.Empty() {
-			if det == nil {
-				det, err = NewDetector(DetectorConfig{Mask: pool, LearningRate: -1, MinPixels: 6}, image.Pt(frame.Cols(), frame.Rows()))
-				require.NoError(t, err)
-				defer det.Close()
-			}
-			p, err := det.probe(frame)
-			require.NoError(t, err)
-			out = append(out, p.Fill)
-		}
+		probeClip(t, path, pool, func(_ int, _ float64, p probeStats) { out = append(out, p.Fill) })
 		return out
 	}
 	w, j := fills(whole), fills(joined)
@@ -255,16 +240,30 @@ func TestWorkingCamerasSettle(t *testing.T) {
 // change, and the frame at which the probing would end (-1: none).
 func settle(t *testing.T, path string, pool []Point) (fill, change float64, at int) {
 	t.Helper()
+	var j rejoin
+	at = -1
+	probeClip(t, path, pool, func(i int, fps float64, p probeStats) {
+		fill, change = max(fill, p.Fill), max(change, p.Change)
+		if at < 0 && j.step(time.Duration(float64(i)/fps*float64(time.Second)), p) != "" {
+			at = i
+		}
+	})
+	return fill, change, at
+}
+
+// probeClip probes every frame of a clip with a detector watching pool (the
+// whole frame when empty) and hands each result to use with the frame's
+// index and the clip's frame rate.
+func probeClip(t *testing.T, path string, pool []Point, use func(i int, fps float64, p probeStats)) {
+	t.Helper()
 	vc, err := gocv.VideoCaptureFile(path)
 	require.NoError(t, err)
 	defer vc.Close()
+	fps := vc.Get(gocv.VideoCaptureFPS)
+	require.Greater(t, fps, 0.0, "%s declares no frame rate", path)
 	frame := gocv.NewMat()
 	defer frame.Close()
 	var det *Detector
-	var j rejoin
-	fps := vc.Get(gocv.VideoCaptureFPS)
-	require.Greater(t, fps, 0.0, "%s declares no frame rate", path)
-	at = -1
 	for i := 0; vc.Read(&frame) && !frame.Empty(); i++ {
 		if det == nil {
 			det, err = NewDetector(DetectorConfig{Mask: pool, LearningRate: -1, MinPixels: 6}, image.Pt(frame.Cols(), frame.Rows()))
@@ -273,12 +272,8 @@ func settle(t *testing.T, path string, pool []Point) (fill, change float64, at i
 		}
 		p, err := det.probe(frame)
 		require.NoError(t, err)
-		fill, change = max(fill, p.Fill), max(change, p.Change)
-		if at < 0 && j.step(time.Duration(float64(i)/fps*float64(time.Second)), p) != "" {
-			at = i
-		}
+		use(i, fps, p)
 	}
-	return fill, change, at
 }
 
 // TestGrabFrameFromLiveStreamIsWhole grabs calibration frames from the
