@@ -97,14 +97,7 @@ func (c *capture) read(dst *gocv.Mat) (ok bool, err error) {
 		return false, errCaptureClosed
 	}
 	var buf [errBufLen]C.char
-	switch C.sw_cap_read(c.p, unsafe.Pointer(dst.Ptr()), &buf[0], errBufLen) {
-	case 1:
-		return true, nil
-	case 0:
-		return false, nil
-	default:
-		return false, fmt.Errorf("read frame: %s", C.GoString(&buf[0]))
-	}
+	return capResult(C.sw_cap_read(c.p, unsafe.Pointer(dst.Ptr()), &buf[0], errBufLen), &buf, "read frame")
 }
 
 // grab takes the next frame, decoded but not converted (see retrieve).
@@ -113,14 +106,7 @@ func (c *capture) grab() (ok bool, err error) {
 		return false, errCaptureClosed
 	}
 	var buf [errBufLen]C.char
-	switch C.sw_cap_grab(c.p, &buf[0], errBufLen) {
-	case 1:
-		return true, nil
-	case 0:
-		return false, nil
-	default:
-		return false, fmt.Errorf("grab frame: %s", C.GoString(&buf[0]))
-	}
+	return capResult(C.sw_cap_grab(c.p, &buf[0], errBufLen), &buf, "grab frame")
 }
 
 // retrieve converts the frame last grabbed into dst.
@@ -129,13 +115,19 @@ func (c *capture) retrieve(dst *gocv.Mat) (ok bool, err error) {
 		return false, errCaptureClosed
 	}
 	var buf [errBufLen]C.char
-	switch C.sw_cap_retrieve(c.p, unsafe.Pointer(dst.Ptr()), &buf[0], errBufLen) {
+	return capResult(C.sw_cap_retrieve(c.p, unsafe.Pointer(dst.Ptr()), &buf[0], errBufLen), &buf, "retrieve frame")
+}
+
+// capResult reads the shim's capture return code: 1 a frame, 0 none, -1
+// an OpenCV exception whose message is in buf.
+func capResult(rc C.int, buf *[errBufLen]C.char, what string) (bool, error) {
+	switch rc {
 	case 1:
 		return true, nil
 	case 0:
 		return false, nil
 	default:
-		return false, fmt.Errorf("retrieve frame: %s", C.GoString(&buf[0]))
+		return false, fmt.Errorf("%s: %s", what, C.GoString(&buf[0]))
 	}
 }
 
