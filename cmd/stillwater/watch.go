@@ -369,7 +369,7 @@ func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
 			st.drift.Close()
 			st.drift = d
 		}
-		w.log.Info("calibration, zones and detection settings reloaded")
+		w.log.Info("calibration, zones, gating and alarm timing reloaded; the detector's water outline and model settings change at the next restart")
 	default:
 	}
 }
