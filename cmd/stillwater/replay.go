@@ -50,7 +50,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	clip := fs.String("clip", "", "video `file` to replay")
 	cfgPath := fs.String("config", "", "daemon config `file` (with -camera)")
 	camID := fs.String("camera", "", "camera `id` in the config whose settings to use")
-	labels := fs.String("labels", "", "stillwater.labels/v1 `file` giving pool size and corners (instead of -config)")
+	labels := fs.String("labels", "", "label `file` (stillwater.labels/v1 or pool-holdout-v1) giving the calibration (instead of -config)")
 	out := fs.String("out", "", "output `file` (default standard output)")
 	prefix := fs.String("prefix", "stillwater", "bus subject `prefix` with -labels")
 	verbose := fs.Bool("v", false, "log at debug level to standard error")
@@ -71,11 +71,8 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	case *labels != "" && *cfgPath != "":
 		return fmt.Errorf("replay: give either -labels or -config, not both: %w", errUsage)
 	case *labels != "":
-		t, err := synth.ReadTruth(*labels)
-		if err != nil {
-			return fmt.Errorf("replay: %w", err)
-		}
-		cam, err = cameraFromLabels(t, *clip)
+		var err error
+		cam, err = cameraForLabels(*labels, *clip)
 		if err != nil {
 			return fmt.Errorf("replay: labels %s: %w", *labels, err)
 		}

@@ -334,7 +334,7 @@ func scoreFiles(replayPath, labelPath string, rules scoreRules) (clipScore, erro
 	if err != nil {
 		return clipScore{}, fmt.Errorf("score: %w", err)
 	}
-	t, err := synth.ReadTruth(labelPath)
+	t, err := readLabels(labelPath)
 	if err != nil {
 		return clipScore{}, fmt.Errorf("score: %w", err)
 	}
