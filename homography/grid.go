@@ -33,7 +33,8 @@ const MaxGridCells = 600_000
 // NewGrid rasterises the rectangle of pool metres from lo to hi at cell
 // metres per cell. toPixel maps a point of the plane (pool metres) to the
 // frame pixel that sees it, false where none does; frame is the frame's
-// size in pixels, and cells whose pixel falls outside it are marked -1.
+// size in pixels, and cells whose pixel falls outside it are marked -1
+// (with a size of zero, only cells at negative pixels are).
 func NewGrid(lo, hi Point, cell float64, frameW, frameH int, toPixel func(Point) (Point, bool)) (Grid, error) {
 	if !(cell > 0) || math.IsInf(cell, 0) {
 		return Grid{}, fmt.Errorf("new grid: cell size %v m: want a positive size", cell)
@@ -52,7 +53,7 @@ func NewGrid(lo, hi Point, cell float64, frameW, frameH int, toPixel func(Point)
 			k := j*nx + i
 			g.MapX[k], g.MapY[k] = -1, -1
 			p, ok := toPixel(g.Centre(i, j))
-			if !ok || !(p.X >= 0 && p.Y >= 0 && p.X <= float64(frameW-1) && p.Y <= float64(frameH-1)) {
+			if !ok || !(p.X >= 0 && p.Y >= 0) || (frameW > 0 && p.X > float64(frameW-1)) || (frameH > 0 && p.Y > float64(frameH-1)) {
 				continue
 			}
 			g.MapX[k], g.MapY[k] = float32(p.X), float32(p.Y)

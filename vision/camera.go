@@ -127,7 +127,7 @@ type Camera struct {
 	dc       DetectorConfig
 	kind     sourceKind
 	cap      *capture
-	det      *Detector
+	det      frameDetector
 	frame    gocv.Mat // latest full-resolution BGR frame
 	scratch  gocv.Mat // read target; swapped with frame on success, so a failed read keeps the last frame
 	primed   bool     // frame holds an unprocessed first frame
@@ -179,7 +179,10 @@ func OpenCamera(sc SourceConfig, dc DetectorConfig) (*Camera, error) {
 		cam.Close()
 		return nil, fmt.Errorf("open camera %q: %w", red, err)
 	}
-	det, err := NewDetector(dc, cam.frameSize())
+	if dc.MeanVar.FPS == 0 {
+		dc.MeanVar.FPS = cam.fps
+	}
+	det, err := newFrameDetector(dc, cam.frameSize())
 	if err != nil {
 		cam.Close()
 		return nil, fmt.Errorf("open camera %q: %w", red, err)
@@ -247,7 +250,7 @@ func (c *Camera) frameSize() image.Point { return image.Pt(c.frame.Cols(), c.fra
 func (c *Camera) FPS() float64 { return c.fps }
 
 // Size returns the source frame size in pixels.
-func (c *Camera) Size() image.Point { return c.det.src }
+func (c *Camera) Size() image.Point { return c.det.srcSize() }
 
 // Stats returns the capture counters.
 func (c *Camera) Stats() CaptureStats { return c.stats }
@@ -269,7 +272,7 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 	if err := c.advance(); err != nil {
 		return Result{}, err
 	}
-	r := Result{Index: c.index, Size: c.det.src, Media: c.mediaTime()}
+	r := Result{Index: c.index, Size: c.det.srcSize(), Media: c.mediaTime()}
 	c.index++
 	c.media = r.Media
 	r.Health = c.health.measure(c.frame)
@@ -446,7 +449,7 @@ func (c *Camera) rewind() error {
 	if err := c.open(); err != nil {
 		return fmt.Errorf("loop %s: %w", c.sc.URI, err)
 	}
-	if oldSize := c.det.src; c.frameSize() != oldSize {
+	if oldSize := c.det.srcSize(); c.frameSize() != oldSize {
 		return fmt.Errorf("loop %s: frame size changed from %v to %v", c.sc.URI, oldSize, c.frameSize())
 	}
 	c.primed = false
@@ -467,7 +470,7 @@ func (c *Camera) Reconnect() (ReconnectInfo, error) {
 	if c.closed {
 		return ReconnectInfo{}, errCaptureClosed
 	}
-	info := ReconnectInfo{OldSize: c.det.src}
+	info := ReconnectInfo{OldSize: c.det.srcSize()}
 	if c.cap != nil {
 		c.cap.Close()
 		c.cap = nil
@@ -492,7 +495,7 @@ func (c *Camera) Reconnect() (ReconnectInfo, error) {
 	for i, ex := range c.dc.Exclude {
 		dc.Exclude[i] = scalePoly(ex, info.OldSize, info.Size)
 	}
-	det, err := NewDetector(dc, info.Size)
+	det, err := newFrameDetector(dc, info.Size)
 	if err != nil {
 		c.cap.Close()
 		c.cap = nil

@@ -27,18 +27,36 @@ type Point struct {
 // Blob is one connected foreground region.
 type Blob struct {
 	Centroid Point           // area-weighted centre, source pixels
-	Area     float64         // source pixels², counted foreground pixels
-	Pixels   int             // foreground pixels at processing size
+	Area     float64         // source pixels², counted foreground pixels (mog2, knn)
+	Pixels   int             // foreground pixels at processing size (cells for meanvar)
 	Box      image.Rectangle // bounding box, source pixels
 	Contour  []Point         // outer contour, source pixels
+	// Plane is set by the rectified (meanvar) detector: the candidate's
+	// position in the caller's plane units and its cells.
+	Plane *PlaneBlob
+	// Features are what the rectified detector measured (zero for mog2
+	// and knn).
+	Features Features
 }
 
 // DetectorConfig sets up background subtraction and blob extraction.
 type DetectorConfig struct {
+	// Grid, with Method "meanvar" (or empty), selects the mean–variance
+	// detector on the rectified pool (meanvar.go); the fields below up to
+	// MinArea then do not apply, except Method.
+	Grid *Rectification
+	// MeanVar tunes the mean–variance detector.
+	MeanVar MeanVarConfig
+	// Reference, when set, is the empty pool the mean–variance detector
+	// starts from (and restarts from after a reconnect that changed the
+	// view), so that it watches from the first second.
+	Reference *Reference
 	// ProcessWidth is the width frames are scaled to before processing, px.
 	// Zero keeps the source width.
 	ProcessWidth int
-	// Method is "mog2" (default) or "knn".
+	// Method is "meanvar" (the default with a Grid), or the earlier
+	// mixture models on the camera view, "mog2" (the default without one)
+	// or "knn".
 	Method string
 	// History is the number of frames the model remembers (OpenCV default 500).
 	History int
@@ -141,6 +159,32 @@ const glintLevel = 235
 
 // ErrEmptyFrame is returned for a frame with no pixels.
 var ErrEmptyFrame = errors.New("empty frame")
+
+// frameDetector is what a Camera runs over its frames: the mean–variance
+// detector on the rectified pool, or the earlier mixture-model Detector.
+type frameDetector interface {
+	Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameStats, error)
+	probe(frame gocv.Mat) (probeStats, error)
+	reset() error
+	srcSize() image.Point
+	Close() error
+}
+
+// newFrameDetector sets up the detector cfg names for frames of size src.
+func newFrameDetector(cfg DetectorConfig, src image.Point) (frameDetector, error) {
+	switch {
+	case cfg.Method == "meanvar" || (cfg.Method == "" && cfg.Grid != nil):
+		d, err := newMeanVar(cfg, src)
+		if err != nil {
+			return nil, fmt.Errorf("new detector: %w", err)
+		}
+		return d, nil
+	default:
+		return NewDetector(cfg, src)
+	}
+}
+
+func (d *Detector) srcSize() image.Point { return d.src }
 
 // NewDetector prepares a detector for frames of the given source size.
 func NewDetector(cfg DetectorConfig, src image.Point) (*Detector, error) {

@@ -32,6 +32,39 @@ int sw_cap_retrieve(SwCapture c, void* dst, char* err, int errlen);
 double sw_cap_get(SwCapture c, int prop);
 void sw_cap_close(SwCapture c);
 
+
+// The rectified pool's mean–variance model (see meanvar.go). Every image
+// argument is a cv::Mat* of the grid's size: frames CV_8UC3, the short mean,
+// the model's mean and variance and the gain CV_32FC3, masks CV_8UC1 (0 or
+// 255), score and contrast CV_32FC1.
+
+// sw_pool_accumulate sets shortMean += a (frame − shortMean); a = 1 copies.
+int sw_pool_accumulate(void* frame, void* shortMean, double a, char* err, int errlen);
+
+// sw_pool_gain writes to gain, per channel, the local illumination ratio of
+// shortMean to mean: sums over square cells of cellPx pixels where weight
+// is set, between cell centres bilinear. A cell with fewer than minShare of
+// its pixels weighted takes its neighbours' ratio; 1 where none has any.
+int sw_pool_gain(void* shortMean, void* mean, void* weight, int cellPx, double minShare, void* gain, char* err, int errlen);
+
+typedef struct {
+    double noise2;     // variance floor added to every channel's, grey levels²
+    double aMean;      // learning rate of mean and variance where the pixel is background
+    double aSlow;      // learning rate where it is foreground but not held
+    double learnBelow; // score under which a pixel counts as background
+    float varClip;     // a squared residual counts at most varClip times the variance plus noise2
+    float varGain;     // the variance learns varGain times as fast as the mean
+    int learn;         // 0: score only
+} SwPoolParams;
+
+// sw_pool_update scores img (CV_32FC3 or CV_8UC3) against the model under
+// the gain: score = sum over channels of (img − gain·mean)² / (gain²·var +
+// noise2), contrast = (sum img − sum gain·mean) / sum gain·mean; both 0
+// outside water. With learn set, mean and variance learn img / gain where
+// water is set and hold is not.
+int sw_pool_update(void* img, void* mean, void* var, void* gain, void* water, void* hold, SwPoolParams p,
+                   void* score, void* contrast, char* err, int errlen);
+
 #ifdef __cplusplus
 }
 #endif

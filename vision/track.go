@@ -13,6 +13,11 @@ type Detection struct {
 	X, Y float64
 	Area float64         // plane units²
 	Box  image.Rectangle // source pixels
+	// Hold is the box to keep out of background learning while the object
+	// is tracked, in the detector's own pixels (grid cells for meanvar).
+	Hold image.Rectangle
+	// Features are the detector's measurements of the largest part.
+	Features Features
 }
 
 // Track is an object followed across frames, in plane units.
@@ -22,6 +27,8 @@ type Track struct {
 	VX, VY      float64 // units per second
 	Area        float64
 	Box         image.Rectangle // source pixels, latest
+	Hold        image.Rectangle // detector pixels, latest (see Detection.Hold)
+	Features    Features        // latest
 	First, Last time.Duration   // media time first and last seen
 	Hits        int             // frames with a detection
 }
@@ -94,7 +101,7 @@ func (t *Tracker) Update(now time.Duration, dets []Detection) []Track {
 			tr.VX = (1-a)*tr.VX + a*(g.X-tr.X)/dt
 			tr.VY = (1-a)*tr.VY + a*(g.Y-tr.Y)/dt
 		}
-		tr.X, tr.Y, tr.Area, tr.Box = g.X, g.Y, g.Area, g.Box
+		tr.X, tr.Y, tr.Area, tr.Box, tr.Hold, tr.Features = g.X, g.Y, g.Area, g.Box, g.Hold, g.Features
 		tr.Last = now
 		tr.Hits++
 	}
@@ -102,7 +109,7 @@ func (t *Tracker) Update(now time.Duration, dets []Detection) []Track {
 		if usedG[gi] {
 			continue
 		}
-		t.tracks = append(t.tracks, &Track{ID: t.next, X: g.X, Y: g.Y, Area: g.Area, Box: g.Box, First: now, Last: now, Hits: 1})
+		t.tracks = append(t.tracks, &Track{ID: t.next, X: g.X, Y: g.Y, Area: g.Area, Box: g.Box, Hold: g.Hold, Features: g.Features, First: now, Last: now, Hits: 1})
 		t.next++
 	}
 	keep := t.tracks[:0]
@@ -156,7 +163,7 @@ func mergeDetections(dets []Detection, r float64) []Detection {
 		if !ok {
 			k = len(out)
 			idx[root] = k
-			out = append(out, Detection{Box: d.Box})
+			out = append(out, Detection{Box: d.Box, Hold: d.Hold})
 			wsum = append(wsum, 0)
 		}
 		w := math.Max(d.Area, 1e-9)
@@ -165,6 +172,10 @@ func mergeDetections(dets []Detection, r float64) []Detection {
 		o.Y += d.Y * w
 		o.Area += d.Area
 		o.Box = o.Box.Union(d.Box)
+		o.Hold = o.Hold.Union(d.Hold)
+		if d.Features.Area >= o.Features.Area {
+			o.Features = d.Features
+		}
 		wsum[k] += w
 	}
 	for k := range out {

@@ -561,3 +561,38 @@ func (k *driftChecker) Close() error {
 	}
 	return k.ref.Close()
 }
+
+// rectification returns the top-down raster of the water surface the
+// detector works on: square cells of cell metres over the pool's bounding
+// box (the outline's, for a freeform pool), each mapped to the recorded
+// pixel that sees its centre (lens, coping and homography included), with
+// the cells on the water marked.
+func (c *calibration) rectification(cell float64) (*vision.Rectification, error) {
+	lo, hi := homography.Point{}, homography.Point{X: c.length, Y: c.width}
+	if c.outline != nil {
+		lo, hi = c.outline[0], c.outline[0]
+		for _, p := range c.outline {
+			lo = homography.Point{X: math.Min(lo.X, p.X), Y: math.Min(lo.Y, p.Y)}
+			hi = homography.Point{X: math.Max(hi.X, p.X), Y: math.Max(hi.Y, p.Y)}
+		}
+	}
+	g, err := homography.NewGrid(lo, hi, cell, c.frame.X, c.frame.Y, func(p homography.Point) (homography.Point, bool) {
+		px, ok := c.pixel(p)
+		return homography.Point{X: px.X, Y: px.Y}, ok
+	})
+	if err != nil {
+		return nil, fmt.Errorf("rectify the pool: %w", err)
+	}
+	water := make([]byte, g.CellsX*g.CellsY)
+	for j := 0; j < g.CellsY; j++ {
+		for i := 0; i < g.CellsX; i++ {
+			if c.inside(g.Centre(i, j)) {
+				water[j*g.CellsX+i] = 1
+			}
+		}
+	}
+	return &vision.Rectification{
+		Cols: g.CellsX, Rows: g.CellsY, Cell: g.Cell, OriginX: g.Origin.X, OriginY: g.Origin.Y,
+		MapX: g.MapX, MapY: g.MapY, Water: water, Src: c.frame,
+	}, nil
+}

@@ -13,10 +13,34 @@ import (
 
 // DetectConfig tunes detection and alarming for one camera.
 type DetectConfig struct {
+	// Method is meanvar (the rectified mean–variance detector) or one of
+	// the earlier mixture models on the camera view, mog2 or knn.
+	Method string `yaml:"method"`
+	// Threshold is, for meanvar, the score a candidate's core must reach
+	// (squared difference from the water under the local light over the
+	// cell's own variance, summed over colour channels); for mog2 the
+	// varThreshold, for knn the dist2Threshold.
+	Threshold float64 `yaml:"threshold"`
+	// Extent is the score that joins a cell to a candidate (meanvar).
+	Extent float64 `yaml:"extent_threshold"`
+	// Cell is the side of a cell of the rectified pool, m (meanvar).
+	Cell float64 `yaml:"cell_m"`
+	// ShortMean is the time constant of the frames' short mean (meanvar).
+	ShortMean Duration `yaml:"short_mean"`
+	// Learn is the time constant with which the background follows the
+	// water (meanvar).
+	Learn Duration `yaml:"learn"`
+	// Noise is the standard deviation floor, grey levels (meanvar).
+	Noise float64 `yaml:"noise"`
+	// LightCell is the side, m, of the squares the light is measured on
+	// (meanvar).
+	LightCell float64 `yaml:"light_cell_m"`
+	// ShadowChroma is the chromaticity distance (×100) from the water under
+	// which a candidate darker than the water is a shadow (meanvar).
+	ShadowChroma float64 `yaml:"shadow_chroma"`
+	// ProcessWidth and History set up mog2 and knn.
 	ProcessWidth int      `yaml:"process_width"`
-	Method       string   `yaml:"method"`
 	History      int      `yaml:"history"`
-	Threshold    float64  `yaml:"threshold"`
 	MinArea      float64  `yaml:"min_area_m2"`
 	MaxArea      float64  `yaml:"max_area_m2"`
 	Persist      Duration `yaml:"persist"`
@@ -35,18 +59,39 @@ const MinChildArea = 0.012
 // defaultDetect returns the detection defaults.
 func defaultDetect() DetectConfig {
 	a := alert.DefaultAlarm()
+	mv := vision.DefaultMeanVar()
 	return DetectConfig{
+		Method:       "meanvar",
+		Threshold:    mv.Threshold,
+		Extent:       mv.Low,
+		Cell:         defaultCell,
+		ShortMean:    Duration(mv.Short),
+		Learn:        Duration(mv.Learn),
+		Noise:        mv.Noise,
+		LightCell:    mv.LightCell,
+		ShadowChroma: defaultShadowChroma,
 		ProcessWidth: 640,
-		Method:       "mog2",
 		History:      500,
-		Threshold:    16,
-		MinArea:      MinChildArea,
+		MinArea:      0.04,
 		MaxArea:      2.5,
 		Persist:      Duration(a.Persist),
 		UpdateEvery:  Duration(a.UpdateEvery),
 		ClearAfter:   Duration(a.ClearAfter),
 	}
 }
+
+// defaultShadowChroma: see judgeRules.ShadowChroma.
+const defaultShadowChroma = 3
+
+// judgeRulesOf returns the rules tracks are judged by.
+func judgeRulesOf(d DetectConfig) judgeRules {
+	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, ShadowChroma: d.ShadowChroma, MinWaterChroma: 5}
+}
+
+// defaultCell is the side of a cell of the rectified pool, m: a
+// one-year-old's head (WHO median head circumference 44.9 cm, a diameter
+// of 0.14 m) spans more than five cells.
+const defaultCell = 0.025
 
 // mergeDetect fills the zero fields of d from def.
 func mergeDetect(def, d DetectConfig) DetectConfig {
@@ -60,7 +105,35 @@ func mergeDetect(def, d DetectConfig) DetectConfig {
 		d.History = def.History
 	}
 	if d.Threshold == 0 {
-		d.Threshold = def.Threshold
+		switch {
+		case d.Method == def.Method:
+			d.Threshold = def.Threshold
+		case d.Method == "knn":
+			d.Threshold = 400 // OpenCV's default dist2Threshold
+		default:
+			d.Threshold = 16 // OpenCV's default varThreshold
+		}
+	}
+	if d.Extent == 0 {
+		d.Extent = def.Extent
+	}
+	if d.Cell == 0 {
+		d.Cell = def.Cell
+	}
+	if d.ShortMean == 0 {
+		d.ShortMean = def.ShortMean
+	}
+	if d.Learn == 0 {
+		d.Learn = def.Learn
+	}
+	if d.Noise == 0 {
+		d.Noise = def.Noise
+	}
+	if d.LightCell == 0 {
+		d.LightCell = def.LightCell
+	}
+	if d.ShadowChroma == 0 {
+		d.ShadowChroma = def.ShadowChroma
 	}
 	if d.MinArea == 0 {
 		d.MinArea = def.MinArea
@@ -83,9 +156,23 @@ func mergeDetect(def, d DetectConfig) DetectConfig {
 // validateDetect checks a camera's detect section; where names the camera.
 func validateDetect(where string, d DetectConfig) error {
 	switch d.Method {
-	case "mog2", "knn":
+	case "meanvar", "mog2", "knn":
 	default:
-		return fmt.Errorf("%s.detect.method: %q; want mog2 or knn", where, d.Method)
+		return fmt.Errorf("%s.detect.method: %q; want meanvar, mog2 or knn", where, d.Method)
+	}
+	if d.Method == "meanvar" {
+		switch {
+		case !(d.Cell >= 0.005 && d.Cell <= 0.2):
+			return fmt.Errorf("%s.detect.cell_m: %g; want 0.005–0.2 m (0.025 is typical)", where, d.Cell)
+		case d.Extent <= 0 || d.Extent > d.Threshold:
+			return fmt.Errorf("%s.detect: extent_threshold %g and threshold %g; want 0 < extent_threshold ≤ threshold", where, d.Extent, d.Threshold)
+		case d.ShortMean <= 0 || d.Learn <= d.ShortMean:
+			return fmt.Errorf("%s.detect: short_mean %v and learn %v; want 0 < short_mean < learn", where, time.Duration(d.ShortMean), time.Duration(d.Learn))
+		case d.Noise <= 0:
+			return fmt.Errorf("%s.detect.noise: %g; want a positive number of grey levels", where, d.Noise)
+		case d.LightCell < 4*d.Cell:
+			return fmt.Errorf("%s.detect.light_cell_m: %g; want at least four cells (%g m)", where, d.LightCell, 4*d.Cell)
+		}
 	}
 	if d.ProcessWidth < 80 {
 		return fmt.Errorf("%s.detect.process_width: %d; want at least 80 px (640 is typical)", where, d.ProcessWidth)
@@ -286,12 +373,24 @@ func insidePolygon(pts [][2]float64, x, y float64) bool {
 // section, the pool outline as the watched mask and the pool-plane
 // footprint of a pixel, so that clean-up is scale-aware. The daemon and
 // replay both use it so that they see the same blobs.
-func detectorConfig(cam CameraConfig, cal *calibration) vision.DetectorConfig {
-	return vision.DetectorConfig{
-		ProcessWidth: cam.Detect.ProcessWidth, Method: cam.Detect.Method, History: cam.Detect.History,
-		Threshold: cam.Detect.Threshold, LearningRate: -1, MinPixels: 6, Mask: cal.mask(),
-		MinArea: cam.Detect.MinArea, PixelArea: cal.pixelArea,
+func detectorConfig(cam CameraConfig, cal *calibration) (vision.DetectorConfig, error) {
+	d := cam.Detect
+	if d.Method != "meanvar" {
+		return vision.DetectorConfig{
+			ProcessWidth: d.ProcessWidth, Method: d.Method, History: d.History,
+			Threshold: d.Threshold, LearningRate: -1, MinPixels: 6, Mask: cal.mask(),
+			MinArea: d.MinArea, PixelArea: cal.pixelArea,
+		}, nil
 	}
+	grid, err := cal.rectification(d.Cell)
+	if err != nil {
+		return vision.DetectorConfig{}, fmt.Errorf("camera %s: %w", cam.ID, err)
+	}
+	mv := vision.DefaultMeanVar()
+	mv.FPS = 0 // the camera's own
+	mv.Threshold, mv.Low, mv.Noise, mv.LightCell = d.Threshold, d.Extent, d.Noise, d.LightCell
+	mv.Short, mv.Learn = time.Duration(d.ShortMean), time.Duration(d.Learn)
+	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv}, nil
 }
 
 // detectOverrides are the detect settings a replay or sweep may set from

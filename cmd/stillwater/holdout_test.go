@@ -166,7 +166,7 @@ func printHoldout(w io.Writer, rs []holdoutRun) scoreTotal {
 //	go test -run '^$' -bench HoldoutDev -benchtime 1x ./cmd/stillwater/
 func BenchmarkHoldoutDev(b *testing.B) {
 	dir := holdoutDir(b)
-	for _, method := range []string{"mog2"} {
+	for _, method := range []string{"meanvar", "mog2"} {
 		b.Run(method, func(b *testing.B) {
 			for i := 0; i < b.N; i++ {
 				rs, err := runHoldout(context.Background(), dir, func(d *DetectConfig) { d.Method = method }, slog.New(slog.NewTextHandler(io.Discard, nil)))

@@ -40,6 +40,7 @@ type processor struct {
 	// frame and returns its reference for the target message.
 	evidence func(r vision.Result, o alert.Observation) string
 	tracker  *vision.Tracker
+	judge    *judge // which tracks of the rectified detector may alarm
 	alarm    *alert.Alarm
 	log      *slog.Logger
 	seq      uint64
@@ -64,6 +65,7 @@ func newProcessor(cam CameraConfig, fps float64, epoch time.Time, now func() tim
 		zones:   zones,
 		tracker: vision.NewTracker(vision.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
 		alarm:   alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio, MaxSpeed: alert.DefaultAlarm().MaxSpeed}, fps),
+		judge:   newJudge(time.Duration(d.Persist), judgeRulesOf(d), log),
 		log:     log,
 		epoch:   epoch,
 		now:     now,
@@ -77,6 +79,12 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 	d := p.cam.Detect
 	var dets []vision.Detection
 	for _, b := range r.Blobs {
+		if b.Plane != nil {
+			if det, ok := p.gate(r, b); ok {
+				dets = append(dets, det)
+			}
+			continue
+		}
 		c, ok := p.cal.surface(b.Centroid)
 		if !ok {
 			p.log.Debug("blob rejected: beyond the pool plane", "frame", r.Index, "px", b.Centroid)
@@ -104,15 +112,19 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 			p.metrics.rejected("large")
 			continue
 		}
-		dets = append(dets, vision.Detection{X: c.X, Y: c.Y, Area: area, Box: b.Box})
+		dets = append(dets, vision.Detection{X: c.X, Y: c.Y, Area: area, Box: b.Box, Hold: b.Box.Inset(-4)})
 	}
 	tracks := p.tracker.Update(r.Media, dets)
 	p.tracks = tracks
-	obs := make([]alert.Observation, len(tracks))
+	p.judge.observe(r.Media, tracks)
+	obs := make([]alert.Observation, 0, len(tracks))
 	var hold []image.Rectangle
-	for i, t := range tracks {
-		obs[i] = alert.Observation{Track: t.ID, X: t.X, Y: t.Y, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits}
-		hold = append(hold, t.Box.Inset(-4))
+	for _, t := range tracks {
+		if ok, _ := p.judge.eligible(t.ID); !ok && d.Method == "meanvar" {
+			continue
+		}
+		obs = append(obs, alert.Observation{Track: t.ID, X: t.X, Y: t.Y, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits})
+		hold = append(hold, t.Hold)
 	}
 	p.metrics.tracks(len(tracks))
 	var out []outMsg
@@ -135,9 +147,12 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 	var v any
 	switch dec.Kind {
 	case alert.KindTarget:
-		p.log.Debug("track raised a target", "track", o.Track, "event", dec.Event, "dwell", dec.Dwell)
 		var ref string
 		if dec.Event == "start" {
+			p.judge.raised(o.Track)
+			f, n := p.judge.summary(o.Track)
+			p.log.Debug("track raised an alarm", append([]any{"track", o.Track, "dwell", dec.Dwell, "x_m", round3(o.X), "y_m", round3(o.Y),
+				"hits", o.Hits, "speed_mps", round3(math.Hypot(o.VX, o.VY)), "candidates", n}, featureArgs(f)...)...)
 			p.metrics.alarm()
 			if p.evidence != nil {
 				ref = p.evidence(r, o)
@@ -193,3 +208,42 @@ func floorOf(f alert.FloorPosition) alert.FloorPosition {
 
 func round3(v float64) float64 { return math.Round(v*1000) / 1000 }
 func round4(v float64) float64 { return math.Round(v*10000) / 10000 }
+
+// gate judges a candidate of the rectified detector, already in pool
+// metres on the water surface, and returns it as a detection for the
+// tracker; false, with the reason logged and counted, when it cannot be a
+// person in the water.
+func (p *processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool) {
+	d := p.cam.Detect
+	f := b.Features
+	c := homography.Point{X: b.Plane.X, Y: b.Plane.Y}
+	reject := func(reason, why string, args ...any) (vision.Detection, bool) {
+		p.log.Debug("candidate rejected: "+why, append([]any{"frame", r.Index, "x_m", round3(c.X), "y_m", round3(c.Y)}, append(args, featureArgs(f)...)...)...)
+		p.metrics.rejected(reason)
+		return vision.Detection{}, false
+	}
+	if name, in := p.zones.excluded(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}, c); in {
+		return reject("zone", "in exclusion zone", "zone", name)
+	}
+	switch {
+	case !p.cal.inside(c):
+		return reject("outside", "centre outside the pool")
+	case f.Area < d.MinArea*candidateShare:
+		return reject("small", "far smaller than a child's body", "min_m2", d.MinArea*candidateShare)
+	case f.Area > d.MaxArea:
+		return reject("large", "too large", "max_m2", d.MaxArea)
+	}
+	return vision.Detection{X: c.X, Y: c.Y, Area: f.Area, Box: b.Box, Hold: b.Plane.Cells, Features: f}, true
+}
+
+// candidateShare is the share of min_area_m2 a candidate of the rectified
+// detector needs to be tracked at all; the track must then show the whole
+// min_area_m2 over the judge's window before it may alarm (a body entering
+// the water shows a part of itself first).
+const candidateShare = 0.35
+
+// featureArgs are a candidate's features as log attributes.
+func featureArgs(f vision.Features) []any {
+	return []any{"area_m2", round4(f.Area), "core_m2", round4(f.Core), "score", round3(f.Score), "peak", round3(f.Peak),
+		"contrast", round3(f.Contrast), "chroma", round3(f.Chroma), "water_chroma", round3(f.Water), "length_m", round3(f.Length), "width_m", round3(f.Width), "edge_m", round3(f.Edge)}
+}

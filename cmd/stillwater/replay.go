@@ -181,7 +181,11 @@ func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Write
 	if err != nil {
 		return st, err
 	}
-	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source}, detectorConfig(cam, cal))
+	dc, err := detectorConfig(cam, cal)
+	if err != nil {
+		return st, err
+	}
+	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source}, dc)
 	if err != nil {
 		return st, err
 	}

@@ -95,7 +95,11 @@ func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules)
 		track       int
 		from, until float64
 	}
-	runs := make([]run, len(t.Presence))
+	// One run per track: another track reporting meanwhile does not end it.
+	runs := make([]map[int]*run, len(t.Presence))
+	for i := range runs {
+		runs[i] = map[int]*run{}
+	}
 	ids := make([]map[int]bool, len(t.Presence))
 	for i := range ids {
 		ids[i] = map[int]bool{}
@@ -128,14 +132,15 @@ func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules)
 			}
 			if math.IsNaN(first[pi]) {
 				first[pi] = l.Media
-				runs[pi] = run{tg.Track, l.Media, l.Media}
 			}
-			if r := &runs[pi]; r.track != tg.Track || l.Media-r.until > rules.MaxGap.Seconds() {
-				*r = run{tg.Track, l.Media, l.Media}
+			r := runs[pi][tg.Track]
+			if r == nil || l.Media-r.until > rules.MaxGap.Seconds() {
+				r = &run{tg.Track, l.Media, l.Media}
+				runs[pi][tg.Track] = r
 			} else {
 				r.until = l.Media
 			}
-			cs.Tracked = math.Max(cs.Tracked, runs[pi].until-runs[pi].from)
+			cs.Tracked = math.Max(cs.Tracked, r.until-r.from)
 			ids[pi][tg.Track] = true
 			if occ != nil {
 				cs.Errors = append(cs.Errors, math.Hypot(tg.Surface.X-occ.X, tg.Surface.Y-occ.Y))

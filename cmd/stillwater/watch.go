@@ -238,7 +238,11 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 	if err != nil {
 		return nil, err
 	}
-	vc, err := vision.OpenCamera(w.sourceConfig(), detectorConfig(w.cam, cal))
+	dc, err := detectorConfig(w.cam, cal)
+	if err != nil {
+		return nil, err
+	}
+	vc, err := vision.OpenCamera(w.sourceConfig(), dc)
 	if err != nil {
 		return nil, err
 	}

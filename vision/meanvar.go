@@ -1,0 +1,851 @@
+package vision
+
+// #include <stdlib.h>
+// #include "shim.h"
+import "C"
+
+import (
+	"errors"
+	"fmt"
+	"image"
+	"math"
+	"time"
+	"unsafe"
+
+	"gocv.io/x/gocv"
+)
+
+// Rectification is the top-down raster of the pool plane the mean–variance
+// detector works on, as plain values from the caller's calibration: a grid
+// of square cells Cell plane units wide (stillwater: metres), Cols across
+// and Rows down, cell (0, 0)'s top-left corner at (OriginX, OriginY) on the
+// plane. MapX and MapY give, row by row, the source pixel (as recorded,
+// lens distortion included) that sees each cell's centre, -1 where no
+// pixel does; Water marks the cells to watch (non-zero), the water's
+// surface; Src is the source frame size the maps were made for (zero:
+// whatever size the source delivers; cells mapped outside it are not
+// watched).
+type Rectification struct {
+	Cols, Rows       int
+	Cell             float64
+	OriginX, OriginY float64
+	MapX, MapY       []float32
+	Water            []byte
+	Src              image.Point
+}
+
+// validate checks the sizes agree.
+func (r *Rectification) validate() error {
+	n := r.Cols * r.Rows
+	switch {
+	case r.Cols <= 0 || r.Rows <= 0:
+		return fmt.Errorf("rectification: %d×%d cells", r.Cols, r.Rows)
+	case len(r.MapX) != n || len(r.MapY) != n || len(r.Water) != n:
+		return fmt.Errorf("rectification: maps of %d, %d and water of %d cells for a %d×%d grid", len(r.MapX), len(r.MapY), len(r.Water), r.Cols, r.Rows)
+	case !(r.Cell > 0):
+		return fmt.Errorf("rectification: cell size %v", r.Cell)
+	case r.Src.X < 0 || r.Src.Y < 0:
+		return fmt.Errorf("rectification: source frame size %v", r.Src)
+	}
+	return nil
+}
+
+// plane returns the plane position of a point in cell units (the centre of
+// cell (i, j) is (i+0.5, j+0.5)).
+func (r *Rectification) plane(x, y float64) (float64, float64) {
+	return r.OriginX + x*r.Cell, r.OriginY + y*r.Cell
+}
+
+// source returns the source pixel of a point in cell units, interpolating
+// the maps between cell centres; false where the cell is not seen.
+func (r *Rectification) source(x, y float64) (Point, bool) {
+	i := min(max(int(math.Floor(x)), 0), r.Cols-1)
+	j := min(max(int(math.Floor(y)), 0), r.Rows-1)
+	k := j*r.Cols + i
+	if r.MapX[k] < 0 {
+		return Point{}, false
+	}
+	// The map is smooth; the neighbour's step gives the local gradient.
+	dx, dy := x-float64(i)-0.5, y-float64(j)-0.5
+	px, py := float64(r.MapX[k]), float64(r.MapY[k])
+	if i+1 < r.Cols && r.MapX[k+1] >= 0 {
+		px += dx * float64(r.MapX[k+1]-r.MapX[k])
+		py += dx * float64(r.MapY[k+1]-r.MapY[k])
+	}
+	if j+1 < r.Rows && r.MapX[k+r.Cols] >= 0 {
+		px += dy * float64(r.MapX[k+r.Cols]-r.MapX[k])
+		py += dy * float64(r.MapY[k+r.Cols]-r.MapY[k])
+	}
+	return Point{px, py}, true
+}
+
+// scaled returns the rectification for frames of another size (a camera
+// that came back with a different stream): the maps scale with the frame.
+func (r *Rectification) scaled(to image.Point) *Rectification {
+	if to == r.Src {
+		return r
+	}
+	sx, sy := float32(to.X)/float32(r.Src.X), float32(to.Y)/float32(r.Src.Y)
+	out := *r
+	out.MapX, out.MapY = make([]float32, len(r.MapX)), make([]float32, len(r.MapY))
+	for i := range r.MapX {
+		if r.MapX[i] < 0 {
+			out.MapX[i], out.MapY[i] = -1, -1
+			continue
+		}
+		out.MapX[i], out.MapY[i] = r.MapX[i]*sx, r.MapY[i]*sy
+	}
+	out.Src = to
+	return &out
+}
+
+// MeanVarConfig tunes the mean–variance detector. Zero fields take the
+// defaults in DefaultMeanVar.
+type MeanVarConfig struct {
+	// FPS is the frame rate the time constants are turned into rates with.
+	FPS float64
+	// Short is the time constant of the short temporal mean that is
+	// compared with the background: caustics, glitter and ripples change
+	// many times within it and average out, a person does not.
+	Short time.Duration
+	// Learn is the time constant with which the background's mean and
+	// variance follow the water where nothing is found.
+	Learn time.Duration
+	// Absorb is the time constant with which a change nobody tracks (a
+	// toy left floating) is learned into the background. Tracked cells
+	// (the hold boxes) are never learned.
+	Absorb time.Duration
+	// WarmUp is how long a model started without a reference learns every
+	// cell before it reports anything.
+	WarmUp time.Duration
+	// Settle is how long a model started from a reference only fills its
+	// short mean before it reports.
+	Settle time.Duration
+	// Threshold is the score (the squared difference from the background
+	// under the local light, divided by the cell's own variance plus the
+	// noise floor, summed over the three colour channels) a candidate's
+	// core must reach.
+	Threshold float64
+	// Low is the score that joins a cell to a candidate whose core passed
+	// Threshold: the faint parts of a body below the surface.
+	Low float64
+	// Noise is the floor added to each cell's standard deviation, grey
+	// levels: sensor noise and compression of still floor.
+	Noise float64
+	// LightCell is the side, plane units, of the squares over which the
+	// local illumination ratio is measured: large against a child, small
+	// against a cloud shadow.
+	LightCell float64
+	// Join is the gap, plane units, closed between parts of one body.
+	Join float64
+	// Smooth is the standard deviation, plane units, of the spatial blur
+	// of each rectified frame: caustic and glitter patterns are finer than
+	// a body and average out over it.
+	Smooth float64
+}
+
+// DefaultMeanVar returns the tuned defaults (see the commit that fits them
+// for the tuning data).
+func DefaultMeanVar() MeanVarConfig {
+	return MeanVarConfig{
+		FPS:       10,
+		Short:     time.Second,
+		Learn:     30 * time.Second,
+		Absorb:    5 * time.Minute,
+		WarmUp:    4 * time.Second,
+		Settle:    1500 * time.Millisecond,
+		Threshold: 60,
+		Low:       20,
+		Noise:     2,
+		LightCell: 1.0,
+		Join:      0.1,
+		Smooth:    0.05,
+	}
+}
+
+func (c MeanVarConfig) withDefaults() MeanVarConfig {
+	d := DefaultMeanVar()
+	if c.FPS <= 0 || c.FPS > 240 {
+		c.FPS = d.FPS
+	}
+	if c.Short <= 0 {
+		c.Short = d.Short
+	}
+	if c.Learn <= 0 {
+		c.Learn = d.Learn
+	}
+	if c.Absorb <= 0 {
+		c.Absorb = d.Absorb
+	}
+	if c.WarmUp <= 0 {
+		c.WarmUp = d.WarmUp
+	}
+	if c.Settle <= 0 {
+		c.Settle = d.Settle
+	}
+	if c.Threshold <= 0 {
+		c.Threshold = d.Threshold
+	}
+	if c.Low <= 0 || c.Low > c.Threshold {
+		c.Low = math.Min(d.Low, c.Threshold)
+	}
+	if c.Noise <= 0 {
+		c.Noise = d.Noise
+	}
+	if c.LightCell <= 0 {
+		c.LightCell = d.LightCell
+	}
+	if c.Join < 0 {
+		c.Join = 0
+	}
+	if c.Smooth < 0 {
+		c.Smooth = 0
+	}
+	return c
+}
+
+// frames turns a duration into a frame count at the configured rate.
+func (c MeanVarConfig) frames(d time.Duration) int {
+	return max(1, int(math.Round(d.Seconds()*c.FPS)))
+}
+
+// rate is the per-frame learning rate of an exponential mean with time
+// constant d.
+func (c MeanVarConfig) rate(d time.Duration) float64 {
+	return 1 / math.Max(1, d.Seconds()*c.FPS)
+}
+
+// Reference is a saved background of the rectified pool: per cell and
+// colour channel (B, G, R), the mean of the short temporal mean and its
+// variance, grey levels. It lets a detector start watching at once,
+// knowing what the empty pool looks like.
+type Reference struct {
+	Cols, Rows int
+	Mean, Var  []float32 // 3 values a cell, row by row
+	// Frames is how many frames the model had learned from.
+	Frames int
+}
+
+// Features describe one candidate: what it is judged on and what an
+// explanation of a decision shows. Areas and lengths are plane units
+// (stillwater: m², m).
+type Features struct {
+	// Area is the whole candidate: every cell scoring at least Low,
+	// joined. A body's parts below the surface count.
+	Area float64
+	// Core is the part scoring at least Threshold.
+	Core float64
+	// Score is the mean score over Area; Peak the highest.
+	Score, Peak float64
+	// Contrast is the mean brightness against the water expected there,
+	// relative: −0.3 is 30 % darker, +0.3 brighter.
+	Contrast float64
+	// Chroma is the mean distance of the candidate's core colour from the
+	// water's in chromaticity (each channel's share of the sum), ×100: a
+	// shadow only darkens the water and keeps its chromaticity, a person
+	// has colours of their own.
+	Chroma float64
+	// Water is the distance of the water's own chromaticity there from
+	// grey, ×100: near 0 in a monochrome (night infrared) picture, where
+	// chromaticity tells nothing.
+	Water float64
+	// Length and Width are the candidate's extent along its major and
+	// minor axes (from its second moments, as for an ellipse).
+	Length, Width float64
+	// Edge is the distance from the candidate's centre to the nearest
+	// cell that is not water.
+	Edge float64
+}
+
+// PlaneBlob is where a candidate of the rectified detector is on the
+// plane, in the caller's plane units, and which cells it covers.
+type PlaneBlob struct {
+	X, Y  float64         // centre
+	Cells image.Rectangle // bounding box in grid cells; give it back as a hold box
+}
+
+// meanVar is the mean–variance detector on the rectified pool. Not safe
+// for concurrent use; Close frees it.
+type meanVar struct {
+	cfg  MeanVarConfig
+	rect *Rectification
+	src  image.Point
+	size image.Point // grid cells
+
+	mapX, mapY gocv.Mat // CV_32FC1 maps
+	water      gocv.Mat // CV_8UC1, 255 on watched cells
+	waterArea  int
+	edge       []float32 // distance to the nearest unwatched cell, cells
+	frame      gocv.Mat  // CV_8UC3 remapped frame
+	short      gocv.Mat  // CV_32FC3 short temporal mean
+	mean, vari gocv.Mat  // CV_32FC3 background
+	gain       gocv.Mat  // CV_32FC3 local illumination ratio
+	score      gocv.Mat  // CV_32FC1
+	contrast   gocv.Mat  // CV_32FC1
+	weight     gocv.Mat  // CV_8UC1 cells the illumination is measured on
+	hold       gocv.Mat  // CV_8UC1 cells not learned
+	lo, hi     gocv.Mat  // CV_8UC1 thresholded scores
+	fg         gocv.Mat  // CV_8UC1 last frame's candidates, dilated
+	labels     gocv.Mat
+	stats      gocv.Mat
+	cents      gocv.Mat
+	kJoin      gocv.Mat
+	kGrow      gocv.Mat
+	kFill      gocv.Mat // probe: keeps only flat areas of decoder grey
+	gray, prev gocv.Mat // probe: grey rectified frames
+	probeF     gocv.Mat // probe: the frame as float
+	scratch    gocv.Mat
+
+	ref      *Reference
+	frames   int // frames the model has learned from
+	shortN   int // frames in the short mean
+	relearn  int
+	reported bool // the model has reported (warm-up over)
+	closed   bool
+	debugIdx int
+}
+
+// errNoRectification is returned for a mean–variance detector set up
+// without a grid.
+var errNoRectification = errors.New("the mean-variance detector needs a rectification grid")
+
+func newMeanVar(cfg DetectorConfig, src image.Point) (*meanVar, error) {
+	if cfg.Grid == nil {
+		return nil, errNoRectification
+	}
+	r := cfg.Grid
+	if err := r.validate(); err != nil {
+		return nil, err
+	}
+	if r.Src != (image.Point{}) && src != r.Src {
+		r = r.scaled(src)
+	}
+	mc := cfg.MeanVar.withDefaults()
+	d := &meanVar{cfg: mc, rect: r, src: src, size: image.Pt(r.Cols, r.Rows), ref: cfg.Reference}
+	if d.ref != nil && (d.ref.Cols != r.Cols || d.ref.Rows != r.Rows || len(d.ref.Mean) != 3*r.Cols*r.Rows || len(d.ref.Var) != 3*r.Cols*r.Rows) {
+		return nil, fmt.Errorf("reference of %d×%d cells for a grid of %d×%d", d.ref.Cols, d.ref.Rows, r.Cols, r.Rows)
+	}
+	w, h := r.Cols, r.Rows
+	d.mapX = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32F)
+	d.mapY = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32F)
+	d.water = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
+	for _, m := range []*gocv.Mat{&d.frame, &d.score, &d.contrast, &d.lo, &d.hi, &d.labels, &d.stats, &d.cents, &d.gray, &d.prev, &d.probeF, &d.scratch} {
+		*m = gocv.NewMat()
+	}
+	d.short = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
+	d.mean = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
+	d.vari = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
+	d.gain = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
+	d.weight = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
+	d.hold = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
+	d.fg = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
+	join := max(1, 2*int(math.Round(mc.Join/r.Cell/2))+1)
+	d.kJoin = gocv.GetStructuringElement(gocv.MorphEllipse, image.Pt(join, join))
+	grow := max(3, 2*int(math.Round(0.15/r.Cell))+1)
+	d.kGrow = gocv.GetStructuringElement(gocv.MorphEllipse, image.Pt(grow, grow))
+	d.kFill = gocv.GetStructuringElement(gocv.MorphRect, image.Pt(fillBlock, fillBlock))
+
+	mx, _ := d.mapX.DataPtrFloat32()
+	my, _ := d.mapY.DataPtrFloat32()
+	copy(mx, r.MapX)
+	copy(my, r.MapY)
+	wb, _ := d.water.DataPtrUint8()
+	for i, v := range r.Water {
+		if v != 0 && r.MapX[i] >= 0 && r.MapX[i] <= float32(src.X-1) && r.MapY[i] <= float32(src.Y-1) {
+			wb[i] = 255
+			d.waterArea++
+		} else {
+			wb[i] = 0
+		}
+	}
+	d.edge = edgeDistance(wb, w, h)
+	if err := d.restart(); err != nil {
+		d.Close()
+		return nil, err
+	}
+	return d, nil
+}
+
+// edgeDistance returns, per cell, the distance in cells to the nearest
+// unwatched cell (a two-pass chamfer transform, 3-4 weights).
+func edgeDistance(water []byte, w, h int) []float32 {
+	const inf = float32(1e9)
+	d := make([]float32, w*h)
+	for i, v := range water {
+		if v != 0 {
+			d[i] = inf
+		}
+	}
+	at := func(x, y int) float32 {
+		if x < 0 || y < 0 || x >= w || y >= h {
+			return 0
+		}
+		return d[y*w+x]
+	}
+	for y := 0; y < h; y++ {
+		for x := 0; x < w; x++ {
+			k := y*w + x
+			if d[k] == 0 {
+				continue
+			}
+			d[k] = min(d[k], at(x-1, y)+1, at(x, y-1)+1, at(x-1, y-1)+1.4142, at(x+1, y-1)+1.4142)
+		}
+	}
+	for y := h - 1; y >= 0; y-- {
+		for x := w - 1; x >= 0; x-- {
+			k := y*w + x
+			if d[k] == 0 {
+				continue
+			}
+			d[k] = min(d[k], at(x+1, y)+1, at(x, y+1)+1, at(x+1, y+1)+1.4142, at(x-1, y+1)+1.4142)
+		}
+	}
+	return d
+}
+
+// restart drops what the model learned: it starts from the reference
+// when there is one, else it warms up again.
+func (d *meanVar) restart() error {
+	d.frames, d.shortN, d.relearn, d.reported = 0, 0, 0, false
+	d.gain.SetTo(gocv.NewScalar(1, 1, 1, 0))
+	d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
+	if d.ref == nil {
+		d.mean.SetTo(gocv.NewScalar(0, 0, 0, 0))
+		d.vari.SetTo(gocv.NewScalar(0, 0, 0, 0))
+		return nil
+	}
+	m, err := d.mean.DataPtrFloat32()
+	if err != nil {
+		return err
+	}
+	v, err := d.vari.DataPtrFloat32()
+	if err != nil {
+		return err
+	}
+	copy(m, d.ref.Mean)
+	copy(v, d.ref.Var)
+	d.frames = d.cfg.frames(d.cfg.WarmUp)
+	return nil
+}
+
+// Reference returns the current background, for saving as the empty-pool
+// reference; false while the model has not learned enough.
+func (d *meanVar) Reference() (Reference, bool) {
+	if d.frames < d.cfg.frames(d.cfg.WarmUp) {
+		return Reference{}, false
+	}
+	m, err1 := d.mean.DataPtrFloat32()
+	v, err2 := d.vari.DataPtrFloat32()
+	if err1 != nil || err2 != nil {
+		return Reference{}, false
+	}
+	return Reference{Cols: d.size.X, Rows: d.size.Y, Mean: append([]float32(nil), m...), Var: append([]float32(nil), v...), Frames: d.frames}, true
+}
+
+func (d *meanVar) Size() image.Point   { return d.size }
+func (d *meanVar) srcSize() image.Point { return d.src }
+
+// rectify remaps the source frame onto the grid.
+func (d *meanVar) rectify(frame gocv.Mat) error {
+	if frame.Empty() {
+		return ErrEmptyFrame
+	}
+	if frame.Cols() != d.src.X || frame.Rows() != d.src.Y {
+		return fmt.Errorf("detect: frame is %dx%d, detector was set up for %dx%d", frame.Cols(), frame.Rows(), d.src.X, d.src.Y)
+	}
+	if frame.Channels() != 3 {
+		gocv.CvtColor(frame, &d.scratch, gocv.ColorGrayToBGR)
+		gocv.Remap(d.scratch, &d.frame, &d.mapX, &d.mapY, gocv.InterpolationLinear, gocv.BorderReplicate, black)
+		d.smooth()
+		return nil
+	}
+	gocv.Remap(frame, &d.frame, &d.mapX, &d.mapY, gocv.InterpolationLinear, gocv.BorderReplicate, black)
+	d.smooth()
+	return nil
+}
+
+// smooth blurs the rectified frame by cfg.Smooth.
+func (d *meanVar) smooth() {
+	sigma := d.cfg.Smooth / d.rect.Cell
+	if sigma < 0.3 {
+		return
+	}
+	k := 2*int(math.Ceil(2*sigma)) + 1
+	gocv.GaussianBlur(d.frame, &d.frame, image.Pt(k, k), sigma, sigma, gocv.BorderReplicate)
+}
+
+func cErr(rc C.int, buf *[errBufLen]C.char, what string) error {
+	if rc == 0 {
+		return nil
+	}
+	return fmt.Errorf("%s: %s", what, C.GoString(&buf[0]))
+}
+
+func (d *meanVar) accumulate(a float64) error {
+	var buf [errBufLen]C.char
+	return cErr(C.sw_pool_accumulate(unsafe.Pointer(d.frame.Ptr()), unsafe.Pointer(d.short.Ptr()), C.double(a), &buf[0], errBufLen), &buf, "short mean")
+}
+
+func (d *meanVar) measureGain(img gocv.Mat) error {
+	var buf [errBufLen]C.char
+	cell := max(1, int(math.Round(d.cfg.LightCell/d.rect.Cell)))
+	return cErr(C.sw_pool_gain(unsafe.Pointer(img.Ptr()), unsafe.Pointer(d.mean.Ptr()), unsafe.Pointer(d.weight.Ptr()),
+		C.int(cell), C.double(0.25), unsafe.Pointer(d.gain.Ptr()), &buf[0], errBufLen), &buf, "illumination")
+}
+
+func (d *meanVar) update(img gocv.Mat, noise, aMean, aSlow float64, learn bool) error {
+	var buf [errBufLen]C.char
+	p := C.SwPoolParams{noise2: C.double(noise * noise), aMean: C.double(aMean), aSlow: C.double(aSlow), learnBelow: C.double(d.cfg.Low),
+		varClip: C.float(varClip), varGain: C.float(varGain)}
+	if learn {
+		p.learn = 1
+	}
+	return cErr(C.sw_pool_update(unsafe.Pointer(img.Ptr()), unsafe.Pointer(d.mean.Ptr()), unsafe.Pointer(d.vari.Ptr()),
+		unsafe.Pointer(d.gain.Ptr()), unsafe.Pointer(d.water.Ptr()), unsafe.Pointer(d.hold.Ptr()), p,
+		unsafe.Pointer(d.score.Ptr()), unsafe.Pointer(d.contrast.Ptr()), &buf[0], errBufLen), &buf, "score")
+}
+
+// paintHold marks the hold boxes (grid cells) as not to be learned.
+func (d *meanVar) paintHold(hold []image.Rectangle) {
+	d.hold.SetTo(gocv.NewScalar(0, 0, 0, 0))
+	bounds := image.Rect(0, 0, d.size.X, d.size.Y)
+	for _, r := range hold {
+		r = r.Inset(-2).Intersect(bounds)
+		if !r.Empty() {
+			gocv.Rectangle(&d.hold, r, white, -1)
+		}
+	}
+}
+
+// Detect rectifies the frame, updates the model and returns the
+// candidates. hold are boxes in grid cells (PlaneBlob.Cells of tracked
+// candidates) whose cells are not learned, so that a still child is never
+// absorbed.
+func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameStats, error) {
+	var st FrameStats
+	if err := d.rectify(frame); err != nil {
+		return nil, st, err
+	}
+	st.MeanLevel = meanOf(d.frame, d.water)
+	d.shortN++
+	aShort := math.Max(d.cfg.rate(d.cfg.Short), 1/float64(d.shortN))
+	if err := d.accumulate(aShort); err != nil {
+		return nil, st, err
+	}
+	warm := d.cfg.frames(d.cfg.WarmUp)
+	aMean, aSlow := d.cfg.rate(d.cfg.Learn), d.cfg.rate(d.cfg.Absorb)
+	learn := true
+	switch {
+	case d.frames < warm:
+		// Warming up: every cell learns, as a running average.
+		st.WarmingUp = true
+		a := 1 / float64(d.frames+1)
+		aMean, aSlow = math.Max(aMean, a), math.Max(aSlow, a)
+		d.hold.SetTo(gocv.NewScalar(0, 0, 0, 0))
+	case d.relearn > 0:
+		st.Relearning = true
+		aMean, aSlow = 0.2, 0.2
+		d.relearn--
+		d.paintHold(hold)
+	default:
+		d.paintHold(hold)
+	}
+	if d.shortN < d.cfg.frames(d.cfg.Settle) && d.ref != nil && d.frames >= warm {
+		// Started from a reference: fill the short mean first, learn nothing.
+		st.WarmingUp = true
+		learn = false
+	}
+	// The light is measured on the water minus last frame's candidates.
+	gocv.BitwiseNot(d.fg, &d.weight)
+	gocv.BitwiseAnd(d.weight, d.water, &d.weight)
+	if d.frames > 0 {
+		if err := d.measureGain(d.short); err != nil {
+			return nil, st, err
+		}
+	}
+	if err := d.update(d.short, d.cfg.Noise, aMean, aSlow, learn); err != nil {
+		return nil, st, err
+	}
+	if learn {
+		d.frames++
+	}
+	d.debugIdx++
+	d.debugDump(d.debugIdx - 1)
+	if st.WarmingUp {
+		d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
+		return nil, st, nil
+	}
+	gocv.Threshold(d.score, &d.lo, float32(d.cfg.Low), 255, gocv.ThresholdBinary)
+	d.lo.ConvertTo(&d.lo, gocv.MatTypeCV8U)
+	if d.waterArea > 0 {
+		st.ForegroundFraction = float64(gocv.CountNonZero(d.lo)) / float64(d.waterArea)
+	}
+	if st.ForegroundFraction > 0.35 {
+		// Most of the water changed at once (the light, the camera's
+		// exposure): relearn quickly rather than report it.
+		st.SceneChange = true
+		d.relearn = max(d.relearn, d.cfg.frames(time.Second))
+		d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
+		return nil, st, nil
+	}
+	if st.Relearning {
+		d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
+		return nil, st, nil
+	}
+	if d.kJoin.Rows() > 1 {
+		gocv.MorphologyEx(d.lo, &d.lo, gocv.MorphClose, d.kJoin)
+		gocv.BitwiseAnd(d.lo, d.water, &d.lo)
+	}
+	blobs, err := d.candidates()
+	if err != nil {
+		return nil, st, err
+	}
+	gocv.Dilate(d.lo, &d.fg, d.kGrow)
+	return blobs, st, nil
+}
+
+// meanOf is the mean grey level of img inside mask.
+func meanOf(img, mask gocv.Mat) float64 {
+	m := img.MeanWithMask(mask)
+	if img.Channels() == 3 {
+		return (m.Val1 + m.Val2 + m.Val3) / 3
+	}
+	return m.Val1
+}
+
+// candidates labels the thresholded score and measures every component
+// that has a core.
+func (d *meanVar) candidates() ([]Blob, error) {
+	n := gocv.ConnectedComponentsWithStats(d.lo, &d.labels, &d.stats, &d.cents)
+	if n <= 1 {
+		return nil, nil
+	}
+	lb, err := d.labels.DataPtrUint8()
+	if err != nil {
+		return nil, err
+	}
+	if d.labels.Type() != gocv.MatTypeCV32S || len(lb) < 4 {
+		return nil, fmt.Errorf("labels: type %v", d.labels.Type())
+	}
+	lab := unsafe.Slice((*int32)(unsafe.Pointer(&lb[0])), len(lb)/4)
+	sc, err := d.score.DataPtrFloat32()
+	if err != nil {
+		return nil, err
+	}
+	con, err := d.contrast.DataPtrFloat32()
+	if err != nil {
+		return nil, err
+	}
+	sh, err := d.short.DataPtrFloat32()
+	if err != nil {
+		return nil, err
+	}
+	mn, err := d.mean.DataPtrFloat32()
+	if err != nil {
+		return nil, err
+	}
+	gn, err := d.gain.DataPtrFloat32()
+	if err != nil {
+		return nil, err
+	}
+	cell := d.rect.Cell
+	cellArea := cell * cell
+	thr := float32(d.cfg.Threshold)
+	w := d.size.X
+	var out []Blob
+	for k := 1; k < n; k++ {
+		area := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_AREA)))
+		if area < 2 {
+			continue
+		}
+		bx := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_LEFT)))
+		by := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_TOP)))
+		bw := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_WIDTH)))
+		bh := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_HEIGHT)))
+		var cnt, core, chromaN int
+		var sx, sy, sxx, syy, sxy, ssum, conSum, chroma, waterChroma float64
+		var peak float32
+		for y := by; y < by+bh; y++ {
+			for x := bx; x < bx+bw; x++ {
+				i := y*w + x
+				if lab[i] != int32(k) {
+					continue
+				}
+				s := sc[i]
+				cnt++
+				if s >= thr {
+					core++
+				}
+				peak = max(peak, s)
+				ssum += float64(s)
+				conSum += float64(con[i])
+				fx, fy := float64(x)+0.5, float64(y)+0.5
+				sx += fx
+				sy += fy
+				sxx += fx * fx
+				syy += fy * fy
+				sxy += fx * fy
+				// Chromaticity of the short mean against the expected water,
+				// over the core, where the candidate is most itself.
+				if s < thr {
+					continue
+				}
+				var a, b [3]float64
+				var sa, sb float64
+				for c := 0; c < 3; c++ {
+					a[c] = float64(sh[3*i+c])
+					b[c] = float64(gn[3*i+c] * mn[3*i+c])
+					sa += a[c]
+					sb += b[c]
+				}
+				if sa > 1 && sb > 1 {
+					var dd, dw float64
+					for c := 0; c < 3; c++ {
+						e := a[c]/sa - b[c]/sb
+						dd += e * e
+						g := b[c]/sb - 1.0/3
+						dw += g * g
+					}
+					chroma += math.Sqrt(dd)
+					waterChroma += math.Sqrt(dw)
+					chromaN++
+				}
+			}
+		}
+		if core == 0 || cnt == 0 {
+			continue
+		}
+		fc := float64(cnt)
+		cx, cy := sx/fc, sy/fc
+		vxx, vyy, vxy := sxx/fc-cx*cx, syy/fc-cy*cy, sxy/fc-cx*cy
+		tr, det := vxx+vyy, vxx*vyy-vxy*vxy
+		disc := math.Sqrt(math.Max(0, tr*tr/4-det))
+		l1, l2 := tr/2+disc, math.Max(0, tr/2-disc)
+		f := Features{
+			Area:     fc * cellArea,
+			Core:     float64(core) * cellArea,
+			Score:    ssum / fc,
+			Peak:     float64(peak),
+			Contrast: conSum / fc,
+			Chroma:   100 * chroma / math.Max(1, float64(chromaN)),
+			Water:    100 * waterChroma / math.Max(1, float64(chromaN)),
+			// An ellipse's axis is 4 standard deviations; a cell adds its width.
+			Length: (4*math.Sqrt(l1) + 1) * cell,
+			Width:  (4*math.Sqrt(l2) + 1) * cell,
+		}
+		ci, cj := min(max(int(cx), 0), w-1), min(max(int(cy), 0), d.size.Y-1)
+		f.Edge = float64(d.edge[cj*w+ci]) * cell
+		px, py := d.rect.plane(cx, cy)
+		cells := image.Rect(bx, by, bx+bw, by+bh)
+		b := Blob{Pixels: cnt, Plane: &PlaneBlob{X: px, Y: py, Cells: cells}, Features: f}
+		if c, ok := d.rect.source(cx, cy); ok {
+			b.Centroid = c
+		}
+		b.Box, b.Contour = d.sourceBox(cells)
+		out = append(out, b)
+	}
+	return out, nil
+}
+
+// sourceBox returns the source-pixel bounding box of a box of cells and
+// its outline, for drawing.
+func (d *meanVar) sourceBox(cells image.Rectangle) (image.Rectangle, []Point) {
+	corners := [][2]float64{{float64(cells.Min.X), float64(cells.Min.Y)}, {float64(cells.Max.X), float64(cells.Min.Y)},
+		{float64(cells.Max.X), float64(cells.Max.Y)}, {float64(cells.Min.X), float64(cells.Max.Y)}}
+	var poly []Point
+	box := image.Rectangle{}
+	for _, c := range corners {
+		p, ok := d.rect.source(c[0], c[1])
+		if !ok {
+			continue
+		}
+		poly = append(poly, p)
+		r := image.Rect(int(math.Floor(p.X)), int(math.Floor(p.Y)), int(math.Ceil(p.X))+1, int(math.Ceil(p.Y))+1)
+		if box.Empty() {
+			box = r
+		} else {
+			box = box.Union(r)
+		}
+	}
+	return box, poly
+}
+
+// probe measures a frame after a (re)connect without learning from it:
+// decoder fill grey, change since the previous probed frame, and the
+// share of water that differs from the model under the local light.
+func (d *meanVar) probe(frame gocv.Mat) (probeStats, error) {
+	st := probeStats{Change: -1, Mismatch: -1}
+	if err := d.rectify(frame); err != nil {
+		return st, err
+	}
+	if d.waterArea == 0 {
+		return st, nil
+	}
+	area := float64(d.waterArea)
+	gocv.InRangeWithScalar(d.frame, gocv.NewScalar(fillLo, fillLo, fillLo, 0), gocv.NewScalar(fillHi, fillHi, fillHi, 0), &d.lo)
+	gocv.BitwiseAnd(d.lo, d.water, &d.lo)
+	gocv.Erode(d.lo, &d.lo, d.kFill)
+	st.Fill = float64(gocv.CountNonZero(d.lo)) / area
+	gocv.CvtColor(d.frame, &d.gray, gocv.ColorBGRToGray)
+	if !d.prev.Empty() {
+		gocv.AbsDiff(d.gray, d.prev, &d.lo)
+		gocv.Threshold(d.lo, &d.lo, rejoinStep, 255, gocv.ThresholdBinary)
+		gocv.BitwiseAnd(d.lo, d.water, &d.lo)
+		st.Change = float64(gocv.CountNonZero(d.lo)) / area
+	}
+	d.gray.CopyTo(&d.prev)
+	if d.frames >= d.cfg.frames(d.cfg.WarmUp) {
+		d.frame.ConvertTo(&d.probeF, gocv.MatTypeCV32FC3)
+		d.water.CopyTo(&d.weight)
+		if err := d.measureGain(d.probeF); err != nil {
+			return st, err
+		}
+		// A single frame is not averaged: allow for caustics' flicker.
+		if err := d.update(d.probeF, probeNoise, 0, 0, false); err != nil {
+			return st, err
+		}
+		gocv.Threshold(d.score, &d.hi, float32(d.cfg.Low), 255, gocv.ThresholdBinary)
+		d.hi.ConvertTo(&d.hi, gocv.MatTypeCV8U)
+		st.Mismatch = float64(gocv.CountNonZero(d.hi)) / area
+	}
+	return st, nil
+}
+
+// varClip bounds what one frame's squared residual counts for in the
+// variance (as a multiple of the variance plus the noise floor); varGain
+// is how much faster than the mean the variance learns, so that a gust's
+// rougher water is learned within seconds.
+const (
+	varClip = 9
+	varGain = 3
+)
+
+// probeNoise is the noise floor, grey levels, for comparing one raw frame
+// with the model during probing.
+const probeNoise = 12
+
+func (d *meanVar) reset() error { return d.restart() }
+
+// Close frees every Mat. Safe to call twice.
+func (d *meanVar) Close() error {
+	if d.closed {
+		return nil
+	}
+	d.closed = true
+	for _, m := range []*gocv.Mat{&d.mapX, &d.mapY, &d.water, &d.frame, &d.short, &d.mean, &d.vari, &d.gain, &d.score, &d.contrast,
+		&d.weight, &d.hold, &d.lo, &d.hi, &d.fg, &d.labels, &d.stats, &d.cents, &d.kJoin, &d.kGrow, &d.kFill, &d.gray, &d.prev, &d.probeF, &d.scratch} {
+		m.Close()
+	}
+	return nil
+}
+
+// Reference returns the camera's current background as an empty-pool
+// reference, for saving; false for the mixture-model detectors and while
+// the model is still warming up. Call it only while nothing is tracked:
+// whatever is in the water now becomes part of the reference.
+func (c *Camera) Reference() (Reference, bool) {
+	if mv, ok := c.det.(*meanVar); ok && !c.closed {
+		return mv.Reference()
+	}
+	return Reference{}, false
+}
