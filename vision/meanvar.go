@@ -302,7 +302,6 @@ type meanVar struct {
 	relearn  int
 	reported bool // the model has reported (warm-up over)
 	closed   bool
-	debugIdx int
 }
 
 // errNoRectification is returned for a mean–variance detector set up
@@ -442,7 +441,7 @@ func (d *meanVar) Reference() (Reference, bool) {
 	return Reference{Cols: d.size.X, Rows: d.size.Y, Mean: append([]float32(nil), m...), Var: append([]float32(nil), v...), Frames: d.frames}, true
 }
 
-func (d *meanVar) Size() image.Point   { return d.size }
+func (d *meanVar) Size() image.Point    { return d.size }
 func (d *meanVar) srcSize() image.Point { return d.src }
 
 // rectify remaps the source frame onto the grid.
@@ -539,6 +538,9 @@ func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameS
 	case d.frames < warm:
 		// Warming up: every cell learns, as a running average.
 		st.WarmingUp = true
+		if d.frames == 0 {
+			d.short.CopyTo(&d.mean)
+		}
 		a := 1 / float64(d.frames+1)
 		aMean, aSlow = math.Max(aMean, a), math.Max(aSlow, a)
 		d.hold.SetTo(gocv.NewScalar(0, 0, 0, 0))
@@ -569,8 +571,6 @@ func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameS
 	if learn {
 		d.frames++
 	}
-	d.debugIdx++
-	d.debugDump(d.debugIdx - 1)
 	if st.WarmingUp {
 		d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
 		return nil, st, nil

@@ -210,6 +210,7 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
                 if (!p.learn || hp[x]) continue;
                 const float a = d < below ? aBg : aFg;
                 if (a <= 0) continue;
+                const float av = std::min(1.0f, a * p.varGain);
                 for (int c = 0; c < 3; ++c) {
                     const int i = 3 * x + c;
                     const float gc = gp[i] > 1e-3f ? gp[i] : 1e-3f;
@@ -217,7 +218,7 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
                     mp[i] += a * r;
                     // Winsorised: one event cannot blow the variance up.
                     const float cap = p.varClip * (vp[i] + noise2);
-                    vp[i] += a * p.varGain * (std::min(r * r, cap) - vp[i]);
+                    vp[i] += av * (std::min(r * r, cap) - vp[i]);
                 }
             }
         }

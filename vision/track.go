@@ -127,6 +127,9 @@ func (t *Tracker) Update(now time.Duration, dets []Detection) []Track {
 	return out
 }
 
+// Now returns the media time of the last Update.
+func (t *Tracker) Now() time.Duration { return t.last }
+
 // Reset forgets every track (after the model was rebuilt or the camera
 // moved); ids keep counting up.
 func (t *Tracker) Reset() { t.tracks = nil }

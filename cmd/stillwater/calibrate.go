@@ -44,6 +44,8 @@ type calibrateFlags struct {
 	out, overlay, rect string
 	reference          string
 	ppm                float64
+	dataDir, id        string
+	learn              time.Duration
 }
 
 func parseCalibrateFlags(args []string, stderr io.Writer) (calibrateFlags, error) {
@@ -77,6 +79,9 @@ func parseCalibrateFlags(args []string, stderr io.Writer) (calibrateFlags, error
 	fs.StringVar(&f.rect, "rectified", "", "write a top-down view of the pool to this PNG `file`")
 	fs.StringVar(&f.reference, "reference", "", "save the frame as the camera-moved reference to this PNG `file` (default: beside -out)")
 	fs.Float64Var(&f.ppm, "ppm", 100, "scale of the rectified view in `pixels per metre`")
+	fs.StringVar(&f.dataDir, "data-dir", "", "save the empty-pool reference the detector starts from under this data `directory` (the daemon's data_dir); needs a clip or a camera of the empty pool")
+	fs.StringVar(&f.id, "id", "pool", "camera `id` in the daemon's config, for the empty-pool reference")
+	fs.DurationVar(&f.learn, "learn", 10*time.Second, "how long to watch the empty pool for the reference")
 	if err := fs.Parse(args); err != nil {
 		return f, errUsage
 	}
@@ -92,10 +97,26 @@ func parseCalibrateFlags(args []string, stderr io.Writer) (calibrateFlags, error
 	if f.points != "" && f.outline == "" {
 		return f, fmt.Errorf("calibrate: -points needs -outline, the water's edge in pixels: %w", errUsage)
 	}
+	if f.dataDir != "" && !strings.Contains(f.frame, "://") && isStillImage(f.frame) {
+		return f, fmt.Errorf("calibrate: -data-dir: the empty-pool reference needs a clip or a camera of the empty pool, not the still image %s: %w", f.frame, errUsage)
+	}
+	if f.learn < time.Second {
+		return f, fmt.Errorf("calibrate: -learn %v: want at least 1s of the empty pool: %w", f.learn, errUsage)
+	}
 	if !(f.ppm >= 10 && f.ppm <= 1000) {
 		return f, fmt.Errorf("calibrate: -ppm %g: want 10–1000 pixels per metre: %w", f.ppm, errUsage)
 	}
 	return f, nil
+}
+
+// isStillImage reports whether a -frame file is a picture, not a clip (the
+// extensions OpenCV's imread takes that stillwater accepts).
+func isStillImage(path string) bool {
+	switch strings.ToLower(filepath.Ext(path)) {
+	case ".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff", ".webp":
+		return true
+	}
+	return false
 }
 
 func btoi(b bool) int {
@@ -279,6 +300,18 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 		fmt.Fprintf(report, "reference:  %s (camera-moved check)\n", cfg.ReferenceFrame)
 	} else {
 		fmt.Fprintln(report, "reference:  not saved; give -reference or -out to enable the camera-moved check")
+	}
+	if f.dataDir != "" {
+		cam := CameraConfig{ID: f.id, Source: f.frame, CalibrationConfig: cfg, Detect: defaultDetect()}
+		ref, grid, err := learnReference(ctx, cam, f.transport, f.timeout, f.learn)
+		if err != nil {
+			return fmt.Errorf("calibrate: empty-pool reference: %w", err)
+		}
+		if err := saveReference(f.dataDir, f.id, grid, ref, time.Now(), "saved by stillwater calibrate"); err != nil {
+			return fmt.Errorf("calibrate: %w", err)
+		}
+		mean, _, _ := referencePaths(f.dataDir, f.id)
+		fmt.Fprintf(report, "empty pool: %s (%d×%d cells of %g m, %v watched; the detector starts from it)\n", mean, grid.Cols, grid.Rows, grid.Cell, f.learn)
 	}
 	y, err := calibrationYAML(cfg)
 	if err != nil {

@@ -35,6 +35,9 @@ type DetectConfig struct {
 	// LightCell is the side, m, of the squares the light is measured on
 	// (meanvar).
 	LightCell float64 `yaml:"light_cell_m"`
+	// Smooth is the standard deviation, m, of the spatial blur of each
+	// rectified frame (meanvar); negative is none.
+	Smooth float64 `yaml:"smooth_m"`
 	// ShadowChroma is the chromaticity distance (×100) from the water under
 	// which a candidate darker than the water is a shadow (meanvar).
 	ShadowChroma float64 `yaml:"shadow_chroma"`
@@ -69,6 +72,7 @@ func defaultDetect() DetectConfig {
 		Learn:        Duration(mv.Learn),
 		Noise:        mv.Noise,
 		LightCell:    mv.LightCell,
+		Smooth:       mv.Smooth,
 		ShadowChroma: defaultShadowChroma,
 		ProcessWidth: 640,
 		History:      500,
@@ -131,6 +135,9 @@ func mergeDetect(def, d DetectConfig) DetectConfig {
 	}
 	if d.LightCell == 0 {
 		d.LightCell = def.LightCell
+	}
+	if d.Smooth == 0 {
+		d.Smooth = def.Smooth
 	}
 	if d.ShadowChroma == 0 {
 		d.ShadowChroma = def.ShadowChroma
@@ -390,6 +397,7 @@ func detectorConfig(cam CameraConfig, cal *calibration) (vision.DetectorConfig, 
 	mv.FPS = 0 // the camera's own
 	mv.Threshold, mv.Low, mv.Noise, mv.LightCell = d.Threshold, d.Extent, d.Noise, d.LightCell
 	mv.Short, mv.Learn = time.Duration(d.ShortMean), time.Duration(d.Learn)
+	mv.Smooth = d.Smooth
 	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv}, nil
 }
 

@@ -42,6 +42,11 @@ type processor struct {
 	tracker  *vision.Tracker
 	judge    *judge // which tracks of the rectified detector may alarm
 	alarm    *alert.Alarm
+	alarmed  map[int]bool // tracks in alarm
+	// notes say what became of this frame's candidates, for explaining a
+	// decision (explain.go); explain, when set, is called after each step.
+	notes   []candidateNote
+	explain func(p *processor, r vision.Result)
 	log      *slog.Logger
 	seq      uint64
 	epoch    time.Time // wall time of media time 0
@@ -66,6 +71,7 @@ func newProcessor(cam CameraConfig, fps float64, epoch time.Time, now func() tim
 		tracker: vision.NewTracker(vision.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
 		alarm:   alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio, MaxSpeed: alert.DefaultAlarm().MaxSpeed}, fps),
 		judge:   newJudge(time.Duration(d.Persist), judgeRulesOf(d), log),
+		alarmed: map[int]bool{},
 		log:     log,
 		epoch:   epoch,
 		now:     now,
@@ -78,6 +84,7 @@ func newProcessor(cam CameraConfig, fps float64, epoch time.Time, now func() tim
 func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectangle) {
 	d := p.cam.Detect
 	var dets []vision.Detection
+	p.notes = p.notes[:0]
 	for _, b := range r.Blobs {
 		if b.Plane != nil {
 			if det, ok := p.gate(r, b); ok {
@@ -129,12 +136,22 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 	p.metrics.tracks(len(tracks))
 	var out []outMsg
 	for _, dec := range p.alarm.Step(r.Media, obs, armed) {
+		switch {
+		case dec.Kind == alert.KindTarget && dec.Event == "start":
+			p.alarmed[dec.Obs.Track] = true
+		case dec.Kind == alert.KindCleared:
+			delete(p.alarmed, dec.Obs.Track)
+		}
 		m, err := p.message(r, dec)
 		if err != nil {
 			p.log.Error("cannot encode message", "err", err)
 			continue
 		}
 		out = append(out, m)
+	}
+	p.noteTracks()
+	if p.explain != nil {
+		p.explain(p, r)
 	}
 	return out, hold
 }
@@ -220,6 +237,7 @@ func (p *processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool
 	reject := func(reason, why string, args ...any) (vision.Detection, bool) {
 		p.log.Debug("candidate rejected: "+why, append([]any{"frame", r.Index, "x_m", round3(c.X), "y_m", round3(c.Y)}, append(args, featureArgs(f)...)...)...)
 		p.metrics.rejected(reason)
+		p.notes = append(p.notes, candidateNote{At: c, Features: f, Rejected: why})
 		return vision.Detection{}, false
 	}
 	if name, in := p.zones.excluded(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}, c); in {
@@ -229,10 +247,11 @@ func (p *processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool
 	case !p.cal.inside(c):
 		return reject("outside", "centre outside the pool")
 	case f.Area < d.MinArea*candidateShare:
-		return reject("small", "far smaller than a child's body", "min_m2", d.MinArea*candidateShare)
+		return reject("small", fmt.Sprintf("far smaller than a child's body (%.3f m² < %.3f m²)", f.Area, d.MinArea*candidateShare))
 	case f.Area > d.MaxArea:
-		return reject("large", "too large", "max_m2", d.MaxArea)
+		return reject("large", fmt.Sprintf("too large (%.3f m² > %.3f m²)", f.Area, d.MaxArea))
 	}
+	p.notes = append(p.notes, candidateNote{At: c, Features: f})
 	return vision.Detection{X: c.X, Y: c.Y, Area: f.Area, Box: b.Box, Hold: b.Plane.Cells, Features: f}, true
 }
 

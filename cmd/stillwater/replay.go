@@ -53,7 +53,8 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	labels := fs.String("labels", "", "label `file` (stillwater.labels/v1 or pool-holdout-v1) giving the calibration (instead of -config)")
 	out := fs.String("out", "", "output `file` (default standard output)")
 	prefix := fs.String("prefix", "stillwater", "bus subject `prefix` with -labels")
-	verbose := fs.Bool("v", false, "log at debug level to standard error")
+	verbose := fs.Bool("v", false, "log at debug level to standard error; with -labels, also say why the labelled intruder is not reported (at most once a second)")
+	why := fs.String("why", "", "with -labels, explain these frame `numbers` (\"120,121\") on standard error")
 	var ov detectOverrides
 	ov.register(fs)
 	if err := fs.Parse(args); err != nil {
@@ -94,6 +95,16 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err := validateDetect("replay", cam.Detect); err != nil {
 		return fmt.Errorf("replay: %w", err)
 	}
+	var opts []func(*processor)
+	if *labels != "" && (*verbose || *why != "") {
+		o, err := explainOption(*labels, *why, *verbose, stderr)
+		if err != nil {
+			return fmt.Errorf("replay: %w", err)
+		}
+		opts = append(opts, o)
+	} else if *why != "" {
+		return fmt.Errorf("replay: -why needs -labels: %w", errUsage)
+	}
 	w := stdout
 	if *out != "" {
 		f, err := os.Create(*out)
@@ -109,7 +120,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	}
 	log := slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: lv}))
 	bw := bufio.NewWriter(w)
-	st, err := replayClip(ctx, cam, pfx, bw, log)
+	st, err := replayClip(ctx, cam, pfx, bw, log, opts...)
 	if ferr := bw.Flush(); err == nil && ferr != nil {
 		err = fmt.Errorf("replay: write output: %w", ferr)
 	}
@@ -150,6 +161,7 @@ func cameraFromLabels(t synth.Truth, clip string) (CameraConfig, error) {
 	for _, c := range t.Corners {
 		cam.Corners = append(cam.Corners, c.Pixel)
 	}
+	addInstallerKnowledge(&cam, t)
 	return cam, nil
 }
 
@@ -174,7 +186,7 @@ func (s *replaySink) write(m outMsg) error {
 // processor and step, always armed) over cam.Source and writes each message
 // to w. Wall-clock fields of the messages are taken from media time after
 // replayEpoch, so the output is reproducible.
-func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Writer, log *slog.Logger) (replayStats, error) {
+func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Writer, log *slog.Logger, opts ...func(*processor)) (replayStats, error) {
 	var st replayStats
 	start := time.Now()
 	cal, err := newCalibration(cam)
@@ -196,6 +208,9 @@ func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Write
 	proc, err := newProcessor(cam, vc.FPS(), epoch, now, log, nil)
 	if err != nil {
 		return st, err
+	}
+	for _, o := range opts {
+		o(proc)
 	}
 	sink := &replaySink{prefix: prefix, enc: json.NewEncoder(w)}
 	sink.enc.SetEscapeHTML(false)

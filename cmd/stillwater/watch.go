@@ -40,6 +40,7 @@ type cameraWatch struct {
 	reload   chan CameraConfig // new calibration, zones, detection for this camera
 	evidence evidenceSettings
 	snapReq  chan chan snapshot // HTTP asks the capture goroutine for a frame
+	refs     *referenceKeeper   // the empty-pool reference (reference.go)
 }
 
 func newCameraWatch(cam CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *cameraMetrics, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
@@ -242,6 +243,7 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 	if err != nil {
 		return nil, err
 	}
+	w.useReference(&dc)
 	vc, err := vision.OpenCamera(w.sourceConfig(), dc)
 	if err != nil {
 		return nil, err
@@ -331,6 +333,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			msgs, h := proc.step(r, armed)
 			st.hold = h
 			w.met.stage("track", time.Since(t1))
+			w.keepReference(vc, proc, r, armed)
 			for _, m := range msgs {
 				w.send(ctx, m)
 			}
