@@ -9,6 +9,7 @@ import (
 	"fmt"
 	"image"
 	"math"
+	"slices"
 	"time"
 	"unsafe"
 
@@ -21,8 +22,9 @@ import (
 // and Rows down, cell (0, 0)'s top-left corner at (OriginX, OriginY) on the
 // plane. MapX and MapY give, row by row, the source pixel (as recorded,
 // lens distortion included) that sees each cell's centre, -1 where no
-// pixel does; Water marks the cells to watch (non-zero), the water's
-// surface; Src is the source frame size the maps were made for (zero:
+// pixel does; Water marks the cells to watch: CellWater on the water's
+// surface, CellDeck around it (where a body climbing in is seen whole),
+// 0 not watched; Src is the source frame size the maps were made for (zero:
 // whatever size the source delivers; cells mapped outside it are not
 // watched).
 type Rectification struct {
@@ -33,6 +35,12 @@ type Rectification struct {
 	Water            []byte
 	Src              image.Point
 }
+
+// Kinds of cell in Rectification.Water.
+const (
+	CellWater = 1
+	CellDeck  = 2
+)
 
 // validate checks the sizes agree.
 func (r *Rectification) validate() error {
@@ -138,6 +146,10 @@ type MeanVarConfig struct {
 	LightCell float64
 	// Join is the gap, plane units, closed between parts of one body.
 	Join float64
+	// Shift is how far, plane units, the picture of the floor may seem to
+	// move (camera shake, refraction by ripples): at structure (lane lines,
+	// walls, the pool's edge) the variance allows for it.
+	Shift float64
 	// Smooth is the standard deviation, plane units, of the spatial blur
 	// of each rectified frame: caustic and glitter patterns are finer than
 	// a body and average out over it.
@@ -159,7 +171,8 @@ func DefaultMeanVar() MeanVarConfig {
 		Noise:     2,
 		LightCell: 1.0,
 		Join:      0.1,
-		Smooth:    0.05,
+		Smooth:    0.03,
+		Shift:     0.03,
 	}
 }
 
@@ -200,6 +213,9 @@ func (c MeanVarConfig) withDefaults() MeanVarConfig {
 	}
 	if c.Smooth < 0 {
 		c.Smooth = 0
+	}
+	if c.Shift < 0 {
+		c.Shift = 0
 	}
 	return c
 }
@@ -245,6 +261,17 @@ type Features struct {
 	// shadow only darkens the water and keeps its chromaticity, a person
 	// has colours of their own.
 	Chroma float64
+	// ChromaTop is Chroma over the most coloured quarter of the core: a
+	// head or a limb in a suit the colour of the water.
+	ChromaTop float64
+	// Half is the area scoring at least a quarter of Peak (half the
+	// contrast): about the object's own outline.
+	Half float64
+	// Bright is the share of Area brighter than the water expected there.
+	Bright float64
+	// Wet is the share of Area on the water (the rest is on the deck
+	// around it: a body climbing in or out).
+	Wet float64
 	// Water is the distance of the water's own chromaticity there from
 	// grey, ×100: near 0 in a monochrome (night infrared) picture, where
 	// chromaticity tells nothing.
@@ -273,13 +300,17 @@ type meanVar struct {
 	size image.Point // grid cells
 
 	mapX, mapY gocv.Mat // CV_32FC1 maps
-	water      gocv.Mat // CV_8UC1, 255 on watched cells
+	water      gocv.Mat // CV_8UC1, 255 on watched cells (water and deck)
 	waterArea  int
+	wet        []byte    // 1 on the water's cells
 	edge       []float32 // distance to the nearest unwatched cell, cells
 	frame      gocv.Mat  // CV_8UC3 remapped frame
 	short      gocv.Mat  // CV_32FC3 short temporal mean
 	mean, vari gocv.Mat  // CV_32FC3 background
 	gain       gocv.Mat  // CV_32FC3 local illumination ratio
+	glint      gocv.Mat  // CV_32FC1 how often each cell glints
+	extra      gocv.Mat  // CV_32FC3 variance a slight shift of the picture adds at structure
+	gx, gy     gocv.Mat  // CV_32FC3 scratch: the mean's gradient
 	score      gocv.Mat  // CV_32FC1
 	contrast   gocv.Mat  // CV_32FC1
 	weight     gocv.Mat  // CV_8UC1 cells the illumination is measured on
@@ -302,6 +333,7 @@ type meanVar struct {
 	relearn  int
 	reported bool // the model has reported (warm-up over)
 	closed   bool
+	chromas  []float64 // scratch: per-cell chroma of one candidate
 }
 
 // errNoRectification is returned for a mean–variance detector set up
@@ -335,6 +367,9 @@ func newMeanVar(cfg DetectorConfig, src image.Point) (*meanVar, error) {
 	d.mean = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
 	d.vari = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
 	d.gain = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
+	d.glint = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32F)
+	d.extra = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
+	d.gx, d.gy = gocv.NewMat(), gocv.NewMat()
 	d.weight = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
 	d.hold = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
 	d.fg = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
@@ -349,15 +384,19 @@ func newMeanVar(cfg DetectorConfig, src image.Point) (*meanVar, error) {
 	copy(mx, r.MapX)
 	copy(my, r.MapY)
 	wb, _ := d.water.DataPtrUint8()
+	d.wet = make([]byte, len(r.Water))
 	for i, v := range r.Water {
 		if v != 0 && r.MapX[i] >= 0 && r.MapX[i] <= float32(src.X-1) && r.MapY[i] <= float32(src.Y-1) {
 			wb[i] = 255
 			d.waterArea++
+			if v == CellWater {
+				d.wet[i] = 1
+			}
 		} else {
 			wb[i] = 0
 		}
 	}
-	d.edge = edgeDistance(wb, w, h)
+	d.edge = edgeDistance(d.wet, w, h)
 	if err := d.restart(); err != nil {
 		d.Close()
 		return nil, err
@@ -408,6 +447,8 @@ func (d *meanVar) restart() error {
 	d.frames, d.shortN, d.relearn, d.reported = 0, 0, 0, false
 	d.gain.SetTo(gocv.NewScalar(1, 1, 1, 0))
 	d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
+	d.glint.SetTo(gocv.NewScalar(0, 0, 0, 0))
+	d.extra.SetTo(gocv.NewScalar(0, 0, 0, 0))
 	if d.ref == nil {
 		d.mean.SetTo(gocv.NewScalar(0, 0, 0, 0))
 		d.vari.SetTo(gocv.NewScalar(0, 0, 0, 0))
@@ -455,11 +496,9 @@ func (d *meanVar) rectify(frame gocv.Mat) error {
 	if frame.Channels() != 3 {
 		gocv.CvtColor(frame, &d.scratch, gocv.ColorGrayToBGR)
 		gocv.Remap(d.scratch, &d.frame, &d.mapX, &d.mapY, gocv.InterpolationLinear, gocv.BorderReplicate, black)
-		d.smooth()
 		return nil
 	}
 	gocv.Remap(frame, &d.frame, &d.mapX, &d.mapY, gocv.InterpolationLinear, gocv.BorderReplicate, black)
-	d.smooth()
 	return nil
 }
 
@@ -495,14 +534,42 @@ func (d *meanVar) measureGain(img gocv.Mat) error {
 func (d *meanVar) update(img gocv.Mat, noise, aMean, aSlow float64, learn bool) error {
 	var buf [errBufLen]C.char
 	p := C.SwPoolParams{noise2: C.double(noise * noise), aMean: C.double(aMean), aSlow: C.double(aSlow), learnBelow: C.double(d.cfg.Low),
-		varClip: C.float(varClip), varGain: C.float(varGain)}
+		varClip: C.float(varClip), varGain: C.float(varGain), glintMin: C.float(glintMin)}
 	if learn {
 		p.learn = 1
 	}
 	return cErr(C.sw_pool_update(unsafe.Pointer(img.Ptr()), unsafe.Pointer(d.mean.Ptr()), unsafe.Pointer(d.vari.Ptr()),
-		unsafe.Pointer(d.gain.Ptr()), unsafe.Pointer(d.water.Ptr()), unsafe.Pointer(d.hold.Ptr()), p,
+		unsafe.Pointer(d.gain.Ptr()), unsafe.Pointer(d.water.Ptr()), unsafe.Pointer(d.hold.Ptr()),
+		unsafe.Pointer(d.extra.Ptr()), unsafe.Pointer(d.glint.Ptr()), p,
 		unsafe.Pointer(d.score.Ptr()), unsafe.Pointer(d.contrast.Ptr()), &buf[0], errBufLen), &buf, "score")
 }
+
+// structure sets the extra variance at structure in the background: the
+// squared change a shift of cfg.Shift would make there (a gradient of the
+// mean times the shift), for camera shake and for lane lines and walls
+// seen through rippling water.
+func (d *meanVar) structure() {
+	gocv.Sobel(d.mean, &d.gx, gocv.MatTypeCV32F, 1, 0, 3, 1.0/8, 0, gocv.BorderReplicate)
+	gocv.Sobel(d.mean, &d.gy, gocv.MatTypeCV32F, 0, 1, 3, 1.0/8, 0, gocv.BorderReplicate)
+	gocv.Multiply(d.gx, d.gx, &d.gx)
+	gocv.Multiply(d.gy, d.gy, &d.gy)
+	gocv.Add(d.gx, d.gy, &d.extra)
+	s := d.cfg.Shift / d.rect.Cell
+	d.extra.MultiplyFloat(float32(s * s))
+}
+
+// structureEvery is how often, in frames, the structure term is
+// recomputed: the mean it comes from changes slowly.
+const structureEvery = 5
+
+// Glints: a cell whose unblurred pixel reaches glintLevel (the mixture
+// detector's, detector.go) in some channel glints in that frame; one
+// glinting in glintMin of the frames of the last glintTime is glittering
+// water, where only a darkening may be a body.
+const (
+	glintMin  = 0.03
+	glintTime = 3 * time.Second
+)
 
 // paintHold marks the hold boxes (grid cells) as not to be learned.
 func (d *meanVar) paintHold(hold []image.Rectangle) {
@@ -525,6 +592,11 @@ func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameS
 	if err := d.rectify(frame); err != nil {
 		return nil, st, err
 	}
+	var buf [errBufLen]C.char
+	if err := cErr(C.sw_pool_glint(unsafe.Pointer(d.frame.Ptr()), unsafe.Pointer(d.glint.Ptr()), C.double(d.cfg.rate(glintTime)), C.int(glintLevel), &buf[0], errBufLen), &buf, "glints"); err != nil {
+		return nil, st, err
+	}
+	d.smooth()
 	st.MeanLevel = meanOf(d.frame, d.water)
 	d.shortN++
 	aShort := math.Max(d.cfg.rate(d.cfg.Short), 1/float64(d.shortN))
@@ -564,6 +636,9 @@ func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameS
 		if err := d.measureGain(d.short); err != nil {
 			return nil, st, err
 		}
+	}
+	if d.frames%structureEvery == 0 {
+		d.structure()
 	}
 	if err := d.update(d.short, d.cfg.Noise, aMean, aSlow, learn); err != nil {
 		return nil, st, err
@@ -709,12 +784,47 @@ func (d *meanVar) candidates() ([]Blob, error) {
 					chroma += math.Sqrt(dd)
 					waterChroma += math.Sqrt(dw)
 					chromaN++
+					d.chromas = append(d.chromas, math.Sqrt(dd))
 				}
 			}
 		}
 		if core == 0 || cnt == 0 {
+			d.chromas = d.chromas[:0]
 			continue
 		}
+		// The area at a quarter of the peak score (half its contrast):
+		// close to the object's own outline, where Area also counts the
+		// blur around it.
+		half, bright, wet := 0, 0, 0
+		var hx, hy float64
+		hthr := max(float32(d.cfg.Low), peak/4)
+		for y := by; y < by+bh; y++ {
+			for x := bx; x < bx+bw; x++ {
+				i := y*w + x
+				if lab[i] != int32(k) {
+					continue
+				}
+				if sc[i] >= hthr {
+					half++
+					hx += float64(x) + 0.5
+					hy += float64(y) + 0.5
+				}
+				if con[i] > 0 {
+					bright++
+				}
+				wet += int(d.wet[i])
+			}
+		}
+		slices.Sort(d.chromas)
+		top := 0.0
+		if n := len(d.chromas); n > 0 {
+			q := d.chromas[n-max(1, n/4):]
+			for _, v := range q {
+				top += v
+			}
+			top /= float64(len(q))
+		}
+		d.chromas = d.chromas[:0]
 		fc := float64(cnt)
 		cx, cy := sx/fc, sy/fc
 		vxx, vyy, vxy := sxx/fc-cx*cx, syy/fc-cy*cy, sxy/fc-cx*cy
@@ -722,16 +832,25 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		disc := math.Sqrt(math.Max(0, tr*tr/4-det))
 		l1, l2 := tr/2+disc, math.Max(0, tr/2-disc)
 		f := Features{
-			Area:     fc * cellArea,
-			Core:     float64(core) * cellArea,
-			Score:    ssum / fc,
-			Peak:     float64(peak),
-			Contrast: conSum / fc,
-			Chroma:   100 * chroma / math.Max(1, float64(chromaN)),
-			Water:    100 * waterChroma / math.Max(1, float64(chromaN)),
+			Area:      fc * cellArea,
+			Core:      float64(core) * cellArea,
+			Score:     ssum / fc,
+			Peak:      float64(peak),
+			Contrast:  conSum / fc,
+			Chroma:    100 * chroma / math.Max(1, float64(chromaN)),
+			Water:     100 * waterChroma / math.Max(1, float64(chromaN)),
+			ChromaTop: 100 * top,
+			Half:      float64(half) * cellArea,
+			Bright:    float64(bright) / fc,
+			Wet:       float64(wet) / fc,
 			// An ellipse's axis is 4 standard deviations; a cell adds its width.
 			Length: (4*math.Sqrt(l1) + 1) * cell,
 			Width:  (4*math.Sqrt(l2) + 1) * cell,
+		}
+		if half > 0 {
+			// The position is that of the strongest part: where a body
+			// and its shadow on the floor join, the body.
+			cx, cy = hx/float64(half), hy/float64(half)
 		}
 		ci, cj := min(max(int(cx), 0), w-1), min(max(int(cy), 0), d.size.Y-1)
 		f.Edge = float64(d.edge[cj*w+ci]) * cell
@@ -832,7 +951,7 @@ func (d *meanVar) Close() error {
 		return nil
 	}
 	d.closed = true
-	for _, m := range []*gocv.Mat{&d.mapX, &d.mapY, &d.water, &d.frame, &d.short, &d.mean, &d.vari, &d.gain, &d.score, &d.contrast,
+	for _, m := range []*gocv.Mat{&d.mapX, &d.mapY, &d.water, &d.frame, &d.short, &d.mean, &d.vari, &d.gain, &d.glint, &d.extra, &d.gx, &d.gy, &d.score, &d.contrast,
 		&d.weight, &d.hold, &d.lo, &d.hi, &d.fg, &d.labels, &d.stats, &d.cents, &d.kJoin, &d.kGrow, &d.kFill, &d.gray, &d.prev, &d.probeF, &d.scratch} {
 		m.Close()
 	}

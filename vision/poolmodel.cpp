@@ -152,8 +152,33 @@ int sw_pool_gain(void* shortp, void* meanp, void* weightp, int cellPx, double mi
     }
 }
 
-int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* waterp, void* holdp, SwPoolParams p,
-                   void* scorep, void* contrastp, char* err, int errlen) {
+int sw_pool_glint(void* framep, void* ratep, double a, int level, char* err, int errlen) {
+    try {
+        const cv::Mat& f = *static_cast<cv::Mat*>(framep);
+        cv::Mat& r = *static_cast<cv::Mat*>(ratep);
+        if (f.type() != CV_8UC3) throw std::invalid_argument("pool model: frame is not 8-bit BGR");
+        if (r.type() != CV_32FC1 || r.size() != f.size()) {
+            r.create(f.size(), CV_32FC1);
+            r.setTo(0);
+        }
+        const float fa = static_cast<float>(a);
+        for (int y = 0; y < f.rows; ++y) {
+            const uchar* fp = f.ptr<uchar>(y);
+            float* rp = r.ptr<float>(y);
+            for (int x = 0; x < f.cols; ++x) {
+                const bool g = fp[3 * x] >= level || fp[3 * x + 1] >= level || fp[3 * x + 2] >= level;
+                rp[x] += fa * ((g ? 1.0f : 0.0f) - rp[x]);
+            }
+        }
+        return 0;
+    } catch (const std::exception& e) {
+        setErr(e, err, errlen);
+        return -1;
+    }
+}
+
+int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* waterp, void* holdp, void* extrap, void* glintp,
+                   SwPoolParams p, void* scorep, void* contrastp, char* err, int errlen) {
     try {
         const cv::Mat& img = *static_cast<cv::Mat*>(imgp);
         cv::Mat& m = *static_cast<cv::Mat*>(meanp);
@@ -161,6 +186,9 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
         const cv::Mat& g = *static_cast<cv::Mat*>(gainp);
         const cv::Mat& water = *static_cast<cv::Mat*>(waterp);
         const cv::Mat& hold = *static_cast<cv::Mat*>(holdp);
+        const cv::Mat& extra = *static_cast<cv::Mat*>(extrap);
+        const cv::Mat& glint = *static_cast<cv::Mat*>(glintp);
+        const bool hasExtra = !extra.empty(), hasGlint = !glint.empty();
         cv::Mat& score = *static_cast<cv::Mat*>(scorep);
         cv::Mat& con = *static_cast<cv::Mat*>(contrastp);
         const cv::Size size = m.size();
@@ -172,6 +200,8 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
         need(g, CV_32FC3, size, "gain");
         need(water, CV_8UC1, size, "water mask");
         need(hold, CV_8UC1, size, "hold mask");
+        if (hasExtra) need(extra, CV_32FC3, size, "extra variance");
+        if (hasGlint) need(glint, CV_32FC1, size, "glint rate");
         if (score.type() != CV_32FC1 || score.size() != size) score.create(size, CV_32FC1);
         if (con.type() != CV_32FC1 || con.size() != size) con.create(size, CV_32FC1);
         const float noise2 = static_cast<float>(p.noise2);
@@ -187,6 +217,8 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
             const uchar* hp = hold.ptr<uchar>(y);
             float* sp = score.ptr<float>(y);
             float* cp = con.ptr<float>(y);
+            const float* ep = hasExtra ? extra.ptr<float>(y) : nullptr;
+            const float* gr = hasGlint ? glint.ptr<float>(y) : nullptr;
             for (int x = 0; x < size.width; ++x) {
                 if (!wp[x]) {
                     sp[x] = 0;
@@ -201,14 +233,16 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
                     const float gc = gp[i];
                     const float e = gc * mp[i];
                     const float r = px[c] - e;
-                    d += r * r / (gc * gc * vp[i] + noise2);
+                    const float v = vp[i] + (ep ? ep[i] : 0.0f);
+                    d += r * r / (gc * gc * v + noise2);
                     sum += px[c];
                     sumExp += e;
                 }
-                sp[x] = d;
+                // Glittering water: only a darkening can be a body.
+                sp[x] = (gr && gr[x] >= p.glintMin && sum > sumExp) ? 0.0f : d;
                 cp[x] = sumExp > 1.0f ? (sum - sumExp) / sumExp : 0.0f;
                 if (!p.learn || hp[x]) continue;
-                const float a = d < below ? aBg : aFg;
+                const float a = sp[x] < below ? aBg : aFg;
                 if (a <= 0) continue;
                 const float av = std::min(1.0f, a * p.varGain);
                 for (int c = 0; c < 3; ++c) {

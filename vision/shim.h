@@ -55,15 +55,25 @@ typedef struct {
     float varClip;     // a squared residual counts at most varClip times the variance plus noise2
     float varGain;     // the variance learns varGain times as fast as the mean
     int learn;         // 0: score only
+    float glintMin;    // a cell glinting at least this often counts only when darker
 } SwPoolParams;
+
+// sw_pool_glint sets rate += a (glint − rate), where glint is 1 for a pixel
+// of the (unblurred) frame at or above level in any channel.
+int sw_pool_glint(void* frame, void* rate, double a, int level, char* err, int errlen);
 
 // sw_pool_update scores img (CV_32FC3 or CV_8UC3) against the model under
 // the gain: score = sum over channels of (img − gain·mean)² / (gain²·var +
 // noise2), contrast = (sum img − sum gain·mean) / sum gain·mean; both 0
 // outside water. With learn set, mean and variance learn img / gain where
 // water is set and hold is not.
-int sw_pool_update(void* img, void* mean, void* var, void* gain, void* water, void* hold, SwPoolParams p,
-                   void* score, void* contrast, char* err, int errlen);
+//
+// extra (CV_32FC3, may be empty) is added to the variance when scoring:
+// the spread a slight shift of the picture would cause at structure (lane
+// lines, walls seen through rippling water). glint (CV_32FC1, may be empty)
+// is the glint rate: where it reaches glintMin only a darker cell scores.
+int sw_pool_update(void* img, void* mean, void* var, void* gain, void* water, void* hold, void* extra, void* glint,
+                   SwPoolParams p, void* score, void* contrast, char* err, int errlen);
 
 #ifdef __cplusplus
 }

@@ -564,10 +564,11 @@ func (k *driftChecker) Close() error {
 
 // rectification returns the top-down raster of the water surface the
 // detector works on: square cells of cell metres over the pool's bounding
-// box (the outline's, for a freeform pool), each mapped to the recorded
+// box (the outline's, for a freeform pool) widened by deck metres of the
+// deck around it, each mapped to the recorded
 // pixel that sees its centre (lens, coping and homography included), with
 // the cells on the water marked.
-func (c *calibration) rectification(cell float64) (*vision.Rectification, error) {
+func (c *calibration) rectification(cell, deck float64) (*vision.Rectification, error) {
 	lo, hi := homography.Point{}, homography.Point{X: c.length, Y: c.width}
 	if c.outline != nil {
 		lo, hi = c.outline[0], c.outline[0]
@@ -576,6 +577,8 @@ func (c *calibration) rectification(cell float64) (*vision.Rectification, error)
 			hi = homography.Point{X: math.Max(hi.X, p.X), Y: math.Max(hi.Y, p.Y)}
 		}
 	}
+	lo = homography.Point{X: lo.X - deck, Y: lo.Y - deck}
+	hi = homography.Point{X: hi.X + deck, Y: hi.Y + deck}
 	g, err := homography.NewGrid(lo, hi, cell, c.frame.X, c.frame.Y, func(p homography.Point) (homography.Point, bool) {
 		px, ok := c.pixel(p)
 		return homography.Point{X: px.X, Y: px.Y}, ok
@@ -587,7 +590,9 @@ func (c *calibration) rectification(cell float64) (*vision.Rectification, error)
 	for j := 0; j < g.CellsY; j++ {
 		for i := 0; i < g.CellsX; i++ {
 			if c.inside(g.Centre(i, j)) {
-				water[j*g.CellsX+i] = 1
+				water[j*g.CellsX+i] = vision.CellWater
+			} else {
+				water[j*g.CellsX+i] = vision.CellDeck
 			}
 		}
 	}

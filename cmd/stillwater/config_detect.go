@@ -35,12 +35,24 @@ type DetectConfig struct {
 	// LightCell is the side, m, of the squares the light is measured on
 	// (meanvar).
 	LightCell float64 `yaml:"light_cell_m"`
+	// Deck is how much of the deck around the water is watched, m
+	// (meanvar): a body climbing in is seen whole, and reported once its
+	// centre is over the water.
+	Deck float64 `yaml:"deck_m"`
 	// Smooth is the standard deviation, m, of the spatial blur of each
 	// rectified frame (meanvar); negative is none.
 	Smooth float64 `yaml:"smooth_m"`
-	// ShadowChroma is the chromaticity distance (×100) from the water under
-	// which a candidate darker than the water is a shadow (meanvar).
-	ShadowChroma float64 `yaml:"shadow_chroma"`
+	// MinScore is the least mean score over a candidate for it to alarm
+	// (meanvar).
+	MinScore float64 `yaml:"min_score"`
+	// MaxLength is the longest a candidate may be, m, to alarm (meanvar).
+	MaxLength float64 `yaml:"max_length_m"`
+	// MaxSpeed is the fastest, m/s, a track may move to start an alarm
+	// (meanvar).
+	MaxSpeed float64 `yaml:"max_speed_mps"`
+	// DeckRadius: near someone on the deck, m, nothing on the water starts
+	// an alarm (their shadow), until they are in the water (meanvar).
+	DeckRadius float64 `yaml:"deck_radius_m"`
 	// ProcessWidth and History set up mog2 and knn.
 	ProcessWidth int      `yaml:"process_width"`
 	History      int      `yaml:"history"`
@@ -51,12 +63,36 @@ type DetectConfig struct {
 	ClearAfter   Duration `yaml:"clear_after"`
 }
 
-// MinChildArea is the default smallest blob, m², that may be a child.
-// The WHO Child Growth Standards put a 12-month-old girl's median head
-// circumference at 44.9 cm (head diameter about 0.143 m, a top-down disc of
-// about 0.016 m²); head and shoulders together seen from above are about
-// 0.02–0.06 m² (derived). The default sits below the smallest of these, so
-// that a one-year-old's head alone still passes.
+// MinBodyArea is the smallest whole visible body, m² at half contrast,
+// that may raise an alarm with the meanvar detector. Derivation from the
+// WHO Child Growth Standards medians (12 months, the youngest and
+// smallest child the alarm is for; girls, the smaller): length 74.0 cm,
+// head circumference 44.9 cm, so a head 0.143 m across (circumference /
+// π); shoulder breadth of 1–4 year olds about 0.22–0.26 m (from memory).
+//
+//   - Upright in the water, the head (a disc of π/4 · 0.143² = 0.016 m²)
+//     and the shoulders and chest just under the surface, seen through
+//     clear water (an ellipse 0.22 m × 0.20 m, π/4 · 0.22 · 0.20 =
+//     0.035 m²), overlap to about 0.04 m² seen from straight above; an
+//     oblique camera, which sees the body under the surface displaced
+//     along its line of sight, sees more.
+//   - Floating face down (the posture of a drowning), the body from above
+//     is about length × shoulder breadth × π/4 = 0.74 · 0.22 · 0.785 =
+//     0.13 m², and the generated and independent scenes label 0.11–0.18 m².
+//
+// The default, 0.035 m², sits just under the smallest of these, above a
+// floating leaf (0.003–0.02 m²) and a bird resting on the water (up to
+// 0.03 m²). A candidate's area is measured where it differs from the
+// water by at least half its peak contrast (Features.Half), close to its
+// own outline; the looser outline blurring and the water's noise add
+// around it is not counted.
+const MinBodyArea = 0.035
+
+// MinChildArea is the default smallest blob, m², of the mixture-model
+// detectors (mog2, knn), which measure a blob's outline: the WHO median
+// head circumference at 12 months (44.9 cm, girls) is a head 0.143 m
+// across, a top-down disc of about 0.016 m²; the default sits below it, so
+// that a one-year-old's head alone passes.
 const MinChildArea = 0.012
 
 // defaultDetect returns the detection defaults.
@@ -73,10 +109,14 @@ func defaultDetect() DetectConfig {
 		Noise:        mv.Noise,
 		LightCell:    mv.LightCell,
 		Smooth:       mv.Smooth,
-		ShadowChroma: defaultShadowChroma,
+		Deck:         defaultDeck,
+		MinScore:     defaultMinScore,
+		MaxLength:    defaultMaxLength,
+		MaxSpeed:     defaultMaxSpeed,
+		DeckRadius:   defaultDeckRadius,
 		ProcessWidth: 640,
 		History:      500,
-		MinArea:      0.04,
+		MinArea:      MinBodyArea,
 		MaxArea:      2.5,
 		Persist:      Duration(a.Persist),
 		UpdateEvery:  Duration(a.UpdateEvery),
@@ -84,13 +124,35 @@ func defaultDetect() DetectConfig {
 	}
 }
 
-// defaultShadowChroma: see judgeRules.ShadowChroma.
-const defaultShadowChroma = 3
+// Defaults of the judge's rules (judge.go).
+const (
+	// defaultMinScore is fitted on the tuning seeds (see detect_fit.md):
+	// the broad, faint changes a dying gust leaves score 30–40 over their
+	// area, children 45 and more.
+	defaultMinScore = 50
+	// defaultMaxLength: the longest body is a 48-month-old's (WHO median
+	// height 103.3 cm) with an arm raised, about 1.5 m; 2 m allows for the
+	// outline's blur. Cloud edges and ripple bands along lane lines run
+	// across the pool.
+	defaultMaxLength = 2.0
+	// defaultMaxSpeed: an adult's shadow walking past moves at walking
+	// pace, over 1 m/s (common practice: 1.2–1.5 m/s); a small child in the
+	// water does not (from memory: well under 1 m/s).
+	defaultMaxSpeed = 1.2
+	// defaultDeckRadius: a shadow on the water beside someone at the edge.
+	defaultDeckRadius = 2.5
+)
 
 // judgeRulesOf returns the rules tracks are judged by.
 func judgeRulesOf(d DetectConfig) judgeRules {
-	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, ShadowChroma: d.ShadowChroma, MinWaterChroma: 5}
+	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, MinScore: d.MinScore, MaxLength: d.MaxLength, MaxSpeed: d.MaxSpeed,
+		DeckRadius: max(0, d.DeckRadius), DeckMemory: time.Second, DeckMinArea: d.MinArea}
 }
+
+// defaultDeck is the deck watched around the water, m: a toddler on
+// hands and knees at the edge (WHO median length at 12 months 74–76 cm)
+// is seen whole.
+const defaultDeck = 0.6
 
 // defaultCell is the side of a cell of the rectified pool, m: a
 // one-year-old's head (WHO median head circumference 44.9 cm, a diameter
@@ -136,14 +198,29 @@ func mergeDetect(def, d DetectConfig) DetectConfig {
 	if d.LightCell == 0 {
 		d.LightCell = def.LightCell
 	}
+	if d.Deck == 0 {
+		d.Deck = def.Deck
+	}
 	if d.Smooth == 0 {
 		d.Smooth = def.Smooth
 	}
-	if d.ShadowChroma == 0 {
-		d.ShadowChroma = def.ShadowChroma
+	if d.MinScore == 0 {
+		d.MinScore = def.MinScore
+	}
+	if d.MaxLength == 0 {
+		d.MaxLength = def.MaxLength
+	}
+	if d.MaxSpeed == 0 {
+		d.MaxSpeed = def.MaxSpeed
+	}
+	if d.DeckRadius == 0 {
+		d.DeckRadius = def.DeckRadius
 	}
 	if d.MinArea == 0 {
 		d.MinArea = def.MinArea
+		if d.Method != def.Method {
+			d.MinArea = MinChildArea
+		}
 	}
 	if d.MaxArea == 0 {
 		d.MaxArea = def.MaxArea
@@ -389,7 +466,7 @@ func detectorConfig(cam CameraConfig, cal *calibration) (vision.DetectorConfig, 
 			MinArea: d.MinArea, PixelArea: cal.pixelArea,
 		}, nil
 	}
-	grid, err := cal.rectification(d.Cell)
+	grid, err := cal.rectification(d.Cell, max(0, d.Deck))
 	if err != nil {
 		return vision.DetectorConfig{}, fmt.Errorf("camera %s: %w", cam.ID, err)
 	}

@@ -20,6 +20,7 @@ type candidateNote struct {
 	At       homography.Point // pool metres on the water surface
 	Features vision.Features
 	Rejected string // why, or "" when it went to the tracker
+	Outside  bool   // rejected for its centre being off the water
 	Track    int    // the track it joined, 0 when rejected
 }
 
@@ -133,7 +134,7 @@ func (e *explainer) why(p *processor, r vision.Result, occ *synth.Occupation, pr
 	}
 	if near != nil && best <= e.far {
 		ok, why := p.judge.eligible(near.ID)
-		f, n := p.judge.summary(near.ID)
+		f, n, _ := p.judge.summary(near.ID)
 		dwell := near.Last - near.First
 		var s string
 		switch {
@@ -177,8 +178,8 @@ func featureText(f vision.Features, n int) string {
 	if n > 1 {
 		fmt.Fprintf(&b, "medians of %d candidates: ", n)
 	}
-	fmt.Fprintf(&b, "area %.3f m² (core %.3f), score %.0f (peak %.0f), contrast %+.2f, chroma %.1f (water %.1f), %.2f × %.2f m, %.2f m from the edge",
-		f.Area, f.Core, f.Score, f.Peak, f.Contrast, f.Chroma, f.Water, f.Length, f.Width, f.Edge)
+	fmt.Fprintf(&b, "area %.3f m² (core %.3f, at half contrast %.3f), score %.0f (peak %.0f), contrast %+.2f (%.0f %% brighter), chroma %.1f (top %.1f, water %.1f), %.2f × %.2f m, %.2f m from the edge",
+		f.Area, f.Core, f.Half, f.Score, f.Peak, f.Contrast, 100*f.Bright, f.Chroma, f.ChromaTop, f.Water, f.Length, f.Width, f.Edge)
 	return b.String()
 }
 

@@ -3,57 +3,76 @@ package main
 import (
 	"fmt"
 	"log/slog"
+	"math"
 	"sort"
 	"time"
 
+	"stillwater/homography"
 	"stillwater/vision"
 )
 
 // judge decides which tracks of the rectified detector may raise an alarm,
 // on what their candidates looked like over the last window of media time
-// (the medians of their features), not on one frame: water makes
-// candidates that pass any one test now and then.
+// (the medians of their features and how far they moved), not on one
+// frame: water makes candidates that pass any one test now and then.
 type judge struct {
-	window  time.Duration // size is judged over this much of the recent past
-	memory  time.Duration // colour over this much: a shadow stays one
-	rules   judgeRules
-	tracks  map[int]*trackHistory
-	log     *slog.Logger
-	lastNow time.Duration
+	window time.Duration
+	rules  judgeRules
+	tracks map[int]*trackHistory
+	deck   []deckBody
+	log    *slog.Logger
 }
 
 // judgeRules are the thresholds a track's evidence is held to.
 type judgeRules struct {
-	// MinArea and MaxArea bound the whole visible body, m².
+	// MinArea is the least area at half contrast (Features.Half) of the
+	// whole visible body, m²; MaxArea the most (Features.Area).
 	MinArea, MaxArea float64
-	// ShadowChroma is the chromaticity distance (×100) under which a
-	// candidate darker than the water is taken for a shadow: a shadow
-	// dims the water and keeps its colour.
-	ShadowChroma float64
-	// MinWaterChroma is how far from grey (×100) the water's colour must
-	// be for the shadow test to apply; a monochrome night picture has no
-	// colour to tell by.
-	MinWaterChroma float64
+	// MaxLength is the longest a body can be, m.
+	MaxLength float64
+	// MinScore is the least mean score over the candidate (Features.Score):
+	// broad, faint changes of the water are not a body.
+	MinScore float64
+	// MaxSpeed is the fastest, m/s, a track may move over the window and
+	// still start an alarm.
+	MaxSpeed float64
+	// DeckRadius: a track within this distance, m, of a body seen on the
+	// deck in the last DeckMemory does not start an alarm; what lies on
+	// the water beside someone standing at the edge is their shadow, until
+	// they are in the water themselves.
+	DeckRadius float64
+	DeckMemory time.Duration
+	// DeckMinArea is the least area, m², of a candidate on the deck that
+	// counts as a body there.
+	DeckMinArea float64
 }
 
 // trackHistory is one track's recent candidates.
 type trackHistory struct {
 	feats   []vision.Features
+	at      []homography.Point
 	times   []time.Duration
 	raised  bool   // the track has raised an alarm: it stays eligible
 	verdict string // the last reason it was not eligible, "" when it was
+}
+
+// deckBody is a candidate whose centre was on the deck.
+type deckBody struct {
+	at homography.Point
+	t  time.Duration
 }
 
 func newJudge(window time.Duration, rules judgeRules, log *slog.Logger) *judge {
 	if window <= 0 {
 		window = time.Second
 	}
-	return &judge{window: window, memory: max(window, judgeMemory), rules: rules, tracks: map[int]*trackHistory{}, log: log}
+	return &judge{window: window, rules: rules, tracks: map[int]*trackHistory{}, log: log}
 }
 
-// observe records the candidates of the tracks seen at media time now and
-// forgets tracks that are gone.
-func (j *judge) observe(now time.Duration, tracks []vision.Track) {
+// observe records the candidates of the tracks seen at media time now,
+// and the bodies seen on the deck (deck), and forgets tracks that are
+// gone.
+func (j *judge) observe(now time.Duration, tracks []vision.Track, deck []homography.Point) {
 	live := map[int]bool{}
 	for _, t := range tracks {
 		live[t.ID] = true
@@ -66,20 +85,30 @@ func (j *judge) observe(now time.Duration, tracks []vision.Track) {
 			j.tracks[t.ID] = h
 		}
 		h.feats = append(h.feats, t.Features)
+		h.at = append(h.at, homography.Point{X: t.X, Y: t.Y})
 		h.times = append(h.times, now)
-		// Keep the memory, and at least the last candidate.
+		// Keep the window, and at least the last candidate.
 		cut := 0
-		for cut < len(h.times)-1 && now-h.times[cut] > j.memory {
+		for cut < len(h.times)-1 && now-h.times[cut] > j.window {
 			cut++
 		}
-		h.feats, h.times = h.feats[cut:], h.times[cut:]
+		h.feats, h.at, h.times = h.feats[cut:], h.at[cut:], h.times[cut:]
 	}
 	for id := range j.tracks {
 		if !live[id] {
 			delete(j.tracks, id)
 		}
 	}
-	j.lastNow = now
+	keep := j.deck[:0]
+	for _, b := range j.deck {
+		if now-b.t <= j.rules.DeckMemory {
+			keep = append(keep, b)
+		}
+	}
+	j.deck = keep
+	for _, p := range deck {
+		j.deck = append(j.deck, deckBody{at: p, t: now})
+	}
 }
 
 // raised marks a track as having raised an alarm.
@@ -89,34 +118,37 @@ func (j *judge) raised(id int) {
 	}
 }
 
-// judgeMemory is how long a track's colour is remembered.
-const judgeMemory = 10 * time.Second
-
-// summary returns the medians of a track's features: colour and contrast
-// over the judge's memory, the rest over its window.
-func (j *judge) summary(id int) (vision.Features, int) {
+// summary returns the medians of a track's features over the window, the
+// number of candidates they are of, and its speed over the window, m/s.
+func (j *judge) summary(id int) (vision.Features, int, float64) {
 	h := j.tracks[id]
 	if h == nil || len(h.feats) == 0 {
-		return vision.Features{}, 0
+		return vision.Features{}, 0, 0
 	}
-	recent := 0
-	for recent < len(h.times)-1 && h.times[len(h.times)-1]-h.times[recent] > j.window {
-		recent++
+	med := func(get func(vision.Features) float64) float64 { return featureMedian(h.feats, get) }
+	f := vision.Features{
+		Area:      med(func(f vision.Features) float64 { return f.Area }),
+		Core:      med(func(f vision.Features) float64 { return f.Core }),
+		Half:      med(func(f vision.Features) float64 { return f.Half }),
+		Score:     med(func(f vision.Features) float64 { return f.Score }),
+		Peak:      med(func(f vision.Features) float64 { return f.Peak }),
+		Contrast:  med(func(f vision.Features) float64 { return f.Contrast }),
+		Bright:    med(func(f vision.Features) float64 { return f.Bright }),
+		Chroma:    med(func(f vision.Features) float64 { return f.Chroma }),
+		ChromaTop: med(func(f vision.Features) float64 { return f.ChromaTop }),
+		Water:     med(func(f vision.Features) float64 { return f.Water }),
+		Wet:       med(func(f vision.Features) float64 { return f.Wet }),
+		Length:    med(func(f vision.Features) float64 { return f.Length }),
+		Width:     med(func(f vision.Features) float64 { return f.Width }),
+		Edge:      med(func(f vision.Features) float64 { return f.Edge }),
 	}
-	long := func(get func(vision.Features) float64) float64 { return featureMedian(h.feats, get) }
-	med := func(get func(vision.Features) float64) float64 { return featureMedian(h.feats[recent:], get) }
-	return vision.Features{
-		Area:     med(func(f vision.Features) float64 { return f.Area }),
-		Core:     med(func(f vision.Features) float64 { return f.Core }),
-		Score:    med(func(f vision.Features) float64 { return f.Score }),
-		Peak:     med(func(f vision.Features) float64 { return f.Peak }),
-		Contrast: long(func(f vision.Features) float64 { return f.Contrast }),
-		Chroma:   long(func(f vision.Features) float64 { return f.Chroma }),
-		Water:    long(func(f vision.Features) float64 { return f.Water }),
-		Length:   med(func(f vision.Features) float64 { return f.Length }),
-		Width:    med(func(f vision.Features) float64 { return f.Width }),
-		Edge:     med(func(f vision.Features) float64 { return f.Edge }),
-	}, len(h.feats) - recent
+	speed := 0.0
+	if n := len(h.times); n > 1 {
+		if dt := (h.times[n-1] - h.times[0]).Seconds(); dt > 0 {
+			speed = h.at[n-1].Dist(h.at[0]) / dt
+		}
+	}
+	return f, len(h.feats), speed
 }
 
 // featureMedian returns the median of one feature over fs.
@@ -146,24 +178,56 @@ func (j *judge) eligible(id int) (bool, string) {
 	if h.raised {
 		return true, ""
 	}
-	f, _ := j.summary(id)
+	f, _, speed := j.summary(id)
 	r := j.rules
+	at := h.at[len(h.at)-1]
 	why := ""
 	switch {
-	case f.Area < r.MinArea:
-		why = fmt.Sprintf("smaller than a child's body (%.3f m² < %.3f m²)", f.Area, r.MinArea)
+	case f.Half < r.MinArea:
+		why = fmt.Sprintf("smaller than a child's body (%.3f m² at half contrast < %.3f m²)", f.Half, r.MinArea)
 	case f.Area > r.MaxArea:
 		why = fmt.Sprintf("larger than a person (%.3f m² > %.3f m²)", f.Area, r.MaxArea)
-	case r.ShadowChroma > 0 && f.Contrast < 0 && f.Chroma < r.ShadowChroma && f.Water >= r.MinWaterChroma:
-		why = fmt.Sprintf("a shadow: darker than the water (%.2f) in the water's own colour (chroma %.2f < %.2f)", f.Contrast, f.Chroma, r.ShadowChroma)
+	case f.Score < r.MinScore:
+		why = fmt.Sprintf("too faint over its area (mean score %.0f < %.0f)", f.Score, r.MinScore)
+	case r.MaxLength > 0 && f.Length > r.MaxLength:
+		why = fmt.Sprintf("longer than a person (%.2f m > %.2f m)", f.Length, r.MaxLength)
+	case r.MaxSpeed > 0 && speed > r.MaxSpeed:
+		why = fmt.Sprintf("moving faster than a child in the water (%.2f m/s > %.2f m/s)", speed, r.MaxSpeed)
+	default:
+		for _, b := range j.deck {
+			// Nearer than deckSelf it is the track's own body, part of it
+			// still on the deck.
+			if d := b.at.Dist(at); d <= r.DeckRadius && d > deckSelf {
+				why = fmt.Sprintf("someone is on the deck %.1f m away: a shadow until they are in the water", d)
+				break
+			}
+		}
 	}
 	if why != h.verdict && j.log != nil {
+		args := append([]any{"track", id, "speed_mps", round3(speed)}, featureArgs(f)...)
 		if why == "" {
-			j.log.Debug("track eligible to alarm", append([]any{"track", id}, featureArgs(f)...)...)
+			j.log.Debug("track eligible to alarm", args...)
 		} else {
-			j.log.Debug("track not eligible to alarm: "+why, append([]any{"track", id}, featureArgs(f)...)...)
+			j.log.Debug("track not eligible to alarm: "+why, args...)
 		}
 	}
 	h.verdict = why
 	return why == "", why
+}
+
+// deckSelf is the distance, m, within which a body on the deck is the
+// track's own: a child climbing in, whose centre crosses the edge back and
+// forth.
+const deckSelf = 0.7
+
+// deckBodies returns the positions of this frame's candidates that are
+// bodies on the deck: centre off the water, area at least min.
+func deckBodies(notes []candidateNote, min float64) []homography.Point {
+	var out []homography.Point
+	for _, n := range notes {
+		if n.Outside && n.Features.Area >= min && !math.IsNaN(n.At.X) {
+			out = append(out, n.At)
+		}
+	}
+	return out
 }

@@ -47,11 +47,11 @@ type processor struct {
 	// decision (explain.go); explain, when set, is called after each step.
 	notes   []candidateNote
 	explain func(p *processor, r vision.Result)
-	log      *slog.Logger
-	seq      uint64
-	epoch    time.Time // wall time of media time 0
-	now      func() time.Time
-	metrics  *cameraMetrics
+	log     *slog.Logger
+	seq     uint64
+	epoch   time.Time // wall time of media time 0
+	now     func() time.Time
+	metrics *cameraMetrics
 }
 
 func newProcessor(cam CameraConfig, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *cameraMetrics) (*processor, error) {
@@ -123,7 +123,7 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 	}
 	tracks := p.tracker.Update(r.Media, dets)
 	p.tracks = tracks
-	p.judge.observe(r.Media, tracks)
+	p.judge.observe(r.Media, tracks, deckBodies(p.notes, d.MinArea))
 	obs := make([]alert.Observation, 0, len(tracks))
 	var hold []image.Rectangle
 	for _, t := range tracks {
@@ -167,9 +167,9 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 		var ref string
 		if dec.Event == "start" {
 			p.judge.raised(o.Track)
-			f, n := p.judge.summary(o.Track)
+			f, n, speed := p.judge.summary(o.Track)
 			p.log.Debug("track raised an alarm", append([]any{"track", o.Track, "dwell", dec.Dwell, "x_m", round3(o.X), "y_m", round3(o.Y),
-				"hits", o.Hits, "speed_mps", round3(math.Hypot(o.VX, o.VY)), "candidates", n}, featureArgs(f)...)...)
+				"hits", o.Hits, "speed_mps", round3(speed), "candidates", n}, featureArgs(f)...)...)
 			p.metrics.alarm()
 			if p.evidence != nil {
 				ref = p.evidence(r, o)
@@ -237,7 +237,7 @@ func (p *processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool
 	reject := func(reason, why string, args ...any) (vision.Detection, bool) {
 		p.log.Debug("candidate rejected: "+why, append([]any{"frame", r.Index, "x_m", round3(c.X), "y_m", round3(c.Y)}, append(args, featureArgs(f)...)...)...)
 		p.metrics.rejected(reason)
-		p.notes = append(p.notes, candidateNote{At: c, Features: f, Rejected: why})
+		p.notes = append(p.notes, candidateNote{At: c, Features: f, Rejected: why, Outside: reason == "outside"})
 		return vision.Detection{}, false
 	}
 	if name, in := p.zones.excluded(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}, c); in {
@@ -264,5 +264,5 @@ const candidateShare = 0.35
 // featureArgs are a candidate's features as log attributes.
 func featureArgs(f vision.Features) []any {
 	return []any{"area_m2", round4(f.Area), "core_m2", round4(f.Core), "score", round3(f.Score), "peak", round3(f.Peak),
-		"contrast", round3(f.Contrast), "chroma", round3(f.Chroma), "water_chroma", round3(f.Water), "length_m", round3(f.Length), "width_m", round3(f.Width), "edge_m", round3(f.Edge)}
+		"half_m2", round4(f.Half), "contrast", round3(f.Contrast), "bright", round3(f.Bright), "chroma", round3(f.Chroma), "chroma_top", round3(f.ChromaTop), "water_chroma", round3(f.Water), "wet", round3(f.Wet), "length_m", round3(f.Length), "width_m", round3(f.Width), "edge_m", round3(f.Edge)}
 }
