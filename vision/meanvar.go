@@ -308,7 +308,8 @@ type meanVar struct {
 	short      gocv.Mat  // CV_32FC3 short temporal mean
 	mean, vari gocv.Mat  // CV_32FC3 background
 	gain       gocv.Mat  // CV_32FC3 local illumination ratio
-	glint      gocv.Mat  // CV_32FC1 how often each cell glints
+	glint      gocv.Mat  // CV_32FC1 how often each cell starts or stops glinting
+	glintPrev  gocv.Mat  // CV_8UC1 whether each cell glinted in the last frame
 	extra      gocv.Mat  // CV_32FC3 variance a slight shift of the picture adds at structure
 	gx, gy     gocv.Mat  // CV_32FC3 scratch: the mean's gradient
 	score      gocv.Mat  // CV_32FC1
@@ -368,6 +369,7 @@ func newMeanVar(cfg DetectorConfig, src image.Point) (*meanVar, error) {
 	d.vari = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
 	d.gain = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
 	d.glint = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32F)
+	d.glintPrev = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
 	d.extra = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
 	d.gx, d.gy = gocv.NewMat(), gocv.NewMat()
 	d.weight = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
@@ -448,6 +450,7 @@ func (d *meanVar) restart() error {
 	d.gain.SetTo(gocv.NewScalar(1, 1, 1, 0))
 	d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
 	d.glint.SetTo(gocv.NewScalar(0, 0, 0, 0))
+	d.glintPrev.SetTo(gocv.NewScalar(0, 0, 0, 0))
 	d.extra.SetTo(gocv.NewScalar(0, 0, 0, 0))
 	if d.ref == nil {
 		d.mean.SetTo(gocv.NewScalar(0, 0, 0, 0))
@@ -563,11 +566,12 @@ func (d *meanVar) structure() {
 const structureEvery = 5
 
 // Glints: a cell whose unblurred pixel reaches glintLevel (the mixture
-// detector's, detector.go) in some channel glints in that frame; one
-// glinting in glintMin of the frames of the last glintTime is glittering
-// water, where only a darkening may be a body.
+// detector's, detector.go) in some channel glints in that frame; one that
+// starts or stops glinting in glintMin of the frames of the last glintTime
+// is glittering water, where only a darkening may be a body. A bright body
+// glints steadily, and scores.
 const (
-	glintMin  = 0.03
+	glintMin  = 0.08
 	glintTime = 3 * time.Second
 )
 
@@ -593,7 +597,7 @@ func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameS
 		return nil, st, err
 	}
 	var buf [errBufLen]C.char
-	if err := cErr(C.sw_pool_glint(unsafe.Pointer(d.frame.Ptr()), unsafe.Pointer(d.glint.Ptr()), C.double(d.cfg.rate(glintTime)), C.int(glintLevel), &buf[0], errBufLen), &buf, "glints"); err != nil {
+	if err := cErr(C.sw_pool_glint(unsafe.Pointer(d.frame.Ptr()), unsafe.Pointer(d.glint.Ptr()), unsafe.Pointer(d.glintPrev.Ptr()), C.double(d.cfg.rate(glintTime)), C.int(glintLevel), &buf[0], errBufLen), &buf, "glints"); err != nil {
 		return nil, st, err
 	}
 	d.smooth()
@@ -951,7 +955,7 @@ func (d *meanVar) Close() error {
 		return nil
 	}
 	d.closed = true
-	for _, m := range []*gocv.Mat{&d.mapX, &d.mapY, &d.water, &d.frame, &d.short, &d.mean, &d.vari, &d.gain, &d.glint, &d.extra, &d.gx, &d.gy, &d.score, &d.contrast,
+	for _, m := range []*gocv.Mat{&d.mapX, &d.mapY, &d.water, &d.frame, &d.short, &d.mean, &d.vari, &d.gain, &d.glint, &d.glintPrev, &d.extra, &d.gx, &d.gy, &d.score, &d.contrast,
 		&d.weight, &d.hold, &d.lo, &d.hi, &d.fg, &d.labels, &d.stats, &d.cents, &d.kJoin, &d.kGrow, &d.kFill, &d.gray, &d.prev, &d.probeF, &d.scratch} {
 		m.Close()
 	}

@@ -152,22 +152,29 @@ int sw_pool_gain(void* shortp, void* meanp, void* weightp, int cellPx, double mi
     }
 }
 
-int sw_pool_glint(void* framep, void* ratep, double a, int level, char* err, int errlen) {
+int sw_pool_glint(void* framep, void* ratep, void* prevp, double a, int level, char* err, int errlen) {
     try {
         const cv::Mat& f = *static_cast<cv::Mat*>(framep);
         cv::Mat& r = *static_cast<cv::Mat*>(ratep);
+        cv::Mat& prev = *static_cast<cv::Mat*>(prevp);
         if (f.type() != CV_8UC3) throw std::invalid_argument("pool model: frame is not 8-bit BGR");
         if (r.type() != CV_32FC1 || r.size() != f.size()) {
             r.create(f.size(), CV_32FC1);
             r.setTo(0);
         }
+        if (prev.type() != CV_8UC1 || prev.size() != f.size()) {
+            prev.create(f.size(), CV_8UC1);
+            prev.setTo(0);
+        }
         const float fa = static_cast<float>(a);
         for (int y = 0; y < f.rows; ++y) {
             const uchar* fp = f.ptr<uchar>(y);
             float* rp = r.ptr<float>(y);
+            uchar* pp = prev.ptr<uchar>(y);
             for (int x = 0; x < f.cols; ++x) {
-                const bool g = fp[3 * x] >= level || fp[3 * x + 1] >= level || fp[3 * x + 2] >= level;
-                rp[x] += fa * ((g ? 1.0f : 0.0f) - rp[x]);
+                const uchar g = (fp[3 * x] >= level || fp[3 * x + 1] >= level || fp[3 * x + 2] >= level) ? 1 : 0;
+                rp[x] += fa * ((g != pp[x] ? 1.0f : 0.0f) - rp[x]);
+                pp[x] = g;
             }
         }
         return 0;

@@ -55,12 +55,14 @@ typedef struct {
     float varClip;     // a squared residual counts at most varClip times the variance plus noise2
     float varGain;     // the variance learns varGain times as fast as the mean
     int learn;         // 0: score only
-    float glintMin;    // a cell glinting at least this often counts only when darker
+    float glintMin;    // a cell sparkling at least this often counts only when darker
 } SwPoolParams;
 
-// sw_pool_glint sets rate += a (glint − rate), where glint is 1 for a pixel
-// of the (unblurred) frame at or above level in any channel.
-int sw_pool_glint(void* frame, void* rate, double a, int level, char* err, int errlen);
+// sw_pool_glint sets rate += a (toggle − rate), where toggle is 1 for a
+// pixel of the (unblurred) frame that went from below level in every
+// channel to at or above it in one, or back, since the frame before (prev,
+// CV_8UC1, which it updates): glitter sparkles, a bright body does not.
+int sw_pool_glint(void* frame, void* rate, void* prev, double a, int level, char* err, int errlen);
 
 // sw_pool_update scores img (CV_32FC3 or CV_8UC3) against the model under
 // the gain: score = sum over channels of (img − gain·mean)² / (gain²·var +

@@ -1,0 +1,286 @@
+package vision
+
+import (
+	"image"
+	"image/color"
+	"math"
+	"math/rand"
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+	"gocv.io/x/gocv"
+)
+
+// squareGrid is a rectification of a 4 m × 2 m pool seen straight from
+// above at 100 px/m in a 440×240 frame: pool metre (x, y) is pixel
+// (20 + 100x, 20 + 100y); cells of 2.5 cm, 0.2 m of deck around.
+func squareGrid() *Rectification {
+	const cell, deck = 0.025, 0.2
+	cols, rows := int(math.Round((4+2*deck)/cell)), int(math.Round((2+2*deck)/cell))
+	r := &Rectification{Cols: cols, Rows: rows, Cell: cell, OriginX: -deck, OriginY: -deck, Src: image.Pt(440, 240)}
+	for j := 0; j < rows; j++ {
+		for i := 0; i < cols; i++ {
+			x, y := -deck+(float64(i)+0.5)*cell, -deck+(float64(j)+0.5)*cell
+			r.MapX = append(r.MapX, float32(20+100*x))
+			r.MapY = append(r.MapY, float32(20+100*y))
+			k := byte(CellDeck)
+			if x >= 0 && y >= 0 && x <= 4 && y <= 2 {
+				k = CellWater
+			}
+			r.Water = append(r.Water, k)
+		}
+	}
+	return r
+}
+
+// waterScene draws frames of flat water with sensor noise and a moving
+// caustic-like ripple, an optional square body and a light level; the
+// caller closes each frame.
+type waterScene struct {
+	rng   *rand.Rand
+	light float64 // 1 is full sun
+	n     int
+	noise []byte
+}
+
+func newWaterScene() *waterScene {
+	return &waterScene{rng: rand.New(rand.NewSource(1)), light: 1}
+}
+
+// frame returns the next frame; body, in pool metres, is drawn in col.
+func (s *waterScene) frame(body image.Rectangle, col color.RGBA) gocv.Mat {
+	s.n++
+	base := gocv.NewScalar(190*s.light, 170*s.light, 80*s.light, 0)
+	m := gocv.NewMatWithSizeFromScalar(base, 240, 440, gocv.MatTypeCV8UC3)
+	// Ripples: bright diagonal bands moving across, 0.3 m apart.
+	for k := -10; k < 30; k++ {
+		x := float64(k*30+(s.n*7)%30) + 20
+		gocv.Line(&m, image.Pt(int(x), 0), image.Pt(int(x)+120, 240), color.RGBA{uint8(215 * s.light), uint8(200 * s.light), uint8(110 * s.light), 0}, 3)
+	}
+	if !body.Empty() {
+		px := image.Rect(20+body.Min.X, 20+body.Min.Y, 20+body.Max.X, 20+body.Max.Y)
+		gocv.Rectangle(&m, px, color.RGBA{uint8(float64(col.R) * s.light), uint8(float64(col.G) * s.light), uint8(float64(col.B) * s.light), 0}, -1)
+	}
+	if s.noise == nil {
+		s.noise = make([]byte, 240*440*3)
+	}
+	b, _ := m.DataPtrUint8()
+	for i := range b {
+		v := float64(b[i]) + s.rng.NormFloat64()*2
+		b[i] = uint8(math.Max(0, math.Min(255, v)))
+	}
+	return m
+}
+
+// body returns a square of side cm centimetres at pool (x, y) m, in
+// frame pixels relative to the pool origin.
+func bodyAt(x, y, side float64) image.Rectangle {
+	h := side * 100 / 2
+	return image.Rect(int(x*100-h), int(y*100-h), int(x*100+h), int(y*100+h))
+}
+
+func newTestMeanVar(t *testing.T, ref *Reference) *meanVar {
+	t.Helper()
+	cfg := DetectorConfig{Method: "meanvar", Grid: squareGrid(), MeanVar: MeanVarConfig{FPS: 10}, Reference: ref}
+	fd, err := newFrameDetector(cfg, image.Pt(440, 240))
+	require.NoError(t, err)
+	return fd.(*meanVar)
+}
+
+// run feeds n frames and returns the last frame's blobs and every frame's
+// blob count.
+func run(t *testing.T, d *meanVar, s *waterScene, n int, body image.Rectangle, col color.RGBA, hold func([]Blob) []image.Rectangle) ([]Blob, []int) {
+	t.Helper()
+	var last []Blob
+	var counts []int
+	var h []image.Rectangle
+	for i := 0; i < n; i++ {
+		f := s.frame(body, col)
+		blobs, _, err := d.Detect(f, h)
+		f.Close()
+		require.NoError(t, err)
+		last = blobs
+		counts = append(counts, len(blobs))
+		if hold != nil {
+			h = hold(blobs)
+		}
+	}
+	return last, counts
+}
+
+func holdAll(bs []Blob) []image.Rectangle {
+	var out []image.Rectangle
+	for _, b := range bs {
+		out = append(out, b.Plane.Cells)
+	}
+	return out
+}
+
+func TestMeanVarFindsDarkerAndBrighterBodies(t *testing.T) {
+	tests := []struct {
+		name   string
+		col    color.RGBA
+		darker bool
+	}{
+		{"dark suit", color.RGBA{40, 50, 60, 0}, true},
+		{"pale skin at night", color.RGBA{250, 235, 225, 0}, false},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			d := newTestMeanVar(t, nil)
+			defer d.Close()
+			s := newWaterScene()
+			_, counts := run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
+			for i, c := range counts {
+				assert.Zero(t, c, "frame %d of empty water", i)
+			}
+			// A 0.3 m square at (2, 1) m for 2 s.
+			blobs, _ := run(t, d, s, 20, bodyAt(2, 1, 0.3), tt.col, nil)
+			require.Len(t, blobs, 1)
+			b := blobs[0]
+			assert.InDelta(t, 2.0, b.Plane.X, 0.05)
+			assert.InDelta(t, 1.0, b.Plane.Y, 0.05)
+			// 0.09 m², measured where it differs by half its contrast or more.
+			assert.InDelta(t, 0.09, b.Features.Half, 0.03)
+			assert.Equal(t, tt.darker, b.Features.Contrast < 0, "contrast %v", b.Features.Contrast)
+			assert.InDelta(t, 1.0, b.Features.Wet, 1e-9)
+			// The source pixel of (2, 1) m is (220, 120).
+			assert.InDelta(t, 220, b.Centroid.X, 6)
+			assert.InDelta(t, 120, b.Centroid.Y, 6)
+		})
+	}
+}
+
+func TestMeanVarLightChangeIsNotABody(t *testing.T) {
+	// A cloud: the light drops by 45 % over 2 s and stays down. The local
+	// illumination ratio scales the background; nothing is reported.
+	d := newTestMeanVar(t, nil)
+	defer d.Close()
+	s := newWaterScene()
+	run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
+	for i := 0; i < 60; i++ {
+		s.light = math.Max(0.55, 1-0.45*float64(i)/20)
+		f := s.frame(image.Rectangle{}, color.RGBA{})
+		blobs, _, err := d.Detect(f, nil)
+		f.Close()
+		require.NoError(t, err)
+		assert.Empty(t, blobs, "frame %d, light %.2f", i, s.light)
+	}
+}
+
+func TestMeanVarHoldKeepsStillBody(t *testing.T) {
+	// A still body for 60 s (10 fps), its cells held as a tracker would:
+	// still found at the end, as strongly as at the start. The background
+	// learns with a 30 s time constant, so an unheld body would be half
+	// gone by then.
+	d := newTestMeanVar(t, nil)
+	defer d.Close()
+	s := newWaterScene()
+	run(t, d, s, 60, image.Rectangle{}, color.RGBA{}, nil)
+	body := bodyAt(2.5, 1.2, 0.4)
+	first, _ := run(t, d, s, 15, body, color.RGBA{40, 50, 60, 0}, holdAll)
+	require.Len(t, first, 1)
+	last, counts := run(t, d, s, 600, body, color.RGBA{40, 50, 60, 0}, holdAll)
+	for i, c := range counts {
+		require.Equal(t, 1, c, "frame %d", i)
+	}
+	assert.Greater(t, last[0].Features.Score, 0.8*first[0].Features.Score)
+}
+
+func TestMeanVarStartsFromReference(t *testing.T) {
+	// A reference learned on the empty pool lets a new detector find a body
+	// that is there from its first frame, after the short mean settles
+	// (1.5 s), and report nothing on the empty pool.
+	learn := newTestMeanVar(t, nil)
+	s := newWaterScene()
+	run(t, learn, s, 100, image.Rectangle{}, color.RGBA{}, nil)
+	ref, ok := learn.Reference()
+	learn.Close()
+	require.True(t, ok)
+
+	t.Run("body there at start", func(t *testing.T) {
+		d := newTestMeanVar(t, &ref)
+		defer d.Close()
+		_, counts := run(t, d, s, 25, bodyAt(1.5, 0.8, 0.3), color.RGBA{40, 50, 60, 0}, nil)
+		first := -1
+		for i, c := range counts {
+			if c > 0 {
+				first = i
+				break
+			}
+		}
+		require.GreaterOrEqual(t, first, 0, "never found")
+		assert.LessOrEqual(t, time.Duration(first)*100*time.Millisecond, 2*time.Second)
+	})
+	t.Run("empty pool", func(t *testing.T) {
+		d := newTestMeanVar(t, &ref)
+		defer d.Close()
+		_, counts := run(t, d, s, 50, image.Rectangle{}, color.RGBA{}, nil)
+		for i, c := range counts {
+			assert.Zero(t, c, "frame %d", i)
+		}
+	})
+	t.Run("without a reference the body is learned", func(t *testing.T) {
+		// The limit the reference removes: warming up (4 s) on a picture
+		// with the body in it learns the body as water, and after the
+		// warm-up it is not found either.
+		d := newTestMeanVar(t, nil)
+		defer d.Close()
+		_, counts := run(t, d, s, 80, bodyAt(1.5, 0.8, 0.3), color.RGBA{40, 50, 60, 0}, nil)
+		for i, c := range counts {
+			assert.Zero(t, c, "frame %d", i)
+		}
+	})
+	t.Run("wrong size", func(t *testing.T) {
+		bad := ref
+		bad.Cols--
+		_, err := newFrameDetector(DetectorConfig{Method: "meanvar", Grid: squareGrid(), Reference: &bad}, image.Pt(440, 240))
+		assert.ErrorContains(t, err, "reference")
+	})
+}
+
+func TestMeanVarBodyOnDeckIsNotWet(t *testing.T) {
+	// A body straddling the water's edge (x = 0): part of it on the deck.
+	d := newTestMeanVar(t, nil)
+	defer d.Close()
+	s := newWaterScene()
+	run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
+	blobs, _ := run(t, d, s, 20, bodyAt(0.05, 1, 0.3), color.RGBA{40, 50, 60, 0}, nil)
+	require.Len(t, blobs, 1)
+	assert.InDelta(t, 0.6, blobs[0].Features.Wet, 0.15)
+	assert.Less(t, blobs[0].Features.Edge, 0.1)
+}
+
+func TestRectificationSource(t *testing.T) {
+	r := squareGrid()
+	// Cell units: the centre of cell (i, j) is (i+0.5, j+0.5); pool metre
+	// (2, 1) is cell units ((2+0.2)/0.025, (1+0.2)/0.025) = (88, 48).
+	p, ok := r.source(88, 48)
+	require.True(t, ok)
+	assert.InDelta(t, 220, p.X, 1e-3)
+	assert.InDelta(t, 120, p.Y, 1e-3)
+	x, y := r.plane(88, 48)
+	assert.InDelta(t, 2, x, 1e-9)
+	assert.InDelta(t, 1, y, 1e-9)
+	// Scaled to a frame twice the size, pixels double.
+	s := r.scaled(image.Pt(880, 480))
+	p2, _ := s.source(88, 48)
+	assert.InDelta(t, 440, p2.X, 1e-3)
+}
+
+func TestEdgeDistance(t *testing.T) {
+	// A 5×5 watched square in a 7×7 grid: the centre is 3 cells from the
+	// nearest unwatched cell.
+	w := make([]byte, 49)
+	for y := 1; y < 6; y++ {
+		for x := 1; x < 6; x++ {
+			w[y*7+x] = 1
+		}
+	}
+	d := edgeDistance(w, 7, 7)
+	assert.InDelta(t, 3, d[3*7+3], 1e-6)
+	assert.InDelta(t, 1, d[1*7+3], 1e-6)
+	assert.Zero(t, d[0])
+}
