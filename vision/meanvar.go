@@ -269,6 +269,10 @@ type Features struct {
 	Half float64
 	// Bright is the share of Area brighter than the water expected there.
 	Bright float64
+	// Tint is the chromaticity distance from grey of the core's difference
+	// from the water (×100): 0 for white light added to the water (a glint,
+	// a reflection of the sky), tens for skin or a coloured suit.
+	Tint float64
 	// Wet is the share of Area on the water (the rest is on the deck
 	// around it: a body climbing in or out).
 	Wet float64
@@ -742,6 +746,7 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		bw := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_WIDTH)))
 		bh := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_HEIGHT)))
 		var cnt, core, chromaN int
+		var diff [3]float64 // summed difference from the expected water over the core, B, G, R
 		var sx, sy, sxx, syy, sxy, ssum, conSum, chroma, waterChroma float64
 		var peak float32
 		for y := by; y < by+bh; y++ {
@@ -776,6 +781,9 @@ func (d *meanVar) candidates() ([]Blob, error) {
 					b[c] = float64(gn[3*i+c] * mn[3*i+c])
 					sa += a[c]
 					sb += b[c]
+				}
+				for c := 0; c < 3; c++ {
+					diff[c] += a[c] - b[c]
 				}
 				if sa > 1 && sb > 1 {
 					var dd, dw float64
@@ -819,6 +827,17 @@ func (d *meanVar) candidates() ([]Blob, error) {
 				wet += int(d.wet[i])
 			}
 		}
+		// The tint of the difference: light added to the water (a glint, a
+		// reflection) is white, a body has colours of its own.
+		tint := 0.0
+		if sd := diff[0] + diff[1] + diff[2]; math.Abs(sd) > 1 {
+			var t2 float64
+			for c := 0; c < 3; c++ {
+				e := diff[c]/sd - 1.0/3
+				t2 += e * e
+			}
+			tint = 100 * math.Sqrt(t2)
+		}
 		slices.Sort(d.chromas)
 		top := 0.0
 		if n := len(d.chromas); n > 0 {
@@ -847,6 +866,7 @@ func (d *meanVar) candidates() ([]Blob, error) {
 			Half:      float64(half) * cellArea,
 			Bright:    float64(bright) / fc,
 			Wet:       float64(wet) / fc,
+			Tint:      tint,
 			// An ellipse's axis is 4 standard deviations; a cell adds its width.
 			Length: (4*math.Sqrt(l1) + 1) * cell,
 			Width:  (4*math.Sqrt(l2) + 1) * cell,

@@ -76,9 +76,7 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 		if n := len(cam.Zones); n > 0 {
 			fmt.Fprintf(w, "    %d exclusion zone(s)\n", n)
 		}
-		d := cam.Detect
-		fmt.Fprintf(w, "    detect %s at %d px wide, threshold %g, blobs %g–%g m², alarm after %v, updates every %v, cleared after %v\n",
-			d.Method, d.ProcessWidth, d.Threshold, d.MinArea, d.MaxArea, time.Duration(d.Persist), time.Duration(d.UpdateEvery), time.Duration(d.ClearAfter))
+		fmt.Fprintf(w, "    %s\n", detectLine(cam.Detect))
 		fmt.Fprintf(w, "    camera lost after %v without a frame while armed\n", time.Duration(cam.FrameTimeout))
 		fmt.Fprintf(w, "    %s\n", armingLine(sch[cam.ID], loc, now))
 	}

@@ -45,6 +45,9 @@ type DetectConfig struct {
 	// MinScore is the least mean score over a candidate for it to alarm
 	// (meanvar).
 	MinScore float64 `yaml:"min_score"`
+	// MinTint: brighter than the water and whiter than this is light on
+	// the water, not a body (meanvar).
+	MinTint float64 `yaml:"min_tint"`
 	// MaxLength is the longest a candidate may be, m, to alarm (meanvar).
 	MaxLength float64 `yaml:"max_length_m"`
 	// MaxSpeed is the fastest, m/s, a track may move to start an alarm
@@ -86,7 +89,7 @@ type DetectConfig struct {
 // water by at least half its peak contrast (Features.Half), close to its
 // own outline; the looser outline blurring and the water's noise add
 // around it is not counted.
-const MinBodyArea = 0.035
+const MinBodyArea = 0.03
 
 // MinChildArea is the default smallest blob, m², of the mixture-model
 // detectors (mog2, knn), which measure a blob's outline: the WHO median
@@ -111,6 +114,7 @@ func defaultDetect() DetectConfig {
 		Smooth:       mv.Smooth,
 		Deck:         defaultDeck,
 		MinScore:     defaultMinScore,
+		MinTint:      defaultMinTint,
 		MaxLength:    defaultMaxLength,
 		MaxSpeed:     defaultMaxSpeed,
 		DeckRadius:   defaultDeckRadius,
@@ -130,6 +134,11 @@ const (
 	// the broad, faint changes a dying gust leaves score 30–40 over their
 	// area, children 45 and more.
 	defaultMinScore = 50
+	// defaultMinTint: white light added to cyan water (glints, sky
+	// reflections) has a tint near 0, sunlit glints on the scenario
+	// suite's water 15–20; pale skin on the same water differs by about
+	// (B −10, G +30, R +150) grey levels, tint 70 (derived).
+	defaultMinTint = 30
 	// defaultMaxLength: the longest body is a 48-month-old's (WHO median
 	// height 103.3 cm) with an arm raised, about 1.5 m; 2 m allows for the
 	// outline's blur. Cloud edges and ripple bands along lane lines run
@@ -145,7 +154,7 @@ const (
 
 // judgeRulesOf returns the rules tracks are judged by.
 func judgeRulesOf(d DetectConfig) judgeRules {
-	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, MinScore: d.MinScore, MaxLength: d.MaxLength, MaxSpeed: d.MaxSpeed,
+	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, MinScore: d.MinScore, MinTint: d.MinTint, MaxLength: d.MaxLength, MaxSpeed: d.MaxSpeed,
 		DeckRadius: max(0, d.DeckRadius), DeckMemory: time.Second, DeckMinArea: d.MinArea}
 }
 
@@ -206,6 +215,9 @@ func mergeDetect(def, d DetectConfig) DetectConfig {
 	}
 	if d.MinScore == 0 {
 		d.MinScore = def.MinScore
+	}
+	if d.MinTint == 0 {
+		d.MinTint = def.MinTint
 	}
 	if d.MaxLength == 0 {
 		d.MaxLength = def.MaxLength
@@ -484,12 +496,14 @@ type detectOverrides struct {
 	Threshold float64
 	MinArea   float64
 	Persist   time.Duration
+	MinScore  float64
 }
 
 func (o *detectOverrides) register(fs *flag.FlagSet) {
 	fs.Float64Var(&o.Threshold, "threshold", 0, "background model `threshold` (0: the camera's)")
 	fs.Float64Var(&o.MinArea, "min-area", 0, "smallest blob in `m²` that may alarm (0: the camera's)")
 	fs.DurationVar(&o.Persist, "persist", 0, "how long a track must last before it alarms (0: the camera's)")
+	fs.Float64Var(&o.MinScore, "min-score", 0, "least mean `score` over a candidate that may alarm, meanvar (0: the camera's)")
 }
 
 // validate rejects negative overrides.
@@ -499,6 +513,8 @@ func (o detectOverrides) validate() error {
 		return fmt.Errorf("-threshold %g: want a positive value", o.Threshold)
 	case o.MinArea < 0:
 		return fmt.Errorf("-min-area %g: want a positive area in m²", o.MinArea)
+	case o.MinScore < 0:
+		return fmt.Errorf("-min-score %g: want a positive score", o.MinScore)
 	case o.Persist < 0:
 		return fmt.Errorf("-persist %v: want a positive duration such as 700ms", o.Persist)
 	}
@@ -515,5 +531,18 @@ func (o detectOverrides) apply(d DetectConfig) DetectConfig {
 	if o.Persist > 0 {
 		d.Persist = Duration(o.Persist)
 	}
+	if o.MinScore > 0 {
+		d.MinScore = o.MinScore
+	}
 	return d
+}
+
+// detectLine is check's summary of a camera's detect section.
+func detectLine(d DetectConfig) string {
+	alarm := fmt.Sprintf("alarm after %v, updates every %v, cleared after %v", time.Duration(d.Persist), time.Duration(d.UpdateEvery), time.Duration(d.ClearAfter))
+	if d.Method != "meanvar" {
+		return fmt.Sprintf("detect %s at %d px wide, threshold %g, blobs %g–%g m², %s", d.Method, d.ProcessWidth, d.Threshold, d.MinArea, d.MaxArea, alarm)
+	}
+	return fmt.Sprintf("detect meanvar on %g cm cells of the pool and %g m of deck, threshold %g (extent %g, mean %g), bodies %g–%g m² up to %g m long and %g m/s, %s",
+		100*d.Cell, max(0, d.Deck), d.Threshold, d.Extent, d.MinScore, d.MinArea, d.MaxArea, d.MaxLength, d.MaxSpeed, alarm)
 }

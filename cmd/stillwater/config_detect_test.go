@@ -93,21 +93,28 @@ func TestSegmentsAndInside(t *testing.T) {
 
 // TestZoneStep feeds the processor one blob per frame for 2 s: a blob in a
 // zone (in pool metres or in pixels) never becomes a track, while the same
-// blob in open water does.
+// blob in open water does. Both detectors' blobs are fed: the rectified
+// one's (already in pool metres, with features) and the mixture models'
+// (an outline in pixels).
 func TestZoneStep(t *testing.T) {
-	cam := zoneCamera(
-		ZoneConfig{Name: "ladder", PoolM: [][2]float64{{7, 1}, {8.2, 1}, {8.2, 2}, {7, 2}}},
-		ZoneConfig{Name: "skimmer", Pixels: [][2]float64{{120, 120}, {160, 120}, {160, 160}, {120, 160}}},
-	)
+	zones := []ZoneConfig{
+		{Name: "ladder", PoolM: [][2]float64{{7, 1}, {8.2, 1}, {8.2, 2}, {7, 2}}},
+		{Name: "skimmer", Pixels: [][2]float64{{120, 120}, {160, 120}, {160, 160}, {120, 160}}},
+	}
 	// A 0.3 m square blob centred on pool (x, y) m, which is pixel
 	// (100 + 50x, 300 − 50y).
-	blob := func(x, y float64) vision.Blob {
+	blob := func(method string, x, y float64) vision.Blob {
 		u, v := 100+50*x, 300-50*y
-		return vision.Blob{
+		b := vision.Blob{
 			Centroid: vision.Point{X: u, Y: v},
 			Box:      image.Rect(int(u)-8, int(v)-8, int(u)+8, int(v)+8),
 			Contour:  []vision.Point{{X: u - 7.5, Y: v - 7.5}, {X: u + 7.5, Y: v - 7.5}, {X: u + 7.5, Y: v + 7.5}, {X: u - 7.5, Y: v + 7.5}},
 		}
+		if method == "meanvar" {
+			b.Plane = &vision.PlaneBlob{X: x, Y: y, Cells: image.Rect(10, 10, 22, 22)}
+			b.Features = vision.Features{Area: 0.09, Half: 0.07, Core: 0.05, Score: 200, Peak: 600, Length: 0.3, Width: 0.3, Wet: 1, Edge: 1}
+		}
+		return b
 	}
 	tests := []struct {
 		name       string
@@ -120,25 +127,29 @@ func TestZoneStep(t *testing.T) {
 		{"open water", 4, 2, true, ""},
 		{"just outside the ladder zone", 6.8, 1.5, true, ""},
 	}
-	for _, tt := range tests {
-		t.Run(tt.name, func(t *testing.T) {
-			var logs bytes.Buffer
-			log := slog.New(slog.NewTextHandler(&logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
-			p, err := newProcessor(cam, 10, time.Time{}, time.Now, log, nil)
-			require.NoError(t, err)
-			var msgs []outMsg
-			for i := 0; i < 20; i++ {
-				out, _ := p.step(vision.Result{Index: i, Media: time.Duration(i) * 100 * time.Millisecond, Blobs: []vision.Blob{blob(tt.x, tt.y)}}, true)
-				msgs = append(msgs, out...)
-			}
-			if !tt.wantTracks {
-				assert.Empty(t, p.tracks)
-				assert.Empty(t, msgs)
-				assert.Contains(t, logs.String(), tt.wantLog)
-				return
-			}
-			require.Len(t, p.tracks, 1)
-			assert.NotEmpty(t, msgs, "a blob seen for 2 s in open water alarms")
-		})
+	for _, method := range []string{"meanvar", "mog2"} {
+		for _, tt := range tests {
+			t.Run(method+"/"+tt.name, func(t *testing.T) {
+				cam := zoneCamera(zones...)
+				cam.Detect.Method = method
+				var logs bytes.Buffer
+				log := slog.New(slog.NewTextHandler(&logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
+				p, err := newProcessor(cam, 10, time.Time{}, time.Now, log, nil)
+				require.NoError(t, err)
+				var msgs []outMsg
+				for i := 0; i < 20; i++ {
+					out, _ := p.step(vision.Result{Index: i, Media: time.Duration(i) * 100 * time.Millisecond, Blobs: []vision.Blob{blob(method, tt.x, tt.y)}}, true)
+					msgs = append(msgs, out...)
+				}
+				if !tt.wantTracks {
+					assert.Empty(t, p.tracks)
+					assert.Empty(t, msgs)
+					assert.Contains(t, logs.String(), tt.wantLog)
+					return
+				}
+				require.Len(t, p.tracks, 1)
+				assert.NotEmpty(t, msgs, "a blob seen for 2 s in open water alarms")
+			})
+		}
 	}
 }

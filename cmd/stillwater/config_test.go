@@ -27,7 +27,8 @@ func TestParseConfigMergesDefaults(t *testing.T) {
 	d := cfg.Cameras[0].Detect
 	assert.Equal(t, Duration(900*time.Millisecond), d.Persist)
 	assert.Equal(t, 640, d.ProcessWidth)
-	assert.Equal(t, MinChildArea, d.MinArea)
+	assert.Equal(t, "meanvar", d.Method)
+	assert.Equal(t, MinBodyArea, d.MinArea)
 	assert.Equal(t, "127.0.0.1:9310", cfg.HTTP.Listen)
 	assert.Equal(t, "stillwater", cfg.Bus.Prefix)
 }

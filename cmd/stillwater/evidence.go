@@ -36,7 +36,7 @@ func newEvidenceSettings(cfg Config) evidenceSettings {
 func annotation(cam CameraConfig, proc *processor, caption string) vision.Annotation {
 	a := vision.Annotation{Outline: proc.cal.mask(), Caption: caption}
 	for _, t := range proc.tracks {
-		a.Boxes = append(a.Boxes, vision.LabeledBox{Box: t.Box, Label: fmt.Sprintf("track %d  %.2f m, %.2f m", t.ID, t.X, t.Y)})
+		a.Boxes = append(a.Boxes, vision.LabeledBox{Box: t.Box, Label: fmt.Sprintf("track %d  %.2f m, %.2f m%s", t.ID, t.X, t.Y, proc.why(t.ID))})
 	}
 	return a
 }

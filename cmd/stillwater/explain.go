@@ -206,3 +206,18 @@ func explainOption(labels, why string, verbose bool, w io.Writer) (func(*process
 	e := newExplainer(t, w, every, frames)
 	return func(p *processor) { p.explain = e.frame }, nil
 }
+
+// why is the short reason a track of the rectified detector is (or may
+// become) an alarm, for the evidence snapshot's label: the medians its
+// alarm was judged on. Empty for the mixture-model detectors.
+func (p *processor) why(id int) string {
+	f, n, speed := p.judge.summary(id)
+	if n == 0 || p.cam.Detect.Method != "meanvar" {
+		return ""
+	}
+	shade := "darker"
+	if f.Contrast > 0 {
+		shade = "brighter"
+	}
+	return fmt.Sprintf(": body %.3f m2 (%.2f x %.2f m), score %.0f, %.0f%% %s, tint %.0f, %.2f m/s", f.Half, f.Length, f.Width, f.Score, 100*math.Abs(f.Contrast), shade, f.Tint, speed)
+}

@@ -254,14 +254,14 @@ func (h holdoutLabels) holdoutH() ([9]float64, bool) {
 
 // addInstallerKnowledge completes a camera built from a label file's
 // corners with what a generated family scene's labels also give an
-// installer: the frame size, the chessboard lens, the measured camera
+// installer: the frame size and the chessboard lens, the measured camera
 // position and the pool's depth (its first and last points, as the
 // shallow and deep ends).
 func addInstallerKnowledge(cam *CameraConfig, t synth.Truth) {
-	if t.Width > 0 && t.Height > 0 {
-		cam.Frame = [2]int{t.Width, t.Height}
-	}
 	if l := t.Lens; l != nil && l.Fx > 0 {
+		if t.Width > 0 && t.Height > 0 {
+			cam.Frame = [2]int{t.Width, t.Height}
+		}
 		cam.Lens = &LensConfig{Fx: l.Fx, Fy: l.Fy, Cx: l.Cx, Cy: l.Cy, Dist: append([]float64(nil), l.Dist[:]...)}
 	}
 	if t.Camera != nil && t.Lens != nil {

@@ -30,6 +30,10 @@ type judgeRules struct {
 	MinArea, MaxArea float64
 	// MaxLength is the longest a body can be, m.
 	MaxLength float64
+	// MinTint: a candidate brighter than the water whose difference from
+	// it is whiter than this (Features.Tint) is light, not a body, where
+	// the water has a colour to tell by.
+	MinTint float64
 	// MinScore is the least mean score over the candidate (Features.Score):
 	// broad, faint changes of the water are not a body.
 	MinScore float64
@@ -138,6 +142,7 @@ func (j *judge) summary(id int) (vision.Features, int, float64) {
 		ChromaTop: med(func(f vision.Features) float64 { return f.ChromaTop }),
 		Water:     med(func(f vision.Features) float64 { return f.Water }),
 		Wet:       med(func(f vision.Features) float64 { return f.Wet }),
+		Tint:      med(func(f vision.Features) float64 { return f.Tint }),
 		Length:    med(func(f vision.Features) float64 { return f.Length }),
 		Width:     med(func(f vision.Features) float64 { return f.Width }),
 		Edge:      med(func(f vision.Features) float64 { return f.Edge }),
@@ -187,6 +192,8 @@ func (j *judge) eligible(id int) (bool, string) {
 		why = fmt.Sprintf("smaller than a child's body (%.3f m² at half contrast < %.3f m²)", f.Half, r.MinArea)
 	case f.Area > r.MaxArea:
 		why = fmt.Sprintf("larger than a person (%.3f m² > %.3f m²)", f.Area, r.MaxArea)
+	case r.MinTint > 0 && f.Contrast > 0 && f.Tint < r.MinTint && f.Water >= minWaterChroma:
+		why = fmt.Sprintf("light on the water (a glint or a reflection): brighter, and white (tint %.1f < %.1f)", f.Tint, r.MinTint)
 	case f.Score < r.MinScore:
 		why = fmt.Sprintf("too faint over its area (mean score %.0f < %.0f)", f.Score, r.MinScore)
 	case r.MaxLength > 0 && f.Length > r.MaxLength:
@@ -214,6 +221,10 @@ func (j *judge) eligible(id int) (bool, string) {
 	h.verdict = why
 	return why == "", why
 }
+
+// minWaterChroma is how far from grey (Features.Water) the water must be
+// for colour to tell light from a body: a night infrared picture is grey.
+const minWaterChroma = 5
 
 // deckSelf is the distance, m, within which a body on the deck is the
 // track's own: a child climbing in, whose centre crosses the edge back and

@@ -264,5 +264,5 @@ const candidateShare = 0.35
 // featureArgs are a candidate's features as log attributes.
 func featureArgs(f vision.Features) []any {
 	return []any{"area_m2", round4(f.Area), "core_m2", round4(f.Core), "score", round3(f.Score), "peak", round3(f.Peak),
-		"half_m2", round4(f.Half), "contrast", round3(f.Contrast), "bright", round3(f.Bright), "chroma", round3(f.Chroma), "chroma_top", round3(f.ChromaTop), "water_chroma", round3(f.Water), "wet", round3(f.Wet), "length_m", round3(f.Length), "width_m", round3(f.Width), "edge_m", round3(f.Edge)}
+		"half_m2", round4(f.Half), "contrast", round3(f.Contrast), "bright", round3(f.Bright), "chroma", round3(f.Chroma), "chroma_top", round3(f.ChromaTop), "water_chroma", round3(f.Water), "tint", round3(f.Tint), "wet", round3(f.Wet), "length_m", round3(f.Length), "width_m", round3(f.Width), "edge_m", round3(f.Edge)}
 }

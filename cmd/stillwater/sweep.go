@@ -30,11 +30,14 @@ import (
 	"stillwater/vision/synth"
 )
 
-// clipJob is one clip with its labels, ready to replay.
+// clipJob is one clip with its labels, ready to replay. Camera, when set,
+// is the calibration to replay with (independent clips' labels carry the
+// lens and camera position); otherwise it is built from Truth.
 type clipJob struct {
-	Name  string
-	Clip  string
-	Truth synth.Truth
+	Name   string
+	Clip   string
+	Truth  synth.Truth
+	Camera *CameraConfig
 }
 
 // replayScore replays one clip with cam's settings and scores it against
@@ -54,15 +57,17 @@ func replayScore(ctx context.Context, job clipJob, cam CameraConfig, rules score
 	return cs, st, err
 }
 
-// sweepPoint is one setting of the grid.
+// sweepPoint is one setting of the grid. MinScore applies to meanvar
+// only (0 keeps the camera's).
 type sweepPoint struct {
 	Threshold float64
 	MinArea   float64
 	Persist   time.Duration
+	MinScore  float64
 }
 
 func (p sweepPoint) overrides() detectOverrides {
-	return detectOverrides{Threshold: p.Threshold, MinArea: p.MinArea, Persist: p.Persist}
+	return detectOverrides{Threshold: p.Threshold, MinArea: p.MinArea, Persist: p.Persist, MinScore: p.MinScore}
 }
 
 // sweepResult is a setting and its pooled score.
@@ -72,7 +77,7 @@ type sweepResult struct {
 }
 
 // sweep replays every job at every point, at most limit at a time.
-func sweep(ctx context.Context, jobs []clipJob, points []sweepPoint, rules scoreRules, limit int, log *slog.Logger) ([]sweepResult, error) {
+func sweep(ctx context.Context, jobs []clipJob, points []sweepPoint, method string, rules scoreRules, limit int, log *slog.Logger) ([]sweepResult, error) {
 	scores := make([][]clipScore, len(points))
 	for i := range scores {
 		scores[i] = make([]clipScore, len(jobs))
@@ -82,9 +87,19 @@ func sweep(ctx context.Context, jobs []clipJob, points []sweepPoint, rules score
 	for pi, p := range points {
 		for ji, j := range jobs {
 			g.Go(func() error {
-				cam, err := cameraFromLabels(j.Truth, j.Clip)
-				if err != nil {
-					return fmt.Errorf("sweep %s: %w", j.Name, err)
+				var cam CameraConfig
+				if j.Camera != nil {
+					cam = *j.Camera
+				} else {
+					c, err := cameraFromLabels(j.Truth, j.Clip)
+					if err != nil {
+						return fmt.Errorf("sweep %s: %w", j.Name, err)
+					}
+					cam = c
+				}
+				if method != "" {
+					cam.Detect.Method = method
+					cam.Detect = mergeDetect(defaultDetect(), DetectConfig{Method: method, Persist: cam.Detect.Persist, UpdateEvery: cam.Detect.UpdateEvery, ClearAfter: cam.Detect.ClearAfter})
 				}
 				cam.Detect = p.overrides().apply(cam.Detect)
 				cs, _, err := replayScore(gctx, j, cam, rules, log)
@@ -106,13 +121,19 @@ func sweep(ctx context.Context, jobs []clipJob, points []sweepPoint, rules score
 	return out, nil
 }
 
-// grid is the cross product of the listed values.
-func grid(th, area []float64, persist []time.Duration) []sweepPoint {
+// grid is the cross product of the listed values; no scores keeps the
+// camera's.
+func grid(th, area []float64, persist []time.Duration, scores ...float64) []sweepPoint {
+	if len(scores) == 0 {
+		scores = []float64{0}
+	}
 	var out []sweepPoint
 	for _, t := range th {
 		for _, a := range area {
 			for _, p := range persist {
-				out = append(out, sweepPoint{Threshold: t, MinArea: a, Persist: p})
+				for _, sc := range scores {
+					out = append(out, sweepPoint{Threshold: t, MinArea: a, Persist: p, MinScore: sc})
+				}
 			}
 		}
 	}
@@ -158,7 +179,7 @@ func best(rs []sweepResult, budget float64) (sweepResult, bool) {
 // writeSweepCSV writes one row per setting.
 func writeSweepCSV(w io.Writer, rs []sweepResult) error {
 	cw := csv.NewWriter(w)
-	cw.Write([]string{"threshold", "min_area_m2", "persist_s", "detected", "presences", "delay_median_s", "delay_max_s",
+	cw.Write([]string{"threshold", "min_area_m2", "persist_s", "min_score", "detected", "presences", "delay_median_s", "delay_max_s",
 		"false_alarms", "false_per_hour", "err_median_m", "err_p95_m", "breaks"})
 	f := func(v float64) string {
 		if math.IsNaN(v) {
@@ -168,7 +189,7 @@ func writeSweepCSV(w io.Writer, rs []sweepResult) error {
 	}
 	for _, r := range rs {
 		t := r.Total
-		cw.Write([]string{f(r.Point.Threshold), f(r.Point.MinArea), f(r.Point.Persist.Seconds()),
+		cw.Write([]string{f(r.Point.Threshold), f(r.Point.MinArea), f(r.Point.Persist.Seconds()), f(r.Point.MinScore),
 			strconv.Itoa(t.Detected), strconv.Itoa(t.Presences), f(quantile(t.Delays, 0.5)), f(maxOf(t.Delays)),
 			strconv.Itoa(t.False), f(t.falsePerHour()), f(quantile(t.Errors, 0.5)), f(quantile(t.Errors, 0.95)), strconv.Itoa(t.Breaks)})
 	}
@@ -187,6 +208,7 @@ func sweepChart(rs []sweepResult) (*vgimg.Canvas, error) {
 		{"threshold", func(p sweepPoint) float64 { return p.Threshold }},
 		{"min area (m²)", func(p sweepPoint) float64 { return p.MinArea }},
 		{"persist (s)", func(p sweepPoint) float64 { return p.Persist.Seconds() }},
+		{"min score", func(p sweepPoint) float64 { return p.MinScore }},
 	}
 	metrics := []struct {
 		name string
@@ -251,8 +273,10 @@ func runSweep(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		fmt.Fprintln(stderr, "usage: stillwater sweep [flags] clip.avi labels.json [clip.avi labels.json ...]")
 		fs.PrintDefaults()
 	}
-	ths := fs.String("threshold", "16", "comma-separated background `thresholds`")
-	areas := fs.String("min-area", fmt.Sprint(MinChildArea), "comma-separated smallest blob `areas`, m²")
+	method := fs.String("method", "meanvar", "detection `method`: meanvar, mog2 or knn")
+	ths := fs.String("threshold", "", "comma-separated `thresholds`: meanvar's core score (default 60), mog2's varThreshold (16), knn's dist2Threshold (400)")
+	areas := fs.String("min-area", "", "comma-separated smallest `areas`, m²: meanvar's body at half contrast (default 0.03), mog2's and knn's blob (0.012)")
+	scores := fs.String("min-score", "", "comma-separated least mean `scores` over a candidate (meanvar; default 50)")
 	pers := fs.String("persist", "700ms", "comma-separated persistence `durations`")
 	budget := fs.Float64("budget", 0, "false alarms per `hour` the best setting may raise")
 	csvPath := fs.String("csv", "sweep.csv", "CSV `file` to write")
@@ -266,13 +290,29 @@ func runSweep(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		fs.Usage()
 		return fmt.Errorf("sweep: want pairs of clip and label file, got %d arguments: %w", len(rest), errUsage)
 	}
-	th, err := parseFloats("threshold", *ths)
+	def := mergeDetect(defaultDetect(), DetectConfig{Method: *method})
+	if err := validateDetect("sweep", def); err != nil {
+		return fmt.Errorf("sweep: -method: %w: %w", err, errUsage)
+	}
+	orDefault := func(s string, v float64) string {
+		if s == "" {
+			return fmt.Sprint(v)
+		}
+		return s
+	}
+	th, err := parseFloats("threshold", orDefault(*ths, def.Threshold))
 	if err != nil {
 		return err
 	}
-	ar, err := parseFloats("min-area", *areas)
+	ar, err := parseFloats("min-area", orDefault(*areas, def.MinArea))
 	if err != nil {
 		return err
+	}
+	sc := []float64{0}
+	if *method == "meanvar" {
+		if sc, err = parseFloats("min-score", orDefault(*scores, def.MinScore)); err != nil {
+			return err
+		}
 	}
 	pe, err := parseDurations("persist", *pers)
 	if err != nil {
@@ -280,18 +320,22 @@ func runSweep(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	}
 	var cj []clipJob
 	for i := 0; i < len(rest); i += 2 {
-		t, err := synth.ReadTruth(rest[i+1])
+		t, err := readLabels(rest[i+1])
 		if err != nil {
 			return fmt.Errorf("sweep: %w", err)
 		}
-		cj = append(cj, clipJob{Name: rest[i], Clip: rest[i], Truth: t})
+		cam, err := cameraForLabels(rest[i+1], rest[i])
+		if err != nil {
+			return fmt.Errorf("sweep: labels %s: %w", rest[i+1], err)
+		}
+		cj = append(cj, clipJob{Name: rest[i], Clip: rest[i], Truth: t, Camera: &cam})
 	}
 	if *jobs < 1 {
 		*jobs = 1
 	}
 	log := slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: slog.LevelWarn}))
 	start := time.Now()
-	rs, err := sweep(ctx, cj, grid(th, ar, pe), defaultScoreRules(), *jobs, log)
+	rs, err := sweep(ctx, cj, grid(th, ar, pe, sc...), *method, defaultScoreRules(), *jobs, log)
 	if err != nil {
 		return fmt.Errorf("sweep: %w", err)
 	}
@@ -316,8 +360,12 @@ func runSweep(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		return fmt.Errorf("sweep: no setting stays within %g false alarms per hour", *budget)
 	}
 	t := b.Total
-	fmt.Fprintf(stdout, "best within %g false alarms/h: threshold %g, min_area_m2 %g, persist %v: detected %d/%d, worst delay %s s, %d false, p95 error %s m\n",
-		*budget, b.Point.Threshold, b.Point.MinArea, b.Point.Persist, t.Detected, t.Presences, fmtNum(maxOf(t.Delays), 2), t.False, fmtNum(quantile(t.Errors, 0.95), 3))
+	score := ""
+	if b.Point.MinScore > 0 {
+		score = fmt.Sprintf(", min_score %g", b.Point.MinScore)
+	}
+	fmt.Fprintf(stdout, "best within %g false alarms/h: method %s, threshold %g, min_area_m2 %g%s, persist %v: detected %d/%d, worst delay %s s, %d false, p95 error %s m\n",
+		*budget, *method, b.Point.Threshold, b.Point.MinArea, score, b.Point.Persist, t.Detected, t.Presences, fmtNum(maxOf(t.Delays), 2), t.False, fmtNum(quantile(t.Errors, 0.95), 3))
 	return nil
 }
 
