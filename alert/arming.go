@@ -635,3 +635,46 @@ func (a *Arming) SetSchedules(def *Schedule, per map[string]*Schedule, now time.
 	}
 	return nil
 }
+
+// SetMaxDisarm changes the longest disarm, as a configuration reload
+// does; d <= 0 is the 24 h default. Disarms already running that would
+// now end later than now+d are cut to that instant and saved; the
+// cameras cut are returned. When saving fails nothing changes.
+func (a *Arming) SetMaxDisarm(d time.Duration, now time.Time) ([]string, error) {
+	if d <= 0 {
+		d = 24 * time.Hour
+	}
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	prevMax := a.cfg.MaxDisarm
+	prev := map[string]Override{}
+	limit := now.Add(d)
+	var cut []string
+	for _, id := range a.ids {
+		s := a.states[id]
+		if o := s.override; !s.failSafe && !o.Armed && o.Active(now) && o.Until.After(limit) {
+			prev[id] = o
+			s.override.Until = limit
+			cut = append(cut, id)
+		}
+	}
+	a.cfg.MaxDisarm = d
+	if len(cut) == 0 {
+		return nil, nil
+	}
+	if err := a.save(); err != nil {
+		for id, o := range prev {
+			a.states[id].override = o
+		}
+		a.cfg.MaxDisarm = prevMax
+		return nil, err
+	}
+	for _, id := range cut {
+		a.setAt[id] = now
+	}
+	select {
+	case a.changed <- struct{}{}:
+	default:
+	}
+	return cut, nil
+}

@@ -509,3 +509,25 @@ func FuzzArmingState(f *testing.F) {
 		assert.Len(t, asideFiles(t, path), nAside, "a clean file is not moved aside")
 	})
 }
+
+// Shortening max_disarm on a reload cuts a running disarm to the new bound.
+func TestArmingSetMaxDisarmCutsRunningDisarm(t *testing.T) {
+	now := utc(2026, 12, 2, 22, 0)
+	path := filepath.Join(t.TempDir(), "arming.json")
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, StatePath: path, MaxDisarm: 24 * time.Hour}, now)
+	require.NoError(t, err)
+	require.NoError(t, a.DisarmUntil("north", now.Add(20*time.Hour), "http:owner", now))
+	require.NoError(t, a.DisarmUntil("south", now.Add(time.Hour), "http:owner", now))
+	cut, err := a.SetMaxDisarm(2*time.Hour, now.Add(time.Minute))
+	require.NoError(t, err)
+	assert.Equal(t, []string{"north"}, cut)
+	armed, _ := a.Armed("north", now.Add(2*time.Hour+2*time.Minute))
+	assert.True(t, armed)
+	armed, _ = a.Armed("south", now.Add(30*time.Minute))
+	assert.False(t, armed, "a disarm inside the new bound is left alone")
+	require.Error(t, a.DisarmUntil("south", now.Add(3*time.Hour), "x", now))
+	b, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, StatePath: path, MaxDisarm: 2 * time.Hour}, now.Add(time.Minute))
+	require.NoError(t, err)
+	armed, _ = b.Armed("north", now.Add(2*time.Hour+2*time.Minute))
+	assert.True(t, armed, "the cut disarm was saved")
+}
