@@ -148,7 +148,7 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	if err != nil {
 		return err
 	}
-	loc, err := loadZone(cfg.Arming.TimeZone)
+	loc, err := cfg.zone()
 	if err != nil {
 		return err
 	}
@@ -205,13 +205,17 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	tw.Flush()
 	fmt.Fprintf(w, "  heartbeat every %v per camera\n", time.Duration(cfg.HeartbeatEvery))
 	fmt.Fprintf(w, "  unacknowledged messages wait in %s/outbox\n", cfg.DataDir)
+	who := cfg.Control.TokenName
+	if who == "" {
+		who = alert.DefaultTokenName
+	}
 	switch c := cfg.Control; {
 	case c.SecretEnv != "":
-		fmt.Fprintf(w, "  control (arm, disarm) needs the secret from $%s\n\n", c.SecretEnv)
+		fmt.Fprintf(w, "  control (arm, disarm) needs the secret from $%s; whoever uses it is recorded as %q\n\n", c.SecretEnv, who)
 	case c.SecretFile != "":
-		fmt.Fprintf(w, "  control (arm, disarm) needs the secret in %s\n\n", c.SecretFile)
+		fmt.Fprintf(w, "  control (arm, disarm) needs the secret in %s; whoever uses it is recorded as %q\n\n", c.SecretFile, who)
 	case c.Secret != "":
-		fmt.Fprint(w, "  control (arm, disarm) needs the secret written in the config (better: secret_env or secret_file)\n\n")
+		fmt.Fprintf(w, "  control (arm, disarm) needs the secret written in the config (better: secret_env or secret_file); whoever uses it is recorded as %q\n\n", who)
 	case c.TrustNATS:
 		fmt.Fprint(w, "  control (arm, disarm) over NATS by the operator role; HTTP control refused\n\n")
 	default:

@@ -452,7 +452,7 @@ func (e EvidenceConfig) validate() error {
 // schedules parses each camera's arming schedule (its own or the default).
 // A camera with no windows anywhere is armed around the clock (nil).
 func (c Config) schedules() (map[string]*alert.Schedule, error) {
-	loc, err := loadZone(c.Arming.TimeZone)
+	loc, err := c.zone()
 	if err != nil {
 		return nil, fmt.Errorf("arming.time_zone: %v", err)
 	}
@@ -473,6 +473,25 @@ func (c Config) schedules() (map[string]*alert.Schedule, error) {
 		out[cam.ID] = s
 	}
 	return out, nil
+}
+
+// zone resolves arming.time_zone. A system zone (Local) that cannot be
+// resolved is an error only when a schedule needs it; a misspelt zone
+// name always is.
+func (c Config) zone() (*time.Location, error) {
+	loc, err := loadZone(c.Arming.TimeZone)
+	if err == nil || c.Arming.TimeZone != "Local" {
+		return loc, err
+	}
+	if len(c.Arming.Schedule) > 0 {
+		return nil, err
+	}
+	for _, cam := range c.Cameras {
+		if len(cam.Schedule) > 0 {
+			return nil, err
+		}
+	}
+	return time.UTC, nil
 }
 
 func parseSchedule(loc *time.Location, windows []string) (*alert.Schedule, error) {

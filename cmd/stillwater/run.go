@@ -74,7 +74,8 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			}
 		}
 	}()
-	return serve(ctx, cfg, deps{Log: log, Reload: reload})
+	// The error is printed by main, outside the log: hide secrets there too.
+	return redactorOf(log).Err(serve(ctx, cfg, deps{Log: log, Reload: reload}))
 }
 
 func newLogger(c LogConfig, w io.Writer) *slog.Logger {
