@@ -189,7 +189,7 @@ func TestQueryStringPasswordNeverPrinted(t *testing.T) {
 	for _, m := range bus {
 		assert.NotContains(t, m, secret, "the password reached the bus")
 	}
-	refdata.Report(t, "query-string password: %d log lines and %d bus messages of a failing camera, none with the password", len(d.lines()), len(bus))
+	refdata.Report(t, "query-string password: %d log lines and %d bus message(s) of a failing camera, none with the password", len(d.lines()), len(bus))
 }
 
 // Camera ids that would break subjects or evidence file names are refused
