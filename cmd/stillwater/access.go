@@ -24,11 +24,13 @@ type access struct {
 	viewer    string // picture token; empty leaves only the control token
 }
 
-// access resolves the control and viewer secrets; warnings are to be
-// logged. A secret that cannot be read is an error naming its field.
+// access resolves the control and viewer secrets. The warnings, to be
+// logged, are the viewer secret's: openBus already logs the control
+// secret's when it opens the control API. A secret that cannot be read is
+// an error naming its field.
 func (c Config) access(getenv func(string) string) (access, []string, error) {
-	var warn []string
-	ctl, err := resolveSecret("control.secret", c.Control.Secret, c.Control.SecretEnv, c.Control.SecretFile, getenv, &warn)
+	var warn, ctlWarn []string
+	ctl, err := resolveSecret("control.secret", c.Control.Secret, c.Control.SecretEnv, c.Control.SecretFile, getenv, &ctlWarn)
 	if err != nil {
 		return access{}, nil, err
 	}
