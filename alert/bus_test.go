@@ -201,7 +201,8 @@ func TestOperatorNeedsToken(t *testing.T) {
 	require.NoError(t, err)
 	require.True(t, rep.OK, rep.Error)
 	assert.False(t, h.armed(t), "the operator with the token disarmed")
-	assert.Equal(t, "nats:alice", rep.Status.Cameras[0].Override.By)
+	// The author is who the token stands for, not the body's by.
+	assert.Equal(t, "nats:"+DefaultTokenName, rep.Status.Cameras[0].Override.By)
 
 	hdr := nats.NewMsg("sw.control.arm")
 	hdr.Header.Set("Authorization", "Bearer s3cret")

@@ -374,6 +374,9 @@ type ControlConfig struct {
 	Secret     string `yaml:"secret"`
 	SecretEnv  string `yaml:"secret_env"`
 	SecretFile string `yaml:"secret_file"`
+	// TokenName is who a request carrying the secret is recorded as in
+	// the override's by ("http:NAME"); default token-holder.
+	TokenName string `yaml:"token_name"`
 	// TrustNATS accepts NATS control requests without the token, relying
 	// on the bus users' roles (operator). Needs bus.users or an external
 	// server with its own permissions.
@@ -484,7 +487,7 @@ func openBus(ctx context.Context, cfg Config, ac alert.ArmingConfig, now func() 
 	if secret == "" && !cfg.Control.TrustNATS {
 		log.Warn("no control secret configured: arm, disarm and clear requests are refused; set control.secret_env or control.secret_file")
 	}
-	b.Control, err = alert.NewControl(alert.ControlConfig{Prefix: cfg.Bus.Prefix, Arming: b.Arming, Secret: secret,
+	b.Control, err = alert.NewControl(alert.ControlConfig{Prefix: cfg.Bus.Prefix, Arming: b.Arming, Secret: secret, TokenName: cfg.Control.TokenName,
 		TrustNATS: cfg.Control.TrustNATS, OnRefused: h.OnRefused, Log: log, Now: now})
 	if err != nil {
 		return nil, err

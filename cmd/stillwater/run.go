@@ -45,7 +45,8 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err != nil {
 		return err
 	}
-	log := newLogger(cfg.Log, stderr)
+	// Every secret the configuration holds is hidden in every log line.
+	log := withRedaction(newLogger(cfg.Log, stderr), cfg.Secrets()...)
 
 	// SIGHUP reloads the file; a broken file is refused and logged, and
 	// the daemon goes on with what it has.
@@ -65,6 +66,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 				log.Error("reload refused; keeping the running configuration", "err", err)
 				continue
 			}
+			withRedaction(log, next.Secrets()...)
 			select {
 			case reload <- next:
 			case <-ctx.Done():
@@ -72,7 +74,8 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			}
 		}
 	}()
-	return serve(ctx, cfg, deps{Log: log, Reload: reload})
+	// The error is printed by main, outside the log: hide secrets there too.
+	return redactorOf(log).Err(serve(ctx, cfg, deps{Log: log, Reload: reload}))
 }
 
 func newLogger(c LogConfig, w io.Writer) *slog.Logger {

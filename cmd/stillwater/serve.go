@@ -48,6 +48,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	if now == nil {
 		now = time.Now
 	}
+	log = withRedaction(log, cfg.Secrets()...)
 	log.Warn(safetyNotice)
 	if err := os.MkdirAll(cfg.DataDir, 0o750); err != nil {
 		return fmt.Errorf("data_dir %s: %w", cfg.DataDir, err)
@@ -72,7 +73,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	}
 	var watches []*cameraWatch
 	backlog := make(chan backlogEvent, 64)
-	bus, err := openBus(ctx, cfg, alert.ArmingConfig{Cameras: ids, Schedules: sch}, now, log, busHooks{
+	bus, err := openBus(ctx, cfg, alert.ArmingConfig{Cameras: ids, Schedules: sch, Log: log}, now, log, busHooks{
 		OnResult: func(r alert.PublishResult) {
 			if r.Err == nil {
 				met.pubSecs.WithLabelValues(r.Kind).Observe(r.Latency.Seconds())
@@ -103,7 +104,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_dropped_total", Help: "Messages the outbox dropped or refused because it was full."},
 			func() float64 { return float64(pub.Stats().Lost()) }))
 
-	bs := &busSink{pub: pub, met: met}
+	bs := redactSink{next: &busSink{pub: pub, met: met}, red: redactorOf(log)}
 	for _, cam := range cfg.Cameras {
 		id := cam.ID
 		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
@@ -127,11 +128,21 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 		}
 	}()
 
+	acc, warn, err := cfg.access(os.Getenv)
+	if err != nil {
+		return err
+	}
+	logWarnings(log, warn)
+	pictures := newPictureGate(cfg.HTTP.Listen)
+	pictures.set(acc)
+	if !pictures.open && acc.viewer == "" && acc.control == "" {
+		log.Warn("camera pictures are refused: the HTTP listener is not loopback and no token is set; set http.viewer_secret_env or http.viewer_secret_file", "listen", cfg.HTTP.Listen)
+	}
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
 	mux.HandleFunc("/healthz", func(w http.ResponseWriter, _ *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.Handle("/control/", bus.Control.Handler())
-	mux.Handle("GET /cameras/{id}/latest.jpg", latestHandler(watches))
+	mux.Handle("GET /cameras/{id}/latest.jpg", pictures.wrap(latestHandler(watches)))
 	mux.HandleFunc("/readyz", func(w http.ResponseWriter, _ *http.Request) {
 		problems := readiness(now(), watches, nc.IsConnected())
 		if len(problems) > 0 {
@@ -147,7 +158,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	if err != nil {
 		return fmt.Errorf("http.listen %s: %w", cfg.HTTP.Listen, err)
 	}
-	hs := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
+	hs := newHTTPServer(mux, defaultHTTPTimeouts(), log)
 	log.Info("http listening", "addr", ln.Addr().String())
 	if d.Ready != nil {
 		d.Ready(busURL, ln.Addr().String())
@@ -176,15 +187,22 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 
 	g, gctx := errgroup.WithContext(ctx)
 	camsDone := make(chan struct{})
+	rl := newReloader(log, cfg, acc, reloadTargets{
+		watches:      watches,
+		setSchedules: func(sch map[string]*alert.Schedule) error { return bus.Arming.SetSchedules(nil, sch, now()) },
+		setAccess: func(a access) error {
+			pictures.set(a)
+			return bus.Control.SetAuth(a.control, a.tokenName, a.trustNATS)
+		},
+		setMaxDisarm: func(d time.Duration) ([]string, error) { return bus.Arming.SetMaxDisarm(d, now()) },
+	})
 	go func() {
 		for {
 			select {
 			case <-camsDone:
 				return
 			case nc := <-d.Reload:
-				applyReload(log, cfg, nc, watches, func(sch map[string]*alert.Schedule) error {
-					return bus.Arming.SetSchedules(nil, sch, now())
-				})
+				rl.apply(nc)
 			}
 		}
 	}()
@@ -211,45 +229,6 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	}
 	stopHTTP()
 	return <-httpDone
-}
-
-// applyReload hands each running camera its new settings and swaps the
-// schedules. Cameras added, removed or pointed at another source need a
-// restart; that is logged, not done.
-func applyReload(log *slog.Logger, old, next Config, watches []*cameraWatch, setSchedules func(map[string]*alert.Schedule) error) {
-	sch, err := next.schedules()
-	if err != nil {
-		log.Error("reload refused", "err", err)
-		return
-	}
-	byID := map[string]CameraConfig{}
-	for _, c := range next.Cameras {
-		byID[c.ID] = c
-	}
-	for _, w := range watches {
-		c, ok := byID[w.cam.ID]
-		switch {
-		case !ok:
-			log.Warn("reload: camera removed from the config; it keeps running until restart", "camera", w.cam.ID)
-			continue
-		case c.Source != w.cam.Source || c.Transport != w.cam.Transport:
-			log.Warn("reload: camera source changed; restart to use it", "camera", w.cam.ID)
-			continue
-		}
-		delete(byID, c.ID)
-		select {
-		case <-w.reload: // an older reload not yet taken: replace it
-		default:
-		}
-		w.reload <- c
-	}
-	for id := range byID {
-		log.Warn("reload: new camera in the config; restart to start it", "camera", id)
-	}
-	if err := setSchedules(sch); err != nil {
-		log.Error("reload: schedules refused", "err", err)
-	}
-	log.Info("configuration reloaded", "cameras", len(watches))
 }
 
 // readiness lists why the daemon is not ready: an armed camera without
@@ -310,6 +289,18 @@ type backlogEvent struct {
 type busSink struct {
 	pub *alert.Publisher
 	met *metrics
+}
+
+// redactSink hides secrets in messages before they leave, as the log
+// does: a fault's detail may quote an error that quotes a camera URL.
+type redactSink struct {
+	next sink
+	red  *redactor
+}
+
+func (r redactSink) send(ctx context.Context, m outMsg) error {
+	m.Data = r.red.Bytes(m.Data)
+	return r.next.send(ctx, m)
 }
 
 func (b *busSink) send(ctx context.Context, m outMsg) error {
