@@ -531,3 +531,7 @@ func (b *busParts) Close() {
 		b.Embedded.Shutdown()
 	}
 }
+
+// problems lists why the bus side is not ready, beyond the connection
+// itself (which readiness reports). Empty means ready.
+func (b *busParts) problems(now time.Time) []string { return nil }

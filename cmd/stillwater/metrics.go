@@ -5,6 +5,8 @@ import (
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
+
+	"stillwater/alert"
 )
 
 // metrics are the daemon's own collectors, registered on the registry
@@ -201,4 +203,22 @@ func b2f(b bool) float64 {
 		return 1
 	}
 	return 0
+}
+
+// busResult records the fate of one message, from the publisher's
+// OnResult callback.
+func (m *metrics) busResult(r alert.PublishResult) {
+	if r.Err == nil {
+		m.pubSecs.WithLabelValues(r.Kind).Observe(r.Latency.Seconds())
+	}
+}
+
+// registerBusMetrics registers the series the publisher's state is read
+// from at scrape time.
+func registerBusMetrics(reg prometheus.Registerer, pub *alert.Publisher) {
+	reg.MustRegister(
+		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_depth", Help: "Messages waiting in the outbox for the bus."},
+			func() float64 { return float64(pub.Stats().Depth) }),
+		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_dropped_total", Help: "Messages the outbox dropped or refused because it was full."},
+			func() float64 { return float64(pub.Stats().Lost()) }))
 }
