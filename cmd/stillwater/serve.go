@@ -93,7 +93,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	if bus.Embedded != nil {
 		busURL = bus.Embedded.URL()
 	}
-	registerBusMetrics(reg, pub)
+	registerBusMetrics(reg, bus, now)
 
 	bs := &busSink{pub: pub, met: met}
 	for _, cam := range cfg.Cameras {
@@ -305,13 +305,14 @@ type busSink struct {
 }
 
 func (b *busSink) send(ctx context.Context, m outMsg) error {
-	t0 := time.Now()
 	if err := b.pub.Publish(ctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
 		if m.Kind == alert.KindBeat && errors.Is(err, alert.ErrBusDown) {
 			return nil
 		}
 		return err
 	}
-	b.met.camera(m.Camera).published(m.Kind, time.Since(t0))
+	if m.Kind == alert.KindBeat { // stream messages count when acknowledged (busResult)
+		b.met.camera(m.Camera).published(m.Kind)
+	}
 	return nil
 }
