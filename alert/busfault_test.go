@@ -176,6 +176,37 @@ func TestPoisonedHeadDoesNotBlock(t *testing.T) {
 	}
 }
 
+// TestRefusedOutboxMessageIsDeadLettered queues a 2 KiB fault while the
+// server is down; the server that comes back takes at most 1 KiB per
+// message. The refusal is final: the message goes to the dead-letter file
+// at its first try, and the next one is delivered.
+func TestRefusedOutboxMessageIsDeadLettered(t *testing.T) {
+	dir := t.TempDir()
+	p0, err := NewPublisherWith(context.Background(), deadBus(t), PublisherConfig{Prefix: "sw", Outbox: OutboxConfig{Dir: dir}})
+	require.NoError(t, err)
+	big := []byte(`{"v":1,"kind":"fault","camera":"north","message":"` + strings.Repeat("x", 2048) + `"}`)
+	require.NoError(t, p0.Publish(context.Background(), "north", KindFault, "big", big))
+	require.NoError(t, p0.Publish(context.Background(), "north", KindTarget, "small", targetJSON(t, "north", 1, "start")))
+	require.NoError(t, p0.Close())
+
+	opts := singleNode(t, t.TempDir())
+	opts.MaxPayload = 1024
+	srv := mustStart(t, opts)
+	defer stop(srv)
+	p, err := NewPublisherWith(context.Background(), connect(t, srv.ClientURL()), PublisherConfig{Prefix: "sw", Outbox: OutboxConfig{Dir: dir}})
+	require.NoError(t, err)
+	defer p.Close()
+	runPublisher(t, p)
+	waitDrained(t, p, 10*time.Second)
+	dl := readDeadLetters(t, filepath.Join(dir, DeadLetterFile))
+	require.Len(t, dl, 1)
+	assert.Equal(t, "big", dl[0].ID)
+	assert.Equal(t, 1, dl[0].Tries)
+	assert.Contains(t, dl[0].Reason, "refused by the server")
+	assert.JSONEq(t, string(big), string(dl[0].Payload))
+	assert.Equal(t, map[string]int{"small": 1}, streamIDs(t, srv.ClientURL(), "STILLWATER"))
+}
+
 // TestDeletedStreamIsMadeAgain deletes the stream under a running
 // publisher: the messages that then get no answer are the stream's
 // failure, not theirs. The stream is made again and every message
