@@ -97,11 +97,12 @@ const (
 // rejectedLine is one line of outbox.log.rejected: a line of the log that
 // did not hold a valid record, kept as it was, with why.
 type rejectedLine struct {
-	Line   int    `json:"line"` // 1-based line number in outbox.log
-	Reason string `json:"reason"`
-	Raw    string `json:"raw,omitempty"`        // the line, when it is valid UTF-8
-	RawB64 []byte `json:"raw_base64,omitempty"` // the line, when it is not
-	Torn   bool   `json:"torn,omitempty"`       // an unfinished last line: a crash mid-append
+	At     time.Time `json:"at,omitzero"` // when it was set aside
+	Line   int       `json:"line"`        // 1-based line number in outbox.log
+	Reason string    `json:"reason"`
+	Raw    string    `json:"raw,omitempty"`        // the line, when it is valid UTF-8
+	RawB64 []byte    `json:"raw_base64,omitempty"` // the line, when it is not
+	Torn   bool      `json:"torn,omitempty"`       // an unfinished last line: a crash mid-append
 }
 
 // DeadLetterFile is the name, in the outbox directory, of the file of
@@ -324,7 +325,9 @@ func (o *outbox) saveRejected() error {
 		return nil
 	}
 	var buf bytes.Buffer
+	at := time.Now().UTC()
 	for _, r := range o.rejected {
+		r.At = at
 		b, err := json.Marshal(r)
 		if err != nil {
 			return fmt.Errorf("outbox: encode rejected line %d: %w", r.Line, err)
