@@ -74,11 +74,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	var watches []*cameraWatch
 	backlog := make(chan backlogEvent, 64)
 	bus, err := openBus(ctx, cfg, alert.ArmingConfig{Cameras: ids, Schedules: sch, Log: log}, now, log, busHooks{
-		OnResult: func(r alert.PublishResult) {
-			if r.Err == nil {
-				met.pubSecs.WithLabelValues(r.Kind).Observe(r.Latency.Seconds())
-			}
-		},
+		OnResult: met.busResult,
 		// The publisher calls this from inside its own publish path: hand
 		// the fault to a goroutine rather than publish from here.
 		OnBacklog: func(active bool, st alert.Stats) {
@@ -98,11 +94,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	if bus.Embedded != nil {
 		busURL = bus.Embedded.URL()
 	}
-	reg.MustRegister(
-		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_depth", Help: "Messages waiting in the outbox for the bus."},
-			func() float64 { return float64(pub.Stats().Depth) }),
-		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_dropped_total", Help: "Messages the outbox dropped or refused because it was full."},
-			func() float64 { return float64(pub.Stats().Lost()) }))
+	registerBusMetrics(reg, bus, now)
 
 	bs := redactSink{next: &busSink{pub: pub, met: met}, red: redactorOf(log)}
 	for _, cam := range cfg.Cameras {
@@ -144,7 +136,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	mux.Handle("/control/", bus.Control.Handler())
 	mux.Handle("GET /cameras/{id}/latest.jpg", pictures.wrap(latestHandler(watches)))
 	mux.HandleFunc("/readyz", func(w http.ResponseWriter, _ *http.Request) {
-		problems := readiness(now(), watches, nc.IsConnected())
+		problems := append(readiness(now(), watches, nc.IsConnected()), bus.problems(now())...)
 		if len(problems) > 0 {
 			w.WriteHeader(http.StatusServiceUnavailable)
 			for _, p := range problems {
@@ -304,13 +296,14 @@ func (r redactSink) send(ctx context.Context, m outMsg) error {
 }
 
 func (b *busSink) send(ctx context.Context, m outMsg) error {
-	t0 := time.Now()
 	if err := b.pub.Publish(ctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
 		if m.Kind == alert.KindBeat && errors.Is(err, alert.ErrBusDown) {
 			return nil
 		}
 		return err
 	}
-	b.met.camera(m.Camera).published(m.Kind, time.Since(t0))
+	if m.Kind == alert.KindBeat { // stream messages count when acknowledged (busResult)
+		b.met.camera(m.Camera).published(m.Kind)
+	}
 	return nil
 }
