@@ -1,0 +1,241 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"io"
+	"log/slog"
+	"net"
+	"os"
+	"path/filepath"
+	"strings"
+	"sync"
+	"syscall"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"stillwater/alert"
+	"stillwater/vision/refdata"
+)
+
+// silentSource listens on loopback, accepts every connection and never
+// sends a byte: a camera that is up at the TCP level and hangs at the
+// protocol level. It returns host:port.
+func silentSource(t *testing.T) string {
+	t.Helper()
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	require.NoError(t, err)
+	var mu sync.Mutex
+	var conns []net.Conn
+	go func() {
+		for {
+			c, err := ln.Accept()
+			if err != nil {
+				return
+			}
+			mu.Lock()
+			conns = append(conns, c)
+			mu.Unlock()
+		}
+	}()
+	t.Cleanup(func() {
+		ln.Close()
+		mu.Lock()
+		defer mu.Unlock()
+		for _, c := range conns {
+			c.Close()
+		}
+	})
+	return ln.Addr().String()
+}
+
+// writerlessPipe makes a named pipe that nobody writes to: opening it for
+// reading blocks in the kernel, where no FFmpeg timeout reaches. At the
+// end of the test a writer comes and goes, so that an open still blocked
+// on it returns.
+func writerlessPipe(t *testing.T) string {
+	t.Helper()
+	p := filepath.Join(t.TempDir(), "camera.pipe")
+	require.NoError(t, syscall.Mkfifo(p, 0o600))
+	t.Cleanup(func() { releasePipe(p) })
+	return p
+}
+
+// releasePipe opens and closes the pipe's write end, which frees a reader
+// blocked in open(2); it does nothing when no reader waits.
+func releasePipe(p string) {
+	if f, err := os.OpenFile(p, os.O_WRONLY|syscall.O_NONBLOCK, 0); err == nil {
+		time.Sleep(50 * time.Millisecond)
+		f.Close()
+	}
+}
+
+// logBuffer is a goroutine-safe buffer for the daemon's JSON log.
+type logBuffer struct {
+	mu sync.Mutex
+	b  bytes.Buffer
+}
+
+func (l *logBuffer) Write(p []byte) (int, error) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.Write(p)
+}
+
+// lines returns the log records whose msg is msg, decoded.
+func (l *logBuffer) lines(msg string) []map[string]any {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	var out []map[string]any
+	for _, ln := range strings.Split(l.b.String(), "\n") {
+		var rec map[string]any
+		if json.Unmarshal([]byte(ln), &rec) == nil && rec["msg"] == msg {
+			out = append(out, rec)
+		}
+	}
+	return out
+}
+
+// recordTime is the time field of a JSON log record.
+func recordTime(t *testing.T, rec map[string]any) time.Time {
+	t.Helper()
+	s, _ := rec["time"].(string)
+	at, err := time.Parse(time.RFC3339Nano, s)
+	require.NoError(t, err, "log time %q", s)
+	return at
+}
+
+// startLoggedDaemon is startDaemon with the daemon's JSON log kept at
+// debug level, and a stop that reports how long serve took to return
+// after its context ended (what SIGTERM does in run). stop gives up after
+// limit and reports that as an error.
+func startLoggedDaemon(t *testing.T, cfg Config, limit time.Duration) (*busLog, *logBuffer, func() (time.Duration, error)) {
+	t.Helper()
+	ctx, cancel := context.WithCancel(context.Background())
+	bl := &busLog{}
+	lb := &logBuffer{}
+	var w io.Writer = lb
+	if os.Getenv("STILLWATER_TEST_LOG") != "" {
+		w = io.MultiWriter(lb, os.Stderr)
+	}
+	ready := make(chan [2]string, 1)
+	done := make(chan error, 1)
+	go func() {
+		done <- serve(ctx, cfg, deps{
+			Log:   slog.New(slog.NewJSONHandler(w, &slog.HandlerOptions{Level: slog.LevelDebug})),
+			Ready: func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },
+		})
+	}()
+	select {
+	case r := <-ready:
+		bl.URL, bl.HTTP = r[0], r[1]
+	case err := <-done:
+		cancel()
+		t.Fatalf("daemon ended before it was ready: %v", err)
+	case <-time.After(20 * time.Second):
+		cancel()
+		t.Fatal("daemon not ready within 20 s")
+	}
+	nc, err := nats.Connect(bl.URL)
+	require.NoError(t, err)
+	_, err = nc.Subscribe(cfg.Bus.Prefix+".>", bl.add)
+	require.NoError(t, err)
+	require.NoError(t, nc.Flush())
+	var once sync.Once
+	var took time.Duration
+	var result error
+	stop := func() (time.Duration, error) {
+		once.Do(func() {
+			t0 := time.Now()
+			cancel()
+			select {
+			case result = <-done:
+				took = time.Since(t0)
+			case <-time.After(limit):
+				took, result = time.Since(t0), context.DeadlineExceeded
+			}
+			nc.Close()
+		})
+		return took, result
+	}
+	t.Cleanup(func() { stop() })
+	return bl, lb, stop
+}
+
+// firstStart waits for the camera's first target start and returns it with
+// its arrival time at a subscriber.
+func firstStart(t *testing.T, bl *busLog, camera string, limit time.Duration) (alert.Target, time.Time) {
+	t.Helper()
+	subj := "stillwater." + camera + ".target"
+	require.Eventually(t, func() bool { return len(bl.bySubject(subj)) > 0 }, limit, 20*time.Millisecond,
+		"camera %s published no target", camera)
+	m := bl.bySubject(subj)[0]
+	var tg alert.Target
+	require.NoError(t, json.Unmarshal(m.Data, &tg))
+	require.Equal(t, "start", tg.Event)
+	return tg, m.At
+}
+
+// shutdownLimit is how long serve may take to return after its context
+// ends: the cameras' stop wait and the bus flush (see serve).
+const shutdownLimit = cameraStopWait + flushWait + time.Second
+
+// TestHangingSourcesDoNotHoldUpAHealthyCamera runs a camera playing a
+// generated clip in which a child enters the water beside two cameras
+// whose open never completes on its own: an RTSP address that accepts the
+// connection and never answers, and a named pipe that no one writes to
+// (its open(2) blocks in the kernel, beyond any FFmpeg timeout).
+//
+//   - The healthy camera's target start reaches a subscriber within 1 s
+//     of its alarm decision (the message's time field is stamped at the
+//     decision). This bound is the requirement itself, so the test checks
+//     wall time, with the 20 s of ASTM F2208 (entry to alarm) far off.
+//   - Both hanging cameras raise camera_lost within the frame timeout
+//     (3 s) plus the watchdog tick, and heartbeat camera_ok=false.
+//   - serve returns within the shutdown limit after its context ends.
+func TestHangingSourcesDoNotHoldUpAHealthyCamera(t *testing.T) {
+	if testing.Short() {
+		t.Skip("plays a 20 s clip in real time")
+	}
+	truth, clip, dir := renderScene(t, "child", 7, nil)
+	cfg := demoConfig(truth, clip, dir, true)
+	cfg.HeartbeatEvery = Duration(time.Second)
+	silent, pipe := cfg.Cameras[0], cfg.Cameras[0]
+	silent.ID, silent.Source, silent.Transport = "silent", "rtsp://"+silentSource(t)+"/pool", "tcp"
+	pipe.ID, pipe.Source = "pipe", writerlessPipe(t)
+	cfg.Cameras = append(cfg.Cameras, silent, pipe)
+	require.NoError(t, cfg.Validate())
+
+	start := time.Now()
+	bl, _, stop := startLoggedDaemon(t, cfg, 60*time.Second)
+	lost := map[string]time.Duration{}
+	for _, id := range []string{"silent", "pipe"} {
+		at := waitFault(t, bl, "stillwater."+id+".fault", alert.FaultCameraLost, true, start, 10*time.Second)
+		lost[id] = at.Sub(start)
+		assert.LessOrEqual(t, lost[id], 3*time.Second+time.Second, "camera_lost for %s", id)
+	}
+	tg, at := firstStart(t, bl, "demo", 30*time.Second)
+	delay := at.Sub(tg.Time)
+	for _, id := range []string{"silent", "pipe"} {
+		for _, m := range bl.bySubject("stillwater." + id + ".heartbeat") {
+			var hb alert.Heartbeat
+			require.NoError(t, json.Unmarshal(m.Data, &hb))
+			assert.False(t, hb.CameraOK, "camera %s delivered no frame yet heartbeats camera_ok=true", id)
+		}
+	}
+	took, err := stop()
+	refdata.Report(t, "hanging sources: healthy camera's target start published %.0f ms after its alarm decision (limit 1000 ms); "+
+		"camera_lost after %.2f s (silent RTSP) and %.2f s (writerless pipe); serve returned %.2f s after cancel (limit %.0f s)",
+		ms(delay), lost["silent"].Seconds(), lost["pipe"].Seconds(), took.Seconds(), shutdownLimit.Seconds())
+	assert.LessOrEqual(t, delay, time.Second, "decision to publish")
+	require.NoError(t, err, "serve did not return after cancel")
+	assert.LessOrEqual(t, took, shutdownLimit)
+	assert.Empty(t, bl.bySubject("stillwater.demo.fault"), "the healthy camera reported a fault")
+}
+
+func ms(d time.Duration) float64 { return float64(d) / float64(time.Millisecond) }
