@@ -21,7 +21,8 @@ type SourceConfig struct {
 	// path.
 	URI string
 	// Transport is "tcp" or "udp" for RTSP; empty lets FFmpeg choose (UDP
-	// first, then TCP).
+	// first, then TCP). Cameras whose RTSP transports differ open one
+	// kind at a time (see ffmpegEnv).
 	Transport string
 	// OpenTimeout and ReadTimeout bound the FFmpeg backend's blocking calls
 	// (RTSP, HTTP, files); zero keeps OpenCV's default (30 s). V4L2 devices
@@ -199,11 +200,13 @@ func OpenCamera(sc SourceConfig, dc DetectorConfig) (*Camera, error) {
 // open runs through the camera's gate (see OpenGate): it returns after at
 // most openWait whatever the backend does, holding nothing.
 func (c *Camera) open() error {
-	setFFmpegEnv()
+	ffmpegEnv.ensure()
 	src, err := c.prepare()
 	if err != nil {
 		return err
 	}
+	wait := c.openWait()
+	deadline := time.Now().Add(wait)
 	api := capFFmpeg
 	openMs, readMs := int(c.sc.OpenTimeout/time.Millisecond), int(c.sc.ReadTimeout/time.Millisecond)
 	if c.kind == kindV4L2 {
@@ -211,8 +214,19 @@ func (c *Camera) open() error {
 		// device itself.
 		api, openMs, readMs = capV4L2, 0, 0
 	}
-	r := c.gate.run(c.openWait(), func() openResult {
+	r := c.gate.run(wait, func() openResult {
+		release := func() {}
+		if c.kind == kindRTSP {
+			var err error
+			if release, err = ffmpegEnv.acquire(rtspOptions(c.sc.Transport), deadline); err != nil {
+				if src.fd >= 0 {
+					syscall.Close(src.fd)
+				}
+				return openResult{err: err}
+			}
+		}
 		cp, err := openCapture(src.uri, api, openMs, readMs)
+		release() // the backend has read the options
 		if err != nil {
 			if src.fd >= 0 {
 				syscall.Close(src.fd)

@@ -31,7 +31,8 @@ import (
 // to FFmpeg as a descriptor; a network source must answer a request of
 // its own protocol within the open timeout before the backend sees it;
 // and every open runs on a goroutine of its own that is abandoned after
-// its wait (see OpenGate). Evidence clips do not use FFmpeg at all (see
+// its wait (see OpenGate). The FFmpeg options variable is held only by
+// RTSP opens that need another value (see ffmpegEnv). Evidence clips do not use FFmpeg at all (see
 // avi.go).
 
 // Errors of an open that did not complete.
@@ -124,34 +125,83 @@ func (g *OpenGate) Stuck() (bool, time.Time) {
 	}
 }
 
-// ffmpegEnvOnce sets OPENCV_FFMPEG_CAPTURE_OPTIONS once for the process,
-// before the first open. OpenCV reads the variable at every FFmpeg open;
-// with it empty, FFmpeg's own defaults hold and a camera's RTSP transport
-// travels in its URL instead (rtspURL), so no open ever needs another
-// value and nothing has to hold the environment across an open. Left
-// unset, OpenCV would add prefer_tcp, which makes FFmpeg refuse the ?udp
-// URL option (measured against the loopback relay: 400 Bad Request).
-var ffmpegEnvOnce sync.Once
+// ffmpegEnv lends the FFmpeg options variable to RTSP opens. OpenCV reads
+// OPENCV_FFMPEG_CAPTURE_OPTIONS inside each FFmpeg open, only after it has
+// its own open lock, so the value an open needs must stay put until that
+// open returns. Any number of opens needing the value the variable holds
+// go ahead at once; one needing another value waits, at most until its
+// own deadline, for no open to be under way, and then sets it. Cameras
+// that share a transport (or set none) therefore never wait for each
+// other here; other sources do not read the variable at all. It is the
+// process environment, hence one per process.
+var ffmpegEnv = &envLease{name: "OPENCV_FFMPEG_CAPTURE_OPTIONS", idle: make(chan struct{})}
 
-func setFFmpegEnv() {
-	ffmpegEnvOnce.Do(func() {
-		if v, ok := os.LookupEnv("OPENCV_FFMPEG_CAPTURE_OPTIONS"); !ok || v != "" {
-			os.Setenv("OPENCV_FFMPEG_CAPTURE_OPTIONS", "")
-		}
-	})
+type envLease struct {
+	name  string
+	mu    sync.Mutex
+	ready bool   // the variable exists (set before any open of ours)
+	value string // what it holds
+	users int    // opens under way that read it
+	idle  chan struct{}
 }
 
-// rtspURL adds the lower transport to an RTSP URL as FFmpeg's RTSP
-// demuxer reads it from the query (?tcp or ?udp, taken out before the
-// request goes to the camera).
-func rtspURL(uri, transport string) string {
+// ensure makes the variable exist, empty, before the first open: setenv
+// then replaces an entry in place rather than growing the environment
+// under a concurrent getenv. Empty means FFmpeg's own defaults; left unset,
+// OpenCV would add rtsp_flags=prefer_tcp of its own.
+func (e *envLease) ensure() {
+	e.mu.Lock()
+	defer e.mu.Unlock()
+	if !e.ready {
+		os.Setenv(e.name, "")
+		e.ready = true
+	}
+}
+
+// acquire waits until the variable holds v (setting it when no open is
+// under way) and returns the release to call once the open has returned.
+func (e *envLease) acquire(v string, deadline time.Time) (func(), error) {
+	for {
+		e.mu.Lock()
+		if e.users == 0 && (!e.ready || e.value != v) {
+			os.Setenv(e.name, v)
+			e.ready, e.value = true, v
+		}
+		if e.value == v {
+			e.users++
+			e.mu.Unlock()
+			var once sync.Once
+			return func() { once.Do(e.release) }, nil
+		}
+		idle, held := e.idle, e.value
+		e.mu.Unlock()
+		t := time.NewTimer(time.Until(deadline))
+		select {
+		case <-idle:
+			t.Stop()
+		case <-t.C:
+			return nil, fmt.Errorf("%w: another camera's RTSP open with options %q is still under way", ErrOpenTimeout, held)
+		}
+	}
+}
+
+func (e *envLease) release() {
+	e.mu.Lock()
+	defer e.mu.Unlock()
+	e.users--
+	if e.users == 0 {
+		close(e.idle)
+		e.idle = make(chan struct{})
+	}
+}
+
+// rtspOptions is the value of the FFmpeg options variable an RTSP open
+// with this transport needs.
+func rtspOptions(transport string) string {
 	if transport == "" {
-		return uri
+		return ""
 	}
-	if strings.Contains(uri, "?") {
-		return uri + "&" + transport
-	}
-	return uri + "?" + transport
+	return "rtsp_transport;" + transport
 }
 
 // backendSource is what the backend is handed for one open.
@@ -190,11 +240,7 @@ func (c *Camera) prepare() (backendSource, error) {
 		if err := probe(c.sc.URI, c.kind, c.probeTimeout()); err != nil {
 			return backendSource{}, err
 		}
-		uri := c.sc.URI
-		if c.kind == kindRTSP {
-			uri = rtspURL(uri, c.sc.Transport)
-		}
-		return backendSource{uri: uri, fd: -1}, nil
+		return backendSource{uri: c.sc.URI, fd: -1}, nil
 	}
 }
 
