@@ -2,6 +2,7 @@ package vision
 
 // #cgo pkg-config: opencv4
 // #cgo CXXFLAGS: -std=c++11
+// #cgo LDFLAGS: -ldl
 // #include <stdlib.h>
 // #include "shim.h"
 import "C"

@@ -9,6 +9,8 @@ import (
 	"os"
 	"os/signal"
 	"syscall"
+
+	"stillwater/vision"
 )
 
 // runDaemon is "stillwater run": the daemon from a config file.
@@ -72,6 +74,12 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			}
 		}
 	}()
+	// FFmpeg's own messages join the daemon's log rather than stderr.
+	if stopLibLog, err := vision.ForwardLibraryLog(log); err != nil {
+		log.Warn("the video backend's own messages go to stderr", "err", err)
+	} else {
+		defer stopLibLog()
+	}
 	return serve(ctx, cfg, deps{Log: log, Reload: reload})
 }
 
