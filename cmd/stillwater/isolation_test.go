@@ -3,12 +3,20 @@ package main
 import (
 	"bytes"
 	"context"
+	"encoding/binary"
 	"encoding/json"
+	"fmt"
 	"io"
 	"log/slog"
+	"mime/multipart"
 	"net"
+	"net/http"
+	"net/http/httptest"
+	"net/textproto"
 	"os"
 	"path/filepath"
+	"slices"
+	"strconv"
 	"strings"
 	"sync"
 	"syscall"
@@ -87,14 +95,25 @@ func (l *logBuffer) Write(p []byte) (int, error) {
 	return l.b.Write(p)
 }
 
-// lines returns the log records whose msg is msg, decoded.
-func (l *logBuffer) lines(msg string) []map[string]any {
+// all returns every log record, decoded.
+func (l *logBuffer) all() []map[string]any {
 	l.mu.Lock()
 	defer l.mu.Unlock()
 	var out []map[string]any
 	for _, ln := range strings.Split(l.b.String(), "\n") {
 		var rec map[string]any
-		if json.Unmarshal([]byte(ln), &rec) == nil && rec["msg"] == msg {
+		if json.Unmarshal([]byte(ln), &rec) == nil {
+			out = append(out, rec)
+		}
+	}
+	return out
+}
+
+// lines returns the log records whose msg is msg.
+func (l *logBuffer) lines(msg string) []map[string]any {
+	var out []map[string]any
+	for _, rec := range l.all() {
+		if rec["msg"] == msg {
 			out = append(out, rec)
 		}
 	}
@@ -239,3 +258,185 @@ func TestHangingSourcesDoNotHoldUpAHealthyCamera(t *testing.T) {
 }
 
 func ms(d time.Duration) float64 { return float64(d) / float64(time.Millisecond) }
+
+// aviJPEGs returns the frames of a Motion-JPEG AVI as the JPEG data it
+// holds (the movi list's compressed-video chunks, in order).
+func aviJPEGs(t *testing.T, path string) [][]byte {
+	t.Helper()
+	b, err := os.ReadFile(path)
+	require.NoError(t, err)
+	p := bytes.Index(b, []byte("movi"))
+	require.Positive(t, p, "no movi list in %s", path)
+	var out [][]byte
+	for p += 4; p+8 <= len(b); {
+		id, size := string(b[p:p+4]), int(binary.LittleEndian.Uint32(b[p+4:]))
+		switch {
+		case id == "idx1":
+			return out
+		case id == "LIST":
+			p += 12 // into the list
+			continue
+		case strings.HasSuffix(id, "dc") && p+8+size <= len(b):
+			out = append(out, b[p+8:p+8+size])
+		}
+		p += 8 + size + size&1
+	}
+	return out
+}
+
+// segmentedMJPEG serves frames as an MJPEG-over-HTTP camera does, but ends
+// every response after segment frames (paced at fps), so that the reader
+// must reconnect; frames go on where the last response stopped.
+func segmentedMJPEG(t *testing.T, frames [][]byte, segment int, fps float64) string {
+	t.Helper()
+	var mu sync.Mutex
+	next := 0
+	srv := httptest.NewServer(http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		mw := multipart.NewWriter(w)
+		w.Header().Set("Content-Type", "multipart/x-mixed-replace; boundary="+mw.Boundary())
+		tick := time.NewTicker(time.Duration(float64(time.Second) / fps))
+		defer tick.Stop()
+		for i := 0; i < segment; i++ {
+			mu.Lock()
+			f := frames[next%len(frames)]
+			next++
+			mu.Unlock()
+			h := textproto.MIMEHeader{}
+			h.Set("Content-Type", "image/jpeg")
+			h.Set("Content-Length", strconv.Itoa(len(f)))
+			pw, err := mw.CreatePart(h)
+			if err != nil {
+				return
+			}
+			if _, err := pw.Write(f); err != nil {
+				return
+			}
+			w.(http.Flusher).Flush()
+			select {
+			case <-r.Context().Done():
+				return
+			case <-tick.C:
+			}
+		}
+		mw.Close()
+	}))
+	t.Cleanup(srv.Close)
+	return srv.URL + "/video"
+}
+
+// TestSilentSourcesDoNotStallAReopen runs three cameras whose RTSP
+// servers accept and never answer beside a healthy MJPEG-over-HTTP camera
+// whose stream ends every 1.5 s, so that it reconnects again and again.
+// Each reconnect (from the failed read to the camera being back, the
+// 100 ms first backoff included) must not wait for the silent cameras'
+// opens: at most 1 s, well under the 3 s frame timeout, so the healthy
+// camera never reports camera_lost.
+func TestSilentSourcesDoNotStallAReopen(t *testing.T) {
+	if testing.Short() {
+		t.Skip("runs the daemon for about 15 s")
+	}
+	truth, clip, dir := renderScene(t, "empty", 7, nil)
+	frames := aviJPEGs(t, clip)
+	require.NotEmpty(t, frames)
+	cfg := demoConfig(truth, clip, dir, false)
+	healthy := &cfg.Cameras[0]
+	healthy.Source = segmentedMJPEG(t, frames, 15, 10)
+	for i := 0; i < 3; i++ {
+		c := cfg.Cameras[0]
+		c.ID, c.Source, c.Transport = fmt.Sprintf("silent%d", i), "rtsp://"+silentSource(t)+"/pool", "tcp"
+		cfg.Cameras = append(cfg.Cameras, c)
+	}
+	require.NoError(t, cfg.Validate())
+
+	bl, logs, stop := startLoggedDaemon(t, cfg, 60*time.Second)
+	// Six reconnects take about 10 s; a stalled camera gets 30 s.
+	for end := time.Now().Add(30 * time.Second); len(logs.lines("camera back")) < 6 && time.Now().Before(end); {
+		time.Sleep(100 * time.Millisecond)
+	}
+	_, err := stop()
+	require.NoError(t, err)
+
+	var gaps []time.Duration
+	var failed time.Time
+	for _, rec := range logs.all() {
+		if rec["camera"] != "demo" {
+			continue
+		}
+		switch rec["msg"] {
+		case "camera read failed; reconnecting":
+			failed = recordTime(t, rec)
+		case "camera back":
+			if !failed.IsZero() {
+				gaps = append(gaps, recordTime(t, rec).Sub(failed))
+				failed = time.Time{}
+			}
+		}
+	}
+	if failed.After(time.Time{}) {
+		gaps = append(gaps, time.Since(failed)) // still not back at the end
+	}
+	require.NotEmpty(t, gaps, "the healthy camera never reconnected")
+	slices.Sort(gaps)
+	worst, median := gaps[len(gaps)-1], gaps[len(gaps)/2]
+	refdata.Report(t, "silent sources: with three RTSP servers that never answer, the healthy camera's %d reconnects took %.0f ms median, %.0f ms worst (limit 1000 ms)",
+		len(gaps), ms(median), ms(worst))
+	assert.LessOrEqual(t, worst, time.Second)
+	assert.GreaterOrEqual(t, len(gaps), 5, "the healthy camera did not keep reconnecting")
+	assert.Zero(t, len(bl.bySubject("stillwater.demo.fault")), "the healthy camera reported faults")
+	for i := 0; i < 3; i++ {
+		assert.NotEmpty(t, bl.bySubject(fmt.Sprintf("stillwater.silent%d.fault", i)), "silent camera %d raised no camera_lost", i)
+	}
+}
+
+// TestTargetPublishedBeforeItsEvidence plays the child clip with evidence
+// on and off and measures, for the first target start, the time from the
+// alarm decision (the message's time field) to its arrival at a
+// subscriber. With evidence on, the message must arrive before the
+// snapshot it names is written (the file's modification time), and the delay must
+// not grow with evidence: both stay within the 1 s requirement (a
+// daemon-level bound on wall time, generous against the milliseconds
+// measured).
+func TestTargetPublishedBeforeItsEvidence(t *testing.T) {
+	if testing.Short() {
+		t.Skip("plays a 20 s clip twice")
+	}
+	truth, clip, dir := renderScene(t, "child", 7, nil)
+	delays := map[bool]time.Duration{}
+	var written time.Duration
+	for _, on := range []bool{false, true} {
+		cfg := demoConfig(truth, clip, filepath.Join(dir, fmt.Sprint(on)), false)
+		cfg.Evidence.Enabled = &on
+		require.NoError(t, cfg.Validate())
+		bl, _, stop := startLoggedDaemon(t, cfg, 60*time.Second)
+		tg, at := firstStart(t, bl, "demo", 60*time.Second)
+		delays[on] = at.Sub(tg.Time)
+		if on {
+			require.NotEmpty(t, tg.Evidence)
+			snap := filepath.Join(cfg.DataDir, tg.Evidence)
+			var kept time.Time
+			require.Eventually(t, func() bool {
+				st, err := os.Stat(snap)
+				if err == nil {
+					kept = st.ModTime()
+				}
+				return err == nil
+			}, 10*time.Second, 10*time.Millisecond, "no snapshot %s", tg.Evidence)
+			written = kept.Sub(at)
+			assert.True(t, at.Before(kept), "the target arrived %v after its snapshot was written", at.Sub(kept))
+			jpg, err := os.ReadFile(snap)
+			require.NoError(t, err)
+			assert.True(t, bytes.HasPrefix(jpg, []byte{0xff, 0xd8, 0xff}), "evidence is not a JPEG")
+			clipPath := strings.TrimSuffix(snap, ".jpg") + ".avi"
+			require.Eventually(t, func() bool { st, err := os.Stat(clipPath); return err == nil && st.Size() > 0 }, 10*time.Second, 50*time.Millisecond)
+		} else {
+			assert.Empty(t, tg.Evidence)
+		}
+		_, err := stop()
+		require.NoError(t, err)
+	}
+	refdata.Report(t, "evidence: alarm decision to target at a subscriber %.1f ms with evidence off, %.1f ms with it on; the snapshot was written %.1f ms after the target arrived",
+		ms(delays[false]), ms(delays[true]), ms(written))
+	for on, d := range delays {
+		assert.LessOrEqual(t, d, time.Second, "evidence on: %v", on)
+	}
+}
