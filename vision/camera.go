@@ -200,6 +200,9 @@ func OpenCamera(sc SourceConfig, dc DetectorConfig) (*Camera, error) {
 // open runs through the camera's gate (see OpenGate): it returns after at
 // most openWait whatever the backend does, holding nothing.
 func (c *Camera) open() error {
+	if stuck, since := c.gate.Stuck(); stuck {
+		return fmt.Errorf("%w (blocked for %v)", ErrOpenStuck, time.Since(since).Round(time.Second))
+	}
 	ffmpegEnv.ensure()
 	src, err := c.prepare()
 	if err != nil {
@@ -247,6 +250,9 @@ func (c *Camera) open() error {
 		return openResult{cp: cp, frame: m}
 	})
 	if r.err != nil {
+		if errors.Is(r.err, ErrOpenStuck) && src.fd >= 0 {
+			syscall.Close(src.fd) // refused before the open ran
+		}
 		return r.err
 	}
 	cp := r.cp

@@ -130,7 +130,7 @@ func (w *cameraWatch) lostDetail(since time.Duration) string {
 		msg = fmt.Sprintf("no frame from %s since the start (%.1f s)", vision.Redact(w.cam.Source), since.Seconds())
 	}
 	if stuck, at := w.gate.Stuck(); stuck {
-		msg += fmt.Sprintf("; an open has been blocked in the video backend for %.0f s", w.now().Sub(at).Seconds())
+		msg += fmt.Sprintf("; an open has been blocked in the video backend for %.0f s", time.Since(at).Seconds())
 	}
 	return msg
 }
