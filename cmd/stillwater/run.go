@@ -9,6 +9,8 @@ import (
 	"os"
 	"os/signal"
 	"syscall"
+
+	"stillwater/vision"
 )
 
 // runDaemon is "stillwater run": the daemon from a config file.
@@ -74,6 +76,12 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			}
 		}
 	}()
+	// FFmpeg's own messages join the daemon's log rather than stderr.
+	if stopLibLog, err := vision.ForwardLibraryLog(log); err != nil {
+		log.Warn("the video backend's own messages go to stderr", "err", err)
+	} else {
+		defer stopLibLog()
+	}
 	// The error is printed by main, outside the log: hide secrets there too.
 	return redactorOf(log).Err(serve(ctx, cfg, deps{Log: log, Reload: reload}))
 }

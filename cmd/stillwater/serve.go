@@ -10,12 +10,12 @@ import (
 	"net/http"
 	"os"
 	"runtime/debug"
+	"sync/atomic"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
-	"golang.org/x/sync/errgroup"
 
 	"stillwater/alert"
 )
@@ -96,7 +96,8 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	}
 	registerBusMetrics(reg, bus, now)
 
-	bs := redactSink{next: &busSink{pub: pub, met: met}, red: redactorOf(log)}
+	busOut := &busSink{pub: pub, met: met}
+	bs := redactSink{next: busOut, red: redactorOf(log)}
 	for _, cam := range cfg.Cameras {
 		id := cam.ID
 		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
@@ -177,7 +178,6 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	busDone := make(chan error, 1)
 	go func() { busDone <- bus.Run(busCtx) }()
 
-	g, gctx := errgroup.WithContext(ctx)
 	camsDone := make(chan struct{})
 	rl := newReloader(log, cfg, acc, reloadTargets{
 		watches:      watches,
@@ -198,19 +198,28 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 			}
 		}
 	}()
-	for _, w := range watches {
-		// One goroutine per camera; a failing camera logs and ends alone.
-		g.Go(func() error {
-			if err := w.run(gctx); err != nil {
+	// One goroutine per camera; a failing camera logs and ends alone. A
+	// camera still running cameraStopWait after ctx ended (a call into the
+	// video backend that does not return) is abandoned, not waited for.
+	stopped := make([]chan struct{}, len(watches))
+	for i, w := range watches {
+		stopped[i] = make(chan struct{})
+		go func() {
+			defer close(stopped[i])
+			if err := w.run(ctx); err != nil {
 				log.Error("camera stopped", "camera", w.cam.ID, "err", err)
 			}
-			return nil
-		})
+		}()
 	}
-	g.Wait()
+	if left := waitCameras(ctx, watches, stopped, cameraStopWait); len(left) > 0 {
+		busOut.stop()
+		for _, id := range left {
+			log.Error("camera did not stop; abandoned", "camera", id, "waited", cameraStopWait)
+		}
+	}
 	close(camsDone)
 
-	fctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
+	fctx, cancel := context.WithTimeout(context.Background(), flushWait)
 	defer cancel()
 	if err := pub.Flush(fctx); err != nil {
 		log.Error("flush bus; what is left stays in the outbox for the next start", "err", err, "depth", pub.Stats().Depth)
@@ -221,6 +230,48 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	}
 	stopHTTP()
 	return <-httpDone
+}
+
+// Shutdown bounds: after the context ends, cameras get cameraStopWait to
+// stop, then the outbox gets flushWait to reach the bus. systemd's
+// TimeoutStopSec (deploy/stillwater.service) must stay above the sum.
+const (
+	cameraStopWait = 3 * time.Second
+	flushWait      = 5 * time.Second
+)
+
+// waitCameras waits until every camera's goroutine has closed its channel
+// in stopped, or, once ctx has ended, grace more at most. It returns the
+// ids of the cameras still running then.
+func waitCameras(ctx context.Context, watches []*cameraWatch, stopped []chan struct{}, grace time.Duration) []string {
+	all := make(chan struct{})
+	go func() {
+		for _, ch := range stopped {
+			<-ch
+		}
+		close(all)
+	}()
+	select {
+	case <-all:
+		return nil
+	case <-ctx.Done():
+	}
+	t := time.NewTimer(grace)
+	defer t.Stop()
+	select {
+	case <-all:
+		return nil
+	case <-t.C:
+	}
+	var left []string
+	for i, ch := range stopped {
+		select {
+		case <-ch:
+		default:
+			left = append(left, watches[i].cam.ID)
+		}
+	}
+	return left
 }
 
 // readiness lists why the daemon is not ready: an armed camera without
@@ -281,6 +332,9 @@ type backlogEvent struct {
 type busSink struct {
 	pub *alert.Publisher
 	met *metrics
+	// closed is set when serve stops with cameras abandoned: what they
+	// send later goes nowhere, not into a closed publisher.
+	closed atomic.Bool
 }
 
 // redactSink hides secrets in messages before they leave, as the log
@@ -295,7 +349,14 @@ func (r redactSink) send(ctx context.Context, m outMsg) error {
 	return r.next.send(ctx, m)
 }
 
+var errDaemonStopped = errors.New("the daemon has stopped")
+
+func (b *busSink) stop() { b.closed.Store(true) }
+
 func (b *busSink) send(ctx context.Context, m outMsg) error {
+	if b.closed.Load() {
+		return errDaemonStopped
+	}
 	if err := b.pub.Publish(ctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
 		if m.Kind == alert.KindBeat && errors.Is(err, alert.ErrBusDown) {
 			return nil
