@@ -17,6 +17,7 @@ import (
 	"time"
 
 	"stillwater/alert"
+	"stillwater/alert/arming"
 	"stillwater/vision"
 )
 
@@ -207,7 +208,7 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	fmt.Fprintf(w, "  unacknowledged messages wait in %s/outbox\n", cfg.DataDir)
 	who := cfg.Control.TokenName
 	if who == "" {
-		who = alert.DefaultTokenName
+		who = arming.DefaultTokenName
 	}
 	switch c := cfg.Control; {
 	case c.SecretEnv != "":
@@ -301,7 +302,7 @@ func crossedCorners(cam CameraConfig, cal *calibration) bool {
 // armingLine says whether the camera is armed at now and when that
 // changes, in the schedule's zone; system says the zone is the machine's
 // (time_zone Local).
-func armingLine(s *alert.Schedule, loc *time.Location, system bool, now time.Time) string {
+func armingLine(s *arming.Schedule, loc *time.Location, system bool, now time.Time) string {
 	if s == nil {
 		return "armed around the clock (no schedule)"
 	}

@@ -16,7 +16,8 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
-	"stillwater/alert"
+	"stillwater/alert/arming"
+	"stillwater/alert/bus"
 )
 
 const busYAML = goodConfig + `
@@ -50,7 +51,7 @@ func TestBusConfigFromYAML(t *testing.T) {
 	ec, warn, err := cfg.Bus.embeddedConfig("/data", getenv)
 	require.NoError(t, err)
 	assert.Empty(t, warn)
-	assert.Equal(t, []alert.BusUser{{Name: "stillwater", Password: "daemon-pw", Role: "daemon"}, {Name: "pager", Password: "pager-pw", Role: "responder"},
+	assert.Equal(t, []bus.User{{Name: "stillwater", Password: "daemon-pw", Role: "daemon"}, {Name: "pager", Password: "pager-pw", Role: "responder"},
 		{Name: "alice", Password: "$2a$11$abcdefghijklmnopqrstuv", Role: "operator"}}, ec.Users)
 	assert.Equal(t, "/data/jetstream", ec.StoreDir)
 	assert.Equal(t, "sw", ec.Prefix)
@@ -156,14 +157,14 @@ func TestOpenBusEndToEnd(t *testing.T) {
 	cfg := Defaults()
 	cfg.DataDir = t.TempDir()
 	cfg.Bus = BusConfig{Listen: "127.0.0.1:-1", Prefix: "sw", Users: []BusUserConfig{
-		{Name: "stillwater", Role: alert.RoleDaemon, PasswordEnv: "SW_TEST_DAEMON_PW"},
-		{Name: "pager", Role: alert.RoleResponder, Password: "pager-pw"}}}
+		{Name: "stillwater", Role: bus.RoleDaemon, PasswordEnv: "SW_TEST_DAEMON_PW"},
+		{Name: "pager", Role: bus.RoleResponder, Password: "pager-pw"}}}
 	// The override's author is the name bound to the token, not the body's by.
 	cfg.Control = ControlConfig{SecretEnv: "SW_TEST_CONTROL", TokenName: "test"}
 	require.NoError(t, validateBus(cfg.Bus))
 	require.NoError(t, validateControl(cfg.Control, cfg.Bus))
 	refused := make(chan string, 4)
-	b, err := openBus(context.Background(), cfg, alert.ArmingConfig{Cameras: []string{"pool"}}, time.Now,
+	b, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"pool"}}, time.Now,
 		slog.New(slog.NewTextHandler(io.Discard, nil)), busHooks{OnRefused: func(via string) { refused <- via }})
 	require.NoError(t, err)
 	defer b.Close()

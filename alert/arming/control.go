@@ -1,4 +1,4 @@
-package alert
+package arming
 
 import (
 	"bytes"
@@ -19,19 +19,9 @@ import (
 	"unicode"
 
 	"github.com/nats-io/nats.go"
-)
 
-// Control actions: the last token of PREFIX.control.ACTION and of the
-// HTTP path /control/ACTION.
-const (
-	ActionArm    = "arm"
-	ActionDisarm = "disarm"
-	ActionClear  = "clear"
-	ActionStatus = "status"
+	"stillwater/alert"
 )
-
-// ControlSubject returns the NATS subject of a control action.
-func ControlSubject(prefix, action string) string { return prefix + ".control." + action }
 
 // maxControlBody bounds a request body; real requests are under 200 bytes.
 const maxControlBody = 4096
@@ -40,7 +30,7 @@ const maxControlBody = 4096
 // the clock for "for" durations; zero means none given.
 type ControlRequest struct {
 	Action string
-	Camera string // a camera id or AllCameras
+	Camera string // a camera id or alert.AllCameras
 	Until  time.Time
 	// By is what the caller says about itself. It is logged as a claim
 	// and never recorded as the author: that is the identity the request
@@ -65,9 +55,9 @@ type controlBody struct {
 func DecodeControl(action string, body []byte, now time.Time) (ControlRequest, error) {
 	var req ControlRequest
 	switch action {
-	case ActionArm, ActionDisarm, ActionClear, ActionStatus:
+	case alert.ActionArm, alert.ActionDisarm, alert.ActionClear, alert.ActionStatus:
 	default:
-		return req, fmt.Errorf("unknown action %q; want %s, %s, %s or %s", action, ActionArm, ActionDisarm, ActionClear, ActionStatus)
+		return req, fmt.Errorf("unknown action %q; want %s, %s, %s or %s", action, alert.ActionArm, alert.ActionDisarm, alert.ActionClear, alert.ActionStatus)
 	}
 	if len(body) > maxControlBody {
 		return req, fmt.Errorf("body of %d bytes is over the %d-byte limit", len(body), maxControlBody)
@@ -85,9 +75,9 @@ func DecodeControl(action string, body []byte, now time.Time) (ControlRequest, e
 	}
 	req = ControlRequest{Action: action, Camera: b.Camera, By: b.By, Token: b.Token}
 	if req.Camera == "" {
-		req.Camera = AllCameras
+		req.Camera = alert.AllCameras
 	}
-	if err := ValidToken(req.Camera); err != nil {
+	if err := alert.ValidToken(req.Camera); err != nil {
 		return ControlRequest{}, fmt.Errorf("camera: %v", err)
 	}
 	if len(req.By) > 64 || strings.IndexFunc(req.By, func(r rune) bool { return !unicode.IsPrint(r) }) >= 0 {
@@ -111,18 +101,18 @@ func DecodeControl(action string, body []byte, now time.Time) (ControlRequest, e
 		req.Until = now.Add(d)
 	}
 	switch action {
-	case ActionDisarm:
+	case alert.ActionDisarm:
 		if req.Until.IsZero() {
 			return ControlRequest{}, errors.New("disarm needs until or for: a disarm always ends")
 		}
 		if !req.Until.After(now) {
 			return ControlRequest{}, errors.New("until is not in the future")
 		}
-	case ActionArm:
+	case alert.ActionArm:
 		if !req.Until.IsZero() && !req.Until.After(now) {
 			return ControlRequest{}, errors.New("until is not in the future")
 		}
-	case ActionClear, ActionStatus:
+	case alert.ActionClear, alert.ActionStatus:
 		if !req.Until.IsZero() {
 			return ControlRequest{}, fmt.Errorf("%s takes no until or for", action)
 		}
@@ -144,9 +134,9 @@ func bodyToken(body []byte) string {
 
 // ControlReply is the JSON answer to every control request.
 type ControlReply struct {
-	OK     bool          `json:"ok"`
-	Error  string        `json:"error,omitempty"`
-	Status *ArmingStatus `json:"status,omitempty"`
+	OK     bool    `json:"ok"`
+	Error  string  `json:"error,omitempty"`
+	Status *Status `json:"status,omitempty"`
 }
 
 // ControlConfig sets up a Control.
@@ -209,7 +199,7 @@ func NewControl(cfg ControlConfig) (*Control, error) {
 	if cfg.Arming == nil {
 		return nil, errors.New("control: no arming")
 	}
-	if err := ValidToken(cfg.Prefix); err != nil {
+	if err := alert.ValidToken(cfg.Prefix); err != nil {
 		return nil, fmt.Errorf("control: prefix: %v", err)
 	}
 	if cfg.Now == nil {
@@ -281,7 +271,7 @@ func (c *Control) authorise(via string, req ControlRequest, header string) (who,
 		tok = t
 	}
 	switch {
-	case req.Action == ActionStatus:
+	case req.Action == alert.ActionStatus:
 		return "", "", true
 	case tok != "" && a.tokenOK(tok):
 		return via + ":" + a.name, "", true
@@ -296,7 +286,7 @@ func (c *Control) authorise(via string, req ControlRequest, header string) (who,
 }
 
 // needsAuth reports whether action changes state, and so is throttled.
-func needsAuth(action string) bool { return action != ActionStatus }
+func needsAuth(action string) bool { return action != alert.ActionStatus }
 
 func (c *Control) refuse(via string, req ControlRequest, why string) {
 	c.log.Warn("control request refused", "via", via, "action", req.Action, "camera", req.Camera, "claimed_by", req.By, "reason", why)
@@ -313,14 +303,14 @@ const tooMany = "too many refused attempts from this client; wait and try again"
 func (c *Control) apply(via, by string, req ControlRequest, now time.Time) ControlReply {
 	var err error
 	switch req.Action {
-	case ActionArm:
+	case alert.ActionArm:
 		err = c.cfg.Arming.Arm(req.Camera, req.Until, by, now)
-	case ActionDisarm:
+	case alert.ActionDisarm:
 		err = c.cfg.Arming.DisarmUntil(req.Camera, req.Until, by, now)
-	case ActionClear:
+	case alert.ActionClear:
 		err = c.cfg.Arming.Clear(req.Camera, by, now)
-	case ActionStatus:
-		if req.Camera != AllCameras {
+	case alert.ActionStatus:
+		if req.Camera != alert.AllCameras {
 			if _, err := c.cfg.Arming.targets(req.Camera); err != nil {
 				return ControlReply{Error: err.Error()}
 			}
@@ -329,11 +319,11 @@ func (c *Control) apply(via, by string, req ControlRequest, now time.Time) Contr
 	if err != nil {
 		return ControlReply{Error: err.Error()}
 	}
-	if req.Action != ActionStatus {
+	if req.Action != alert.ActionStatus {
 		c.log.Info("control request applied", "via", via, "action", req.Action, "camera", req.Camera, "by", by, "claimed_by", req.By)
 	}
 	st := c.cfg.Arming.Status(now)
-	if req.Camera != AllCameras {
+	if req.Camera != alert.AllCameras {
 		rows := st.Cameras[:0]
 		for _, r := range st.Cameras {
 			if r.Camera == req.Camera {
@@ -358,11 +348,11 @@ func (c *Control) Handler() http.Handler {
 			return
 		}
 		want := http.MethodPost
-		if action == ActionStatus {
+		if action == alert.ActionStatus {
 			want = http.MethodGet
 		}
 		switch action {
-		case ActionArm, ActionDisarm, ActionClear, ActionStatus:
+		case alert.ActionArm, alert.ActionDisarm, alert.ActionClear, alert.ActionStatus:
 		default:
 			writeReply(w, http.StatusNotFound, ControlReply{Error: fmt.Sprintf("no action %q; use /control/arm, /control/disarm, /control/clear or /control/status", action)})
 			return
@@ -451,7 +441,7 @@ func (c *Control) Serve(ctx context.Context, nc *nats.Conn) error {
 			c.log.Warn("control reply failed", "err", err)
 		}
 	}
-	sub, err := nc.Subscribe(ControlSubject(c.cfg.Prefix, "*"), func(m *nats.Msg) {
+	sub, err := nc.Subscribe(alert.ControlSubject(c.cfg.Prefix, "*"), func(m *nats.Msg) {
 		// A throttled request waits in its own goroutine, so that it
 		// holds up neither status requests nor the subscription.
 		if c.throttle.Pending(natsClient) {
@@ -461,7 +451,7 @@ func (c *Control) Serve(ctx context.Context, nc *nats.Conn) error {
 		answer(m)
 	})
 	if err != nil {
-		return fmt.Errorf("control: subscribe %s: %w", ControlSubject(c.cfg.Prefix, "*"), err)
+		return fmt.Errorf("control: subscribe %s: %w", alert.ControlSubject(c.cfg.Prefix, "*"), err)
 	}
 	<-ctx.Done()
 	if err := sub.Unsubscribe(); err != nil && !errors.Is(err, nats.ErrConnectionClosed) {

@@ -1,4 +1,4 @@
-package alert
+package bus
 
 import (
 	"context"
@@ -15,6 +15,8 @@ import (
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
+
+	"stillwater/alert"
 )
 
 // StreamConfig describes the JetStream stream that keeps alarm messages:
@@ -53,7 +55,7 @@ func (sc StreamConfig) withDefaults() StreamConfig {
 // StreamSubjects returns the subjects the stream captures under prefix.
 func StreamSubjects(prefix string) []string {
 	var out []string
-	for _, k := range []string{KindTarget, KindCleared, KindFault, KindArmed} {
+	for _, k := range []string{alert.KindTarget, alert.KindCleared, alert.KindFault, alert.KindArmed} {
 		out = append(out, prefix+".*."+k)
 	}
 	return out
@@ -217,7 +219,7 @@ func NewPublisher(ctx context.Context, nc *nats.Conn, prefix string, sc StreamCo
 // outbox unless another stream on the server acknowledges them. Call Run
 // to drain the outbox and Close at the end.
 func NewPublisherWith(ctx context.Context, nc *nats.Conn, cfg PublisherConfig) (*Publisher, error) {
-	if err := ValidToken(cfg.Prefix); err != nil {
+	if err := alert.ValidToken(cfg.Prefix); err != nil {
 		return nil, fmt.Errorf("publisher: prefix: %v", err)
 	}
 	cfg.Stream = cfg.Stream.withDefaults()
@@ -252,7 +254,7 @@ func NewPublisherWith(ctx context.Context, nc *nats.Conn, cfg PublisherConfig) (
 			ob.close()
 			return nil, err
 		}
-		if errors.Is(err, ErrBusDown) {
+		if errors.Is(err, ErrNotConnected) {
 			log.Warn("bus not connected; messages wait in the outbox", "stream", cfg.Stream.Name)
 		}
 	}
@@ -265,7 +267,7 @@ func NewPublisherWith(ctx context.Context, nc *nats.Conn, cfg PublisherConfig) (
 
 // ensureStream creates or updates the stream unless it is known to be
 // there. While it is faulted, a new attempt is made at most every
-// StreamRetry unless force is set. It returns ErrBusDown (wrapped) while
+// StreamRetry unless force is set. It returns ErrNotConnected (wrapped) while
 // disconnected, and the fault otherwise.
 func (p *Publisher) ensureStream(ctx context.Context, force bool) error {
 	p.streamTry.Lock()
@@ -278,7 +280,7 @@ func (p *Publisher) ensureStream(ctx context.Context, force bool) error {
 	case ok:
 		return nil
 	case p.nc.Status() != nats.CONNECTED:
-		return fmt.Errorf("publisher: create stream %s: %w", sc.Name, ErrBusDown)
+		return fmt.Errorf("publisher: create stream %s: %w", sc.Name, ErrNotConnected)
 	case fault != nil && !force && time.Since(at) < p.cfg.StreamRetry:
 		return fault
 	}
@@ -401,7 +403,7 @@ func (p *Publisher) streamLost() {
 // durable reports whether kind goes to the stream.
 func durable(kind string) bool {
 	switch kind {
-	case KindTarget, KindCleared, KindFault, KindArmed:
+	case alert.KindTarget, alert.KindCleared, alert.KindFault, alert.KindArmed:
 		return true
 	}
 	return false
@@ -409,7 +411,7 @@ func durable(kind string) bool {
 
 // lowPriority marks target updates: a later update supersedes them.
 func lowPriority(kind string, data []byte) bool {
-	if kind != KindTarget {
+	if kind != alert.KindTarget {
 		return false
 	}
 	var m struct {
@@ -423,15 +425,15 @@ func lowPriority(kind string, data []byte) bool {
 // message is acknowledged or safely queued in the outbox; the error is
 // ErrOutboxFull (wrapped) when it was refused, and the server's when it
 // refused the message outright (which then goes to the dead-letter file).
-// Heartbeats return ErrBusDown while disconnected. Publish waits at most
+// Heartbeats return ErrNotConnected while disconnected. Publish waits at most
 // AckTimeout.
 func (p *Publisher) Publish(ctx context.Context, camera, kind, id string, data []byte) error {
-	subj := Subject(p.cfg.Prefix, camera, kind)
+	subj := alert.Subject(p.cfg.Prefix, camera, kind)
 	if !durable(kind) {
 		if p.nc.Status() != nats.CONNECTED {
 			p.beatsLost.Add(1)
-			p.report(PublishResult{Camera: camera, Kind: kind, Err: ErrBusDown})
-			return fmt.Errorf("publish %s: %w", subj, ErrBusDown)
+			p.report(PublishResult{Camera: camera, Kind: kind, Err: ErrNotConnected})
+			return fmt.Errorf("publish %s: %w", subj, ErrNotConnected)
 		}
 		if err := p.nc.Publish(subj, data); err != nil {
 			return fmt.Errorf("publish %s: %w", subj, err)
@@ -455,7 +457,7 @@ func (p *Publisher) Publish(ctx context.Context, camera, kind, id string, data [
 	}
 	dropped, err := p.ob.push(rec)
 	for range dropped {
-		p.report(PublishResult{Kind: KindTarget, Outboxed: true, Err: errors.New("dropped from a full outbox")})
+		p.report(PublishResult{Kind: alert.KindTarget, Outboxed: true, Err: errors.New("dropped from a full outbox")})
 	}
 	if err != nil {
 		p.report(PublishResult{Camera: camera, Kind: kind, ID: id, Outboxed: true, Err: err})
@@ -562,7 +564,7 @@ func (p *Publisher) runRetries(ctx context.Context) {
 				continue
 			}
 			streamErr := p.ensureStream(ctx, false)
-			if errors.Is(streamErr, ErrBusDown) {
+			if errors.Is(streamErr, ErrNotConnected) {
 				break
 			}
 			if out, _ := p.try(ctx, rec, streamErr); out == tryBlocked || out == tryBroken {
@@ -607,13 +609,13 @@ func (p *Publisher) drain(ctx context.Context) error {
 			return err
 		}
 		if p.nc.Status() != nats.CONNECTED {
-			return ErrBusDown
+			return ErrNotConnected
 		}
 		if p.inRetryLane(rec) {
 			continue
 		}
 		streamErr := p.ensureStream(ctx, false)
-		if errors.Is(streamErr, ErrBusDown) {
+		if errors.Is(streamErr, ErrNotConnected) {
 			return streamErr
 		}
 		out, err := p.try(ctx, rec, streamErr)
@@ -784,22 +786,22 @@ func cameraOf(subject string) string {
 
 // PublishArmed encodes and publishes an armed change to
 // PREFIX.CAMERA.armed with ArmedID as its de-duplication id.
-func (p *Publisher) PublishArmed(ctx context.Context, c ArmedChange) error {
-	b, err := Encode(c)
+func (p *Publisher) PublishArmed(ctx context.Context, c alert.ArmedChange) error {
+	b, err := alert.Encode(c)
 	if err != nil {
 		return err
 	}
-	return p.Publish(ctx, c.Camera, KindArmed, ArmedID(c), b)
+	return p.Publish(ctx, c.Camera, alert.KindArmed, alert.ArmedID(c), b)
 }
 
 // PublishFault encodes and publishes a fault to PREFIX.CAMERA.fault; epoch
 // is the sender's start time, part of the de-duplication id (FaultID).
-func (p *Publisher) PublishFault(ctx context.Context, f Fault, epoch time.Time) error {
-	b, err := Encode(f)
+func (p *Publisher) PublishFault(ctx context.Context, f alert.Fault, epoch time.Time) error {
+	b, err := alert.Encode(f)
 	if err != nil {
 		return err
 	}
-	return p.Publish(ctx, f.Camera, KindFault, FaultID(f, epoch), b)
+	return p.Publish(ctx, f.Camera, alert.KindFault, alert.FaultID(f, epoch), b)
 }
 
 // Flush sends what the outbox holds (if the bus is up) and waits until the

@@ -1,4 +1,4 @@
-package alert
+package bus
 
 import (
 	"errors"
@@ -11,6 +11,8 @@ import (
 	"time"
 
 	"github.com/nats-io/nats-server/v2/server"
+
+	"stillwater/alert"
 )
 
 // Roles of the embedded server's users. Each maps to NATS publish and
@@ -27,9 +29,9 @@ const (
 	RoleOperator = "operator"
 )
 
-// BusUser is one user of the embedded server. Password may be plain or a
+// User is one user of the embedded server. Password may be plain or a
 // bcrypt hash ("$2a$..."), which nats-server accepts as such.
-type BusUser struct {
+type User struct {
 	Name     string
 	Password string
 	Role     string // RoleDaemon, RoleResponder or RoleOperator
@@ -66,7 +68,7 @@ type EmbeddedConfig struct {
 	Prefix string
 	// Users, when not empty, turn on authentication: every client (MQTT
 	// too) must log in as one of them.
-	Users []BusUser
+	Users []User
 	// Leaf lists remote servers to join as a leaf node.
 	Leaf []LeafRemote
 	// Domain is the JetStream domain of this server; it defaults to
@@ -159,7 +161,7 @@ func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 		opts.MQTT.Host, opts.MQTT.Port = mh, mp
 	}
 	if len(cfg.Users) > 0 {
-		if err := ValidToken(cfg.Prefix); err != nil {
+		if err := alert.ValidToken(cfg.Prefix); err != nil {
 			return nil, fmt.Errorf("embedded bus users: prefix: %v", err)
 		}
 		seen := map[string]bool{}
@@ -206,9 +208,9 @@ func rolePermissions(prefix, role string) (*server.Permissions, error) {
 			Subscribe: &server.SubjectPermission{Allow: []string{ctl + ">", inbox}},
 		}, nil
 	case RoleResponder, RoleOperator:
-		pub := []string{ctl + ActionStatus}
+		pub := []string{ctl + alert.ActionStatus}
 		if role == RoleOperator {
-			pub = append(pub, ctl+ActionArm, ctl+ActionDisarm, ctl+ActionClear)
+			pub = append(pub, ctl+alert.ActionArm, ctl+alert.ActionDisarm, ctl+alert.ActionClear)
 		}
 		return &server.Permissions{
 			Publish:   &server.SubjectPermission{Allow: pub},
@@ -238,7 +240,7 @@ func leafRemote(l LeafRemote) (*server.RemoteLeafOpts, error) {
 			return nil, fmt.Errorf("creds file: %w", err)
 		}
 	}
-	tc, err := clientTLS(BusAuth{CAFile: l.CAFile, CertFile: l.CertFile, KeyFile: l.KeyFile})
+	tc, err := clientTLS(Auth{CAFile: l.CAFile, CertFile: l.CertFile, KeyFile: l.KeyFile})
 	if err != nil {
 		return nil, err
 	}

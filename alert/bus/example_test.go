@@ -1,4 +1,4 @@
-package alert_test
+package bus_test
 
 import (
 	"encoding/json"

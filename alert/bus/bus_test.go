@@ -1,12 +1,9 @@
-package alert
+package bus
 
 import (
 	"bytes"
 	"context"
-	"encoding/json"
 	"net"
-	"net/http"
-	"net/http/httptest"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -20,6 +17,8 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"stillwater/alert"
 )
 
 func TestEmbeddedDefaultsToLoopback(t *testing.T) {
@@ -41,10 +40,10 @@ func TestEmbeddedConfigErrors(t *testing.T) {
 		want string
 	}{
 		{"bad port", EmbeddedConfig{Listen: "127.0.0.1:nats"}, "listen"},
-		{"bad role", EmbeddedConfig{Prefix: "sw", Users: []BusUser{{Name: "a", Password: "p", Role: "admin"}}}, `role "admin"`},
-		{"no password", EmbeddedConfig{Prefix: "sw", Users: []BusUser{{Name: "a", Role: RoleDaemon}}}, "users[0]"},
-		{"twice", EmbeddedConfig{Prefix: "sw", Users: []BusUser{{"a", "p", RoleDaemon}, {"a", "q", RoleOperator}}}, "used twice"},
-		{"no prefix", EmbeddedConfig{Users: []BusUser{{"a", "p", RoleDaemon}}}, "prefix"},
+		{"bad role", EmbeddedConfig{Prefix: "sw", Users: []User{{Name: "a", Password: "p", Role: "admin"}}}, `role "admin"`},
+		{"no password", EmbeddedConfig{Prefix: "sw", Users: []User{{Name: "a", Role: RoleDaemon}}}, "users[0]"},
+		{"twice", EmbeddedConfig{Prefix: "sw", Users: []User{{"a", "p", RoleDaemon}, {"a", "q", RoleOperator}}}, "used twice"},
+		{"no prefix", EmbeddedConfig{Users: []User{{"a", "p", RoleDaemon}}}, "prefix"},
 		{"leaf no url", EmbeddedConfig{Leaf: []LeafRemote{{}}}, "leaf[0]: no urls"},
 		{"leaf creds", EmbeddedConfig{Leaf: []LeafRemote{{URLs: []string{"nats-leaf://h:7422"}, CredsFile: "/nonexistent/x.creds"}}}, "creds file"},
 	}
@@ -89,7 +88,7 @@ func TestMQTTSubscriberGetsTarget(t *testing.T) {
 	tick := time.NewTicker(200 * time.Millisecond)
 	defer tick.Stop()
 	for done := false; !done; {
-		require.NoError(t, p.Publish(ctx, "north", KindTarget, "mqtt-1", msg))
+		require.NoError(t, p.Publish(ctx, "north", alert.KindTarget, "mqtt-1", msg))
 		select {
 		case err = <-exited:
 			done = true
@@ -100,193 +99,126 @@ func TestMQTTSubscriberGetsTarget(t *testing.T) {
 	assert.Equal(t, string(msg), strings.TrimSpace(out.String()))
 }
 
-// permHarness is an embedded server with the three roles, a daemon
-// connection answering control requests, and a counter of refusals.
-type permHarness struct {
-	emb     *Embedded
-	arming  *Arming
-	ctl     *Control
-	now     time.Time
-	mu      sync.Mutex
-	refused map[string]int
+// permServer is an embedded server with the three roles and a stand-in
+// for the daemon's control service, logged in as the daemon: it records
+// the subject of every control request that reaches it and answers ok.
+type permServer struct {
+	emb  *Embedded
+	mu   sync.Mutex
+	seen []string
 }
 
-func newPermHarness(t *testing.T) *permHarness {
+func newPermServer(t *testing.T) *permServer {
 	t.Helper()
-	h := &permHarness{now: time.Date(2026, 12, 2, 12, 0, 0, 0, time.UTC), refused: map[string]int{}}
-	emb, err := StartEmbedded(EmbeddedConfig{Listen: "127.0.0.1:-1", StoreDir: t.TempDir(), Prefix: "sw", Users: []BusUser{
+	emb, err := StartEmbedded(EmbeddedConfig{Listen: "127.0.0.1:-1", StoreDir: t.TempDir(), Prefix: "sw", Users: []User{
 		{"daemon", "d-pass", RoleDaemon}, {"resp", "r-pass", RoleResponder}, {"oper", "o-pass", RoleOperator}}})
 	require.NoError(t, err)
 	t.Cleanup(emb.Shutdown)
-	h.emb = emb
-	h.arming, err = NewArming(ArmingConfig{Cameras: []string{"north"}}, h.now)
-	require.NoError(t, err)
-	h.ctl, err = NewControl(ControlConfig{Prefix: "sw", Arming: h.arming, Secret: "s3cret", Now: func() time.Time { return h.now },
-		OnRefused: func(via string) { h.mu.Lock(); h.refused[via]++; h.mu.Unlock() }})
-	require.NoError(t, err)
+	ps := &permServer{emb: emb}
 	dn := connect(t, emb.URL(), nats.UserInfo("daemon", "d-pass"))
-	p, err := NewPublisher(context.Background(), dn, "sw", StreamConfig{})
-	require.NoError(t, err, "the daemon role can create the stream")
-	t.Cleanup(func() { p.Close() })
-	ctx, cancel := context.WithCancel(context.Background())
-	t.Cleanup(cancel)
-	go h.ctl.Serve(ctx, dn)
+	_, err = dn.Subscribe("sw.control.>", func(m *nats.Msg) {
+		ps.mu.Lock()
+		ps.seen = append(ps.seen, m.Subject)
+		ps.mu.Unlock()
+		m.Respond([]byte(`{"ok":true}`))
+	})
+	require.NoError(t, err)
 	require.NoError(t, dn.Flush())
-	return h
+	return ps
 }
 
-func (h *permHarness) armed(t *testing.T) bool {
-	a, _ := h.arming.Armed("north", h.now)
-	return a
+// reached returns the control subjects that reached the stand-in so far
+// and forgets them.
+func (ps *permServer) reached() []string {
+	ps.mu.Lock()
+	defer ps.mu.Unlock()
+	out := ps.seen
+	ps.seen = nil
+	return out
 }
 
-func (h *permHarness) refusals(via string) int {
-	h.mu.Lock()
-	defer h.mu.Unlock()
-	return h.refused[via]
-}
-
-func request(nc *nats.Conn, action, body string) (ControlReply, error) {
-	m, err := nc.Request("sw.control."+action, []byte(body), 2*time.Second)
-	if err != nil {
-		return ControlReply{}, err
+// TestControlPublishPermissions sends each control subject as each role.
+// A refused publish is followed, on the same connection, by a status
+// request the role may send: the server keeps one publisher's messages in
+// order, so once the status reply is in, a refused request that had got
+// through would have reached the stand-in before it.
+func TestControlPublishPermissions(t *testing.T) {
+	ps := newPermServer(t)
+	cases := []struct {
+		user, pass, subject string
+		allowed             bool
+	}{
+		{"resp", "r-pass", "sw.control.status", true},
+		{"resp", "r-pass", "sw.control.arm", false},
+		{"resp", "r-pass", "sw.control.disarm", false},
+		{"resp", "r-pass", "sw.control.clear", false},
+		{"oper", "o-pass", "sw.control.status", true},
+		{"oper", "o-pass", "sw.control.arm", true},
+		{"oper", "o-pass", "sw.control.disarm", true},
+		{"oper", "o-pass", "sw.control.clear", true},
 	}
-	var r ControlReply
-	return r, json.Unmarshal(m.Data, &r)
-}
-
-func TestResponderCannotDisarm(t *testing.T) {
-	h := newPermHarness(t)
-	var asyncErr error
-	var mu sync.Mutex
-	rc := connect(t, h.emb.URL(), nats.UserInfo("resp", "r-pass"), nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) {
-		mu.Lock()
-		asyncErr = err
-		mu.Unlock()
-	}))
-	for _, action := range []string{ActionDisarm, ActionArm, ActionClear} {
-		_, err := request(rc, action, `{"for":"1h","token":"s3cret"}`)
-		assert.Error(t, err, "%s: server permissions must refuse a responder", action)
+	for _, c := range cases {
+		t.Run(c.user+" "+c.subject, func(t *testing.T) {
+			violations := make(chan error, 4)
+			nc := connect(t, ps.emb.URL(), nats.UserInfo(c.user, c.pass),
+				nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) { violations <- err }))
+			ps.reached()
+			require.NoError(t, nc.Publish(c.subject, []byte(`{"for":"1h"}`)))
+			_, err := nc.Request("sw.control.status", nil, 5*time.Second)
+			require.NoError(t, err, "status is open to every reader")
+			got := ps.reached()
+			if c.allowed {
+				assert.Equal(t, []string{c.subject, "sw.control.status"}, got)
+				return
+			}
+			assert.Equal(t, []string{"sw.control.status"}, got, "the refused request must not reach the daemon")
+			select {
+			case err := <-violations:
+				assert.ErrorContains(t, err, "Permissions Violation")
+			case <-time.After(5 * time.Second):
+				t.Fatal("the server did not report the violation")
+			}
+		})
 	}
-	assert.True(t, h.armed(t), "state unchanged")
-	mu.Lock()
-	assert.ErrorContains(t, asyncErr, "Permissions Violation")
-	mu.Unlock()
-
-	rep, err := request(rc, ActionStatus, ``)
-	require.NoError(t, err, "a responder may ask for status, without the token")
-	require.True(t, rep.OK, rep.Error)
-	require.Len(t, rep.Status.Cameras, 1)
-	assert.True(t, rep.Status.Cameras[0].Armed)
 }
 
-func TestOperatorNeedsToken(t *testing.T) {
-	h := newPermHarness(t)
-	oc := connect(t, h.emb.URL(), nats.UserInfo("oper", "o-pass"))
-	rc := connect(t, h.emb.URL(), nats.UserInfo("resp", "r-pass"))
-	// The responder watches everything it may; control requests, which
-	// carry the token, must not reach it.
+// Control requests may carry the control token: no reader sees them,
+// while the daemon's messages reach it.
+func TestReadersDoNotSeeControlRequests(t *testing.T) {
+	ps := newPermServer(t)
+	oc := connect(t, ps.emb.URL(), nats.UserInfo("oper", "o-pass"))
 	seen := make(chan string, 16)
-	_, err := rc.Subscribe("sw.>", func(m *nats.Msg) { seen <- m.Subject })
+	for _, u := range [][2]string{{"resp", "r-pass"}, {"oper", "o-pass"}} {
+		rc := connect(t, ps.emb.URL(), nats.UserInfo(u[0], u[1]))
+		_, err := rc.Subscribe("sw.>", func(m *nats.Msg) { seen <- u[0] + " " + m.Subject })
+		require.NoError(t, err)
+		require.NoError(t, rc.Flush())
+	}
+	_, err := oc.Request("sw.control.disarm", []byte(`{"for":"1h","token":"s3cret"}`), 5*time.Second)
 	require.NoError(t, err)
-	require.NoError(t, rc.Flush())
-
-	rep, err := request(oc, ActionDisarm, `{"for":"1h","token":"wrong"}`)
-	require.NoError(t, err)
-	assert.False(t, rep.OK)
-	assert.Contains(t, rep.Error, "refused")
-	assert.Equal(t, 1, h.refusals("nats"))
-	assert.True(t, h.armed(t), "a refused request changes nothing")
-
-	rep, err = request(oc, ActionDisarm, `{"for":"1h","token":"s3cret","by":"alice"}`)
-	require.NoError(t, err)
-	require.True(t, rep.OK, rep.Error)
-	assert.False(t, h.armed(t), "the operator with the token disarmed")
-	// The author is who the token stands for, not the body's by.
-	assert.Equal(t, "nats:"+DefaultTokenName, rep.Status.Cameras[0].Override.By)
-
-	hdr := nats.NewMsg("sw.control.arm")
-	hdr.Header.Set("Authorization", "Bearer s3cret")
-	m, err := oc.RequestMsg(hdr, 2*time.Second)
-	require.NoError(t, err)
-	require.NoError(t, json.Unmarshal(m.Data, &rep))
-	require.True(t, rep.OK, rep.Error)
-	assert.True(t, h.armed(t), "token in the header works too")
-
-	// The subscription works: a daemon message arrives, and it is the
-	// only thing that does.
-	dn := connect(t, h.emb.URL(), nats.UserInfo("daemon", "d-pass"))
+	dn := connect(t, ps.emb.URL(), nats.UserInfo("daemon", "d-pass"))
 	require.NoError(t, dn.Publish("sw.north.heartbeat", []byte(`{}`)))
 	require.NoError(t, dn.Flush())
-	select {
-	case s := <-seen:
-		assert.Equal(t, "sw.north.heartbeat", s)
-	case <-time.After(2 * time.Second):
-		t.Fatal("responder saw nothing on sw.>")
+	var got []string
+	for len(got) < 2 {
+		select {
+		case s := <-seen:
+			got = append(got, s)
+		case <-time.After(5 * time.Second):
+			t.Fatalf("readers saw only %v", got)
+		}
 	}
-	select {
-	case s := <-seen:
-		t.Fatalf("responder also received %s", s)
-	case <-time.After(200 * time.Millisecond):
-	}
+	// The heartbeat was published after the disarm had been answered: had
+	// the disarm reached a reader, it would have come first.
+	assert.ElementsMatch(t, []string{"resp sw.north.heartbeat", "oper sw.north.heartbeat"}, got)
 }
 
 func TestUnauthenticatedClientRefused(t *testing.T) {
-	h := newPermHarness(t)
-	_, err := nats.Connect(h.emb.URL())
+	ps := newPermServer(t)
+	_, err := nats.Connect(ps.emb.URL())
 	require.Error(t, err)
-	_, err = nats.Connect(h.emb.URL(), nats.UserInfo("oper", "nope"))
+	_, err = nats.Connect(ps.emb.URL(), nats.UserInfo("oper", "nope"))
 	require.Error(t, err)
-}
-
-func TestHTTPControlRefusals(t *testing.T) {
-	h := newPermHarness(t)
-	srv := httptest.NewServer(h.ctl.Handler())
-	defer srv.Close()
-	do := func(method, path, auth, body string) (int, ControlReply) {
-		req, err := http.NewRequest(method, srv.URL+path, strings.NewReader(body))
-		require.NoError(t, err)
-		if auth != "" {
-			req.Header.Set("Authorization", auth)
-		}
-		res, err := http.DefaultClient.Do(req)
-		require.NoError(t, err)
-		defer res.Body.Close()
-		var r ControlReply
-		require.NoError(t, json.NewDecoder(res.Body).Decode(&r))
-		return res.StatusCode, r
-	}
-	cases := []struct {
-		name, method, path, auth, body string
-		code                           int
-		refused                        int // cumulative http refusals after the case
-		armed                          bool
-	}{
-		{"no token", "POST", "/control/disarm", "", `{"for":"1h"}`, 401, 1, true},
-		{"wrong token", "POST", "/control/disarm", "Bearer nope", `{"for":"1h"}`, 401, 2, true},
-		{"token in body is not enough over http", "POST", "/control/disarm", "", `{"for":"1h","token":"s3cret"}`, 401, 3, true},
-		{"unauthorised malformed", "POST", "/control/disarm", "", `{"for":`, 401, 4, true},
-		{"malformed", "POST", "/control/disarm", "Bearer s3cret", `{"for":"forever"}`, 400, 4, true},
-		{"unknown field", "POST", "/control/disarm", "Bearer s3cret", `{"for":"1h","camera":"north","why":"x"}`, 400, 4, true},
-		{"unknown camera", "POST", "/control/disarm", "Bearer s3cret", `{"for":"1h","camera":"south"}`, 400, 4, true},
-		{"too long", "POST", "/control/disarm", "Bearer s3cret", `{"for":"48h"}`, 400, 4, true},
-		{"wrong method", "GET", "/control/disarm", "Bearer s3cret", ``, 405, 4, true},
-		{"status without token", "GET", "/control/status", "", ``, 200, 4, true},
-		{"clear without token", "POST", "/control/clear", "", ``, 401, 5, true},
-		{"disarm", "POST", "/control/disarm", "Bearer s3cret", `{"camera":"north","until":"2026-12-02T13:30:00+01:00"}`, 200, 5, false},
-		{"status", "GET", "/control/status", "", ``, 200, 5, false},
-		{"arm", "POST", "/control/arm", "Bearer s3cret", `{"for":"2h"}`, 200, 5, true},
-	}
-	for _, c := range cases {
-		code, rep := do(c.method, c.path, c.auth, c.body)
-		assert.Equal(t, c.code, code, "%s: %+v", c.name, rep)
-		assert.Equal(t, c.code == 200, rep.OK, c.name)
-		if c.code != 200 {
-			assert.NotEmpty(t, rep.Error, c.name)
-		}
-		assert.Equal(t, c.refused, h.refusals("http"), c.name)
-		assert.Equal(t, c.armed, h.armed(t), c.name)
-	}
 }
 
 func TestLeafNodeForwardsToHub(t *testing.T) {
@@ -313,7 +245,7 @@ func TestLeafNodeForwardsToHub(t *testing.T) {
 	// id, so the stream keeps one) until the hub's subscriber sees it.
 	var got *nats.Msg
 	require.Eventually(t, func() bool {
-		require.NoError(t, p.Publish(context.Background(), "north", KindTarget, "leaf-1", msg))
+		require.NoError(t, p.Publish(context.Background(), "north", alert.KindTarget, "leaf-1", msg))
 		got, err = sub.NextMsg(100 * time.Millisecond)
 		return err == nil
 	}, 10*time.Second, 10*time.Millisecond)
@@ -326,17 +258,17 @@ func TestConnectOptionsErrors(t *testing.T) {
 	require.NoError(t, os.WriteFile(garbage, []byte("not a certificate"), 0o600))
 	cases := []struct {
 		name string
-		a    BusAuth
+		a    Auth
 		want string
 	}{
-		{"user without password", BusAuth{User: "u"}, "user and password go together"},
-		{"two kinds", BusAuth{User: "u", Password: "p", Token: "t"}, "not several"},
-		{"missing seed", BusAuth{NKeySeedFile: filepath.Join(dir, "none.nk")}, "nkey seed file: open"},
-		{"missing creds", BusAuth{CredsFile: filepath.Join(dir, "none.creds")}, "creds file: open"},
-		{"missing ca", BusAuth{CAFile: filepath.Join(dir, "ca.pem")}, "ca file: open"},
-		{"bad ca", BusAuth{CAFile: garbage}, "no PEM certificate"},
-		{"cert without key", BusAuth{CertFile: garbage}, "go together"},
-		{"bad pair", BusAuth{CertFile: garbage, KeyFile: garbage}, "client cert"},
+		{"user without password", Auth{User: "u"}, "user and password go together"},
+		{"two kinds", Auth{User: "u", Password: "p", Token: "t"}, "not several"},
+		{"missing seed", Auth{NKeySeedFile: filepath.Join(dir, "none.nk")}, "nkey seed file: open"},
+		{"missing creds", Auth{CredsFile: filepath.Join(dir, "none.creds")}, "creds file: open"},
+		{"missing ca", Auth{CAFile: filepath.Join(dir, "ca.pem")}, "ca file: open"},
+		{"bad ca", Auth{CAFile: garbage}, "no PEM certificate"},
+		{"cert without key", Auth{CertFile: garbage}, "go together"},
+		{"bad pair", Auth{CertFile: garbage, KeyFile: garbage}, "client cert"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -345,7 +277,7 @@ func TestConnectOptionsErrors(t *testing.T) {
 			assert.Contains(t, err.Error(), c.want)
 		})
 	}
-	opts, err := ConnectOptions(BusAuth{Token: "t"})
+	opts, err := ConnectOptions(Auth{Token: "t"})
 	require.NoError(t, err)
 	assert.Len(t, opts, 1)
 }
@@ -357,7 +289,7 @@ func TestConnectOptionsAuthenticate(t *testing.T) {
 		tok string
 		ok  bool
 	}{{"tok-123", true}, {"tok-999", false}} {
-		opts, err := ConnectOptions(BusAuth{Token: c.tok})
+		opts, err := ConnectOptions(Auth{Token: c.tok})
 		require.NoError(t, err)
 		nc, err := nats.Connect(srv.ClientURL(), opts...)
 		if c.ok {
@@ -413,7 +345,7 @@ func TestSecretResolve(t *testing.T) {
 // with nats-server's own parser and checks that the cluster's user roles
 // are the ones the embedded server gives.
 func TestDeployNATSConfigs(t *testing.T) {
-	dir := filepath.Join("..", "deploy", "nats")
+	dir := filepath.Join("..", "..", "deploy", "nats")
 	for _, v := range []string{"CLUSTER_ROUTE_PASSWORD", "HOME_LEAF_PASSWORD", "DAEMON_PASSWORD", "RESPONDER_PASSWORD", "OPERATOR_PASSWORD"} {
 		t.Setenv(v, "example-"+strings.ToLower(v))
 	}

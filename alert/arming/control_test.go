@@ -1,4 +1,4 @@
-package alert
+package arming
 
 import (
 	"context"
@@ -12,6 +12,8 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"stillwater/alert"
 )
 
 var ctlNow = time.Date(2026, 12, 2, 12, 0, 0, 0, time.UTC)
@@ -22,28 +24,28 @@ func TestDecodeControl(t *testing.T) {
 		want               ControlRequest
 		err                string
 	}{
-		{"status empty", ActionStatus, "", ControlRequest{Action: ActionStatus, Camera: AllCameras}, ""},
-		{"disarm until with offset", ActionDisarm, `{"camera":"all","until":"2026-12-02T18:30:00+01:00"}`,
-			ControlRequest{Action: ActionDisarm, Camera: AllCameras, Until: time.Date(2026, 12, 2, 17, 30, 0, 0, time.UTC)}, ""},
-		{"disarm for", ActionDisarm, `{"camera":"north","for":"2h","by":"alice"}`,
-			ControlRequest{Action: ActionDisarm, Camera: "north", Until: ctlNow.Add(2 * time.Hour), By: "alice"}, ""},
-		{"arm no end", ActionArm, `{}`, ControlRequest{Action: ActionArm, Camera: AllCameras}, ""},
-		{"token kept", ActionClear, `{"token":"abc"}`, ControlRequest{Action: ActionClear, Camera: AllCameras, Token: "abc"}, ""},
+		{"status empty", alert.ActionStatus, "", ControlRequest{Action: alert.ActionStatus, Camera: alert.AllCameras}, ""},
+		{"disarm until with offset", alert.ActionDisarm, `{"camera":"all","until":"2026-12-02T18:30:00+01:00"}`,
+			ControlRequest{Action: alert.ActionDisarm, Camera: alert.AllCameras, Until: time.Date(2026, 12, 2, 17, 30, 0, 0, time.UTC)}, ""},
+		{"disarm for", alert.ActionDisarm, `{"camera":"north","for":"2h","by":"alice"}`,
+			ControlRequest{Action: alert.ActionDisarm, Camera: "north", Until: ctlNow.Add(2 * time.Hour), By: "alice"}, ""},
+		{"arm no end", alert.ActionArm, `{}`, ControlRequest{Action: alert.ActionArm, Camera: alert.AllCameras}, ""},
+		{"token kept", alert.ActionClear, `{"token":"abc"}`, ControlRequest{Action: alert.ActionClear, Camera: alert.AllCameras, Token: "abc"}, ""},
 		{"unknown action", "explode", `{}`, ControlRequest{}, `unknown action "explode"`},
-		{"disarm without end", ActionDisarm, `{"camera":"north"}`, ControlRequest{}, "a disarm always ends"},
-		{"both", ActionDisarm, `{"until":"2026-12-02T18:30:00Z","for":"1h"}`, ControlRequest{}, "not both"},
-		{"no offset", ActionDisarm, `{"until":"2026-12-02T18:30:00"}`, ControlRequest{}, "RFC 3339 with an offset"},
-		{"past", ActionDisarm, `{"until":"2026-12-02T11:00:00Z"}`, ControlRequest{}, "not in the future"},
-		{"negative for", ActionDisarm, `{"for":"-1h"}`, ControlRequest{}, "positive duration"},
-		{"bad camera", ActionArm, `{"camera":"a.b"}`, ControlRequest{}, "camera:"},
-		{"unknown field", ActionArm, `{"camra":"north"}`, ControlRequest{}, `unknown field "camra"`},
-		{"trailing", ActionArm, `{} {}`, ControlRequest{}, "trailing data"},
-		{"not an object", ActionArm, `[1]`, ControlRequest{}, "JSON object"},
-		{"wrong type", ActionArm, `{"camera":7}`, ControlRequest{}, "body:"},
-		{"status with for", ActionStatus, `{"for":"1h"}`, ControlRequest{}, "takes no until or for"},
-		{"by too long", ActionArm, `{"by":"` + strings.Repeat("x", 65) + `"}`, ControlRequest{}, "at most 64"},
-		{"by control char", ActionArm, `{"by":"a\u0007"}`, ControlRequest{}, "printable"},
-		{"huge", ActionArm, `{"by":"` + strings.Repeat("x", 5000) + `"}`, ControlRequest{}, "limit"},
+		{"disarm without end", alert.ActionDisarm, `{"camera":"north"}`, ControlRequest{}, "a disarm always ends"},
+		{"both", alert.ActionDisarm, `{"until":"2026-12-02T18:30:00Z","for":"1h"}`, ControlRequest{}, "not both"},
+		{"no offset", alert.ActionDisarm, `{"until":"2026-12-02T18:30:00"}`, ControlRequest{}, "RFC 3339 with an offset"},
+		{"past", alert.ActionDisarm, `{"until":"2026-12-02T11:00:00Z"}`, ControlRequest{}, "not in the future"},
+		{"negative for", alert.ActionDisarm, `{"for":"-1h"}`, ControlRequest{}, "positive duration"},
+		{"bad camera", alert.ActionArm, `{"camera":"a.b"}`, ControlRequest{}, "camera:"},
+		{"unknown field", alert.ActionArm, `{"camra":"north"}`, ControlRequest{}, `unknown field "camra"`},
+		{"trailing", alert.ActionArm, `{} {}`, ControlRequest{}, "trailing data"},
+		{"not an object", alert.ActionArm, `[1]`, ControlRequest{}, "JSON object"},
+		{"wrong type", alert.ActionArm, `{"camera":7}`, ControlRequest{}, "body:"},
+		{"status with for", alert.ActionStatus, `{"for":"1h"}`, ControlRequest{}, "takes no until or for"},
+		{"by too long", alert.ActionArm, `{"by":"` + strings.Repeat("x", 65) + `"}`, ControlRequest{}, "at most 64"},
+		{"by control char", alert.ActionArm, `{"by":"a\u0007"}`, ControlRequest{}, "printable"},
+		{"huge", alert.ActionArm, `{"by":"` + strings.Repeat("x", 5000) + `"}`, ControlRequest{}, "limit"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -67,11 +69,11 @@ func TestDecodeControl(t *testing.T) {
 // to the same request.
 func FuzzDecodeControl(f *testing.F) {
 	for _, s := range []struct{ action, body string }{
-		{ActionDisarm, `{"camera":"all","until":"2026-12-02T18:30:00+01:00"}`},
-		{ActionDisarm, `{"camera":"north","for":"2h","by":"alice","token":"t"}`},
-		{ActionArm, `{}`},
-		{ActionStatus, ``},
-		{ActionClear, `{"camera":"pool"}`},
+		{alert.ActionDisarm, `{"camera":"all","until":"2026-12-02T18:30:00+01:00"}`},
+		{alert.ActionDisarm, `{"camera":"north","for":"2h","by":"alice","token":"t"}`},
+		{alert.ActionArm, `{}`},
+		{alert.ActionStatus, ``},
+		{alert.ActionClear, `{"camera":"pool"}`},
 		{"bogus", `{"for":"1h"}`},
 	} {
 		f.Add(s.action, []byte(s.body))
@@ -84,10 +86,10 @@ func FuzzDecodeControl(f *testing.F) {
 			}
 			return
 		}
-		if ValidToken(req.Camera) != nil {
+		if alert.ValidToken(req.Camera) != nil {
 			t.Fatalf("accepted camera %q", req.Camera)
 		}
-		if req.Action == ActionDisarm && !req.Until.After(ctlNow) {
+		if req.Action == alert.ActionDisarm && !req.Until.After(ctlNow) {
 			t.Fatalf("accepted a disarm ending %v", req.Until)
 		}
 		b := controlBody{Camera: req.Camera, By: req.By, Token: req.Token}
@@ -109,7 +111,7 @@ func FuzzDecodeControl(f *testing.F) {
 }
 
 func TestControlWithoutSecretRefusesChanges(t *testing.T) {
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}}, ctlNow)
+	a, err := New(Config{Cameras: []string{"north"}}, ctlNow)
 	require.NoError(t, err)
 	refused := 0
 	c, err := NewControl(ControlConfig{Prefix: "sw", Arming: a, Now: func() time.Time { return ctlNow }, OnRefused: func(string) { refused++ }})
@@ -138,7 +140,7 @@ func TestControlWithoutSecretRefusesChanges(t *testing.T) {
 // newTestControl returns a Control over one camera, north, with secret s3.
 func newTestControl(t *testing.T, cfg ControlConfig) (*Control, *Arming) {
 	t.Helper()
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}}, ctlNow)
+	a, err := New(Config{Cameras: []string{"north"}}, ctlNow)
 	require.NoError(t, err)
 	cfg.Prefix, cfg.Arming = "sw", a
 	if cfg.Now == nil {
@@ -181,7 +183,7 @@ func TestControlRecordsAuthenticatedIdentity(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			c, a := newTestControl(t, tc.cfg)
 			if tc.via == "http" {
-				require.Equal(t, http.StatusOK, post(c.Handler(), "192.0.2.1:5000", ActionDisarm, tc.header, tc.body))
+				require.Equal(t, http.StatusOK, post(c.Handler(), "192.0.2.1:5000", alert.ActionDisarm, tc.header, tc.body))
 			} else {
 				rep := c.handleNATS(context.Background(), &nats.Msg{Subject: "sw.control.disarm", Data: []byte(tc.body)})
 				require.True(t, rep.OK, rep.Error)
@@ -199,13 +201,13 @@ func TestControlRecordsAuthenticatedIdentity(t *testing.T) {
 func TestControlSetAuthRotatesToken(t *testing.T) {
 	c, _ := newTestControl(t, ControlConfig{Secret: "old-token", Throttle: NewThrottle(time.Millisecond, 2*time.Millisecond, nil)})
 	h := c.Handler()
-	require.Equal(t, http.StatusOK, post(h, "192.0.2.1:1", ActionArm, "Bearer old-token", `{}`))
+	require.Equal(t, http.StatusOK, post(h, "192.0.2.1:1", alert.ActionArm, "Bearer old-token", `{}`))
 	require.NoError(t, c.SetAuth("new-token", "owner", false))
-	assert.Equal(t, http.StatusUnauthorized, post(h, "192.0.2.1:1", ActionArm, "Bearer old-token", `{}`))
+	assert.Equal(t, http.StatusUnauthorized, post(h, "192.0.2.1:1", alert.ActionArm, "Bearer old-token", `{}`))
 	time.Sleep(5 * time.Millisecond) // let the throttle's delay pass
-	assert.Equal(t, http.StatusOK, post(h, "192.0.2.1:1", ActionArm, "Bearer new-token", `{}`))
+	assert.Equal(t, http.StatusOK, post(h, "192.0.2.1:1", alert.ActionArm, "Bearer new-token", `{}`))
 	require.NoError(t, c.SetAuth("", "owner", false))
-	assert.Equal(t, http.StatusForbidden, post(h, "192.0.2.1:1", ActionArm, "Bearer new-token", `{}`))
+	assert.Equal(t, http.StatusForbidden, post(h, "192.0.2.1:1", alert.ActionArm, "Bearer new-token", `{}`))
 	assert.Error(t, c.SetAuth("x", "two words", false))
 }
 
@@ -219,7 +221,7 @@ func TestControlSlowsRepeatedRefusals(t *testing.T) {
 	var took []time.Duration
 	for i := 0; i < 5; i++ {
 		t0 := time.Now()
-		require.Equal(t, http.StatusUnauthorized, post(h, "198.51.100.7:4000", ActionDisarm, "Bearer guess", `{"for":"1h"}`))
+		require.Equal(t, http.StatusUnauthorized, post(h, "198.51.100.7:4000", alert.ActionDisarm, "Bearer guess", `{"for":"1h"}`))
 		took = append(took, time.Since(t0))
 	}
 	t.Logf("answer times of five wrong tokens in a row: %v", took)
@@ -233,10 +235,10 @@ func TestControlSlowsRepeatedRefusals(t *testing.T) {
 
 	// While the throttled address waits, another address goes straight through.
 	done := make(chan int, 1)
-	go func() { done <- post(h, "198.51.100.7:4001", ActionDisarm, "Bearer guess", `{"for":"1h"}`) }()
+	go func() { done <- post(h, "198.51.100.7:4001", alert.ActionDisarm, "Bearer guess", `{"for":"1h"}`) }()
 	time.Sleep(base / 4)
 	t0 := time.Now()
-	require.Equal(t, http.StatusOK, post(h, "203.0.113.9:4000", ActionDisarm, "Bearer s3", `{"for":"1h"}`))
+	require.Equal(t, http.StatusOK, post(h, "203.0.113.9:4000", alert.ActionDisarm, "Bearer s3", `{"for":"1h"}`))
 	other := time.Since(t0)
 	assert.Less(t, other, base, "another client must not wait behind the throttled one")
 	assert.Equal(t, http.StatusUnauthorized, <-done)
@@ -245,7 +247,7 @@ func TestControlSlowsRepeatedRefusals(t *testing.T) {
 	// are refused unjudged.
 	codes := make(chan int, 8)
 	for i := 0; i < 8; i++ {
-		go func() { codes <- post(h, "198.51.100.7:4002", ActionDisarm, "Bearer guess", `{"for":"1h"}`) }()
+		go func() { codes <- post(h, "198.51.100.7:4002", alert.ActionDisarm, "Bearer guess", `{"for":"1h"}`) }()
 	}
 	n429 := 0
 	for i := 0; i < 8; i++ {
@@ -257,8 +259,8 @@ func TestControlSlowsRepeatedRefusals(t *testing.T) {
 
 	// The right token resets the address once it gets its turn.
 	time.Sleep(9 * base)
-	require.Equal(t, http.StatusOK, post(h, "198.51.100.7:4003", ActionArm, "Bearer s3", `{}`))
+	require.Equal(t, http.StatusOK, post(h, "198.51.100.7:4003", alert.ActionArm, "Bearer s3", `{}`))
 	t0 = time.Now()
-	require.Equal(t, http.StatusOK, post(h, "198.51.100.7:4003", ActionArm, "Bearer s3", `{}`))
+	require.Equal(t, http.StatusOK, post(h, "198.51.100.7:4003", alert.ActionArm, "Bearer s3", `{}`))
 	assert.Less(t, time.Since(t0), base)
 }
