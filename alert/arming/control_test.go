@@ -164,28 +164,49 @@ func post(h http.Handler, addr, action, auth, body string) int {
 }
 
 // The author recorded with an override is who the request authenticated
-// as, whatever the body's by says.
+// as, whatever the body's by says: the name bound to the token, or, for
+// a NATS request on the sender's own subject under trust_nats, the bus
+// user the server let publish there.
 func TestControlRecordsAuthenticatedIdentity(t *testing.T) {
+	long := strings.Repeat("u", 65)
 	cases := []struct {
-		name   string
-		cfg    ControlConfig
-		via    string
-		header string
-		body   string
-		want   string
+		name    string
+		cfg     ControlConfig
+		subject string // empty: over HTTP
+		header  string
+		body    string
+		want    string // the override's by; empty: refused
+		why     string // part of the refusal
 	}{
-		{"http token", ControlConfig{Secret: "s3", TokenName: "alice"}, "http", "Bearer s3", `{"for":"1h","by":"mallory"}`, "http:alice"},
-		{"http default name", ControlConfig{Secret: "s3"}, "http", "Bearer s3", `{"for":"1h","by":"mallory"}`, "http:" + DefaultTokenName},
-		{"nats token in body", ControlConfig{Secret: "s3", TokenName: "alice"}, "nats", "", `{"for":"1h","by":"mallory","token":"s3"}`, "nats:alice"},
-		{"nats trusted", ControlConfig{TrustNATS: true}, "nats", "", `{"for":"1h","by":"mallory"}`, "nats:" + TrustedNATSName},
+		{"http token", ControlConfig{Secret: "s3", TokenName: "alice"}, "", "Bearer s3", `{"for":"1h","by":"mallory"}`, "http:alice", ""},
+		{"http default name", ControlConfig{Secret: "s3"}, "", "Bearer s3", `{"for":"1h","by":"mallory"}`, "http:" + DefaultTokenName, ""},
+		{"nats token in body", ControlConfig{Secret: "s3", TokenName: "alice"}, "sw.control.disarm", "", `{"for":"1h","by":"mallory","token":"s3"}`, "nats:alice", ""},
+		{"nats trusted, own subject", ControlConfig{TrustNATS: true}, "sw.control.bob.disarm", "", `{"for":"1h","by":"mallory"}`, "nats:bob", ""},
+		{"nats trusted, own subject, token too", ControlConfig{Secret: "s3", TokenName: "alice", TrustNATS: true}, "sw.control.bob.disarm", "", `{"for":"1h","token":"s3"}`, "nats:bob", ""},
+		{"nats trusted, shared subject, no token", ControlConfig{TrustNATS: true}, "sw.control.disarm", "", `{"for":"1h","by":"bob"}`, "", "sw.control.YOUR-USER.disarm"},
+		{"nats trusted, shared subject, token", ControlConfig{Secret: "s3", TokenName: "alice", TrustNATS: true}, "sw.control.disarm", "Bearer s3", `{"for":"1h","by":"bob"}`, "nats:alice", ""},
+		{"nats untrusted, own subject, no token", ControlConfig{Secret: "s3"}, "sw.control.bob.disarm", "", `{"for":"1h"}`, "", "missing token"},
+		{"nats untrusted, own subject, token", ControlConfig{Secret: "s3", TokenName: "alice"}, "sw.control.bob.disarm", "Bearer s3", `{"for":"1h"}`, "nats:alice", ""},
+		{"nats trusted, user name too long", ControlConfig{TrustNATS: true}, "sw.control." + long + ".disarm", "", `{"for":"1h"}`, "", "bus user in the subject"},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
 			c, a := newTestControl(t, tc.cfg)
-			if tc.via == "http" {
+			switch {
+			case tc.subject == "":
 				require.Equal(t, http.StatusOK, post(c.Handler(), "192.0.2.1:5000", alert.ActionDisarm, tc.header, tc.body))
-			} else {
-				rep := c.handleNATS(context.Background(), &nats.Msg{Subject: "sw.control.disarm", Data: []byte(tc.body)})
+			default:
+				m := &nats.Msg{Subject: tc.subject, Data: []byte(tc.body), Header: nats.Header{}}
+				if tc.header != "" {
+					m.Header.Set("Authorization", tc.header)
+				}
+				rep := c.handleNATS(context.Background(), m)
+				if tc.want == "" {
+					assert.False(t, rep.OK)
+					assert.Contains(t, rep.Error, tc.why)
+					assert.Nil(t, a.Status(ctlNow).Cameras[0].Override, "a refused request changes nothing")
+					return
+				}
 				require.True(t, rep.OK, rep.Error)
 			}
 			st := a.Status(ctlNow)

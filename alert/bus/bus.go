@@ -9,6 +9,7 @@ import (
 	"strings"
 	"syscall"
 	"time"
+	"unicode"
 
 	"github.com/nats-io/nats-server/v2/server"
 
@@ -16,18 +17,37 @@ import (
 )
 
 // Roles of the embedded server's users. Each maps to NATS publish and
-// subscribe permissions under the subject prefix (see rolePermissions).
+// subscribe permissions under the subject prefix (see rolePermissions);
+// MQTT clients log in as the same users with the same permissions.
 const (
-	// RoleDaemon may publish PREFIX.> and use JetStream: the stillwater
-	// daemon itself, which also answers PREFIX.control.>.
+	// RoleDaemon may publish PREFIX.> (control subjects excepted) and use
+	// JetStream: the stillwater daemon itself, which also answers
+	// PREFIX.control.>.
 	RoleDaemon = "daemon"
 	// RoleResponder may subscribe PREFIX.> (but not the control requests)
-	// and request PREFIX.control.status.
+	// and request status on PREFIX.control.status and on its own
+	// PREFIX.control.USER.status.
 	RoleResponder = "responder"
 	// RoleOperator is a responder that may also request arm, disarm and
-	// clear.
+	// clear: on its own PREFIX.control.USER.ACTION, which only it may
+	// publish on so that the daemon can record who asked, and on the
+	// shared PREFIX.control.ACTION, where the control token is needed.
 	RoleOperator = "operator"
 )
+
+// ValidUserName reports whether name can be a bus user of a role other
+// than the daemon's: it becomes a subject token (PREFIX.control.USER.…)
+// and the author of overrides ("nats:USER"), so 1 to 64 printable
+// characters without white space, dots, wildcards or slashes.
+func ValidUserName(name string) error {
+	if err := alert.ValidToken(name); err != nil {
+		return err
+	}
+	if len(name) > 64 || strings.ContainsAny(name, `/\`) || strings.IndexFunc(name, func(r rune) bool { return !unicode.IsPrint(r) }) >= 0 {
+		return fmt.Errorf("%q: want 1 to 64 printable characters without white space, dots, slashes, * or >", name)
+	}
+	return nil
+}
 
 // User is one user of the embedded server. Password may be plain or a
 // bcrypt hash ("$2a$..."), which nats-server accepts as such.
@@ -173,7 +193,12 @@ func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 				return nil, fmt.Errorf("embedded bus users[%d]: name %q used twice", i, u.Name)
 			}
 			seen[u.Name] = true
-			perms, err := rolePermissions(cfg.Prefix, u.Role)
+			if u.Role != RoleDaemon {
+				if err := ValidUserName(u.Name); err != nil {
+					return nil, fmt.Errorf("embedded bus users[%d]: name: %w", i, err)
+				}
+			}
+			perms, err := rolePermissions(cfg.Prefix, u.Name, u.Role)
 			if err != nil {
 				return nil, fmt.Errorf("embedded bus users[%d] (%s): %w", i, u.Name, err)
 			}
@@ -194,27 +219,34 @@ func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 	return opts, nil
 }
 
-// rolePermissions returns the NATS permissions of a role. Everyone may
-// subscribe to _INBOX.> because request replies and JetStream acks arrive
-// there. Control requests are hidden from responders and operators: they
-// may carry the control token.
-func rolePermissions(prefix, role string) (*server.Permissions, error) {
-	ctl := prefix + ".control."
+// rolePermissions returns the NATS permissions of user in role, the
+// ones the embedded server gives; an external server should give the
+// same. Everyone may subscribe to _INBOX.> because request replies and
+// JetStream acks arrive there. Control requests are hidden from
+// responders and operators, since they may carry the control token, and
+// no one but user may publish on user's control subjects, so that a
+// request there names its sender.
+func rolePermissions(prefix, user, role string) (*server.Permissions, error) {
+	ctl := alert.ControlSubject(prefix, ">")
 	inbox := "_INBOX.>"
 	switch role {
 	case RoleDaemon:
 		return &server.Permissions{
-			Publish:   &server.SubjectPermission{Allow: []string{prefix + ".>", "$JS.API.>", inbox}},
-			Subscribe: &server.SubjectPermission{Allow: []string{ctl + ">", inbox}},
+			Publish:   &server.SubjectPermission{Allow: []string{prefix + ".>", "$JS.API.>", inbox}, Deny: []string{ctl}},
+			Subscribe: &server.SubjectPermission{Allow: []string{ctl, inbox}},
 		}, nil
 	case RoleResponder, RoleOperator:
-		pub := []string{ctl + alert.ActionStatus}
+		actions := []string{alert.ActionStatus}
 		if role == RoleOperator {
-			pub = append(pub, ctl+alert.ActionArm, ctl+alert.ActionDisarm, ctl+alert.ActionClear)
+			actions = append(actions, alert.ActionArm, alert.ActionDisarm, alert.ActionClear)
+		}
+		var pub []string
+		for _, a := range actions {
+			pub = append(pub, alert.ControlSubject(prefix, a), alert.UserControlSubject(prefix, user, a))
 		}
 		return &server.Permissions{
 			Publish:   &server.SubjectPermission{Allow: pub},
-			Subscribe: &server.SubjectPermission{Allow: []string{prefix + ".>", inbox}, Deny: []string{ctl + ">"}},
+			Subscribe: &server.SubjectPermission{Allow: []string{prefix + ".>", inbox}, Deny: []string{ctl}},
 		}, nil
 	}
 	return nil, fmt.Errorf("role %q: want %s, %s or %s", role, RoleDaemon, RoleResponder, RoleOperator)

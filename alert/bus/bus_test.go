@@ -44,6 +44,8 @@ func TestEmbeddedConfigErrors(t *testing.T) {
 		{"no password", EmbeddedConfig{Prefix: "sw", Users: []User{{Name: "a", Role: RoleDaemon}}}, "users[0]"},
 		{"twice", EmbeddedConfig{Prefix: "sw", Users: []User{{"a", "p", RoleDaemon}, {"a", "q", RoleOperator}}}, "used twice"},
 		{"no prefix", EmbeddedConfig{Users: []User{{"a", "p", RoleDaemon}}}, "prefix"},
+		{"operator name with a slash", EmbeddedConfig{Prefix: "sw", Users: []User{{"a/b", "p", RoleOperator}}}, "users[0]: name"},
+		{"responder name with a dot", EmbeddedConfig{Prefix: "sw", Users: []User{{"a.b", "p", RoleResponder}}}, "users[0]: name"},
 		{"leaf no url", EmbeddedConfig{Leaf: []LeafRemote{{}}}, "leaf[0]: no urls"},
 		{"leaf creds", EmbeddedConfig{Leaf: []LeafRemote{{URLs: []string{"nats-leaf://h:7422"}, CredsFile: "/nonexistent/x.creds"}}}, "creds file"},
 	}
@@ -111,7 +113,7 @@ type permServer struct {
 func newPermServer(t *testing.T) *permServer {
 	t.Helper()
 	emb, err := StartEmbedded(EmbeddedConfig{Listen: "127.0.0.1:-1", StoreDir: t.TempDir(), Prefix: "sw", Users: []User{
-		{"daemon", "d-pass", RoleDaemon}, {"resp", "r-pass", RoleResponder}, {"oper", "o-pass", RoleOperator}}})
+		{"daemon", "d-pass", RoleDaemon}, {"resp", "r-pass", RoleResponder}, {"oper", "o-pass", RoleOperator}, {"bob", "b-pass", RoleOperator}}})
 	require.NoError(t, err)
 	t.Cleanup(emb.Shutdown)
 	ps := &permServer{emb: emb}
@@ -127,6 +129,8 @@ func newPermServer(t *testing.T) *permServer {
 	return ps
 }
 
+var permPasswords = map[string]string{"daemon": "d-pass", "resp": "r-pass", "oper": "o-pass", "bob": "b-pass"}
+
 // reached returns the control subjects that reached the stand-in so far
 // and forgets them.
 func (ps *permServer) reached() []string {
@@ -137,46 +141,63 @@ func (ps *permServer) reached() []string {
 	return out
 }
 
-// TestControlPublishPermissions sends each control subject as each role.
-// A refused publish is followed, on the same connection, by a status
-// request the role may send: the server keeps one publisher's messages in
-// order, so once the status reply is in, a refused request that had got
-// through would have reached the stand-in before it.
+// TestControlPublishPermissions sends control subjects as each role. An
+// allowed request reaches the stand-in for the daemon. A refused one
+// draws the server's permissions violation; the server then drops it,
+// which a later status request on the same connection confirms: the
+// server keeps one publisher's messages in order, so once the status
+// reply is in, a refused request that had got through would have reached
+// the stand-in before it.
 func TestControlPublishPermissions(t *testing.T) {
 	ps := newPermServer(t)
 	cases := []struct {
-		user, pass, subject string
-		allowed             bool
+		user, subject string
+		allowed       bool
 	}{
-		{"resp", "r-pass", "sw.control.status", true},
-		{"resp", "r-pass", "sw.control.arm", false},
-		{"resp", "r-pass", "sw.control.disarm", false},
-		{"resp", "r-pass", "sw.control.clear", false},
-		{"oper", "o-pass", "sw.control.status", true},
-		{"oper", "o-pass", "sw.control.arm", true},
-		{"oper", "o-pass", "sw.control.disarm", true},
-		{"oper", "o-pass", "sw.control.clear", true},
+		{"resp", "sw.control.status", true},
+		{"resp", "sw.control.resp.status", true},
+		{"resp", "sw.control.arm", false},
+		{"resp", "sw.control.resp.disarm", false},
+		{"resp", "sw.control.oper.status", false},
+		{"oper", "sw.control.status", true},
+		{"oper", "sw.control.disarm", true}, // the shared subject: Control wants the token there
+		{"oper", "sw.control.oper.arm", true},
+		{"oper", "sw.control.oper.disarm", true},
+		{"oper", "sw.control.oper.clear", true},
+		{"oper", "sw.control.oper.status", true},
+		{"oper", "sw.control.bob.disarm", false}, // one operator acting as another
+		{"oper", "sw.control.bob.status", false},
+		{"oper", "sw.control.oper.disarm.now", false},
+		{"bob", "sw.control.bob.disarm", true},
+		{"bob", "sw.control.oper.clear", false},
+		{"daemon", "sw.control.oper.disarm", false}, // not even the daemon's user may speak for an operator
+		{"daemon", "sw.control.disarm", false},
 	}
 	for _, c := range cases {
 		t.Run(c.user+" "+c.subject, func(t *testing.T) {
 			violations := make(chan error, 4)
-			nc := connect(t, ps.emb.URL(), nats.UserInfo(c.user, c.pass),
+			nc := connect(t, ps.emb.URL(), nats.UserInfo(c.user, permPasswords[c.user]),
 				nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) { violations <- err }))
 			ps.reached()
-			require.NoError(t, nc.Publish(c.subject, []byte(`{"for":"1h"}`)))
-			_, err := nc.Request("sw.control.status", nil, 5*time.Second)
-			require.NoError(t, err, "status is open to every reader")
-			got := ps.reached()
 			if c.allowed {
-				assert.Equal(t, []string{c.subject, "sw.control.status"}, got)
+				_, err := nc.Request(c.subject, []byte(`{"for":"1h"}`), 5*time.Second)
+				require.NoError(t, err)
+				assert.Equal(t, []string{c.subject}, ps.reached())
 				return
 			}
-			assert.Equal(t, []string{"sw.control.status"}, got, "the refused request must not reach the daemon")
+			require.NoError(t, nc.Publish(c.subject, []byte(`{"for":"1h"}`)))
 			select {
 			case err := <-violations:
-				assert.ErrorContains(t, err, "Permissions Violation")
+				assert.ErrorContains(t, err, "Permissions Violation for Publish to \""+c.subject+"\"")
 			case <-time.After(5 * time.Second):
-				t.Fatal("the server did not report the violation")
+				t.Fatal("the server did not report a permissions violation")
+			}
+			if c.user != "daemon" {
+				_, err := nc.Request("sw.control.status", nil, 5*time.Second)
+				require.NoError(t, err, "status is open to every reader")
+				assert.Equal(t, []string{"sw.control.status"}, ps.reached(), "the refused request must not reach the daemon")
+			} else {
+				assert.Empty(t, ps.reached())
 			}
 		})
 	}
@@ -188,19 +209,22 @@ func TestReadersDoNotSeeControlRequests(t *testing.T) {
 	ps := newPermServer(t)
 	oc := connect(t, ps.emb.URL(), nats.UserInfo("oper", "o-pass"))
 	seen := make(chan string, 16)
-	for _, u := range [][2]string{{"resp", "r-pass"}, {"oper", "o-pass"}} {
-		rc := connect(t, ps.emb.URL(), nats.UserInfo(u[0], u[1]))
-		_, err := rc.Subscribe("sw.>", func(m *nats.Msg) { seen <- u[0] + " " + m.Subject })
+	readers := []string{"resp", "oper", "bob"}
+	for _, u := range readers {
+		rc := connect(t, ps.emb.URL(), nats.UserInfo(u, permPasswords[u]))
+		_, err := rc.Subscribe("sw.>", func(m *nats.Msg) { seen <- u + " " + m.Subject })
 		require.NoError(t, err)
 		require.NoError(t, rc.Flush())
 	}
-	_, err := oc.Request("sw.control.disarm", []byte(`{"for":"1h","token":"s3cret"}`), 5*time.Second)
-	require.NoError(t, err)
+	for _, subj := range []string{"sw.control.disarm", "sw.control.oper.disarm"} {
+		_, err := oc.Request(subj, []byte(`{"for":"1h","token":"s3cret"}`), 5*time.Second)
+		require.NoError(t, err)
+	}
 	dn := connect(t, ps.emb.URL(), nats.UserInfo("daemon", "d-pass"))
 	require.NoError(t, dn.Publish("sw.north.heartbeat", []byte(`{}`)))
 	require.NoError(t, dn.Flush())
 	var got []string
-	for len(got) < 2 {
+	for len(got) < len(readers) {
 		select {
 		case s := <-seen:
 			got = append(got, s)
@@ -210,7 +234,7 @@ func TestReadersDoNotSeeControlRequests(t *testing.T) {
 	}
 	// The heartbeat was published after the disarm had been answered: had
 	// the disarm reached a reader, it would have come first.
-	assert.ElementsMatch(t, []string{"resp sw.north.heartbeat", "oper sw.north.heartbeat"}, got)
+	assert.ElementsMatch(t, []string{"resp sw.north.heartbeat", "oper sw.north.heartbeat", "bob sw.north.heartbeat"}, got)
 }
 
 func TestUnauthenticatedClientRefused(t *testing.T) {
@@ -362,7 +386,7 @@ func TestDeployNATSConfigs(t *testing.T) {
 		roles := map[string]string{"daemon": RoleDaemon, "responder": RoleResponder, "operator": RoleOperator}
 		require.Len(t, opts.Users, 3)
 		for _, u := range opts.Users {
-			want, err := rolePermissions("stillwater", roles[u.Username])
+			want, err := rolePermissions("stillwater", u.Username, roles[u.Username])
 			require.NoError(t, err, u.Username)
 			assert.Equal(t, want.Publish, u.Permissions.Publish, u.Username)
 			assert.Equal(t, want.Subscribe, u.Permissions.Subscribe, u.Username)

@@ -218,7 +218,8 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	case c.Secret != "":
 		fmt.Fprintf(w, "  control (arm, disarm) needs the secret written in the config (better: secret_env or secret_file); whoever uses it is recorded as %q\n\n", who)
 	case c.TrustNATS:
-		fmt.Fprint(w, "  control (arm, disarm) over NATS by the operator role; HTTP control refused\n\n")
+		fmt.Fprintf(w, "  control (arm, disarm) over NATS by operator-role users on %s, recorded as nats:USER; HTTP control refused\n\n",
+			alert.UserControlSubject(cfg.Bus.Prefix, "USER", "ACTION"))
 	default:
 		fmt.Fprint(w, "  control: no secret, so arm and disarm requests are refused; status only\n\n")
 	}

@@ -162,6 +162,12 @@ func validateBus(b BusConfig) error {
 		if err := alert.ValidToken(u.Name); err != nil {
 			return fmt.Errorf("%s.name: %v", where, err)
 		}
+		if u.Role != bus.RoleDaemon {
+			// The name becomes a subject token and the author of overrides.
+			if err := bus.ValidUserName(u.Name); err != nil {
+				return fmt.Errorf("%s.name: %v", where, err)
+			}
+		}
 		if names[u.Name] {
 			return fmt.Errorf("%s.name: %q is used twice", where, u.Name)
 		}
@@ -381,9 +387,10 @@ type ControlConfig struct {
 	// TokenName is who a request carrying the secret is recorded as in
 	// the override's by ("http:NAME"); default token-holder.
 	TokenName string `yaml:"token_name"`
-	// TrustNATS accepts NATS control requests without the token, relying
-	// on the bus users' roles (operator). Needs bus.users or an external
-	// server with its own permissions.
+	// TrustNATS accepts NATS control requests without the token on a bus
+	// user's own subject, PREFIX.control.USER.ACTION, and records them as
+	// "nats:USER": the operator role lets only USER publish there. Needs
+	// bus.users, or an external server whose permissions do the same.
 	TrustNATS bool `yaml:"trust_nats"`
 	// MaxDisarm is the longest disarm accepted; default 24h, at most 7 days.
 	MaxDisarm Duration `yaml:"max_disarm"`
