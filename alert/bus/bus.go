@@ -24,9 +24,11 @@ const (
 	// JetStream: the stillwater daemon itself, which also answers
 	// PREFIX.control.>.
 	RoleDaemon = "daemon"
-	// RoleResponder may subscribe PREFIX.> (but not the control requests)
-	// and request status on PREFIX.control.status and on its own
-	// PREFIX.control.USER.status.
+	// RoleResponder may subscribe PREFIX.> (but not the control requests),
+	// request status on PREFIX.control.status and on its own
+	// PREFIX.control.USER.status, and bind and read the durable consumer
+	// named after it on the stream (PublisherConfig.Consumers): look it
+	// up, pull its messages, acknowledge them. No other JetStream request.
 	RoleResponder = "responder"
 	// RoleOperator is a responder that may also request arm, disarm and
 	// clear: on its own PREFIX.control.USER.ACTION, which only it may
@@ -86,6 +88,10 @@ type EmbeddedConfig struct {
 	// Prefix is the subject prefix the user roles are written against;
 	// required when Users is not empty.
 	Prefix string
+	// Stream is the name of the stream whose durable consumers responders
+	// and operators may read (see PublisherConfig.Consumers); default
+	// DefaultStreamName.
+	Stream string
 	// Users, when not empty, turn on authentication: every client (MQTT
 	// too) must log in as one of them.
 	Users []User
@@ -184,6 +190,13 @@ func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 		if err := alert.ValidToken(cfg.Prefix); err != nil {
 			return nil, fmt.Errorf("embedded bus users: prefix: %v", err)
 		}
+		stream := cfg.Stream
+		if stream == "" {
+			stream = DefaultStreamName
+		}
+		if err := alert.ValidToken(stream); err != nil {
+			return nil, fmt.Errorf("embedded bus users: stream name: %v", err)
+		}
 		seen := map[string]bool{}
 		for i, u := range cfg.Users {
 			if u.Name == "" || u.Password == "" {
@@ -198,7 +211,7 @@ func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 					return nil, fmt.Errorf("embedded bus users[%d]: name: %w", i, err)
 				}
 			}
-			perms, err := rolePermissions(cfg.Prefix, u.Name, u.Role)
+			perms, err := rolePermissions(cfg.Prefix, stream, u.Name, u.Role)
 			if err != nil {
 				return nil, fmt.Errorf("embedded bus users[%d] (%s): %w", i, u.Name, err)
 			}
@@ -221,12 +234,19 @@ func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 
 // rolePermissions returns the NATS permissions of user in role, the
 // ones the embedded server gives; an external server should give the
-// same. Everyone may subscribe to _INBOX.> because request replies and
-// JetStream acks arrive there. Control requests are hidden from
-// responders and operators, since they may carry the control token, and
-// no one but user may publish on user's control subjects, so that a
-// request there names its sender.
-func rolePermissions(prefix, user, role string) (*server.Permissions, error) {
+// same. Everyone may subscribe to _INBOX.> because request replies,
+// JetStream acks and pulled messages arrive there. Control requests are
+// hidden from responders and operators, since they may carry the control
+// token, and no one but user may publish on user's control subjects, so
+// that a request there names its sender.
+//
+// A responder or operator reaches JetStream only through the durable
+// consumer named after it on stream: look it up (CONSUMER.INFO), pull
+// (CONSUMER.MSG.NEXT) and acknowledge ($JS.ACK, in both of the server's
+// reply formats). It may not create or change a consumer: the request
+// body, which permissions cannot see, could name a deliver subject, and
+// the server would then publish stored messages there in its own name.
+func rolePermissions(prefix, stream, user, role string) (*server.Permissions, error) {
 	ctl := alert.ControlSubject(prefix, ">")
 	inbox := "_INBOX.>"
 	switch role {
@@ -244,12 +264,26 @@ func rolePermissions(prefix, user, role string) (*server.Permissions, error) {
 		for _, a := range actions {
 			pub = append(pub, alert.ControlSubject(prefix, a), alert.UserControlSubject(prefix, user, a))
 		}
+		pub = append(pub, consumerSubjects(stream, user)...)
 		return &server.Permissions{
 			Publish:   &server.SubjectPermission{Allow: pub},
 			Subscribe: &server.SubjectPermission{Allow: []string{prefix + ".>", inbox}, Deny: []string{ctl}},
 		}, nil
 	}
 	return nil, fmt.Errorf("role %q: want %s, %s or %s", role, RoleDaemon, RoleResponder, RoleOperator)
+}
+
+// consumerSubjects are the JetStream subjects that bind, pull from and
+// acknowledge the durable consumer of stream named user (nats-server's
+// $JS.API.CONSUMER.INFO, $JS.API.CONSUMER.MSG.NEXT, and the ack reply
+// subjects $JS.ACK.STREAM.CONSUMER.… and $JS.ACK.DOMAIN.ACCOUNT.STREAM.CONSUMER.…).
+func consumerSubjects(stream, user string) []string {
+	return []string{
+		"$JS.API.CONSUMER.INFO." + stream + "." + user,
+		"$JS.API.CONSUMER.MSG.NEXT." + stream + "." + user,
+		"$JS.ACK." + stream + "." + user + ".>",
+		"$JS.ACK.*.*." + stream + "." + user + ".>",
+	}
 }
 
 func leafRemote(l LeafRemote) (*server.RemoteLeafOpts, error) {

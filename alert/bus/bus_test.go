@@ -386,7 +386,7 @@ func TestDeployNATSConfigs(t *testing.T) {
 		roles := map[string]string{"daemon": RoleDaemon, "responder": RoleResponder, "operator": RoleOperator}
 		require.Len(t, opts.Users, 3)
 		for _, u := range opts.Users {
-			want, err := rolePermissions("stillwater", u.Username, roles[u.Username])
+			want, err := rolePermissions("stillwater", DefaultStreamName, u.Username, roles[u.Username])
 			require.NoError(t, err, u.Username)
 			assert.Equal(t, want.Publish, u.Permissions.Publish, u.Username)
 			assert.Equal(t, want.Subscribe, u.Permissions.Subscribe, u.Username)

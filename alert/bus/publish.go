@@ -19,10 +19,13 @@ import (
 	"stillwater/alert"
 )
 
+// DefaultStreamName is the stream's name unless configured otherwise.
+const DefaultStreamName = "STILLWATER"
+
 // StreamConfig describes the JetStream stream that keeps alarm messages:
 // targets, cleared, faults and armed changes of every camera.
 type StreamConfig struct {
-	Name     string        // default STILLWATER
+	Name     string        // default DefaultStreamName
 	MaxAge   time.Duration // default 30 days
 	MaxBytes int64         // default 256 MiB
 	// Duplicates is how long the server remembers message ids to drop
@@ -35,7 +38,7 @@ type StreamConfig struct {
 
 func (sc StreamConfig) withDefaults() StreamConfig {
 	if sc.Name == "" {
-		sc.Name = "STILLWATER"
+		sc.Name = DefaultStreamName
 	}
 	if sc.MaxAge == 0 {
 		sc.MaxAge = 30 * 24 * time.Hour
@@ -129,6 +132,13 @@ type PublisherConfig struct {
 	// StreamRetry is how often a stream that could not be created is
 	// tried again; default 1 s.
 	StreamRetry time.Duration
+	// Consumers names durable pull consumers the publisher keeps on the
+	// stream for integrators, each named after the bus user that reads it
+	// (the responder and operator roles may bind and read their own; see
+	// ConsumerConfig). Each is made when the stream is, if missing, and
+	// then holds every message stored since, until that user acknowledges
+	// it, so that a responder that was away catches up.
+	Consumers []string
 	// OnResult, if set, is called once per durable message when it is
 	// acknowledged, and for every message lost. It runs on the caller's
 	// or the drain goroutine; keep it short.
@@ -223,6 +233,11 @@ func NewPublisherWith(ctx context.Context, nc *nats.Conn, cfg PublisherConfig) (
 		return nil, fmt.Errorf("publisher: prefix: %v", err)
 	}
 	cfg.Stream = cfg.Stream.withDefaults()
+	for _, name := range cfg.Consumers {
+		if err := ValidUserName(name); err != nil {
+			return nil, fmt.Errorf("publisher: consumer name: %w", err)
+		}
+	}
 	if cfg.AckTimeout <= 0 {
 		cfg.AckTimeout = 2 * time.Second
 	}
@@ -297,6 +312,7 @@ func (p *Publisher) ensureStream(ctx context.Context, force bool) error {
 		Replicas:   sc.Replicas,
 	})
 	if err == nil {
+		p.ensureConsumers(cctx)
 		p.setStream(true, nil)
 		return nil
 	}
@@ -315,6 +331,33 @@ func (p *Publisher) ensureStream(ctx context.Context, force bool) error {
 	}
 	p.setStream(false, err)
 	return err
+}
+
+// ConsumerConfig is the durable consumer kept for a bus user: pull (no
+// deliver subject, so the server sends its messages only to whoever asks
+// with the user's permissions), every stream subject, messages stored
+// after it was made, explicit acknowledgement. A consumer of that name
+// that exists already is left as it is.
+func ConsumerConfig(user string) jetstream.ConsumerConfig {
+	return jetstream.ConsumerConfig{
+		Durable:       user,
+		Description:   "stillwater messages kept for bus user " + user,
+		DeliverPolicy: jetstream.DeliverNewPolicy,
+		AckPolicy:     jetstream.AckExplicitPolicy,
+	}
+}
+
+// ensureConsumers makes the configured durable consumers that are
+// missing. A failure is logged: the stream still stores every message,
+// and the next creation of the stream tries again.
+func (p *Publisher) ensureConsumers(ctx context.Context) {
+	for _, name := range p.cfg.Consumers {
+		_, err := p.js.CreateConsumer(ctx, p.cfg.Stream.Name, ConsumerConfig(name))
+		if err != nil && !errors.Is(err, jetstream.ErrConsumerExists) {
+			p.log.Error("durable consumer for a bus user cannot be made; that user cannot catch up on what it missed",
+				"stream", p.cfg.Stream.Name, "consumer", name, "err", err)
+		}
+	}
 }
 
 // owners lists the streams other than ours that hold any of subjects.

@@ -199,6 +199,9 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	} else {
 		fmt.Fprintf(w, "  external NATS %s\n", vision.Redact(cfg.Bus.URL))
 	}
+	if names := cfg.Bus.consumers(); len(names) > 0 {
+		fmt.Fprintf(w, "  durable consumers kept for %s (each binds the one named after it)\n", strings.Join(names, ", "))
+	}
 	tw := tabwriter.NewWriter(w, 2, 4, 2, ' ', 0)
 	for _, k := range []string{alert.KindTarget, alert.KindCleared, alert.KindFault, alert.KindArmed, alert.KindBeat} {
 		fmt.Fprintf(tw, "  %s\t%s\n", k, alert.Subject(cfg.Bus.Prefix, "CAMERA", k))

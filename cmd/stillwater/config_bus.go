@@ -96,6 +96,11 @@ type StreamSection struct {
 	MaxBytes   int64    `yaml:"max_bytes"`
 	Duplicates Duration `yaml:"duplicates"`
 	Replicas   int      `yaml:"replicas"`
+	// Consumers names bus users for whom stillwater keeps a durable
+	// consumer on the stream, so that they catch up after being away.
+	// With the embedded server every responder and operator user has one
+	// whether listed or not; list the users of an external server here.
+	Consumers []string `yaml:"consumers"`
 }
 
 // OutboxSection bounds the on-disk queue of unacknowledged messages;
@@ -210,6 +215,16 @@ func validateBus(b BusConfig) error {
 		return fmt.Errorf("bus.stream.replicas: %d; JetStream keeps 1 to 5 copies", s.Replicas)
 	case s.MaxAge > 0 && s.Duplicates > s.MaxAge:
 		return errors.New("bus.stream.duplicates: longer than max_age; make it shorter")
+	}
+	listed := map[string]bool{}
+	for i, name := range s.Consumers {
+		if err := bus.ValidUserName(name); err != nil {
+			return fmt.Errorf("bus.stream.consumers[%d]: %v; name the bus user that reads it", i, err)
+		}
+		if listed[name] {
+			return fmt.Errorf("bus.stream.consumers[%d]: %q is listed twice", i, name)
+		}
+		listed[name] = true
 	}
 	o := b.Outbox
 	switch {
@@ -348,7 +363,7 @@ func (b BusConfig) connectOptions(getenv func(string) string) ([]nats.Option, []
 func (b BusConfig) embeddedConfig(dataDir string, getenv func(string) string) (bus.EmbeddedConfig, []string, error) {
 	var warn []string
 	ec := bus.EmbeddedConfig{Listen: b.Listen, StoreDir: filepath.Join(dataDir, "jetstream"), MQTT: b.MQTT,
-		Prefix: b.Prefix, Domain: b.JetStreamDomain}
+		Prefix: b.Prefix, Stream: b.Stream.Name, Domain: b.JetStreamDomain}
 	for i, u := range b.Users {
 		pw, err := resolveSecret(fmt.Sprintf("bus.users[%d].password", i), u.Password, u.PasswordEnv, u.PasswordFile, getenv, &warn)
 		if err != nil {
@@ -374,7 +389,32 @@ func (b BusConfig) publisherConfig(dataDir string) bus.PublisherConfig {
 			Duplicates: time.Duration(b.Stream.Duplicates), Replicas: b.Stream.Replicas},
 		Outbox:     bus.OutboxConfig{Dir: filepath.Join(dataDir, "outbox"), MaxMessages: b.Outbox.MaxMessages, MaxBytes: b.Outbox.MaxBytes},
 		AckTimeout: time.Duration(b.Outbox.AckTimeout),
+		Consumers:  b.consumers(),
 	}
+}
+
+// consumers names the durable consumers to keep: every responder and
+// operator of the embedded server, then those listed, each once.
+func (b BusConfig) consumers() []string {
+	var out []string
+	seen := map[string]bool{}
+	add := func(name string) {
+		if !seen[name] {
+			seen[name] = true
+			out = append(out, name)
+		}
+	}
+	if b.embedded() {
+		for _, u := range b.Users {
+			if u.Role == bus.RoleResponder || u.Role == bus.RoleOperator {
+				add(u.Name)
+			}
+		}
+	}
+	for _, name := range b.Stream.Consumers {
+		add(name)
+	}
+	return out
 }
 
 // ControlConfig is who may arm and disarm, over HTTP and NATS. The

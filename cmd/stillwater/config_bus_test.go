@@ -32,7 +32,7 @@ bus:
     - {name: alice, role: operator, password: "$2a$11$abcdefghijklmnopqrstuv"}
   leaf:
     - urls: [nats-leaf://hub.example:7422]
-  stream: {max_age: 720h, max_bytes: 1000000, duplicates: 30m, replicas: 1}
+  stream: {max_age: 720h, max_bytes: 1000000, duplicates: 30m, replicas: 1, consumers: [dashboard, pager]}
   outbox: {max_messages: 500, max_bytes: 1000000, ack_timeout: 1500ms}
 control:
   secret_env: SW_TEST_CONTROL
@@ -68,6 +68,8 @@ func TestBusConfigFromYAML(t *testing.T) {
 	assert.Equal(t, 500, pc.Outbox.MaxMessages)
 	assert.Equal(t, 1500*time.Millisecond, pc.AckTimeout)
 	assert.Equal(t, 30*time.Minute, pc.Stream.Duplicates)
+	assert.Equal(t, []string{"pager", "alice", "dashboard"}, pc.Consumers, "every responder and operator, then those listed, once each")
+	assert.Equal(t, "", ec.Stream, "the default stream name")
 
 	sec, warn, err := cfg.Control.controlSecret(getenv)
 	require.NoError(t, err)
@@ -126,6 +128,11 @@ func TestValidateBusErrors(t *testing.T) {
 			b.Stream.Duplicates = Duration(2 * time.Hour)
 		}, "bus.stream.duplicates"},
 		{"ack timeout", func(b *BusConfig) { b.Outbox.AckTimeout = Duration(time.Minute) }, "bus.outbox.ack_timeout"},
+		{"consumer name", func(b *BusConfig) { b.Stream.Consumers = []string{"ok", "a/b"} }, "bus.stream.consumers[1]"},
+		{"consumer twice", func(b *BusConfig) { b.Stream.Consumers = []string{"x", "x"} }, "listed twice"},
+		{"operator name", func(b *BusConfig) {
+			b.Users = []BusUserConfig{{Name: "d", Role: "daemon", PasswordEnv: "X"}, {Name: "al/ice", Role: "operator", PasswordEnv: "Y"}}
+		}, "bus.users[1].name"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
