@@ -82,8 +82,11 @@ type EmbeddedConfig struct {
 	StoreDir string
 	// Name is the server name (JetStream and MQTT need one).
 	Name string
-	// MQTT is host:port for the MQTT listener; empty leaves it off. The
-	// host defaults to 127.0.0.1 so MQTT stays local unless asked.
+	// MQTT is host:port for the MQTT (3.1.1) listener; empty leaves it
+	// off. The host defaults to 127.0.0.1 so MQTT stays local unless
+	// asked. MQTT clients log in as one of Users with that user's role;
+	// topics are the subjects with / for . (PREFIX/CAMERA/KIND, and
+	// PREFIX/+/target for every camera's targets).
 	MQTT string
 	// Prefix is the subject prefix the user roles are written against;
 	// required when Users is not empty.
