@@ -5,12 +5,39 @@ import (
 	"crypto/sha256"
 	"encoding/hex"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"os"
 	"path/filepath"
 	"syscall"
 	"time"
 )
+
+// CacheEnv overrides the render cache directory CacheDir returns.
+const CacheEnv = "STILLWATER_SYNTH_CACHE"
+
+// CacheDir returns the render cache of this checkout, testdata/cache/synth
+// under the module root (git ignores it), found by looking up from the
+// working directory for go.mod; CacheEnv overrides it.
+func CacheDir() (string, error) {
+	if d := os.Getenv(CacheEnv); d != "" {
+		return d, nil
+	}
+	dir, err := os.Getwd()
+	if err != nil {
+		return "", fmt.Errorf("render cache: %w", err)
+	}
+	for {
+		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
+			return filepath.Join(dir, "testdata", "cache", "synth"), nil
+		}
+		up := filepath.Dir(dir)
+		if up == dir {
+			return "", errors.New("render cache: no go.mod above the working directory; set " + CacheEnv)
+		}
+		dir = up
+	}
+}
 
 // CacheKey names a scene's rendered files: the scene (every field) and
 // RendererVersion hashed, prefixed for a family scene by its variant and

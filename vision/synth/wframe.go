@@ -60,7 +60,7 @@ func (r *wRenderer) frame(idx int) (FrameTruth, error) {
 		r.gain = r.gainRef
 	}
 	r.pass(t)
-	r.updateExposure()
+	r.updateExposure(idx)
 	return ft, nil
 }
 
@@ -73,14 +73,18 @@ func (r *wRenderer) exposureTarget() float64 {
 }
 
 // updateExposure moves the gain towards undoing ExposureComp of the change
-// in scene light since the first frame, with time constant ExposureTau.
-func (r *wRenderer) updateExposure() {
+// in scene light since the first frame, with time constant ExposureTau,
+// for the time from the last frame drawn (frames may be skipped, as for a
+// contact sheet).
+func (r *wRenderer) updateExposure(idx int) {
 	l := r.w.Light
 	lum := math.Max(r.lumSum/math.Max(1, float64(r.lumN)), 1e-4)
 	want := r.gainRef * math.Pow(r.lumRef/lum, l.ExposureComp)
 	want = math.Min(want, r.gainRef*4)
-	a := 1 - math.Exp(-1/(r.s.FPS*math.Max(l.ExposureTau, 0.05)))
+	steps := float64(max(1, idx-r.lastIdx))
+	a := 1 - math.Exp(-steps/(r.s.FPS*math.Max(l.ExposureTau, 0.05)))
 	r.gain += (want - r.gain) * a
+	r.lastIdx = idx
 }
 
 func (r *wRenderer) occupation(cs childState) *Occupation {
@@ -112,8 +116,8 @@ func (r *wRenderer) faultAt(t float64) *Fault {
 // applyFault draws a faulty picture into r.out: black (a covered or dead
 // sensor: a few grey levels of noise), noise (a failing sensor or cable:
 // coarse random snow) or frozen (the last good picture held; at each key
-// frame the camera re-encodes it, so it changes slightly then and only
-// then).
+// frame, every GOP frames of the clip, the camera re-encodes it, so it
+// changes slightly then and only then).
 func (r *wRenderer) applyFault(idx int, t float64, f *Fault) error {
 	off := r.rng.Intn(65536)
 	nz := r.noise[off:]
@@ -136,7 +140,9 @@ func (r *wRenderer) applyFault(idx int, t float64, f *Fault) error {
 		if gop < 1 {
 			gop = 1
 		}
-		if (idx-r.frozenFrom)%gop == 0 {
+		// The camera's encoder starts a group of pictures every GOP frames
+		// (as the clip's own encoder does).
+		if idx%gop == 0 {
 			return r.reencode(50 + r.rng.Intn(45))
 		}
 	}
@@ -230,16 +236,17 @@ func (r *wRenderer) rasterShadow(ob *object) {
 		for c := 0; c < 8; c++ {
 			q := [3]float64{p.c[0] + p.ext[0]*float64(2*(c&1)-1), p.c[1] + p.ext[1]*float64(2*(c>>1&1)-1), p.c[2] + p.ext[2]*float64(2*(c>>2&1)-1)}
 			for _, z := range []float64{0, r.st.h} {
-				if q[2] < z {
-					continue
+				// The corner's shadow and the point below it bound the
+				// shadow on this plane.
+				k := math.Max(0, q[2]-z) / r.sunDir[2]
+				for _, f := range []float64{0, k} {
+					u, v, ok := r.cam.project(q[0]-f*r.sunDir[0], q[1]-f*r.sunDir[1], z)
+					if !ok {
+						continue
+					}
+					x0, x1 = math.Min(x0, u), math.Max(x1, u)
+					y0, y1 = math.Min(y0, v), math.Max(y1, v)
 				}
-				k := (q[2] - z) / r.sunDir[2]
-				u, v, ok := r.cam.project(q[0]-k*r.sunDir[0], q[1]-k*r.sunDir[1], z)
-				if !ok {
-					continue
-				}
-				x0, x1 = math.Min(x0, u), math.Max(x1, u)
-				y0, y1 = math.Min(y0, v), math.Max(y1, v)
 			}
 		}
 	}
@@ -360,9 +367,9 @@ func (r *wRenderer) shadeRay(ob *object, d [3]float64, cls uint8, u, v int) ([3]
 	}
 	// Through the surface, bent by Snell's law on the rippled normal.
 	s := at(o, d, tLimit)
-	ti := tileIndex(s[0], s[1])
+	ti := tileAt(s[0], s[1])
 	g := r.gust.at(s[0], s[1]) * r.w.Wind.Slope
-	sx, sy := float64(r.waves.sx[ti])*g, float64(r.waves.sy[ti])*g
+	sx, sy := float64(bilinear(r.waves.sx, ti))*g, float64(bilinear(r.waves.sy, ti))*g
 	nl := math.Sqrt(sx*sx + sy*sy + 1)
 	td := refract(d, [3]float64{-sx / nl, -sy / nl, 1 / nl}, WaterIndex)
 	best, bk = math.Inf(1), -1
@@ -484,7 +491,7 @@ func (r *wRenderer) pass(t float64) {
 		p := &r.wp[k]
 		i := int(p.i)
 		g := gl[p.gust] * slope
-		sx, sy := sxT[p.tile]*g, syT[p.tile]*g
+		sx, sy := bilinear(sxT, p.tile)*g, bilinear(syT, p.tile)*g
 		du := int(sx*p.m[0]+sy*p.m[1]+8.5) - 8
 		dv := int(sx*p.m[2]+sy*p.m[3]+8.5) - 8
 		if du < -8 {
@@ -506,7 +513,7 @@ func (r *wRenderer) pass(t float64) {
 			sun = cl[((int(p.cy)+oy)&cloudMask)*cloudN+((int(p.cx)+ox)&cloudMask)]
 		}
 		sun *= float32(shade[i]) * (1.0 / 255)
-		cc := 1 + p.camp*gl[p.gust]*(caus[p.caus]-1)
+		cc := 1 + p.camp*gl[p.gust]*(bilinear(caus, p.caus)-1)
 		if cc < 0 {
 			cc = 0
 		}

@@ -23,8 +23,8 @@ const (
 // that does not change from frame to frame.
 type wpix struct {
 	i     int32
-	tile  int32  // wave cell under the surface point
-	caus  int32  // wave cell under the floor (or wall) point
+	tile  tilePos // wave tile under the surface point
+	caus  tilePos // wave tile under the floor (or wall) point
 	cx    int16  // cloud cell of the surface point
 	cy    int16  //
 	gust  uint16 // gust table entry
@@ -93,6 +93,7 @@ type wRenderer struct {
 	poolMid    float64   // pool centre along the wind, m
 	glit       [256]float32
 	frozenFrom int    // frame a frozen fault began, or -1
+	lastIdx    int    // last frame drawn
 	heldRaw    []byte // frozen fault: the picture held
 	objs       objScratch
 }
@@ -140,6 +141,7 @@ func newWRenderer(s Scene) *wRenderer {
 	}
 	wrng := rand.New(rand.NewSource(s.Seed*13 + 5))
 	r.waves = newWaveTile(wrng, w.Wind.DirDeg)
+	r.waves.setCaustics(w.Wind.Slope, 0.6+0.6*w.Water.Caustics)
 	if w.Clouds != nil {
 		r.clouds = newCloudTex(w.Clouds, s.PoolLength/2, s.PoolWidth/2)
 	}
@@ -371,7 +373,7 @@ func (r *wRenderer) buildPixel(u, v int, wps *[]wpix, gps *[]gpix, floorX, floor
 	up := [3]float64{0, 0, 1}
 	cosI := -d[2]
 	R := fresnel(cosI)
-	p := wpix{i: int32(i), tile: tileIndex(s[0], s[1]), cx: cloudCell16(s[0]), cy: cloudCell16(s[1]), gust: r.gust.index(s[0], s[1])}
+	p := wpix{i: int32(i), tile: tileAt(s[0], s[1]), cx: cloudCell16(s[0]), cy: cloudCell16(s[1]), gust: r.gust.index(s[0], s[1])}
 	p.trans = float32((1 - R) * vig)
 	// What the surface mirrors: the sky or the fence.
 	rd := [3]float64{d[0], d[1], -d[2]}
@@ -415,9 +417,9 @@ func (r *wRenderer) buildPixel(u, v int, wps *[]wpix, gps *[]gpix, floorX, floor
 	depth := -un.p[2]
 	floorX[i], floorY[i], floorD[i] = float32(un.p[0]), float32(un.p[1]), float32(depth)
 	if un.wall {
-		p.caus = tileIndex(un.p[0]+un.p[1], un.p[2])
+		p.caus = tileAt(un.p[0]+un.p[1], un.p[2])
 	} else {
-		p.caus = tileIndex(un.p[0], un.p[1])
+		p.caus = tileAt(un.p[0], un.p[1])
 	}
 	wl := r.w.Water
 	ks := wl.Turbidity*4 + 0.1
