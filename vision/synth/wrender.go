@@ -25,9 +25,9 @@ type wpix struct {
 	i     int32
 	tile  tilePos // wave tile under the surface point
 	caus  tilePos // wave tile under the floor (or wall) point
-	cx    int16  // cloud cell of the surface point
-	cy    int16  //
-	gust  uint16 // gust table entry
+	cx    int16   // cloud cell of the surface point
+	cy    int16   //
+	gust  uint16  // gust table entry
 	m     [4]float32
 	camp  float32 // caustic contrast
 	trans float32 // (1 − Fresnel reflectance)·vignette
