@@ -425,6 +425,18 @@ func (r *wRenderer) lightSurface(ob *object, p *prim, hp, n [3]float64, under bo
 	return out
 }
 
+// toneIdx returns the row of the tone-and-noise table for linear light c
+// at gain gs (·1024).
+func toneIdx(c, gs float32) int {
+	x := int(c * gs)
+	if x > 4095 {
+		x = 4095
+	} else if x < 0 {
+		x = 0
+	}
+	return x << 4
+}
+
 // pass draws every pixel from its table for time t into r.out.
 func (r *wRenderer) pass(t float64) {
 	W := r.W
@@ -444,48 +456,16 @@ func (r *wRenderer) pass(t float64) {
 	sc, amb := r.sunC, r.amb
 	night := r.w.Light.Night
 	noff := r.rng.Intn(65536)
-	nz := r.noise[noff : noff+3*n]
+	nk := r.nk[noff : noff+3*n]
 	class, abase := r.class, r.abase
 	objM, objA, objC, shade := r.objM, r.objA, r.objC, r.shade
-	tone, sig, out := &r.tone, &r.sig, r.out
+	tq, out := r.toneNoise, r.out
+	gs := gain * 1024
 	var lumSum float64
 	lumN := 0
 	// glitter: exp(−q) for q = |slope − glint slope|²/σ², σ = 0.03.
 	const invSig2 = 1 / (0.03 * 0.03)
 	glit := &r.glit
-
-	put := func(i int, c0, c1, c2 float32) {
-		if i&7 == 0 {
-			lumSum += float64(0.114*c0 + 0.587*c1 + 0.299*c2)
-			lumN++
-		}
-		if night {
-			y := 0.114*c0 + 0.587*c1 + 0.299*c2
-			c0, c1, c2 = y, y, y
-		}
-		j := 3 * i
-		x0, x1, x2 := int(c0*gain*1024), int(c1*gain*1024), int(c2*gain*1024)
-		if x0 > 4095 {
-			x0 = 4095
-		}
-		if x1 > 4095 {
-			x1 = 4095
-		}
-		if x2 > 4095 {
-			x2 = 4095
-		}
-		v0, v1, v2 := tone[x0], tone[x1], tone[x2]
-		if night {
-			e := nz[j]
-			out[j] = clampByte(float32(v0) + e*sig[v0])
-			out[j+1] = clampByte(float32(v1) + e*sig[v1])
-			out[j+2] = clampByte(float32(v2) + e*sig[v2])
-			return
-		}
-		out[j] = clampByte(float32(v0) + nz[j]*sig[v0])
-		out[j+1] = clampByte(float32(v1) + nz[j+1]*sig[v1])
-		out[j+2] = clampByte(float32(v2) + nz[j+2]*sig[v2])
-	}
 
 	for k := range r.wp {
 		p := &r.wp[k]
@@ -551,7 +531,19 @@ func (r *wRenderer) pass(t float64) {
 			f1 = f1*(1-a) + oc[1]*a
 			f2 = f2*(1-a) + oc[2]*a
 		}
-		put(i, f0, f1, f2)
+		if i&7 == 0 {
+			lumSum += float64(0.114*f0 + 0.587*f1 + 0.299*f2)
+			lumN++
+		}
+		o := 3 * i
+		if night {
+			k := toneIdx(0.114*f0+0.587*f1+0.299*f2, gs) | int(nk[o])
+			out[o], out[o+1], out[o+2] = tq[k], tq[k], tq[k]
+		} else {
+			out[o] = tq[toneIdx(f0, gs)|int(nk[o])]
+			out[o+1] = tq[toneIdx(f1, gs)|int(nk[o+1])]
+			out[o+2] = tq[toneIdx(f2, gs)|int(nk[o+2])]
+		}
 	}
 	for k := range r.gp {
 		p := &r.gp[k]
@@ -573,7 +565,19 @@ func (r *wRenderer) pass(t float64) {
 			f1 = f1*(1-a) + oc[1]*a
 			f2 = f2*(1-a) + oc[2]*a
 		}
-		put(i, f0, f1, f2)
+		if i&7 == 0 {
+			lumSum += float64(0.114*f0 + 0.587*f1 + 0.299*f2)
+			lumN++
+		}
+		o := 3 * i
+		if night {
+			k := toneIdx(0.114*f0+0.587*f1+0.299*f2, gs) | int(nk[o])
+			out[o], out[o+1], out[o+2] = tq[k], tq[k], tq[k]
+		} else {
+			out[o] = tq[toneIdx(f0, gs)|int(nk[o])]
+			out[o+1] = tq[toneIdx(f1, gs)|int(nk[o+1])]
+			out[o+2] = tq[toneIdx(f2, gs)|int(nk[o+2])]
+		}
 	}
 	r.lumSum, r.lumN = lumSum, lumN
 }

@@ -72,9 +72,13 @@ type wRenderer struct {
 	sunW   float64 // direct sun on the floor through the surface
 	sunC   [3]float32
 	amb    [3]float32
-	tone   [4096]uint8
-	sig    [256]float32
-	noise  []float32
+	// toneNoise maps 12-bit linear light and one of 16 noise quantiles
+	// (index x<<4 | k) to the output byte; nk holds a noise quantile per
+	// byte (with slack for a per-frame offset). noise is Gaussian, for
+	// the faults.
+	toneNoise []uint8
+	nk        []uint8
+	noise     []float32
 	rng    *rand.Rand
 
 	out   []byte
@@ -156,19 +160,29 @@ func newWRenderer(s Scene) *wRenderer {
 	}
 	r.poolMid = s.PoolLength/2*r.gust.dir[0] + s.PoolWidth/2*r.gust.dir[1]
 	r.noise = make([]float32, 3*n+65536)
+	r.nk = make([]uint8, 3*n+65536)
 	nrng := rand.New(rand.NewSource(s.Seed*31 + 11))
 	for i := range r.noise {
 		r.noise[i] = float32(nrng.NormFloat64())
+		r.nk[i] = uint8(nrng.Intn(16))
 	}
 	r.buildRays()
 	r.buildTables()
 	return r
 }
 
-// buildTone fills the tone curve (linear light → 8-bit, the sRGB transfer
-// function, IEC 61966-2-1) and the noise level per output grey level.
+// buildTone fills the tone-and-noise table: linear light → 8 bits by the
+// sRGB transfer function (IEC 61966-2-1), then sensor noise of standard
+// deviation √(read² + shot²·level) grey levels, drawn as one of 16 equally
+// likely quantiles of the normal distribution.
 func (r *wRenderer) buildTone() {
-	for i := range r.tone {
+	var z [16]float64
+	for k := range z {
+		z[k] = math.Sqrt2 * math.Erfinv(2*(float64(k)+0.5)/16-1)
+	}
+	sn := r.w.Sensor
+	r.toneNoise = make([]uint8, 4096*16)
+	for i := 0; i < 4096; i++ {
 		x := float64(i) / 1024
 		var v float64
 		if x <= 0.0031308 {
@@ -176,11 +190,11 @@ func (r *wRenderer) buildTone() {
 		} else {
 			v = 1.055*math.Pow(x, 1/2.4) - 0.055
 		}
-		r.tone[i] = uint8(math.Round(255 * clamp01(v)))
-	}
-	sn := r.w.Sensor
-	for v := range r.sig {
-		r.sig[v] = float32(math.Sqrt(sn.ReadNoise*sn.ReadNoise + sn.Shot*sn.Shot*float64(v)))
+		t := 255 * clamp01(v)
+		sig := math.Sqrt(sn.ReadNoise*sn.ReadNoise + sn.Shot*sn.Shot*t)
+		for k := range z {
+			r.toneNoise[i<<4|k] = uint8(math.Round(math.Max(0, math.Min(255, t+z[k]*sig))))
+		}
 	}
 }
 
