@@ -79,7 +79,7 @@ type wRenderer struct {
 	toneNoise []uint8
 	nk        []uint8
 	noise     []float32
-	rng    *rand.Rand
+	rng       *rand.Rand
 
 	out   []byte
 	objA  []float32
