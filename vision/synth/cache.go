@@ -63,7 +63,8 @@ func CacheKey(s Scene) string {
 // renderer version constant) and returns the paths; concurrent callers for
 // the same key wait for one render. Callers in other processes wait too
 // (an flock on a lock file beside the clip). A clip counts as rendered when
-// its label file exists: the labels are moved into place last.
+// its label file exists: the labels are moved into place last; the lock
+// file goes once the clip is in place.
 func Cached(ctx context.Context, s Scene, dir string) (video, labels string, t Truth, err error) {
 	key := CacheKey(s)
 	video = filepath.Join(dir, key+VideoExt(s))
@@ -74,11 +75,20 @@ func Cached(ctx context.Context, s Scene, dir string) (video, labels string, t T
 	if err := os.MkdirAll(dir, 0o755); err != nil {
 		return "", "", Truth{}, fmt.Errorf("render cache: %w", err)
 	}
-	unlock, err := lockFile(ctx, filepath.Join(dir, key+".lock"))
+	lock := filepath.Join(dir, key+".lock")
+	unlock, err := lockFile(ctx, lock)
 	if err != nil {
 		return "", "", Truth{}, fmt.Errorf("render cache %s: %w", key, err)
 	}
 	defer unlock()
+	// Once the clip is in place nobody needs the lock file: callers that
+	// come later find the clip first, and one already waiting holds the
+	// file open.
+	defer func() {
+		if err == nil {
+			os.Remove(lock)
+		}
+	}()
 	if t, err := readCached(video, labels); err == nil {
 		return video, labels, t, nil
 	}
