@@ -12,6 +12,7 @@ import (
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+	"gocv.io/x/gocv"
 
 	"stillwater/vision/refdata"
 )
@@ -452,4 +453,23 @@ func TestCachedRendersOnce(t *testing.T) {
 	left, err := filepath.Glob(filepath.Join(dir, "*.tmp*"))
 	require.NoError(t, err)
 	assert.Empty(t, left, "no temporary files left")
+}
+
+func TestWriteSheet(t *testing.T) {
+	dir := t.TempDir()
+	var scenes []Scene
+	for _, v := range []Variant{Quiet, Intruder, CameraFault} {
+		s := small(FamilyScene(7, v), 320, 180)
+		s.Duration = 1
+		scenes = append(scenes, s)
+	}
+	p := filepath.Join(dir, "sheet.png")
+	require.NoError(t, WriteSheet(context.Background(), p, scenes, []float64{0, 1}, 160))
+	m := gocv.IMRead(p, gocv.IMReadColor)
+	defer m.Close()
+	assert.Equal(t, [2]int{2 * 160, 3 * 90}, [2]int{m.Cols(), m.Rows()})
+	err := WriteSheet(context.Background(), filepath.Join(dir, "sheet"), scenes, []float64{0}, 160)
+	assert.ErrorContains(t, err, ".png")
+	named := Default()
+	assert.Error(t, WriteSheet(context.Background(), p, []Scene{named}, []float64{0}, 160), "a named scene is not a family scene")
 }

@@ -6,6 +6,8 @@ import (
 	"image"
 	"image/color"
 	"math"
+	"path/filepath"
+	"strings"
 
 	"gocv.io/x/gocv"
 )
@@ -18,6 +20,10 @@ import (
 func WriteSheet(ctx context.Context, path string, scenes []Scene, fracs []float64, tileW int) error {
 	if len(scenes) == 0 || len(fracs) == 0 || tileW < 64 {
 		return fmt.Errorf("contact sheet %s: want scenes, times and a tile width of at least 64 px", path)
+	}
+	// OpenCV aborts the process on an extension it cannot write.
+	if ext := strings.ToLower(filepath.Ext(path)); ext != ".png" && ext != ".jpg" && ext != ".jpeg" {
+		return fmt.Errorf("contact sheet %q: want a .png or .jpg file name", path)
 	}
 	tileH := tileW * 9 / 16
 	sheet := gocv.NewMatWithSize(tileH*len(scenes), tileW*len(fracs), gocv.MatTypeCV8UC3)

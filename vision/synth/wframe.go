@@ -196,6 +196,7 @@ func (r *wRenderer) clearDirty() {
 				r.objM[i] = objNone
 				r.objA[i] = 0
 				r.shade[i] = 255
+				r.stir[i] = 0
 			}
 		}
 	}
@@ -368,7 +369,7 @@ func (r *wRenderer) shadeRay(ob *object, d [3]float64, cls uint8, u, v int) ([3]
 	// Through the surface, bent by Snell's law on the rippled normal.
 	s := at(o, d, tLimit)
 	ti := tileAt(s[0], s[1])
-	g := r.gust.at(s[0], s[1]) * r.w.Wind.Slope
+	g := r.gust.at(s[0], s[1]) * r.w.Wind.Slope * (1 + float64(r.stir[v*r.W+u])/32)
 	sx, sy := float64(bilinear(r.waves.sx, ti))*g, float64(bilinear(r.waves.sy, ti))*g
 	nl := math.Sqrt(sx*sx + sy*sy + 1)
 	td := refract(d, [3]float64{-sx / nl, -sy / nl, 1 / nl}, WaterIndex)
@@ -458,7 +459,7 @@ func (r *wRenderer) pass(t float64) {
 	noff := r.rng.Intn(65536)
 	nk := r.nk[noff : noff+3*n]
 	class, abase := r.class, r.abase
-	objM, objA, objC, shade := r.objM, r.objA, r.objC, r.shade
+	objM, objA, objC, shade, stir := r.objM, r.objA, r.objC, r.shade, r.stir
 	tq, out := r.toneNoise, r.out
 	gs := gain * 1024
 	var lumSum float64
@@ -470,7 +471,8 @@ func (r *wRenderer) pass(t float64) {
 	for k := range r.wp {
 		p := &r.wp[k]
 		i := int(p.i)
-		g := gl[p.gust] * slope
+		gg := gl[p.gust] * (1 + float32(stir[i])*(1.0/32))
+		g := gg * slope
 		sx, sy := bilinear(sxT, p.tile)*g, bilinear(syT, p.tile)*g
 		du := int(sx*p.m[0]+sy*p.m[1]+8.5) - 8
 		dv := int(sx*p.m[2]+sy*p.m[3]+8.5) - 8
@@ -493,7 +495,7 @@ func (r *wRenderer) pass(t float64) {
 			sun = cl[((int(p.cy)+oy)&cloudMask)*cloudN+((int(p.cx)+ox)&cloudMask)]
 		}
 		sun *= float32(shade[i]) * (1.0 / 255)
-		cc := 1 + p.camp*gl[p.gust]*(bilinear(caus, p.caus)-1)
+		cc := 1 + p.camp*gg*(bilinear(caus, p.caus)-1)
 		if cc < 0 {
 			cc = 0
 		}

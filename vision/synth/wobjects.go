@@ -358,6 +358,22 @@ func (r *wRenderer) addChild(in Child, entry, t float64) childState {
 		under = st.contrast
 	}
 	r.pushObject(from, under, enter < 1 || !lying)
+	// The water around a child is stirred: a splash as it gets in, a wake
+	// while it swims, a little paddling while upright; none while it
+	// floats still or lies deep.
+	if enter > 0 && st.depth < 0.3 {
+		x0, y0, _ := in.position(t - 0.3)
+		x1, y1, _ := in.position(t + 0.3)
+		speed := math.Hypot(x1-x0, y1-y0) / 0.6
+		splash := 3 * clamp01(1-(t-entry)/2.5)
+		a := splash + 5*speed
+		if !lying {
+			a += 0.6
+		}
+		if a > 0.05 {
+			r.stirAt(st.x, st.y, math.Min(4, a), 0.45+0.3*splash)
+		}
+	}
 	return st
 }
 
@@ -544,4 +560,41 @@ func (r *wRenderer) primBox(p *prim) image.Rectangle {
 	}
 	b := image.Rect(int(math.Floor(x0-m)), int(math.Floor(y0-m)), int(math.Ceil(x1+m))+1, int(math.Ceil(y1+m))+1)
 	return b.Intersect(image.Rect(0, 0, r.W, r.H))
+}
+
+// stirAt raises the ripples of the water around (x, y): slope gain 1 + a
+// at the centre, falling off over rad metres.
+func (r *wRenderer) stirAt(x, y, a, rad float64) {
+	x0, y0, x1, y1 := math.Inf(1), math.Inf(1), math.Inf(-1), math.Inf(-1)
+	for _, c := range [][2]float64{{-1, -1}, {1, -1}, {1, 1}, {-1, 1}} {
+		u, v, ok := r.cam.project(x+2*rad*c[0], y+2*rad*c[1], 0)
+		if !ok {
+			continue
+		}
+		x0, x1 = math.Min(x0, u), math.Max(x1, u)
+		y0, y1 = math.Min(y0, v), math.Max(y1, v)
+	}
+	if math.IsInf(x0, 1) {
+		return
+	}
+	box := image.Rect(int(x0)-1, int(y0)-1, int(x1)+2, int(y1)+2).Intersect(image.Rect(0, 0, r.W, r.H))
+	cam := r.cam.c
+	for v := box.Min.Y; v < box.Max.Y; v++ {
+		for u := box.Min.X; u < box.Max.X; u++ {
+			i := v*r.W + u
+			if r.class[i] != pxWater {
+				continue
+			}
+			d, ok := r.rayAt(float64(u), float64(v))
+			if !ok || d[2] >= 0 {
+				continue
+			}
+			s := at(cam, d, -cam[2]/d[2])
+			q := ((s[0]-x)*(s[0]-x) + (s[1]-y)*(s[1]-y)) / (rad * rad)
+			if q < 6 {
+				r.stir[i] = uint8(math.Min(255, float64(r.stir[i])+32*a*math.Exp(-q)))
+			}
+		}
+	}
+	r.dirty = append(r.dirty, box)
 }

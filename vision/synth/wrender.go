@@ -86,6 +86,7 @@ type wRenderer struct {
 	objC  []float32
 	objM  []uint8
 	shade []uint8
+	stir  []uint8 // extra ripple slope around children, 1/32 units
 	dirty []image.Rectangle
 
 	gain, gainRef, lumRef float64
@@ -123,6 +124,7 @@ func newWRenderer(s Scene) *wRenderer {
 	r.objC = make([]float32, 3*n)
 	r.objM = make([]uint8, n)
 	r.shade = make([]uint8, n)
+	r.stir = make([]uint8, n)
 	for i := range r.shade {
 		r.shade[i] = 255
 	}
