@@ -48,6 +48,7 @@ func BenchmarkFamilyRender(b *testing.B) {
 			r := newWRenderer(s)
 			build := time.Since(start)
 			first := int(20 * s.FPS) // the child is in the water
+			b.ReportAllocs()
 			b.ResetTimer()
 			cpu := cpuSeconds(b)
 			for i := 0; i < b.N; i++ {

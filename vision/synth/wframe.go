@@ -120,15 +120,15 @@ func (r *wRenderer) faultAt(t float64) *Fault {
 // changes slightly then and only then).
 func (r *wRenderer) applyFault(idx int, t float64, f *Fault) error {
 	off := r.rng.Intn(65536)
-	nz := r.noise[off:]
+	nk, z := r.nk[off:], &r.z
 	switch f.Kind {
 	case FaultBlack:
 		for i := range r.out {
-			r.out[i] = clampByte(4 + 1.5*nz[i])
+			r.out[i] = clampByte(4 + 1.5*z[nk[i]])
 		}
 	case FaultNoise:
 		for i := range r.out {
-			r.out[i] = clampByte(128 + 70*nz[i] + 30*nz[i/3*3])
+			r.out[i] = clampByte(128 + 70*z[nk[i]] + 30*z[nk[i/3*3+1]])
 		}
 	case FaultFrozen:
 		if r.frozenFrom < 0 {

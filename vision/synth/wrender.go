@@ -74,11 +74,10 @@ type wRenderer struct {
 	amb    [3]float32
 	// toneNoise maps 12-bit linear light and one of 16 noise quantiles
 	// (index x<<4 | k) to the output byte; nk holds a noise quantile per
-	// byte (with slack for a per-frame offset). noise is Gaussian, for
-	// the faults.
+	// byte (with slack for a per-frame offset) and z the quantiles.
 	toneNoise []uint8
 	nk        []uint8
-	noise     []float32
+	z         [16]float32
 	rng       *rand.Rand
 
 	out   []byte
@@ -161,11 +160,9 @@ func newWRenderer(s Scene) *wRenderer {
 		r.entries = append(r.entries, childEntry(in, s.PoolLength, s.PoolWidth))
 	}
 	r.poolMid = s.PoolLength/2*r.gust.dir[0] + s.PoolWidth/2*r.gust.dir[1]
-	r.noise = make([]float32, 3*n+65536)
 	r.nk = make([]uint8, 3*n+65536)
 	nrng := rand.New(rand.NewSource(s.Seed*31 + 11))
-	for i := range r.noise {
-		r.noise[i] = float32(nrng.NormFloat64())
+	for i := range r.nk {
 		r.nk[i] = uint8(nrng.Intn(16))
 	}
 	r.buildRays()
@@ -181,6 +178,7 @@ func (r *wRenderer) buildTone() {
 	var z [16]float64
 	for k := range z {
 		z[k] = math.Sqrt2 * math.Erfinv(2*(float64(k)+0.5)/16-1)
+		r.z[k] = float32(z[k])
 	}
 	sn := r.w.Sensor
 	r.toneNoise = make([]uint8, 4096*16)
