@@ -6,11 +6,16 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"io/fs"
+	"log/slog"
 	"os"
 	"sort"
+	"strings"
 	"sync"
 	"time"
+	"unicode"
+	"unicode/utf8"
 )
 
 // AllCameras addresses every camera in Arming calls and control requests.
@@ -45,8 +50,13 @@ type ArmingConfig struct {
 	// empty keeps them in memory only.
 	StatePath string
 	// MaxDisarm is the longest a disarm may last; default 24 h. A disarm
-	// always ends, so a forgotten one cannot leave the pool unwatched.
+	// always ends, so a forgotten one cannot leave the pool unwatched. A
+	// saved disarm that ends later than MaxDisarm after NewArming's now is
+	// cut to that bound.
 	MaxDisarm time.Duration
+	// Log receives a line for every saved record that is clamped, dropped
+	// or found invalid, naming the state file; nil discards them.
+	Log *slog.Logger
 }
 
 // Arming holds one ArmState per camera and the overrides operators set.
@@ -93,11 +103,18 @@ type ArmingStatus struct {
 	Cameras []CameraArming `json:"cameras"`
 }
 
-// armingFile is the state file's form.
+// armingFile is the state file's form. FailSafe lists the cameras armed
+// for safety because their saved state was unusable, so that a restart
+// does not quietly hand them back to the schedule.
 type armingFile struct {
 	V         int                 `json:"v"`
 	Overrides map[string]Override `json:"overrides"`
+	FailSafe  []string            `json:"fail_safe,omitempty"`
 }
+
+// maxByLen bounds the author of a saved override: "http:" or "nats:"
+// and a name of at most 64 characters fit with room to spare.
+const maxByLen = 128
 
 // NewArming builds the per-camera states and loads saved overrides from
 // cfg.StatePath. A missing file is no override. A file that cannot be read
@@ -111,6 +128,9 @@ func NewArming(cfg ArmingConfig, now time.Time) (*Arming, error) {
 	}
 	if cfg.MaxDisarm <= 0 {
 		cfg.MaxDisarm = 24 * time.Hour
+	}
+	if cfg.Log == nil {
+		cfg.Log = slog.New(slog.NewTextHandler(io.Discard, nil))
 	}
 	a := &Arming{cfg: cfg, states: map[string]*ArmState{}, sent: map[string]sentState{}, setAt: map[string]time.Time{}, changed: make(chan struct{}, 1)}
 	for _, id := range cfg.Cameras {
@@ -140,46 +160,180 @@ func NewArming(cfg ArmingConfig, now time.Time) (*Arming, error) {
 	if cfg.StatePath == "" {
 		return a, nil
 	}
-	if err := a.load(); err != nil {
-		for _, s := range a.states {
-			s.override, s.failSafe = Override{}, true
-		}
-		return a, fmt.Errorf("arming state %s: %w (%v); every camera comes up armed for safety", cfg.StatePath, ErrStateUnreadable, err)
-	}
-	return a, nil
+	return a, a.load(now)
 }
 
-func (a *Arming) load() error {
-	data, err := os.ReadFile(a.cfg.StatePath)
+// load reads the state file. Each record is checked on its own: a good
+// one is applied (a disarm cut to MaxDisarm), a camera whose record is bad
+// is armed for safety, and a record for a camera not configured is
+// dropped. A file that cannot be parsed at all arms every camera for
+// safety and returns an error wrapping ErrStateUnreadable. Whenever
+// anything was changed or rejected, the file as found is kept aside as
+// PATH.rejected-TIME and the cleaned state is written in its place.
+func (a *Arming) load(now time.Time) error {
+	path, log := a.cfg.StatePath, a.cfg.Log
+	data, err := os.ReadFile(path)
 	if errors.Is(err, fs.ErrNotExist) {
 		return nil
 	}
 	if err != nil {
-		return err
+		a.failAll()
+		return fmt.Errorf("arming state %s: %w (%v); every camera comes up armed for safety", path, ErrStateUnreadable, err)
 	}
-	var f armingFile
+	f, err := decodeArmingFile(data)
+	if err != nil {
+		a.failAll()
+		aside, aerr := a.setAside(data, now)
+		where := "the file is kept as " + aside
+		switch {
+		case aerr != nil:
+			where = fmt.Sprintf("the file stays in place (%v)", aerr)
+		case a.save() != nil:
+			where += "; the fail-safe state could not be written, so the next start reads the file as found again"
+		}
+		return fmt.Errorf("arming state %s: %w (%v); every camera comes up armed for safety; %s", path, ErrStateUnreadable, err, where)
+	}
+	type note struct {
+		camera, problem string
+		clamped         bool
+		saved, until    time.Time
+	}
+	var notes []note
+	ids := make([]string, 0, len(f.Overrides))
+	for id := range f.Overrides {
+		ids = append(ids, id)
+	}
+	sort.Strings(ids)
+	for _, id := range ids {
+		s, known := a.states[id]
+		if !known {
+			notes = append(notes, note{camera: id, problem: "no such camera in the configuration; override dropped"})
+			continue
+		}
+		o, err := decodeOverride(f.Overrides[id])
+		if err != nil {
+			s.override, s.failSafe = Override{}, true
+			notes = append(notes, note{camera: id, problem: err.Error() + "; camera armed for safety until an operator sets its state"})
+			continue
+		}
+		if limit := now.Add(a.cfg.MaxDisarm); !o.Armed && o.Until.After(limit) {
+			notes = append(notes, note{camera: id, clamped: true, saved: o.Until, until: limit})
+			o.Until = limit
+		}
+		s.SetOverride(o)
+	}
+	for _, id := range f.FailSafe {
+		if s, ok := a.states[id]; ok {
+			s.failSafe = true
+		} else {
+			notes = append(notes, note{camera: id, problem: "fail-safe mark for a camera not in the configuration; dropped"})
+		}
+	}
+	if len(notes) == 0 {
+		return nil
+	}
+	aside, aerr := a.setAside(data, now)
+	if aerr != nil {
+		log.Error("arming state: cannot keep the file as found; leaving it in place", "file", path, "err", aerr)
+	}
+	for _, n := range notes {
+		if n.clamped {
+			log.Warn("arming state: saved disarm ends later than max_disarm allows; cut short",
+				"file", path, "camera", n.camera, "saved_until", n.saved.UTC().Format(time.RFC3339),
+				"until", n.until.UTC().Format(time.RFC3339), "max_disarm", a.cfg.MaxDisarm.String(), "kept_as", aside)
+			continue
+		}
+		log.Error("arming state: record set aside", "file", path, "camera", n.camera, "problem", n.problem, "kept_as", aside)
+	}
+	if aerr != nil {
+		return nil
+	}
+	if err := a.save(); err != nil {
+		log.Error("arming state: cannot write the cleaned state; the next start reads the file as found again", "file", path, "err", err)
+	}
+	return nil
+}
+
+// failAll arms every camera for safety.
+func (a *Arming) failAll() {
+	for _, s := range a.states {
+		s.override, s.failSafe = Override{}, true
+	}
+}
+
+// decodeArmingFile parses the file's frame: the version and the records,
+// each left raw to be checked on its own.
+func decodeArmingFile(data []byte) (rawArmingFile, error) {
+	var f rawArmingFile
 	dec := json.NewDecoder(bytes.NewReader(data))
 	dec.DisallowUnknownFields()
 	if err := dec.Decode(&f); err != nil {
-		return err
+		return f, err
 	}
-	if dec.More() {
-		return errors.New("trailing data after the JSON object")
+	if _, err := dec.Token(); !errors.Is(err, io.EOF) {
+		return f, errors.New("trailing data after the JSON object")
 	}
 	if f.V != 1 {
-		return fmt.Errorf("version %d, want 1", f.V)
+		return f, fmt.Errorf("version %d, want 1", f.V)
 	}
-	for id, o := range f.Overrides {
-		if o.Until.IsZero() {
-			return fmt.Errorf("override of camera %q has no until time", id)
+	return f, nil
+}
+
+// rawArmingFile is armingFile with its records undecoded.
+type rawArmingFile struct {
+	V         int                        `json:"v"`
+	Overrides map[string]json.RawMessage `json:"overrides"`
+	FailSafe  []string                   `json:"fail_safe"`
+}
+
+// decodeOverride parses and checks one saved record.
+func decodeOverride(raw json.RawMessage) (Override, error) {
+	var o Override
+	dec := json.NewDecoder(bytes.NewReader(raw))
+	dec.DisallowUnknownFields()
+	if err := dec.Decode(&o); err != nil {
+		return Override{}, fmt.Errorf("not an override record: %v", err)
+	}
+	switch {
+	case o.Until.IsZero():
+		return Override{}, errors.New("override has no until time")
+	case len(o.By) > maxByLen || !utf8.ValidString(o.By) || strings.IndexFunc(o.By, func(r rune) bool { return !unicode.IsPrint(r) }) >= 0:
+		return Override{}, fmt.Errorf("by is not %d or fewer printable characters", maxByLen)
+	}
+	return o, nil
+}
+
+// setAside keeps data, the state file as found, next to it as
+// PATH.rejected-TIME and returns that name.
+func (a *Arming) setAside(data []byte, now time.Time) (string, error) {
+	base := a.cfg.StatePath + ".rejected-" + now.UTC().Format("20060102T150405Z")
+	for i := 1; i < 100; i++ {
+		name := base
+		if i > 1 {
+			name = fmt.Sprintf("%s-%d", base, i)
 		}
-	}
-	for id, o := range f.Overrides {
-		if s, ok := a.states[id]; ok {
-			s.SetOverride(o)
+		f, err := os.OpenFile(name, os.O_WRONLY|os.O_CREATE|os.O_EXCL, 0o600)
+		if errors.Is(err, fs.ErrExist) {
+			continue
 		}
+		if err != nil {
+			return "", err
+		}
+		_, werr := f.Write(data)
+		serr := f.Sync()
+		if cerr := f.Close(); werr == nil && serr == nil {
+			werr = cerr
+		}
+		if werr == nil {
+			werr = serr
+		}
+		if werr != nil {
+			os.Remove(name)
+			return "", werr
+		}
+		return name, nil
 	}
-	return nil
+	return "", fmt.Errorf("too many files named %s*", base)
 }
 
 // save writes every camera's override; the caller holds mu.
@@ -188,9 +342,13 @@ func (a *Arming) save() error {
 		return nil
 	}
 	f := armingFile{V: 1, Overrides: map[string]Override{}}
-	for id, s := range a.states {
+	for _, id := range a.ids {
+		s := a.states[id]
 		if !s.override.Until.IsZero() {
 			f.Overrides[id] = s.override
+		}
+		if s.failSafe {
+			f.FailSafe = append(f.FailSafe, id)
 		}
 	}
 	data, err := json.MarshalIndent(f, "", "  ")
@@ -222,7 +380,7 @@ func (a *Arming) Armed(camera string, now time.Time) (bool, string) {
 // spelled out; the caller holds mu.
 func (a *Arming) state(s *ArmState, now time.Time) (bool, string) {
 	o := s.override
-	if !s.failSafe && o.Active(now) && o.Until.Equal(forever()) {
+	if !s.failSafe && o.Armed && o.Active(now) && o.Until.Equal(forever()) {
 		return true, "armed by override until cleared" + byText(o.By)
 	}
 	armed, reason := s.State(now)
@@ -329,7 +487,7 @@ func (a *Arming) nextChange(s *ArmState, now time.Time) (time.Time, bool) {
 		return time.Time{}, false
 	}
 	if s.override.Active(now) {
-		if s.override.Until.Equal(forever()) {
+		if s.override.Armed && s.override.Until.Equal(forever()) {
 			return time.Time{}, false
 		}
 		return s.override.Until, true
@@ -351,7 +509,7 @@ func (a *Arming) Status(now time.Time) ArmingStatus {
 		row := CameraArming{Camera: id, Armed: armed, Reason: reason, FailSafe: s.failSafe}
 		if o := s.override; !s.failSafe && o.Active(now) {
 			row.Override = &OverrideStatus{Armed: o.Armed, By: o.By}
-			if !o.Until.Equal(forever()) {
+			if !o.Armed || !o.Until.Equal(forever()) {
 				u := o.Until.UTC()
 				row.Override.Until = &u
 			}
@@ -387,7 +545,7 @@ func (a *Arming) Poll(now time.Time) []ArmedChange {
 		}
 		at := a.changeTime(id, s, prev, now)
 		c := ArmedChange{V: Version, Kind: KindArmed, Camera: id, Time: at.UTC(), Armed: armed, Reason: reason, By: cur.By}
-		if !cur.Until.IsZero() && !cur.Until.Equal(forever()) {
+		if !cur.Until.IsZero() && (!cur.Armed || !cur.Until.Equal(forever())) {
 			u := cur.Until.UTC()
 			c.Until = &u
 		}
@@ -476,4 +634,47 @@ func (a *Arming) SetSchedules(def *Schedule, per map[string]*Schedule, now time.
 	default:
 	}
 	return nil
+}
+
+// SetMaxDisarm changes the longest disarm, as a configuration reload
+// does; d <= 0 is the 24 h default. Disarms already running that would
+// now end later than now+d are cut to that instant and saved; the
+// cameras cut are returned. When saving fails nothing changes.
+func (a *Arming) SetMaxDisarm(d time.Duration, now time.Time) ([]string, error) {
+	if d <= 0 {
+		d = 24 * time.Hour
+	}
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	prevMax := a.cfg.MaxDisarm
+	prev := map[string]Override{}
+	limit := now.Add(d)
+	var cut []string
+	for _, id := range a.ids {
+		s := a.states[id]
+		if o := s.override; !s.failSafe && !o.Armed && o.Active(now) && o.Until.After(limit) {
+			prev[id] = o
+			s.override.Until = limit
+			cut = append(cut, id)
+		}
+	}
+	a.cfg.MaxDisarm = d
+	if len(cut) == 0 {
+		return nil, nil
+	}
+	if err := a.save(); err != nil {
+		for id, o := range prev {
+			a.states[id].override = o
+		}
+		a.cfg.MaxDisarm = prevMax
+		return nil, err
+	}
+	for _, id := range cut {
+		a.setAt[id] = now
+	}
+	select {
+	case a.changed <- struct{}{}:
+	default:
+	}
+	return cut, nil
 }

@@ -1,7 +1,9 @@
 package alert
 
 import (
+	"bytes"
 	"context"
+	"log/slog"
 	"os"
 	"path/filepath"
 	"sync"
@@ -248,7 +250,6 @@ func TestArmingUnreadableStateFailsArmed(t *testing.T) {
 	for name, content := range map[string]string{
 		"garbage":       "{not json",
 		"wrong version": `{"v":7,"overrides":{}}`,
-		"no until":      `{"v":1,"overrides":{"north":{"armed":false}}}`,
 		"unknown field": `{"v":1,"overrides":{},"extra":1}`,
 	} {
 		t.Run(name, func(t *testing.T) {
@@ -371,4 +372,162 @@ func TestArmingSetSchedulesKeepsOverrides(t *testing.T) {
 	assert.False(t, armed)
 	assert.Contains(t, reason, "override")
 	assert.Error(t, a.SetSchedules(nil, map[string]*Schedule{"east": nil}, reload))
+}
+
+// logTo returns a text logger writing to b.
+func logTo(b *bytes.Buffer) *slog.Logger { return slog.New(slog.NewTextHandler(b, nil)) }
+
+// asideFiles lists what NewArming moved aside next to path.
+func asideFiles(t *testing.T, path string) []string {
+	t.Helper()
+	m, err := filepath.Glob(path + ".rejected-*")
+	require.NoError(t, err)
+	return m
+}
+
+// A disarm saved before a crash, edited by hand or written by an older
+// version may end long after max_disarm allows. It must not outlive the
+// bound: it is clamped on load, logged, and the original kept aside.
+func TestArmingClampsSavedDisarm(t *testing.T) {
+	now := utc(2026, 12, 2, 22, 0)
+	path := filepath.Join(t.TempDir(), "arming.json")
+	orig := `{"v":1,"overrides":{"north":{"armed":false,"until":"9999-12-30T00:00:00Z","by":"http:x"}}}`
+	require.NoError(t, os.WriteFile(path, []byte(orig), 0o600))
+	var logs bytes.Buffer
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: path, MaxDisarm: 24 * time.Hour, Log: logTo(&logs)}, now)
+	require.NoError(t, err)
+
+	armed, reason := a.Armed("north", now.Add(23*time.Hour))
+	assert.False(t, armed, "still disarmed inside the bound: %s", reason)
+	armed, _ = a.Armed("north", now.Add(24*time.Hour+time.Second))
+	assert.True(t, armed, "the saved disarm must end within max_disarm of the start")
+	assert.Contains(t, logs.String(), path)
+	assert.Contains(t, logs.String(), "north")
+	assert.Contains(t, logs.String(), "max_disarm")
+	assert.Contains(t, logs.String(), "9999-12-30")
+
+	// The file now holds the clamped disarm; the original is kept aside.
+	b, err := NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: path, MaxDisarm: 24 * time.Hour}, now.Add(time.Hour))
+	require.NoError(t, err)
+	armed, _ = b.Armed("north", now.Add(24*time.Hour+time.Second))
+	assert.True(t, armed)
+	aside := asideFiles(t, path)
+	require.Len(t, aside, 1)
+	kept, err := os.ReadFile(aside[0])
+	require.NoError(t, err)
+	assert.Equal(t, orig, string(kept))
+}
+
+// One bad record must not cost the good ones: each record is checked on
+// its own, a camera whose record is bad comes up armed for safety, and
+// the file as found is kept aside with a log line per problem.
+func TestArmingValidatesEachRecord(t *testing.T) {
+	now := utc(2026, 12, 2, 22, 0)
+	path := filepath.Join(t.TempDir(), "arming.json")
+	orig := `{"v":1,"overrides":{
+  "north":{"armed":false,"until":"2026-12-02T23:00:00Z","by":"http:alice"},
+  "south":{"armed":false,"until":"0001-01-01T00:00:00Z"},
+  "east":{"armed":false,"until":"2026-12-02T23:00:00Z","by":"a\u0007b"},
+  "west":null,
+  "gone":{"armed":false,"until":"2026-12-02T23:00:00Z"}}}`
+	require.NoError(t, os.WriteFile(path, []byte(orig), 0o600))
+	var logs bytes.Buffer
+	cams := []string{"north", "south", "east", "west"}
+	sched := mustSchedule(t, "UTC", "daily 06:00-07:00") // disarmed at 22:00
+	a, err := NewArming(ArmingConfig{Cameras: cams, StatePath: path, Default: sched, Log: logTo(&logs)}, now)
+	require.NoError(t, err, "bad records are no reason to fail the whole file")
+
+	armed, _ := a.Armed("north", now)
+	assert.False(t, armed, "the good record survives")
+	for _, id := range []string{"south", "east", "west"} {
+		armed, reason := a.Armed(id, now)
+		assert.True(t, armed, "%s: a bad record fails armed", id)
+		assert.Contains(t, reason, "unreadable", id)
+		assert.Contains(t, logs.String(), "camera="+id)
+	}
+	assert.Contains(t, logs.String(), "no until")
+	assert.Contains(t, logs.String(), "by")
+	assert.Contains(t, logs.String(), "camera=gone")
+	assert.Contains(t, logs.String(), path)
+	aside := asideFiles(t, path)
+	require.Len(t, aside, 1)
+	assert.Contains(t, logs.String(), aside[0])
+	kept, err := os.ReadFile(aside[0])
+	require.NoError(t, err)
+	assert.Equal(t, orig, string(kept))
+
+	// Fail-safe survives a restart until an operator acts.
+	b, err := NewArming(ArmingConfig{Cameras: cams, StatePath: path, Default: sched}, now)
+	require.NoError(t, err)
+	armed, _ = b.Armed("south", now)
+	assert.True(t, armed, "fail-safe is kept across a restart")
+	armed, _ = b.Armed("north", now)
+	assert.False(t, armed)
+	require.NoError(t, b.Clear("south", "test", now))
+	armed, _ = b.Armed("south", now)
+	assert.False(t, armed, "a clear ends fail-safe")
+	assert.Len(t, asideFiles(t, path), 1, "a clean file is not moved aside again")
+}
+
+// FuzzArmingState feeds arbitrary bytes as the saved state. Whatever the
+// file holds: no panic, a usable *Arming, no camera disarmed past
+// max_disarm from the start, and loading the file left behind gives the
+// same state without another rewrite.
+func FuzzArmingState(f *testing.F) {
+	for _, s := range []string{
+		`{"v":1,"overrides":{"north":{"armed":false,"until":"2026-12-02T23:00:00Z","by":"http:alice"}}}`,
+		`{"v":1,"overrides":{"north":{"armed":false,"until":"9999-12-31T00:00:00Z"}}}`,
+		`{"v":1,"overrides":{"south":{"armed":true,"until":"9999-12-31T00:00:00Z"}},"fail_safe":["north"]}`,
+		`{"v":1,"overrides":{"north":null,"south":{"armed":false}}}`,
+		`{"v":2}`,
+		`{not json`,
+		``,
+	} {
+		f.Add([]byte(s))
+	}
+	now := utc(2026, 12, 2, 22, 0)
+	const max = 6 * time.Hour
+	cams := []string{"north", "south"}
+	f.Fuzz(func(t *testing.T, data []byte) {
+		path := filepath.Join(t.TempDir(), "arming.json")
+		require.NoError(t, os.WriteFile(path, data, 0o600))
+		cfg := ArmingConfig{Cameras: cams, StatePath: path, MaxDisarm: max}
+		a, err := NewArming(cfg, now)
+		if err != nil {
+			require.ErrorIs(t, err, ErrStateUnreadable)
+		}
+		require.NotNil(t, a)
+		for _, id := range cams {
+			armed, reason := a.Armed(id, now.Add(max+time.Second))
+			require.True(t, armed, "%s disarmed past max_disarm: %s", id, reason)
+		}
+		first := a.Status(now)
+		nAside := len(asideFiles(t, path))
+		b, err := NewArming(cfg, now)
+		require.NoError(t, err, "the file left behind must load cleanly")
+		assert.Equal(t, first, b.Status(now))
+		assert.Len(t, asideFiles(t, path), nAside, "a clean file is not moved aside")
+	})
+}
+
+// Shortening max_disarm on a reload cuts a running disarm to the new bound.
+func TestArmingSetMaxDisarmCutsRunningDisarm(t *testing.T) {
+	now := utc(2026, 12, 2, 22, 0)
+	path := filepath.Join(t.TempDir(), "arming.json")
+	a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, StatePath: path, MaxDisarm: 24 * time.Hour}, now)
+	require.NoError(t, err)
+	require.NoError(t, a.DisarmUntil("north", now.Add(20*time.Hour), "http:owner", now))
+	require.NoError(t, a.DisarmUntil("south", now.Add(time.Hour), "http:owner", now))
+	cut, err := a.SetMaxDisarm(2*time.Hour, now.Add(time.Minute))
+	require.NoError(t, err)
+	assert.Equal(t, []string{"north"}, cut)
+	armed, _ := a.Armed("north", now.Add(2*time.Hour+2*time.Minute))
+	assert.True(t, armed)
+	armed, _ = a.Armed("south", now.Add(30*time.Minute))
+	assert.False(t, armed, "a disarm inside the new bound is left alone")
+	require.Error(t, a.DisarmUntil("south", now.Add(3*time.Hour), "x", now))
+	b, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, StatePath: path, MaxDisarm: 2 * time.Hour}, now.Add(time.Minute))
+	require.NoError(t, err)
+	armed, _ = b.Armed("north", now.Add(2*time.Hour+2*time.Minute))
+	assert.True(t, armed, "the cut disarm was saved")
 }

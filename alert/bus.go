@@ -7,6 +7,7 @@ import (
 	"net/url"
 	"strconv"
 	"strings"
+	"syscall"
 	"time"
 
 	"github.com/nats-io/nats-server/v2/server"
@@ -86,11 +87,36 @@ func StartEmbedded(cfg EmbeddedConfig) (*Embedded, error) {
 	if err != nil {
 		return nil, err
 	}
+	// nats-server reports a port it cannot bind only to its own log and
+	// then never becomes ready; try the ports first to say which one.
+	if err := portFree("client", "bus.listen", opts.Host, opts.Port); err != nil {
+		return nil, err
+	}
+	if err := portFree("MQTT", "bus.mqtt", opts.MQTT.Host, opts.MQTT.Port); err != nil {
+		return nil, err
+	}
 	srv, err := startServer(opts)
 	if err != nil {
-		return nil, fmt.Errorf("embedded bus: %w", err)
+		return nil, fmt.Errorf("embedded bus (client %s): %w", net.JoinHostPort(opts.Host, strconv.Itoa(opts.Port)), err)
 	}
 	return &Embedded{srv: srv}, nil
+}
+
+// portFree checks that host:port can be listened on; port 0 and -1 (off,
+// or any free port) are not checked. key is the setting to change.
+func portFree(what, key, host string, port int) error {
+	if port <= 0 {
+		return nil
+	}
+	addr := net.JoinHostPort(host, strconv.Itoa(port))
+	l, err := net.Listen("tcp", addr)
+	if errors.Is(err, syscall.EADDRINUSE) {
+		return fmt.Errorf("embedded bus: %s port %s is in use by another process (another stillwater or NATS server?); stop it or choose another port in %s", what, addr, key)
+	}
+	if err != nil {
+		return fmt.Errorf("embedded bus: cannot listen on %s (%s port, %s): %w", addr, what, key, err)
+	}
+	return l.Close()
 }
 
 func startServer(opts *server.Options) (*server.Server, error) {

@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"net"
 	"net/http"
 	"net/http/httptest"
 	"os"
@@ -201,7 +202,8 @@ func TestOperatorNeedsToken(t *testing.T) {
 	require.NoError(t, err)
 	require.True(t, rep.OK, rep.Error)
 	assert.False(t, h.armed(t), "the operator with the token disarmed")
-	assert.Equal(t, "nats:alice", rep.Status.Cameras[0].Override.By)
+	// The author is who the token stands for, not the body's by.
+	assert.Equal(t, "nats:"+DefaultTokenName, rep.Status.Cameras[0].Override.By)
 
 	hdr := nats.NewMsg("sw.control.arm")
 	hdr.Header.Set("Authorization", "Bearer s3cret")
@@ -440,4 +442,37 @@ func TestDeployNATSConfigs(t *testing.T) {
 	assert.Len(t, opts.LeafNode.Remotes[0].URLs, 3)
 	assert.Equal(t, "home", opts.JetStreamDomain)
 	assert.Equal(t, "127.0.0.1", opts.Host)
+}
+
+// TestBusPortInUse starts the embedded server on ports that another
+// listener holds: the error must name the port and say it is in use,
+// rather than report a server that did not become ready.
+func TestBusPortInUse(t *testing.T) {
+	held, err := net.Listen("tcp", "127.0.0.1:0")
+	require.NoError(t, err)
+	defer held.Close()
+	port := strconv.Itoa(held.Addr().(*net.TCPAddr).Port)
+	cases := []struct {
+		name string
+		cfg  EmbeddedConfig
+		want string
+	}{
+		{"client port", EmbeddedConfig{Listen: "127.0.0.1:" + port}, "bus.listen"},
+		{"mqtt port", EmbeddedConfig{Listen: "127.0.0.1:-1", MQTT: "127.0.0.1:" + port}, "bus.mqtt"},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			c.cfg.StoreDir = t.TempDir()
+			start := time.Now()
+			emb, err := StartEmbedded(c.cfg)
+			if err == nil {
+				emb.Shutdown()
+			}
+			require.Error(t, err)
+			t.Logf("refused after %v: %v", time.Since(start), err)
+			assert.Contains(t, err.Error(), "127.0.0.1:"+port)
+			assert.Contains(t, err.Error(), "in use")
+			assert.Contains(t, err.Error(), c.want)
+		})
+	}
 }

@@ -10,8 +10,11 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
+	"net"
 	"net/http"
+	"strconv"
 	"strings"
+	"sync"
 	"time"
 	"unicode"
 
@@ -39,8 +42,11 @@ type ControlRequest struct {
 	Action string
 	Camera string // a camera id or AllCameras
 	Until  time.Time
-	By     string
-	Token  string // from the body; headers are read by the transports
+	// By is what the caller says about itself. It is logged as a claim
+	// and never recorded as the author: that is the identity the request
+	// authenticated as.
+	By    string
+	Token string // from the body; headers are read by the transports
 }
 
 // controlBody is the JSON body of a request. Every field is optional;
@@ -153,22 +159,49 @@ type ControlConfig struct {
 	// "token" field. Empty refuses every HTTP arm, disarm and clear, and
 	// NATS ones unless TrustNATS.
 	Secret string
+	// TokenName is who a request carrying the token is recorded as (the
+	// override's by, "http:NAME" or "nats:NAME"); default DefaultTokenName.
+	TokenName string
 	// TrustNATS accepts NATS requests without a token, leaving the
-	// decision to the server's user permissions (RoleOperator).
+	// decision to the server's user permissions (RoleOperator). Such a
+	// request is recorded as "nats:" + TrustedNATSName.
 	TrustNATS bool
 	// OnRefused is called for every request refused for want of
 	// authorisation; via is "http" or "nats".
 	OnRefused func(via string)
-	Log       *slog.Logger
-	Now       func() time.Time
+	// Throttle spaces out the attempts of a client whose requests keep
+	// being refused (HTTP by client address, NATS as one client); nil
+	// makes one with the default delays.
+	Throttle *Throttle
+	Log      *slog.Logger
+	Now      func() time.Time
 }
+
+// DefaultTokenName is who a request with the control token is recorded as
+// when no name is configured.
+const DefaultTokenName = "token-holder"
+
+// TrustedNATSName is who a NATS request accepted on trust (TrustNATS,
+// no token) is recorded as: the server vouched for the sender's role, and
+// the subscriber learns nothing more about who sent it.
+const TrustedNATSName = "bus-operator"
 
 // Control answers arm, disarm, clear and status requests over HTTP and
 // NATS request/reply. A refused or malformed request never changes state.
 type Control struct {
-	cfg    ControlConfig
-	secret [32]byte
-	log    *slog.Logger
+	cfg      ControlConfig
+	log      *slog.Logger
+	throttle *Throttle
+	mu       sync.RWMutex
+	auth     controlAuth
+}
+
+// controlAuth is what SetAuth may change while the daemon runs.
+type controlAuth struct {
+	secret    [32]byte
+	enabled   bool
+	name      string
+	trustNATS bool
 }
 
 // NewControl checks cfg and returns a Control.
@@ -186,19 +219,60 @@ func NewControl(cfg ControlConfig) (*Control, error) {
 	if log == nil {
 		log = slog.New(slog.NewTextHandler(io.Discard, nil))
 	}
-	return &Control{cfg: cfg, secret: sha256.Sum256([]byte(cfg.Secret)), log: log}, nil
+	th := cfg.Throttle
+	if th == nil {
+		th = NewThrottle(0, 0, nil)
+	}
+	c := &Control{cfg: cfg, log: log, throttle: th}
+	if err := c.SetAuth(cfg.Secret, cfg.TokenName, cfg.TrustNATS); err != nil {
+		return nil, err
+	}
+	return c, nil
+}
+
+// SetAuth replaces the secret, the token's name and TrustNATS, as a
+// configuration reload does: from its return on, the old token is
+// refused. An empty secret turns token control off.
+func (c *Control) SetAuth(secret, tokenName string, trustNATS bool) error {
+	if tokenName == "" {
+		tokenName = DefaultTokenName
+	}
+	if err := validName(tokenName); err != nil {
+		return fmt.Errorf("control: token name: %v", err)
+	}
+	a := controlAuth{secret: sha256.Sum256([]byte(secret)), enabled: secret != "", name: tokenName, trustNATS: trustNATS}
+	c.mu.Lock()
+	c.auth = a
+	c.mu.Unlock()
+	return nil
+}
+
+// validName accepts what may follow "http:" in an override's author.
+func validName(s string) error {
+	if s == "" || len(s) > 64 || strings.IndexFunc(s, func(r rune) bool { return !unicode.IsPrint(r) || unicode.IsSpace(r) }) >= 0 {
+		return fmt.Errorf("%q: want 1 to 64 printable characters without spaces", s)
+	}
+	return nil
+}
+
+func (c *Control) authState() controlAuth {
+	c.mu.RLock()
+	defer c.mu.RUnlock()
+	return c.auth
 }
 
 // tokenOK compares in constant time; hashing first hides the length too.
-func (c *Control) tokenOK(tok string) bool {
+func (a controlAuth) tokenOK(tok string) bool {
 	h := sha256.Sum256([]byte(tok))
-	return c.cfg.Secret != "" && subtle.ConstantTimeCompare(h[:], c.secret[:]) == 1
+	return a.enabled && subtle.ConstantTimeCompare(h[:], a.secret[:]) == 1
 }
 
-// authorise decides whether req may run; the reason goes to the log and
-// the reply. Status is open: it tells no more than the armed messages
-// every subscriber sees and the stillwater_armed metric.
-func (c *Control) authorise(via string, req ControlRequest, header string) (string, bool) {
+// authorise decides whether req may run and who it runs as (the
+// override's author); the reason for a refusal goes to the log and the
+// reply. Status is open: it tells no more than the armed messages every
+// subscriber sees and the stillwater_armed metric.
+func (c *Control) authorise(via string, req ControlRequest, header string) (who, why string, ok bool) {
+	a := c.authState()
 	tok := req.Token
 	if via == "http" {
 		tok = "" // over HTTP only the header counts: one place to keep secret
@@ -208,32 +282,35 @@ func (c *Control) authorise(via string, req ControlRequest, header string) (stri
 	}
 	switch {
 	case req.Action == ActionStatus:
-		return "", true
-	case via == "nats" && c.cfg.TrustNATS:
-		return "", true
-	case c.cfg.Secret == "":
-		return "control is not enabled: no control secret is configured", false
+		return "", "", true
+	case tok != "" && a.tokenOK(tok):
+		return via + ":" + a.name, "", true
+	case via == "nats" && a.trustNATS:
+		return via + ":" + TrustedNATSName, "", true
+	case !a.enabled:
+		return "", "control is not enabled: no control secret is configured", false
 	case tok == "":
-		return "missing token", false
-	case !c.tokenOK(tok):
-		return "wrong token", false
+		return "", "missing token", false
 	}
-	return "", true
+	return "", "wrong token", false
 }
 
+// needsAuth reports whether action changes state, and so is throttled.
+func needsAuth(action string) bool { return action != ActionStatus }
+
 func (c *Control) refuse(via string, req ControlRequest, why string) {
-	c.log.Warn("control request refused", "via", via, "action", req.Action, "camera", req.Camera, "by", req.By, "reason", why)
+	c.log.Warn("control request refused", "via", via, "action", req.Action, "camera", req.Camera, "claimed_by", req.By, "reason", why)
 	if c.cfg.OnRefused != nil {
 		c.cfg.OnRefused(via)
 	}
 }
 
-// apply runs an authorised request.
-func (c *Control) apply(via string, req ControlRequest, now time.Time) ControlReply {
-	by := via
-	if req.By != "" {
-		by += ":" + req.By
-	}
+// tooMany is the reason given when a throttled client's attempt is
+// refused unjudged.
+const tooMany = "too many refused attempts from this client; wait and try again"
+
+// apply runs an authorised request as by.
+func (c *Control) apply(via, by string, req ControlRequest, now time.Time) ControlReply {
 	var err error
 	switch req.Action {
 	case ActionArm:
@@ -253,7 +330,7 @@ func (c *Control) apply(via string, req ControlRequest, now time.Time) ControlRe
 		return ControlReply{Error: err.Error()}
 	}
 	if req.Action != ActionStatus {
-		c.log.Info("control request applied", "via", via, "action", req.Action, "camera", req.Camera, "by", by)
+		c.log.Info("control request applied", "via", via, "action", req.Action, "camera", req.Camera, "by", by, "claimed_by", req.By)
 	}
 	st := c.cfg.Arming.Status(now)
 	if req.Camera != AllCameras {
@@ -271,7 +348,8 @@ func (c *Control) apply(via string, req ControlRequest, now time.Time) ControlRe
 // Handler serves POST /control/arm, /control/disarm, /control/clear and
 // GET /control/status; mount it at "/control/". Replies are JSON
 // ControlReply: 200, 400 malformed or not possible, 401 missing or wrong
-// token, 403 control not enabled, 404 and 405.
+// token, 403 control not enabled, 404, 405, and 429 when a client whose
+// attempts keep being refused sends more than its throttle lets through.
 func (c *Control) Handler() http.Handler {
 	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
 		action, ok := strings.CutPrefix(r.URL.Path, "/control/")
@@ -299,6 +377,15 @@ func (c *Control) Handler() http.Handler {
 			writeReply(w, http.StatusBadRequest, ControlReply{Error: "read body: " + err.Error()})
 			return
 		}
+		client := clientAddr(r)
+		if needsAuth(action) {
+			if _, ok := c.throttle.Wait(r.Context(), client); !ok {
+				c.refuse("http", ControlRequest{Action: action}, tooMany)
+				w.Header().Set("Retry-After", strconv.Itoa(int(c.throttle.max/time.Second)))
+				writeReply(w, http.StatusTooManyRequests, ControlReply{Error: "refused: " + tooMany})
+				return
+			}
+		}
 		now := c.cfg.Now()
 		req, derr := DecodeControl(action, body, now)
 		if derr != nil {
@@ -306,10 +393,12 @@ func (c *Control) Handler() http.Handler {
 		}
 		// Authorise before reporting decoding errors, so that an
 		// unauthorised caller learns nothing and is counted.
-		if why, ok := c.authorise("http", req, r.Header.Get("Authorization")); !ok {
+		who, why, ok := c.authorise("http", req, r.Header.Get("Authorization"))
+		if !ok {
+			c.throttle.Refused(client)
 			c.refuse("http", req, why)
 			code := http.StatusUnauthorized
-			if c.cfg.Secret == "" {
+			if !c.authState().enabled {
 				code = http.StatusForbidden
 			} else {
 				w.Header().Set("WWW-Authenticate", `Bearer realm="stillwater"`)
@@ -317,17 +406,30 @@ func (c *Control) Handler() http.Handler {
 			writeReply(w, code, ControlReply{Error: "refused: " + why})
 			return
 		}
+		if needsAuth(action) {
+			c.throttle.Accepted(client)
+		}
 		if derr != nil {
 			writeReply(w, http.StatusBadRequest, ControlReply{Error: derr.Error()})
 			return
 		}
-		rep := c.apply("http", req, now)
+		rep := c.apply("http", who, req, now)
 		code := http.StatusOK
 		if !rep.OK {
 			code = http.StatusBadRequest
 		}
 		writeReply(w, code, rep)
 	})
+}
+
+// clientAddr is the throttle's key for an HTTP request: the peer's IP
+// address (behind a reverse proxy, the proxy's).
+func clientAddr(r *http.Request) string {
+	host, _, err := net.SplitHostPort(r.RemoteAddr)
+	if err != nil {
+		return r.RemoteAddr
+	}
+	return host
 }
 
 func writeReply(w http.ResponseWriter, code int, rep ControlReply) {
@@ -339,8 +441,8 @@ func writeReply(w http.ResponseWriter, code int, rep ControlReply) {
 
 // Serve answers requests on PREFIX.control.* until ctx ends.
 func (c *Control) Serve(ctx context.Context, nc *nats.Conn) error {
-	sub, err := nc.Subscribe(ControlSubject(c.cfg.Prefix, "*"), func(m *nats.Msg) {
-		rep := c.handleNATS(m)
+	answer := func(m *nats.Msg) {
+		rep := c.handleNATS(ctx, m)
 		if m.Reply == "" {
 			return
 		}
@@ -348,6 +450,15 @@ func (c *Control) Serve(ctx context.Context, nc *nats.Conn) error {
 		if err := m.Respond(b); err != nil {
 			c.log.Warn("control reply failed", "err", err)
 		}
+	}
+	sub, err := nc.Subscribe(ControlSubject(c.cfg.Prefix, "*"), func(m *nats.Msg) {
+		// A throttled request waits in its own goroutine, so that it
+		// holds up neither status requests nor the subscription.
+		if c.throttle.Pending(natsClient) {
+			go answer(m)
+			return
+		}
+		answer(m)
 	})
 	if err != nil {
 		return fmt.Errorf("control: subscribe %s: %w", ControlSubject(c.cfg.Prefix, "*"), err)
@@ -359,8 +470,18 @@ func (c *Control) Serve(ctx context.Context, nc *nats.Conn) error {
 	return nil
 }
 
-func (c *Control) handleNATS(m *nats.Msg) ControlReply {
+// natsClient is the throttle's key for NATS requests: the subscriber
+// cannot tell one sender from another.
+const natsClient = "nats"
+
+func (c *Control) handleNATS(ctx context.Context, m *nats.Msg) ControlReply {
 	action := m.Subject[strings.LastIndexByte(m.Subject, '.')+1:]
+	if needsAuth(action) {
+		if _, ok := c.throttle.Wait(ctx, natsClient); !ok {
+			c.refuse("nats", ControlRequest{Action: action}, tooMany)
+			return ControlReply{Error: "refused: " + tooMany}
+		}
+	}
 	now := c.cfg.Now()
 	req, derr := DecodeControl(action, m.Data, now)
 	if derr != nil {
@@ -370,12 +491,17 @@ func (c *Control) handleNATS(m *nats.Msg) ControlReply {
 	if m.Header != nil {
 		header = m.Header.Get("Authorization")
 	}
-	if why, ok := c.authorise("nats", req, header); !ok {
+	who, why, ok := c.authorise("nats", req, header)
+	if !ok {
+		c.throttle.Refused(natsClient)
 		c.refuse("nats", req, why)
 		return ControlReply{Error: "refused: " + why}
+	}
+	if needsAuth(action) {
+		c.throttle.Accepted(natsClient)
 	}
 	if derr != nil {
 		return ControlReply{Error: derr.Error()}
 	}
-	return c.apply("nats", req, now)
+	return c.apply("nats", who, req, now)
 }

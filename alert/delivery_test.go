@@ -256,7 +256,7 @@ func TestOutboxOverflowPolicy(t *testing.T) {
 	require.NoError(t, err)
 	defer ob.close()
 	push := func(id string, low bool) error {
-		_, err := ob.push(outboxRecord{ID: id, Subject: "sw.n." + KindTarget, Kind: KindTarget, Low: low, Data: []byte(id)})
+		_, err := ob.push(outboxRecord{ID: id, Subject: "sw.n." + KindTarget, Kind: KindTarget, Low: low, Data: []byte(`{"id":"` + id + `"}`)})
 		return err
 	}
 	require.NoError(t, push("start", false))
@@ -294,7 +294,7 @@ func TestOutboxTornLastLine(t *testing.T) {
 	dir := t.TempDir()
 	ob, err := openOutbox(OutboxConfig{Dir: dir})
 	require.NoError(t, err)
-	_, err = ob.push(outboxRecord{ID: "a", Subject: "sw.n.target", Data: []byte("x")})
+	_, err = ob.push(outboxRecord{ID: "a", Subject: "sw.n.target", Kind: KindTarget, Data: []byte(`{"v":1}`)})
 	require.NoError(t, err)
 	require.NoError(t, ob.close())
 	f, err := os.OpenFile(filepath.Join(dir, "outbox.log"), os.O_APPEND|os.O_WRONLY, 0)
@@ -307,7 +307,9 @@ func TestOutboxTornLastLine(t *testing.T) {
 	defer ob2.close()
 	require.Len(t, ob2.live, 1)
 	assert.Equal(t, "a", ob2.live[0].ID)
-	assert.Zero(t, ob2.corrupt)
+	require.Len(t, ob2.rejected, 1, "the torn line is set aside, not silently dropped")
+	assert.True(t, ob2.rejected[0].Torn)
+	assert.Equal(t, 2, ob2.rejected[0].Line)
 }
 
 func TestHeartbeatDroppedWhileDown(t *testing.T) {
@@ -528,4 +530,10 @@ func TestOversizedMessageIsNotQueued(t *testing.T) {
 	assert.Equal(t, 0, p.Stats().Depth)
 	require.Len(t, results, 1)
 	assert.Error(t, results[0].Err)
+	assert.Equal(t, uint64(1), p.Stats().DeadLettered)
+	dl := readDeadLetters(t, filepath.Join(p.cfg.Outbox.Dir, DeadLetterFile))
+	require.Len(t, dl, 1)
+	assert.Equal(t, "big", dl[0].ID)
+	assert.Len(t, dl[0].PayloadB64, 2048, "a payload that is not JSON is kept in base64")
+	assert.Contains(t, dl[0].Reason, "refused by the server")
 }

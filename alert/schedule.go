@@ -1,6 +1,7 @@
 package alert
 
 import (
+	"errors"
 	"fmt"
 	"sort"
 	"strconv"
@@ -54,6 +55,16 @@ func ParseSchedule(zone string, windows []string) (*Schedule, error) {
 	loc, err := time.LoadLocation(zone)
 	if err != nil {
 		return nil, fmt.Errorf("schedule zone %q: %w; use an IANA name such as \"Europe/Berlin\"", zone, err)
+	}
+	return ParseScheduleIn(loc, windows)
+}
+
+// ParseScheduleIn parses windows in loc, a zone the caller has already
+// resolved (the machine's own zone, for instance, found under its IANA
+// name). Reasons and status show times in loc.
+func ParseScheduleIn(loc *time.Location, windows []string) (*Schedule, error) {
+	if loc == nil {
+		return nil, errors.New("schedule zone: none given")
 	}
 	if len(windows) == 0 {
 		return nil, fmt.Errorf("schedule: no windows; add at least one, e.g. %s", scheduleExample)

@@ -32,6 +32,14 @@ int sw_cap_retrieve(SwCapture c, void* dst, char* err, int errlen);
 double sw_cap_get(SwCapture c, int prop);
 void sw_cap_close(SwCapture c);
 
+// sw_log_forward sends FFmpeg's own log lines (those FFmpeg's level lets
+// through; OpenCV sets it to errors) to fd, one per line as "LEVEL text\n",
+// instead of stderr. fd should be non-blocking: a line the pipe cannot
+// take at once is dropped. fd < 0 puts FFmpeg's default logger back.
+// Returns 0, or -1 when libavutil's log functions are not in the process
+// (found at run time, so the build needs no FFmpeg headers).
+int sw_log_forward(int fd);
+
 #ifdef __cplusplus
 }
 #endif

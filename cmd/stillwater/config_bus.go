@@ -1,6 +1,7 @@
 package main
 
 import (
+	"bytes"
 	"context"
 	"errors"
 	"fmt"
@@ -9,6 +10,7 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
+	"syscall"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -374,6 +376,9 @@ type ControlConfig struct {
 	Secret     string `yaml:"secret"`
 	SecretEnv  string `yaml:"secret_env"`
 	SecretFile string `yaml:"secret_file"`
+	// TokenName is who a request carrying the secret is recorded as in
+	// the override's by ("http:NAME"); default token-holder.
+	TokenName string `yaml:"token_name"`
 	// TrustNATS accepts NATS control requests without the token, relying
 	// on the bus users' roles (operator). Needs bus.users or an external
 	// server with its own permissions.
@@ -413,6 +418,8 @@ type busHooks struct {
 // busParts is the bus side of the daemon, opened by openBus. Run drives
 // it; Close releases it after Run has returned.
 type busParts struct {
+	dirLock  *os.File // the data directory's lock, held until Close
+	cfg      BusConfig
 	Embedded *alert.Embedded // nil with an external server
 	URL      string          // redacted
 	Conn     *nats.Conn
@@ -431,12 +438,17 @@ type busParts struct {
 // armed. The caller sets ac's cameras and schedules.
 func openBus(ctx context.Context, cfg Config, ac alert.ArmingConfig, now func() time.Time, log *slog.Logger, h busHooks) (_ *busParts, err error) {
 	getenv := os.Getenv
-	b := &busParts{now: now, log: log}
+	b := &busParts{now: now, log: log, cfg: cfg.Bus}
 	defer func() {
 		if err != nil {
 			b.Close()
 		}
 	}()
+	// Before the JetStream store, the outbox or the arming state is
+	// opened: a second daemon on the same directory stops here.
+	if b.dirLock, err = lockDataDir(cfg.DataDir); err != nil {
+		return nil, err
+	}
 	busURL := cfg.Bus.serverURLs()
 	if cfg.Bus.embedded() {
 		ec, warn, err := cfg.Bus.embeddedConfig(cfg.DataDir, getenv)
@@ -459,12 +471,14 @@ func openBus(ctx context.Context, cfg Config, ac alert.ArmingConfig, now func() 
 	opts = append(opts, nats.Name("stillwater"), nats.MaxReconnects(-1), nats.ReconnectWait(500*time.Millisecond),
 		nats.RetryOnFailedConnect(true),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) { log.Warn("bus disconnected", "err", err) }),
+		nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) { log.Warn("bus error", "err", err) }),
 		nats.ReconnectHandler(func(nc *nats.Conn) { log.Info("bus reconnected", "url", nc.ConnectedUrlRedacted()) }))
 	if b.Conn, err = nats.Connect(busURL, opts...); err != nil {
 		return nil, fmt.Errorf("connect bus %s: %w", b.URL, err)
 	}
 	pc := cfg.Bus.publisherConfig(cfg.DataDir)
 	pc.OnResult, pc.OnBacklog, pc.Log = h.OnResult, h.OnBacklog, log
+	pc.OnStream = b.logStream
 	if b.Pub, err = alert.NewPublisherWith(ctx, b.Conn, pc); err != nil {
 		return nil, err
 	}
@@ -484,7 +498,7 @@ func openBus(ctx context.Context, cfg Config, ac alert.ArmingConfig, now func() 
 	if secret == "" && !cfg.Control.TrustNATS {
 		log.Warn("no control secret configured: arm, disarm and clear requests are refused; set control.secret_env or control.secret_file")
 	}
-	b.Control, err = alert.NewControl(alert.ControlConfig{Prefix: cfg.Bus.Prefix, Arming: b.Arming, Secret: secret,
+	b.Control, err = alert.NewControl(alert.ControlConfig{Prefix: cfg.Bus.Prefix, Arming: b.Arming, Secret: secret, TokenName: cfg.Control.TokenName,
 		TrustNATS: cfg.Control.TrustNATS, OnRefused: h.OnRefused, Log: log, Now: now})
 	if err != nil {
 		return nil, err
@@ -516,9 +530,15 @@ func (b *busParts) Run(ctx context.Context) error {
 	return g.Wait()
 }
 
-// Close releases the outbox, the connection and the embedded server, in
-// that order. Safe on a partly opened busParts.
+// Close releases the outbox, the connection, the embedded server and the
+// data directory, in that order. Safe on a partly opened busParts.
 func (b *busParts) Close() {
+	defer func() {
+		if b.dirLock != nil {
+			b.dirLock.Close()
+			b.dirLock = nil
+		}
+	}()
 	if b.Pub != nil {
 		if err := b.Pub.Close(); err != nil {
 			b.log.Error("close outbox", "err", err)
@@ -530,4 +550,100 @@ func (b *busParts) Close() {
 	if b.Embedded != nil {
 		b.Embedded.Shutdown()
 	}
+}
+
+// busStallAfter is how old the oldest queued message may be before the
+// daemon reports itself not ready: longer than a server restart or a
+// cluster's leader election takes, far shorter than the 20 s from entry
+// to alarm that ASTM F2208 allows twice over.
+const busStallAfter = 30 * time.Second
+
+// problems lists why the bus side is not ready, beyond the connection
+// itself (which readiness reports): a stream that cannot be created or
+// used, and a queue whose oldest message is older than busStallAfter.
+// Empty means ready.
+func (b *busParts) problems(now time.Time) []string {
+	var out []string
+	if err := b.Pub.StreamFault(); err != nil {
+		out = append(out, fmt.Sprintf("bus: %v; %s", err, b.streamAdvice(err)))
+	}
+	if age, stalled := b.stalled(now); stalled {
+		out = append(out, fmt.Sprintf("bus: oldest queued message is %.0f s old, over the %.0f s bound; %d messages wait in the outbox",
+			age.Seconds(), busStallAfter.Seconds(), b.Pub.Stats().Depth))
+	}
+	return out
+}
+
+// stalled returns the age of the oldest queued message and whether it is
+// over busStallAfter.
+func (b *busParts) stalled(now time.Time) (time.Duration, bool) {
+	oldest := b.Pub.Stats().Oldest
+	if oldest.IsZero() {
+		return 0, false
+	}
+	age := now.Sub(oldest)
+	return age, age > busStallAfter
+}
+
+// streamAdvice says which setting or server object to change for a stream
+// fault.
+func (b *busParts) streamAdvice(err error) string {
+	var c *alert.StreamConflictError
+	if !errors.As(err, &c) {
+		return "check that the server has JetStream enabled with room for the stream (bus.stream.max_bytes, bus.stream.replicas) and that stillwater's bus user may use $JS.API"
+	}
+	if c.Earlier != "" {
+		return fmt.Sprintf("set bus.stream.name: %s to use the stream an earlier run made with these subjects, or remove stream %s from the server (its stored messages go with it)",
+			c.Earlier, c.Earlier)
+	}
+	held := "other streams"
+	if len(c.Owners) > 0 {
+		held = "stream " + strings.Join(c.Owners, ", ")
+	}
+	return fmt.Sprintf("choose another bus.subject_prefix, or remove or narrow %s on the server so that %s.* is free", held, b.cfg.Prefix)
+}
+
+// logStream is the publisher's OnStream: a stream fault is an ERROR that
+// says what to change; its end is logged too.
+func (b *busParts) logStream(err error) {
+	name := b.cfg.Stream.Name
+	if name == "" {
+		name = "STILLWATER"
+	}
+	if err == nil {
+		b.log.Info("bus stream ready", "stream", name)
+		return
+	}
+	attrs := []any{"stream", name}
+	var c *alert.StreamConflictError
+	if errors.As(err, &c) {
+		attrs = append(attrs, "subjects", strings.Join(c.Subjects, " "), "held_by", strings.Join(c.Owners, " "))
+	}
+	attrs = append(attrs, "fix", b.streamAdvice(err), "err", err)
+	b.log.Error("bus stream cannot be created; messages are stored only if another stream takes their subjects, else they wait in the outbox", attrs...)
+}
+
+// lockDataDir takes the data directory's lock file, stillwater.lock, with
+// this process's id in it. It fails when another process holds it.
+func lockDataDir(dir string) (*os.File, error) {
+	if err := os.MkdirAll(dir, 0o750); err != nil {
+		return nil, fmt.Errorf("data_dir %s: %w", dir, err)
+	}
+	path := filepath.Join(dir, "stillwater.lock")
+	f, err := os.OpenFile(path, os.O_CREATE|os.O_RDWR, 0o640)
+	if err != nil {
+		return nil, fmt.Errorf("data_dir %s: lock: %w", dir, err)
+	}
+	if err := syscall.Flock(int(f.Fd()), syscall.LOCK_EX|syscall.LOCK_NB); err != nil {
+		holder := ""
+		if b, rerr := os.ReadFile(path); rerr == nil && len(bytes.TrimSpace(b)) > 0 {
+			holder = " by process " + string(bytes.TrimSpace(b))
+		}
+		f.Close()
+		return nil, fmt.Errorf("data_dir %s: another stillwater uses it (%s is locked%s: %v); give each daemon its own data_dir", dir, path, holder, err)
+	}
+	if err := f.Truncate(0); err == nil {
+		fmt.Fprintf(f, "%d\n", os.Getpid())
+	}
+	return f, nil
 }

@@ -158,7 +158,8 @@ func TestOpenBusEndToEnd(t *testing.T) {
 	cfg.Bus = BusConfig{Listen: "127.0.0.1:-1", Prefix: "sw", Users: []BusUserConfig{
 		{Name: "stillwater", Role: alert.RoleDaemon, PasswordEnv: "SW_TEST_DAEMON_PW"},
 		{Name: "pager", Role: alert.RoleResponder, Password: "pager-pw"}}}
-	cfg.Control = ControlConfig{SecretEnv: "SW_TEST_CONTROL"}
+	// The override's author is the name bound to the token, not the body's by.
+	cfg.Control = ControlConfig{SecretEnv: "SW_TEST_CONTROL", TokenName: "test"}
 	require.NoError(t, validateBus(cfg.Bus))
 	require.NoError(t, validateControl(cfg.Control, cfg.Bus))
 	refused := make(chan string, 4)
@@ -190,7 +191,7 @@ func TestOpenBusEndToEnd(t *testing.T) {
 	res.Body.Close()
 	assert.Equal(t, http.StatusUnauthorized, res.StatusCode)
 	assert.Equal(t, "http", <-refused)
-	req, err = http.NewRequest("POST", srv.URL+"/control/disarm", strings.NewReader(`{"for":"1h","by":"test"}`))
+	req, err = http.NewRequest("POST", srv.URL+"/control/disarm", strings.NewReader(`{"for":"1h","by":"someone-else"}`))
 	require.NoError(t, err)
 	req.Header.Set("Authorization", "Bearer ctl-token")
 	res, err = http.DefaultClient.Do(req)

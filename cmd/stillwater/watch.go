@@ -8,6 +8,7 @@ import (
 	"io"
 	"log/slog"
 	"math/rand/v2"
+	"os"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -38,8 +39,13 @@ type cameraWatch struct {
 	faults    faultBoard
 
 	reload   chan CameraConfig // new calibration, zones, detection for this camera
+	gate     vision.OpenGate   // one open of the source at a time; a hung one is abandoned
 	evidence evidenceSettings
-	snapReq  chan chan snapshot // HTTP asks the capture goroutine for a frame
+	// pendingEvidence is planned by the pipeline while it makes a target
+	// start, and handed to the evidence writer once the frame's messages
+	// are published (capture goroutine only).
+	pendingEvidence []evidenceJob
+	snapReq         chan chan snapshot // HTTP asks the capture goroutine for a frame
 }
 
 func newCameraWatch(cam CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *cameraMetrics, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
@@ -93,13 +99,17 @@ func (w *cameraWatch) watchdog(ctx context.Context) {
 		}
 		now := w.now()
 		since := now.Sub(time.Unix(0, w.lastFrame.Load()))
-		up := since <= w.frameTimeout()
+		// Within the frame timeout of the start a camera that has not
+		// delivered yet is not lost, but it is not up either: up needs a
+		// frame.
+		recent := since <= w.frameTimeout()
+		up := recent && w.nframes.Load() > 0
 		w.met.cameraUp(up)
 		armed := w.armed(now)
 		w.met.armedState(armed)
 		switch {
-		case !up && armed:
-			w.raise(ctx, alert.FaultCameraLost, true, fmt.Sprintf("no frame from %s for %.1f s", vision.Redact(w.cam.Source), since.Seconds()))
+		case !recent && armed:
+			w.raise(ctx, alert.FaultCameraLost, true, w.lostDetail(since))
 		case up:
 			w.raise(ctx, alert.FaultCameraLost, false, "frames arrive again")
 		}
@@ -110,6 +120,19 @@ func (w *cameraWatch) watchdog(ctx context.Context) {
 			lastBeat, beatFrames = now, n
 		}
 	}
+}
+
+// lostDetail says why no frame came: for how long, and whether an open
+// of the source is blocked in the backend.
+func (w *cameraWatch) lostDetail(since time.Duration) string {
+	msg := fmt.Sprintf("no frame from %s for %.1f s", vision.Redact(w.cam.Source), since.Seconds())
+	if w.nframes.Load() == 0 {
+		msg = fmt.Sprintf("no frame from %s since the start (%.1f s)", vision.Redact(w.cam.Source), since.Seconds())
+	}
+	if stuck, at := w.gate.Stuck(); stuck {
+		msg += fmt.Sprintf("; an open has been blocked in the video backend for %.0f s", time.Since(at).Seconds())
+	}
+	return msg
 }
 
 // raise publishes a fault when its state changes; repeated calls with the
@@ -247,7 +270,10 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 		return nil, fmt.Errorf("camera %s: %w", w.cam.ID, err)
 	}
 	if w.evidence.on {
-		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll}); err != nil {
+		if err := os.MkdirAll(w.evidence.dir, 0o750); err != nil {
+			w.log.Error("evidence directory", "err", err)
+		}
+		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll, OnWritten: w.evidenceWritten}); err != nil {
 			vc.Close()
 			return nil, fmt.Errorf("camera %s: evidence: %w", w.cam.ID, err)
 		}
@@ -279,8 +305,8 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 	live := strings.Contains(w.cam.Source, "://")
 	paceStart := time.Now()
 	proc := st.proc
-	proc.evidence = func(r vision.Result, o alert.Observation) string { return w.saveEvidence(vc, proc, r, o) }
-	defer func() { proc.evidence = nil }()
+	proc.evidence = w.planEvidence
+	defer func() { proc.evidence = nil; w.pendingEvidence = w.pendingEvidence[:0] }()
 	for {
 		if ctx.Err() != nil {
 			return nil
@@ -330,6 +356,8 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			for _, m := range msgs {
 				w.send(ctx, m)
 			}
+			// Published first, then the evidence is queued.
+			w.keepEvidence(vc, proc)
 			if st.drift.due(r.Media) {
 				w.checkDrift(ctx, st.drift.check(r.Media, vc))
 			}
@@ -413,7 +441,7 @@ func (w *cameraWatch) checkDrift(ctx context.Context, st driftStatus) {
 
 func (w *cameraWatch) sourceConfig() vision.SourceConfig {
 	rt := w.frameTimeout()
-	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop}
+	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop, Gate: &w.gate}
 }
 
 // sleep waits d or until ctx ends; it reports whether ctx is still live.
