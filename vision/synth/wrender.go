@@ -10,7 +10,7 @@ import (
 
 // RendererVersion names what the family renderer draws; Cached keys its
 // files on it, so change it whenever the output of a scene changes.
-const RendererVersion = "family/1"
+const RendererVersion = "family/2"
 
 // Pixel classes of the family renderer.
 const (
