@@ -301,7 +301,8 @@ func TestWHOBodyAndFootprint(t *testing.T) {
 		assert.InDelta(t, tc.heightM, b.HeightM, 1e-9, "%g months", tc.months)
 		assert.InDelta(t, tc.hcM/math.Pi, b.HeadM, 1e-9, "%g months", tc.months)
 	}
-	s := FamilyScene(2, Intruder)
+	s := small(FamilyScene(2, Intruder), 160, 90)
+	r := newWRenderer(s) // only its pool and its scratch are used
 	for _, tc := range []struct {
 		name   string
 		lying  bool
@@ -321,20 +322,19 @@ func TestWHOBodyAndFootprint(t *testing.T) {
 		{"lying 48 months, arms out", true, 48, 1, 0.09, 0.26},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
-			sc := s
 			look := ChildLook{Scale: 1, Spread: tc.spread}
 			// Still in the middle of the pool from the start.
-			sc.Intruders = []Child{{Path: []Waypoint{{T: 0, X: sc.PoolLength / 2, Y: sc.PoolWidth / 2}}, AgeMonths: tc.months, Lying: tc.lying, Contrast: 1, Look: &look}}
-			r := newWRenderer(sc)
+			c := Child{Path: []Waypoint{{T: 0, X: s.PoolLength / 2, Y: s.PoolWidth / 2}}, AgeMonths: tc.months, Lying: tc.lying, Contrast: 1, Look: &look}
+			r.objs.prims, r.objs.objs = r.objs.prims[:0], r.objs.objs[:0]
 			r.t = 5
-			cs := r.addChild(sc.Intruders[0], 0, 5)
+			cs := r.addChild(c, 0, 5)
 			require.True(t, cs.inWater)
 			occ := r.occupation(cs)
 			refdata.Report(t, "%s: top-down area %.3f m²", tc.name, occ.Area)
 			assert.GreaterOrEqual(t, occ.Area, tc.lo)
 			assert.LessOrEqual(t, occ.Area, tc.hi)
-			assert.InDelta(t, sc.PoolLength/2, occ.X, 0.25)
-			assert.InDelta(t, sc.PoolWidth/2, occ.Y, 0.25)
+			assert.InDelta(t, s.PoolLength/2, occ.X, 0.25)
+			assert.InDelta(t, s.PoolWidth/2, occ.Y, 0.25)
 		})
 	}
 }
@@ -366,6 +366,9 @@ func TestLabelledChildOnDrawnChild(t *testing.T) {
 		t.Run(fmt.Sprintf("seed %d %s", seed, p.name), func(t *testing.T) {
 			s := FamilyScene(seed, Intruder)
 			require.Equal(t, tc.night, s.World.Light.Night)
+			if testing.Short() {
+				s = small(s, 480, 270)
+			}
 			s.World.Walkers, s.World.Birds, s.World.Leaves = nil, nil, nil
 			c := s.Intruders[0]
 			c.Lying, c.Depth, c.Contrast, c.SinkDur = p.lying, p.depth, p.con, 0
