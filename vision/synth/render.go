@@ -34,6 +34,12 @@ type FrameTruth struct {
 	Frame    int         `json:"frame"`
 	T        float64     `json:"t_s"`
 	Intruder *Occupation `json:"intruder"`
+	// Outside is a family child who is in the picture but not in the
+	// water (walking to the edge); nil otherwise.
+	Outside *Occupation `json:"outside,omitempty"`
+	// Fault is the camera fault of this frame (black, frozen, noise), if
+	// any.
+	Fault string `json:"fault,omitempty"`
 }
 
 // Occupation is where an intruder is: the centre of its visible outline in
@@ -70,6 +76,20 @@ type Truth struct {
 	Camera   *Pose        `json:"camera,omitempty"`
 	Presence []Presence   `json:"presence"`
 	PerFrame []FrameTruth `json:"per_frame,omitempty"`
+
+	// Family scenes add what an installer knows beyond the corners (the
+	// chessboard lens, the pool's depth and the deck's height above the
+	// water) and the scene's faults and events. Corner pixels are on the
+	// raw (distorted) frame.
+	Seed       int64         `json:"seed,omitempty"`
+	Variant    string        `json:"variant,omitempty"`
+	Renderer   string        `json:"renderer,omitempty"`
+	Lens       *Lens         `json:"lens,omitempty"`
+	Depth      *DepthProfile `json:"depth,omitempty"`
+	DeckHeight float64       `json:"deck_height_m,omitempty"`
+	Night      bool          `json:"night,omitempty"`
+	Faults     []Fault       `json:"faults,omitempty"`
+	Events     []Event       `json:"events,omitempty"`
 }
 
 // PoolSize is the rectangle the pool frame is built on, metres.
@@ -105,16 +125,50 @@ func ReadTruth(path string) (Truth, error) {
 	return t, nil
 }
 
-// Render draws the scene into videoPath (an AVI container) and writes the
-// labels as JSON to truthPath. It returns the labels.
+// Render draws the scene into videoPath and writes the labels as JSON to
+// truthPath (none when empty). It returns the labels. Named scenes are
+// written with OpenCV's video writer (an AVI container); family scenes
+// through ffmpeg in the container VideoExt names.
 func Render(ctx context.Context, s Scene, videoPath, truthPath string) (Truth, error) {
 	if err := s.Validate(); err != nil {
 		return Truth{}, fmt.Errorf("render: %w", err)
 	}
-	n := s.frameCount()
-	if n == 0 {
+	if s.frameCount() == 0 {
 		return Truth{}, errNoFrames
 	}
+	var truth Truth
+	var err error
+	if s.World != nil {
+		truth, err = renderWorld(ctx, s, videoPath)
+	} else {
+		truth, err = renderTop(ctx, s, videoPath)
+	}
+	if err != nil {
+		return Truth{}, err
+	}
+	if truthPath != "" {
+		if err := writeTruth(truthPath, truth); err != nil {
+			return Truth{}, err
+		}
+	}
+	return truth, nil
+}
+
+// writeTruth writes labels as indented JSON.
+func writeTruth(path string, t Truth) error {
+	b, err := json.MarshalIndent(t, "", " ")
+	if err != nil {
+		return fmt.Errorf("write labels %s: %w", path, err)
+	}
+	if err := os.WriteFile(path, append(b, '\n'), 0o644); err != nil {
+		return fmt.Errorf("write labels: %w", err)
+	}
+	return nil
+}
+
+// renderTop draws a named scene with the top-down renderer.
+func renderTop(ctx context.Context, s Scene, videoPath string) (Truth, error) {
+	n := s.frameCount()
 	codec := s.Codec
 	if codec == "" {
 		codec = "MJPG"
@@ -142,15 +196,6 @@ func Render(ctx context.Context, s Scene, videoPath, truthPath string) (Truth, e
 		}
 	}
 	truth.Presence = presenceFrom(truth.PerFrame, s.FPS)
-	if truthPath != "" {
-		b, err := json.MarshalIndent(truth, "", " ")
-		if err != nil {
-			return Truth{}, err
-		}
-		if err := os.WriteFile(truthPath, append(b, '\n'), 0o644); err != nil {
-			return Truth{}, fmt.Errorf("render: write labels: %w", err)
-		}
-	}
 	return truth, nil
 }
 
@@ -191,6 +236,13 @@ type renderer struct {
 	leaves []leaf
 	stamp  []uint32 // per top-down pixel: last intruder generation that covered it
 	gen    uint32
+
+	// Water tables: the waves, their sin and cos along u (fixed) and
+	// along v (refilled each frame), and the plane-to-camera transforms.
+	wv     []wave
+	su, sv [][2][]float32
+	xforms []gocv.Mat
+	gray   gocv.Mat
 }
 
 type glint struct {
@@ -212,6 +264,17 @@ func newRenderer(s Scene) *renderer {
 	r.buf = make([]byte, 3*n)
 	r.stamp = make([]uint32, n)
 	r.drawBase()
+	r.wv = r.waves()
+	for _, w := range r.wv {
+		su := [2][]float32{make([]float32, r.top.X), make([]float32, r.top.X)}
+		for u := 0; u < r.top.X; u++ {
+			su[0][u] = float32(math.Sin(w.kx * float64(u)))
+			su[1][u] = float32(math.Cos(w.kx * float64(u)))
+		}
+		r.su = append(r.su, su)
+		r.sv = append(r.sv, [2][]float32{make([]float32, r.top.Y), make([]float32, r.top.Y)})
+	}
+	r.gray = gocv.NewMat()
 	r.topM = gocv.NewMatWithSize(r.top.Y, r.top.X, gocv.MatTypeCV8UC3)
 	r.cam = gocv.NewMat()
 	r.warp = gocv.NewMat()
@@ -220,6 +283,9 @@ func newRenderer(s Scene) *renderer {
 		p := s.Camera
 		p.YawDeg += s.PanDeg
 		r.cams = append(r.cams, newCamera(p, s.Width, s.Height))
+	}
+	for _, c := range r.cams {
+		r.xforms = append(r.xforms, r.planeXform(c))
 	}
 	r.noise = make([]float32, 1<<20)
 	for i := range r.noise {
@@ -240,6 +306,10 @@ func (r *renderer) Close() {
 	r.topM.Close()
 	r.cam.Close()
 	r.warp.Close()
+	r.gray.Close()
+	for _, m := range r.xforms {
+		m.Close()
+	}
 }
 
 func (r *renderer) toTop(x, y float64) (float64, float64) {
@@ -326,9 +396,9 @@ func (r *renderer) frame(i int) FrameTruth {
 		ft.Intruder = occ
 	}
 
-	cam := r.cams[0]
+	cam := 0
 	if len(r.cams) > 1 && t >= s.PanAt {
-		cam = r.cams[1]
+		cam = 1
 	}
 	r.toCamera(cam, light)
 	return ft
@@ -351,18 +421,13 @@ func cloudProfile(t float64, c Cloud) float64 {
 func smooth(a float64) float64 { return a * a * (3 - 2*a) }
 
 func (r *renderer) paintWater(t, light float64) {
-	ws := r.waves()
+	ws := r.wv
 	W, H := r.top.X, r.top.Y
-	// sin(kx·u + ky·v − ωt) = sin(kx·u)cos(ky·v − ωt) + cos(kx·u)sin(ky·v − ωt)
-	su := make([][2][]float32, len(ws))
-	sv := make([][2][]float32, len(ws))
+	// sin(kx·u + ky·v − ωt) = sin(kx·u)cos(ky·v − ωt) + cos(kx·u)sin(ky·v − ωt):
+	// the u factors are the renderer's tables, the v factors are refilled
+	// for t.
+	su, sv := r.su, r.sv
 	for k, w := range ws {
-		su[k] = [2][]float32{make([]float32, W), make([]float32, W)}
-		sv[k] = [2][]float32{make([]float32, H), make([]float32, H)}
-		for u := 0; u < W; u++ {
-			su[k][0][u] = float32(math.Sin(w.kx * float64(u)))
-			su[k][1][u] = float32(math.Cos(w.kx * float64(u)))
-		}
 		for v := 0; v < H; v++ {
 			a := w.ky*float64(v) - w.w*t
 			sv[k][0][v] = float32(math.Cos(a))
@@ -566,7 +631,7 @@ func (r *renderer) paintIntruders(t, light float64) *Occupation {
 	return out
 }
 
-func (r *renderer) heading(in Intruder, t float64) float64 {
+func (r *renderer) heading(in Child, t float64) float64 {
 	x0, y0, _ := in.position(t - 0.5)
 	x1, y1, _ := in.position(t + 0.5)
 	if math.Hypot(x1-x0, y1-y0) < 1e-3 {
@@ -612,13 +677,12 @@ func (r *renderer) paintWalker(t, light float64) {
 	r.forDisc(u, v, 0.1*r.s.PPM, func(i int, _ float64) { r.blend(i, [3]float32{30, 35, 40}, 1, light) })
 }
 
-// toCamera warps the top-down frame into the camera view, paints the sky
-// above the horizon and adds sensor noise.
-func (r *renderer) toCamera(c camera, light float64) {
+// planeXform returns the transform from top-down pixels to camera pixels:
+// top-down px → pool metres → image, M = P · S⁻¹ with S = scale+shift.
+// The caller closes it.
+func (r *renderer) planeXform(c camera) gocv.Mat {
 	s := r.s
-	copy(mustBytes(r.topM), r.buf)
 	p := c.planeToImage()
-	// Top-down px → pool metres → image: M = P · S⁻¹ with S = scale+shift.
 	m := s.margin()
 	inv := [9]float64{1 / s.PPM, 0, -m, 0, 1 / s.PPM, -m, 0, 0, 1}
 	var M [9]float64
@@ -630,10 +694,19 @@ func (r *renderer) toCamera(c camera, light float64) {
 		}
 	}
 	mat := gocv.NewMatWithSize(3, 3, gocv.MatTypeCV64F)
-	defer mat.Close()
 	for i := 0; i < 9; i++ {
 		mat.SetDoubleAt(i/3, i%3, M[i])
 	}
+	return mat
+}
+
+// toCamera warps the top-down frame into the view of camera k, paints the
+// sky above the horizon and adds sensor noise.
+func (r *renderer) toCamera(k int, light float64) {
+	s := r.s
+	c := r.cams[k]
+	mat := r.xforms[k]
+	copy(mustBytes(r.topM), r.buf)
 	g := float64(clamp(float32(150 * light)))
 	gocv.WarpPerspectiveWithParams(r.topM, &r.warp, mat, image.Pt(s.Width, s.Height), gocv.InterpolationLinear, gocv.BorderConstant, color.RGBA{uint8(g - 10), uint8(g), uint8(g + 10), 0})
 	if hz := c.horizonRow(s.Camera); hz > 0 {
@@ -641,10 +714,8 @@ func (r *renderer) toCamera(c camera, light float64) {
 		gocv.Rectangle(&r.warp, image.Rect(0, 0, s.Width, hz), color.RGBA{uint8(sky * 0.8), uint8(sky * 0.9), uint8(sky), 0}, -1)
 	}
 	if s.Night {
-		gray := gocv.NewMat()
-		gocv.CvtColor(r.warp, &gray, gocv.ColorBGRToGray)
-		gocv.CvtColor(gray, &r.warp, gocv.ColorGrayToBGR)
-		gray.Close()
+		gocv.CvtColor(r.warp, &r.gray, gocv.ColorBGRToGray)
+		gocv.CvtColor(r.gray, &r.warp, gocv.ColorGrayToBGR)
 	}
 	r.warp.CopyTo(&r.cam)
 	sigma := s.Noise
