@@ -123,3 +123,29 @@ func TestAlarmClearedInTrackOrder(t *testing.T) {
 		require.Equal(t, want, got, "run %d", run)
 	}
 }
+
+func TestControlSubjects(t *testing.T) {
+	assert.Equal(t, "sw.control.disarm", ControlSubject("sw", ActionDisarm))
+	assert.Equal(t, "sw.control.alice.disarm", UserControlSubject("sw", "alice", ActionDisarm))
+	assert.Equal(t, []string{"sw.control.*", "sw.control.*.*"}, ControlSubjects("sw"))
+	cases := []struct {
+		subject, user, action string
+		ok                    bool
+	}{
+		{"sw.control.arm", "", "arm", true},
+		{"sw.control.alice.arm", "alice", "arm", true},
+		{"sw.control.alice.arm.now", "", "", false},
+		{"sw.control.", "", "", false},
+		{"sw.north.target", "", "", false},
+		{"other.control.arm", "", "", false},
+	}
+	for _, c := range cases {
+		user, action, ok := ParseControlSubject("sw", c.subject)
+		assert.Equal(t, c.ok, ok, c.subject)
+		assert.Equal(t, c.user, user, c.subject)
+		assert.Equal(t, c.action, action, c.subject)
+	}
+	assert.Error(t, ReservedCamera("control"))
+	assert.Error(t, ReservedCamera(AllCameras))
+	assert.NoError(t, ReservedCamera("north"))
+}

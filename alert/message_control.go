@@ -14,9 +14,6 @@ const (
 	ActionStatus = "status"
 )
 
-// Actions lists every control action.
-func Actions() []string { return []string{ActionArm, ActionDisarm, ActionClear, ActionStatus} }
-
 // AllCameras addresses every camera in control requests.
 const AllCameras = "all"
 
