@@ -12,7 +12,7 @@ import (
 	"sync"
 	"time"
 
-	"stillwater/alert"
+	"stillwater/alert/arming"
 )
 
 // access is who may do what over HTTP and NATS, secrets resolved: the
@@ -62,13 +62,13 @@ func loopbackListen(addr string) bool {
 // refused is slowed like a control client.
 type pictureGate struct {
 	open     bool
-	throttle *alert.Throttle
+	throttle *arming.Throttle
 	mu       sync.RWMutex
 	tokens   [][32]byte
 }
 
 func newPictureGate(listen string) *pictureGate {
-	return &pictureGate{open: loopbackListen(listen), throttle: alert.NewThrottle(0, 0, nil)}
+	return &pictureGate{open: loopbackListen(listen), throttle: arming.NewThrottle(0, 0, nil)}
 }
 
 // set swaps the accepted tokens, as a reload does.
@@ -117,7 +117,7 @@ func (g *pictureGate) wrap(h http.Handler) http.Handler {
 			client = host
 		}
 		if _, ok := g.throttle.Wait(r.Context(), client); !ok {
-			w.Header().Set("Retry-After", strconv.Itoa(int(alert.DefaultRefusalMax/time.Second)))
+			w.Header().Set("Retry-After", strconv.Itoa(int(arming.DefaultRefusalMax/time.Second)))
 			pictureRefusal(w, http.StatusTooManyRequests, "too many refused attempts from this client; wait and try again")
 			return
 		}

@@ -22,6 +22,8 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/alert/arming"
+	"stillwater/alert/bus"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
@@ -41,7 +43,7 @@ func busOnlyConfig(t *testing.T) Config {
 
 func openTestBus(t *testing.T, cfg Config, log *slog.Logger, h busHooks) *busParts {
 	t.Helper()
-	b, err := openBus(context.Background(), cfg, alert.ArmingConfig{Cameras: []string{"north"}}, time.Now, log, h)
+	b, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, log, h)
 	require.NoError(t, err)
 	return b
 }
@@ -141,7 +143,7 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 			}}
 		}},
 		{"external server with another stream on the subjects", func(t *testing.T) setup {
-			emb, err := alert.StartEmbedded(alert.EmbeddedConfig{Listen: "127.0.0.1:-1", StoreDir: t.TempDir(), Name: "external"})
+			emb, err := bus.StartEmbedded(bus.EmbeddedConfig{Listen: "127.0.0.1:-1", StoreDir: t.TempDir(), Name: "external"})
 			require.NoError(t, err)
 			t.Cleanup(emb.Shutdown)
 			nc, err := nats.Connect(emb.URL())
@@ -239,7 +241,7 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	v, _ := metricValue(t, reg, "stillwater_outbox_oldest_age_seconds", nil)
 	assert.Greater(t, v, 0.0)
 
-	emb, err := alert.StartEmbedded(alert.EmbeddedConfig{Listen: "127.0.0.1:" + strconv.Itoa(port), StoreDir: t.TempDir(), Name: "late"})
+	emb, err := bus.StartEmbedded(bus.EmbeddedConfig{Listen: "127.0.0.1:" + strconv.Itoa(port), StoreDir: t.TempDir(), Name: "late"})
 	require.NoError(t, err)
 	defer emb.Shutdown()
 	require.Eventually(t, func() bool { return b.Pub.Stats().Depth == 0 }, 20*time.Second, 20*time.Millisecond)
@@ -258,7 +260,7 @@ func TestSecondDaemonStopsAtTheDataDirectory(t *testing.T) {
 	first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), busHooks{})
 	defer first.Close()
 	var logs syncBuffer
-	_, err := openBus(context.Background(), cfg, alert.ArmingConfig{Cameras: []string{"north"}}, time.Now, slog.New(slog.NewTextHandler(&logs, nil)), busHooks{})
+	_, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, slog.New(slog.NewTextHandler(&logs, nil)), busHooks{})
 	require.Error(t, err)
 	assert.Contains(t, err.Error(), "data_dir "+cfg.DataDir)
 	assert.Contains(t, err.Error(), "another stillwater")
@@ -320,7 +322,7 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 
 	v, _ := metricValue(t, reg, "stillwater_messages_dead_lettered_total", nil)
 	assert.Equal(t, 3.0, v)
-	b2, err := os.ReadFile(filepath.Join(cfg.DataDir, "outbox", alert.DeadLetterFile))
+	b2, err := os.ReadFile(filepath.Join(cfg.DataDir, "outbox", bus.DeadLetterFile))
 	require.NoError(t, err)
 	assert.Equal(t, 3, strings.Count(string(b2), "\n"))
 	assert.Equal(t, 3, strings.Count(string(b2), `"subject":"old.north.target"`))

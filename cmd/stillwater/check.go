@@ -17,6 +17,7 @@ import (
 	"time"
 
 	"stillwater/alert"
+	"stillwater/alert/arming"
 	"stillwater/vision"
 )
 
@@ -198,6 +199,9 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	} else {
 		fmt.Fprintf(w, "  external NATS %s\n", vision.Redact(cfg.Bus.URL))
 	}
+	if names := cfg.Bus.consumers(); len(names) > 0 {
+		fmt.Fprintf(w, "  durable consumers kept for %s (each binds the one named after it)\n", strings.Join(names, ", "))
+	}
 	tw := tabwriter.NewWriter(w, 2, 4, 2, ' ', 0)
 	for _, k := range []string{alert.KindTarget, alert.KindCleared, alert.KindFault, alert.KindArmed, alert.KindBeat} {
 		fmt.Fprintf(tw, "  %s\t%s\n", k, alert.Subject(cfg.Bus.Prefix, "CAMERA", k))
@@ -207,7 +211,7 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	fmt.Fprintf(w, "  unacknowledged messages wait in %s/outbox\n", cfg.DataDir)
 	who := cfg.Control.TokenName
 	if who == "" {
-		who = alert.DefaultTokenName
+		who = arming.DefaultTokenName
 	}
 	switch c := cfg.Control; {
 	case c.SecretEnv != "":
@@ -217,7 +221,8 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	case c.Secret != "":
 		fmt.Fprintf(w, "  control (arm, disarm) needs the secret written in the config (better: secret_env or secret_file); whoever uses it is recorded as %q\n\n", who)
 	case c.TrustNATS:
-		fmt.Fprint(w, "  control (arm, disarm) over NATS by the operator role; HTTP control refused\n\n")
+		fmt.Fprintf(w, "  control (arm, disarm) over NATS by operator-role users on %s, recorded as nats:USER; HTTP control refused\n\n",
+			alert.UserControlSubject(cfg.Bus.Prefix, "USER", "ACTION"))
 	default:
 		fmt.Fprint(w, "  control: no secret, so arm and disarm requests are refused; status only\n\n")
 	}
@@ -301,7 +306,7 @@ func crossedCorners(cam CameraConfig, cal *calibration) bool {
 // armingLine says whether the camera is armed at now and when that
 // changes, in the schedule's zone; system says the zone is the machine's
 // (time_zone Local).
-func armingLine(s *alert.Schedule, loc *time.Location, system bool, now time.Time) string {
+func armingLine(s *arming.Schedule, loc *time.Location, system bool, now time.Time) string {
 	if s == nil {
 		return "armed around the clock (no schedule)"
 	}

@@ -17,6 +17,8 @@ import (
 	"gopkg.in/yaml.v3"
 
 	"stillwater/alert"
+	"stillwater/alert/arming"
+	"stillwater/alert/bus"
 )
 
 // Config is the daemon's whole configuration, from defaults, the YAML
@@ -285,15 +287,15 @@ func parseConfig(b []byte, env func(string) (string, bool)) (Config, error) {
 }
 
 // secretSources lists every secret setting of c by its field name.
-func (c Config) secretSources() map[string]alert.Secret {
-	out := map[string]alert.Secret{
+func (c Config) secretSources() map[string]bus.Secret {
+	out := map[string]bus.Secret{
 		"control.secret":     {Value: c.Control.Secret, Env: c.Control.SecretEnv, File: c.Control.SecretFile},
 		"http.viewer_secret": {Value: c.HTTP.ViewerSecret, Env: c.HTTP.ViewerSecretEnv, File: c.HTTP.ViewerSecretFile},
 		"bus.auth.password":  {Value: c.Bus.Auth.Password, Env: c.Bus.Auth.PasswordEnv, File: c.Bus.Auth.PasswordFile},
 		"bus.auth.token":     {Value: c.Bus.Auth.Token, Env: c.Bus.Auth.TokenEnv, File: c.Bus.Auth.TokenFile},
 	}
 	for i, u := range c.Bus.Users {
-		out[fmt.Sprintf("bus.users[%d].password", i)] = alert.Secret{Value: u.Password, Env: u.PasswordEnv, File: u.PasswordFile}
+		out[fmt.Sprintf("bus.users[%d].password", i)] = bus.Secret{Value: u.Password, Env: u.PasswordEnv, File: u.PasswordFile}
 	}
 	return out
 }
@@ -451,7 +453,7 @@ func (e EvidenceConfig) validate() error {
 
 // schedules parses each camera's arming schedule (its own or the default).
 // A camera with no windows anywhere is armed around the clock (nil).
-func (c Config) schedules() (map[string]*alert.Schedule, error) {
+func (c Config) schedules() (map[string]*arming.Schedule, error) {
 	loc, err := c.zone()
 	if err != nil {
 		return nil, fmt.Errorf("arming.time_zone: %v", err)
@@ -460,7 +462,7 @@ func (c Config) schedules() (map[string]*alert.Schedule, error) {
 	if err != nil {
 		return nil, fmt.Errorf("arming.schedule: %w", err)
 	}
-	out := map[string]*alert.Schedule{}
+	out := map[string]*arming.Schedule{}
 	for i, cam := range c.Cameras {
 		out[cam.ID] = def
 		if len(cam.Schedule) == 0 {
@@ -494,11 +496,11 @@ func (c Config) zone() (*time.Location, error) {
 	return time.UTC, nil
 }
 
-func parseSchedule(loc *time.Location, windows []string) (*alert.Schedule, error) {
+func parseSchedule(loc *time.Location, windows []string) (*arming.Schedule, error) {
 	if len(windows) == 0 {
 		return nil, nil
 	}
-	return alert.ParseScheduleIn(loc, windows)
+	return arming.ParseScheduleIn(loc, windows)
 }
 
 // loadZone loads an IANA zone with an error that says how to write one.

@@ -6,7 +6,7 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 
-	"stillwater/alert"
+	"stillwater/alert/bus"
 )
 
 // metrics are the daemon's own collectors, registered on the registry
@@ -212,7 +212,7 @@ func b2f(b bool) float64 {
 // OnResult callback: an acknowledged stream message is counted as
 // published and acknowledged, and its time from Publish to the
 // acknowledgement observed, once.
-func (m *metrics) busResult(r alert.PublishResult) {
+func (m *metrics) busResult(r bus.PublishResult) {
 	if r.Err != nil {
 		return
 	}
@@ -225,7 +225,7 @@ func (m *metrics) busResult(r alert.PublishResult) {
 // scrape time.
 func registerBusMetrics(reg prometheus.Registerer, b *busParts, now func() time.Time) {
 	pub := b.Pub
-	stats := func(f func(alert.Stats) float64) func() float64 { return func() float64 { return f(pub.Stats()) } }
+	stats := func(f func(bus.Stats) float64) func() float64 { return func() float64 { return f(pub.Stats()) } }
 	fault := func(reason, help string, active func() bool) prometheus.Collector {
 		return prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_bus_fault", Help: help, ConstLabels: prometheus.Labels{"reason": reason}},
 			func() float64 { return b2f(active()) })
@@ -233,17 +233,17 @@ func registerBusMetrics(reg prometheus.Registerer, b *busParts, now func() time.
 	const faultHelp = "1 while the bus side has a fault of the reason: stream (the stream cannot be created or used), stalled (the oldest queued message is over 30 s old)."
 	reg.MustRegister(
 		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_depth", Help: "Messages waiting in the outbox for the bus."},
-			stats(func(s alert.Stats) float64 { return float64(s.Depth) })),
+			stats(func(s bus.Stats) float64 { return float64(s.Depth) })),
 		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_oldest_age_seconds", Help: "Age of the oldest message in the outbox; 0 when it is empty."},
 			func() float64 { age, _ := b.stalled(now()); return age.Seconds() }),
 		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_dropped_total", Help: "Messages the outbox dropped or refused because it was full."},
-			stats(func(s alert.Stats) float64 { return float64(s.Dropped + s.Refused) })),
+			stats(func(s bus.Stats) float64 { return float64(s.Dropped + s.Refused) })),
 		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_messages_queued_total", Help: "Stream messages put in the outbox to wait for the bus."},
-			stats(func(s alert.Stats) float64 { return float64(s.Queued) })),
+			stats(func(s bus.Stats) float64 { return float64(s.Queued) })),
 		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_messages_dead_lettered_total", Help: "Messages the server refused or never acknowledged, moved to the dead-letter file."},
-			stats(func(s alert.Stats) float64 { return float64(s.DeadLettered) })),
+			stats(func(s bus.Stats) float64 { return float64(s.DeadLettered) })),
 		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_rejected_total", Help: "Outbox lines set aside as invalid when the outbox was opened."},
-			stats(func(s alert.Stats) float64 { return float64(s.Rejected) })),
+			stats(func(s bus.Stats) float64 { return float64(s.Rejected) })),
 		fault("stream", faultHelp, func() bool { return pub.StreamFault() != nil }),
 		fault("stalled", faultHelp, func() bool { _, st := b.stalled(now()); return st }),
 	)

@@ -9,14 +9,14 @@ import (
 	"strings"
 	"time"
 
-	"stillwater/alert"
+	"stillwater/alert/arming"
 )
 
 // reloadTargets are the parts of the running daemon a reload changes.
 // Any func may be nil (tests).
 type reloadTargets struct {
 	watches      []*cameraWatch
-	setSchedules func(map[string]*alert.Schedule) error
+	setSchedules func(map[string]*arming.Schedule) error
 	setAccess    func(access) error
 	setMaxDisarm func(time.Duration) ([]string, error)
 }

@@ -20,7 +20,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
-	"stillwater/alert"
+	"stillwater/alert/arming"
 	"stillwater/vision/refdata"
 )
 
@@ -248,7 +248,7 @@ func TestReloadRotatesSecrets(t *testing.T) {
 	assert.Equal(t, http.StatusUnauthorized, httpDo(t, "POST", base+"/control/arm", "old-control", `{"camera":"pool"}`), "the old control token must be refused at once")
 	assert.Equal(t, http.StatusOK, httpDo(t, "POST", base+"/control/arm", "new-control", `{"camera":"pool"}`))
 	assert.Equal(t, http.StatusUnauthorized, httpDo(t, "GET", base+"/cameras/nosuch/latest.jpg", "old-viewer", ""))
-	time.Sleep(alert.DefaultRefusalBase) // the refusal above slows this client's next attempt
+	time.Sleep(arming.DefaultRefusalBase) // the refusal above slows this client's next attempt
 	assert.Equal(t, http.StatusNotFound, httpDo(t, "GET", base+"/cameras/nosuch/latest.jpg", "new-viewer", ""))
 
 	t.Logf("reload line: applied=%v tokens=%v restart_needed=%v", line["applied"], line["tokens"], line["restart_needed"])
@@ -278,7 +278,7 @@ func TestRepeatedBadTokensSlowed(t *testing.T) {
 	for i := 2; i < len(took); i++ {
 		assert.Greater(t, took[i], took[i-1], "attempt %d answered no later than the one before", i+1)
 	}
-	assert.GreaterOrEqual(t, took[4], 8*alert.DefaultRefusalBase)
+	assert.GreaterOrEqual(t, took[4], 8*arming.DefaultRefusalBase)
 	refdata.Report(t, "five wrong control tokens in a row answered after %v", roundAll(took))
 }
 

@@ -18,6 +18,8 @@ import (
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 
 	"stillwater/alert"
+	"stillwater/alert/arming"
+	"stillwater/alert/bus"
 )
 
 // safetyNotice is logged at start-up and printed by the README.
@@ -73,11 +75,11 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	}
 	var watches []*cameraWatch
 	backlog := make(chan backlogEvent, 64)
-	bus, err := openBus(ctx, cfg, alert.ArmingConfig{Cameras: ids, Schedules: sch, Log: log}, now, log, busHooks{
+	bus, err := openBus(ctx, cfg, arming.Config{Cameras: ids, Schedules: sch, Log: log}, now, log, busHooks{
 		OnResult: met.busResult,
 		// The publisher calls this from inside its own publish path: hand
 		// the fault to a goroutine rather than publish from here.
-		OnBacklog: func(active bool, st alert.Stats) {
+		OnBacklog: func(active bool, st bus.Stats) {
 			select {
 			case backlog <- backlogEvent{active: active, stats: st}:
 			default:
@@ -181,7 +183,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	camsDone := make(chan struct{})
 	rl := newReloader(log, cfg, acc, reloadTargets{
 		watches:      watches,
-		setSchedules: func(sch map[string]*alert.Schedule) error { return bus.Arming.SetSchedules(nil, sch, now()) },
+		setSchedules: func(sch map[string]*arming.Schedule) error { return bus.Arming.SetSchedules(nil, sch, now()) },
 		setAccess: func(a access) error {
 			pictures.set(a)
 			return bus.Control.SetAuth(a.control, a.tokenName, a.trustNATS)
@@ -323,14 +325,14 @@ func buildVersion() string {
 // backlogEvent is the outbox starting or ending a backlog.
 type backlogEvent struct {
 	active bool
-	stats  alert.Stats
+	stats  bus.Stats
 }
 
 // busSink hands messages to the publisher: targets, clears, faults and
 // armed changes go to the stream (or the outbox while the bus is down);
 // heartbeats are plain messages, dropped while disconnected.
 type busSink struct {
-	pub *alert.Publisher
+	pub *bus.Publisher
 	met *metrics
 	// closed is set when serve stops with cameras abandoned: what they
 	// send later goes nowhere, not into a closed publisher.
@@ -358,7 +360,7 @@ func (b *busSink) send(ctx context.Context, m outMsg) error {
 		return errDaemonStopped
 	}
 	if err := b.pub.Publish(ctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
-		if m.Kind == alert.KindBeat && errors.Is(err, alert.ErrBusDown) {
+		if m.Kind == alert.KindBeat && errors.Is(err, bus.ErrNotConnected) {
 			return nil
 		}
 		return err

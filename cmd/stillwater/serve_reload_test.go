@@ -10,7 +10,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
-	"stillwater/alert"
+	"stillwater/alert/arming"
 )
 
 func reloadFixture(t *testing.T) Config {
@@ -38,7 +38,7 @@ func TestApplyReload(t *testing.T) {
 	old := reloadFixture(t)
 	sch, err := old.schedules()
 	require.NoError(t, err)
-	arm, err := alert.NewArming(alert.ArmingConfig{Cameras: []string{"north", "south"}, Schedules: sch}, time.Now())
+	arm, err := arming.New(arming.Config{Cameras: []string{"north", "south"}, Schedules: sch}, time.Now())
 	require.NoError(t, err)
 	armed := func(id string, at time.Time) bool { a, _ := arm.Armed(id, at); return a }
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
@@ -55,7 +55,7 @@ func TestApplyReload(t *testing.T) {
 	next.Arming.Schedule = []string{"daily 00:00-24:00"}
 	require.NoError(t, next.Validate())
 	newReloader(log, old, access{}, reloadTargets{watches: watches,
-		setSchedules: func(s map[string]*alert.Schedule) error { return arm.SetSchedules(nil, s, noon) }}).apply(next)
+		setSchedules: func(s map[string]*arming.Schedule) error { return arm.SetSchedules(nil, s, noon) }}).apply(next)
 
 	select {
 	case c := <-watches[0].reload:

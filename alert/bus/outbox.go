@@ -1,4 +1,4 @@
-package alert
+package bus
 
 import (
 	"bufio"
@@ -16,6 +16,8 @@ import (
 	"time"
 	"unicode"
 	"unicode/utf8"
+
+	"stillwater/alert"
 )
 
 // OutboxConfig bounds the on-disk queue of messages that the bus has not
@@ -260,7 +262,7 @@ func (r outboxRecord) validate(maxBytes int64) error {
 	case r.N == math.MaxUint64:
 		return errors.New("record number (n) at its maximum")
 	case !durable(r.Kind):
-		return fmt.Errorf("kind %q is none of %s, %s, %s, %s", r.Kind, KindTarget, KindCleared, KindFault, KindArmed)
+		return fmt.Errorf("kind %q is none of %s, %s, %s, %s", r.Kind, alert.KindTarget, alert.KindCleared, alert.KindFault, alert.KindArmed)
 	case r.ID == "":
 		return errors.New("empty id")
 	case len(r.ID) > maxIDLen:
@@ -295,7 +297,7 @@ func validSubject(subj, kind string) error {
 		return fmt.Errorf("subject %q: want PREFIX.CAMERA.KIND, three tokens", subj)
 	}
 	for _, t := range toks {
-		if err := ValidToken(t); err != nil {
+		if err := alert.ValidToken(t); err != nil {
 			return fmt.Errorf("subject %q: token %v", subj, err)
 		}
 	}

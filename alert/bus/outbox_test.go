@@ -1,4 +1,4 @@
-package alert
+package bus
 
 import (
 	"bytes"
@@ -11,6 +11,8 @@ import (
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"stillwater/alert"
 )
 
 var outboxNow = time.Date(2026, 12, 2, 12, 0, 0, 0, time.UTC)
@@ -21,7 +23,7 @@ var outboxNow = time.Date(2026, 12, 2, 12, 0, 0, 0, time.UTC)
 func TestOutboxRecordValidation(t *testing.T) {
 	payload := []byte(`{"v":1,"kind":"target","camera":"north"}`)
 	rec := func(edit func(*outboxRecord)) string {
-		r := outboxRecord{N: 7, ID: "north-7", Subject: "sw.north.target", Kind: KindTarget, Queued: outboxNow, Data: payload}
+		r := outboxRecord{N: 7, ID: "north-7", Subject: "sw.north.target", Kind: alert.KindTarget, Queued: outboxNow, Data: payload}
 		edit(&r)
 		b, err := json.Marshal(r)
 		require.NoError(t, err)
@@ -33,8 +35,8 @@ func TestOutboxRecordValidation(t *testing.T) {
 		{"empty subject", rec(func(r *outboxRecord) { r.Subject = "" }), "empty subject"},
 		{"short subject", rec(func(r *outboxRecord) { r.Subject = "sw" }), "three tokens"},
 		{"wildcard", rec(func(r *outboxRecord) { r.Subject = "sw.*.target" }), "token"},
-		{"kind differs from subject", rec(func(r *outboxRecord) { r.Kind = KindFault }), "does not end in its kind"},
-		{"heartbeat kind", rec(func(r *outboxRecord) { r.Kind, r.Subject = KindBeat, "sw.north.heartbeat" }), `kind "heartbeat"`},
+		{"kind differs from subject", rec(func(r *outboxRecord) { r.Kind = alert.KindFault }), "does not end in its kind"},
+		{"heartbeat kind", rec(func(r *outboxRecord) { r.Kind, r.Subject = alert.KindBeat, "sw.north.heartbeat" }), `kind "heartbeat"`},
 		{"no id", rec(func(r *outboxRecord) { r.ID = "" }), "empty id"},
 		{"long id", rec(func(r *outboxRecord) { r.ID = strings.Repeat("x", maxIDLen+1) }), "id of 513 bytes"},
 		{"control character in id", rec(func(r *outboxRecord) { r.ID = "a\r\nb" }), "control characters"},
@@ -110,7 +112,7 @@ func FuzzParseOutbox(f *testing.F) {
 			if err := r.validate(maxBytes); err != nil {
 				t.Fatalf("kept an invalid record %+v: %v", r, err)
 			}
-			if err := ValidToken(cameraOf(r.Subject)); err != nil {
+			if err := alert.ValidToken(cameraOf(r.Subject)); err != nil {
 				t.Fatalf("kept subject %q: camera %v", r.Subject, err)
 			}
 			if seen[r.N] || r.N >= next {

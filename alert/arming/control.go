@@ -1,4 +1,4 @@
-package alert
+package arming
 
 import (
 	"bytes"
@@ -19,19 +19,9 @@ import (
 	"unicode"
 
 	"github.com/nats-io/nats.go"
-)
 
-// Control actions: the last token of PREFIX.control.ACTION and of the
-// HTTP path /control/ACTION.
-const (
-	ActionArm    = "arm"
-	ActionDisarm = "disarm"
-	ActionClear  = "clear"
-	ActionStatus = "status"
+	"stillwater/alert"
 )
-
-// ControlSubject returns the NATS subject of a control action.
-func ControlSubject(prefix, action string) string { return prefix + ".control." + action }
 
 // maxControlBody bounds a request body; real requests are under 200 bytes.
 const maxControlBody = 4096
@@ -40,7 +30,7 @@ const maxControlBody = 4096
 // the clock for "for" durations; zero means none given.
 type ControlRequest struct {
 	Action string
-	Camera string // a camera id or AllCameras
+	Camera string // a camera id or alert.AllCameras
 	Until  time.Time
 	// By is what the caller says about itself. It is logged as a claim
 	// and never recorded as the author: that is the identity the request
@@ -65,9 +55,9 @@ type controlBody struct {
 func DecodeControl(action string, body []byte, now time.Time) (ControlRequest, error) {
 	var req ControlRequest
 	switch action {
-	case ActionArm, ActionDisarm, ActionClear, ActionStatus:
+	case alert.ActionArm, alert.ActionDisarm, alert.ActionClear, alert.ActionStatus:
 	default:
-		return req, fmt.Errorf("unknown action %q; want %s, %s, %s or %s", action, ActionArm, ActionDisarm, ActionClear, ActionStatus)
+		return req, fmt.Errorf("unknown action %q; want %s, %s, %s or %s", action, alert.ActionArm, alert.ActionDisarm, alert.ActionClear, alert.ActionStatus)
 	}
 	if len(body) > maxControlBody {
 		return req, fmt.Errorf("body of %d bytes is over the %d-byte limit", len(body), maxControlBody)
@@ -85,9 +75,9 @@ func DecodeControl(action string, body []byte, now time.Time) (ControlRequest, e
 	}
 	req = ControlRequest{Action: action, Camera: b.Camera, By: b.By, Token: b.Token}
 	if req.Camera == "" {
-		req.Camera = AllCameras
+		req.Camera = alert.AllCameras
 	}
-	if err := ValidToken(req.Camera); err != nil {
+	if err := alert.ValidToken(req.Camera); err != nil {
 		return ControlRequest{}, fmt.Errorf("camera: %v", err)
 	}
 	if len(req.By) > 64 || strings.IndexFunc(req.By, func(r rune) bool { return !unicode.IsPrint(r) }) >= 0 {
@@ -111,18 +101,18 @@ func DecodeControl(action string, body []byte, now time.Time) (ControlRequest, e
 		req.Until = now.Add(d)
 	}
 	switch action {
-	case ActionDisarm:
+	case alert.ActionDisarm:
 		if req.Until.IsZero() {
 			return ControlRequest{}, errors.New("disarm needs until or for: a disarm always ends")
 		}
 		if !req.Until.After(now) {
 			return ControlRequest{}, errors.New("until is not in the future")
 		}
-	case ActionArm:
+	case alert.ActionArm:
 		if !req.Until.IsZero() && !req.Until.After(now) {
 			return ControlRequest{}, errors.New("until is not in the future")
 		}
-	case ActionClear, ActionStatus:
+	case alert.ActionClear, alert.ActionStatus:
 		if !req.Until.IsZero() {
 			return ControlRequest{}, fmt.Errorf("%s takes no until or for", action)
 		}
@@ -144,9 +134,9 @@ func bodyToken(body []byte) string {
 
 // ControlReply is the JSON answer to every control request.
 type ControlReply struct {
-	OK     bool          `json:"ok"`
-	Error  string        `json:"error,omitempty"`
-	Status *ArmingStatus `json:"status,omitempty"`
+	OK     bool    `json:"ok"`
+	Error  string  `json:"error,omitempty"`
+	Status *Status `json:"status,omitempty"`
 }
 
 // ControlConfig sets up a Control.
@@ -157,14 +147,18 @@ type ControlConfig struct {
 	// (status needs none). HTTP requests carry it as "Authorization:
 	// Bearer SECRET"; NATS requests in the same header or in the body's
 	// "token" field. Empty refuses every HTTP arm, disarm and clear, and
-	// NATS ones unless TrustNATS.
+	// NATS ones except those TrustNATS accepts.
 	Secret string
 	// TokenName is who a request carrying the token is recorded as (the
 	// override's by, "http:NAME" or "nats:NAME"); default DefaultTokenName.
 	TokenName string
-	// TrustNATS accepts NATS requests without a token, leaving the
-	// decision to the server's user permissions (RoleOperator). Such a
-	// request is recorded as "nats:" + TrustedNATSName.
+	// TrustNATS accepts, without a token, NATS requests on a bus user's
+	// own subject PREFIX.control.USER.ACTION (alert.UserControlSubject)
+	// and records them as "nats:USER". It is sound only where the server
+	// lets no one but USER publish there, as the embedded server's roles
+	// do: the server, not the sender, then names the author. A request on
+	// the shared subject PREFIX.control.ACTION names no sender and needs
+	// the token all the same.
 	TrustNATS bool
 	// OnRefused is called for every request refused for want of
 	// authorisation; via is "http" or "nats".
@@ -180,11 +174,6 @@ type ControlConfig struct {
 // DefaultTokenName is who a request with the control token is recorded as
 // when no name is configured.
 const DefaultTokenName = "token-holder"
-
-// TrustedNATSName is who a NATS request accepted on trust (TrustNATS,
-// no token) is recorded as: the server vouched for the sender's role, and
-// the subscriber learns nothing more about who sent it.
-const TrustedNATSName = "bus-operator"
 
 // Control answers arm, disarm, clear and status requests over HTTP and
 // NATS request/reply. A refused or malformed request never changes state.
@@ -209,7 +198,7 @@ func NewControl(cfg ControlConfig) (*Control, error) {
 	if cfg.Arming == nil {
 		return nil, errors.New("control: no arming")
 	}
-	if err := ValidToken(cfg.Prefix); err != nil {
+	if err := alert.ValidToken(cfg.Prefix); err != nil {
 		return nil, fmt.Errorf("control: prefix: %v", err)
 	}
 	if cfg.Now == nil {
@@ -269,9 +258,10 @@ func (a controlAuth) tokenOK(tok string) bool {
 
 // authorise decides whether req may run and who it runs as (the
 // override's author); the reason for a refusal goes to the log and the
-// reply. Status is open: it tells no more than the armed messages every
-// subscriber sees and the stillwater_armed metric.
-func (c *Control) authorise(via string, req ControlRequest, header string) (who, why string, ok bool) {
+// reply. user is the bus user named by a per-user NATS subject, "" for
+// the shared subject and HTTP. Status is open: it tells no more than the
+// armed messages every subscriber sees and the stillwater_armed metric.
+func (c *Control) authorise(via, user string, req ControlRequest, header string) (who, why string, ok bool) {
 	a := c.authState()
 	tok := req.Token
 	if via == "http" {
@@ -281,12 +271,17 @@ func (c *Control) authorise(via string, req ControlRequest, header string) (who,
 		tok = t
 	}
 	switch {
-	case req.Action == ActionStatus:
+	case req.Action == alert.ActionStatus:
 		return "", "", true
+	case via == "nats" && a.trustNATS && user != "":
+		// Only user may publish on its own subject: the server says who
+		// sent the request, whatever the body or a token say.
+		return via + ":" + user, "", true
 	case tok != "" && a.tokenOK(tok):
 		return via + ":" + a.name, "", true
-	case via == "nats" && a.trustNATS:
-		return via + ":" + TrustedNATSName, "", true
+	case via == "nats" && a.trustNATS && tok == "":
+		return "", fmt.Sprintf("the shared subject %s names no sender; send to %s to act as your bus user, or give the token",
+			alert.ControlSubject(c.cfg.Prefix, req.Action), alert.UserControlSubject(c.cfg.Prefix, "YOUR-USER", req.Action)), false
 	case !a.enabled:
 		return "", "control is not enabled: no control secret is configured", false
 	case tok == "":
@@ -296,10 +291,10 @@ func (c *Control) authorise(via string, req ControlRequest, header string) (who,
 }
 
 // needsAuth reports whether action changes state, and so is throttled.
-func needsAuth(action string) bool { return action != ActionStatus }
+func needsAuth(action string) bool { return action != alert.ActionStatus }
 
-func (c *Control) refuse(via string, req ControlRequest, why string) {
-	c.log.Warn("control request refused", "via", via, "action", req.Action, "camera", req.Camera, "claimed_by", req.By, "reason", why)
+func (c *Control) refuse(via, user string, req ControlRequest, why string) {
+	c.log.Warn("control request refused", "via", via, "action", req.Action, "camera", req.Camera, "claimed_by", req.By, "subject_user", user, "reason", why)
 	if c.cfg.OnRefused != nil {
 		c.cfg.OnRefused(via)
 	}
@@ -309,18 +304,19 @@ func (c *Control) refuse(via string, req ControlRequest, why string) {
 // refused unjudged.
 const tooMany = "too many refused attempts from this client; wait and try again"
 
-// apply runs an authorised request as by.
-func (c *Control) apply(via, by string, req ControlRequest, now time.Time) ControlReply {
+// apply runs an authorised request as by; user is the per-user subject's
+// user, for the log.
+func (c *Control) apply(via, user, by string, req ControlRequest, now time.Time) ControlReply {
 	var err error
 	switch req.Action {
-	case ActionArm:
+	case alert.ActionArm:
 		err = c.cfg.Arming.Arm(req.Camera, req.Until, by, now)
-	case ActionDisarm:
+	case alert.ActionDisarm:
 		err = c.cfg.Arming.DisarmUntil(req.Camera, req.Until, by, now)
-	case ActionClear:
+	case alert.ActionClear:
 		err = c.cfg.Arming.Clear(req.Camera, by, now)
-	case ActionStatus:
-		if req.Camera != AllCameras {
+	case alert.ActionStatus:
+		if req.Camera != alert.AllCameras {
 			if _, err := c.cfg.Arming.targets(req.Camera); err != nil {
 				return ControlReply{Error: err.Error()}
 			}
@@ -329,11 +325,11 @@ func (c *Control) apply(via, by string, req ControlRequest, now time.Time) Contr
 	if err != nil {
 		return ControlReply{Error: err.Error()}
 	}
-	if req.Action != ActionStatus {
-		c.log.Info("control request applied", "via", via, "action", req.Action, "camera", req.Camera, "by", by, "claimed_by", req.By)
+	if req.Action != alert.ActionStatus {
+		c.log.Info("control request applied", "via", via, "action", req.Action, "camera", req.Camera, "by", by, "claimed_by", req.By, "subject_user", user)
 	}
 	st := c.cfg.Arming.Status(now)
-	if req.Camera != AllCameras {
+	if req.Camera != alert.AllCameras {
 		rows := st.Cameras[:0]
 		for _, r := range st.Cameras {
 			if r.Camera == req.Camera {
@@ -358,11 +354,11 @@ func (c *Control) Handler() http.Handler {
 			return
 		}
 		want := http.MethodPost
-		if action == ActionStatus {
+		if action == alert.ActionStatus {
 			want = http.MethodGet
 		}
 		switch action {
-		case ActionArm, ActionDisarm, ActionClear, ActionStatus:
+		case alert.ActionArm, alert.ActionDisarm, alert.ActionClear, alert.ActionStatus:
 		default:
 			writeReply(w, http.StatusNotFound, ControlReply{Error: fmt.Sprintf("no action %q; use /control/arm, /control/disarm, /control/clear or /control/status", action)})
 			return
@@ -380,7 +376,7 @@ func (c *Control) Handler() http.Handler {
 		client := clientAddr(r)
 		if needsAuth(action) {
 			if _, ok := c.throttle.Wait(r.Context(), client); !ok {
-				c.refuse("http", ControlRequest{Action: action}, tooMany)
+				c.refuse("http", "", ControlRequest{Action: action}, tooMany)
 				w.Header().Set("Retry-After", strconv.Itoa(int(c.throttle.max/time.Second)))
 				writeReply(w, http.StatusTooManyRequests, ControlReply{Error: "refused: " + tooMany})
 				return
@@ -393,10 +389,10 @@ func (c *Control) Handler() http.Handler {
 		}
 		// Authorise before reporting decoding errors, so that an
 		// unauthorised caller learns nothing and is counted.
-		who, why, ok := c.authorise("http", req, r.Header.Get("Authorization"))
+		who, why, ok := c.authorise("http", "", req, r.Header.Get("Authorization"))
 		if !ok {
 			c.throttle.Refused(client)
-			c.refuse("http", req, why)
+			c.refuse("http", "", req, why)
 			code := http.StatusUnauthorized
 			if !c.authState().enabled {
 				code = http.StatusForbidden
@@ -413,7 +409,7 @@ func (c *Control) Handler() http.Handler {
 			writeReply(w, http.StatusBadRequest, ControlReply{Error: derr.Error()})
 			return
 		}
-		rep := c.apply("http", who, req, now)
+		rep := c.apply("http", "", who, req, now)
 		code := http.StatusOK
 		if !rep.OK {
 			code = http.StatusBadRequest
@@ -439,7 +435,8 @@ func writeReply(w http.ResponseWriter, code int, rep ControlReply) {
 	w.Write(append(b, '\n'))
 }
 
-// Serve answers requests on PREFIX.control.* until ctx ends.
+// Serve answers requests on PREFIX.control.ACTION and
+// PREFIX.control.USER.ACTION until ctx ends.
 func (c *Control) Serve(ctx context.Context, nc *nats.Conn) error {
 	answer := func(m *nats.Msg) {
 		rep := c.handleNATS(ctx, m)
@@ -451,34 +448,60 @@ func (c *Control) Serve(ctx context.Context, nc *nats.Conn) error {
 			c.log.Warn("control reply failed", "err", err)
 		}
 	}
-	sub, err := nc.Subscribe(ControlSubject(c.cfg.Prefix, "*"), func(m *nats.Msg) {
-		// A throttled request waits in its own goroutine, so that it
-		// holds up neither status requests nor the subscription.
-		if c.throttle.Pending(natsClient) {
-			go answer(m)
-			return
+	var subs []*nats.Subscription
+	defer func() {
+		for _, sub := range subs {
+			sub.Unsubscribe()
 		}
-		answer(m)
-	})
-	if err != nil {
-		return fmt.Errorf("control: subscribe %s: %w", ControlSubject(c.cfg.Prefix, "*"), err)
+	}()
+	for _, subj := range alert.ControlSubjects(c.cfg.Prefix) {
+		sub, err := nc.Subscribe(subj, func(m *nats.Msg) {
+			// A throttled request waits in its own goroutine, so that it
+			// holds up neither status requests nor the subscription.
+			if c.throttle.Pending(natsClient) {
+				go answer(m)
+				return
+			}
+			answer(m)
+		})
+		if err != nil {
+			return fmt.Errorf("control: subscribe %s: %w", subj, err)
+		}
+		subs = append(subs, sub)
 	}
 	<-ctx.Done()
-	if err := sub.Unsubscribe(); err != nil && !errors.Is(err, nats.ErrConnectionClosed) {
-		return fmt.Errorf("control: unsubscribe: %w", err)
+	for _, sub := range subs {
+		if err := sub.Unsubscribe(); err != nil && !errors.Is(err, nats.ErrConnectionClosed) {
+			return fmt.Errorf("control: unsubscribe %s: %w", sub.Subject, err)
+		}
 	}
+	subs = nil
 	return nil
 }
 
 // natsClient is the throttle's key for NATS requests: the subscriber
-// cannot tell one sender from another.
+// cannot tell one sender from another. A user named by a per-user subject
+// is not a key of its own, since without TrustNATS anyone may claim any
+// name, and a guesser could take a fresh delay with each.
 const natsClient = "nats"
 
 func (c *Control) handleNATS(ctx context.Context, m *nats.Msg) ControlReply {
-	action := m.Subject[strings.LastIndexByte(m.Subject, '.')+1:]
-	if needsAuth(action) {
+	user, action, ok := alert.ParseControlSubject(c.cfg.Prefix, m.Subject)
+	if !ok {
+		return ControlReply{Error: fmt.Sprintf("subject %s is not a control subject", m.Subject)}
+	}
+	if user != "" {
+		if err := validName(user); err != nil {
+			c.refuse("nats", user, ControlRequest{Action: action}, "bus user in the subject: "+err.Error())
+			return ControlReply{Error: "refused: bus user in the subject: " + err.Error()}
+		}
+	}
+	// A request on its sender's own subject, under TrustNATS, is vouched
+	// for by the server: it does not queue behind refused guesses.
+	vouched := user != "" && c.authState().trustNATS
+	if needsAuth(action) && !vouched {
 		if _, ok := c.throttle.Wait(ctx, natsClient); !ok {
-			c.refuse("nats", ControlRequest{Action: action}, tooMany)
+			c.refuse("nats", user, ControlRequest{Action: action}, tooMany)
 			return ControlReply{Error: "refused: " + tooMany}
 		}
 	}
@@ -491,17 +514,17 @@ func (c *Control) handleNATS(ctx context.Context, m *nats.Msg) ControlReply {
 	if m.Header != nil {
 		header = m.Header.Get("Authorization")
 	}
-	who, why, ok := c.authorise("nats", req, header)
+	who, why, ok := c.authorise("nats", user, req, header)
 	if !ok {
 		c.throttle.Refused(natsClient)
-		c.refuse("nats", req, why)
+		c.refuse("nats", user, req, why)
 		return ControlReply{Error: "refused: " + why}
 	}
-	if needsAuth(action) {
+	if needsAuth(action) && !vouched {
 		c.throttle.Accepted(natsClient)
 	}
 	if derr != nil {
 		return ControlReply{Error: derr.Error()}
 	}
-	return c.apply("nats", who, req, now)
+	return c.apply("nats", user, who, req, now)
 }

@@ -1,4 +1,4 @@
-package alert
+package arming
 
 import (
 	"bytes"
@@ -12,6 +12,8 @@ import (
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"stillwater/alert"
 )
 
 func mustSchedule(t testing.TB, zone string, windows ...string) *Schedule {
@@ -23,13 +25,13 @@ func mustSchedule(t testing.TB, zone string, windows ...string) *Schedule {
 
 // pollEvery polls a from..to in steps and returns the changes after the
 // first poll, validating each against the armed schema.
-func pollEvery(t *testing.T, a *Arming, from, to time.Time, step time.Duration) []ArmedChange {
+func pollEvery(t *testing.T, a *Arming, from, to time.Time, step time.Duration) []alert.ArmedChange {
 	t.Helper()
 	a.Poll(from)
-	var out []ArmedChange
+	var out []alert.ArmedChange
 	for now := from.Add(step); !now.After(to); now = now.Add(step) {
 		for _, c := range a.Poll(now) {
-			validateMessage(t, KindArmed, c)
+			validateMessage(t, alert.KindArmed, c)
 			out = append(out, c)
 		}
 	}
@@ -42,7 +44,7 @@ type edge struct {
 	armed  bool
 }
 
-func edges(cs []ArmedChange) []edge {
+func edges(cs []alert.ArmedChange) []edge {
 	var out []edge
 	for _, c := range cs {
 		out = append(out, edge{c.Camera, c.Time, c.Armed})
@@ -99,7 +101,7 @@ func TestArmingScheduleEdgesAcrossDST(t *testing.T) {
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
-			a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"},
+			a, err := New(Config{Cameras: []string{"north", "south"},
 				Schedules: map[string]*Schedule{"north": mustSchedule(t, c.zone, c.windows...)}}, c.from)
 			require.NoError(t, err)
 			// Polling every 7 minutes still dates each change exactly.
@@ -111,7 +113,7 @@ func TestArmingScheduleEdgesAcrossDST(t *testing.T) {
 
 func TestArmingFirstPollReportsEveryCamera(t *testing.T) {
 	now := utc(2026, 12, 2, 12, 0)
-	a, err := NewArming(ArmingConfig{Cameras: []string{"south", "north"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, now)
+	a, err := New(Config{Cameras: []string{"south", "north"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, now)
 	require.NoError(t, err)
 	cs := a.Poll(now)
 	require.Len(t, cs, 2)
@@ -123,13 +125,13 @@ func TestArmingFirstPollReportsEveryCamera(t *testing.T) {
 
 func TestArmingOverrideExpires(t *testing.T) {
 	t0 := utc(2026, 12, 2, 12, 0) // outside the 20:00-06:00 window
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, t0)
+	a, err := New(Config{Cameras: []string{"north", "south"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, t0)
 	require.NoError(t, err)
 	a.Poll(t0)
 
 	setAt := t0.Add(10 * time.Minute)
 	until := utc(2026, 12, 2, 15, 0)
-	require.NoError(t, a.Arm(AllCameras, until, "http:alice", setAt))
+	require.NoError(t, a.Arm(alert.AllCameras, until, "http:alice", setAt))
 	select {
 	case <-a.Changed():
 	default:
@@ -138,7 +140,7 @@ func TestArmingOverrideExpires(t *testing.T) {
 	cs := a.Poll(setAt.Add(300 * time.Millisecond))
 	require.Len(t, cs, 2)
 	for _, c := range cs {
-		validateMessage(t, KindArmed, c)
+		validateMessage(t, alert.KindArmed, c)
 		assert.True(t, c.Armed)
 		assert.Equal(t, setAt, c.Time, "dated by the request")
 		require.NotNil(t, c.Until)
@@ -175,7 +177,7 @@ func TestArmingOverrideExpires(t *testing.T) {
 
 func TestArmingRefusesBadRequests(t *testing.T) {
 	now := utc(2026, 12, 2, 22, 0)
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, MaxDisarm: 12 * time.Hour}, now)
+	a, err := New(Config{Cameras: []string{"north"}, MaxDisarm: 12 * time.Hour}, now)
 	require.NoError(t, err)
 	cases := []struct {
 		name string
@@ -195,15 +197,15 @@ func TestArmingRefusesBadRequests(t *testing.T) {
 		armed, _ := a.Armed("north", now)
 		assert.True(t, armed, "%s: state unchanged", c.name)
 	}
-	_, err = NewArming(ArmingConfig{Cameras: []string{"all"}}, now)
+	_, err = New(Config{Cameras: []string{"all"}}, now)
 	assert.ErrorContains(t, err, "reserved")
-	_, err = NewArming(ArmingConfig{Cameras: []string{"north"}, Schedules: map[string]*Schedule{"south": nil}}, now)
+	_, err = New(Config{Cameras: []string{"north"}, Schedules: map[string]*Schedule{"south": nil}}, now)
 	assert.ErrorContains(t, err, `unknown camera "south"`)
 }
 
 func TestArmingArmWithoutEnd(t *testing.T) {
 	now := utc(2026, 12, 2, 12, 0)
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, now)
+	a, err := New(Config{Cameras: []string{"north"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, now)
 	require.NoError(t, err)
 	require.NoError(t, a.Arm("north", time.Time{}, "http", now))
 	armed, reason := a.Armed("north", now.Add(48*time.Hour))
@@ -212,7 +214,7 @@ func TestArmingArmWithoutEnd(t *testing.T) {
 	cs := a.Poll(now)
 	require.Len(t, cs, 1)
 	assert.Nil(t, cs[0].Until)
-	validateMessage(t, KindArmed, cs[0])
+	validateMessage(t, alert.KindArmed, cs[0])
 	require.NoError(t, a.Clear("north", "http", now.Add(time.Hour)))
 	armed, _ = a.Armed("north", now.Add(time.Hour))
 	assert.False(t, armed, "cleared: the schedule decides again")
@@ -222,12 +224,12 @@ func TestArmingPersistsAcrossRestart(t *testing.T) {
 	dir := t.TempDir()
 	path := filepath.Join(dir, "arming.json")
 	now := utc(2026, 12, 2, 22, 0)
-	cfg := ArmingConfig{Cameras: []string{"north", "south"}, StatePath: path}
-	a, err := NewArming(cfg, now)
+	cfg := Config{Cameras: []string{"north", "south"}, StatePath: path}
+	a, err := New(cfg, now)
 	require.NoError(t, err)
 	require.NoError(t, a.DisarmUntil("north", now.Add(2*time.Hour), "http:alice", now))
 
-	b, err := NewArming(cfg, now.Add(time.Minute))
+	b, err := New(cfg, now.Add(time.Minute))
 	require.NoError(t, err)
 	armed, reason := b.Armed("north", now.Add(time.Minute))
 	assert.False(t, armed, "the disarm survived the restart")
@@ -238,7 +240,7 @@ func TestArmingPersistsAcrossRestart(t *testing.T) {
 	assert.True(t, armed)
 
 	// A save that fails changes nothing.
-	bad, err := NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: filepath.Join(dir, "missing", "arming.json")}, now)
+	bad, err := New(Config{Cameras: []string{"north"}, StatePath: filepath.Join(dir, "missing", "arming.json")}, now)
 	require.NoError(t, err)
 	require.Error(t, bad.DisarmUntil("north", now.Add(time.Hour), "x", now))
 	armed, _ = bad.Armed("north", now)
@@ -255,7 +257,7 @@ func TestArmingUnreadableStateFailsArmed(t *testing.T) {
 		t.Run(name, func(t *testing.T) {
 			path := filepath.Join(t.TempDir(), "arming.json")
 			require.NoError(t, os.WriteFile(path, []byte(content), 0o600))
-			a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: path, Default: mustSchedule(t, "UTC", "daily 06:00-07:00")}, now)
+			a, err := New(Config{Cameras: []string{"north"}, StatePath: path, Default: mustSchedule(t, "UTC", "daily 06:00-07:00")}, now)
 			require.ErrorIs(t, err, ErrStateUnreadable)
 			assert.Contains(t, err.Error(), path)
 			require.NotNil(t, a)
@@ -266,13 +268,13 @@ func TestArmingUnreadableStateFailsArmed(t *testing.T) {
 			cs := a.Poll(now)
 			require.Len(t, cs, 1)
 			assert.True(t, cs[0].Armed)
-			validateMessage(t, KindArmed, cs[0])
+			validateMessage(t, alert.KindArmed, cs[0])
 
 			// An operator's clear ends fail-safe and writes a good file.
-			require.NoError(t, a.Clear(AllCameras, "http", now))
+			require.NoError(t, a.Clear(alert.AllCameras, "http", now))
 			armed, _ = a.Armed("north", now)
 			assert.False(t, armed)
-			_, err = NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: path}, now)
+			_, err = New(Config{Cameras: []string{"north"}, StatePath: path}, now)
 			assert.NoError(t, err)
 		})
 	}
@@ -280,7 +282,7 @@ func TestArmingUnreadableStateFailsArmed(t *testing.T) {
 
 func TestArmingConcurrentUse(t *testing.T) {
 	now := utc(2026, 12, 2, 22, 0)
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, StatePath: filepath.Join(t.TempDir(), "a.json")}, now)
+	a, err := New(Config{Cameras: []string{"north", "south"}, StatePath: filepath.Join(t.TempDir(), "a.json")}, now)
 	require.NoError(t, err)
 	var wg sync.WaitGroup
 	for i := 0; i < 4; i++ {
@@ -290,7 +292,7 @@ func TestArmingConcurrentUse(t *testing.T) {
 			for j := 0; j < 50; j++ {
 				at := now.Add(time.Duration(j) * time.Second)
 				if i%2 == 0 {
-					assert.NoError(t, a.DisarmUntil(AllCameras, at.Add(time.Hour), "t", at))
+					assert.NoError(t, a.DisarmUntil(alert.AllCameras, at.Add(time.Hour), "t", at))
 				} else {
 					a.Armed("north", at)
 					a.Status(at)
@@ -304,50 +306,47 @@ func TestArmingConcurrentUse(t *testing.T) {
 	assert.False(t, armed)
 }
 
-// TestArmingRunPublishesChanges drives Run with a fake clock into a real
-// stream: the start-up state and an operator's disarm both arrive as armed
-// messages on PREFIX.CAMERA.armed.
-func TestArmingRunPublishesChanges(t *testing.T) {
-	opts := singleNode(t, t.TempDir())
-	srv := mustStart(t, opts)
-	defer stop(srv)
-	nc := connect(t, srv.ClientURL())
-	p, err := NewPublisher(context.Background(), nc, "sw", StreamConfig{})
-	require.NoError(t, err)
-	defer p.Close()
-	sub, err := nc.SubscribeSync("sw.*.armed")
-	require.NoError(t, err)
-
+// TestArmingRunEmitsChanges drives Run with a fake clock and an hourly
+// tick: the start-up state and an operator's disarm both reach emit, the
+// disarm at once rather than at the next tick.
+func TestArmingRunEmitsChanges(t *testing.T) {
 	var mu sync.Mutex
 	clock := utc(2026, 12, 2, 12, 0)
 	now := func() time.Time { mu.Lock(); defer mu.Unlock(); return clock }
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}}, now())
+	a, err := New(Config{Cameras: []string{"north"}}, now())
 	require.NoError(t, err)
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
+	emitted := make(chan alert.ArmedChange, 4)
 	done := make(chan error, 1)
-	go func() {
-		done <- a.Run(ctx, now, time.Hour, func(c ArmedChange) { assert.NoError(t, p.PublishArmed(ctx, c)) })
-	}()
-	first, err := sub.NextMsg(5 * time.Second)
-	require.NoError(t, err)
-	assert.Equal(t, "sw.north.armed", first.Subject)
-	assert.Contains(t, string(first.Data), `"armed":true`)
+	go func() { done <- a.Run(ctx, now, time.Hour, func(c alert.ArmedChange) { emitted <- c }) }()
+	next := func() alert.ArmedChange {
+		t.Helper()
+		select {
+		case c := <-emitted:
+			validateMessage(t, alert.KindArmed, c)
+			return c
+		case <-time.After(5 * time.Second):
+			t.Fatal("no armed change emitted")
+			return alert.ArmedChange{}
+		}
+	}
+	first := next()
+	assert.Equal(t, "north", first.Camera)
+	assert.True(t, first.Armed)
 
 	require.NoError(t, a.DisarmUntil("north", now().Add(time.Hour), "http:alice", now()))
-	second, err := sub.NextMsg(5 * time.Second) // long before the hourly tick
-	require.NoError(t, err)
-	assert.Contains(t, string(second.Data), `"armed":false`)
-	assert.Contains(t, string(second.Data), `"by":"http:alice"`)
+	second := next() // long before the hourly tick
+	assert.False(t, second.Armed)
+	assert.Equal(t, "http:alice", second.By)
 	cancel()
 	require.NoError(t, <-done)
-	ids := streamIDs(t, srv.ClientURL(), "STILLWATER")
-	assert.Len(t, ids, 2, "both armed changes are in the stream")
+	assert.Empty(t, emitted, "nothing else was emitted")
 }
 
 func TestArmingNoOpRequestDoesNotDateLaterChange(t *testing.T) {
 	t0 := utc(2026, 12, 2, 19, 0)
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, t0)
+	a, err := New(Config{Cameras: []string{"north"}, Default: mustSchedule(t, "UTC", "daily 20:00-06:00")}, t0)
 	require.NoError(t, err)
 	a.Poll(t0)
 	require.NoError(t, a.Clear("north", "http", t0.Add(time.Minute))) // nothing to clear
@@ -359,7 +358,7 @@ func TestArmingNoOpRequestDoesNotDateLaterChange(t *testing.T) {
 
 func TestArmingSetSchedulesKeepsOverrides(t *testing.T) {
 	now := utc(2026, 12, 2, 12, 0)
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}}, now)
+	a, err := New(Config{Cameras: []string{"north", "south"}}, now)
 	require.NoError(t, err)
 	a.Poll(now)
 	require.NoError(t, a.DisarmUntil("north", now.Add(time.Hour), "http", now))
@@ -377,7 +376,7 @@ func TestArmingSetSchedulesKeepsOverrides(t *testing.T) {
 // logTo returns a text logger writing to b.
 func logTo(b *bytes.Buffer) *slog.Logger { return slog.New(slog.NewTextHandler(b, nil)) }
 
-// asideFiles lists what NewArming moved aside next to path.
+// asideFiles lists what New moved aside next to path.
 func asideFiles(t *testing.T, path string) []string {
 	t.Helper()
 	m, err := filepath.Glob(path + ".rejected-*")
@@ -394,7 +393,7 @@ func TestArmingClampsSavedDisarm(t *testing.T) {
 	orig := `{"v":1,"overrides":{"north":{"armed":false,"until":"9999-12-30T00:00:00Z","by":"http:x"}}}`
 	require.NoError(t, os.WriteFile(path, []byte(orig), 0o600))
 	var logs bytes.Buffer
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: path, MaxDisarm: 24 * time.Hour, Log: logTo(&logs)}, now)
+	a, err := New(Config{Cameras: []string{"north"}, StatePath: path, MaxDisarm: 24 * time.Hour, Log: logTo(&logs)}, now)
 	require.NoError(t, err)
 
 	armed, reason := a.Armed("north", now.Add(23*time.Hour))
@@ -407,7 +406,7 @@ func TestArmingClampsSavedDisarm(t *testing.T) {
 	assert.Contains(t, logs.String(), "9999-12-30")
 
 	// The file now holds the clamped disarm; the original is kept aside.
-	b, err := NewArming(ArmingConfig{Cameras: []string{"north"}, StatePath: path, MaxDisarm: 24 * time.Hour}, now.Add(time.Hour))
+	b, err := New(Config{Cameras: []string{"north"}, StatePath: path, MaxDisarm: 24 * time.Hour}, now.Add(time.Hour))
 	require.NoError(t, err)
 	armed, _ = b.Armed("north", now.Add(24*time.Hour+time.Second))
 	assert.True(t, armed)
@@ -434,7 +433,7 @@ func TestArmingValidatesEachRecord(t *testing.T) {
 	var logs bytes.Buffer
 	cams := []string{"north", "south", "east", "west"}
 	sched := mustSchedule(t, "UTC", "daily 06:00-07:00") // disarmed at 22:00
-	a, err := NewArming(ArmingConfig{Cameras: cams, StatePath: path, Default: sched, Log: logTo(&logs)}, now)
+	a, err := New(Config{Cameras: cams, StatePath: path, Default: sched, Log: logTo(&logs)}, now)
 	require.NoError(t, err, "bad records are no reason to fail the whole file")
 
 	armed, _ := a.Armed("north", now)
@@ -457,7 +456,7 @@ func TestArmingValidatesEachRecord(t *testing.T) {
 	assert.Equal(t, orig, string(kept))
 
 	// Fail-safe survives a restart until an operator acts.
-	b, err := NewArming(ArmingConfig{Cameras: cams, StatePath: path, Default: sched}, now)
+	b, err := New(Config{Cameras: cams, StatePath: path, Default: sched}, now)
 	require.NoError(t, err)
 	armed, _ = b.Armed("south", now)
 	assert.True(t, armed, "fail-safe is kept across a restart")
@@ -491,8 +490,8 @@ func FuzzArmingState(f *testing.F) {
 	f.Fuzz(func(t *testing.T, data []byte) {
 		path := filepath.Join(t.TempDir(), "arming.json")
 		require.NoError(t, os.WriteFile(path, data, 0o600))
-		cfg := ArmingConfig{Cameras: cams, StatePath: path, MaxDisarm: max}
-		a, err := NewArming(cfg, now)
+		cfg := Config{Cameras: cams, StatePath: path, MaxDisarm: max}
+		a, err := New(cfg, now)
 		if err != nil {
 			require.ErrorIs(t, err, ErrStateUnreadable)
 		}
@@ -503,7 +502,7 @@ func FuzzArmingState(f *testing.F) {
 		}
 		first := a.Status(now)
 		nAside := len(asideFiles(t, path))
-		b, err := NewArming(cfg, now)
+		b, err := New(cfg, now)
 		require.NoError(t, err, "the file left behind must load cleanly")
 		assert.Equal(t, first, b.Status(now))
 		assert.Len(t, asideFiles(t, path), nAside, "a clean file is not moved aside")
@@ -514,7 +513,7 @@ func FuzzArmingState(f *testing.F) {
 func TestArmingSetMaxDisarmCutsRunningDisarm(t *testing.T) {
 	now := utc(2026, 12, 2, 22, 0)
 	path := filepath.Join(t.TempDir(), "arming.json")
-	a, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, StatePath: path, MaxDisarm: 24 * time.Hour}, now)
+	a, err := New(Config{Cameras: []string{"north", "south"}, StatePath: path, MaxDisarm: 24 * time.Hour}, now)
 	require.NoError(t, err)
 	require.NoError(t, a.DisarmUntil("north", now.Add(20*time.Hour), "http:owner", now))
 	require.NoError(t, a.DisarmUntil("south", now.Add(time.Hour), "http:owner", now))
@@ -526,7 +525,7 @@ func TestArmingSetMaxDisarmCutsRunningDisarm(t *testing.T) {
 	armed, _ = a.Armed("south", now.Add(30*time.Minute))
 	assert.False(t, armed, "a disarm inside the new bound is left alone")
 	require.Error(t, a.DisarmUntil("south", now.Add(3*time.Hour), "x", now))
-	b, err := NewArming(ArmingConfig{Cameras: []string{"north", "south"}, StatePath: path, MaxDisarm: 2 * time.Hour}, now.Add(time.Minute))
+	b, err := New(Config{Cameras: []string{"north", "south"}, StatePath: path, MaxDisarm: 2 * time.Hour}, now.Add(time.Minute))
 	require.NoError(t, err)
 	armed, _ = b.Armed("north", now.Add(2*time.Hour+2*time.Minute))
 	assert.True(t, armed, "the cut disarm was saved")

@@ -1,4 +1,4 @@
-package alert
+package bus
 
 import (
 	"stillwater/vision/refdata"
@@ -18,6 +18,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+	"stillwater/alert"
 )
 
 // These tests run real nats-server instances in process on loopback.
@@ -63,8 +64,8 @@ func connect(t testing.TB, url string, extra ...nats.Option) *nats.Conn {
 func targetJSON(t testing.TB, camera string, seq int, event string) []byte {
 	t.Helper()
 	at := time.Date(2026, 12, 2, 0, 0, 0, 0, time.UTC).Add(time.Duration(seq) * 100 * time.Millisecond)
-	b, err := Encode(Target{V: Version, Kind: KindTarget, Camera: camera, Track: 1, Seq: uint64(seq), Event: event,
-		Time: at, FrameTime: at, Frame: seq, Surface: Position{X: 1, Y: 2}, Floor: FloorPosition{X: 1, Y: 2, Depth: 1.2}})
+	b, err := alert.Encode(alert.Target{V: alert.Version, Kind: alert.KindTarget, Camera: camera, Track: 1, Seq: uint64(seq), Event: event,
+		Time: at, FrameTime: at, Frame: seq, Surface: alert.Position{X: 1, Y: 2}, Floor: alert.FloorPosition{X: 1, Y: 2, Depth: 1.2}})
 	require.NoError(t, err)
 	return b
 }
@@ -165,7 +166,7 @@ func TestOutageLosesNothing(t *testing.T) {
 			i := len(sent)
 			id := fmt.Sprintf("outage-%d", i)
 			t0 := time.Now()
-			require.NoError(t, p.Publish(ctx, "north", KindTarget, id, targetJSON(t, "north", i, "start")))
+			require.NoError(t, p.Publish(ctx, "north", alert.KindTarget, id, targetJSON(t, "north", i, "start")))
 			if d := time.Since(t0); d > maxBlock {
 				maxBlock = d
 			}
@@ -213,7 +214,7 @@ func TestOutboxSurvivesRestart(t *testing.T) {
 	pub := func(p *Publisher, n int) {
 		for i := 0; i < n; i++ {
 			id := fmt.Sprintf("restart-%d", len(sent))
-			require.NoError(t, p.Publish(context.Background(), "north", KindCleared, id, targetJSON(t, "north", len(sent), "start")))
+			require.NoError(t, p.Publish(context.Background(), "north", alert.KindCleared, id, targetJSON(t, "north", len(sent), "start")))
 			sent = append(sent, id)
 		}
 	}
@@ -256,7 +257,7 @@ func TestOutboxOverflowPolicy(t *testing.T) {
 	require.NoError(t, err)
 	defer ob.close()
 	push := func(id string, low bool) error {
-		_, err := ob.push(outboxRecord{ID: id, Subject: "sw.n." + KindTarget, Kind: KindTarget, Low: low, Data: []byte(`{"id":"` + id + `"}`)})
+		_, err := ob.push(outboxRecord{ID: id, Subject: "sw.n." + alert.KindTarget, Kind: alert.KindTarget, Low: low, Data: []byte(`{"id":"` + id + `"}`)})
 		return err
 	}
 	require.NoError(t, push("start", false))
@@ -294,7 +295,7 @@ func TestOutboxTornLastLine(t *testing.T) {
 	dir := t.TempDir()
 	ob, err := openOutbox(OutboxConfig{Dir: dir})
 	require.NoError(t, err)
-	_, err = ob.push(outboxRecord{ID: "a", Subject: "sw.n.target", Kind: KindTarget, Data: []byte(`{"v":1}`)})
+	_, err = ob.push(outboxRecord{ID: "a", Subject: "sw.n.target", Kind: alert.KindTarget, Data: []byte(`{"v":1}`)})
 	require.NoError(t, err)
 	require.NoError(t, ob.close())
 	f, err := os.OpenFile(filepath.Join(dir, "outbox.log"), os.O_APPEND|os.O_WRONLY, 0)
@@ -319,11 +320,11 @@ func TestHeartbeatDroppedWhileDown(t *testing.T) {
 	p, err := NewPublisherWith(context.Background(), nc, PublisherConfig{Prefix: "sw", Outbox: OutboxConfig{Dir: t.TempDir()}})
 	require.NoError(t, err)
 	defer p.Close()
-	require.NoError(t, p.Publish(context.Background(), "north", KindBeat, "", []byte(`{}`)))
+	require.NoError(t, p.Publish(context.Background(), "north", alert.KindBeat, "", []byte(`{}`)))
 	stop(srv)
 	require.Eventually(t, func() bool { return nc.Status() != nats.CONNECTED }, 5*time.Second, 10*time.Millisecond)
-	err = p.Publish(context.Background(), "north", KindBeat, "", []byte(`{}`))
-	assert.ErrorIs(t, err, ErrBusDown)
+	err = p.Publish(context.Background(), "north", alert.KindBeat, "", []byte(`{}`))
+	assert.ErrorIs(t, err, ErrNotConnected)
 	st := p.Stats()
 	assert.Equal(t, uint64(1), st.BeatsLost)
 	assert.Equal(t, 0, st.Depth, "heartbeats never go to the outbox")
@@ -413,7 +414,7 @@ func TestClusterFailover(t *testing.T) {
 			require.False(t, stopped.IsZero(), "leader %q not found", leader)
 		}
 		id := fmt.Sprintf("burst-%d", i)
-		require.NoError(t, p.Publish(ctx, "north", KindTarget, id, targetJSON(t, "north", i, "start")))
+		require.NoError(t, p.Publish(ctx, "north", alert.KindTarget, id, targetJSON(t, "north", i, "start")))
 		sent = append(sent, id)
 	}
 	waitDrained(t, p, 60*time.Second)
@@ -454,7 +455,7 @@ func BenchmarkPublishAcked(b *testing.B) {
 	b.ResetTimer()
 	start := time.Now()
 	for i := 0; i < b.N; i++ {
-		if err := p.Publish(context.Background(), "north", KindTarget, "bench-"+strconv.Itoa(i), msg); err != nil {
+		if err := p.Publish(context.Background(), "north", alert.KindTarget, "bench-"+strconv.Itoa(i), msg); err != nil {
 			b.Fatal(err)
 		}
 	}
@@ -480,7 +481,7 @@ func BenchmarkPublishOutboxed(b *testing.B) {
 	msg := targetJSON(b, "north", 1, "start")
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
-		if err := p.Publish(context.Background(), "north", KindTarget, "bench-"+strconv.Itoa(i), msg); err != nil {
+		if err := p.Publish(context.Background(), "north", alert.KindTarget, "bench-"+strconv.Itoa(i), msg); err != nil {
 			b.Fatal(err)
 		}
 	}
@@ -509,8 +510,8 @@ func TestStreamConfigApplied(t *testing.T) {
 
 	// The same id twice is stored once.
 	msg := targetJSON(t, "north", 1, "start")
-	require.NoError(t, p.Publish(context.Background(), "north", KindTarget, "same", msg))
-	require.NoError(t, p.Publish(context.Background(), "north", KindTarget, "same", msg))
+	require.NoError(t, p.Publish(context.Background(), "north", alert.KindTarget, "same", msg))
+	require.NoError(t, p.Publish(context.Background(), "north", alert.KindTarget, "same", msg))
 	assert.Equal(t, map[string]int{"same": 1}, streamIDs(t, srv.ClientURL(), "POOL"))
 }
 
@@ -525,7 +526,7 @@ func TestOversizedMessageIsNotQueued(t *testing.T) {
 		OnResult: func(r PublishResult) { results = append(results, r) }})
 	require.NoError(t, err)
 	defer p.Close()
-	err = p.Publish(context.Background(), "north", KindFault, "big", make([]byte, 2048))
+	err = p.Publish(context.Background(), "north", alert.KindFault, "big", make([]byte, 2048))
 	require.ErrorIs(t, err, nats.ErrMaxPayload, "no resend can fix it, so it fails at once")
 	assert.Equal(t, 0, p.Stats().Depth)
 	require.Len(t, results, 1)

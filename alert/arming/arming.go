@@ -1,4 +1,4 @@
-package alert
+package arming
 
 import (
 	"bytes"
@@ -16,29 +16,15 @@ import (
 	"time"
 	"unicode"
 	"unicode/utf8"
-)
 
-// AllCameras addresses every camera in Arming calls and control requests.
-const AllCameras = "all"
+	"stillwater/alert"
+)
 
 // forever is the Until of an override set without an end.
 func forever() time.Time { return time.Date(9999, 12, 31, 0, 0, 0, 0, time.UTC) }
 
-// ReservedCamera returns an error for camera ids that clash with the
-// control API: "all" addresses every camera and "control" is the subject
-// token of control requests (PREFIX.control.ACTION).
-func ReservedCamera(id string) error {
-	switch id {
-	case AllCameras:
-		return fmt.Errorf("camera id %q is reserved for addressing every camera", id)
-	case "control":
-		return fmt.Errorf("camera id %q is reserved: PREFIX.control.* carries control requests", id)
-	}
-	return nil
-}
-
-// ArmingConfig sets up per-camera arming.
-type ArmingConfig struct {
+// Config sets up per-camera arming.
+type Config struct {
 	// Cameras are the camera ids; "all" addresses every one of them.
 	Cameras []string
 	// Default is the schedule of cameras without their own; nil is armed
@@ -51,7 +37,7 @@ type ArmingConfig struct {
 	StatePath string
 	// MaxDisarm is the longest a disarm may last; default 24 h. A disarm
 	// always ends, so a forgotten one cannot leave the pool unwatched. A
-	// saved disarm that ends later than MaxDisarm after NewArming's now is
+	// saved disarm that ends later than MaxDisarm after New's now is
 	// cut to that bound.
 	MaxDisarm time.Duration
 	// Log receives a line for every saved record that is clamped, dropped
@@ -62,7 +48,7 @@ type ArmingConfig struct {
 // Arming holds one ArmState per camera and the overrides operators set.
 // Safe for concurrent use.
 type Arming struct {
-	cfg     ArmingConfig
+	cfg     Config
 	mu      sync.Mutex
 	states  map[string]*ArmState
 	ids     []string // sorted
@@ -77,8 +63,8 @@ type sentState struct {
 	override Override
 }
 
-// CameraArming is one camera's row of a status snapshot.
-type CameraArming struct {
+// CameraStatus is one camera's row of a status snapshot.
+type CameraStatus struct {
 	Camera   string          `json:"camera"`
 	Armed    bool            `json:"armed"`
 	Reason   string          `json:"reason"`
@@ -97,10 +83,10 @@ type OverrideStatus struct {
 	By    string     `json:"by,omitempty"`
 }
 
-// ArmingStatus is a snapshot of every camera at Time (UTC).
-type ArmingStatus struct {
+// Status is a snapshot of every camera at Time (UTC).
+type Status struct {
 	Time    time.Time      `json:"time"`
-	Cameras []CameraArming `json:"cameras"`
+	Cameras []CameraStatus `json:"cameras"`
 }
 
 // armingFile is the state file's form. FailSafe lists the cameras armed
@@ -116,13 +102,13 @@ type armingFile struct {
 // and a name of at most 64 characters fit with room to spare.
 const maxByLen = 128
 
-// NewArming builds the per-camera states and loads saved overrides from
+// New builds the per-camera states and loads saved overrides from
 // cfg.StatePath. A missing file is no override. A file that cannot be read
 // or parsed leaves every camera armed in fail-safe (its reason says so)
-// until an operator sets or clears its state: NewArming then returns the
+// until an operator sets or clears its state: New then returns the
 // usable *Arming together with an error wrapping ErrStateUnreadable, which
 // the caller should log loudly and go on.
-func NewArming(cfg ArmingConfig, now time.Time) (*Arming, error) {
+func New(cfg Config, now time.Time) (*Arming, error) {
 	if len(cfg.Cameras) == 0 {
 		return nil, errors.New("arming: no cameras")
 	}
@@ -134,10 +120,10 @@ func NewArming(cfg ArmingConfig, now time.Time) (*Arming, error) {
 	}
 	a := &Arming{cfg: cfg, states: map[string]*ArmState{}, sent: map[string]sentState{}, setAt: map[string]time.Time{}, changed: make(chan struct{}, 1)}
 	for _, id := range cfg.Cameras {
-		if err := ValidToken(id); err != nil {
+		if err := alert.ValidToken(id); err != nil {
 			return nil, fmt.Errorf("arming: camera %q: %v", id, err)
 		}
-		if err := ReservedCamera(id); err != nil {
+		if err := alert.ReservedCamera(id); err != nil {
 			return nil, fmt.Errorf("arming: %w", err)
 		}
 		if _, dup := a.states[id]; dup {
@@ -399,11 +385,11 @@ func byText(by string) string {
 
 // targets resolves camera or "all" to camera ids.
 func (a *Arming) targets(camera string) ([]string, error) {
-	if camera == AllCameras {
+	if camera == alert.AllCameras {
 		return a.ids, nil
 	}
 	if _, ok := a.states[camera]; !ok {
-		return nil, fmt.Errorf("unknown camera %q; want %q or one of %v", camera, AllCameras, a.ids)
+		return nil, fmt.Errorf("unknown camera %q; want %q or one of %v", camera, alert.AllCameras, a.ids)
 	}
 	return []string{camera}, nil
 }
@@ -499,14 +485,14 @@ func (a *Arming) nextChange(s *ArmState, now time.Time) (time.Time, bool) {
 }
 
 // Status returns every camera's state at now.
-func (a *Arming) Status(now time.Time) ArmingStatus {
+func (a *Arming) Status(now time.Time) Status {
 	a.mu.Lock()
 	defer a.mu.Unlock()
-	st := ArmingStatus{Time: now.UTC()}
+	st := Status{Time: now.UTC()}
 	for _, id := range a.ids {
 		s := a.states[id]
 		armed, reason := a.state(s, now)
-		row := CameraArming{Camera: id, Armed: armed, Reason: reason, FailSafe: s.failSafe}
+		row := CameraStatus{Camera: id, Armed: armed, Reason: reason, FailSafe: s.failSafe}
 		if o := s.override; !s.failSafe && o.Active(now) {
 			row.Override = &OverrideStatus{Armed: o.Armed, By: o.By}
 			if !o.Armed || !o.Until.Equal(forever()) {
@@ -528,10 +514,10 @@ func (a *Arming) Status(now time.Time) ArmingStatus {
 // reports every camera. A change's Time is when it took effect: the
 // operator's request, the override's end or the schedule boundary, not the
 // time of the Poll.
-func (a *Arming) Poll(now time.Time) []ArmedChange {
+func (a *Arming) Poll(now time.Time) []alert.ArmedChange {
 	a.mu.Lock()
 	defer a.mu.Unlock()
-	var out []ArmedChange
+	var out []alert.ArmedChange
 	for _, id := range a.ids {
 		s := a.states[id]
 		armed, reason := a.state(s, now)
@@ -544,7 +530,7 @@ func (a *Arming) Poll(now time.Time) []ArmedChange {
 			continue
 		}
 		at := a.changeTime(id, s, prev, now)
-		c := ArmedChange{V: Version, Kind: KindArmed, Camera: id, Time: at.UTC(), Armed: armed, Reason: reason, By: cur.By}
+		c := alert.ArmedChange{V: alert.Version, Kind: alert.KindArmed, Camera: id, Time: at.UTC(), Armed: armed, Reason: reason, By: cur.By}
 		if !cur.Until.IsZero() && (!cur.Armed || !cur.Until.Equal(forever())) {
 			u := cur.Until.UTC()
 			c.Until = &u
@@ -589,7 +575,7 @@ func (a *Arming) changeTime(id string, s *ArmState, prev sentState, now time.Tim
 // Run polls every tick and at once after each operator change, passing
 // every ArmedChange to emit, until ctx ends. The first poll reports every
 // camera, so subscribers learn the state at start-up. now is the clock.
-func (a *Arming) Run(ctx context.Context, now func() time.Time, tick time.Duration, emit func(ArmedChange)) error {
+func (a *Arming) Run(ctx context.Context, now func() time.Time, tick time.Duration, emit func(alert.ArmedChange)) error {
 	if tick <= 0 {
 		tick = time.Second
 	}
@@ -610,7 +596,7 @@ func (a *Arming) Run(ctx context.Context, now func() time.Time, tick time.Durati
 
 // SetSchedules replaces the schedules, as a configuration reload does,
 // keeping every override and fail-safe state. def and per have the same
-// meaning as ArmingConfig.Default and Schedules. A change the new
+// meaning as Config.Default and Schedules. A change the new
 // schedules cause is dated now by the next Poll.
 func (a *Arming) SetSchedules(def *Schedule, per map[string]*Schedule, now time.Time) error {
 	a.mu.Lock()

@@ -1,4 +1,4 @@
-package alert
+package arming
 
 import (
 	"bytes"
@@ -114,6 +114,17 @@ func writeFileAtomic(path string, data []byte) error {
 		return fmt.Errorf("sync directory: %w", err)
 	}
 	return nil
+}
+
+// syncDir flushes a directory's entries, so that a rename in it survives
+// a power cut.
+func syncDir(dir string) error {
+	d, err := os.Open(dir)
+	if err != nil {
+		return err
+	}
+	defer d.Close()
+	return d.Sync()
 }
 
 // LoadOverride reads an override saved by SaveOverride and returns whether

@@ -1,4 +1,4 @@
-package alert
+package bus
 
 import (
 	"context"
@@ -15,12 +15,17 @@ import (
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
+
+	"stillwater/alert"
 )
+
+// DefaultStreamName is the stream's name unless configured otherwise.
+const DefaultStreamName = "STILLWATER"
 
 // StreamConfig describes the JetStream stream that keeps alarm messages:
 // targets, cleared, faults and armed changes of every camera.
 type StreamConfig struct {
-	Name     string        // default STILLWATER
+	Name     string        // default DefaultStreamName
 	MaxAge   time.Duration // default 30 days
 	MaxBytes int64         // default 256 MiB
 	// Duplicates is how long the server remembers message ids to drop
@@ -33,7 +38,7 @@ type StreamConfig struct {
 
 func (sc StreamConfig) withDefaults() StreamConfig {
 	if sc.Name == "" {
-		sc.Name = "STILLWATER"
+		sc.Name = DefaultStreamName
 	}
 	if sc.MaxAge == 0 {
 		sc.MaxAge = 30 * 24 * time.Hour
@@ -53,7 +58,7 @@ func (sc StreamConfig) withDefaults() StreamConfig {
 // StreamSubjects returns the subjects the stream captures under prefix.
 func StreamSubjects(prefix string) []string {
 	var out []string
-	for _, k := range []string{KindTarget, KindCleared, KindFault, KindArmed} {
+	for _, k := range []string{alert.KindTarget, alert.KindCleared, alert.KindFault, alert.KindArmed} {
 		out = append(out, prefix+".*."+k)
 	}
 	return out
@@ -127,6 +132,13 @@ type PublisherConfig struct {
 	// StreamRetry is how often a stream that could not be created is
 	// tried again; default 1 s.
 	StreamRetry time.Duration
+	// Consumers names durable pull consumers the publisher keeps on the
+	// stream for integrators, each named after the bus user that reads it
+	// (the responder and operator roles may bind and read their own; see
+	// ConsumerConfig). Each is made when the stream is, if missing, and
+	// then holds every message stored since, until that user acknowledges
+	// it, so that a responder that was away catches up.
+	Consumers []string
 	// OnResult, if set, is called once per durable message when it is
 	// acknowledged, and for every message lost. It runs on the caller's
 	// or the drain goroutine; keep it short.
@@ -217,10 +229,15 @@ func NewPublisher(ctx context.Context, nc *nats.Conn, prefix string, sc StreamCo
 // outbox unless another stream on the server acknowledges them. Call Run
 // to drain the outbox and Close at the end.
 func NewPublisherWith(ctx context.Context, nc *nats.Conn, cfg PublisherConfig) (*Publisher, error) {
-	if err := ValidToken(cfg.Prefix); err != nil {
+	if err := alert.ValidToken(cfg.Prefix); err != nil {
 		return nil, fmt.Errorf("publisher: prefix: %v", err)
 	}
 	cfg.Stream = cfg.Stream.withDefaults()
+	for _, name := range cfg.Consumers {
+		if err := ValidUserName(name); err != nil {
+			return nil, fmt.Errorf("publisher: consumer name: %w", err)
+		}
+	}
 	if cfg.AckTimeout <= 0 {
 		cfg.AckTimeout = 2 * time.Second
 	}
@@ -252,7 +269,7 @@ func NewPublisherWith(ctx context.Context, nc *nats.Conn, cfg PublisherConfig) (
 			ob.close()
 			return nil, err
 		}
-		if errors.Is(err, ErrBusDown) {
+		if errors.Is(err, ErrNotConnected) {
 			log.Warn("bus not connected; messages wait in the outbox", "stream", cfg.Stream.Name)
 		}
 	}
@@ -265,7 +282,7 @@ func NewPublisherWith(ctx context.Context, nc *nats.Conn, cfg PublisherConfig) (
 
 // ensureStream creates or updates the stream unless it is known to be
 // there. While it is faulted, a new attempt is made at most every
-// StreamRetry unless force is set. It returns ErrBusDown (wrapped) while
+// StreamRetry unless force is set. It returns ErrNotConnected (wrapped) while
 // disconnected, and the fault otherwise.
 func (p *Publisher) ensureStream(ctx context.Context, force bool) error {
 	p.streamTry.Lock()
@@ -278,7 +295,7 @@ func (p *Publisher) ensureStream(ctx context.Context, force bool) error {
 	case ok:
 		return nil
 	case p.nc.Status() != nats.CONNECTED:
-		return fmt.Errorf("publisher: create stream %s: %w", sc.Name, ErrBusDown)
+		return fmt.Errorf("publisher: create stream %s: %w", sc.Name, ErrNotConnected)
 	case fault != nil && !force && time.Since(at) < p.cfg.StreamRetry:
 		return fault
 	}
@@ -295,6 +312,7 @@ func (p *Publisher) ensureStream(ctx context.Context, force bool) error {
 		Replicas:   sc.Replicas,
 	})
 	if err == nil {
+		p.ensureConsumers(cctx)
 		p.setStream(true, nil)
 		return nil
 	}
@@ -313,6 +331,33 @@ func (p *Publisher) ensureStream(ctx context.Context, force bool) error {
 	}
 	p.setStream(false, err)
 	return err
+}
+
+// ConsumerConfig is the durable consumer kept for a bus user: pull (no
+// deliver subject, so the server sends its messages only to whoever asks
+// with the user's permissions), every stream subject, messages stored
+// after it was made, explicit acknowledgement. A consumer of that name
+// that exists already is left as it is.
+func ConsumerConfig(user string) jetstream.ConsumerConfig {
+	return jetstream.ConsumerConfig{
+		Durable:       user,
+		Description:   "stillwater messages kept for bus user " + user,
+		DeliverPolicy: jetstream.DeliverNewPolicy,
+		AckPolicy:     jetstream.AckExplicitPolicy,
+	}
+}
+
+// ensureConsumers makes the configured durable consumers that are
+// missing. A failure is logged: the stream still stores every message,
+// and the next creation of the stream tries again.
+func (p *Publisher) ensureConsumers(ctx context.Context) {
+	for _, name := range p.cfg.Consumers {
+		_, err := p.js.CreateConsumer(ctx, p.cfg.Stream.Name, ConsumerConfig(name))
+		if err != nil && !errors.Is(err, jetstream.ErrConsumerExists) {
+			p.log.Error("durable consumer for a bus user cannot be made; that user cannot catch up on what it missed",
+				"stream", p.cfg.Stream.Name, "consumer", name, "err", err)
+		}
+	}
 }
 
 // owners lists the streams other than ours that hold any of subjects.
@@ -401,7 +446,7 @@ func (p *Publisher) streamLost() {
 // durable reports whether kind goes to the stream.
 func durable(kind string) bool {
 	switch kind {
-	case KindTarget, KindCleared, KindFault, KindArmed:
+	case alert.KindTarget, alert.KindCleared, alert.KindFault, alert.KindArmed:
 		return true
 	}
 	return false
@@ -409,7 +454,7 @@ func durable(kind string) bool {
 
 // lowPriority marks target updates: a later update supersedes them.
 func lowPriority(kind string, data []byte) bool {
-	if kind != KindTarget {
+	if kind != alert.KindTarget {
 		return false
 	}
 	var m struct {
@@ -423,15 +468,15 @@ func lowPriority(kind string, data []byte) bool {
 // message is acknowledged or safely queued in the outbox; the error is
 // ErrOutboxFull (wrapped) when it was refused, and the server's when it
 // refused the message outright (which then goes to the dead-letter file).
-// Heartbeats return ErrBusDown while disconnected. Publish waits at most
+// Heartbeats return ErrNotConnected while disconnected. Publish waits at most
 // AckTimeout.
 func (p *Publisher) Publish(ctx context.Context, camera, kind, id string, data []byte) error {
-	subj := Subject(p.cfg.Prefix, camera, kind)
+	subj := alert.Subject(p.cfg.Prefix, camera, kind)
 	if !durable(kind) {
 		if p.nc.Status() != nats.CONNECTED {
 			p.beatsLost.Add(1)
-			p.report(PublishResult{Camera: camera, Kind: kind, Err: ErrBusDown})
-			return fmt.Errorf("publish %s: %w", subj, ErrBusDown)
+			p.report(PublishResult{Camera: camera, Kind: kind, Err: ErrNotConnected})
+			return fmt.Errorf("publish %s: %w", subj, ErrNotConnected)
 		}
 		if err := p.nc.Publish(subj, data); err != nil {
 			return fmt.Errorf("publish %s: %w", subj, err)
@@ -455,7 +500,7 @@ func (p *Publisher) Publish(ctx context.Context, camera, kind, id string, data [
 	}
 	dropped, err := p.ob.push(rec)
 	for range dropped {
-		p.report(PublishResult{Kind: KindTarget, Outboxed: true, Err: errors.New("dropped from a full outbox")})
+		p.report(PublishResult{Kind: alert.KindTarget, Outboxed: true, Err: errors.New("dropped from a full outbox")})
 	}
 	if err != nil {
 		p.report(PublishResult{Camera: camera, Kind: kind, ID: id, Outboxed: true, Err: err})
@@ -562,7 +607,7 @@ func (p *Publisher) runRetries(ctx context.Context) {
 				continue
 			}
 			streamErr := p.ensureStream(ctx, false)
-			if errors.Is(streamErr, ErrBusDown) {
+			if errors.Is(streamErr, ErrNotConnected) {
 				break
 			}
 			if out, _ := p.try(ctx, rec, streamErr); out == tryBlocked || out == tryBroken {
@@ -607,13 +652,13 @@ func (p *Publisher) drain(ctx context.Context) error {
 			return err
 		}
 		if p.nc.Status() != nats.CONNECTED {
-			return ErrBusDown
+			return ErrNotConnected
 		}
 		if p.inRetryLane(rec) {
 			continue
 		}
 		streamErr := p.ensureStream(ctx, false)
-		if errors.Is(streamErr, ErrBusDown) {
+		if errors.Is(streamErr, ErrNotConnected) {
 			return streamErr
 		}
 		out, err := p.try(ctx, rec, streamErr)
@@ -784,22 +829,22 @@ func cameraOf(subject string) string {
 
 // PublishArmed encodes and publishes an armed change to
 // PREFIX.CAMERA.armed with ArmedID as its de-duplication id.
-func (p *Publisher) PublishArmed(ctx context.Context, c ArmedChange) error {
-	b, err := Encode(c)
+func (p *Publisher) PublishArmed(ctx context.Context, c alert.ArmedChange) error {
+	b, err := alert.Encode(c)
 	if err != nil {
 		return err
 	}
-	return p.Publish(ctx, c.Camera, KindArmed, ArmedID(c), b)
+	return p.Publish(ctx, c.Camera, alert.KindArmed, alert.ArmedID(c), b)
 }
 
 // PublishFault encodes and publishes a fault to PREFIX.CAMERA.fault; epoch
 // is the sender's start time, part of the de-duplication id (FaultID).
-func (p *Publisher) PublishFault(ctx context.Context, f Fault, epoch time.Time) error {
-	b, err := Encode(f)
+func (p *Publisher) PublishFault(ctx context.Context, f alert.Fault, epoch time.Time) error {
+	b, err := alert.Encode(f)
 	if err != nil {
 		return err
 	}
-	return p.Publish(ctx, f.Camera, KindFault, FaultID(f, epoch), b)
+	return p.Publish(ctx, f.Camera, alert.KindFault, alert.FaultID(f, epoch), b)
 }
 
 // Flush sends what the outbox holds (if the bus is up) and waits until the

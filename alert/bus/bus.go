@@ -1,4 +1,4 @@
-package alert
+package bus
 
 import (
 	"errors"
@@ -9,27 +9,51 @@ import (
 	"strings"
 	"syscall"
 	"time"
+	"unicode"
 
 	"github.com/nats-io/nats-server/v2/server"
+
+	"stillwater/alert"
 )
 
 // Roles of the embedded server's users. Each maps to NATS publish and
-// subscribe permissions under the subject prefix (see rolePermissions).
+// subscribe permissions under the subject prefix (see rolePermissions);
+// MQTT clients log in as the same users with the same permissions.
 const (
-	// RoleDaemon may publish PREFIX.> and use JetStream: the stillwater
-	// daemon itself, which also answers PREFIX.control.>.
+	// RoleDaemon may publish PREFIX.> (control subjects excepted) and use
+	// JetStream: the stillwater daemon itself, which also answers
+	// PREFIX.control.>.
 	RoleDaemon = "daemon"
-	// RoleResponder may subscribe PREFIX.> (but not the control requests)
-	// and request PREFIX.control.status.
+	// RoleResponder may subscribe PREFIX.> (but not the control requests),
+	// request status on PREFIX.control.status and on its own
+	// PREFIX.control.USER.status, and bind and read the durable consumer
+	// named after it on the stream (PublisherConfig.Consumers): look it
+	// up, pull its messages, acknowledge them. No other JetStream request.
 	RoleResponder = "responder"
 	// RoleOperator is a responder that may also request arm, disarm and
-	// clear.
+	// clear: on its own PREFIX.control.USER.ACTION, which only it may
+	// publish on so that the daemon can record who asked, and on the
+	// shared PREFIX.control.ACTION, where the control token is needed.
 	RoleOperator = "operator"
 )
 
-// BusUser is one user of the embedded server. Password may be plain or a
+// ValidUserName reports whether name can be a bus user of a role other
+// than the daemon's: it becomes a subject token (PREFIX.control.USER.…)
+// and the author of overrides ("nats:USER"), so 1 to 64 printable
+// characters without white space, dots, wildcards or slashes.
+func ValidUserName(name string) error {
+	if err := alert.ValidToken(name); err != nil {
+		return err
+	}
+	if len(name) > 64 || strings.ContainsAny(name, `/\`) || strings.IndexFunc(name, func(r rune) bool { return !unicode.IsPrint(r) }) >= 0 {
+		return fmt.Errorf("%q: want 1 to 64 printable characters without white space, dots, slashes, * or >", name)
+	}
+	return nil
+}
+
+// User is one user of the embedded server. Password may be plain or a
 // bcrypt hash ("$2a$..."), which nats-server accepts as such.
-type BusUser struct {
+type User struct {
 	Name     string
 	Password string
 	Role     string // RoleDaemon, RoleResponder or RoleOperator
@@ -58,15 +82,22 @@ type EmbeddedConfig struct {
 	StoreDir string
 	// Name is the server name (JetStream and MQTT need one).
 	Name string
-	// MQTT is host:port for the MQTT listener; empty leaves it off. The
-	// host defaults to 127.0.0.1 so MQTT stays local unless asked.
+	// MQTT is host:port for the MQTT (3.1.1) listener; empty leaves it
+	// off. The host defaults to 127.0.0.1 so MQTT stays local unless
+	// asked. MQTT clients log in as one of Users with that user's role;
+	// topics are the subjects with / for . (PREFIX/CAMERA/KIND, and
+	// PREFIX/+/target for every camera's targets).
 	MQTT string
 	// Prefix is the subject prefix the user roles are written against;
 	// required when Users is not empty.
 	Prefix string
+	// Stream is the name of the stream whose durable consumers responders
+	// and operators may read (see PublisherConfig.Consumers); default
+	// DefaultStreamName.
+	Stream string
 	// Users, when not empty, turn on authentication: every client (MQTT
 	// too) must log in as one of them.
-	Users []BusUser
+	Users []User
 	// Leaf lists remote servers to join as a leaf node.
 	Leaf []LeafRemote
 	// Domain is the JetStream domain of this server; it defaults to
@@ -159,8 +190,15 @@ func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 		opts.MQTT.Host, opts.MQTT.Port = mh, mp
 	}
 	if len(cfg.Users) > 0 {
-		if err := ValidToken(cfg.Prefix); err != nil {
+		if err := alert.ValidToken(cfg.Prefix); err != nil {
 			return nil, fmt.Errorf("embedded bus users: prefix: %v", err)
+		}
+		stream := cfg.Stream
+		if stream == "" {
+			stream = DefaultStreamName
+		}
+		if err := alert.ValidToken(stream); err != nil {
+			return nil, fmt.Errorf("embedded bus users: stream name: %v", err)
 		}
 		seen := map[string]bool{}
 		for i, u := range cfg.Users {
@@ -171,7 +209,12 @@ func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 				return nil, fmt.Errorf("embedded bus users[%d]: name %q used twice", i, u.Name)
 			}
 			seen[u.Name] = true
-			perms, err := rolePermissions(cfg.Prefix, u.Role)
+			if u.Role != RoleDaemon {
+				if err := ValidUserName(u.Name); err != nil {
+					return nil, fmt.Errorf("embedded bus users[%d]: name: %w", i, err)
+				}
+			}
+			perms, err := rolePermissions(cfg.Prefix, stream, u.Name, u.Role)
 			if err != nil {
 				return nil, fmt.Errorf("embedded bus users[%d] (%s): %w", i, u.Name, err)
 			}
@@ -192,30 +235,58 @@ func embeddedOptions(cfg EmbeddedConfig) (*server.Options, error) {
 	return opts, nil
 }
 
-// rolePermissions returns the NATS permissions of a role. Everyone may
-// subscribe to _INBOX.> because request replies and JetStream acks arrive
-// there. Control requests are hidden from responders and operators: they
-// may carry the control token.
-func rolePermissions(prefix, role string) (*server.Permissions, error) {
-	ctl := prefix + ".control."
+// rolePermissions returns the NATS permissions of user in role, the
+// ones the embedded server gives; an external server should give the
+// same. Everyone may subscribe to _INBOX.> because request replies,
+// JetStream acks and pulled messages arrive there. Control requests are
+// hidden from responders and operators, since they may carry the control
+// token, and no one but user may publish on user's control subjects, so
+// that a request there names its sender.
+//
+// A responder or operator reaches JetStream only through the durable
+// consumer named after it on stream: look it up (CONSUMER.INFO), pull
+// (CONSUMER.MSG.NEXT) and acknowledge ($JS.ACK, in both of the server's
+// reply formats). It may not create or change a consumer: the request
+// body, which permissions cannot see, could name a deliver subject, and
+// the server would then publish stored messages there in its own name.
+func rolePermissions(prefix, stream, user, role string) (*server.Permissions, error) {
+	ctl := alert.ControlSubject(prefix, ">")
 	inbox := "_INBOX.>"
 	switch role {
 	case RoleDaemon:
 		return &server.Permissions{
-			Publish:   &server.SubjectPermission{Allow: []string{prefix + ".>", "$JS.API.>", inbox}},
-			Subscribe: &server.SubjectPermission{Allow: []string{ctl + ">", inbox}},
+			Publish:   &server.SubjectPermission{Allow: []string{prefix + ".>", "$JS.API.>", inbox}, Deny: []string{ctl}},
+			Subscribe: &server.SubjectPermission{Allow: []string{ctl, inbox}},
 		}, nil
 	case RoleResponder, RoleOperator:
-		pub := []string{ctl + ActionStatus}
+		actions := []string{alert.ActionStatus}
 		if role == RoleOperator {
-			pub = append(pub, ctl+ActionArm, ctl+ActionDisarm, ctl+ActionClear)
+			actions = append(actions, alert.ActionArm, alert.ActionDisarm, alert.ActionClear)
 		}
+		var pub []string
+		for _, a := range actions {
+			pub = append(pub, alert.ControlSubject(prefix, a), alert.UserControlSubject(prefix, user, a))
+		}
+		pub = append(pub, consumerSubjects(stream, user)...)
 		return &server.Permissions{
 			Publish:   &server.SubjectPermission{Allow: pub},
-			Subscribe: &server.SubjectPermission{Allow: []string{prefix + ".>", inbox}, Deny: []string{ctl + ">"}},
+			Subscribe: &server.SubjectPermission{Allow: []string{prefix + ".>", inbox}, Deny: []string{ctl}},
 		}, nil
 	}
 	return nil, fmt.Errorf("role %q: want %s, %s or %s", role, RoleDaemon, RoleResponder, RoleOperator)
+}
+
+// consumerSubjects are the JetStream subjects that bind, pull from and
+// acknowledge the durable consumer of stream named user (nats-server's
+// $JS.API.CONSUMER.INFO, $JS.API.CONSUMER.MSG.NEXT, and the ack reply
+// subjects $JS.ACK.STREAM.CONSUMER.… and $JS.ACK.DOMAIN.ACCOUNT.STREAM.CONSUMER.…).
+func consumerSubjects(stream, user string) []string {
+	return []string{
+		"$JS.API.CONSUMER.INFO." + stream + "." + user,
+		"$JS.API.CONSUMER.MSG.NEXT." + stream + "." + user,
+		"$JS.ACK." + stream + "." + user + ".>",
+		"$JS.ACK.*.*." + stream + "." + user + ".>",
+	}
 }
 
 func leafRemote(l LeafRemote) (*server.RemoteLeafOpts, error) {
@@ -238,7 +309,7 @@ func leafRemote(l LeafRemote) (*server.RemoteLeafOpts, error) {
 			return nil, fmt.Errorf("creds file: %w", err)
 		}
 	}
-	tc, err := clientTLS(BusAuth{CAFile: l.CAFile, CertFile: l.CertFile, KeyFile: l.KeyFile})
+	tc, err := clientTLS(Auth{CAFile: l.CAFile, CertFile: l.CertFile, KeyFile: l.KeyFile})
 	if err != nil {
 		return nil, err
 	}

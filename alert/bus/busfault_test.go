@@ -1,4 +1,4 @@
-package alert
+package bus
 
 import (
 	"bytes"
@@ -19,6 +19,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/alert"
 	"stillwater/vision/refdata"
 )
 
@@ -96,7 +97,7 @@ func queueWhileDown(t *testing.T, dir, prefix string, n int) []string {
 	var ids []string
 	for i := 0; i < n; i++ {
 		id := fmt.Sprintf("%s-left-%d", prefix, i)
-		require.NoError(t, p.Publish(context.Background(), "north", KindTarget, id, targetJSON(t, "north", i, "start")))
+		require.NoError(t, p.Publish(context.Background(), "north", alert.KindTarget, id, targetJSON(t, "north", i, "start")))
 		ids = append(ids, id)
 	}
 	require.Equal(t, n, p.Stats().Depth)
@@ -128,7 +129,7 @@ func TestPoisonedHeadDoesNotBlock(t *testing.T) {
 			ec := EmbeddedConfig{Listen: "127.0.0.1:-1", StoreDir: t.TempDir(), Name: "poison"}
 			var auth []nats.Option
 			if c.users {
-				ec.Prefix, ec.Users = "sw", []BusUser{{"daemon", "d-pass", RoleDaemon}}
+				ec.Prefix, ec.Users = "sw", []User{{"daemon", "d-pass", RoleDaemon}}
 				auth = append(auth, nats.UserInfo("daemon", "d-pass"), nats.ErrorHandler(func(*nats.Conn, *nats.Subscription, error) {}))
 			}
 			emb, err := StartEmbedded(ec)
@@ -146,7 +147,7 @@ func TestPoisonedHeadDoesNotBlock(t *testing.T) {
 			runPublisher(t, p)
 
 			start := time.Now()
-			require.NoError(t, p.Publish(context.Background(), "north", KindTarget, "fresh", targetJSON(t, "north", 9, "start")))
+			require.NoError(t, p.Publish(context.Background(), "north", alert.KindTarget, "fresh", targetJSON(t, "north", 9, "start")))
 			require.Eventually(t, func() bool { _, ok := acks.acked("fresh"); return ok }, 30*time.Second, 5*time.Millisecond,
 				"a new target waits behind messages the server never acknowledges: %+v", p.Stats())
 			at, _ := acks.acked("fresh")
@@ -159,10 +160,10 @@ func TestPoisonedHeadDoesNotBlock(t *testing.T) {
 			for i, d := range dl {
 				assert.Equal(t, old[i], d.ID, "dead letters keep the queue's order")
 				assert.Equal(t, "old.north.target", d.Subject)
-				assert.Equal(t, KindTarget, d.Kind)
+				assert.Equal(t, alert.KindTarget, d.Kind)
 				assert.Equal(t, DeadLetterTries, d.Tries)
 				assert.Contains(t, d.Reason, c.reason)
-				var tg Target
+				var tg alert.Target
 				require.NoError(t, json.Unmarshal(d.Payload, &tg), "the original payload is kept as JSON")
 				assert.Equal(t, "north", tg.Camera)
 			}
@@ -185,8 +186,8 @@ func TestRefusedOutboxMessageIsDeadLettered(t *testing.T) {
 	p0, err := NewPublisherWith(context.Background(), deadBus(t), PublisherConfig{Prefix: "sw", Outbox: OutboxConfig{Dir: dir}})
 	require.NoError(t, err)
 	big := []byte(`{"v":1,"kind":"fault","camera":"north","message":"` + strings.Repeat("x", 2048) + `"}`)
-	require.NoError(t, p0.Publish(context.Background(), "north", KindFault, "big", big))
-	require.NoError(t, p0.Publish(context.Background(), "north", KindTarget, "small", targetJSON(t, "north", 1, "start")))
+	require.NoError(t, p0.Publish(context.Background(), "north", alert.KindFault, "big", big))
+	require.NoError(t, p0.Publish(context.Background(), "north", alert.KindTarget, "small", targetJSON(t, "north", 1, "start")))
 	require.NoError(t, p0.Close())
 
 	opts := singleNode(t, t.TempDir())
@@ -219,14 +220,14 @@ func TestDeletedStreamIsMadeAgain(t *testing.T) {
 	require.NoError(t, err)
 	defer p.Close()
 	runPublisher(t, p)
-	require.NoError(t, p.Publish(context.Background(), "north", KindTarget, "before", targetJSON(t, "north", 0, "start")))
+	require.NoError(t, p.Publish(context.Background(), "north", alert.KindTarget, "before", targetJSON(t, "north", 0, "start")))
 	js, err := jetstream.New(nc)
 	require.NoError(t, err)
 	require.NoError(t, js.DeleteStream(context.Background(), "STILLWATER"))
 	var sent []string
 	for i := 1; i <= 20; i++ {
 		id := fmt.Sprintf("after-%d", i)
-		require.NoError(t, p.Publish(context.Background(), "north", KindTarget, id, targetJSON(t, "north", i, "start")))
+		require.NoError(t, p.Publish(context.Background(), "north", alert.KindTarget, id, targetJSON(t, "north", i, "start")))
 		sent = append(sent, id)
 	}
 	waitDrained(t, p, 30*time.Second)
@@ -272,8 +273,8 @@ func TestEmptySubjectRecordIsSetAside(t *testing.T) {
 	dir := t.TempDir()
 	at := time.Date(2026, 12, 2, 0, 0, 0, 0, time.UTC)
 	writeOutboxLog(t, dir,
-		recordLine(t, outboxRecord{N: 1, ID: "bad", Subject: "", Kind: KindTarget, Queued: at, Data: targetJSON(t, "north", 1, "start")}),
-		recordLine(t, outboxRecord{N: 2, ID: "good", Subject: "sw.north.target", Kind: KindTarget, Queued: at, Data: targetJSON(t, "north", 2, "start")}))
+		recordLine(t, outboxRecord{N: 1, ID: "bad", Subject: "", Kind: alert.KindTarget, Queued: at, Data: targetJSON(t, "north", 1, "start")}),
+		recordLine(t, outboxRecord{N: 2, ID: "good", Subject: "sw.north.target", Kind: alert.KindTarget, Queued: at, Data: targetJSON(t, "north", 2, "start")}))
 
 	srv := mustStart(t, singleNode(t, t.TempDir()))
 	defer stop(srv)
@@ -352,7 +353,7 @@ func TestStreamOverlapIsAFault(t *testing.T) {
 
 			// The alarm still gets out through the stream that holds the subjects.
 			start := time.Now()
-			require.NoError(t, p.Publish(context.Background(), "north", KindTarget, "during", targetJSON(t, "north", 1, "start")))
+			require.NoError(t, p.Publish(context.Background(), "north", alert.KindTarget, "during", targetJSON(t, "north", 1, "start")))
 			require.Eventually(t, func() bool { _, ok := acks.acked("during"); return ok }, 10*time.Second, 10*time.Millisecond,
 				"a target published while the stream cannot be created was never acknowledged: %+v", p.Stats())
 			at, _ := acks.acked("during")
@@ -363,7 +364,7 @@ func TestStreamOverlapIsAFault(t *testing.T) {
 			fixed := time.Now()
 			require.Eventually(t, func() bool { return p.StreamFault() == nil }, 10*time.Second, 10*time.Millisecond)
 			recovered := time.Since(fixed)
-			require.NoError(t, p.Publish(context.Background(), "north", KindTarget, "after", targetJSON(t, "north", 2, "start")))
+			require.NoError(t, p.Publish(context.Background(), "north", alert.KindTarget, "after", targetJSON(t, "north", 2, "start")))
 			waitDrained(t, p, 10*time.Second)
 			assert.Equal(t, 1, streamIDs(t, srv.ClientURL(), c.mine)["after"])
 			refdata.Report(t, "stream overlap (%s): target acknowledged by %s %.1f ms after Publish; fault cleared %.2f s after the other stream was removed (retry every 0.2 s)",

@@ -1,4 +1,4 @@
-package alert
+package bus
 
 import (
 	"crypto/tls"
@@ -59,11 +59,11 @@ func (s Secret) Resolve(getenv func(string) string) (secret string, inline bool,
 	return v, false, nil
 }
 
-// BusAuth is how a client proves who it is to a NATS server and checks the
+// Auth is how a client proves who it is to a NATS server and checks the
 // server: at most one of user/password, token, NKey seed file and
 // credentials (JWT) file, plus optional TLS. Secrets are resolved by the
 // caller (see Secret) before they get here.
-type BusAuth struct {
+type Auth struct {
 	User     string
 	Password string
 	Token    string
@@ -82,7 +82,7 @@ type BusAuth struct {
 // ConnectOptions turns auth into nats.Options. Every file is read now so
 // that a missing or unreadable one fails at start-up with its name rather
 // than at the first reconnect.
-func ConnectOptions(a BusAuth) ([]nats.Option, error) {
+func ConnectOptions(a Auth) ([]nats.Option, error) {
 	var opts []nats.Option
 	kinds := 0
 	if a.User != "" || a.Password != "" {
@@ -127,7 +127,7 @@ func ConnectOptions(a BusAuth) ([]nats.Option, error) {
 	return opts, nil
 }
 
-func clientTLS(a BusAuth) (*tls.Config, error) {
+func clientTLS(a Auth) (*tls.Config, error) {
 	if a.CAFile == "" && a.CertFile == "" && a.KeyFile == "" {
 		return nil, nil
 	}
