@@ -157,7 +157,7 @@ func TestDriftPanAndStill(t *testing.T) {
 	night.Night = true
 	corner := synth.Default()
 	corner.Camera = synth.Pose{X: -1.2, Y: -1.0, Height: 2.5, YawDeg: 22, PitchDeg: 24, HFOVDeg: 80}
-	corner.Intruders = []synth.Intruder{{Enter: 5, Path: []synth.Waypoint{{T: 5, X: 3, Y: 2}, {T: 15, X: 6, Y: 2.5}}, AgeMonths: 24}}
+	corner.Intruders = []synth.Child{{Enter: 5, Path: []synth.Waypoint{{T: 5, X: 3, Y: 2}, {T: 15, X: 6, Y: 2.5}}, AgeMonths: 24}}
 	cases := []struct {
 		name  string
 		s     synth.Scene

@@ -469,7 +469,7 @@ func TestRefractionOnRenderedFrames(t *testing.T) {
 	dir := t.TempDir()
 	s := synth.Default()
 	s.Duration, s.Ripple, s.Glints = 12, 0.2, 0
-	s.Intruders = []synth.Intruder{{Enter: 2, Path: []synth.Waypoint{{T: 2, X: 2.5, Y: 1.2}, {T: 12, X: 6.5, Y: 2.8}}, AgeMonths: 24, Lying: true, Contrast: 0.8, Depth: 1.2}}
+	s.Intruders = []synth.Child{{Enter: 2, Path: []synth.Waypoint{{T: 2, X: 2.5, Y: 1.2}, {T: 12, X: 6.5, Y: 2.8}}, AgeMonths: 24, Lying: true, Contrast: 0.8, Depth: 1.2}}
 	clip := filepath.Join(dir, "c.avi")
 	truth, err := synth.Render(context.Background(), s, clip, "")
 	require.NoError(t, err)

@@ -34,6 +34,12 @@ type FrameTruth struct {
 	Frame    int         `json:"frame"`
 	T        float64     `json:"t_s"`
 	Intruder *Occupation `json:"intruder"`
+	// Outside is a family child who is in the picture but not in the
+	// water (walking to the edge); nil otherwise.
+	Outside *Occupation `json:"outside,omitempty"`
+	// Fault is the camera fault of this frame (black, frozen, noise), if
+	// any.
+	Fault string `json:"fault,omitempty"`
 }
 
 // Occupation is where an intruder is: the centre of its visible outline in
@@ -70,6 +76,20 @@ type Truth struct {
 	Camera   *Pose        `json:"camera,omitempty"`
 	Presence []Presence   `json:"presence"`
 	PerFrame []FrameTruth `json:"per_frame,omitempty"`
+
+	// Family scenes add what an installer knows beyond the corners (the
+	// chessboard lens, the pool's depth and the deck's height above the
+	// water) and the scene's faults and events. Corner pixels are on the
+	// raw (distorted) frame.
+	Seed       int64         `json:"seed,omitempty"`
+	Variant    string        `json:"variant,omitempty"`
+	Renderer   string        `json:"renderer,omitempty"`
+	Lens       *Lens         `json:"lens,omitempty"`
+	Depth      *DepthProfile `json:"depth,omitempty"`
+	DeckHeight float64       `json:"deck_height_m,omitempty"`
+	Night      bool          `json:"night,omitempty"`
+	Faults     []Fault       `json:"faults,omitempty"`
+	Events     []Event       `json:"events,omitempty"`
 }
 
 // PoolSize is the rectangle the pool frame is built on, metres.
@@ -105,16 +125,50 @@ func ReadTruth(path string) (Truth, error) {
 	return t, nil
 }
 
-// Render draws the scene into videoPath (an AVI container) and writes the
-// labels as JSON to truthPath. It returns the labels.
+// Render draws the scene into videoPath and writes the labels as JSON to
+// truthPath (none when empty). It returns the labels. Named scenes are
+// written with OpenCV's video writer (an AVI container); family scenes
+// through ffmpeg in the container VideoExt names.
 func Render(ctx context.Context, s Scene, videoPath, truthPath string) (Truth, error) {
 	if err := s.Validate(); err != nil {
 		return Truth{}, fmt.Errorf("render: %w", err)
 	}
-	n := s.frameCount()
-	if n == 0 {
+	if s.frameCount() == 0 {
 		return Truth{}, errNoFrames
 	}
+	var truth Truth
+	var err error
+	if s.World != nil {
+		truth, err = renderWorld(ctx, s, videoPath)
+	} else {
+		truth, err = renderTop(ctx, s, videoPath)
+	}
+	if err != nil {
+		return Truth{}, err
+	}
+	if truthPath != "" {
+		if err := writeTruth(truthPath, truth); err != nil {
+			return Truth{}, err
+		}
+	}
+	return truth, nil
+}
+
+// writeTruth writes labels as indented JSON.
+func writeTruth(path string, t Truth) error {
+	b, err := json.MarshalIndent(t, "", " ")
+	if err != nil {
+		return fmt.Errorf("write labels %s: %w", path, err)
+	}
+	if err := os.WriteFile(path, append(b, '\n'), 0o644); err != nil {
+		return fmt.Errorf("write labels: %w", err)
+	}
+	return nil
+}
+
+// renderTop draws a named scene with the top-down renderer.
+func renderTop(ctx context.Context, s Scene, videoPath string) (Truth, error) {
+	n := s.frameCount()
 	codec := s.Codec
 	if codec == "" {
 		codec = "MJPG"
@@ -142,15 +196,6 @@ func Render(ctx context.Context, s Scene, videoPath, truthPath string) (Truth, e
 		}
 	}
 	truth.Presence = presenceFrom(truth.PerFrame, s.FPS)
-	if truthPath != "" {
-		b, err := json.MarshalIndent(truth, "", " ")
-		if err != nil {
-			return Truth{}, err
-		}
-		if err := os.WriteFile(truthPath, append(b, '\n'), 0o644); err != nil {
-			return Truth{}, fmt.Errorf("render: write labels: %w", err)
-		}
-	}
 	return truth, nil
 }
 
@@ -566,7 +611,7 @@ func (r *renderer) paintIntruders(t, light float64) *Occupation {
 	return out
 }
 
-func (r *renderer) heading(in Intruder, t float64) float64 {
+func (r *renderer) heading(in Child, t float64) float64 {
 	x0, y0, _ := in.position(t - 0.5)
 	x1, y1, _ := in.position(t + 0.5)
 	if math.Hypot(x1-x0, y1-y0) < 1e-3 {

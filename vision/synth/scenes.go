@@ -10,7 +10,7 @@ func Scenarios(seed int64) map[string]Scene {
 	base.Seed = seed
 	walkIn := []Waypoint{{T: 8, X: 1.2, Y: 0.8}, {T: 12, X: 3.0, Y: 1.8}, {T: 16, X: 5.0, Y: 2.4}}
 	child := func(s Scene, path []Waypoint) Scene {
-		s.Intruders = []Intruder{{Enter: path[0].T, Path: path, AgeMonths: 24, Contrast: 1}}
+		s.Intruders = []Child{{Enter: path[0].T, Path: path, AgeMonths: 24, Contrast: 1}}
 		return s
 	}
 	with := func(f func(*Scene)) Scene {

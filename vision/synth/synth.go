@@ -25,6 +25,9 @@ type Pose struct {
 	YawDeg   float64 `json:"yaw_deg"`
 	PitchDeg float64 `json:"pitch_deg"`
 	HFOVDeg  float64 `json:"hfov_deg"`
+	// RollDeg turns the camera about its optical axis; only family
+	// scenes use it.
+	RollDeg float64 `json:"roll_deg,omitempty"`
 }
 
 // Waypoint is where the intruder is at time T (seconds of media time).
@@ -32,8 +35,8 @@ type Waypoint struct {
 	T, X, Y float64
 }
 
-// Intruder is a child in the water.
-type Intruder struct {
+// Child is an intruder: a child who gets into the water.
+type Child struct {
 	// Enter and Exit are media seconds; Exit 0 means until the end.
 	Enter, Exit float64
 	// Path is interpolated linearly; before the first and after the last
@@ -52,6 +55,17 @@ type Intruder struct {
 	// it is drawn where the camera sees it: displaced by refraction at the
 	// surface (Snell's law, water index WaterIndex) towards the camera.
 	Depth float64
+
+	// The fields below are read by the family renderer only. There the
+	// path may start on the deck: the child walks to the edge and gets in,
+	// and it is in the water while its centre is inside the pool.
+
+	// Look is the child's skin, hair, suit and size; nil draws a default.
+	Look *ChildLook `json:"look,omitempty"`
+	// SinkAt and SinkDur ramp Depth and Contrast from the surface (0 and
+	// 1) to their values over SinkDur seconds from media time SinkAt.
+	SinkAt  float64 `json:"sink_at_s,omitempty"`
+	SinkDur float64 `json:"sink_dur_s,omitempty"`
 }
 
 // WaterIndex is the refractive index of water the renderer bends sight
@@ -91,12 +105,16 @@ type Scene struct {
 	Night      bool
 	Cloud      *Cloud
 	Bird       *Bird
-	Intruders  []Intruder
+	Intruders  []Child
 	// PanAt and PanDeg turn the camera by PanDeg of yaw at media time PanAt
 	// (a bumped camera); zero PanDeg means no pan.
 	PanAt, PanDeg float64
-	// Codec is a FourCC for the video writer; empty selects MJPG.
+	// Codec is a FourCC for the video writer; empty selects MJPG. Family
+	// scenes use World.Encoding instead.
 	Codec string
+	// World, when set, makes this a family scene (see FamilyScene) drawn
+	// by the camera-space renderer.
+	World *World `json:",omitempty"`
 }
 
 // Default returns a daylight scene: an 8 m × 4 m pool, the camera 5 m up
@@ -129,7 +147,7 @@ func (s Scene) Validate() error {
 		return fmt.Errorf("scene size %dx%d: want at least 64x48", s.Width, s.Height)
 	case s.PoolLength <= 0 || s.PoolWidth <= 0:
 		return fmt.Errorf("pool %gx%g m: want positive length and width", s.PoolLength, s.PoolWidth)
-	case s.PPM < 10:
+	case s.World == nil && s.PPM < 10:
 		return fmt.Errorf("ppm %g: want at least 10 px/m", s.PPM)
 	case s.Camera.Height <= 0:
 		return fmt.Errorf("camera height %g m: want above the water", s.Camera.Height)
@@ -137,6 +155,11 @@ func (s Scene) Validate() error {
 		return fmt.Errorf("camera hfov %g°: want between 1 and 170", s.Camera.HFOVDeg)
 	case s.Camera.PitchDeg <= 0 || s.Camera.PitchDeg > 90:
 		return fmt.Errorf("camera pitch %g°: want looking down, 0 < pitch ≤ 90", s.Camera.PitchDeg)
+	}
+	if s.World != nil {
+		if err := s.World.validate(s); err != nil {
+			return fmt.Errorf("scene world: %w", err)
+		}
 	}
 	for i, in := range s.Intruders {
 		if len(in.Path) == 0 {
@@ -268,7 +291,7 @@ func abs(x int) int {
 
 // position returns where the intruder is at time t and whether it is in
 // the water then.
-func (in Intruder) position(t float64) (x, y float64, present bool) {
+func (in Child) position(t float64) (x, y float64, present bool) {
 	if t < in.Enter || (in.Exit > 0 && t >= in.Exit) {
 		return 0, 0, false
 	}

@@ -15,7 +15,7 @@ func TestRenderWritesClipAndLabels(t *testing.T) {
 	dir := t.TempDir()
 	s := Default()
 	s.Duration = 3
-	s.Intruders = []Intruder{{Enter: 1, Path: []Waypoint{{T: 1, X: 4, Y: 2}, {T: 3, X: 5, Y: 2}}, AgeMonths: 24}}
+	s.Intruders = []Child{{Enter: 1, Path: []Waypoint{{T: 1, X: 4, Y: 2}, {T: 3, X: 5, Y: 2}}, AgeMonths: 24}}
 	video := filepath.Join(dir, "c.avi")
 	truth, err := Render(context.Background(), s, video, filepath.Join(dir, "c.json"))
 	require.NoError(t, err)

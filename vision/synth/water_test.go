@@ -52,7 +52,7 @@ func TestRenderSubmergedLabels(t *testing.T) {
 	s := Default()
 	s.Duration = 1
 	s.Ripple, s.Glints, s.Noise = 0, 0, 0
-	s.Intruders = []Intruder{{Path: []Waypoint{{T: 0, X: 5, Y: 2}}, AgeMonths: 24, Lying: true, Contrast: 0.6, Depth: 1.2}}
+	s.Intruders = []Child{{Path: []Waypoint{{T: 0, X: 5, Y: 2}}, AgeMonths: 24, Lying: true, Contrast: 0.6, Depth: 1.2}}
 	truth, err := Render(context.Background(), s, filepath.Join(dir, "c.avi"), filepath.Join(dir, "c.json"))
 	require.NoError(t, err)
 	back, err := ReadTruth(filepath.Join(dir, "c.json"))
