@@ -231,7 +231,8 @@ func pooled(name string, cs []clipScore) clipScore {
 		d += c.Duration
 	}
 	return clipScore{Name: name, Duration: d, FreeHours: t.FreeHours, Presences: t.Presences, Detected: t.Detected,
-		Delays: t.Delays, False: t.False, Errors: t.Errors, Breaks: t.Breaks}
+		Delays: t.Delays, False: t.False, Errors: t.Errors, Breaks: t.Breaks,
+		FaultsLabelled: t.FaultsLabelled, FaultsRaised: t.FaultsRaised, FaultDelays: t.FaultDelays, FalseFaults: t.FalseFaults, FaultTargets: t.FaultTargets}
 }
 
 // TestScenarioQuick is the suite's quick cousin: three 20 s scenes that
