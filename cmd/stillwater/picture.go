@@ -66,7 +66,7 @@ func (p *pictureFaults) observe(media time.Duration, s vision.HealthStats, armed
 		switch {
 		case kind == want && armed && !p.active[kind]:
 			p.active[kind] = true
-			out = append(out, faultChange{Kind: kind, Active: true, Detail: fmt.Sprintf("picture %s for %.1f s", rep.Condition, (media-rep.Since).Seconds())})
+			out = append(out, faultChange{Kind: kind, Active: true, Detail: fmt.Sprintf("picture %s for %.1f s", rep.Condition, (media - rep.Since).Seconds())})
 		case kind != want && p.active[kind]:
 			p.active[kind] = false
 			out = append(out, faultChange{Kind: kind, Active: false})
