@@ -322,6 +322,14 @@ type HealthConfig struct {
 	// reported; zero takes the default (1 s), not Hold, because the
 	// window already spans most of a second.
 	FrozenHold time.Duration
+	// LivelyFor is how long the water must have been seen moving just
+	// before it stops for the stop to count as a freeze.
+	LivelyFor time.Duration
+	// CalmMemory is how long still spells that ended on their own are
+	// remembered; while any is, the frozen hold is half as long again as
+	// the longest, up to MaxFrozenHold.
+	CalmMemory    time.Duration
+	MaxFrozenHold time.Duration
 	// Recover is how long the picture must be fine again before the fault
 	// is cleared, media time.
 	Recover time.Duration
@@ -344,6 +352,9 @@ func DefaultHealth() HealthConfig {
 		NoiseCorrelation: 0.35,
 		Hold:             2 * time.Second,
 		FrozenHold:       time.Second,
+		LivelyFor:        3 * time.Second,
+		CalmMemory:       10 * time.Minute,
+		MaxFrozenHold:    8 * time.Second,
 		Recover:          2 * time.Second,
 	}
 }
@@ -377,6 +388,15 @@ func (c HealthConfig) withDefaults() HealthConfig {
 	if c.FrozenHold <= 0 {
 		c.FrozenHold = d.FrozenHold
 	}
+	if c.LivelyFor <= 0 {
+		c.LivelyFor = d.LivelyFor
+	}
+	if c.CalmMemory <= 0 {
+		c.CalmMemory = d.CalmMemory
+	}
+	if c.MaxFrozenHold <= 0 {
+		c.MaxFrozenHold = d.MaxFrozenHold
+	}
 	return c
 }
 
@@ -393,7 +413,7 @@ func (c HealthConfig) Validate() error {
 		return fmt.Errorf("health frozen share %g: want 0–1", c.FrozenShare)
 	case c.NoiseCorrelation < 0 || c.NoiseCorrelation > 1:
 		return fmt.Errorf("health noise correlation %g: want 0–1", c.NoiseCorrelation)
-	case c.Hold < 0 || c.Recover < 0 || c.FrozenHold < 0 || c.FrozenWindow < 0:
+	case c.Hold < 0 || c.Recover < 0 || c.FrozenHold < 0 || c.FrozenWindow < 0 || c.LivelyFor < 0 || c.CalmMemory < 0 || c.MaxFrozenHold < 0:
 		return fmt.Errorf("health hold %v / frozen hold %v / frozen window %v / recover %v: want non-negative", c.Hold, c.FrozenHold, c.FrozenWindow, c.Recover)
 	}
 	return nil
@@ -453,11 +473,16 @@ type HealthMonitor struct {
 	candSince time.Duration
 	hasCand   bool
 	window    []stillMark // measured frames of the last FrozenWindow, oldest first
+	// movingFrom is when the current run of frames with moving water
+	// began, stillFrom when the current still spell began; -1 for none.
+	movingFrom, stillFrom time.Duration
+	eligible              bool        // the current still spell followed LivelyFor of moving water
+	spells                []calmSpell // still spells that ended on their own, oldest first
 }
 
 // NewHealthMonitor returns a monitor that starts in CondOK.
 func NewHealthMonitor(cfg HealthConfig) *HealthMonitor {
-	return &HealthMonitor{cfg: cfg.withDefaults(), cur: CondOK}
+	return &HealthMonitor{cfg: cfg.withDefaults(), cur: CondOK, movingFrom: -1, stillFrom: -1}
 }
 
 // Condition returns the reported condition.
@@ -468,8 +493,74 @@ func (m *HealthMonitor) Condition() Condition { return m.cur }
 const minStillFrames = 3
 
 // frame judges one frame: dark, uniform and noise on its own statistics;
-// frozen when enough of the window's frames were still.
+// frozen when enough of the window's frames were still, and the water was
+// seen moving for LivelyFor just before. An encoder that drops the small
+// changes of calm water sends a live picture that is as still between key
+// frames as a frozen one: the monitor only calls a picture frozen when it
+// stops after the water was seen moving, and it learns how long this
+// camera's water stays still on its own (see frozenHold).
 func (m *HealthMonitor) frame(t time.Duration, s HealthStats) (Condition, float64) {
+	f, share := m.stillness(t, s)
+	switch f {
+	case CondFrozen:
+		if m.stillFrom < 0 {
+			m.stillFrom = t
+			m.eligible = m.movingFrom >= 0 && t-m.movingFrom >= m.cfg.LivelyFor
+			m.movingFrom = -1
+		}
+		if !m.eligible {
+			return CondOK, share
+		}
+	case CondOK, CondNoise:
+		if m.stillFrom >= 0 {
+			m.calm(t, t-m.stillFrom)
+			m.stillFrom = -1
+		}
+		switch {
+		case f == CondNoise:
+			m.movingFrom = -1
+		case m.movingFrom < 0:
+			m.movingFrom = t
+		}
+	default:
+		m.stillFrom, m.movingFrom = -1, -1
+	}
+	return f, share
+}
+
+// calmSpell is a still spell that ended with the water moving again.
+type calmSpell struct{ end, dur time.Duration }
+
+// calm records a still spell that ended at t after d; one longer than
+// MaxFrozenHold is taken for a picture that froze and came back, not for
+// calm water, and is not kept.
+func (m *HealthMonitor) calm(t, d time.Duration) {
+	if d > m.cfg.MaxFrozenHold {
+		return
+	}
+	m.spells = append(m.spells, calmSpell{end: t, dur: d})
+}
+
+// frozenHold is how long a still picture must last at time t to be
+// reported frozen: FrozenHold, or half as long again as this camera's
+// longest still spell of the last CalmMemory that ended on its own, at
+// most MaxFrozenHold.
+func (m *HealthMonitor) frozenHold(t time.Duration) time.Duration {
+	drop := 0
+	for drop < len(m.spells) && t-m.spells[drop].end > m.cfg.CalmMemory {
+		drop++
+	}
+	m.spells = append(m.spells[:0], m.spells[drop:]...)
+	h := m.cfg.FrozenHold
+	for _, sp := range m.spells {
+		h = max(h, sp.dur*3/2)
+	}
+	return min(h, max(m.cfg.MaxFrozenHold, m.cfg.FrozenHold))
+}
+
+// stillness judges one frame: dark, uniform and noise on its own
+// statistics; frozen when enough of the window's frames were still.
+func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, float64) {
 	f := m.cfg.Classify(s)
 	switch {
 	case f == CondDark || f == CondUniform:
@@ -543,7 +634,7 @@ func (m *HealthMonitor) Observe(t time.Duration, s HealthStats) HealthReport {
 		case CondOK:
 			need = m.cfg.Recover
 		case CondFrozen:
-			need = m.cfg.FrozenHold
+			need = m.frozenHold(t)
 		}
 		if t-m.candSince >= need {
 			m.cur, m.since, m.hasCand = m.cand, m.candSince, false

@@ -372,11 +372,12 @@ func TestHealthMonitorHoldAndRecover(t *testing.T) {
 	still.Diff, still.Motion = 0, 0
 	noise := HealthStats{Mean: 127, Spread: 70, HasPrev: true, Diff: 80, HasMotion: true, Motion: 80, Correlation: 0.01}
 	ms := func(v int) time.Duration { return time.Duration(v) * time.Millisecond }
-	// A frozen picture re-encoded with a key frame every second from 2 s:
-	// the frame after each key frame, and the one after it (MotionLag is
-	// two frames at 10 fps), differ from the frame 0.2 s before.
+	// A frozen picture re-encoded with a key frame every second from 4 s
+	// (after 4 s of moving water, more than LivelyFor): the frame after
+	// each key frame, and the one after it (MotionLag is two frames at
+	// 10 fps), differ from the frame 0.2 s before.
 	keyFrames := func(at time.Duration) HealthStats {
-		if at < 2*time.Second {
+		if at < 4*time.Second {
 			return ok
 		}
 		if at%time.Second < ms(200) {
@@ -423,24 +424,41 @@ func TestHealthMonitorHoldAndRecover(t *testing.T) {
 		}, []check{{ms(2000), CondDark}, {ms(3000), CondDark}, {ms(4000), CondDark}, {ms(4100), CondOK}}},
 		{"noise", HealthConfig{}, ms(2000), func(time.Duration) HealthStats { return noise },
 			[]check{{ms(1900), CondOK}, {ms(2000), CondNoise}}},
-		// The window holds 16 frames; 10 of them are still at 3.3 s
-		// (2.2–2.9 s and 3.2–3.3 s: the key frames at 2 s and 3 s move),
-		// a share of 0.62; the frozen hold of 1 s ends at 4.3 s, 2.3 s after
+		// The window holds 16 frames; 10 of them are still at 5.3 s
+		// (4.2–4.9 s and 5.2–5.3 s: the key frames at 4 s and 5 s move),
+		// a share of 0.62; the frozen hold of 1 s ends at 6.3 s, 2.3 s after
 		// the picture froze. Later key frames do not break it.
-		{"frozen through key frames", HealthConfig{}, ms(8000), keyFrames,
-			[]check{{ms(4200), CondOK}, {ms(4300), CondFrozen}, {ms(5000), CondFrozen}, {ms(8000), CondFrozen}}},
-		{"frozen hold of its own", HealthConfig{FrozenHold: 3 * time.Second}, ms(7000), keyFrames,
-			[]check{{ms(6200), CondOK}, {ms(6300), CondFrozen}}},
-		// Moving again at 6 s: the share drops under 0.6 at 6.4 s (9 of
+		{"frozen through key frames", HealthConfig{}, ms(10000), keyFrames,
+			[]check{{ms(6200), CondOK}, {ms(6300), CondFrozen}, {ms(7000), CondFrozen}, {ms(10000), CondFrozen}}},
+		{"frozen hold of its own", HealthConfig{FrozenHold: 3 * time.Second}, ms(9000), keyFrames,
+			[]check{{ms(8200), CondOK}, {ms(8300), CondFrozen}}},
+		// Moving again at 8 s: the share drops under 0.6 at 8.4 s (9 of
 		// 16), and 2 s later the fault clears.
-		{"frozen clears when the water moves", HealthConfig{}, ms(9000), func(at time.Duration) HealthStats {
-			if at >= 6*time.Second {
+		{"frozen clears when the water moves", HealthConfig{}, ms(11000), func(at time.Duration) HealthStats {
+			if at >= 8*time.Second {
 				return ok
 			}
 			return keyFrames(at)
-		}, []check{{ms(4300), CondFrozen}, {ms(8300), CondFrozen}, {ms(8400), CondOK}}},
+		}, []check{{ms(6300), CondFrozen}, {ms(10300), CondFrozen}, {ms(10400), CondOK}}},
+		// Still from the start, with key frames: the water was never seen
+		// moving, so stillness says nothing (an encoder that drops calm
+		// water's small changes sends this from a live camera).
+		{"never seen moving, never frozen", HealthConfig{}, ms(20000), func(at time.Duration) HealthStats {
+			return keyFrames(at + 4*time.Second)
+		}, []check{{ms(20000), CondOK}}},
+		// Moving water, then a calm spell of 3 s that ends on its own (a
+		// false fault: it lasts beyond the 1 s hold), moving again, then
+		// another 3 s spell: the hold is now 1.5 × the first spell's
+		// 3.3 s, and the second spell raises nothing.
+		{"calm spells lengthen the hold", HealthConfig{}, ms(30000), func(at time.Duration) HealthStats {
+			switch {
+			case at >= 4*time.Second && at < 7*time.Second, at >= 14*time.Second && at < 17*time.Second:
+				return keyFrames(at)
+			}
+			return ok
+		}, []check{{ms(6300), CondFrozen}, {ms(9500), CondOK}, {ms(16900), CondOK}, {ms(19000), CondOK}, {ms(30000), CondOK}}},
 		{"one still frame in three is live water", HealthConfig{}, ms(10000), func(at time.Duration) HealthStats {
-			if (at/ms(100))%3 == 0 {
+			if (at/ms(100))%3 == 0 && at >= 4*time.Second {
 				return still
 			}
 			return ok

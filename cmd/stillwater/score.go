@@ -61,6 +61,10 @@ type clipScore struct {
 	FaultDelays    []float64
 	FalseFaults    int
 	FaultTargets   int
+	// FaultKinds and FaultEach are the labelled faults in label order:
+	// the fault each should raise, and its delay, s (NaN when never).
+	FaultKinds []string
+	FaultEach  []float64
 }
 
 // faultKindOf returns the fault a labelled camera fault should raise:
@@ -220,7 +224,9 @@ func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules)
 			}
 		}
 	}
+	cs.FaultKinds = faultKinds
 	for i, f := range t.Faults {
+		cs.FaultEach = append(cs.FaultEach, faultAt[i]-f.From)
 		if !math.IsNaN(faultAt[i]) {
 			cs.FaultsRaised++
 			cs.FaultDelays = append(cs.FaultDelays, faultAt[i]-f.From)
