@@ -506,21 +506,25 @@ func (m *HealthMonitor) frame(t time.Duration, s HealthStats) (Condition, float6
 		if m.stillFrom < 0 {
 			m.stillFrom = t
 			m.eligible = m.movingFrom >= 0 && t-m.movingFrom >= m.cfg.LivelyFor
-			m.movingFrom = -1
 		}
+		// A dip shorter than FrozenWindow does not end the spell.
+		m.movingFrom = -1
 		if !m.eligible {
 			return CondOK, share
 		}
 	case CondOK, CondNoise:
-		if m.stillFrom >= 0 {
-			m.calm(t, t-m.stillFrom)
-			m.stillFrom = -1
-		}
-		switch {
-		case f == CondNoise:
+		if f == CondNoise {
 			m.movingFrom = -1
-		case m.movingFrom < 0:
+			m.stillFrom = -1
+			break
+		}
+		if m.movingFrom < 0 {
 			m.movingFrom = t
+		}
+		// The spell ends once the water has moved for a whole window.
+		if m.stillFrom >= 0 && t-m.movingFrom >= m.cfg.FrozenWindow {
+			m.calm(t, m.movingFrom-m.stillFrom)
+			m.stillFrom = -1
 		}
 	default:
 		m.stillFrom, m.movingFrom = -1, -1

@@ -440,6 +440,15 @@ func TestHealthMonitorHoldAndRecover(t *testing.T) {
 			}
 			return keyFrames(at)
 		}, []check{{ms(6300), CondFrozen}, {ms(10300), CondFrozen}, {ms(10400), CondOK}}},
+		// A burst of change half a second long in the middle of a freeze
+		// (a re-encode, an overlay) does not end it: the water must move
+		// for a whole window before the spell counts as over.
+		{"a short burst does not end a freeze", HealthConfig{}, ms(14000), func(at time.Duration) HealthStats {
+			if at >= 8*time.Second && at < ms(8500) {
+				return ok
+			}
+			return keyFrames(at)
+		}, []check{{ms(6300), CondFrozen}, {ms(9000), CondFrozen}, {ms(14000), CondFrozen}}},
 		// Still from the start, with key frames: the water was never seen
 		// moving, so stillness says nothing (an encoder that drops calm
 		// water's small changes sends this from a live camera).
