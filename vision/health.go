@@ -338,10 +338,11 @@ type HealthConfig struct {
 // DefaultHealth returns the default thresholds. The dark, uniform and noise
 // levels are set with margin against the synthetic scenes and the
 // opencv-doc reference footage (see health_test.go). The still level sits
-// between the water's smallest measured change (0.12 grey levels: calm
-// water under a strong temporal denoiser and H.264 at CRF 30) and a frozen
-// picture's between key frames (at most 0.03 after the first 0.5 s); the
-// share, window and holds report every fault within 3 s of its onset.
+// between the least water motion measured on a live picture once its
+// denoiser has settled (0.064 grey levels: calm night water under a strong
+// temporal denoiser, H.264 at 1 Mbit/s) and a frozen picture's between key
+// frames (at most 0.03 after its first 0.5 s); the share, window and holds
+// report every fault within 3 s of its onset on a camera whose water moves.
 func DefaultHealth() HealthConfig {
 	return HealthConfig{
 		DarkLevel:        8,
