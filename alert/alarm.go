@@ -2,6 +2,7 @@ package alert
 
 import (
 	"math"
+	"slices"
 	"time"
 )
 
@@ -71,12 +72,13 @@ func NewAlarm(cfg AlarmConfig, fps float64) *Alarm {
 }
 
 // Step takes the tracks seen at media time now. When armed is false no new
-// alarm starts and no updates go out; live alarms still clear.
+// alarm starts and no updates go out; live alarms still clear. Targets come
+// in the order of tracks, then cleared decisions in track order. A track
+// is cleared ClearAfter after it was last seen, whether or not tracks
+// still lists it.
 func (a *Alarm) Step(now time.Duration, tracks []Observation, armed bool) []Decision {
 	var out []Decision
-	seen := map[int]bool{}
 	for _, o := range tracks {
-		seen[o.Track] = true
 		if o.Last != now {
 			continue // kept alive by the tracker but not seen in this frame
 		}
@@ -95,11 +97,20 @@ func (a *Alarm) Step(now time.Duration, tracks []Observation, armed bool) []Deci
 			out = append(out, Decision{Kind: KindTarget, Event: "start", Obs: o, Dwell: dwell, Confidence: a.confidence(o)})
 		}
 	}
+	// Clearing goes by the time since the last sighting alone, whether or
+	// not the tracker still lists the track; in track order, so that
+	// replays repeat.
+	var gone []int
 	for id, act := range a.active {
-		if now-act.obs.Last >= a.cfg.ClearAfter || (!seen[id] && now-act.obs.Last >= a.cfg.ClearAfter) {
-			out = append(out, Decision{Kind: KindCleared, Obs: act.obs, Dwell: act.obs.Last - act.obs.First})
-			delete(a.active, id)
+		if now-act.obs.Last >= a.cfg.ClearAfter {
+			gone = append(gone, id)
 		}
+	}
+	slices.Sort(gone)
+	for _, id := range gone {
+		act := a.active[id]
+		out = append(out, Decision{Kind: KindCleared, Obs: act.obs, Dwell: act.obs.Last - act.obs.First})
+		delete(a.active, id)
 	}
 	return out
 }

@@ -1,8 +1,10 @@
-// Package alert decides when a tracked object is an alarm, and carries the
-// result to the message bus: wire messages, subjects, the embedded server,
-// publishing with an on-disk outbox, per-camera arming and the control
-// API that changes it. Positions are pool metres (origin at corner A, x along
-// the length, y along the width); times are UTC.
+// Package alert decides when a tracked object is an alarm and says so on
+// the wire: alarm decisions, the wire messages with their JSON Schemas,
+// and the subjects they and control requests travel on. Arming (schedules,
+// overrides, control) lives in alert/arming and the bus (embedded server,
+// roles, publisher, outbox) in alert/bus. Positions are pool metres
+// (origin at corner A, x along the length, y along the width); times are
+// UTC.
 package alert
 
 import (

@@ -7,9 +7,8 @@ import (
 	"io"
 	"math"
 	"net/url"
-	"os"
 	"strings"
-	"sync"
+	"syscall"
 	"time"
 
 	"gocv.io/x/gocv"
@@ -21,7 +20,9 @@ type SourceConfig struct {
 	// V4L2 device path (/dev/video0, /dev/v4l/by-id/...), or a video file
 	// path.
 	URI string
-	// Transport is "tcp" or "udp" for RTSP; empty lets OpenCV choose.
+	// Transport is "tcp" or "udp" for RTSP; empty lets FFmpeg choose (UDP
+	// first, then TCP). Cameras whose RTSP transports differ open one
+	// kind at a time (see ffmpegEnv).
 	Transport string
 	// OpenTimeout and ReadTimeout bound the FFmpeg backend's blocking calls
 	// (RTSP, HTTP, files); zero keeps OpenCV's default (30 s). V4L2 devices
@@ -35,6 +36,10 @@ type SourceConfig struct {
 	// one, frames are dropped unsearched until it is not (see backlog.go).
 	// Zero selects 500 ms; negative never drops.
 	MaxLag time.Duration
+	// Gate runs the opens of this source (see OpenGate); nil gives the
+	// Camera a gate of its own. Share one across OpenCamera calls for the
+	// same source so that an abandoned open is not started again.
+	Gate *OpenGate
 }
 
 // Result is what one frame yielded.
@@ -144,12 +149,9 @@ type Camera struct {
 	ev         *evidence
 	rejoin     *rejoin // non-nil while frames are only probed
 	lag        backlog
+	gate       *OpenGate
 	closed     bool
 }
-
-// envMu serialises changes to OpenCV's FFmpeg options variable, which the
-// backend reads from the process environment at open time.
-var envMu sync.Mutex
 
 // Redact returns uri with any password replaced, for logs and errors.
 func Redact(uri string) string {
@@ -174,7 +176,10 @@ func OpenCamera(sc SourceConfig, dc DetectorConfig) (*Camera, error) {
 	if sc.Transport != "" && sc.Transport != "tcp" && sc.Transport != "udp" {
 		return nil, fmt.Errorf("open camera %q: transport %q: want tcp, udp or empty", red, sc.Transport)
 	}
-	cam := &Camera{sc: sc, dc: dc, kind: kindOf(sc.URI), frame: gocv.NewMat(), scratch: gocv.NewMat(), started: time.Now()}
+	cam := &Camera{sc: sc, dc: dc, kind: kindOf(sc.URI), frame: gocv.NewMat(), scratch: gocv.NewMat(), started: time.Now(), gate: sc.Gate}
+	if cam.gate == nil {
+		cam.gate = &OpenGate{}
+	}
 	if err := cam.open(); err != nil {
 		cam.Close()
 		return nil, fmt.Errorf("open camera %q: %w", red, err)
@@ -188,19 +193,27 @@ func OpenCamera(sc SourceConfig, dc DetectorConfig) (*Camera, error) {
 		return nil, fmt.Errorf("open camera %q: %w", red, err)
 	}
 	cam.det = det
+	cam.health.watch(dc.Mask)
 	if cam.kind == kindRTSP || cam.kind == kindHTTP {
 		cam.rejoin = &rejoin{}
 	}
 	return cam, nil
 }
 
-// open opens the capture and reads the first frame into c.frame.
+// open opens the capture and reads the first frame into c.frame. The
+// open runs through the camera's gate (see OpenGate): it returns after at
+// most openWait whatever the backend does, holding nothing.
 func (c *Camera) open() error {
-	if c.kind == kindFile || c.kind == kindV4L2 {
-		if _, err := os.Stat(c.sc.URI); err != nil {
-			return err
-		}
+	if stuck, since := c.gate.Stuck(); stuck {
+		return fmt.Errorf("%w (blocked for %v)", ErrOpenStuck, time.Since(since).Round(time.Second))
 	}
+	ffmpegEnv.ensure()
+	src, err := c.prepare()
+	if err != nil {
+		return err
+	}
+	wait := c.openWait()
+	deadline := time.Now().Add(wait)
 	api := capFFmpeg
 	openMs, readMs := int(c.sc.OpenTimeout/time.Millisecond), int(c.sc.ReadTimeout/time.Millisecond)
 	if c.kind == kindV4L2 {
@@ -208,26 +221,47 @@ func (c *Camera) open() error {
 		// device itself.
 		api, openMs, readMs = capV4L2, 0, 0
 	}
-	envMu.Lock()
-	opts := ""
-	if c.kind == kindRTSP && c.sc.Transport != "" {
-		opts = "rtsp_transport;" + c.sc.Transport
+	r := c.gate.run(wait, func() openResult {
+		release := func() {}
+		if c.kind == kindRTSP {
+			var err error
+			if release, err = ffmpegEnv.acquire(rtspOptions(c.sc.Transport), deadline); err != nil {
+				if src.fd >= 0 {
+					syscall.Close(src.fd)
+				}
+				return openResult{err: err}
+			}
+		}
+		cp, err := openCapture(src.uri, api, openMs, readMs)
+		release() // the backend has read the options
+		if err != nil {
+			if src.fd >= 0 {
+				syscall.Close(src.fd)
+			}
+			return openResult{err: err}
+		}
+		cp.fd = src.fd
+		m := gocv.NewMat()
+		ok, err := cp.read(&m)
+		if err == nil && (!ok || m.Empty()) {
+			err = errors.New("no first frame")
+		}
+		if err != nil {
+			m.Close()
+			cp.Close()
+			return openResult{err: err}
+		}
+		return openResult{cp: cp, frame: m}
+	})
+	if r.err != nil {
+		if errors.Is(r.err, ErrOpenStuck) && src.fd >= 0 {
+			syscall.Close(src.fd) // refused before the open ran
+		}
+		return r.err
 	}
-	os.Setenv("OPENCV_FFMPEG_CAPTURE_OPTIONS", opts)
-	cp, err := openCapture(c.sc.URI, api, openMs, readMs)
-	envMu.Unlock()
-	if err != nil {
-		return err
-	}
-	ok, err := cp.read(&c.scratch)
-	if err == nil && (!ok || c.scratch.Empty()) {
-		err = errors.New("no first frame")
-	}
-	if err != nil {
-		cp.Close()
-		return err
-	}
-	c.frame, c.scratch = c.scratch, c.frame
+	cp := r.cp
+	c.frame.Close()
+	c.frame = r.frame
 	c.cap = cp
 	c.primed = true
 	c.stats.FramesRead++
@@ -275,7 +309,7 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 	r := Result{Index: c.index, Size: c.det.srcSize(), Media: c.mediaTime()}
 	c.index++
 	c.media = r.Media
-	r.Health = c.health.measure(c.frame)
+	r.Health = c.health.measure(c.frame, r.Media)
 	if c.ev != nil {
 		if err := c.ev.add(c.frame, r.Media); err != nil {
 			return r, fmt.Errorf("frame %d: %w", r.Index, err)

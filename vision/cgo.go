@@ -2,6 +2,7 @@ package vision
 
 // #cgo pkg-config: opencv4
 // #cgo CXXFLAGS: -std=c++11
+// #cgo LDFLAGS: -ldl
 // #include <stdlib.h>
 // #include "shim.h"
 import "C"
@@ -9,6 +10,7 @@ import "C"
 import (
 	"errors"
 	"fmt"
+	"syscall"
 	"unsafe"
 
 	"gocv.io/x/gocv"
@@ -66,6 +68,9 @@ func (b *background) Close() error {
 // capture is a video capture opened with open-time timeouts.
 type capture struct {
 	p C.SwCapture
+	// fd is a descriptor the backend reads from (a named pipe opened
+	// here, handed over as pipe:N), closed after the capture; -1 when none.
+	fd int
 }
 
 // OpenCV videoio property ids (opencv2/videoio.hpp).
@@ -79,6 +84,8 @@ const (
 
 var errCaptureClosed = errors.New("capture closed")
 
+// openCapture opens uri with the backend api. It blocks for as long as the
+// backend does: callers go through an OpenGate.
 func openCapture(uri string, api int, openMs, readMs int) (*capture, error) {
 	cs := C.CString(uri)
 	defer C.free(unsafe.Pointer(cs))
@@ -87,7 +94,7 @@ func openCapture(uri string, api int, openMs, readMs int) (*capture, error) {
 	if p == nil {
 		return nil, errors.New(C.GoString(&buf[0]))
 	}
-	return &capture{p: p}, nil
+	return &capture{p: p, fd: -1}, nil
 }
 
 // read grabs and decodes the next frame into dst. ok is false at the end of
@@ -138,11 +145,16 @@ func (c *capture) get(prop int) float64 {
 	return float64(C.sw_cap_get(c.p, C.int(prop)))
 }
 
-// Close releases the capture. It is safe to call twice.
+// Close releases the capture, then the descriptor it read from. It is
+// safe to call twice.
 func (c *capture) Close() error {
 	if c.p != nil {
 		C.sw_cap_close(c.p)
 		c.p = nil
+	}
+	if c.fd >= 0 {
+		syscall.Close(c.fd)
+		c.fd = -1
 	}
 	return nil
 }

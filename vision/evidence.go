@@ -29,6 +29,11 @@ type EvidenceConfig struct {
 	// FPS is the frame rate written into clips; zero takes the source's
 	// nominal rate, or 10 when it has none.
 	FPS float64
+	// OnWritten, if set, is called on the evidence writer's goroutine
+	// after each snapshot is written and each clip is finished, or failed.
+	// It may take its time (prune old files, log): it holds up only the
+	// writer, never the frames.
+	OnWritten func(EvidenceWritten)
 }
 
 // Annotation is what Snapshot draws over the latest frame. Coordinates are
@@ -55,27 +60,38 @@ var (
 	captionColor = color.RGBA{R: 255, G: 255, B: 255}
 )
 
-// jpegFrame is one buffered frame.
+// jpegFrame is one buffered frame. data is never changed once made, so
+// the ring and the writer share it.
 type jpegFrame struct {
 	media time.Duration
 	data  []byte
 }
 
-// evidence holds the pre-roll ring and the clip being written.
+// evidence holds the pre-roll ring and the state of the clip being
+// recorded, on the camera's side; its writer does the file work.
 type evidence struct {
-	cfg     EvidenceConfig
-	fps     float64
-	ring    []jpegFrame
-	writer  *gocv.VideoWriter
-	path    string
-	until   time.Duration // media time of the last frame of the clip
-	written int
-	size    image.Point
+	cfg  EvidenceConfig
+	fps  float64
+	ring []jpegFrame
+	size image.Point
+	// The clip being recorded: path is "" when none. The writer follows
+	// the same rule (a clip ends with the first frame at or past until).
+	path  string
+	until time.Duration
+	w     *evidenceWriter
+}
+
+// ringCap is the most frames the pre-roll needs: PreRoll of frames at
+// the clip rate, and the newest one.
+func (e *evidence) ringCap() int {
+	return int(math.Ceil(e.cfg.PreRoll.Seconds()*e.fps)) + 1
 }
 
 // EnableEvidence starts buffering recent frames (JPEG in memory) from the
-// next call to Next, so that StartClip can include a pre-roll. Calling it
-// again changes the settings for later clips.
+// next call to Next, so that StartClip can include a pre-roll, and starts
+// the camera's evidence writer: a goroutine that writes clips and
+// snapshots off the frame path (Close stops it). Calling it again changes
+// the settings for later clips.
 func (c *Camera) EnableEvidence(cfg EvidenceConfig) error {
 	if cfg.PreRoll < 0 || cfg.PostRoll < 0 {
 		return fmt.Errorf("evidence: pre-roll %v and post-roll %v must not be negative", cfg.PreRoll, cfg.PostRoll)
@@ -101,74 +117,76 @@ func (c *Camera) EnableEvidence(cfg EvidenceConfig) error {
 	}
 	if c.ev != nil {
 		c.ev.cfg, c.ev.fps = cfg, fps
+		c.ev.w.setNotify(cfg.OnWritten)
 		return nil
 	}
-	c.ev = &evidence{cfg: cfg, fps: fps}
+	c.ev = &evidence{cfg: cfg, fps: fps, w: startEvidenceWriter(cfg.OnWritten)}
 	return nil
 }
 
-// add buffers frame and, while a clip is open, writes it.
+// add buffers frame and, while a clip is recorded, hands it to the
+// writer. It never waits for the writer.
 func (e *evidence) add(frame gocv.Mat, media time.Duration) error {
 	data, err := encodeJPEG(frame, e.cfg.Quality)
 	if err != nil {
 		return fmt.Errorf("evidence: %w", err)
 	}
 	e.size = image.Pt(frame.Cols(), frame.Rows())
-	e.ring = append(e.ring, jpegFrame{media: media, data: data})
+	f := jpegFrame{media: media, data: data}
+	e.ring = append(e.ring, f)
 	cut := 0
 	for cut < len(e.ring) && e.ring[cut].media <= media-e.cfg.PreRoll {
 		cut++
 	}
+	// A source whose timestamps barely move (repeated stamps are stepped
+	// by 1 ms) would otherwise fill the ring without bound.
+	cut = max(cut, len(e.ring)-e.ringCap())
 	if cut > 0 {
-		e.ring = append(e.ring[:0], e.ring[cut:]...)
+		n := copy(e.ring, e.ring[cut:])
+		clear(e.ring[n:])
+		e.ring = e.ring[:n]
 	}
-	if e.writer == nil {
+	if e.path == "" {
 		return nil
 	}
-	if err := e.writer.Write(frame); err != nil {
-		return fmt.Errorf("evidence: write %s: %w", e.path, err)
-	}
-	e.written++
+	e.w.frame(f)
 	if media >= e.until {
-		return e.finish()
+		e.path = ""
 	}
 	return nil
 }
 
-// finish closes the clip being written, if any.
-func (e *evidence) finish() error {
-	if e.writer == nil {
-		return nil
-	}
-	err := e.writer.Close()
-	e.writer, e.path = nil, ""
-	if err != nil {
-		return fmt.Errorf("evidence: close clip: %w", err)
-	}
-	return nil
-}
-
-// resize finishes the clip and drops the buffer after a frame size change.
+// resize ends the clip and drops the buffer after a frame size change.
 func (e *evidence) resize() error {
+	clear(e.ring)
 	e.ring = e.ring[:0]
-	return e.finish()
+	if e.path != "" {
+		e.path = ""
+		e.w.finish()
+	}
+	return nil
 }
 
-// Close finishes the clip being written.
-func (e *evidence) Close() error { return e.finish() }
+// Close finishes the clip being written and stops the writer, after it
+// has written everything queued. It returns the writer's first error
+// since the camera opened, if no OnWritten callback took it.
+func (e *evidence) Close() error { return e.w.stop() }
 
-// ClipInfo describes the clip StartClip is writing.
+// ClipInfo describes the clip StartClip asked for.
 type ClipInfo struct {
 	Path     string        // the file being written
 	Extended bool          // true when a clip was already open and now runs longer
 	Until    time.Duration // media time of the clip's last frame
-	PreRoll  int           // frames written from the buffer
+	PreRoll  int           // frames handed over from the buffer
 }
 
-// StartClip writes the buffered pre-roll to path (an MJPG .avi) and keeps
-// writing every frame Next reads until PostRoll of media time after the
-// latest frame. If a clip is already being written it is extended instead
-// and path is ignored. Close finishes an open clip.
+// StartClip starts a clip at path (a Motion-JPEG .avi) with the buffered
+// pre-roll, and keeps adding every frame Next reads until PostRoll of
+// media time after the latest frame. It returns at once: the camera's
+// evidence writer creates and writes the file, and reports the finished
+// clip, or its failure, to EvidenceConfig.OnWritten. If a clip is already
+// being recorded it is extended instead and path is ignored. Close
+// finishes an open clip.
 func (c *Camera) StartClip(path string) (ClipInfo, error) {
 	if c.closed {
 		return ClipInfo{}, errCaptureClosed
@@ -178,53 +196,51 @@ func (c *Camera) StartClip(path string) (ClipInfo, error) {
 		return ClipInfo{}, errors.New("start clip: evidence is not enabled (call EnableEvidence)")
 	}
 	until := c.media + e.cfg.PostRoll
-	if e.writer != nil {
+	if e.path != "" {
 		e.until = until
+		e.w.extend(until)
 		return ClipInfo{Path: e.path, Extended: true, Until: until}, nil
 	}
 	if len(e.ring) == 0 {
 		return ClipInfo{}, fmt.Errorf("start clip %s: no frame read yet", path)
 	}
-	w, err := gocv.VideoWriterFile(path, "MJPG", e.fps, e.size.X, e.size.Y, true)
-	if err != nil {
+	pre := append([]jpegFrame(nil), e.ring...)
+	if err := e.w.start(clipJob{path: path, until: until, fps: e.fps, size: e.size, pre: pre}); err != nil {
 		return ClipInfo{}, fmt.Errorf("start clip %s: %w", path, err)
 	}
-	if !w.IsOpened() {
-		w.Close()
-		return ClipInfo{}, fmt.Errorf("start clip %s: the MJPG video writer did not open", path)
-	}
-	e.writer, e.path, e.until, e.written = w, path, until, 0
-	for _, f := range e.ring {
-		if err := e.writeJPEG(f.data); err != nil {
-			e.finish()
-			return ClipInfo{}, fmt.Errorf("start clip %s: %w", path, err)
-		}
-	}
-	return ClipInfo{Path: path, Until: until, PreRoll: len(e.ring)}, nil
+	e.path, e.until = path, until
+	return ClipInfo{Path: path, Until: until, PreRoll: len(pre)}, nil
 }
 
-func (e *evidence) writeJPEG(data []byte) error {
-	m, err := gocv.IMDecode(data, gocv.IMReadColor)
-	if err != nil {
-		return fmt.Errorf("decode buffered frame: %w", err)
-	}
-	defer m.Close()
-	if m.Empty() {
-		return errors.New("decode buffered frame: empty image")
-	}
-	if err := e.writer.Write(m); err != nil {
-		return fmt.Errorf("write buffered frame: %w", err)
-	}
-	e.written++
-	return nil
-}
-
-// Recording returns the path of the clip being written, or "".
+// Recording returns the path of the clip being recorded, or "". The
+// writer may still be writing a clip after it is no longer recorded.
 func (c *Camera) Recording() string {
 	if c.ev == nil {
 		return ""
 	}
 	return c.ev.path
+}
+
+// SaveSnapshot has the evidence writer write the latest frame, with the
+// annotation drawn over it, as a JPEG at path. It returns at once; the
+// writer reports the file, or its failure, to EvidenceConfig.OnWritten.
+func (c *Camera) SaveSnapshot(path string, a Annotation) error {
+	if c.closed {
+		return errCaptureClosed
+	}
+	if c.ev == nil {
+		return errors.New("save snapshot: evidence is not enabled (call EnableEvidence)")
+	}
+	if c.frame.Empty() {
+		return errors.New("save snapshot: no frame read yet")
+	}
+	img := c.frame.Clone()
+	annotate(&img, a)
+	if err := c.ev.w.snapshot(snapJob{path: path, img: img, quality: c.ev.cfg.Quality}); err != nil {
+		img.Close()
+		return fmt.Errorf("save snapshot %s: %w", path, err)
+	}
+	return nil
 }
 
 // Snapshot returns the latest frame as a JPEG with the annotation drawn over it. It

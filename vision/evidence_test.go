@@ -81,6 +81,8 @@ func TestClipHasPreRollAndPostRoll(t *testing.T) {
 		require.NoError(t, err)
 		require.Less(t, r.Media, last+time.Minute, "clip never finished")
 	}
+	// The writer works on its own goroutine: wait for what is queued.
+	cam.ev.w.sync()
 	// Pre-roll 20 + 15 frames + 30 frames (3 s) after the extension.
 	n, sz := countFrames(t, out)
 	assert.Equal(t, 20+15+30, n)

@@ -1,7 +1,12 @@
 #include "shim.h"
 
+#include <dlfcn.h>
+#include <unistd.h>
+
+#include <cstdarg>
 #include <cstring>
 #include <exception>
+#include <mutex>
 #include <string>
 #include <vector>
 
@@ -21,7 +26,70 @@ void copyErr(const std::exception& e, char* err, int errlen) {
     err[errlen - 1] = 0;
 }
 
+// libavutil's logging entry points (stable since libavutil 55), looked up
+// in the process rather than linked, so that building needs no FFmpeg
+// headers.
+typedef void (*AvLogCallback)(void*, int, const char*, va_list);
+typedef void (*AvLogSetCallback)(AvLogCallback);
+typedef int (*AvLogFormatLine2)(void*, int, const char*, va_list, char*, int, int*);
+typedef int (*AvLogGetLevel)(void);
+
+struct LogForward {
+    std::mutex mu;
+    int fd = -1;
+    int printPrefix = 1;
+    std::string pending;  // a line FFmpeg has not finished yet
+    AvLogSetCallback setCallback = nullptr;
+    AvLogCallback defaultCallback = nullptr;
+    AvLogFormatLine2 formatLine = nullptr;
+    AvLogGetLevel getLevel = nullptr;
+};
+
+LogForward& logForward() {
+    static LogForward lf;
+    return lf;
+}
+
+void forwardLog(void* avcl, int level, const char* fmt, va_list vl) {
+    LogForward& lf = logForward();
+    // FFmpeg leaves the level check to the callback (its default one
+    // does it too); OpenCV sets the level.
+    if (level > lf.getLevel()) return;
+    char line[1024];
+    std::lock_guard<std::mutex> lock(lf.mu);
+    if (lf.fd < 0) return;
+    lf.formatLine(avcl, level, fmt, vl, line, sizeof line, &lf.printPrefix);
+    lf.pending += line;
+    for (size_t nl; (nl = lf.pending.find('\n')) != std::string::npos;) {
+        std::string out = std::to_string(level) + " " + lf.pending.substr(0, nl) + "\n";
+        if (write(lf.fd, out.data(), out.size()) < 0) {
+            // The reader is behind: the line is dropped, FFmpeg never waits.
+        }
+        lf.pending.erase(0, nl + 1);
+    }
+    if (lf.pending.size() > 4096) lf.pending.clear();
+}
+
 }  // namespace
+
+int sw_log_forward(int fd) {
+    LogForward& lf = logForward();
+    std::lock_guard<std::mutex> lock(lf.mu);
+    if (lf.setCallback == nullptr) {
+        lf.setCallback = reinterpret_cast<AvLogSetCallback>(dlsym(RTLD_DEFAULT, "av_log_set_callback"));
+        lf.defaultCallback = reinterpret_cast<AvLogCallback>(dlsym(RTLD_DEFAULT, "av_log_default_callback"));
+        lf.formatLine = reinterpret_cast<AvLogFormatLine2>(dlsym(RTLD_DEFAULT, "av_log_format_line2"));
+        lf.getLevel = reinterpret_cast<AvLogGetLevel>(dlsym(RTLD_DEFAULT, "av_log_get_level"));
+    }
+    if (lf.setCallback == nullptr || lf.defaultCallback == nullptr || lf.formatLine == nullptr || lf.getLevel == nullptr) {
+        return -1;
+    }
+    lf.fd = fd;
+    lf.pending.clear();
+    lf.printPrefix = 1;
+    lf.setCallback(fd >= 0 ? forwardLog : lf.defaultCallback);
+    return 0;
+}
 
 SwBackground sw_bg_new(int kind, int history, double threshold, int shadows) {
     auto* b = new Background;

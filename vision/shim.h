@@ -77,6 +77,14 @@ int sw_pool_glint(void* frame, void* rate, void* prev, double a, int level, char
 int sw_pool_update(void* img, void* mean, void* var, void* gain, void* water, void* hold, void* extra, void* glint,
                    SwPoolParams p, void* score, void* contrast, char* err, int errlen);
 
+// sw_log_forward sends FFmpeg's own log lines (those FFmpeg's level lets
+// through; OpenCV sets it to errors) to fd, one per line as "LEVEL text\n",
+// instead of stderr. fd should be non-blocking: a line the pipe cannot
+// take at once is dropped. fd < 0 puts FFmpeg's default logger back.
+// Returns 0, or -1 when libavutil's log functions are not in the process
+// (found at run time, so the build needs no FFmpeg headers).
+int sw_log_forward(int fd);
+
 #ifdef __cplusplus
 }
 #endif

@@ -1,15 +1,23 @@
 package main
 
 import (
+	"bytes"
 	"context"
+	"errors"
 	"flag"
 	"fmt"
 	"io"
+	"io/fs"
+	"os"
+	"path/filepath"
+	"sort"
 	"strings"
+	"syscall"
 	"text/tabwriter"
 	"time"
 
 	"stillwater/alert"
+	"stillwater/alert/arming"
 	"stillwater/vision"
 )
 
@@ -20,6 +28,7 @@ func runCheck(_ context.Context, args []string, stdout, stderr io.Writer) error 
 	fs.SetOutput(stderr)
 	path := fs.String("config", "/etc/stillwater/stillwater.yaml", "config `file` to check")
 	at := fs.String("at", "", "evaluate the arming schedule at this RFC 3339 `time` instead of now")
+	dataDir := fs.String("data-dir", "", "data `directory` (overrides data_dir, as run -data-dir does)")
 	if err := fs.Parse(args); err != nil {
 		return errUsage
 	}
@@ -35,7 +44,102 @@ func runCheck(_ context.Context, args []string, stdout, stderr io.Writer) error 
 	if err != nil {
 		return fmt.Errorf("config is not valid: %w", err)
 	}
-	return describe(stdout, *path, cfg, now)
+	if *dataDir != "" {
+		cfg.DataDir = *dataDir
+	}
+	red := newRedactor(cfg.Secrets()...)
+	if probs := hostProblems(cfg, os.Getenv); len(probs) > 0 {
+		return fmt.Errorf("%s: valid, but run would fail or watch nothing:\n  %s", *path, red.String(strings.Join(probs, "\n  ")))
+	}
+	var out bytes.Buffer
+	if err := describe(&out, *path, cfg, now); err != nil {
+		return red.Err(err)
+	}
+	_, err = io.WriteString(stdout, red.String(out.String()))
+	return err
+}
+
+// hostProblems lists what the configuration asks of this machine that
+// it does not have: a data directory that cannot be made or written, a
+// source file or device that is not there, a secret that cannot be read.
+// Checked as the user running check, which should be the daemon's.
+func hostProblems(cfg Config, getenv func(string) string) []string {
+	var out []string
+	if err := checkDataDir(cfg.DataDir); err != nil {
+		out = append(out, "data_dir: "+err.Error())
+	}
+	for i, cam := range cfg.Cameras {
+		if err := checkSource(cam.Source); err != nil {
+			out = append(out, fmt.Sprintf("cameras[%d] (%s).source: %v", i, cam.ID, err))
+		}
+	}
+	src := cfg.secretSources()
+	fields := make([]string, 0, len(src))
+	for f := range src {
+		fields = append(fields, f)
+	}
+	sort.Strings(fields)
+	for _, f := range fields {
+		if _, _, err := src[f].Resolve(getenv); err != nil {
+			out = append(out, fmt.Sprintf("%s: %v", f, err))
+		}
+	}
+	return out
+}
+
+// checkDataDir reports whether dir is, or can be made, a writable
+// directory.
+func checkDataDir(dir string) error {
+	p := filepath.Clean(dir)
+	for {
+		fi, err := os.Stat(p)
+		switch {
+		case err == nil && !fi.IsDir():
+			if p == filepath.Clean(dir) {
+				return fmt.Errorf("%s is not a directory", dir)
+			}
+			return fmt.Errorf("%s cannot be made: %s is not a directory", dir, p)
+		case err == nil:
+			if syscall.Access(p, 0x2|0x1) != nil { // W_OK|X_OK
+				if p == filepath.Clean(dir) {
+					return fmt.Errorf("%s is not writable by uid %d; give the daemon's user the directory", dir, os.Getuid())
+				}
+				return fmt.Errorf("%s does not exist and %s is not writable by uid %d to make it; create it for the daemon's user", dir, p, os.Getuid())
+			}
+			return nil
+		case !errors.Is(err, fs.ErrNotExist) && !errors.Is(err, syscall.ENOTDIR):
+			return fmt.Errorf("%s: %v", dir, err)
+		}
+		parent := filepath.Dir(p)
+		if parent == p {
+			return fmt.Errorf("%s: no existing directory above it", dir)
+		}
+		p = parent
+	}
+}
+
+// checkSource reports a file or device source that is not there; URLs
+// are left to the camera itself.
+func checkSource(src string) error {
+	if strings.Contains(src, "://") {
+		return nil
+	}
+	fi, err := os.Stat(src)
+	switch {
+	case errors.Is(err, fs.ErrNotExist):
+		return fmt.Errorf("%s does not exist; give the path of a video file or device that is there, or an rtsp:// URL", src)
+	case err != nil:
+		return err
+	case fi.IsDir():
+		return fmt.Errorf("%s is a directory; give a video file or device", src)
+	case strings.HasPrefix(src, "/dev/") && fi.Mode()&fs.ModeCharDevice == 0:
+		return fmt.Errorf("%s is not a character device; a V4L2 camera is /dev/videoN", src)
+	}
+	f, err := os.Open(src)
+	if err != nil {
+		return fmt.Errorf("cannot be read: %v", err)
+	}
+	return f.Close()
 }
 
 // describe prints the plan for a valid config: cameras, schedule in local
@@ -45,7 +149,7 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	if err != nil {
 		return err
 	}
-	loc, err := loadZone(cfg.Arming.TimeZone)
+	loc, err := cfg.zone()
 	if err != nil {
 		return err
 	}
@@ -62,6 +166,9 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 			return err
 		}
 		fmt.Fprintf(w, "    %s\n", calibrationLine(cam))
+		if crossedCorners(cam, cal) {
+			fmt.Fprintf(w, "    corners C and D are crossed (A, B, C, D in this order make a bow-tie); used as A, B, D, C: swap C and D in the config\n")
+		}
 		if cal.hasCam {
 			how := "measured"
 			if cal.estimated {
@@ -78,7 +185,7 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 		}
 		fmt.Fprintf(w, "    %s\n", detectLine(cam.Detect))
 		fmt.Fprintf(w, "    camera lost after %v without a frame while armed\n", time.Duration(cam.FrameTimeout))
-		fmt.Fprintf(w, "    %s\n", armingLine(sch[cam.ID], loc, now))
+		fmt.Fprintf(w, "    %s\n", armingLine(sch[cam.ID], loc, cfg.Arming.TimeZone == "Local", now))
 	}
 	fmt.Fprintln(w)
 	fmt.Fprintln(w, "bus:")
@@ -90,6 +197,9 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	} else {
 		fmt.Fprintf(w, "  external NATS %s\n", vision.Redact(cfg.Bus.URL))
 	}
+	if names := cfg.Bus.consumers(); len(names) > 0 {
+		fmt.Fprintf(w, "  durable consumers kept for %s (each binds the one named after it)\n", strings.Join(names, ", "))
+	}
 	tw := tabwriter.NewWriter(w, 2, 4, 2, ' ', 0)
 	for _, k := range []string{alert.KindTarget, alert.KindCleared, alert.KindFault, alert.KindArmed, alert.KindBeat} {
 		fmt.Fprintf(tw, "  %s\t%s\n", k, alert.Subject(cfg.Bus.Prefix, "CAMERA", k))
@@ -97,19 +207,34 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	tw.Flush()
 	fmt.Fprintf(w, "  heartbeat every %v per camera\n", time.Duration(cfg.HeartbeatEvery))
 	fmt.Fprintf(w, "  unacknowledged messages wait in %s/outbox\n", cfg.DataDir)
+	who := cfg.Control.TokenName
+	if who == "" {
+		who = arming.DefaultTokenName
+	}
 	switch c := cfg.Control; {
 	case c.SecretEnv != "":
-		fmt.Fprintf(w, "  control (arm, disarm) needs the secret from $%s\n\n", c.SecretEnv)
+		fmt.Fprintf(w, "  control (arm, disarm) needs the secret from $%s; whoever uses it is recorded as %q\n\n", c.SecretEnv, who)
 	case c.SecretFile != "":
-		fmt.Fprintf(w, "  control (arm, disarm) needs the secret in %s\n\n", c.SecretFile)
+		fmt.Fprintf(w, "  control (arm, disarm) needs the secret in %s; whoever uses it is recorded as %q\n\n", c.SecretFile, who)
 	case c.Secret != "":
-		fmt.Fprint(w, "  control (arm, disarm) needs the secret written in the config (better: secret_env or secret_file)\n\n")
+		fmt.Fprintf(w, "  control (arm, disarm) needs the secret written in the config (better: secret_env or secret_file); whoever uses it is recorded as %q\n\n", who)
 	case c.TrustNATS:
-		fmt.Fprint(w, "  control (arm, disarm) over NATS by the operator role; HTTP control refused\n\n")
+		fmt.Fprintf(w, "  control (arm, disarm) over NATS by operator-role users on %s, recorded as nats:USER; HTTP control refused\n\n",
+			alert.UserControlSubject(cfg.Bus.Prefix, "USER", "ACTION"))
 	default:
 		fmt.Fprint(w, "  control: no secret, so arm and disarm requests are refused; status only\n\n")
 	}
 	fmt.Fprintf(w, "http: metrics, /healthz and /readyz on %s\n", cfg.HTTP.Listen)
+	switch c := cfg.HTTP; {
+	case loopbackListen(c.Listen):
+		fmt.Fprintln(w, "  camera pictures (/cameras/ID/latest.jpg) open: the listener is loopback")
+	case c.ViewerSecret != "" || c.ViewerSecretEnv != "" || c.ViewerSecretFile != "":
+		fmt.Fprintln(w, "  camera pictures (/cameras/ID/latest.jpg) need the viewer or the control token")
+	case cfg.Control.Secret != "" || cfg.Control.SecretEnv != "" || cfg.Control.SecretFile != "":
+		fmt.Fprintln(w, "  camera pictures (/cameras/ID/latest.jpg) need the control token (a separate http.viewer_secret is better)")
+	default:
+		fmt.Fprintln(w, "  camera pictures (/cameras/ID/latest.jpg) refused: the listener is not loopback and no token is set")
+	}
 	if cfg.Evidence.on() {
 		e := cfg.Evidence
 		fmt.Fprintf(w, "evidence: %s/evidence, %v before and %v after each alarm; keep at most %d files, %d MB, %v\n",
@@ -162,9 +287,24 @@ func resolution(cal *calibration) string {
 	return fmt.Sprintf("resolution %.1f–%.1f cm per pixel across the water outline", best*100, worst*100)
 }
 
+// crossedCorners reports whether the calibration uses the corners in
+// another order than written (C and D swapped to undo a bow-tie).
+func crossedCorners(cam CameraConfig, cal *calibration) bool {
+	if len(cam.Corners) != 4 || len(cal.corners) != 4 {
+		return false
+	}
+	for i, p := range cam.Corners {
+		if cal.corners[i].X != p[0] || cal.corners[i].Y != p[1] {
+			return true
+		}
+	}
+	return false
+}
+
 // armingLine says whether the camera is armed at now and when that
-// changes, in the schedule's zone.
-func armingLine(s *alert.Schedule, loc *time.Location, now time.Time) string {
+// changes, in the schedule's zone; system says the zone is the machine's
+// (time_zone Local).
+func armingLine(s *arming.Schedule, loc *time.Location, system bool, now time.Time) string {
 	if s == nil {
 		return "armed around the clock (no schedule)"
 	}
@@ -172,8 +312,12 @@ func armingLine(s *alert.Schedule, loc *time.Location, now time.Time) string {
 	if s.Armed(now) {
 		state = "armed"
 	}
+	zone := loc.String()
+	if system {
+		zone += " (the system's zone, time_zone Local)"
+	}
 	var b strings.Builder
-	fmt.Fprintf(&b, "schedule in %s: %s at %s", loc, state, now.In(loc).Format("Mon 2006-01-02 15:04 MST"))
+	fmt.Fprintf(&b, "schedule in %s: %s at %s", zone, state, now.In(loc).Format("Mon 2006-01-02 15:04 MST"))
 	if next, ok := s.Next(now); ok {
 		fmt.Fprintf(&b, ", changes at %s", next.In(loc).Format("Mon 2006-01-02 15:04 MST"))
 	}

@@ -6,14 +6,19 @@ import (
 	"fmt"
 	"io"
 	"os"
+	"path/filepath"
 	"regexp"
 	"strconv"
 	"strings"
 	"time"
+	"unicode"
+	"unicode/utf8"
 
 	"gopkg.in/yaml.v3"
 
 	"stillwater/alert"
+	"stillwater/alert/arming"
+	"stillwater/alert/bus"
 )
 
 // Config is the daemon's whole configuration, from defaults, the YAML
@@ -29,6 +34,11 @@ type Config struct {
 	HeartbeatEvery Duration       `yaml:"heartbeat_every"`
 	Evidence       EvidenceConfig `yaml:"evidence"`
 	Cameras        []CameraConfig `yaml:"cameras"`
+
+	// secrets are the values that came from ${NAME}, *_env, *_file or an
+	// inline secret, collected while loading so that logs, errors and
+	// check's output can hide them wherever they turn up.
+	secrets []string
 }
 
 // ArmingConfig is the default weekly schedule for every camera. A window
@@ -54,9 +64,16 @@ type EvidenceConfig struct {
 // on reports whether evidence is kept.
 func (e EvidenceConfig) on() bool { return e.Enabled == nil || *e.Enabled }
 
-// HTTPConfig is the metrics and health listener.
+// HTTPConfig is the metrics, health, control and picture listener. The
+// viewer secret is a bearer token for the camera pictures
+// (/cameras/ID/latest.jpg), apart from the control token, which opens
+// them too; on a listener that is not loopback, pictures need one of the
+// two.
 type HTTPConfig struct {
-	Listen string `yaml:"listen"`
+	Listen           string `yaml:"listen"`
+	ViewerSecret     string `yaml:"viewer_secret"`
+	ViewerSecretEnv  string `yaml:"viewer_secret_env"`
+	ViewerSecretFile string `yaml:"viewer_secret_file"`
 }
 
 // LogConfig selects the log level and format.
@@ -144,7 +161,8 @@ func LoadConfig(path string) (Config, error) {
 var envRef = regexp.MustCompile(`\$\{([A-Za-z_][A-Za-z0-9_]*)\}`)
 
 // expandEnv replaces each ${NAME} in s; an unset variable is an error.
-func expandEnv(s string, env func(string) (string, bool)) (string, error) {
+// The values put in are added to *used, to be hidden in logs and output.
+func expandEnv(s string, env func(string) (string, bool), used *[]string) (string, error) {
 	var missing []string
 	out := envRef.ReplaceAllStringFunc(s, func(ref string) string {
 		name := envRef.FindStringSubmatch(ref)[1]
@@ -152,6 +170,7 @@ func expandEnv(s string, env func(string) (string, bool)) (string, error) {
 		if !ok {
 			missing = append(missing, name)
 		}
+		*used = append(*used, v)
 		return v
 	})
 	if len(missing) > 0 {
@@ -248,11 +267,11 @@ func parseConfig(b []byte, env func(string) (string, bool)) (Config, error) {
 		return Config{}, yamlError(err)
 	}
 	var err error
-	if cfg.Bus.URL, err = expandEnv(cfg.Bus.URL, env); err != nil {
+	if cfg.Bus.URL, err = expandEnv(cfg.Bus.URL, env, &cfg.secrets); err != nil {
 		return Config{}, fmt.Errorf("bus.url: %w", err)
 	}
 	for i := range cfg.Cameras {
-		if cfg.Cameras[i].Source, err = expandEnv(cfg.Cameras[i].Source, env); err != nil {
+		if cfg.Cameras[i].Source, err = expandEnv(cfg.Cameras[i].Source, env, &cfg.secrets); err != nil {
 			return Config{}, fmt.Errorf("cameras[%d].source: %w", i, err)
 		}
 		cfg.Cameras[i].Detect = mergeDetect(defaultDetect(), cfg.Cameras[i].Detect)
@@ -260,11 +279,42 @@ func parseConfig(b []byte, env func(string) (string, bool)) (Config, error) {
 			cfg.Cameras[i].FrameTimeout = Duration(defaultFrameTimeout)
 		}
 	}
+	cfg.secrets = append(cfg.secrets, cfg.secretValues(func(k string) string { v, _ := env(k); return v })...)
 	if err := cfg.Validate(); err != nil {
-		return Config{}, err
+		return Config{}, newRedactor(cfg.secrets...).Err(err)
 	}
 	return cfg, nil
 }
+
+// secretSources lists every secret setting of c by its field name.
+func (c Config) secretSources() map[string]bus.Secret {
+	out := map[string]bus.Secret{
+		"control.secret":     {Value: c.Control.Secret, Env: c.Control.SecretEnv, File: c.Control.SecretFile},
+		"http.viewer_secret": {Value: c.HTTP.ViewerSecret, Env: c.HTTP.ViewerSecretEnv, File: c.HTTP.ViewerSecretFile},
+		"bus.auth.password":  {Value: c.Bus.Auth.Password, Env: c.Bus.Auth.PasswordEnv, File: c.Bus.Auth.PasswordFile},
+		"bus.auth.token":     {Value: c.Bus.Auth.Token, Env: c.Bus.Auth.TokenEnv, File: c.Bus.Auth.TokenFile},
+	}
+	for i, u := range c.Bus.Users {
+		out[fmt.Sprintf("bus.users[%d].password", i)] = bus.Secret{Value: u.Password, Env: u.PasswordEnv, File: u.PasswordFile}
+	}
+	return out
+}
+
+// secretValues resolves every secret setting it can, for redaction only:
+// one that cannot be resolved is skipped here and reported, with its
+// field, when the daemon starts or check runs.
+func (c Config) secretValues(getenv func(string) string) []string {
+	var out []string
+	for _, s := range c.secretSources() {
+		if v, _, err := s.Resolve(getenv); err == nil && v != "" {
+			out = append(out, v)
+		}
+	}
+	return out
+}
+
+// Secrets returns the values to hide in logs and output (see redactor).
+func (c Config) Secrets() []string { return append([]string(nil), c.secrets...) }
 
 // defaultFrameTimeout is how long a camera may go without a frame while
 // armed before it is reported lost.
@@ -303,11 +353,19 @@ func (c Config) Validate() error {
 	if len(c.Cameras) == 0 {
 		return errors.New("cameras: none configured; add at least one camera with id, source, pool and corners")
 	}
+	if err := oneSecretSource(c.HTTP.ViewerSecret, c.HTTP.ViewerSecretEnv, c.HTTP.ViewerSecretFile, false); err != nil {
+		return fmt.Errorf("http.viewer_secret: %v", err)
+	}
+	if c.Control.TokenName != "" {
+		if err := validTokenName(c.Control.TokenName); err != nil {
+			return fmt.Errorf("control.token_name: %v", err)
+		}
+	}
 	ids := map[string]bool{}
 	for i, cam := range c.Cameras {
 		where := fmt.Sprintf("cameras[%d]", i)
-		if err := alert.ValidToken(cam.ID); err != nil {
-			return fmt.Errorf("%s.id: %v; use a short name such as pool or north", where, err)
+		if err := validCameraID(cam.ID); err != nil {
+			return fmt.Errorf("%s.id: %v", where, err)
 		}
 		if err := alert.ReservedCamera(cam.ID); err != nil {
 			return fmt.Errorf("%s.id: %v; choose another name", where, err)
@@ -344,6 +402,39 @@ func (c Config) Validate() error {
 	return nil
 }
 
+// maxCameraID is the longest camera id. An id is a NATS subject token
+// (PREFIX.ID.KIND) and part of evidence file names; 64 keeps both far
+// from their limits (a file name of 255 bytes, the server's 4 KiB control
+// line) with room for the prefix and the time stamp.
+const maxCameraID = 64
+
+var cameraIDChars = regexp.MustCompile(`^[A-Za-z0-9_-]+$`)
+
+// validCameraID accepts 1 to 64 ASCII letters, digits, _ and -: safe in
+// subjects, MQTT topics, file names and URLs alike.
+func validCameraID(id string) error {
+	const fix = "use 1 to 64 letters, digits, _ or - (the id names bus subjects and evidence files), such as pool or north"
+	switch {
+	case id == "":
+		return errors.New("empty; " + fix)
+	case len(id) > maxCameraID:
+		return fmt.Errorf("%d characters, over the %d allowed; %s", len(id), maxCameraID, fix)
+	case !cameraIDChars.MatchString(id):
+		bad := id[strings.IndexFunc(id, func(r rune) bool { return !cameraIDChars.MatchString(string(r)) }):]
+		r, _ := utf8.DecodeRuneInString(bad)
+		return fmt.Errorf("%q contains %q; %s", id, string(r), fix)
+	}
+	return nil
+}
+
+// validTokenName checks control.token_name, recorded as "http:NAME".
+func validTokenName(s string) error {
+	if len(s) > 64 || strings.IndexFunc(s, func(r rune) bool { return !unicode.IsPrint(r) || unicode.IsSpace(r) }) >= 0 {
+		return fmt.Errorf("%q: want 1 to 64 printable characters without spaces, such as owner or alice", s)
+	}
+	return nil
+}
+
 func (e EvidenceConfig) validate() error {
 	switch {
 	case e.PreRoll < 0 || e.PreRoll > Duration(60*time.Second):
@@ -362,21 +453,22 @@ func (e EvidenceConfig) validate() error {
 
 // schedules parses each camera's arming schedule (its own or the default).
 // A camera with no windows anywhere is armed around the clock (nil).
-func (c Config) schedules() (map[string]*alert.Schedule, error) {
-	if _, err := loadZone(c.Arming.TimeZone); err != nil {
+func (c Config) schedules() (map[string]*arming.Schedule, error) {
+	loc, err := c.zone()
+	if err != nil {
 		return nil, fmt.Errorf("arming.time_zone: %v", err)
 	}
-	def, err := parseSchedule(c.Arming.TimeZone, c.Arming.Schedule)
+	def, err := parseSchedule(loc, c.Arming.Schedule)
 	if err != nil {
 		return nil, fmt.Errorf("arming.schedule: %w", err)
 	}
-	out := map[string]*alert.Schedule{}
+	out := map[string]*arming.Schedule{}
 	for i, cam := range c.Cameras {
 		out[cam.ID] = def
 		if len(cam.Schedule) == 0 {
 			continue
 		}
-		s, err := parseSchedule(c.Arming.TimeZone, cam.Schedule)
+		s, err := parseSchedule(loc, cam.Schedule)
 		if err != nil {
 			return nil, fmt.Errorf("cameras[%d] (%s).schedule: %w", i, cam.ID, err)
 		}
@@ -385,21 +477,101 @@ func (c Config) schedules() (map[string]*alert.Schedule, error) {
 	return out, nil
 }
 
-func parseSchedule(zone string, windows []string) (*alert.Schedule, error) {
+// zone resolves arming.time_zone. A system zone (Local) that cannot be
+// resolved is an error only when a schedule needs it; a misspelt zone
+// name always is.
+func (c Config) zone() (*time.Location, error) {
+	loc, err := loadZone(c.Arming.TimeZone)
+	if err == nil || c.Arming.TimeZone != "Local" {
+		return loc, err
+	}
+	if len(c.Arming.Schedule) > 0 {
+		return nil, err
+	}
+	for _, cam := range c.Cameras {
+		if len(cam.Schedule) > 0 {
+			return nil, err
+		}
+	}
+	return time.UTC, nil
+}
+
+func parseSchedule(loc *time.Location, windows []string) (*arming.Schedule, error) {
 	if len(windows) == 0 {
 		return nil, nil
 	}
-	return alert.ParseSchedule(zone, windows)
+	return arming.ParseScheduleIn(loc, windows)
 }
 
 // loadZone loads an IANA zone with an error that says how to write one.
+// Local is the machine's own zone, found under its IANA name.
 func loadZone(name string) (*time.Location, error) {
 	if name == "" {
 		return nil, errors.New("empty; write an IANA zone such as Europe/Berlin, or Local for the system zone")
 	}
+	if name == "Local" {
+		return systemZone()
+	}
 	loc, err := time.LoadLocation(name)
 	if err != nil {
 		return nil, fmt.Errorf("%q is not a known IANA time zone (write e.g. Europe/Berlin or America/New_York)", name)
+	}
+	return loc, nil
+}
+
+// systemZone is the zone "Local" stands for, looked up the way the C
+// library does: TZ when set (empty is UTC), else the zone /etc/localtime
+// links to, else the name in /etc/timezone, else the rules in
+// /etc/localtime itself; a machine with none of these runs on UTC.
+// Looking it up by name keeps reasons and check's output readable
+// ("Europe/Berlin" rather than "Local").
+func systemZone() (*time.Location, error) {
+	if tz, ok := os.LookupEnv("TZ"); ok {
+		tz = strings.TrimPrefix(tz, ":")
+		if tz == "" {
+			return time.UTC, nil
+		}
+		if filepath.IsAbs(tz) {
+			return zoneFromFile(tz)
+		}
+		loc, err := time.LoadLocation(tz)
+		if err != nil {
+			return nil, fmt.Errorf("Local is the system zone, and the TZ environment variable names %q, which is not a known zone; fix TZ or write the zone here", tz)
+		}
+		return loc, nil
+	}
+	if target, err := os.Readlink("/etc/localtime"); err == nil {
+		if _, name, ok := strings.Cut(target, "zoneinfo/"); ok {
+			if loc, err := time.LoadLocation(name); err == nil {
+				return loc, nil
+			}
+		}
+	}
+	if b, err := os.ReadFile("/etc/timezone"); err == nil {
+		if loc, err := time.LoadLocation(strings.TrimSpace(string(b))); err == nil {
+			return loc, nil
+		}
+	}
+	if _, err := os.Stat("/etc/localtime"); err == nil {
+		return zoneFromFile("/etc/localtime")
+	}
+	return time.UTC, nil
+}
+
+// zoneFromFile reads zone rules from a TZif file, named after the part
+// of its path below zoneinfo/ when there is one.
+func zoneFromFile(path string) (*time.Location, error) {
+	b, err := os.ReadFile(path)
+	if err != nil {
+		return nil, fmt.Errorf("Local is the system zone: %v", err)
+	}
+	name := path
+	if _, n, ok := strings.Cut(path, "zoneinfo/"); ok {
+		name = n
+	}
+	loc, err := time.LoadLocationFromTZData(name, b)
+	if err != nil {
+		return nil, fmt.Errorf("Local is the system zone, but %s holds no zone rules: %v", path, err)
 	}
 	return loc, nil
 }

@@ -1,6 +1,7 @@
 package main
 
 import (
+	"bytes"
 	"context"
 	"errors"
 	"fmt"
@@ -9,12 +10,15 @@ import (
 	"os"
 	"path/filepath"
 	"strings"
+	"syscall"
 	"time"
 
 	"github.com/nats-io/nats.go"
 	"golang.org/x/sync/errgroup"
 
 	"stillwater/alert"
+	"stillwater/alert/arming"
+	"stillwater/alert/bus"
 )
 
 // BusConfig selects the message bus: the embedded server when neither url
@@ -84,7 +88,7 @@ type LeafConfig struct {
 	KeyFile   string   `yaml:"key_file"`
 }
 
-// StreamSection sizes the JetStream stream; zero values take alert's
+// StreamSection sizes the JetStream stream; zero values take the bus package's
 // defaults (30 days, 256 MiB, 1 h de-duplication, 1 replica).
 type StreamSection struct {
 	Name       string   `yaml:"name"`
@@ -92,10 +96,15 @@ type StreamSection struct {
 	MaxBytes   int64    `yaml:"max_bytes"`
 	Duplicates Duration `yaml:"duplicates"`
 	Replicas   int      `yaml:"replicas"`
+	// Consumers names bus users for whom stillwater keeps a durable
+	// consumer on the stream, so that they catch up after being away.
+	// With the embedded server every responder and operator user has one
+	// whether listed or not; list the users of an external server here.
+	Consumers []string `yaml:"consumers"`
 }
 
 // OutboxSection bounds the on-disk queue of unacknowledged messages;
-// zero values take alert's defaults (10000 messages, 16 MiB, 2 s).
+// zero values take the bus package's defaults (10000 messages, 16 MiB, 2 s).
 type OutboxSection struct {
 	MaxMessages int      `yaml:"max_messages"`
 	MaxBytes    int64    `yaml:"max_bytes"`
@@ -158,14 +167,20 @@ func validateBus(b BusConfig) error {
 		if err := alert.ValidToken(u.Name); err != nil {
 			return fmt.Errorf("%s.name: %v", where, err)
 		}
+		if u.Role != bus.RoleDaemon {
+			// The name becomes a subject token and the author of overrides.
+			if err := bus.ValidUserName(u.Name); err != nil {
+				return fmt.Errorf("%s.name: %v", where, err)
+			}
+		}
 		if names[u.Name] {
 			return fmt.Errorf("%s.name: %q is used twice", where, u.Name)
 		}
 		names[u.Name] = true
 		switch u.Role {
-		case alert.RoleDaemon:
+		case bus.RoleDaemon:
 			daemonUser = true
-		case alert.RoleResponder, alert.RoleOperator:
+		case bus.RoleResponder, bus.RoleOperator:
 		default:
 			return fmt.Errorf("%s (%s).role: %q; want daemon, responder or operator", where, u.Name, u.Role)
 		}
@@ -200,6 +215,16 @@ func validateBus(b BusConfig) error {
 		return fmt.Errorf("bus.stream.replicas: %d; JetStream keeps 1 to 5 copies", s.Replicas)
 	case s.MaxAge > 0 && s.Duplicates > s.MaxAge:
 		return errors.New("bus.stream.duplicates: longer than max_age; make it shorter")
+	}
+	listed := map[string]bool{}
+	for i, name := range s.Consumers {
+		if err := bus.ValidUserName(name); err != nil {
+			return fmt.Errorf("bus.stream.consumers[%d]: %v; name the bus user that reads it", i, err)
+		}
+		if listed[name] {
+			return fmt.Errorf("bus.stream.consumers[%d]: %q is listed twice", i, name)
+		}
+		listed[name] = true
 	}
 	o := b.Outbox
 	switch {
@@ -282,10 +307,10 @@ func busRedact(s string) string {
 	return s
 }
 
-// resolveSecret resolves one secret through alert.Secret; inline secrets add a
+// resolveSecret resolves one secret through bus.Secret; inline secrets add a
 // warning naming the field.
 func resolveSecret(field, inline, env, file string, getenv func(string) string, warn *[]string) (string, error) {
-	v, isInline, err := alert.Secret{Value: inline, Env: env, File: file}.Resolve(getenv)
+	v, isInline, err := bus.Secret{Value: inline, Env: env, File: file}.Resolve(getenv)
 	if err != nil {
 		return "", fmt.Errorf("%s: %w", field, err)
 	}
@@ -301,7 +326,7 @@ func resolveSecret(field, inline, env, file string, getenv func(string) string, 
 func (b BusConfig) connectOptions(getenv func(string) string) ([]nats.Option, []string, error) {
 	var warn []string
 	a := b.Auth
-	auth := alert.BusAuth{User: a.User, NKeySeedFile: a.NKeySeedFile, CredsFile: a.CredsFile,
+	auth := bus.Auth{User: a.User, NKeySeedFile: a.NKeySeedFile, CredsFile: a.CredsFile,
 		CAFile: b.TLS.CAFile, CertFile: b.TLS.CertFile, KeyFile: b.TLS.KeyFile}
 	var err error
 	if auth.Password, err = resolveSecret("bus.auth.password", a.Password, a.PasswordEnv, a.PasswordFile, getenv, &warn); err != nil {
@@ -312,7 +337,7 @@ func (b BusConfig) connectOptions(getenv func(string) string) ([]nats.Option, []
 	}
 	if b.embedded() && auth.User == "" && auth.Token == "" && auth.NKeySeedFile == "" && auth.CredsFile == "" {
 		for i, u := range b.Users {
-			if u.Role != alert.RoleDaemon {
+			if u.Role != bus.RoleDaemon {
 				continue
 			}
 			pw, err := resolveSecret(fmt.Sprintf("bus.users[%d].password", i), u.Password, u.PasswordEnv, u.PasswordFile, getenv, &warn)
@@ -326,7 +351,7 @@ func (b BusConfig) connectOptions(getenv func(string) string) ([]nats.Option, []
 			break
 		}
 	}
-	opts, err := alert.ConnectOptions(auth)
+	opts, err := bus.ConnectOptions(auth)
 	if err != nil {
 		return nil, nil, err
 	}
@@ -335,19 +360,19 @@ func (b BusConfig) connectOptions(getenv func(string) string) ([]nats.Option, []
 
 // embeddedConfig returns the embedded server's configuration, secrets
 // resolved, and warnings to log.
-func (b BusConfig) embeddedConfig(dataDir string, getenv func(string) string) (alert.EmbeddedConfig, []string, error) {
+func (b BusConfig) embeddedConfig(dataDir string, getenv func(string) string) (bus.EmbeddedConfig, []string, error) {
 	var warn []string
-	ec := alert.EmbeddedConfig{Listen: b.Listen, StoreDir: filepath.Join(dataDir, "jetstream"), MQTT: b.MQTT,
-		Prefix: b.Prefix, Domain: b.JetStreamDomain}
+	ec := bus.EmbeddedConfig{Listen: b.Listen, StoreDir: filepath.Join(dataDir, "jetstream"), MQTT: b.MQTT,
+		Prefix: b.Prefix, Stream: b.Stream.Name, Domain: b.JetStreamDomain}
 	for i, u := range b.Users {
 		pw, err := resolveSecret(fmt.Sprintf("bus.users[%d].password", i), u.Password, u.PasswordEnv, u.PasswordFile, getenv, &warn)
 		if err != nil {
-			return alert.EmbeddedConfig{}, nil, err
+			return bus.EmbeddedConfig{}, nil, err
 		}
-		ec.Users = append(ec.Users, alert.BusUser{Name: u.Name, Password: pw, Role: u.Role})
+		ec.Users = append(ec.Users, bus.User{Name: u.Name, Password: pw, Role: u.Role})
 	}
 	for _, l := range b.Leaf {
-		ec.Leaf = append(ec.Leaf, alert.LeafRemote{URLs: l.URLs, CredsFile: l.CredsFile, CAFile: l.CAFile, CertFile: l.CertFile, KeyFile: l.KeyFile})
+		ec.Leaf = append(ec.Leaf, bus.LeafRemote{URLs: l.URLs, CredsFile: l.CredsFile, CAFile: l.CAFile, CertFile: l.CertFile, KeyFile: l.KeyFile})
 	}
 	if b.MQTT != "" && len(b.Users) == 0 && !strings.HasPrefix(b.MQTT, "127.") && !strings.HasPrefix(b.MQTT, "localhost:") && !strings.HasPrefix(b.MQTT, ":") && !strings.HasPrefix(b.MQTT, "[::1]") {
 		warn = append(warn, "bus.mqtt listens beyond loopback without bus.users: anyone on the network can read the alarms")
@@ -357,14 +382,39 @@ func (b BusConfig) embeddedConfig(dataDir string, getenv func(string) string) (a
 
 // publisherConfig returns the publisher's configuration without its
 // callbacks, which the daemon adds (metrics, log).
-func (b BusConfig) publisherConfig(dataDir string) alert.PublisherConfig {
-	return alert.PublisherConfig{
+func (b BusConfig) publisherConfig(dataDir string) bus.PublisherConfig {
+	return bus.PublisherConfig{
 		Prefix: b.Prefix,
-		Stream: alert.StreamConfig{Name: b.Stream.Name, MaxAge: time.Duration(b.Stream.MaxAge), MaxBytes: b.Stream.MaxBytes,
+		Stream: bus.StreamConfig{Name: b.Stream.Name, MaxAge: time.Duration(b.Stream.MaxAge), MaxBytes: b.Stream.MaxBytes,
 			Duplicates: time.Duration(b.Stream.Duplicates), Replicas: b.Stream.Replicas},
-		Outbox:     alert.OutboxConfig{Dir: filepath.Join(dataDir, "outbox"), MaxMessages: b.Outbox.MaxMessages, MaxBytes: b.Outbox.MaxBytes},
+		Outbox:     bus.OutboxConfig{Dir: filepath.Join(dataDir, "outbox"), MaxMessages: b.Outbox.MaxMessages, MaxBytes: b.Outbox.MaxBytes},
 		AckTimeout: time.Duration(b.Outbox.AckTimeout),
+		Consumers:  b.consumers(),
 	}
+}
+
+// consumers names the durable consumers to keep: every responder and
+// operator of the embedded server, then those listed, each once.
+func (b BusConfig) consumers() []string {
+	var out []string
+	seen := map[string]bool{}
+	add := func(name string) {
+		if !seen[name] {
+			seen[name] = true
+			out = append(out, name)
+		}
+	}
+	if b.embedded() {
+		for _, u := range b.Users {
+			if u.Role == bus.RoleResponder || u.Role == bus.RoleOperator {
+				add(u.Name)
+			}
+		}
+	}
+	for _, name := range b.Stream.Consumers {
+		add(name)
+	}
+	return out
 }
 
 // ControlConfig is who may arm and disarm, over HTTP and NATS. The
@@ -374,9 +424,13 @@ type ControlConfig struct {
 	Secret     string `yaml:"secret"`
 	SecretEnv  string `yaml:"secret_env"`
 	SecretFile string `yaml:"secret_file"`
-	// TrustNATS accepts NATS control requests without the token, relying
-	// on the bus users' roles (operator). Needs bus.users or an external
-	// server with its own permissions.
+	// TokenName is who a request carrying the secret is recorded as in
+	// the override's by ("http:NAME"); default token-holder.
+	TokenName string `yaml:"token_name"`
+	// TrustNATS accepts NATS control requests without the token on a bus
+	// user's own subject, PREFIX.control.USER.ACTION, and records them as
+	// "nats:USER": the operator role lets only USER publish there. Needs
+	// bus.users, or an external server whose permissions do the same.
 	TrustNATS bool `yaml:"trust_nats"`
 	// MaxDisarm is the longest disarm accepted; default 24h, at most 7 days.
 	MaxDisarm Duration `yaml:"max_disarm"`
@@ -405,20 +459,22 @@ func (c ControlConfig) controlSecret(getenv func(string) string) (string, []stri
 
 // busHooks are the daemon's callbacks into its metrics; any may be nil.
 type busHooks struct {
-	OnResult  func(alert.PublishResult)        // stillwater_publish_seconds, publish errors
-	OnBacklog func(active bool, s alert.Stats) // bus_backlog fault
-	OnRefused func(via string)                 // stillwater_control_refused_total{via}
+	OnResult  func(bus.PublishResult)        // stillwater_publish_seconds, publish errors
+	OnBacklog func(active bool, s bus.Stats) // bus_backlog fault
+	OnRefused func(via string)               // stillwater_control_refused_total{via}
 }
 
 // busParts is the bus side of the daemon, opened by openBus. Run drives
 // it; Close releases it after Run has returned.
 type busParts struct {
-	Embedded *alert.Embedded // nil with an external server
-	URL      string          // redacted
+	dirLock  *os.File // the data directory's lock, held until Close
+	cfg      BusConfig
+	Embedded *bus.Embedded // nil with an external server
+	URL      string        // redacted
 	Conn     *nats.Conn
-	Pub      *alert.Publisher
-	Arming   *alert.Arming
-	Control  *alert.Control
+	Pub      *bus.Publisher
+	Arming   *arming.Arming
+	Control  *arming.Control
 	now      func() time.Time
 	log      *slog.Logger
 }
@@ -429,14 +485,19 @@ type busParts struct {
 // external server that is down is not an error: messages wait in the
 // outbox. An unreadable arming state is logged and every camera runs
 // armed. The caller sets ac's cameras and schedules.
-func openBus(ctx context.Context, cfg Config, ac alert.ArmingConfig, now func() time.Time, log *slog.Logger, h busHooks) (_ *busParts, err error) {
+func openBus(ctx context.Context, cfg Config, ac arming.Config, now func() time.Time, log *slog.Logger, h busHooks) (_ *busParts, err error) {
 	getenv := os.Getenv
-	b := &busParts{now: now, log: log}
+	b := &busParts{now: now, log: log, cfg: cfg.Bus}
 	defer func() {
 		if err != nil {
 			b.Close()
 		}
 	}()
+	// Before the JetStream store, the outbox or the arming state is
+	// opened: a second daemon on the same directory stops here.
+	if b.dirLock, err = lockDataDir(cfg.DataDir); err != nil {
+		return nil, err
+	}
 	busURL := cfg.Bus.serverURLs()
 	if cfg.Bus.embedded() {
 		ec, warn, err := cfg.Bus.embeddedConfig(cfg.DataDir, getenv)
@@ -444,7 +505,7 @@ func openBus(ctx context.Context, cfg Config, ac alert.ArmingConfig, now func() 
 			return nil, err
 		}
 		logWarnings(log, warn)
-		if b.Embedded, err = alert.StartEmbedded(ec); err != nil {
+		if b.Embedded, err = bus.StartEmbedded(ec); err != nil {
 			return nil, err
 		}
 		busURL = b.Embedded.URL()
@@ -459,19 +520,21 @@ func openBus(ctx context.Context, cfg Config, ac alert.ArmingConfig, now func() 
 	opts = append(opts, nats.Name("stillwater"), nats.MaxReconnects(-1), nats.ReconnectWait(500*time.Millisecond),
 		nats.RetryOnFailedConnect(true),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) { log.Warn("bus disconnected", "err", err) }),
+		nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) { log.Warn("bus error", "err", err) }),
 		nats.ReconnectHandler(func(nc *nats.Conn) { log.Info("bus reconnected", "url", nc.ConnectedUrlRedacted()) }))
 	if b.Conn, err = nats.Connect(busURL, opts...); err != nil {
 		return nil, fmt.Errorf("connect bus %s: %w", b.URL, err)
 	}
 	pc := cfg.Bus.publisherConfig(cfg.DataDir)
 	pc.OnResult, pc.OnBacklog, pc.Log = h.OnResult, h.OnBacklog, log
-	if b.Pub, err = alert.NewPublisherWith(ctx, b.Conn, pc); err != nil {
+	pc.OnStream = b.logStream
+	if b.Pub, err = bus.NewPublisherWith(ctx, b.Conn, pc); err != nil {
 		return nil, err
 	}
 	ac.StatePath = filepath.Join(cfg.DataDir, "arming.json")
 	ac.MaxDisarm = time.Duration(cfg.Control.MaxDisarm)
-	b.Arming, err = alert.NewArming(ac, now())
-	if errors.Is(err, alert.ErrStateUnreadable) {
+	b.Arming, err = arming.New(ac, now())
+	if errors.Is(err, arming.ErrStateUnreadable) {
 		log.Error("arming state unreadable; every camera is armed until an operator sets the state", "err", err)
 	} else if err != nil {
 		return nil, err
@@ -484,7 +547,7 @@ func openBus(ctx context.Context, cfg Config, ac alert.ArmingConfig, now func() 
 	if secret == "" && !cfg.Control.TrustNATS {
 		log.Warn("no control secret configured: arm, disarm and clear requests are refused; set control.secret_env or control.secret_file")
 	}
-	b.Control, err = alert.NewControl(alert.ControlConfig{Prefix: cfg.Bus.Prefix, Arming: b.Arming, Secret: secret,
+	b.Control, err = arming.NewControl(arming.ControlConfig{Prefix: cfg.Bus.Prefix, Arming: b.Arming, Secret: secret, TokenName: cfg.Control.TokenName,
 		TrustNATS: cfg.Control.TrustNATS, OnRefused: h.OnRefused, Log: log, Now: now})
 	if err != nil {
 		return nil, err
@@ -516,9 +579,15 @@ func (b *busParts) Run(ctx context.Context) error {
 	return g.Wait()
 }
 
-// Close releases the outbox, the connection and the embedded server, in
-// that order. Safe on a partly opened busParts.
+// Close releases the outbox, the connection, the embedded server and the
+// data directory, in that order. Safe on a partly opened busParts.
 func (b *busParts) Close() {
+	defer func() {
+		if b.dirLock != nil {
+			b.dirLock.Close()
+			b.dirLock = nil
+		}
+	}()
 	if b.Pub != nil {
 		if err := b.Pub.Close(); err != nil {
 			b.log.Error("close outbox", "err", err)
@@ -530,4 +599,100 @@ func (b *busParts) Close() {
 	if b.Embedded != nil {
 		b.Embedded.Shutdown()
 	}
+}
+
+// busStallAfter is how old the oldest queued message may be before the
+// daemon reports itself not ready: longer than a server restart or a
+// cluster's leader election takes, far shorter than the 20 s from entry
+// to alarm that ASTM F2208 allows twice over.
+const busStallAfter = 30 * time.Second
+
+// problems lists why the bus side is not ready, beyond the connection
+// itself (which readiness reports): a stream that cannot be created or
+// used, and a queue whose oldest message is older than busStallAfter.
+// Empty means ready.
+func (b *busParts) problems(now time.Time) []string {
+	var out []string
+	if err := b.Pub.StreamFault(); err != nil {
+		out = append(out, fmt.Sprintf("bus: %v; %s", err, b.streamAdvice(err)))
+	}
+	if age, stalled := b.stalled(now); stalled {
+		out = append(out, fmt.Sprintf("bus: oldest queued message is %.0f s old, over the %.0f s bound; %d messages wait in the outbox",
+			age.Seconds(), busStallAfter.Seconds(), b.Pub.Stats().Depth))
+	}
+	return out
+}
+
+// stalled returns the age of the oldest queued message and whether it is
+// over busStallAfter.
+func (b *busParts) stalled(now time.Time) (time.Duration, bool) {
+	oldest := b.Pub.Stats().Oldest
+	if oldest.IsZero() {
+		return 0, false
+	}
+	age := now.Sub(oldest)
+	return age, age > busStallAfter
+}
+
+// streamAdvice says which setting or server object to change for a stream
+// fault.
+func (b *busParts) streamAdvice(err error) string {
+	var c *bus.StreamConflictError
+	if !errors.As(err, &c) {
+		return "check that the server has JetStream enabled with room for the stream (bus.stream.max_bytes, bus.stream.replicas) and that stillwater's bus user may use $JS.API"
+	}
+	if c.Earlier != "" {
+		return fmt.Sprintf("set bus.stream.name: %s to use the stream an earlier run made with these subjects, or remove stream %s from the server (its stored messages go with it)",
+			c.Earlier, c.Earlier)
+	}
+	held := "other streams"
+	if len(c.Owners) > 0 {
+		held = "stream " + strings.Join(c.Owners, ", ")
+	}
+	return fmt.Sprintf("choose another bus.subject_prefix, or remove or narrow %s on the server so that %s.* is free", held, b.cfg.Prefix)
+}
+
+// logStream is the publisher's OnStream: a stream fault is an ERROR that
+// says what to change; its end is logged too.
+func (b *busParts) logStream(err error) {
+	name := b.cfg.Stream.Name
+	if name == "" {
+		name = "STILLWATER"
+	}
+	if err == nil {
+		b.log.Info("bus stream ready", "stream", name)
+		return
+	}
+	attrs := []any{"stream", name}
+	var c *bus.StreamConflictError
+	if errors.As(err, &c) {
+		attrs = append(attrs, "subjects", strings.Join(c.Subjects, " "), "held_by", strings.Join(c.Owners, " "))
+	}
+	attrs = append(attrs, "fix", b.streamAdvice(err), "err", err)
+	b.log.Error("bus stream cannot be created; messages are stored only if another stream takes their subjects, else they wait in the outbox", attrs...)
+}
+
+// lockDataDir takes the data directory's lock file, stillwater.lock, with
+// this process's id in it. It fails when another process holds it.
+func lockDataDir(dir string) (*os.File, error) {
+	if err := os.MkdirAll(dir, 0o750); err != nil {
+		return nil, fmt.Errorf("data_dir %s: %w", dir, err)
+	}
+	path := filepath.Join(dir, "stillwater.lock")
+	f, err := os.OpenFile(path, os.O_CREATE|os.O_RDWR, 0o640)
+	if err != nil {
+		return nil, fmt.Errorf("data_dir %s: lock: %w", dir, err)
+	}
+	if err := syscall.Flock(int(f.Fd()), syscall.LOCK_EX|syscall.LOCK_NB); err != nil {
+		holder := ""
+		if b, rerr := os.ReadFile(path); rerr == nil && len(bytes.TrimSpace(b)) > 0 {
+			holder = " by process " + string(bytes.TrimSpace(b))
+		}
+		f.Close()
+		return nil, fmt.Errorf("data_dir %s: another stillwater uses it (%s is locked%s: %v); give each daemon its own data_dir", dir, path, holder, err)
+	}
+	if err := f.Truncate(0); err == nil {
+		fmt.Fprintf(f, "%d\n", os.Getpid())
+	}
+	return f, nil
 }

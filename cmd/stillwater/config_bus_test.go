@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"encoding/json"
 	"io"
 	"log/slog"
 	"net/http"
@@ -16,7 +17,8 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
-	"stillwater/alert"
+	"stillwater/alert/arming"
+	"stillwater/alert/bus"
 )
 
 const busYAML = goodConfig + `
@@ -30,7 +32,7 @@ bus:
     - {name: alice, role: operator, password: "$2a$11$abcdefghijklmnopqrstuv"}
   leaf:
     - urls: [nats-leaf://hub.example:7422]
-  stream: {max_age: 720h, max_bytes: 1000000, duplicates: 30m, replicas: 1}
+  stream: {max_age: 720h, max_bytes: 1000000, duplicates: 30m, replicas: 1, consumers: [dashboard, pager]}
   outbox: {max_messages: 500, max_bytes: 1000000, ack_timeout: 1500ms}
 control:
   secret_env: SW_TEST_CONTROL
@@ -50,7 +52,7 @@ func TestBusConfigFromYAML(t *testing.T) {
 	ec, warn, err := cfg.Bus.embeddedConfig("/data", getenv)
 	require.NoError(t, err)
 	assert.Empty(t, warn)
-	assert.Equal(t, []alert.BusUser{{Name: "stillwater", Password: "daemon-pw", Role: "daemon"}, {Name: "pager", Password: "pager-pw", Role: "responder"},
+	assert.Equal(t, []bus.User{{Name: "stillwater", Password: "daemon-pw", Role: "daemon"}, {Name: "pager", Password: "pager-pw", Role: "responder"},
 		{Name: "alice", Password: "$2a$11$abcdefghijklmnopqrstuv", Role: "operator"}}, ec.Users)
 	assert.Equal(t, "/data/jetstream", ec.StoreDir)
 	assert.Equal(t, "sw", ec.Prefix)
@@ -66,6 +68,8 @@ func TestBusConfigFromYAML(t *testing.T) {
 	assert.Equal(t, 500, pc.Outbox.MaxMessages)
 	assert.Equal(t, 1500*time.Millisecond, pc.AckTimeout)
 	assert.Equal(t, 30*time.Minute, pc.Stream.Duplicates)
+	assert.Equal(t, []string{"pager", "alice", "dashboard"}, pc.Consumers, "every responder and operator, then those listed, once each")
+	assert.Equal(t, "", ec.Stream, "the default stream name")
 
 	sec, warn, err := cfg.Control.controlSecret(getenv)
 	require.NoError(t, err)
@@ -124,6 +128,11 @@ func TestValidateBusErrors(t *testing.T) {
 			b.Stream.Duplicates = Duration(2 * time.Hour)
 		}, "bus.stream.duplicates"},
 		{"ack timeout", func(b *BusConfig) { b.Outbox.AckTimeout = Duration(time.Minute) }, "bus.outbox.ack_timeout"},
+		{"consumer name", func(b *BusConfig) { b.Stream.Consumers = []string{"ok", "a/b"} }, "bus.stream.consumers[1]"},
+		{"consumer twice", func(b *BusConfig) { b.Stream.Consumers = []string{"x", "x"} }, "listed twice"},
+		{"operator name", func(b *BusConfig) {
+			b.Users = []BusUserConfig{{Name: "d", Role: "daemon", PasswordEnv: "X"}, {Name: "al/ice", Role: "operator", PasswordEnv: "Y"}}
+		}, "bus.users[1].name"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -156,13 +165,14 @@ func TestOpenBusEndToEnd(t *testing.T) {
 	cfg := Defaults()
 	cfg.DataDir = t.TempDir()
 	cfg.Bus = BusConfig{Listen: "127.0.0.1:-1", Prefix: "sw", Users: []BusUserConfig{
-		{Name: "stillwater", Role: alert.RoleDaemon, PasswordEnv: "SW_TEST_DAEMON_PW"},
-		{Name: "pager", Role: alert.RoleResponder, Password: "pager-pw"}}}
-	cfg.Control = ControlConfig{SecretEnv: "SW_TEST_CONTROL"}
+		{Name: "stillwater", Role: bus.RoleDaemon, PasswordEnv: "SW_TEST_DAEMON_PW"},
+		{Name: "pager", Role: bus.RoleResponder, Password: "pager-pw"}}}
+	// The override's author is the name bound to the token, not the body's by.
+	cfg.Control = ControlConfig{SecretEnv: "SW_TEST_CONTROL", TokenName: "test"}
 	require.NoError(t, validateBus(cfg.Bus))
 	require.NoError(t, validateControl(cfg.Control, cfg.Bus))
 	refused := make(chan string, 4)
-	b, err := openBus(context.Background(), cfg, alert.ArmingConfig{Cameras: []string{"pool"}}, time.Now,
+	b, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"pool"}}, time.Now,
 		slog.New(slog.NewTextHandler(io.Discard, nil)), busHooks{OnRefused: func(via string) { refused <- via }})
 	require.NoError(t, err)
 	defer b.Close()
@@ -190,7 +200,7 @@ func TestOpenBusEndToEnd(t *testing.T) {
 	res.Body.Close()
 	assert.Equal(t, http.StatusUnauthorized, res.StatusCode)
 	assert.Equal(t, "http", <-refused)
-	req, err = http.NewRequest("POST", srv.URL+"/control/disarm", strings.NewReader(`{"for":"1h","by":"test"}`))
+	req, err = http.NewRequest("POST", srv.URL+"/control/disarm", strings.NewReader(`{"for":"1h","by":"someone-else"}`))
 	require.NoError(t, err)
 	req.Header.Set("Authorization", "Bearer ctl-token")
 	res, err = http.DefaultClient.Do(req)
@@ -209,4 +219,91 @@ func TestOpenBusEndToEnd(t *testing.T) {
 	assert.NoError(t, err, "the disarm was saved")
 	_, err = os.Stat(filepath.Join(cfg.DataDir, "outbox", "outbox.log"))
 	assert.NoError(t, err, "the outbox lives in the data directory")
+}
+
+// TestNATSControlRecordsBusUser runs trust_nats through openBus, as serve
+// does: a request on an operator's own control subject is recorded as
+// made by that bus user, whatever its body says; the server refuses one
+// operator's request on another's subject, so alice cannot act as bob;
+// and the shared subject, which names no sender, is refused without the
+// token.
+func TestNATSControlRecordsBusUser(t *testing.T) {
+	cfg := Defaults()
+	cfg.DataDir = t.TempDir()
+	cfg.Bus = BusConfig{Listen: "127.0.0.1:-1", Prefix: "sw", Users: []BusUserConfig{
+		{Name: "stillwater", Role: bus.RoleDaemon, Password: "daemon-pw"},
+		{Name: "alice", Role: bus.RoleOperator, Password: "alice-pw"},
+		{Name: "bob", Role: bus.RoleOperator, Password: "bob-pw"}}}
+	cfg.Control = ControlConfig{TrustNATS: true}
+	require.NoError(t, validateBus(cfg.Bus))
+	require.NoError(t, validateControl(cfg.Control, cfg.Bus))
+	b, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"pool"}}, time.Now,
+		slog.New(slog.NewTextHandler(io.Discard, nil)), busHooks{})
+	require.NoError(t, err)
+	defer b.Close()
+
+	login := func(user, pw string) (*nats.Conn, chan error) {
+		errs := make(chan error, 4)
+		nc, err := nats.Connect(b.Embedded.URL(), nats.UserInfo(user, pw),
+			nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) { errs <- err }))
+		require.NoError(t, err)
+		t.Cleanup(nc.Close)
+		return nc, errs
+	}
+	request := func(nc *nats.Conn, subject, body string) arming.ControlReply {
+		t.Helper()
+		m, err := nc.Request(subject, []byte(body), 5*time.Second)
+		require.NoError(t, err, subject)
+		var rep arming.ControlReply
+		require.NoError(t, json.Unmarshal(m.Data, &rep))
+		return rep
+	}
+	override := func(rep arming.ControlReply) string {
+		t.Helper()
+		require.True(t, rep.OK, rep.Error)
+		require.Len(t, rep.Status.Cameras, 1)
+		if rep.Status.Cameras[0].Override == nil {
+			return ""
+		}
+		return rep.Status.Cameras[0].Override.By
+	}
+	alice, aliceErrs := login("alice", "alice-pw")
+	bob, _ := login("bob", "bob-pw")
+	armed, err := alice.SubscribeSync("sw.pool.armed")
+	require.NoError(t, err)
+	require.NoError(t, alice.Flush())
+	ctx, cancel := context.WithCancel(context.Background())
+	done := make(chan error, 1)
+	go func() { done <- b.Run(ctx) }()
+	defer func() { cancel(); require.NoError(t, <-done) }()
+	_, err = armed.NextMsg(5 * time.Second) // the start-up state
+	require.NoError(t, err)
+
+	assert.Equal(t, "nats:alice", override(request(alice, "sw.control.alice.disarm", `{"for":"1h","by":"bob"}`)),
+		"the author is the bus user the subject belongs to, not the body's by")
+	m, err := armed.NextMsg(5 * time.Second)
+	require.NoError(t, err)
+	assert.Contains(t, string(m.Data), `"by":"nats:alice"`, "the armed message names her too")
+
+	// Alice sends on Bob's subject: the server refuses it, nothing changes.
+	require.NoError(t, alice.Publish("sw.control.bob.arm", []byte(`{"for":"1h"}`)))
+	select {
+	case err := <-aliceErrs:
+		assert.ErrorContains(t, err, `Permissions Violation for Publish to "sw.control.bob.arm"`)
+	case <-time.After(5 * time.Second):
+		t.Fatal("the server let alice publish on bob's control subject")
+	}
+	st := request(alice, "sw.control.alice.status", ``)
+	assert.Equal(t, "nats:alice", override(st), "still alice's disarm")
+	assert.False(t, st.Status.Cameras[0].Armed)
+
+	rep := request(alice, "sw.control.arm", `{"by":"alice"}`)
+	assert.False(t, rep.OK, "the shared subject without the token names no one")
+	assert.Contains(t, rep.Error, "sw.control.YOUR-USER.arm")
+
+	assert.Equal(t, "nats:bob", override(request(bob, "sw.control.bob.arm", `{"for":"2h"}`)))
+	m, err = armed.NextMsg(5 * time.Second)
+	require.NoError(t, err)
+	assert.Contains(t, string(m.Data), `"by":"nats:bob"`)
+	require.NoError(t, b.Pub.Flush(context.Background()))
 }

@@ -52,3 +52,33 @@ func TestParseConfigErrors(t *testing.T) {
 		})
 	}
 }
+
+// Local is the machine's zone under its IANA name, from TZ here; a TZ
+// that names no zone is an error once a schedule depends on it.
+func TestLocalZoneIsTheSystemZone(t *testing.T) {
+	const cam = `
+cameras:
+  - id: pool
+    source: rtsp://192.0.2.10/a
+    pool: {length_m: 8, width_m: 4}
+    corners: [[145, 390], [229, 42], [420, 42], [500, 390]]
+`
+	t.Setenv("TZ", "Europe/Berlin")
+	cfg, err := ParseConfig([]byte("arming: {schedule: [\"daily 20:00-06:00\"]}" + cam))
+	require.NoError(t, err, "Local is the default zone and must work with a schedule")
+	sch, err := cfg.schedules()
+	require.NoError(t, err)
+	// 19:30 UTC is 21:30 in Berlin in summer (CEST, UTC+2): inside the window.
+	assert.True(t, sch["pool"].Armed(time.Date(2026, 7, 1, 19, 30, 0, 0, time.UTC)))
+	assert.False(t, sch["pool"].Armed(time.Date(2026, 7, 1, 17, 30, 0, 0, time.UTC)))
+	loc, err := cfg.zone()
+	require.NoError(t, err)
+	assert.Equal(t, "Europe/Berlin", loc.String())
+
+	t.Setenv("TZ", "Mars/Olympus_Mons")
+	_, err = ParseConfig([]byte("arming: {schedule: [\"daily 20:00-06:00\"]}" + cam))
+	require.Error(t, err)
+	assert.Contains(t, err.Error(), "Mars/Olympus_Mons")
+	_, err = ParseConfig([]byte(cam))
+	assert.NoError(t, err, "without a schedule the zone does not matter")
+}

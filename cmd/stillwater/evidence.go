@@ -3,7 +3,6 @@ package main
 import (
 	"fmt"
 	"net/http"
-	"os"
 	"path/filepath"
 	"strings"
 	"time"
@@ -41,45 +40,67 @@ func annotation(cam CameraConfig, proc *processor, caption string) vision.Annota
 	return a
 }
 
-// saveEvidence writes the annotated frame and starts (or extends) the clip
-// for an alarm that starts now. It returns the snapshot's path relative to
-// the data directory, for the target message, or "" when nothing could be
-// kept: a failure here is logged and never holds up the alarm.
-func (w *cameraWatch) saveEvidence(vc *vision.Camera, proc *processor, r vision.Result, o alert.Observation) string {
+// evidenceJob is the evidence of one alarm start, named when the target
+// message is made and written after it is published.
+type evidenceJob struct {
+	base    string // file name without extension, in the evidence directory
+	caption string
+}
+
+// planEvidence names the evidence of an alarm that starts at this frame and
+// queues it for keepEvidence; it returns the snapshot's path relative to
+// the data directory for the target message, or "" when evidence is off.
+// It touches neither the camera nor the disk: the message goes out first.
+func (w *cameraWatch) planEvidence(r vision.Result, o alert.Observation) string {
 	if !w.evidence.on {
-		return ""
-	}
-	if err := os.MkdirAll(w.evidence.dir, 0o750); err != nil {
-		w.log.Error("evidence directory", "err", err)
 		return ""
 	}
 	stamp := w.epoch.Add(r.Media).UTC().Format("20060102T150405.000Z")
 	stamp = strings.ReplaceAll(stamp, ".", "")
 	base := fmt.Sprintf("%s-%s-track%d", w.cam.ID, stamp, o.Track)
 	caption := fmt.Sprintf("%s  %s  track %d at %.2f m, %.2f m", w.cam.ID, w.epoch.Add(r.Media).UTC().Format(time.RFC3339), o.Track, o.X, o.Y)
-	jpg, err := vc.Snapshot(annotation(w.cam, proc, caption))
-	if err != nil {
-		w.log.Error("evidence snapshot", "err", err)
-		return ""
+	w.pendingEvidence = append(w.pendingEvidence, evidenceJob{base: base, caption: caption})
+	return filepath.Join("evidence", base+".jpg")
+}
+
+// keepEvidence hands the planned evidence to the camera's evidence writer:
+// the annotated frame as a snapshot, and a clip started (or extended). It
+// is called after the frame's messages are published and returns at once;
+// the files are written on the writer's goroutine (evidenceWritten reports
+// them). A failure is logged and never holds up an alarm.
+func (w *cameraWatch) keepEvidence(vc *vision.Camera, proc *processor) {
+	for _, j := range w.pendingEvidence {
+		snap := filepath.Join(w.evidence.dir, j.base+".jpg")
+		if err := vc.SaveSnapshot(snap, annotation(w.cam, proc, j.caption)); err != nil {
+			w.log.Error("evidence snapshot not kept", "snapshot", filepath.Base(snap), "err", err)
+		}
+		if _, err := vc.StartClip(filepath.Join(w.evidence.dir, j.base+".avi")); err != nil {
+			w.log.Error("evidence clip not kept", "err", err)
+		}
 	}
-	name := base + ".jpg"
-	if err := os.WriteFile(filepath.Join(w.evidence.dir, name), jpg, 0o640); err != nil {
-		w.log.Error("evidence snapshot", "err", err)
-		return ""
+	w.pendingEvidence = w.pendingEvidence[:0]
+}
+
+// evidenceWritten runs on the camera's evidence writer goroutine for every
+// snapshot written and clip finished: it logs them and applies retention,
+// keeping the file just written and the clip still open.
+func (w *cameraWatch) evidenceWritten(ev vision.EvidenceWritten) {
+	if ev.Err != nil {
+		w.log.Error("evidence "+ev.Kind+" failed", "err", ev.Err)
+		return
 	}
-	clip, err := vc.StartClip(filepath.Join(w.evidence.dir, base+".avi"))
-	if err != nil {
-		w.log.Error("evidence clip", "err", err)
-	}
+	w.log.Info("evidence kept", "kind", ev.Kind, "file", filepath.Base(ev.Path), "frames", ev.Frames, "dropped", ev.Dropped,
+		"took", ev.Took.Round(time.Millisecond))
 	keep := w.evidence.keep
-	keep.Keep = []string{filepath.Join(w.evidence.dir, name), clip.Path}
+	keep.Keep = []string{ev.Path}
+	if ev.Recording != "" {
+		keep.Keep = append(keep.Keep, ev.Recording)
+	}
 	if n, err := vision.PruneEvidence(w.evidence.dir, keep, w.now()); err != nil {
 		w.log.Error("evidence retention", "err", err)
 	} else if n > 0 {
 		w.log.Info("old evidence removed", "files", n)
 	}
-	w.log.Info("evidence kept", "snapshot", name, "clip", filepath.Base(clip.Path), "extended", clip.Extended)
-	return filepath.Join("evidence", name)
 }
 
 // answerSnapshot serves a pending request for the latest annotated frame.

@@ -251,26 +251,3 @@ func (h holdoutLabels) holdoutH() ([9]float64, bool) {
 	}
 	return m, !math.IsNaN(m[8])
 }
-
-// addInstallerKnowledge completes a camera built from a label file's
-// corners with what a generated family scene's labels also give an
-// installer: the frame size and the chessboard lens, the measured camera
-// position and the pool's depth (its first and last points, as the
-// shallow and deep ends).
-func addInstallerKnowledge(cam *CameraConfig, t synth.Truth) {
-	if l := t.Lens; l != nil && l.Fx > 0 {
-		if t.Width > 0 && t.Height > 0 {
-			cam.Frame = [2]int{t.Width, t.Height}
-		}
-		cam.Lens = &LensConfig{Fx: l.Fx, Fy: l.Fy, Cx: l.Cx, Cy: l.Cy, Dist: append([]float64(nil), l.Dist[:]...)}
-	}
-	if t.Camera != nil && t.Lens != nil {
-		cam.CameraPosition = &CameraPositionConfig{X: t.Camera.X, Y: t.Camera.Y, Height: t.Camera.Height}
-	}
-	if d := t.Depth; d != nil && len(d.D) > 0 && cam.CameraPosition != nil {
-		cam.Water = WaterConfig{Shallow: d.D[0], Deep: d.D[len(d.D)-1]}
-		if d.D[0] == d.D[len(d.D)-1] {
-			cam.Water = WaterConfig{Depth: d.D[0]}
-		}
-	}
-}

@@ -17,6 +17,7 @@ import (
 	"github.com/nats-io/nats.go"
 
 	"stillwater/alert"
+	"stillwater/alert/bus"
 )
 
 // listenFlags are the flags of "stillwater listen".
@@ -139,17 +140,17 @@ func isControlSubject(subject, prefix string) bool {
 }
 
 func (f listenFlags) connectOptions(getenv func(string) string) ([]nats.Option, error) {
-	a := alert.BusAuth{User: f.user, NKeySeedFile: f.nkey, CredsFile: f.creds, CAFile: f.tlsCA, CertFile: f.tlsCert, KeyFile: f.tlsKey}
-	pw, _, err := alert.Secret{Env: f.passwordEnv, File: f.passwordFile}.Resolve(getenv)
+	a := bus.Auth{User: f.user, NKeySeedFile: f.nkey, CredsFile: f.creds, CAFile: f.tlsCA, CertFile: f.tlsCert, KeyFile: f.tlsKey}
+	pw, _, err := bus.Secret{Env: f.passwordEnv, File: f.passwordFile}.Resolve(getenv)
 	if err != nil {
 		return nil, fmt.Errorf("password: %w", err)
 	}
-	tok, _, err := alert.Secret{Env: f.tokenEnv, File: f.tokenFile}.Resolve(getenv)
+	tok, _, err := bus.Secret{Env: f.tokenEnv, File: f.tokenFile}.Resolve(getenv)
 	if err != nil {
 		return nil, fmt.Errorf("token: %w", err)
 	}
 	a.Password, a.Token = pw, tok
-	return alert.ConnectOptions(a)
+	return bus.ConnectOptions(a)
 }
 
 func busRedactList(urls string) string {

@@ -13,6 +13,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/alert/bus"
 )
 
 // syncBuffer is a bytes.Buffer safe to read while runListen writes.
@@ -33,10 +34,10 @@ func (s *syncBuffer) String() string {
 	return s.b.String()
 }
 
-func listenBus(t *testing.T) (*alert.Embedded, *nats.Conn) {
+func listenBus(t *testing.T) (*bus.Embedded, *nats.Conn) {
 	t.Helper()
-	emb, err := alert.StartEmbedded(alert.EmbeddedConfig{Listen: "127.0.0.1:-1", StoreDir: t.TempDir(), Prefix: "sw",
-		Users: []alert.BusUser{{Name: "daemon", Password: "d-pass", Role: alert.RoleDaemon}, {Name: "resp", Password: "r-pass", Role: alert.RoleResponder}}})
+	emb, err := bus.StartEmbedded(bus.EmbeddedConfig{Listen: "127.0.0.1:-1", StoreDir: t.TempDir(), Prefix: "sw",
+		Users: []bus.User{{Name: "daemon", Password: "d-pass", Role: bus.RoleDaemon}, {Name: "resp", Password: "r-pass", Role: bus.RoleResponder}}})
 	require.NoError(t, err)
 	t.Cleanup(emb.Shutdown)
 	nc, err := nats.Connect(emb.URL(), nats.UserInfo("daemon", "d-pass"))

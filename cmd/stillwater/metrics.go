@@ -5,6 +5,8 @@ import (
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
+
+	"stillwater/alert/bus"
 )
 
 // metrics are the daemon's own collectors, registered on the registry
@@ -27,6 +29,7 @@ type metrics struct {
 	faultActive *prometheus.GaugeVec
 	beatTime    *prometheus.GaugeVec
 	published   *prometheus.CounterVec
+	acked       *prometheus.CounterVec
 	pubErrors   *prometheus.CounterVec
 	pubSecs     *prometheus.HistogramVec
 	refused     *prometheus.CounterVec
@@ -62,16 +65,17 @@ func newMetrics(reg prometheus.Registerer, version string) *metrics {
 		faults:      counter("stillwater_faults_total", "Faults raised, by kind.", "camera", "fault"),
 		faultActive: gauge("stillwater_fault_active", "1 while a fault of the kind is active.", "camera", "fault"),
 		beatTime:    gauge("stillwater_heartbeat_timestamp_seconds", "Unix time of the last heartbeat sent.", cam...),
-		published:   counter("stillwater_messages_published_total", "Messages handed to the bus, by kind.", "camera", "kind"),
+		published:   counter("stillwater_messages_published_total", "Messages the bus took, by kind: stream messages acknowledged and heartbeats sent.", "camera", "kind"),
+		acked:       counter("stillwater_messages_acknowledged_total", "Stream messages the server acknowledged, directly or from the outbox, by kind.", "camera", "kind"),
 		pubErrors:   counter("stillwater_publish_errors_total", "Publishes that failed.", cam...),
 		pubSecs: prometheus.NewHistogramVec(prometheus.HistogramOpts{
-			Name: "stillwater_publish_seconds", Help: "Time to publish one message, by kind.", Buckets: secs,
+			Name: "stillwater_publish_seconds", Help: "Time from handing a stream message to the bus to its acknowledgement, outbox time included, by kind.", Buckets: secs,
 		}, []string{"kind"}),
 		refused: counter("stillwater_control_refused_total", "Control requests refused, by channel.", "via"),
 		build:   gauge("stillwater_build_info", "Always 1; labels carry the version.", "version", "goversion"),
 	}
 	reg.MustRegister(m.read, m.processed, m.dropped, m.decodeErrs, m.procSecs, m.stageSecs, m.rejected, m.tracks,
-		m.up, m.reconnects, m.armed, m.alarms, m.faults, m.faultActive, m.beatTime, m.published, m.pubErrors, m.pubSecs,
+		m.up, m.reconnects, m.armed, m.alarms, m.faults, m.faultActive, m.beatTime, m.published, m.acked, m.pubErrors, m.pubSecs,
 		m.refused, m.build)
 	m.build.WithLabelValues(version, runtime.Version()).Set(1)
 	return m
@@ -181,12 +185,13 @@ func (c *cameraMetrics) heartbeat(t time.Time) {
 	c.m.beatTime.WithLabelValues(c.id).Set(float64(t.UnixNano()) / 1e9)
 }
 
-func (c *cameraMetrics) published(kind string, d time.Duration) {
+// published counts a plain message (a heartbeat) sent; stream messages
+// are counted when acknowledged, by busResult.
+func (c *cameraMetrics) published(kind string) {
 	if c == nil {
 		return
 	}
 	c.m.published.WithLabelValues(c.id, kind).Inc()
-	c.m.pubSecs.WithLabelValues(kind).Observe(d.Seconds())
 }
 
 func (c *cameraMetrics) publishError() {
@@ -201,4 +206,45 @@ func b2f(b bool) float64 {
 		return 1
 	}
 	return 0
+}
+
+// busResult records the fate of one message, from the publisher's
+// OnResult callback: an acknowledged stream message is counted as
+// published and acknowledged, and its time from Publish to the
+// acknowledgement observed, once.
+func (m *metrics) busResult(r bus.PublishResult) {
+	if r.Err != nil {
+		return
+	}
+	m.published.WithLabelValues(r.Camera, r.Kind).Inc()
+	m.acked.WithLabelValues(r.Camera, r.Kind).Inc()
+	m.pubSecs.WithLabelValues(r.Kind).Observe(r.Latency.Seconds())
+}
+
+// registerBusMetrics registers the series read from the bus side at
+// scrape time.
+func registerBusMetrics(reg prometheus.Registerer, b *busParts, now func() time.Time) {
+	pub := b.Pub
+	stats := func(f func(bus.Stats) float64) func() float64 { return func() float64 { return f(pub.Stats()) } }
+	fault := func(reason, help string, active func() bool) prometheus.Collector {
+		return prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_bus_fault", Help: help, ConstLabels: prometheus.Labels{"reason": reason}},
+			func() float64 { return b2f(active()) })
+	}
+	const faultHelp = "1 while the bus side has a fault of the reason: stream (the stream cannot be created or used), stalled (the oldest queued message is over 30 s old)."
+	reg.MustRegister(
+		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_depth", Help: "Messages waiting in the outbox for the bus."},
+			stats(func(s bus.Stats) float64 { return float64(s.Depth) })),
+		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_oldest_age_seconds", Help: "Age of the oldest message in the outbox; 0 when it is empty."},
+			func() float64 { age, _ := b.stalled(now()); return age.Seconds() }),
+		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_dropped_total", Help: "Messages the outbox dropped or refused because it was full."},
+			stats(func(s bus.Stats) float64 { return float64(s.Dropped + s.Refused) })),
+		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_messages_queued_total", Help: "Stream messages put in the outbox to wait for the bus."},
+			stats(func(s bus.Stats) float64 { return float64(s.Queued) })),
+		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_messages_dead_lettered_total", Help: "Messages the server refused or never acknowledged, moved to the dead-letter file."},
+			stats(func(s bus.Stats) float64 { return float64(s.DeadLettered) })),
+		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_rejected_total", Help: "Outbox lines set aside as invalid when the outbox was opened."},
+			stats(func(s bus.Stats) float64 { return float64(s.Rejected) })),
+		fault("stream", faultHelp, func() bool { return pub.StreamFault() != nil }),
+		fault("stalled", faultHelp, func() bool { _, st := b.stalled(now()); return st }),
+	)
 }

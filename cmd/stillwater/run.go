@@ -9,6 +9,8 @@ import (
 	"os"
 	"os/signal"
 	"syscall"
+
+	"stillwater/vision"
 )
 
 // runDaemon is "stillwater run": the daemon from a config file.
@@ -45,7 +47,8 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err != nil {
 		return err
 	}
-	log := newLogger(cfg.Log, stderr)
+	// Every secret the configuration holds is hidden in every log line.
+	log := withRedaction(newLogger(cfg.Log, stderr), cfg.Secrets()...)
 
 	// SIGHUP reloads the file; a broken file is refused and logged, and
 	// the daemon goes on with what it has.
@@ -65,6 +68,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 				log.Error("reload refused; keeping the running configuration", "err", err)
 				continue
 			}
+			withRedaction(log, next.Secrets()...)
 			select {
 			case reload <- next:
 			case <-ctx.Done():
@@ -72,7 +76,14 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			}
 		}
 	}()
-	return serve(ctx, cfg, deps{Log: log, Reload: reload})
+	// FFmpeg's own messages join the daemon's log rather than stderr.
+	if stopLibLog, err := vision.ForwardLibraryLog(log); err != nil {
+		log.Warn("the video backend's own messages go to stderr", "err", err)
+	} else {
+		defer stopLibLog()
+	}
+	// The error is printed by main, outside the log: hide secrets there too.
+	return redactorOf(log).Err(serve(ctx, cfg, deps{Log: log, Reload: reload}))
 }
 
 func newLogger(c LogConfig, w io.Writer) *slog.Logger {

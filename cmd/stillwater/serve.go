@@ -10,14 +10,16 @@ import (
 	"net/http"
 	"os"
 	"runtime/debug"
+	"sync/atomic"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
-	"golang.org/x/sync/errgroup"
 
 	"stillwater/alert"
+	"stillwater/alert/arming"
+	"stillwater/alert/bus"
 )
 
 // safetyNotice is logged at start-up and printed by the README.
@@ -48,6 +50,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	if now == nil {
 		now = time.Now
 	}
+	log = withRedaction(log, cfg.Secrets()...)
 	log.Warn(safetyNotice)
 	if err := os.MkdirAll(cfg.DataDir, 0o750); err != nil {
 		return fmt.Errorf("data_dir %s: %w", cfg.DataDir, err)
@@ -72,15 +75,11 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	}
 	var watches []*cameraWatch
 	backlog := make(chan backlogEvent, 64)
-	bus, err := openBus(ctx, cfg, alert.ArmingConfig{Cameras: ids, Schedules: sch}, now, log, busHooks{
-		OnResult: func(r alert.PublishResult) {
-			if r.Err == nil {
-				met.pubSecs.WithLabelValues(r.Kind).Observe(r.Latency.Seconds())
-			}
-		},
+	bus, err := openBus(ctx, cfg, arming.Config{Cameras: ids, Schedules: sch, Log: log}, now, log, busHooks{
+		OnResult: met.busResult,
 		// The publisher calls this from inside its own publish path: hand
 		// the fault to a goroutine rather than publish from here.
-		OnBacklog: func(active bool, st alert.Stats) {
+		OnBacklog: func(active bool, st bus.Stats) {
 			select {
 			case backlog <- backlogEvent{active: active, stats: st}:
 			default:
@@ -97,13 +96,10 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	if bus.Embedded != nil {
 		busURL = bus.Embedded.URL()
 	}
-	reg.MustRegister(
-		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_depth", Help: "Messages waiting in the outbox for the bus."},
-			func() float64 { return float64(pub.Stats().Depth) }),
-		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_dropped_total", Help: "Messages the outbox dropped or refused because it was full."},
-			func() float64 { return float64(pub.Stats().Lost()) }))
+	registerBusMetrics(reg, bus, now)
 
-	bs := &busSink{pub: pub, met: met}
+	busOut := &busSink{pub: pub, met: met}
+	bs := redactSink{next: busOut, red: redactorOf(log)}
 	for _, cam := range cfg.Cameras {
 		id := cam.ID
 		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
@@ -127,13 +123,23 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 		}
 	}()
 
+	acc, warn, err := cfg.access(os.Getenv)
+	if err != nil {
+		return err
+	}
+	logWarnings(log, warn)
+	pictures := newPictureGate(cfg.HTTP.Listen)
+	pictures.set(acc)
+	if !pictures.open && acc.viewer == "" && acc.control == "" {
+		log.Warn("camera pictures are refused: the HTTP listener is not loopback and no token is set; set http.viewer_secret_env or http.viewer_secret_file", "listen", cfg.HTTP.Listen)
+	}
 	mux := http.NewServeMux()
 	mux.Handle("/metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
 	mux.HandleFunc("/healthz", func(w http.ResponseWriter, _ *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.Handle("/control/", bus.Control.Handler())
-	mux.Handle("GET /cameras/{id}/latest.jpg", latestHandler(watches))
+	mux.Handle("GET /cameras/{id}/latest.jpg", pictures.wrap(latestHandler(watches)))
 	mux.HandleFunc("/readyz", func(w http.ResponseWriter, _ *http.Request) {
-		problems := readiness(now(), watches, nc.IsConnected())
+		problems := append(readiness(now(), watches, nc.IsConnected()), bus.problems(now())...)
 		if len(problems) > 0 {
 			w.WriteHeader(http.StatusServiceUnavailable)
 			for _, p := range problems {
@@ -147,7 +153,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	if err != nil {
 		return fmt.Errorf("http.listen %s: %w", cfg.HTTP.Listen, err)
 	}
-	hs := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
+	hs := newHTTPServer(mux, defaultHTTPTimeouts(), log)
 	log.Info("http listening", "addr", ln.Addr().String())
 	if d.Ready != nil {
 		d.Ready(busURL, ln.Addr().String())
@@ -174,33 +180,48 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	busDone := make(chan error, 1)
 	go func() { busDone <- bus.Run(busCtx) }()
 
-	g, gctx := errgroup.WithContext(ctx)
 	camsDone := make(chan struct{})
+	rl := newReloader(log, cfg, acc, reloadTargets{
+		watches:      watches,
+		setSchedules: func(sch map[string]*arming.Schedule) error { return bus.Arming.SetSchedules(nil, sch, now()) },
+		setAccess: func(a access) error {
+			pictures.set(a)
+			return bus.Control.SetAuth(a.control, a.tokenName, a.trustNATS)
+		},
+		setMaxDisarm: func(d time.Duration) ([]string, error) { return bus.Arming.SetMaxDisarm(d, now()) },
+	})
 	go func() {
 		for {
 			select {
 			case <-camsDone:
 				return
 			case nc := <-d.Reload:
-				applyReload(log, cfg, nc, watches, func(sch map[string]*alert.Schedule) error {
-					return bus.Arming.SetSchedules(nil, sch, now())
-				})
+				rl.apply(nc)
 			}
 		}
 	}()
-	for _, w := range watches {
-		// One goroutine per camera; a failing camera logs and ends alone.
-		g.Go(func() error {
-			if err := w.run(gctx); err != nil {
+	// One goroutine per camera; a failing camera logs and ends alone. A
+	// camera still running cameraStopWait after ctx ended (a call into the
+	// video backend that does not return) is abandoned, not waited for.
+	stopped := make([]chan struct{}, len(watches))
+	for i, w := range watches {
+		stopped[i] = make(chan struct{})
+		go func() {
+			defer close(stopped[i])
+			if err := w.run(ctx); err != nil {
 				log.Error("camera stopped", "camera", w.cam.ID, "err", err)
 			}
-			return nil
-		})
+		}()
 	}
-	g.Wait()
+	if left := waitCameras(ctx, watches, stopped, cameraStopWait); len(left) > 0 {
+		busOut.stop()
+		for _, id := range left {
+			log.Error("camera did not stop; abandoned", "camera", id, "waited", cameraStopWait)
+		}
+	}
 	close(camsDone)
 
-	fctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
+	fctx, cancel := context.WithTimeout(context.Background(), flushWait)
 	defer cancel()
 	if err := pub.Flush(fctx); err != nil {
 		log.Error("flush bus; what is left stays in the outbox for the next start", "err", err, "depth", pub.Stats().Depth)
@@ -213,43 +234,46 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	return <-httpDone
 }
 
-// applyReload hands each running camera its new settings and swaps the
-// schedules. Cameras added, removed or pointed at another source need a
-// restart; that is logged, not done.
-func applyReload(log *slog.Logger, old, next Config, watches []*cameraWatch, setSchedules func(map[string]*alert.Schedule) error) {
-	sch, err := next.schedules()
-	if err != nil {
-		log.Error("reload refused", "err", err)
-		return
-	}
-	byID := map[string]CameraConfig{}
-	for _, c := range next.Cameras {
-		byID[c.ID] = c
-	}
-	for _, w := range watches {
-		c, ok := byID[w.cam.ID]
-		switch {
-		case !ok:
-			log.Warn("reload: camera removed from the config; it keeps running until restart", "camera", w.cam.ID)
-			continue
-		case c.Source != w.cam.Source || c.Transport != w.cam.Transport:
-			log.Warn("reload: camera source changed; restart to use it", "camera", w.cam.ID)
-			continue
+// Shutdown bounds: after the context ends, cameras get cameraStopWait to
+// stop, then the outbox gets flushWait to reach the bus. systemd's
+// TimeoutStopSec (deploy/stillwater.service) must stay above the sum.
+const (
+	cameraStopWait = 3 * time.Second
+	flushWait      = 5 * time.Second
+)
+
+// waitCameras waits until every camera's goroutine has closed its channel
+// in stopped, or, once ctx has ended, grace more at most. It returns the
+// ids of the cameras still running then.
+func waitCameras(ctx context.Context, watches []*cameraWatch, stopped []chan struct{}, grace time.Duration) []string {
+	all := make(chan struct{})
+	go func() {
+		for _, ch := range stopped {
+			<-ch
 		}
-		delete(byID, c.ID)
+		close(all)
+	}()
+	select {
+	case <-all:
+		return nil
+	case <-ctx.Done():
+	}
+	t := time.NewTimer(grace)
+	defer t.Stop()
+	select {
+	case <-all:
+		return nil
+	case <-t.C:
+	}
+	var left []string
+	for i, ch := range stopped {
 		select {
-		case <-w.reload: // an older reload not yet taken: replace it
+		case <-ch:
 		default:
+			left = append(left, watches[i].cam.ID)
 		}
-		w.reload <- c
 	}
-	for id := range byID {
-		log.Warn("reload: new camera in the config; restart to start it", "camera", id)
-	}
-	if err := setSchedules(sch); err != nil {
-		log.Error("reload: schedules refused", "err", err)
-	}
-	log.Info("configuration reloaded", "cameras", len(watches))
+	return left
 }
 
 // readiness lists why the daemon is not ready: an armed camera without
@@ -301,25 +325,48 @@ func buildVersion() string {
 // backlogEvent is the outbox starting or ending a backlog.
 type backlogEvent struct {
 	active bool
-	stats  alert.Stats
+	stats  bus.Stats
 }
 
 // busSink hands messages to the publisher: targets, clears, faults and
 // armed changes go to the stream (or the outbox while the bus is down);
 // heartbeats are plain messages, dropped while disconnected.
 type busSink struct {
-	pub *alert.Publisher
+	pub *bus.Publisher
 	met *metrics
+	// closed is set when serve stops with cameras abandoned: what they
+	// send later goes nowhere, not into a closed publisher.
+	closed atomic.Bool
 }
 
+// redactSink hides secrets in messages before they leave, as the log
+// does: a fault's detail may quote an error that quotes a camera URL.
+type redactSink struct {
+	next sink
+	red  *redactor
+}
+
+func (r redactSink) send(ctx context.Context, m outMsg) error {
+	m.Data = r.red.Bytes(m.Data)
+	return r.next.send(ctx, m)
+}
+
+var errDaemonStopped = errors.New("the daemon has stopped")
+
+func (b *busSink) stop() { b.closed.Store(true) }
+
 func (b *busSink) send(ctx context.Context, m outMsg) error {
-	t0 := time.Now()
+	if b.closed.Load() {
+		return errDaemonStopped
+	}
 	if err := b.pub.Publish(ctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
-		if m.Kind == alert.KindBeat && errors.Is(err, alert.ErrBusDown) {
+		if m.Kind == alert.KindBeat && errors.Is(err, bus.ErrNotConnected) {
 			return nil
 		}
 		return err
 	}
-	b.met.camera(m.Camera).published(m.Kind, time.Since(t0))
+	if m.Kind == alert.KindBeat { // stream messages count when acknowledged (busResult)
+		b.met.camera(m.Camera).published(m.Kind)
+	}
 	return nil
 }

@@ -3,13 +3,14 @@ package main
 import (
 	"io"
 	"log/slog"
+	"slices"
 	"testing"
 	"time"
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
-	"stillwater/alert"
+	"stillwater/alert/arming"
 )
 
 func reloadFixture(t *testing.T) Config {
@@ -37,7 +38,7 @@ func TestApplyReload(t *testing.T) {
 	old := reloadFixture(t)
 	sch, err := old.schedules()
 	require.NoError(t, err)
-	arm, err := alert.NewArming(alert.ArmingConfig{Cameras: []string{"north", "south"}, Schedules: sch}, time.Now())
+	arm, err := arming.New(arming.Config{Cameras: []string{"north", "south"}, Schedules: sch}, time.Now())
 	require.NoError(t, err)
 	armed := func(id string, at time.Time) bool { a, _ := arm.Armed(id, at); return a }
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
@@ -53,7 +54,8 @@ func TestApplyReload(t *testing.T) {
 	next.Cameras[1].Source = "rtsp://192.0.2.99/b"
 	next.Arming.Schedule = []string{"daily 00:00-24:00"}
 	require.NoError(t, next.Validate())
-	applyReload(log, old, next, watches, func(s map[string]*alert.Schedule) error { return arm.SetSchedules(nil, s, noon) })
+	newReloader(log, old, access{}, reloadTargets{watches: watches,
+		setSchedules: func(s map[string]*arming.Schedule) error { return arm.SetSchedules(nil, s, noon) }}).apply(next)
 
 	select {
 	case c := <-watches[0].reload:
@@ -67,4 +69,47 @@ func TestApplyReload(t *testing.T) {
 	default:
 	}
 	assert.True(t, armed("north", noon), "the new schedule arms around the clock")
+}
+
+// Each setting a reload cannot apply in place is named; each it applies
+// is not.
+func TestReloadNamesWhatNeedsARestart(t *testing.T) {
+	cases := []struct {
+		name    string
+		edit    func(*Config)
+		restart []string
+		live    bool
+	}{
+		{"schedule", func(c *Config) { c.Arming.Schedule = []string{"daily 00:00-24:00"} }, nil, true},
+		{"control", func(c *Config) { c.Control.SecretEnv, c.Control.MaxDisarm = "X", Duration(time.Hour) }, nil, true},
+		{"viewer token", func(c *Config) { c.HTTP.ViewerSecretFile = "/run/v" }, nil, true},
+		{"gating", func(c *Config) { c.Cameras[0].Detect.MinArea = 0.05 }, nil, true},
+		{"zones", func(c *Config) { c.Cameras[0].Zones = []ZoneConfig{{Name: "ladder"}} }, nil, true},
+		{"listen", func(c *Config) { c.HTTP.Listen = "0.0.0.0:9310" }, []string{"http.listen"}, false},
+		{"bus", func(c *Config) { c.Bus.Prefix, c.Bus.Stream.Name = "pool", "POOL" }, []string{"bus.stream.name", "bus.subject_prefix"}, false},
+		{"log", func(c *Config) { c.Log.Level = "debug" }, []string{"log.level"}, false},
+		{"model", func(c *Config) { c.Cameras[1].Detect.History = 100 }, []string{"cameras[south].detect.history"}, false},
+		{"frame timeout", func(c *Config) { c.Cameras[0].FrameTimeout = Duration(5 * time.Second) }, []string{"cameras[north].frame_timeout"}, false},
+		{"corners", func(c *Config) { c.Cameras[0].Corners[1] = [2]float64{235, 40} },
+			[]string{"cameras[north] water outline of the detector (calibration)"}, true},
+		{"camera added", func(c *Config) {
+			n := c.Cameras[0]
+			n.ID = "east"
+			c.Cameras = append(c.Cameras, n)
+		}, []string{"cameras[east] (added)"}, false},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			old, next := reloadFixture(t), reloadFixture(t)
+			tc.edit(&next)
+			keys := changedKeys(old, next)
+			require.NotEmpty(t, keys)
+			got := restartKeys(old, next)
+			slices.Sort(got)
+			assert.Equal(t, tc.restart, got)
+			if tc.live {
+				assert.True(t, slices.ContainsFunc(keys, liveKey), "%v applied in place", keys)
+			}
+		})
+	}
 }

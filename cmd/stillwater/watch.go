@@ -8,6 +8,7 @@ import (
 	"io"
 	"log/slog"
 	"math/rand/v2"
+	"os"
 	"strings"
 	"sync"
 	"sync/atomic"
@@ -38,9 +39,14 @@ type cameraWatch struct {
 	faults    faultBoard
 
 	reload   chan CameraConfig // new calibration, zones, detection for this camera
+	gate     vision.OpenGate   // one open of the source at a time; a hung one is abandoned
 	evidence evidenceSettings
-	snapReq  chan chan snapshot // HTTP asks the capture goroutine for a frame
-	refs     *referenceKeeper   // the empty-pool reference (reference.go)
+	// pendingEvidence is planned by the pipeline while it makes a target
+	// start, and handed to the evidence writer once the frame's messages
+	// are published (capture goroutine only).
+	pendingEvidence []evidenceJob
+	snapReq         chan chan snapshot // HTTP asks the capture goroutine for a frame
+	refs            *referenceKeeper   // the empty-pool reference (reference.go)
 }
 
 func newCameraWatch(cam CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *cameraMetrics, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
@@ -94,13 +100,17 @@ func (w *cameraWatch) watchdog(ctx context.Context) {
 		}
 		now := w.now()
 		since := now.Sub(time.Unix(0, w.lastFrame.Load()))
-		up := since <= w.frameTimeout()
+		// Within the frame timeout of the start a camera that has not
+		// delivered yet is not lost, but it is not up either: up needs a
+		// frame.
+		recent := since <= w.frameTimeout()
+		up := recent && w.nframes.Load() > 0
 		w.met.cameraUp(up)
 		armed := w.armed(now)
 		w.met.armedState(armed)
 		switch {
-		case !up && armed:
-			w.raise(ctx, alert.FaultCameraLost, true, fmt.Sprintf("no frame from %s for %.1f s", vision.Redact(w.cam.Source), since.Seconds()))
+		case !recent && armed:
+			w.raise(ctx, alert.FaultCameraLost, true, w.lostDetail(since))
 		case up:
 			w.raise(ctx, alert.FaultCameraLost, false, "frames arrive again")
 		}
@@ -111,6 +121,19 @@ func (w *cameraWatch) watchdog(ctx context.Context) {
 			lastBeat, beatFrames = now, n
 		}
 	}
+}
+
+// lostDetail says why no frame came: for how long, and whether an open
+// of the source is blocked in the backend.
+func (w *cameraWatch) lostDetail(since time.Duration) string {
+	msg := fmt.Sprintf("no frame from %s for %.1f s", vision.Redact(w.cam.Source), since.Seconds())
+	if w.nframes.Load() == 0 {
+		msg = fmt.Sprintf("no frame from %s since the start (%.1f s)", vision.Redact(w.cam.Source), since.Seconds())
+	}
+	if stuck, at := w.gate.Stuck(); stuck {
+		msg += fmt.Sprintf("; an open has been blocked in the video backend for %.0f s", time.Since(at).Seconds())
+	}
+	return msg
 }
 
 // raise publishes a fault when its state changes; repeated calls with the
@@ -198,7 +221,7 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 		w.log.Error("camera-moved check off", "err", err)
 	}
 	defer func() { drift.Close() }()
-	st := &captureState{proc: proc, drift: drift, health: vision.NewHealthMonitor(vision.HealthConfig{})}
+	st := &captureState{proc: proc, drift: drift, health: newPictureFaults(vision.HealthConfig{})}
 	for ctx.Err() == nil {
 		err := w.frames(ctx, vc, st)
 		switch {
@@ -253,7 +276,10 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 		return nil, fmt.Errorf("camera %s: %w", w.cam.ID, err)
 	}
 	if w.evidence.on {
-		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll}); err != nil {
+		if err := os.MkdirAll(w.evidence.dir, 0o750); err != nil {
+			w.log.Error("evidence directory", "err", err)
+		}
+		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll, OnWritten: w.evidenceWritten}); err != nil {
 			vc.Close()
 			return nil, fmt.Errorf("camera %s: evidence: %w", w.cam.ID, err)
 		}
@@ -266,17 +292,9 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 type captureState struct {
 	proc   *processor
 	drift  *driftChecker
-	health *vision.HealthMonitor
+	health *pictureFaults
 	stats  vision.CaptureStats
 	hold   []image.Rectangle
-}
-
-// healthFaults maps the picture conditions to fault kinds.
-var healthFaults = map[vision.Condition]string{
-	vision.CondDark:    alert.FaultCameraBlinded,
-	vision.CondUniform: alert.FaultCameraBlinded,
-	vision.CondFrozen:  alert.FaultCameraFrozen,
-	vision.CondNoise:   alert.FaultCameraNoise,
 }
 
 // frames processes frames until the source fails or ends.
@@ -285,8 +303,8 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 	live := strings.Contains(w.cam.Source, "://")
 	paceStart := time.Now()
 	proc := st.proc
-	proc.evidence = func(r vision.Result, o alert.Observation) string { return w.saveEvidence(vc, proc, r, o) }
-	defer func() { proc.evidence = nil }()
+	proc.evidence = w.planEvidence
+	defer func() { proc.evidence = nil; w.pendingEvidence = w.pendingEvidence[:0] }()
 	for {
 		if ctx.Err() != nil {
 			return nil
@@ -317,7 +335,9 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			r.Media = w.now().Sub(w.epoch)
 		}
 		armed := w.armed(w.now())
-		w.checkHealth(ctx, r.Media, st.health.Observe(r.Media, r.Health), armed)
+		for _, f := range st.health.observe(r.Media, r.Health, armed) {
+			w.raise(ctx, f.Kind, f.Active, f.Detail)
+		}
 		switch r.Rejoined {
 		case "":
 		case vision.RejoinForced:
@@ -337,6 +357,8 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			for _, m := range msgs {
 				w.send(ctx, m)
 			}
+			// Published first, then the evidence is queued.
+			w.keepEvidence(vc, proc)
 			if st.drift.due(r.Media) {
 				w.checkDrift(ctx, st.drift.check(r.Media, vc))
 			}
@@ -381,20 +403,6 @@ func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
 	}
 }
 
-// checkHealth turns picture conditions into faults while armed; a
-// condition that clears clears its fault whether armed or not.
-func (w *cameraWatch) checkHealth(ctx context.Context, media time.Duration, rep vision.HealthReport, armed bool) {
-	want := healthFaults[rep.Condition]
-	for _, kind := range []string{alert.FaultCameraBlinded, alert.FaultCameraFrozen, alert.FaultCameraNoise} {
-		switch {
-		case kind == want && armed:
-			w.raise(ctx, kind, true, fmt.Sprintf("picture %s for %.1f s", rep.Condition, (media-rep.Since).Seconds()))
-		case kind != want:
-			w.raise(ctx, kind, false, "")
-		}
-	}
-}
-
 // checkDrift raises or clears calibration_drift from one comparison.
 func (w *cameraWatch) checkDrift(ctx context.Context, st driftStatus) {
 	var active bool
@@ -420,7 +428,7 @@ func (w *cameraWatch) checkDrift(ctx context.Context, st driftStatus) {
 
 func (w *cameraWatch) sourceConfig() vision.SourceConfig {
 	rt := w.frameTimeout()
-	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop}
+	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop, Gate: &w.gate}
 }
 
 // sleep waits d or until ctx ends; it reports whether ctx is still live.

@@ -5,12 +5,39 @@ import (
 	"crypto/sha256"
 	"encoding/hex"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"os"
 	"path/filepath"
 	"syscall"
 	"time"
 )
+
+// CacheEnv overrides the render cache directory CacheDir returns.
+const CacheEnv = "STILLWATER_SYNTH_CACHE"
+
+// CacheDir returns the render cache of this checkout, testdata/cache/synth
+// under the module root (git ignores it), found by looking up from the
+// working directory for go.mod; CacheEnv overrides it.
+func CacheDir() (string, error) {
+	if d := os.Getenv(CacheEnv); d != "" {
+		return d, nil
+	}
+	dir, err := os.Getwd()
+	if err != nil {
+		return "", fmt.Errorf("render cache: %w", err)
+	}
+	for {
+		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
+			return filepath.Join(dir, "testdata", "cache", "synth"), nil
+		}
+		up := filepath.Dir(dir)
+		if up == dir {
+			return "", errors.New("render cache: no go.mod above the working directory; set " + CacheEnv)
+		}
+		dir = up
+	}
+}
 
 // CacheKey names a scene's rendered files: the scene (every field) and
 // RendererVersion hashed, prefixed for a family scene by its variant and
@@ -36,7 +63,8 @@ func CacheKey(s Scene) string {
 // renderer version constant) and returns the paths; concurrent callers for
 // the same key wait for one render. Callers in other processes wait too
 // (an flock on a lock file beside the clip). A clip counts as rendered when
-// its label file exists: the labels are moved into place last.
+// its label file exists: the labels are moved into place last; the lock
+// file goes once the clip is in place.
 func Cached(ctx context.Context, s Scene, dir string) (video, labels string, t Truth, err error) {
 	key := CacheKey(s)
 	video = filepath.Join(dir, key+VideoExt(s))
@@ -47,11 +75,20 @@ func Cached(ctx context.Context, s Scene, dir string) (video, labels string, t T
 	if err := os.MkdirAll(dir, 0o755); err != nil {
 		return "", "", Truth{}, fmt.Errorf("render cache: %w", err)
 	}
-	unlock, err := lockFile(ctx, filepath.Join(dir, key+".lock"))
+	lock := filepath.Join(dir, key+".lock")
+	unlock, err := lockFile(ctx, lock)
 	if err != nil {
 		return "", "", Truth{}, fmt.Errorf("render cache %s: %w", key, err)
 	}
 	defer unlock()
+	// Once the clip is in place nobody needs the lock file: callers that
+	// come later find the clip first, and one already waiting holds the
+	// file open.
+	defer func() {
+		if err == nil {
+			os.Remove(lock)
+		}
+	}()
 	if t, err := readCached(video, labels); err == nil {
 		return video, labels, t, nil
 	}

@@ -42,9 +42,10 @@ func ffmpegArgs(e Encoding, w, h int, fps float64, path string) []string {
 	case "mjpeg":
 		a = append(a, "-c:v", "mjpeg", "-q:v", q, "-pix_fmt", "yuvj420p", "-f", "avi")
 	case "mpeg4":
-		a = append(a, "-c:v", "mpeg4", "-q:v", q, "-g", g, "-tag:v", "mp4v", "-pix_fmt", "yuv420p", "-f", "mp4")
+		a = append(a, "-c:v", "mpeg4", "-q:v", q, "-g", g, "-bf", "0", "-tag:v", "mp4v", "-pix_fmt", "yuv420p", "-f", "mp4")
 	default:
-		a = append(a, "-c:v", "libx264", "-preset", "veryfast", "-crf", q, "-g", g, "-keyint_min", g, "-sc_threshold", "0",
+		// IP cameras commonly stream without B-frames (common practice).
+		a = append(a, "-c:v", "libx264", "-preset", "veryfast", "-crf", q, "-g", g, "-keyint_min", g, "-sc_threshold", "0", "-bf", "0",
 			"-pix_fmt", "yuv420p", "-f", "mp4")
 	}
 	return append(a, "-y", path)

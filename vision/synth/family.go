@@ -297,7 +297,7 @@ func drawCamera(s *Scene, w *World, aspect float64) {
 	h := d.in(2.5, 6)
 	hfov := d.in(60, 110)
 	mount := d.Intn(8) // 0–3 sides, 4–7 corners
-	stand := d.in(0.3, 3) + w.Site.CopingM
+	stand := d.in(0.2, 2.2) + w.Site.CopingM
 	along := d.in(-0.3, 0.3)
 	cornerTurn := d.in(-0.35, 0.35)
 	tx, ty := L/2+d.in(-0.12, 0.12)*L, W/2+d.in(-0.12, 0.12)*W
@@ -579,7 +579,7 @@ func drawFault(s *Scene, w *World) {
 func drawChild(s *Scene, w *World, longStill bool) Child {
 	d := newDraw(s.Seed, variantOf(w), "child")
 	L, W := s.PoolLength, s.PoolWidth
-	look := &ChildLook{Girl: d.chance(0.5), Skin: skinTone(d), Hair: hairColour(d), HairM: d.in(0, 0.15), Scale: d.in(0.93, 1.07)}
+	look := &ChildLook{Girl: d.chance(0.5), Skin: skinTone(d), Hair: hairColour(d), HairM: d.in(0, 0.15), Scale: d.in(0.93, 1.07), Spread: d.Float64()}
 	// Suits: a third of them close to the water's own colours.
 	suits := []RGB{{0.55, 0.35, 0.05}, {0.35, 0.45, 0.05}, {0.5, 0.5, 0.1}, {0.12, 0.45, 0.12}, {0.1, 0.1, 0.7}, {0.05, 0.6, 0.8},
 		{0.4, 0.2, 0.7}, {0.05, 0.05, 0.05}, {0.7, 0.7, 0.7}, {0.1, 0.25, 0.8}, {0.4, 0.1, 0.1}}
@@ -624,6 +624,11 @@ func drawChild(s *Scene, w *World, longStill bool) Child {
 	if longStill {
 		behaviour = 1 + d.Intn(2)
 		stillFrom = t + d.in(2, 15)
+	}
+	if behaviour == 2 && w.Light.Night && len(w.Lamps) < 2 {
+		// Near infrared hardly enters water: at night only pool lamps
+		// show a submerged child, so without them it floats.
+		behaviour = 1
 	}
 	speed := []float64{d.in(0.1, 0.4), d.in(0.02, 0.12), d.in(0.02, 0.1)}[behaviour]
 	for t < s.Duration && t < stillFrom {

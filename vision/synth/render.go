@@ -236,6 +236,13 @@ type renderer struct {
 	leaves []leaf
 	stamp  []uint32 // per top-down pixel: last intruder generation that covered it
 	gen    uint32
+
+	// Water tables: the waves, their sin and cos along u (fixed) and
+	// along v (refilled each frame), and the plane-to-camera transforms.
+	wv     []wave
+	su, sv [][2][]float32
+	xforms []gocv.Mat
+	gray   gocv.Mat
 }
 
 type glint struct {
@@ -257,6 +264,17 @@ func newRenderer(s Scene) *renderer {
 	r.buf = make([]byte, 3*n)
 	r.stamp = make([]uint32, n)
 	r.drawBase()
+	r.wv = r.waves()
+	for _, w := range r.wv {
+		su := [2][]float32{make([]float32, r.top.X), make([]float32, r.top.X)}
+		for u := 0; u < r.top.X; u++ {
+			su[0][u] = float32(math.Sin(w.kx * float64(u)))
+			su[1][u] = float32(math.Cos(w.kx * float64(u)))
+		}
+		r.su = append(r.su, su)
+		r.sv = append(r.sv, [2][]float32{make([]float32, r.top.Y), make([]float32, r.top.Y)})
+	}
+	r.gray = gocv.NewMat()
 	r.topM = gocv.NewMatWithSize(r.top.Y, r.top.X, gocv.MatTypeCV8UC3)
 	r.cam = gocv.NewMat()
 	r.warp = gocv.NewMat()
@@ -265,6 +283,9 @@ func newRenderer(s Scene) *renderer {
 		p := s.Camera
 		p.YawDeg += s.PanDeg
 		r.cams = append(r.cams, newCamera(p, s.Width, s.Height))
+	}
+	for _, c := range r.cams {
+		r.xforms = append(r.xforms, r.planeXform(c))
 	}
 	r.noise = make([]float32, 1<<20)
 	for i := range r.noise {
@@ -285,6 +306,10 @@ func (r *renderer) Close() {
 	r.topM.Close()
 	r.cam.Close()
 	r.warp.Close()
+	r.gray.Close()
+	for _, m := range r.xforms {
+		m.Close()
+	}
 }
 
 func (r *renderer) toTop(x, y float64) (float64, float64) {
@@ -371,9 +396,9 @@ func (r *renderer) frame(i int) FrameTruth {
 		ft.Intruder = occ
 	}
 
-	cam := r.cams[0]
+	cam := 0
 	if len(r.cams) > 1 && t >= s.PanAt {
-		cam = r.cams[1]
+		cam = 1
 	}
 	r.toCamera(cam, light)
 	return ft
@@ -396,18 +421,13 @@ func cloudProfile(t float64, c Cloud) float64 {
 func smooth(a float64) float64 { return a * a * (3 - 2*a) }
 
 func (r *renderer) paintWater(t, light float64) {
-	ws := r.waves()
+	ws := r.wv
 	W, H := r.top.X, r.top.Y
-	// sin(kx·u + ky·v − ωt) = sin(kx·u)cos(ky·v − ωt) + cos(kx·u)sin(ky·v − ωt)
-	su := make([][2][]float32, len(ws))
-	sv := make([][2][]float32, len(ws))
+	// sin(kx·u + ky·v − ωt) = sin(kx·u)cos(ky·v − ωt) + cos(kx·u)sin(ky·v − ωt):
+	// the u factors are the renderer's tables, the v factors are refilled
+	// for t.
+	su, sv := r.su, r.sv
 	for k, w := range ws {
-		su[k] = [2][]float32{make([]float32, W), make([]float32, W)}
-		sv[k] = [2][]float32{make([]float32, H), make([]float32, H)}
-		for u := 0; u < W; u++ {
-			su[k][0][u] = float32(math.Sin(w.kx * float64(u)))
-			su[k][1][u] = float32(math.Cos(w.kx * float64(u)))
-		}
 		for v := 0; v < H; v++ {
 			a := w.ky*float64(v) - w.w*t
 			sv[k][0][v] = float32(math.Cos(a))
@@ -657,13 +677,12 @@ func (r *renderer) paintWalker(t, light float64) {
 	r.forDisc(u, v, 0.1*r.s.PPM, func(i int, _ float64) { r.blend(i, [3]float32{30, 35, 40}, 1, light) })
 }
 
-// toCamera warps the top-down frame into the camera view, paints the sky
-// above the horizon and adds sensor noise.
-func (r *renderer) toCamera(c camera, light float64) {
+// planeXform returns the transform from top-down pixels to camera pixels:
+// top-down px → pool metres → image, M = P · S⁻¹ with S = scale+shift.
+// The caller closes it.
+func (r *renderer) planeXform(c camera) gocv.Mat {
 	s := r.s
-	copy(mustBytes(r.topM), r.buf)
 	p := c.planeToImage()
-	// Top-down px → pool metres → image: M = P · S⁻¹ with S = scale+shift.
 	m := s.margin()
 	inv := [9]float64{1 / s.PPM, 0, -m, 0, 1 / s.PPM, -m, 0, 0, 1}
 	var M [9]float64
@@ -675,10 +694,19 @@ func (r *renderer) toCamera(c camera, light float64) {
 		}
 	}
 	mat := gocv.NewMatWithSize(3, 3, gocv.MatTypeCV64F)
-	defer mat.Close()
 	for i := 0; i < 9; i++ {
 		mat.SetDoubleAt(i/3, i%3, M[i])
 	}
+	return mat
+}
+
+// toCamera warps the top-down frame into the view of camera k, paints the
+// sky above the horizon and adds sensor noise.
+func (r *renderer) toCamera(k int, light float64) {
+	s := r.s
+	c := r.cams[k]
+	mat := r.xforms[k]
+	copy(mustBytes(r.topM), r.buf)
 	g := float64(clamp(float32(150 * light)))
 	gocv.WarpPerspectiveWithParams(r.topM, &r.warp, mat, image.Pt(s.Width, s.Height), gocv.InterpolationLinear, gocv.BorderConstant, color.RGBA{uint8(g - 10), uint8(g), uint8(g + 10), 0})
 	if hz := c.horizonRow(s.Camera); hz > 0 {
@@ -686,10 +714,8 @@ func (r *renderer) toCamera(c camera, light float64) {
 		gocv.Rectangle(&r.warp, image.Rect(0, 0, s.Width, hz), color.RGBA{uint8(sky * 0.8), uint8(sky * 0.9), uint8(sky), 0}, -1)
 	}
 	if s.Night {
-		gray := gocv.NewMat()
-		gocv.CvtColor(r.warp, &gray, gocv.ColorBGRToGray)
-		gocv.CvtColor(gray, &r.warp, gocv.ColorGrayToBGR)
-		gray.Close()
+		gocv.CvtColor(r.warp, &r.gray, gocv.ColorBGRToGray)
+		gocv.CvtColor(r.gray, &r.warp, gocv.ColorGrayToBGR)
 	}
 	r.warp.CopyTo(&r.cam)
 	sigma := s.Noise

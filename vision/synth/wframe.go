@@ -60,7 +60,7 @@ func (r *wRenderer) frame(idx int) (FrameTruth, error) {
 		r.gain = r.gainRef
 	}
 	r.pass(t)
-	r.updateExposure()
+	r.updateExposure(idx)
 	return ft, nil
 }
 
@@ -73,14 +73,18 @@ func (r *wRenderer) exposureTarget() float64 {
 }
 
 // updateExposure moves the gain towards undoing ExposureComp of the change
-// in scene light since the first frame, with time constant ExposureTau.
-func (r *wRenderer) updateExposure() {
+// in scene light since the first frame, with time constant ExposureTau,
+// for the time from the last frame drawn (frames may be skipped, as for a
+// contact sheet).
+func (r *wRenderer) updateExposure(idx int) {
 	l := r.w.Light
 	lum := math.Max(r.lumSum/math.Max(1, float64(r.lumN)), 1e-4)
 	want := r.gainRef * math.Pow(r.lumRef/lum, l.ExposureComp)
 	want = math.Min(want, r.gainRef*4)
-	a := 1 - math.Exp(-1/(r.s.FPS*math.Max(l.ExposureTau, 0.05)))
+	steps := float64(max(1, idx-r.lastIdx))
+	a := 1 - math.Exp(-steps/(r.s.FPS*math.Max(l.ExposureTau, 0.05)))
 	r.gain += (want - r.gain) * a
+	r.lastIdx = idx
 }
 
 func (r *wRenderer) occupation(cs childState) *Occupation {
@@ -112,19 +116,19 @@ func (r *wRenderer) faultAt(t float64) *Fault {
 // applyFault draws a faulty picture into r.out: black (a covered or dead
 // sensor: a few grey levels of noise), noise (a failing sensor or cable:
 // coarse random snow) or frozen (the last good picture held; at each key
-// frame the camera re-encodes it, so it changes slightly then and only
-// then).
+// frame, every GOP frames of the clip, the camera re-encodes it, so it
+// changes slightly then and only then).
 func (r *wRenderer) applyFault(idx int, t float64, f *Fault) error {
 	off := r.rng.Intn(65536)
-	nz := r.noise[off:]
+	nk, z := r.nk[off:], &r.z
 	switch f.Kind {
 	case FaultBlack:
 		for i := range r.out {
-			r.out[i] = clampByte(4 + 1.5*nz[i])
+			r.out[i] = clampByte(4 + 1.5*z[nk[i]])
 		}
 	case FaultNoise:
 		for i := range r.out {
-			r.out[i] = clampByte(128 + 70*nz[i] + 30*nz[i/3*3])
+			r.out[i] = clampByte(128 + 70*z[nk[i]] + 30*z[nk[i/3*3+1]])
 		}
 	case FaultFrozen:
 		if r.frozenFrom < 0 {
@@ -136,7 +140,9 @@ func (r *wRenderer) applyFault(idx int, t float64, f *Fault) error {
 		if gop < 1 {
 			gop = 1
 		}
-		if (idx-r.frozenFrom)%gop == 0 {
+		// The camera's encoder starts a group of pictures every GOP frames
+		// (as the clip's own encoder does).
+		if idx%gop == 0 {
 			return r.reencode(50 + r.rng.Intn(45))
 		}
 	}
@@ -190,6 +196,7 @@ func (r *wRenderer) clearDirty() {
 				r.objM[i] = objNone
 				r.objA[i] = 0
 				r.shade[i] = 255
+				r.stir[i] = 0
 			}
 		}
 	}
@@ -230,16 +237,17 @@ func (r *wRenderer) rasterShadow(ob *object) {
 		for c := 0; c < 8; c++ {
 			q := [3]float64{p.c[0] + p.ext[0]*float64(2*(c&1)-1), p.c[1] + p.ext[1]*float64(2*(c>>1&1)-1), p.c[2] + p.ext[2]*float64(2*(c>>2&1)-1)}
 			for _, z := range []float64{0, r.st.h} {
-				if q[2] < z {
-					continue
+				// The corner's shadow and the point below it bound the
+				// shadow on this plane.
+				k := math.Max(0, q[2]-z) / r.sunDir[2]
+				for _, f := range []float64{0, k} {
+					u, v, ok := r.cam.project(q[0]-f*r.sunDir[0], q[1]-f*r.sunDir[1], z)
+					if !ok {
+						continue
+					}
+					x0, x1 = math.Min(x0, u), math.Max(x1, u)
+					y0, y1 = math.Min(y0, v), math.Max(y1, v)
 				}
-				k := (q[2] - z) / r.sunDir[2]
-				u, v, ok := r.cam.project(q[0]-k*r.sunDir[0], q[1]-k*r.sunDir[1], z)
-				if !ok {
-					continue
-				}
-				x0, x1 = math.Min(x0, u), math.Max(x1, u)
-				y0, y1 = math.Min(y0, v), math.Max(y1, v)
 			}
 		}
 	}
@@ -360,9 +368,9 @@ func (r *wRenderer) shadeRay(ob *object, d [3]float64, cls uint8, u, v int) ([3]
 	}
 	// Through the surface, bent by Snell's law on the rippled normal.
 	s := at(o, d, tLimit)
-	ti := tileIndex(s[0], s[1])
-	g := r.gust.at(s[0], s[1]) * r.w.Wind.Slope
-	sx, sy := float64(r.waves.sx[ti])*g, float64(r.waves.sy[ti])*g
+	ti := tileAt(s[0], s[1])
+	g := r.gust.at(s[0], s[1]) * r.w.Wind.Slope * (1 + float64(r.stir[v*r.W+u])/32)
+	sx, sy := float64(bilinear(r.waves.sx, ti))*g, float64(bilinear(r.waves.sy, ti))*g
 	nl := math.Sqrt(sx*sx + sy*sy + 1)
 	td := refract(d, [3]float64{-sx / nl, -sy / nl, 1 / nl}, WaterIndex)
 	best, bk = math.Inf(1), -1
@@ -418,6 +426,18 @@ func (r *wRenderer) lightSurface(ob *object, p *prim, hp, n [3]float64, under bo
 	return out
 }
 
+// toneIdx returns the row of the tone-and-noise table for linear light c
+// at gain gs (·1024).
+func toneIdx(c, gs float32) int {
+	x := int(c * gs)
+	if x > 4095 {
+		x = 4095
+	} else if x < 0 {
+		x = 0
+	}
+	return x << 4
+}
+
 // pass draws every pixel from its table for time t into r.out.
 func (r *wRenderer) pass(t float64) {
 	W := r.W
@@ -437,54 +457,23 @@ func (r *wRenderer) pass(t float64) {
 	sc, amb := r.sunC, r.amb
 	night := r.w.Light.Night
 	noff := r.rng.Intn(65536)
-	nz := r.noise[noff : noff+3*n]
+	nk := r.nk[noff : noff+3*n]
 	class, abase := r.class, r.abase
-	objM, objA, objC, shade := r.objM, r.objA, r.objC, r.shade
-	tone, sig, out := &r.tone, &r.sig, r.out
+	objM, objA, objC, shade, stir := r.objM, r.objA, r.objC, r.shade, r.stir
+	tq, out := r.toneNoise, r.out
+	gs := gain * 1024
 	var lumSum float64
 	lumN := 0
 	// glitter: exp(−q) for q = |slope − glint slope|²/σ², σ = 0.03.
 	const invSig2 = 1 / (0.03 * 0.03)
 	glit := &r.glit
 
-	put := func(i int, c0, c1, c2 float32) {
-		if i&7 == 0 {
-			lumSum += float64(0.114*c0 + 0.587*c1 + 0.299*c2)
-			lumN++
-		}
-		if night {
-			y := 0.114*c0 + 0.587*c1 + 0.299*c2
-			c0, c1, c2 = y, y, y
-		}
-		j := 3 * i
-		x0, x1, x2 := int(c0*gain*1024), int(c1*gain*1024), int(c2*gain*1024)
-		if x0 > 4095 {
-			x0 = 4095
-		}
-		if x1 > 4095 {
-			x1 = 4095
-		}
-		if x2 > 4095 {
-			x2 = 4095
-		}
-		v0, v1, v2 := tone[x0], tone[x1], tone[x2]
-		if night {
-			e := nz[j]
-			out[j] = clampByte(float32(v0) + e*sig[v0])
-			out[j+1] = clampByte(float32(v1) + e*sig[v1])
-			out[j+2] = clampByte(float32(v2) + e*sig[v2])
-			return
-		}
-		out[j] = clampByte(float32(v0) + nz[j]*sig[v0])
-		out[j+1] = clampByte(float32(v1) + nz[j+1]*sig[v1])
-		out[j+2] = clampByte(float32(v2) + nz[j+2]*sig[v2])
-	}
-
 	for k := range r.wp {
 		p := &r.wp[k]
 		i := int(p.i)
-		g := gl[p.gust] * slope
-		sx, sy := sxT[p.tile]*g, syT[p.tile]*g
+		gg := gl[p.gust] * (1 + float32(stir[i])*(1.0/32))
+		g := gg * slope
+		sx, sy := bilinear(sxT, p.tile)*g, bilinear(syT, p.tile)*g
 		du := int(sx*p.m[0]+sy*p.m[1]+8.5) - 8
 		dv := int(sx*p.m[2]+sy*p.m[3]+8.5) - 8
 		if du < -8 {
@@ -506,7 +495,7 @@ func (r *wRenderer) pass(t float64) {
 			sun = cl[((int(p.cy)+oy)&cloudMask)*cloudN+((int(p.cx)+ox)&cloudMask)]
 		}
 		sun *= float32(shade[i]) * (1.0 / 255)
-		cc := 1 + p.camp*gl[p.gust]*(caus[p.caus]-1)
+		cc := 1 + p.camp*gg*(bilinear(caus, p.caus)-1)
 		if cc < 0 {
 			cc = 0
 		}
@@ -544,7 +533,19 @@ func (r *wRenderer) pass(t float64) {
 			f1 = f1*(1-a) + oc[1]*a
 			f2 = f2*(1-a) + oc[2]*a
 		}
-		put(i, f0, f1, f2)
+		if i&7 == 0 {
+			lumSum += float64(0.114*f0 + 0.587*f1 + 0.299*f2)
+			lumN++
+		}
+		o := 3 * i
+		if night {
+			k := toneIdx(0.114*f0+0.587*f1+0.299*f2, gs) | int(nk[o])
+			out[o], out[o+1], out[o+2] = tq[k], tq[k], tq[k]
+		} else {
+			out[o] = tq[toneIdx(f0, gs)|int(nk[o])]
+			out[o+1] = tq[toneIdx(f1, gs)|int(nk[o+1])]
+			out[o+2] = tq[toneIdx(f2, gs)|int(nk[o+2])]
+		}
 	}
 	for k := range r.gp {
 		p := &r.gp[k]
@@ -566,7 +567,19 @@ func (r *wRenderer) pass(t float64) {
 			f1 = f1*(1-a) + oc[1]*a
 			f2 = f2*(1-a) + oc[2]*a
 		}
-		put(i, f0, f1, f2)
+		if i&7 == 0 {
+			lumSum += float64(0.114*f0 + 0.587*f1 + 0.299*f2)
+			lumN++
+		}
+		o := 3 * i
+		if night {
+			k := toneIdx(0.114*f0+0.587*f1+0.299*f2, gs) | int(nk[o])
+			out[o], out[o+1], out[o+2] = tq[k], tq[k], tq[k]
+		} else {
+			out[o] = tq[toneIdx(f0, gs)|int(nk[o])]
+			out[o+1] = tq[toneIdx(f1, gs)|int(nk[o+1])]
+			out[o+2] = tq[toneIdx(f2, gs)|int(nk[o+2])]
+		}
 	}
 	r.lumSum, r.lumN = lumSum, lumN
 }

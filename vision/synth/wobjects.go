@@ -302,7 +302,7 @@ func (r *wRenderer) addChild(in Child, entry, t float64) childState {
 		zIn := 0.3*hd - (H - hd/2)
 		z := r.st.h + enter*(zIn-r.st.h)
 		p = pose{R: rotZ(head), T: [3]float64{x, y, z}}
-		armUp = enter * 1.2
+		armUp = enter * (0.4 + 0.9*look.Spread)
 	} else if !lying {
 		// Upright in the water: the chin at the surface (or below it when
 		// submerged), arms paddling near the surface.
@@ -311,7 +311,7 @@ func (r *wRenderer) addChild(in Child, entry, t float64) childState {
 			z = math.Min(z, -st.depth-0.5*H)
 		}
 		p = pose{R: rotZ(head), T: [3]float64{x, y, z}}
-		armUp = 1.3 + 0.25*math.Sin(2*math.Pi*0.5*t)
+		armUp = 0.4 + 0.9*look.Spread + 0.25*math.Sin(2*math.Pi*0.5*t)
 		swing = 0.25 * math.Sin(2*math.Pi*0.5*t)
 	} else {
 		// Face down at the surface: body z along the heading, body x
@@ -320,35 +320,37 @@ func (r *wRenderer) addChild(in Child, entry, t float64) childState {
 		zc := -0.02 - st.depth + bob*0.3
 		c := R.apply([3]float64{0, 0, 0.5 * H})
 		p = pose{R: R, T: [3]float64{x - c[0], y - c[1], zc - c[2]}}
-		armUp = 1.4
+		armUp = 0.3 + 1.2*look.Spread
 	}
-	legR := 0.048 * H
-	// Legs: thigh in the suit's lower colour, shin in skin.
+	legR := 0.042 * H
+	id := rot{{1, 0, 0}, {0, 1, 0}, {0, 0, 1}}
+	// Legs: thigh in the suit's lower colour, shin in skin; they overlap
+	// at the knee and reach into the pelvis.
 	for _, sgn := range []float64{1, -1} {
-		hip := [3]float64{0, sgn * 0.3 * sb, 0.4 * H}
+		hip := [3]float64{0, sgn * 0.22 * sb, 0.42 * H}
 		lr := rotY(sgn * swing)
-		th := lr.apply([3]float64{0, 0, -0.1 * H})
-		sh := lr.apply([3]float64{0, 0, -0.3 * H})
-		sc.ellipsoid(p, [3]float64{hip[0] + th[0], hip[1] + th[1], hip[2] + th[2]}, lr, [3]float64{legR * 1.15, legR * 1.15, 0.11 * H}, look.Legs)
-		sc.ellipsoid(p, [3]float64{hip[0] + sh[0], hip[1] + sh[1], hip[2] + sh[2]}, lr, [3]float64{legR, legR, 0.11 * H}, look.Skin)
+		th := lr.apply([3]float64{0, 0, -0.12 * H})
+		sh := lr.apply([3]float64{0, 0, -0.31 * H})
+		sc.ellipsoid(p, [3]float64{hip[0] + th[0], hip[1] + th[1], hip[2] + th[2]}, lr, [3]float64{legR * 1.2, legR * 1.2, 0.14 * H}, look.Legs)
+		sc.ellipsoid(p, [3]float64{hip[0] + sh[0], hip[1] + sh[1], hip[2] + sh[2]}, lr, [3]float64{legR * 0.9, legR * 0.9, 0.13 * H}, look.Skin)
 	}
-	// Torso.
-	sc.ellipsoid(p, [3]float64{0, 0, 0.6 * H}, rot{{1, 0, 0}, {0, 1, 0}, {0, 0, 1}}, [3]float64{0.065, sb * 0.46, 0.2 * H}, look.Suit)
-	// Arms hang from the shoulders and rise towards the horizontal.
+	// Pelvis and torso, up to the neck.
+	sc.ellipsoid(p, [3]float64{0, 0, 0.42 * H}, id, [3]float64{0.06, sb * 0.36, 0.08 * H}, look.Legs)
+	sc.ellipsoid(p, [3]float64{0, 0, 0.6 * H}, id, [3]float64{0.065, sb * 0.43, 0.23 * H}, look.Suit)
+	// Arms from the shoulders, rising sideways towards the horizontal.
 	for _, sgn := range []float64{1, -1} {
-		sh := [3]float64{0, sgn * (sb/2 + 0.01), 0.76 * H}
-		ar := rotX(-sgn * armUp).mul(rotY(-sgn * swing * 0.8))
+		sh := [3]float64{0, sgn * (sb/2 - 0.01), 0.76 * H}
+		ar := rotX(sgn * armUp).mul(rotY(-sgn * swing * 0.8))
 		c := ar.apply([3]float64{0, 0, -0.15 * H})
-		sc.ellipsoid(p, [3]float64{sh[0] + c[0], sh[1] + c[1], sh[2] + c[2]}, ar, [3]float64{0.032, 0.032, 0.16 * H}, look.Skin)
+		sc.ellipsoid(p, [3]float64{sh[0] + c[0], sh[1] + c[1], sh[2] + c[2]}, ar, [3]float64{0.034, 0.034, 0.17 * H}, look.Skin)
 	}
 	// Head and hair (or cap): the hair covers the crown and the back.
 	hc := [3]float64{0.005, 0, H - hd/2}
-	sc.ellipsoid(p, hc, rot{{1, 0, 0}, {0, 1, 0}, {0, 0, 1}}, [3]float64{hd / 2, hd / 2 * 0.92, hd / 2 * 1.05}, look.Skin)
+	sc.ellipsoid(p, hc, id, [3]float64{hd / 2, hd / 2 * 0.92, hd / 2 * 1.05}, look.Skin)
 	hairDown := math.Max(0.3*hd, look.HairM)
-	sc.ellipsoid(p, [3]float64{-0.02, 0, H - hd/2 + 0.012 - hairDown*0.3}, rot{{1, 0, 0}, {0, 1, 0}, {0, 0, 1}},
+	sc.ellipsoid(p, [3]float64{-0.02, 0, H - hd/2 + 0.012 - hairDown*0.3}, id,
 		[3]float64{hd/2 + 0.008, hd/2*0.92 + 0.008, hd/2 + hairDown*0.3}, look.Hair)
-	cx, cy, area, _ := sc.footprint(from, len(sc.prims), L, W)
-	_ = area
+	cx, cy, _, _ := sc.footprint(from, len(sc.prims), L, W)
 	st.x, st.y = cx, cy
 	st.inWater = enter > 0 && cx >= 0 && cx <= L && cy >= 0 && cy <= W
 	under := 0.0
@@ -356,6 +358,22 @@ func (r *wRenderer) addChild(in Child, entry, t float64) childState {
 		under = st.contrast
 	}
 	r.pushObject(from, under, enter < 1 || !lying)
+	// The water around a child is stirred: a splash as it gets in, a wake
+	// while it swims, a little paddling while upright; none while it
+	// floats still or lies deep.
+	if enter > 0 && st.depth < 0.3 {
+		x0, y0, _ := in.position(t - 0.3)
+		x1, y1, _ := in.position(t + 0.3)
+		speed := math.Hypot(x1-x0, y1-y0) / 0.6
+		splash := 3 * clamp01(1-(t-entry)/2.5)
+		a := splash + 5*speed
+		if !lying {
+			a += 0.6
+		}
+		if a > 0.05 {
+			r.stirAt(st.x, st.y, math.Min(4, a), 0.45+0.3*splash)
+		}
+	}
 	return st
 }
 
@@ -542,4 +560,41 @@ func (r *wRenderer) primBox(p *prim) image.Rectangle {
 	}
 	b := image.Rect(int(math.Floor(x0-m)), int(math.Floor(y0-m)), int(math.Ceil(x1+m))+1, int(math.Ceil(y1+m))+1)
 	return b.Intersect(image.Rect(0, 0, r.W, r.H))
+}
+
+// stirAt raises the ripples of the water around (x, y): slope gain 1 + a
+// at the centre, falling off over rad metres.
+func (r *wRenderer) stirAt(x, y, a, rad float64) {
+	x0, y0, x1, y1 := math.Inf(1), math.Inf(1), math.Inf(-1), math.Inf(-1)
+	for _, c := range [][2]float64{{-1, -1}, {1, -1}, {1, 1}, {-1, 1}} {
+		u, v, ok := r.cam.project(x+2*rad*c[0], y+2*rad*c[1], 0)
+		if !ok {
+			continue
+		}
+		x0, x1 = math.Min(x0, u), math.Max(x1, u)
+		y0, y1 = math.Min(y0, v), math.Max(y1, v)
+	}
+	if math.IsInf(x0, 1) {
+		return
+	}
+	box := image.Rect(int(x0)-1, int(y0)-1, int(x1)+2, int(y1)+2).Intersect(image.Rect(0, 0, r.W, r.H))
+	cam := r.cam.c
+	for v := box.Min.Y; v < box.Max.Y; v++ {
+		for u := box.Min.X; u < box.Max.X; u++ {
+			i := v*r.W + u
+			if r.class[i] != pxWater {
+				continue
+			}
+			d, ok := r.rayAt(float64(u), float64(v))
+			if !ok || d[2] >= 0 {
+				continue
+			}
+			s := at(cam, d, -cam[2]/d[2])
+			q := ((s[0]-x)*(s[0]-x) + (s[1]-y)*(s[1]-y)) / (rad * rad)
+			if q < 6 {
+				r.stir[i] = uint8(math.Min(255, float64(r.stir[i])+32*a*math.Exp(-q)))
+			}
+		}
+	}
+	r.dirty = append(r.dirty, box)
 }

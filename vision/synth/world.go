@@ -304,6 +304,9 @@ type ChildLook struct {
 	// Scale multiplies the WHO median size for the age (individual
 	// variation).
 	Scale float64 `json:"scale"`
+	// Spread is how far the arms reach out: 0 along the body, 1 straight
+	// out to the sides.
+	Spread float64 `json:"spread"`
 }
 
 func (w *World) validate(s Scene) error {

@@ -10,7 +10,7 @@ import (
 
 // RendererVersion names what the family renderer draws; Cached keys its
 // files on it, so change it whenever the output of a scene changes.
-const RendererVersion = "family/1"
+const RendererVersion = "family/2"
 
 // Pixel classes of the family renderer.
 const (
@@ -23,11 +23,11 @@ const (
 // that does not change from frame to frame.
 type wpix struct {
 	i     int32
-	tile  int32  // wave cell under the surface point
-	caus  int32  // wave cell under the floor (or wall) point
-	cx    int16  // cloud cell of the surface point
-	cy    int16  //
-	gust  uint16 // gust table entry
+	tile  tilePos // wave tile under the surface point
+	caus  tilePos // wave tile under the floor (or wall) point
+	cx    int16   // cloud cell of the surface point
+	cy    int16   //
+	gust  uint16  // gust table entry
 	m     [4]float32
 	camp  float32 // caustic contrast
 	trans float32 // (1 − Fresnel reflectance)·vignette
@@ -72,16 +72,20 @@ type wRenderer struct {
 	sunW   float64 // direct sun on the floor through the surface
 	sunC   [3]float32
 	amb    [3]float32
-	tone   [4096]uint8
-	sig    [256]float32
-	noise  []float32
-	rng    *rand.Rand
+	// toneNoise maps 12-bit linear light and one of 16 noise quantiles
+	// (index x<<4 | k) to the output byte; nk holds a noise quantile per
+	// byte (with slack for a per-frame offset) and z the quantiles.
+	toneNoise []uint8
+	nk        []uint8
+	z         [16]float32
+	rng       *rand.Rand
 
 	out   []byte
 	objA  []float32
 	objC  []float32
 	objM  []uint8
 	shade []uint8
+	stir  []uint8 // extra ripple slope around children, 1/32 units
 	dirty []image.Rectangle
 
 	gain, gainRef, lumRef float64
@@ -93,6 +97,7 @@ type wRenderer struct {
 	poolMid    float64   // pool centre along the wind, m
 	glit       [256]float32
 	frozenFrom int    // frame a frozen fault began, or -1
+	lastIdx    int    // last frame drawn
 	heldRaw    []byte // frozen fault: the picture held
 	objs       objScratch
 }
@@ -118,6 +123,7 @@ func newWRenderer(s Scene) *wRenderer {
 	r.objC = make([]float32, 3*n)
 	r.objM = make([]uint8, n)
 	r.shade = make([]uint8, n)
+	r.stir = make([]uint8, n)
 	for i := range r.shade {
 		r.shade[i] = 255
 	}
@@ -140,6 +146,7 @@ func newWRenderer(s Scene) *wRenderer {
 	}
 	wrng := rand.New(rand.NewSource(s.Seed*13 + 5))
 	r.waves = newWaveTile(wrng, w.Wind.DirDeg)
+	r.waves.setCaustics(w.Wind.Slope, 0.6+0.6*w.Water.Caustics)
 	if w.Clouds != nil {
 		r.clouds = newCloudTex(w.Clouds, s.PoolLength/2, s.PoolWidth/2)
 	}
@@ -153,20 +160,29 @@ func newWRenderer(s Scene) *wRenderer {
 		r.entries = append(r.entries, childEntry(in, s.PoolLength, s.PoolWidth))
 	}
 	r.poolMid = s.PoolLength/2*r.gust.dir[0] + s.PoolWidth/2*r.gust.dir[1]
-	r.noise = make([]float32, 3*n+65536)
+	r.nk = make([]uint8, 3*n+65536)
 	nrng := rand.New(rand.NewSource(s.Seed*31 + 11))
-	for i := range r.noise {
-		r.noise[i] = float32(nrng.NormFloat64())
+	for i := range r.nk {
+		r.nk[i] = uint8(nrng.Intn(16))
 	}
 	r.buildRays()
 	r.buildTables()
 	return r
 }
 
-// buildTone fills the tone curve (linear light → 8-bit, the sRGB transfer
-// function, IEC 61966-2-1) and the noise level per output grey level.
+// buildTone fills the tone-and-noise table: linear light → 8 bits by the
+// sRGB transfer function (IEC 61966-2-1), then sensor noise of standard
+// deviation √(read² + shot²·level) grey levels, drawn as one of 16 equally
+// likely quantiles of the normal distribution.
 func (r *wRenderer) buildTone() {
-	for i := range r.tone {
+	var z [16]float64
+	for k := range z {
+		z[k] = math.Sqrt2 * math.Erfinv(2*(float64(k)+0.5)/16-1)
+		r.z[k] = float32(z[k])
+	}
+	sn := r.w.Sensor
+	r.toneNoise = make([]uint8, 4096*16)
+	for i := 0; i < 4096; i++ {
 		x := float64(i) / 1024
 		var v float64
 		if x <= 0.0031308 {
@@ -174,11 +190,11 @@ func (r *wRenderer) buildTone() {
 		} else {
 			v = 1.055*math.Pow(x, 1/2.4) - 0.055
 		}
-		r.tone[i] = uint8(math.Round(255 * clamp01(v)))
-	}
-	sn := r.w.Sensor
-	for v := range r.sig {
-		r.sig[v] = float32(math.Sqrt(sn.ReadNoise*sn.ReadNoise + sn.Shot*sn.Shot*float64(v)))
+		t := 255 * clamp01(v)
+		sig := math.Sqrt(sn.ReadNoise*sn.ReadNoise + sn.Shot*sn.Shot*t)
+		for k := range z {
+			r.toneNoise[i<<4|k] = uint8(math.Round(math.Max(0, math.Min(255, t+z[k]*sig))))
+		}
 	}
 }
 
@@ -371,7 +387,7 @@ func (r *wRenderer) buildPixel(u, v int, wps *[]wpix, gps *[]gpix, floorX, floor
 	up := [3]float64{0, 0, 1}
 	cosI := -d[2]
 	R := fresnel(cosI)
-	p := wpix{i: int32(i), tile: tileIndex(s[0], s[1]), cx: cloudCell16(s[0]), cy: cloudCell16(s[1]), gust: r.gust.index(s[0], s[1])}
+	p := wpix{i: int32(i), tile: tileAt(s[0], s[1]), cx: cloudCell16(s[0]), cy: cloudCell16(s[1]), gust: r.gust.index(s[0], s[1])}
 	p.trans = float32((1 - R) * vig)
 	// What the surface mirrors: the sky or the fence.
 	rd := [3]float64{d[0], d[1], -d[2]}
@@ -415,9 +431,9 @@ func (r *wRenderer) buildPixel(u, v int, wps *[]wpix, gps *[]gpix, floorX, floor
 	depth := -un.p[2]
 	floorX[i], floorY[i], floorD[i] = float32(un.p[0]), float32(un.p[1]), float32(depth)
 	if un.wall {
-		p.caus = tileIndex(un.p[0]+un.p[1], un.p[2])
+		p.caus = tileAt(un.p[0]+un.p[1], un.p[2])
 	} else {
-		p.caus = tileIndex(un.p[0], un.p[1])
+		p.caus = tileAt(un.p[0], un.p[1])
 	}
 	wl := r.w.Water
 	ks := wl.Turbidity*4 + 0.1

@@ -13,7 +13,7 @@ const (
 	tileN     = 192
 	tileCellM = 0.02
 	tileM     = tileN * tileCellM
-	nWaves    = 10
+	nWaves    = 16
 )
 
 // Capillary-gravity dispersion ω² = g·k + (σ/ρ)·k³ with g = 9.81 m/s² and
@@ -29,21 +29,24 @@ type waveTile struct {
 	sx, sy     []float32              // slope per cell, for unit RMS slope
 	caus       []float32              // caustic light per cell, mean 1
 	acc        []float32
-	causDepth  float64 // m: how far below the surface the caustics focus
+	// causK is the caustic displacement, cells per unit of normalised
+	// slope, at slope causRef; set by setCaustics.
+	causK, causRef float64
+	divRMS         float64
 }
 
-// newWaveTile draws nWaves ripple trains of 6–60 cm wavelength heading
+// newWaveTile draws nWaves ripple trains of 8–80 cm wavelength heading
 // mostly downwind, snapped to the tile's lattice so the tile wraps, with
 // slope amplitudes normalised to a unit RMS slope.
 func newWaveTile(rng *rand.Rand, windDeg float64) *waveTile {
 	w := &waveTile{sx: make([]float32, tileN*tileN), sy: make([]float32, tileN*tileN), caus: make([]float32, tileN*tileN), acc: make([]float32, tileN*tileN)}
-	var sum float64
+	var sum, div float64
 	amps := make([]float64, nWaves)
 	kxs := make([]float64, nWaves)
 	kys := make([]float64, nWaves)
 	for i := 0; i < nWaves; i++ {
-		lambda := math.Exp(math.Log(0.06) + rng.Float64()*(math.Log(0.6)-math.Log(0.06)))
-		dir := deg(windDeg) + rng.NormFloat64()*0.8
+		lambda := math.Exp(math.Log(0.08) + rng.Float64()*(math.Log(0.8)-math.Log(0.08)))
+		dir := deg(windDeg) + rng.NormFloat64()*1.1
 		k := 2 * math.Pi / lambda
 		m := math.Round(k * math.Cos(dir) * tileM / (2 * math.Pi))
 		n := math.Round(k * math.Sin(dir) * tileM / (2 * math.Pi))
@@ -51,14 +54,15 @@ func newWaveTile(rng *rand.Rand, windDeg float64) *waveTile {
 			m = 1
 		}
 		kxs[i], kys[i] = 2*math.Pi*m/tileM, 2*math.Pi*n/tileM
-		// Slope amplitude falls slowly with wavenumber.
-		amps[i] = math.Pow(math.Hypot(kxs[i], kys[i]), -0.3) * (0.6 + 0.8*rng.Float64())
+		// Slope amplitude falls with wavenumber.
+		amps[i] = math.Pow(math.Hypot(kxs[i], kys[i]), -0.5) * (0.5 + rng.Float64())
 		sum += amps[i] * amps[i] / 2
 	}
 	norm := 1 / math.Sqrt(sum)
 	for i := 0; i < nWaves; i++ {
 		k := math.Hypot(kxs[i], kys[i])
 		s := amps[i] * norm // slope amplitude of this train
+		div += s * s * k * k / 2
 		w.ax[i] = float32(s * kxs[i] / k)
 		w.ay[i] = float32(s * kys[i] / k)
 		w.om[i] = float32(waveOmega(k))
@@ -69,14 +73,25 @@ func newWaveTile(rng *rand.Rand, windDeg float64) *waveTile {
 			w.colC[i][c] = float32(math.Cos(a))
 		}
 	}
-	w.causDepth = 0.6 + 0.6*rng.Float64()
+	// RMS divergence of the unit slope field, per cell.
+	w.divRMS = math.Sqrt(div) * tileCellM
 	return w
 }
 
+// setCaustics chooses the caustic displacement so that at RMS slope rms
+// the light is focused into a net: caustics form where the divergence of
+// the light's displacement approaches 1, so the displacement per unit
+// slope is focus/divRMS cells (focus 0.5 soft … 1.1 sharp). Real nets also
+// come from ripples too short for the tile, so this is set by look.
+func (w *waveTile) setCaustics(rms, focus float64) {
+	w.causRef = rms
+	w.causK = focus / w.divRMS
+}
+
 // update computes the slope field at time t and, when caustics is set,
-// the caustic light for a water slope of rms: each cell's light goes
-// where the surface slope bends it on its way down causDepth metres
-// (a small-angle photon map), then is normalised to mean 1.
+// the caustic light for a water slope of rms: each cell's light goes where
+// the surface slope bends it on its way to the floor (a small-angle photon
+// map; one photon per cell, so the mean is 1).
 func (w *waveTile) update(t float64, rms float64, caustics bool) {
 	for i := 0; i < nWaves; i++ {
 		ph := -float64(w.om[i]) * t
@@ -109,9 +124,9 @@ func (w *waveTile) update(t float64, rms float64, caustics bool) {
 	for i := range w.acc {
 		w.acc[i] = 0
 	}
-	// Displacement in cells per unit slope: refraction turns a slope s into
-	// a ray tilt of about s·(1 − 1/n).
-	k := float32(rms * w.causDepth * (1 - 1/WaterIndex) / tileCellM)
+	// Displacement grows with the slope: refraction turns a slope s into a
+	// ray tilt of about s·(1 − 1/n).
+	k := float32(w.causK * rms / math.Max(w.causRef, 1e-6))
 	const wrap = tileN * 64
 	for r := 0; r < tileN; r++ {
 		for c := 0; c < tileN; c++ {
@@ -143,17 +158,34 @@ func (w *waveTile) update(t float64, rms float64, caustics bool) {
 	}
 }
 
-// tileIndex returns the cell of a point, metres.
-func tileIndex(x, y float64) int32 {
-	c := int(math.Floor(x/tileCellM)) % tileN
-	r := int(math.Floor(y/tileCellM)) % tileN
-	if c < 0 {
-		c += tileN
+// tilePos is a point's place in the tile for bilinear reads: the cell
+// whose centre is up-left of it and the fractions (0–255) towards the next.
+type tilePos struct {
+	c, r, fx, fy uint8
+}
+
+func tileAt(x, y float64) tilePos {
+	u, v := x/tileCellM-0.5, y/tileCellM-0.5
+	fu, fv := math.Floor(u), math.Floor(v)
+	c := ((int(fu) % tileN) + tileN) % tileN
+	r := ((int(fv) % tileN) + tileN) % tileN
+	return tilePos{uint8(c), uint8(r), uint8((u - fu) * 255), uint8((v - fv) * 255)}
+}
+
+// bilinear reads a tile field at p.
+func bilinear(f []float32, p tilePos) float32 {
+	c0, r0 := int(p.c), int(p.r)*tileN
+	c1, r1 := c0+1, r0+tileN
+	if c1 == tileN {
+		c1 = 0
 	}
-	if r < 0 {
-		r += tileN
+	if r1 == tileN*tileN {
+		r1 = 0
 	}
-	return int32(r*tileN + c)
+	fx, fy := float32(p.fx)*(1.0/255), float32(p.fy)*(1.0/255)
+	a := f[r0+c0] + fx*(f[r0+c1]-f[r0+c0])
+	b := f[r1+c0] + fx*(f[r1+c1]-f[r1+c0])
+	return a + fy*(b-a)
 }
 
 // Cloud shadows: a periodic texture of the fraction of sunlight that
