@@ -31,6 +31,12 @@ type Track struct {
 	Features    Features        // latest
 	First, Last time.Duration   // media time first and last seen
 	Hits        int             // frames with a detection
+	// RunStart and RunHits are the start and the detections of the
+	// track's current run: seen without a gap longer than TrackerConfig.
+	// RunGap. Water chains short-lived blobs into sparse tracks that a body
+	// may later join; its persistence counts from its own run.
+	RunStart time.Duration
+	RunHits  int
 }
 
 // TrackerConfig tunes association.
@@ -43,6 +49,9 @@ type TrackerConfig struct {
 	MergeRadius float64
 	// MaxMissing is how long a track survives without a detection.
 	MaxMissing time.Duration
+	// RunGap is the longest gap within a run (Track.RunStart); zero
+	// selects 300 ms.
+	RunGap time.Duration
 }
 
 // Tracker associates detections across frames by nearest neighbour within
@@ -64,6 +73,9 @@ func NewTracker(cfg TrackerConfig) *Tracker {
 	}
 	if cfg.MaxMissing <= 0 {
 		cfg.MaxMissing = 2 * time.Second
+	}
+	if cfg.RunGap <= 0 {
+		cfg.RunGap = 300 * time.Millisecond
 	}
 	return &Tracker{cfg: cfg, next: 1}
 }
@@ -102,14 +114,18 @@ func (t *Tracker) Update(now time.Duration, dets []Detection) []Track {
 			tr.VY = (1-a)*tr.VY + a*(g.Y-tr.Y)/dt
 		}
 		tr.X, tr.Y, tr.Area, tr.Box, tr.Hold, tr.Features = g.X, g.Y, g.Area, g.Box, g.Hold, g.Features
+		if now-tr.Last > t.cfg.RunGap {
+			tr.RunStart, tr.RunHits = now, 0
+		}
 		tr.Last = now
 		tr.Hits++
+		tr.RunHits++
 	}
 	for gi, g := range groups {
 		if usedG[gi] {
 			continue
 		}
-		t.tracks = append(t.tracks, &Track{ID: t.next, X: g.X, Y: g.Y, Area: g.Area, Box: g.Box, Hold: g.Hold, Features: g.Features, First: now, Last: now, Hits: 1})
+		t.tracks = append(t.tracks, &Track{ID: t.next, X: g.X, Y: g.Y, Area: g.Area, Box: g.Box, Hold: g.Hold, Features: g.Features, First: now, Last: now, Hits: 1, RunStart: now, RunHits: 1})
 		t.next++
 	}
 	keep := t.tracks[:0]

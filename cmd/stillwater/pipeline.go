@@ -130,7 +130,14 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 		if ok, _ := p.judge.eligible(t.ID); !ok && d.Method == "meanvar" {
 			continue
 		}
-		obs = append(obs, alert.Observation{Track: t.ID, X: t.X, Y: t.Y, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits})
+		o := alert.Observation{Track: t.ID, X: t.X, Y: t.Y, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits}
+		if d.Method == "meanvar" && !p.alarmed[t.ID] {
+			// Persistence and the share of frames seen count from the
+			// track's current run, not from the sparse flicker it may
+			// have grown out of.
+			o.First, o.Hits = t.RunStart, t.RunHits
+		}
+		obs = append(obs, o)
 		hold = append(hold, t.Hold)
 	}
 	p.metrics.tracks(len(tracks))
