@@ -341,7 +341,7 @@ func TestDaemonStartsOverAnEmptySubjectRecord(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders a 10 s clip")
 	}
-	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10 })
+	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10; floatingChild(s) })
 	cfg := demoConfig(truth, clip, dir, false)
 	cfg.Cameras[0].Loop = true
 	cfg.Cameras[0].Detect.ProcessWidth = 160

@@ -30,12 +30,16 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	dir := fs.String("dir", "", "working `directory` (default: a temporary one, removed after)")
 	realtime := fs.Bool("realtime", false, "pace the clip at its frame rate like a live camera")
 	verbose := fs.Bool("v", false, "log at debug level")
+	upright := fs.Bool("upright", false, "draw the child upright, head and shoulders only, instead of floating")
 	if err := fs.Parse(args); err != nil {
 		return errUsage
 	}
 	s, ok := scenarioByName(*scenario, *seed)
 	if !ok {
 		return fmt.Errorf("demo: unknown scenario %q: %w", *scenario, errUsage)
+	}
+	if !*upright {
+		floatingChild(&s)
 	}
 	work := *dir
 	if work == "" {

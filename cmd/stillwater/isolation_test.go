@@ -222,7 +222,7 @@ func TestHangingSourcesDoNotHoldUpAHealthyCamera(t *testing.T) {
 	if testing.Short() {
 		t.Skip("plays a 20 s clip in real time")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, nil)
+	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
 	cfg := demoConfig(truth, clip, dir, true)
 	cfg.HeartbeatEvery = Duration(time.Second)
 	silent, pipe := cfg.Cameras[0], cfg.Cameras[0]
@@ -423,7 +423,7 @@ func TestTargetPublishedBeforeItsEvidence(t *testing.T) {
 	if testing.Short() {
 		t.Skip("plays a 20 s clip twice")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, nil)
+	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
 	delays := map[bool]time.Duration{}
 	var written time.Duration
 	for _, on := range []bool{false, true} {

@@ -22,12 +22,14 @@ import (
 	"stillwater/vision/synth"
 )
 
-// renderChild writes a 14 s child clip (entry at 8 s) and its labels.
+// renderChild writes a 14 s child clip (entry at 8 s, floating: see
+// floatingChild) and its labels.
 func renderChild(t *testing.T, dir string) (clip, labels string, truth synth.Truth) {
 	t.Helper()
 	s, ok := scenarioByName("child", 7)
 	require.True(t, ok)
 	s.Duration = 14
+	floatingChild(&s)
 	clip, labels = filepath.Join(dir, "child.avi"), filepath.Join(dir, "child.json")
 	truth, err := synth.Render(context.Background(), s, clip, labels)
 	require.NoError(t, err)

@@ -31,7 +31,7 @@ func TestRTSPCameraLostAndBack(t *testing.T) {
 	if testing.Short() {
 		t.Skip("runs a live RTSP relay for about a minute")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, nil)
+	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
 	require.NotEmpty(t, truth.Presence)
 	entry := time.Duration(truth.Presence[0].From * float64(time.Second))
 

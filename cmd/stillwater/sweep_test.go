@@ -81,7 +81,7 @@ func TestSweepPersistence(t *testing.T) {
 	var out bytes.Buffer
 	err := runSweep(context.Background(), []string{"-persist", "500ms,1500ms", "-csv", csvPath, "-png", pngPath, clip, labels}, &out, io.Discard)
 	require.NoError(t, err)
-	assert.Contains(t, out.String(), "best within 0 false alarms/h: threshold 16, min_area_m2 0.012, persist 500ms")
+	assert.Contains(t, out.String(), "best within 0 false alarms/h: method meanvar, threshold 60, min_area_m2 0.03, min_score 50, persist 500ms")
 
 	f, err := os.Open(csvPath)
 	require.NoError(t, err)

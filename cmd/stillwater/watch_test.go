@@ -149,7 +149,7 @@ func TestDeadCameraIsAFaultAndDoesNotStallOthers(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders a 20 s clip")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, nil)
+	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
 	cfg := demoConfig(truth, clip, dir, true)
 	dead := cfg.Cameras[0]
 	dead.ID, dead.Source = "dead", "rtsp://127.0.0.1:9/nothing"
