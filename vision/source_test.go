@@ -234,10 +234,14 @@ func TestOpenDoesNotWaitForABlockedBackend(t *testing.T) {
 	assert.Less(t, took, 4*time.Second)
 	stuck, _ := gate.Stuck()
 	assert.True(t, stuck)
+	// Refused at once: with a minute to open, a second open that waited
+	// at all would wait for that minute and end in ErrOpenTimeout.
+	patient := sc
+	patient.OpenTimeout, patient.ReadTimeout = time.Minute, time.Minute
 	t1 := time.Now()
-	_, err = OpenCamera(sc, DetectorConfig{ProcessWidth: 160})
+	_, err = OpenCamera(patient, DetectorConfig{ProcessWidth: 160})
 	require.ErrorIs(t, err, ErrOpenStuck)
-	assert.Less(t, time.Since(t1), 100*time.Millisecond, "the second open waited")
+	assert.Less(t, time.Since(t1), patient.OpenTimeout/2, "the second open waited for its timeout")
 
 	release()
 	require.Eventually(t, func() bool { s, _ := gate.Stuck(); return !s }, 5*time.Second, 10*time.Millisecond)
