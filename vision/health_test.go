@@ -1,7 +1,6 @@
 package vision
 
 import (
-	"context"
 	"errors"
 	"fmt"
 	"image"
@@ -80,7 +79,6 @@ func (h healthRun) summary() string {
 // (outdoor scene with sparse frames), both from Debian's opencv-doc
 // examples.
 func TestHealthQuietOnWorkingCameras(t *testing.T) {
-	dir := t.TempDir()
 	scenes := normalScenes()
 	names := make([]string, 0, len(scenes))
 	for n := range scenes {
@@ -94,15 +92,12 @@ func TestHealthQuietOnWorkingCameras(t *testing.T) {
 	sort.Strings(names)
 	clips := map[string]string{}
 	for _, n := range names {
-		p := filepath.Join(dir, n+".avi")
 		// Every scene over its whole duration, sampled at 2 frames/s to
 		// keep rendering cheap: the picture at a given time does not
 		// depend on the frame rate, and the monitor's holds are media time.
 		sc := scenes[n]
 		sc.FPS = 2
-		_, err := synth.Render(context.Background(), sc, p, "")
-		require.NoError(t, err, n)
-		clips[n] = p
+		clips[n], _ = cachedClip(t, sc)
 	}
 	for _, ref := range []string{"vtest.avi", "tree.avi"} {
 		p, err := refdata.Path(ref)
@@ -177,9 +172,7 @@ func TestHealthReportsFaults(t *testing.T) {
 	dir := t.TempDir()
 	s := synth.Default()
 	s.Duration = 7
-	src := filepath.Join(dir, "scene.avi")
-	_, err := synth.Render(context.Background(), s, src, "")
-	require.NoError(t, err)
+	src, _ := cachedClip(t, s)
 	frames := readFrames(t, src)
 	defer closeAll(frames)
 	require.Len(t, frames, 70)
@@ -248,9 +241,7 @@ func TestMJPGRepeatsDecodeIdentical(t *testing.T) {
 	dir := t.TempDir()
 	s := synth.Default()
 	s.Duration = 0.5
-	src := filepath.Join(dir, "scene.avi")
-	_, err := synth.Render(context.Background(), s, src, "")
-	require.NoError(t, err)
+	src, _ := cachedClip(t, s)
 	frames := readFrames(t, src)
 	defer closeAll(frames)
 	require.NotEmpty(t, frames)
