@@ -22,16 +22,22 @@ import (
 	"stillwater/vision/synth"
 )
 
-// renderChild writes a 14 s child clip (entry at 8 s) and its labels.
+// renderChild returns a 14 s child clip (entry at 8 s) and its labels
+// from the render cache (see cachedClip); dir is not used.
 func renderChild(t *testing.T, dir string) (clip, labels string, truth synth.Truth) {
 	t.Helper()
-	s, ok := scenarioByName("child", 7)
-	require.True(t, ok)
-	s.Duration = 14
-	clip, labels = filepath.Join(dir, "child.avi"), filepath.Join(dir, "child.json")
-	truth, err := synth.Render(context.Background(), s, clip, labels)
+	cache, err := synth.CacheDir()
+	require.NoError(t, err)
+	clip, labels, truth, err = synth.Cached(context.Background(), childClip(), cache)
 	require.NoError(t, err)
 	return clip, labels, truth
+}
+
+// childClip is the scene renderChild renders.
+func childClip() synth.Scene {
+	s, _ := scenarioByName("child", 7)
+	s.Duration = 14
+	return s
 }
 
 func schemaFor(t *testing.T, kind string) *jsonschema.Schema {
@@ -95,9 +101,7 @@ func TestReplayMatchesDaemon(t *testing.T) {
 		}
 	}
 
-	s, _ := scenarioByName("child", 7)
-	s.Duration = 14
-	res, err := demo(context.Background(), s, t.TempDir(), false, slog.New(slog.NewTextHandler(io.Discard, nil)), io.Discard)
+	res, err := demoClip(context.Background(), truth, clip, t.TempDir(), false, slog.New(slog.NewTextHandler(io.Discard, nil)), io.Discard)
 	require.NoError(t, err)
 	require.Equal(t, len(res.Targets), len(replayed), "target messages: daemon against replay")
 	for i, d := range res.Targets {

@@ -33,6 +33,9 @@ func TestEndToEnd(t *testing.T) {
 	}
 	for _, tt := range tests {
 		t.Run(tt.scenario, func(t *testing.T) {
+			// Two at a time on two cores: a render or a daemon run each
+			// keeps about one core busy. The assertions are on media time.
+			t.Parallel()
 			truth, clip, dir := renderScene(t, tt.scenario, 7, nil)
 			ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
 			defer cancel()
