@@ -434,7 +434,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 			require.NoError(t, err)
 			defer vc.Close()
 			firstMoved := -1.0
-			worstStill := 0.0
+			worstStill, stillChecks := 0.0, 0
 			for {
 				r, err := vc.Next(nil)
 				if err == io.EOF {
@@ -449,6 +449,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 				at := r.Media.Seconds()
 				if tc.panAt == 0 || at < tc.panAt {
 					worstStill = math.Max(worstStill, st.ShiftM)
+					stillChecks++
 					assert.False(t, st.Moved, "at %.1f s: shift %.3f m", at, st.ShiftM)
 				} else if st.Moved && firstMoved < 0 {
 					firstMoved = at
@@ -456,6 +457,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 				}
 			}
 			refdata.Report(t, "largest shift while still: %.3f m (threshold %.2f m)", worstStill, defaultDriftMaxShift)
+			require.GreaterOrEqual(t, stillChecks, 2, "comparisons while the camera was still")
 			if tc.panAt > 0 {
 				require.GreaterOrEqual(t, firstMoved, tc.panAt, "pan never reported")
 				assert.LessOrEqual(t, firstMoved-tc.panAt, 10.0, "delay, s")
