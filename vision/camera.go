@@ -190,6 +190,7 @@ func OpenCamera(sc SourceConfig, dc DetectorConfig) (*Camera, error) {
 		return nil, fmt.Errorf("open camera %q: %w", red, err)
 	}
 	cam.det = det
+	cam.health.watch(dc.Mask)
 	if cam.kind == kindRTSP || cam.kind == kindHTTP {
 		cam.rejoin = &rejoin{}
 	}
@@ -305,7 +306,7 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 	r := Result{Index: c.index, Size: c.det.src, Media: c.mediaTime()}
 	c.index++
 	c.media = r.Media
-	r.Health = c.health.measure(c.frame)
+	r.Health = c.health.measure(c.frame, r.Media)
 	if c.ev != nil {
 		if err := c.ev.add(c.frame, r.Media); err != nil {
 			return r, fmt.Errorf("frame %d: %w", r.Index, err)

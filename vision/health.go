@@ -1,7 +1,6 @@
 package vision
 
 import (
-	"bytes"
 	"fmt"
 	"image"
 	"math"
@@ -19,13 +18,22 @@ type HealthStats struct {
 	// Spread is the standard deviation of the grey level.
 	Spread float64
 	// HasPrev is false for the first frame after opening or reconnecting;
-	// Diff and Identical are then meaningless.
+	// Diff is then meaningless.
 	HasPrev bool
-	// Diff is the mean absolute grey difference to the previous frame.
+	// Diff is the mean absolute grey difference to the previous frame,
+	// whole frame.
 	Diff float64
-	// Identical is true when the full-resolution frame equals the previous
-	// one in every pixel and channel, as a frozen encoder repeats it.
-	Identical bool
+	// HasMotion is false until a frame at least MotionLag older than this
+	// one has been seen since opening or reconnecting; Motion is then
+	// meaningless.
+	HasMotion bool
+	// Motion is how much the watched area (the water) changed since the
+	// frame MotionLag earlier: the mean absolute grey difference over its
+	// least-changed 90 % of cells. Live water always moves; a frozen
+	// picture re-encoded at each key frame changes only at those key
+	// frames. Trimming the most-changed tenth keeps a clock burned into
+	// the picture, or any small overlay, from passing for live water.
+	Motion float64
 	// Correlation is the mean Pearson correlation between each pixel and its
 	// right and lower neighbours, −1…1; 0 for a flat frame. Camera images
 	// of real scenes are strongly correlated at this scale, independent
@@ -36,14 +44,37 @@ type HealthStats struct {
 // healthWidth is the width frames are scaled to for HealthStats, px.
 const healthWidth = 160
 
+// MotionLag is how far apart, media time, the two frames are whose
+// difference gives HealthStats.Motion. Comparing frames a fixed time apart
+// rather than consecutive frames makes the measure the same at 5 fps and at
+// 30 fps: water moves in time, not in frames.
+const MotionLag = 200 * time.Millisecond
+
+// motionKeep is the share of the watched cells, least changed first, that
+// Motion averages over.
+const motionKeep = 0.9
+
+// probeFrame is one earlier probe-size grey frame and its media time.
+type probeFrame struct {
+	t    time.Duration
+	grey []byte
+}
+
 // healthProbe owns the Mats HealthStats are measured with.
 type healthProbe struct {
 	small, gray gocv.Mat
 	ready       bool
 	prev        []byte // previous frame at probe size, grey
-	prevFull    []byte // previous frame at full size, as decoded
-	prevShape   [3]int // cols, rows, type of prevFull
 	hasPrev     bool
+	// past holds the recent probe frames, oldest first, back to the newest
+	// one at least MotionLag old.
+	past []probeFrame
+	// mask is the watched area in source pixels; empty watches the whole
+	// frame. cells are the probe-size pixel indices inside it for the
+	// source and probe sizes in cellsFor.
+	mask     []Point
+	cells    []int
+	cellsFor [2]image.Point
 }
 
 func (p *healthProbe) init() {
@@ -51,13 +82,23 @@ func (p *healthProbe) init() {
 	p.ready = true
 }
 
-// reset forgets the previous frame, so that a reconnect is not mistaken for
-// a change or a freeze.
-func (p *healthProbe) reset() { p.hasPrev = false }
+// watch sets the area whose motion tells a live picture from a frozen one,
+// a polygon in source pixels; empty watches the whole frame.
+func (p *healthProbe) watch(mask []Point) {
+	p.mask = append([]Point(nil), mask...)
+	p.cells, p.cellsFor = nil, [2]image.Point{}
+}
 
-// measure computes the statistics of frame (BGR or grey) and remembers it as
-// the previous frame.
-func (p *healthProbe) measure(frame gocv.Mat) HealthStats {
+// reset forgets the previous frames, so that a reconnect is not mistaken
+// for a change or a freeze.
+func (p *healthProbe) reset() {
+	p.hasPrev = false
+	p.past = p.past[:0]
+}
+
+// measure computes the statistics of frame (BGR or grey) at media time t
+// and remembers it for the next frames.
+func (p *healthProbe) measure(frame gocv.Mat, t time.Duration) HealthStats {
 	if !p.ready {
 		p.init()
 	}
@@ -75,34 +116,107 @@ func (p *healthProbe) measure(frame gocv.Mat) HealthStats {
 		p.small.CopyTo(&p.gray)
 	}
 	cur := p.gray.ToBytes()
-	full := fullBytes(frame)
-	shape := [3]int{frame.Cols(), frame.Rows(), int(frame.Type())}
-	var st HealthStats
-	if p.hasPrev && len(p.prev) == len(cur) && shape == p.prevShape {
-		st.HasPrev = true
-		st.Identical = bytes.Equal(full, p.prevFull)
+	if p.cellsFor != [2]image.Point{src, size} {
+		p.cells = maskCells(p.mask, src, size)
+		p.cellsFor = [2]image.Point{src, size}
+		p.hasPrev = false // a new size: nothing earlier compares
+		p.past = p.past[:0]
 	}
+	var st HealthStats
+	st.HasPrev = p.hasPrev && len(p.prev) == len(cur)
 	var prev []byte
 	if st.HasPrev {
 		prev = p.prev
 	}
 	st.Mean, st.Spread, st.Diff, st.Correlation = greyStats(cur, prev, size.X, size.Y)
-	p.prevFull = append(p.prevFull[:0], full...)
-	p.prevShape = shape
+	// The newest earlier frame at least MotionLag old, dropping the ones
+	// before it: they will never be the newest such frame again.
+	old := -1
+	for i, f := range p.past {
+		if t-f.t >= MotionLag {
+			old = i
+		}
+	}
+	if old >= 0 {
+		st.HasMotion = true
+		st.Motion = trimmedChange(cur, p.past[old].grey, p.cells, motionKeep)
+		p.past = append(p.past[:0], p.past[old:]...)
+	}
+	p.past = append(p.past, probeFrame{t: t, grey: cur})
 	p.prev = cur
 	p.hasPrev = true
 	return st
 }
 
-// fullBytes returns the pixels of m, without a copy when m is continuous.
-// The slice is only valid until m changes.
-func fullBytes(m gocv.Mat) []byte {
-	if m.IsContinuous() {
-		if b, err := m.DataPtrUint8(); err == nil {
-			return b
+// maskCells returns the indices of the cells of a probe-size image whose
+// centres fall inside poly (source pixels of a src-size frame), row by row;
+// every cell when poly has fewer than three points or covers no cell
+// centre.
+func maskCells(poly []Point, src, size image.Point) []int {
+	n := size.X * size.Y
+	var out []int
+	if len(poly) >= 3 {
+		sx, sy := float64(src.X)/float64(size.X), float64(src.Y)/float64(size.Y)
+		for y := 0; y < size.Y; y++ {
+			for x := 0; x < size.X; x++ {
+				if inPolygon(poly, (float64(x)+0.5)*sx, (float64(y)+0.5)*sy) {
+					out = append(out, y*size.X+x)
+				}
+			}
 		}
 	}
-	return m.ToBytes()
+	if len(out) == 0 {
+		out = make([]int, n)
+		for i := range out {
+			out[i] = i
+		}
+	}
+	return out
+}
+
+// inPolygon reports whether (x, y) is inside poly by the even-odd rule.
+func inPolygon(poly []Point, x, y float64) bool {
+	in := false
+	j := len(poly) - 1
+	for i := range poly {
+		a, b := poly[i], poly[j]
+		if (a.Y > y) != (b.Y > y) && x < (b.X-a.X)*(y-a.Y)/(b.Y-a.Y)+a.X {
+			in = !in
+		}
+		j = i
+	}
+	return in
+}
+
+// trimmedChange is the mean absolute difference between cur and old over
+// the given cells, counting only the keep share of them that changed
+// least.
+func trimmedChange(cur, old []byte, cells []int, keep float64) float64 {
+	if len(cells) == 0 || len(cur) != len(old) {
+		return 0
+	}
+	var hist [256]int
+	for _, i := range cells {
+		d := int(cur[i]) - int(old[i])
+		if d < 0 {
+			d = -d
+		}
+		hist[d]++
+	}
+	want := keep * float64(len(cells))
+	var n, sum float64
+	for d, c := range hist {
+		if n >= want {
+			break
+		}
+		take := math.Min(float64(c), want-n)
+		n += take
+		sum += take * float64(d)
+	}
+	if n == 0 {
+		return 0
+	}
+	return sum / n
 }
 
 // greyStats returns the mean, standard deviation, mean absolute difference
@@ -178,7 +292,7 @@ const (
 	CondOK      Condition = "ok"
 	CondDark    Condition = "dark"    // near black: lens blacked out, lights off, IR failed
 	CondUniform Condition = "uniform" // nearly one level everywhere: covered, fogged, overexposed
-	CondFrozen  Condition = "frozen"  // the same image over and over
+	CondFrozen  Condition = "frozen"  // the water does not move: the picture is stuck
 	CondNoise   Condition = "noise"   // uncorrelated pixels: no signal, a broken sensor
 )
 
@@ -189,33 +303,59 @@ type HealthConfig struct {
 	DarkLevel float64
 	// UniformSpread: a standard deviation below this is uniform.
 	UniformSpread float64
-	// FrozenDiff: a mean absolute difference to the previous frame at or
-	// below this counts as a repeat. Zero (the default) counts only frames
-	// identical in every pixel.
-	FrozenDiff float64
+	// StillLevel: a frame whose water changed by at most this much
+	// (HealthStats.Motion, grey levels) since MotionLag earlier is still.
+	StillLevel float64
+	// FrozenShare of the frames of the last FrozenWindow being still
+	// makes the picture frozen. A share, not every frame: a frozen
+	// picture that the encoder re-codes at each key frame jumps once per
+	// key frame.
+	FrozenShare float64
+	// FrozenWindow is the media time over which still frames are counted.
+	FrozenWindow time.Duration
 	// NoiseCorrelation: a neighbour correlation below this is noise.
 	NoiseCorrelation float64
 	// Hold is how long a fault must persist before it is reported, media
 	// time.
 	Hold time.Duration
-	// FrozenHold is how long repeated frames must go on before the picture
-	// is reported frozen; zero takes Hold.
+	// FrozenHold is how long the picture must stay frozen before it is
+	// reported; zero takes the default (1 s), not Hold, because the
+	// window already spans most of a second.
 	FrozenHold time.Duration
+	// LivelyFor is how long the water must have been seen moving just
+	// before it stops for the stop to count as a freeze.
+	LivelyFor time.Duration
+	// CalmMemory is how long still spells that ended on their own are
+	// remembered; while any is, the frozen hold is half as long again as
+	// the longest, up to MaxFrozenHold.
+	CalmMemory    time.Duration
+	MaxFrozenHold time.Duration
 	// Recover is how long the picture must be fine again before the fault
 	// is cleared, media time.
 	Recover time.Duration
 }
 
-// DefaultHealth returns the default thresholds. The levels are set with
-// margin against the synthetic day, night and cloud scenes and the opencv-doc
-// reference footage (see health_test.go); the 2 s holds report a fault well
-// within 5 s of its onset.
+// DefaultHealth returns the default thresholds. The dark, uniform and noise
+// levels are set with margin against the synthetic scenes and the
+// opencv-doc reference footage (see health_test.go). The still level sits
+// between the least water motion measured on a live picture once its
+// denoiser has settled (0.064 grey levels: calm night water under a strong
+// temporal denoiser, H.264 at 1 Mbit/s) and a frozen picture's between key
+// frames (at most 0.03 after its first 0.5 s); the share, window and holds
+// report every fault within 3 s of its onset on a camera whose water moves.
 func DefaultHealth() HealthConfig {
 	return HealthConfig{
 		DarkLevel:        8,
 		UniformSpread:    2.5,
+		StillLevel:       0.05,
+		FrozenShare:      0.6,
+		FrozenWindow:     1500 * time.Millisecond,
 		NoiseCorrelation: 0.35,
 		Hold:             2 * time.Second,
+		FrozenHold:       time.Second,
+		LivelyFor:        3 * time.Second,
+		CalmMemory:       10 * time.Minute,
+		MaxFrozenHold:    8 * time.Second,
 		Recover:          2 * time.Second,
 	}
 }
@@ -228,6 +368,15 @@ func (c HealthConfig) withDefaults() HealthConfig {
 	if c.UniformSpread <= 0 {
 		c.UniformSpread = d.UniformSpread
 	}
+	if c.StillLevel <= 0 {
+		c.StillLevel = d.StillLevel
+	}
+	if c.FrozenShare <= 0 {
+		c.FrozenShare = d.FrozenShare
+	}
+	if c.FrozenWindow <= 0 {
+		c.FrozenWindow = d.FrozenWindow
+	}
 	if c.NoiseCorrelation <= 0 {
 		c.NoiseCorrelation = d.NoiseCorrelation
 	}
@@ -238,7 +387,16 @@ func (c HealthConfig) withDefaults() HealthConfig {
 		c.Recover = d.Recover
 	}
 	if c.FrozenHold <= 0 {
-		c.FrozenHold = c.Hold
+		c.FrozenHold = d.FrozenHold
+	}
+	if c.LivelyFor <= 0 {
+		c.LivelyFor = d.LivelyFor
+	}
+	if c.CalmMemory <= 0 {
+		c.CalmMemory = d.CalmMemory
+	}
+	if c.MaxFrozenHold <= 0 {
+		c.MaxFrozenHold = d.MaxFrozenHold
 	}
 	return c
 }
@@ -250,19 +408,23 @@ func (c HealthConfig) Validate() error {
 		return fmt.Errorf("health dark level %g: want 0–255", c.DarkLevel)
 	case c.UniformSpread < 0 || c.UniformSpread > 128:
 		return fmt.Errorf("health uniform spread %g: want 0–128", c.UniformSpread)
-	case c.FrozenDiff < 0 || c.FrozenDiff > 255:
-		return fmt.Errorf("health frozen diff %g: want 0–255", c.FrozenDiff)
+	case c.StillLevel < 0 || c.StillLevel > 255:
+		return fmt.Errorf("health still level %g: want 0–255", c.StillLevel)
+	case c.FrozenShare < 0 || c.FrozenShare > 1:
+		return fmt.Errorf("health frozen share %g: want 0–1", c.FrozenShare)
 	case c.NoiseCorrelation < 0 || c.NoiseCorrelation > 1:
 		return fmt.Errorf("health noise correlation %g: want 0–1", c.NoiseCorrelation)
-	case c.Hold < 0 || c.Recover < 0 || c.FrozenHold < 0:
-		return fmt.Errorf("health hold %v / frozen hold %v / recover %v: want non-negative", c.Hold, c.FrozenHold, c.Recover)
+	case c.Hold < 0 || c.Recover < 0 || c.FrozenHold < 0 || c.FrozenWindow < 0 || c.LivelyFor < 0 || c.CalmMemory < 0 || c.MaxFrozenHold < 0:
+		return fmt.Errorf("health hold %v / frozen hold %v / frozen window %v / recover %v: want non-negative", c.Hold, c.FrozenHold, c.FrozenWindow, c.Recover)
 	}
 	return nil
 }
 
 // Classify returns the condition one frame's statistics suggest, before
-// any hold. Darkness wins over uniformity, which wins over a freeze (a
-// frozen black picture is reported as dark), which wins over noise.
+// any hold, with CondFrozen meaning only that this frame's water is still
+// (the monitor decides over a window whether the picture is frozen).
+// Darkness wins over uniformity, which wins over stillness (a frozen black
+// picture is reported as dark), which wins over noise.
 func (c HealthConfig) Classify(s HealthStats) Condition {
 	c = c.withDefaults()
 	switch {
@@ -270,7 +432,7 @@ func (c HealthConfig) Classify(s HealthStats) Condition {
 		return CondDark
 	case s.Spread < c.UniformSpread:
 		return CondUniform
-	case s.HasPrev && (s.Identical || (c.FrozenDiff > 0 && s.Diff <= c.FrozenDiff)):
+	case s.HasMotion && s.Motion <= c.StillLevel:
 		return CondFrozen
 	case s.Correlation < c.NoiseCorrelation:
 		return CondNoise
@@ -287,13 +449,23 @@ type HealthReport struct {
 	Since time.Duration
 	// Changed is true on the frame where Condition changed.
 	Changed bool
-	// Frame is the condition of this frame alone.
+	// Frame is the condition of this frame, with frozen judged over the
+	// window.
 	Frame Condition
+	// StillShare is the share of the window's frames whose water was
+	// still; 0 until the window holds enough frames to judge.
+	StillShare float64
+}
+
+// stillMark is one measured frame in the frozen window.
+type stillMark struct {
+	t     time.Duration
+	still bool
 }
 
 // HealthMonitor turns per-frame statistics into a stable condition: a fault
-// is reported once it has persisted for Hold and cleared once the picture
-// has been fine for Recover. Pure Go; not safe for concurrent use.
+// is reported once it has persisted for its hold and cleared once the
+// picture has been fine for Recover. Pure Go; not safe for concurrent use.
 type HealthMonitor struct {
 	cfg       HealthConfig
 	cur       Condition
@@ -301,20 +473,153 @@ type HealthMonitor struct {
 	cand      Condition
 	candSince time.Duration
 	hasCand   bool
+	window    []stillMark // measured frames of the last FrozenWindow, oldest first
+	// movingFrom is when the current run of frames with moving water
+	// began, stillFrom when the current still spell began; -1 for none.
+	movingFrom, stillFrom time.Duration
+	eligible              bool        // the current still spell followed LivelyFor of moving water
+	spells                []calmSpell // still spells that ended on their own, oldest first
 }
 
 // NewHealthMonitor returns a monitor that starts in CondOK.
 func NewHealthMonitor(cfg HealthConfig) *HealthMonitor {
-	return &HealthMonitor{cfg: cfg.withDefaults(), cur: CondOK}
+	return &HealthMonitor{cfg: cfg.withDefaults(), cur: CondOK, movingFrom: -1, stillFrom: -1}
 }
 
 // Condition returns the reported condition.
 func (m *HealthMonitor) Condition() Condition { return m.cur }
 
+// minStillFrames is the fewest measured frames the window must hold before
+// it can call the picture frozen.
+const minStillFrames = 3
+
+// frame judges one frame: dark, uniform and noise on its own statistics;
+// frozen when enough of the window's frames were still, and the water was
+// seen moving for LivelyFor just before. An encoder that drops the small
+// changes of calm water sends a live picture that is as still between key
+// frames as a frozen one: the monitor only calls a picture frozen when it
+// stops after the water was seen moving, and it learns how long this
+// camera's water stays still on its own (see frozenHold).
+func (m *HealthMonitor) frame(t time.Duration, s HealthStats) (Condition, float64) {
+	f, share := m.stillness(t, s)
+	switch f {
+	case CondFrozen:
+		if m.stillFrom < 0 {
+			m.stillFrom = t
+			m.eligible = m.movingFrom >= 0 && t-m.movingFrom >= m.cfg.LivelyFor
+		}
+		// A dip shorter than FrozenWindow does not end the spell.
+		m.movingFrom = -1
+		if !m.eligible {
+			return CondOK, share
+		}
+	case CondOK, CondNoise:
+		if f == CondNoise {
+			m.movingFrom = -1
+			m.stillFrom = -1
+			break
+		}
+		if m.movingFrom < 0 {
+			m.movingFrom = t
+		}
+		// The spell ends once the water has moved for a whole window.
+		if m.stillFrom >= 0 && t-m.movingFrom >= m.cfg.FrozenWindow {
+			m.calm(t, m.movingFrom-m.stillFrom)
+			m.stillFrom = -1
+		}
+	default:
+		m.stillFrom, m.movingFrom = -1, -1
+	}
+	return f, share
+}
+
+// calmSpell is a still spell that ended with the water moving again.
+type calmSpell struct{ end, dur time.Duration }
+
+// calm records a still spell that ended at t after d; one longer than
+// MaxFrozenHold is taken for a picture that froze and came back, not for
+// calm water, and is not kept.
+func (m *HealthMonitor) calm(t, d time.Duration) {
+	if d > m.cfg.MaxFrozenHold {
+		return
+	}
+	m.spells = append(m.spells, calmSpell{end: t, dur: d})
+}
+
+// frozenHold is how long a still picture must last at time t to be
+// reported frozen: FrozenHold, or half as long again as this camera's
+// longest still spell of the last CalmMemory that ended on its own, at
+// most MaxFrozenHold.
+func (m *HealthMonitor) frozenHold(t time.Duration) time.Duration {
+	drop := 0
+	for drop < len(m.spells) && t-m.spells[drop].end > m.cfg.CalmMemory {
+		drop++
+	}
+	m.spells = append(m.spells[:0], m.spells[drop:]...)
+	h := m.cfg.FrozenHold
+	for _, sp := range m.spells {
+		h = max(h, sp.dur*3/2)
+	}
+	return min(h, max(m.cfg.MaxFrozenHold, m.cfg.FrozenHold))
+}
+
+// stillness judges one frame: dark, uniform and noise on its own
+// statistics; frozen when enough of the window's frames were still.
+func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, float64) {
+	f := m.cfg.Classify(s)
+	switch {
+	case f == CondDark || f == CondUniform:
+		// A black or covered picture is still too; the window restarts so
+		// that the picture coming back is not taken for a frozen one.
+		m.window = m.window[:0]
+		return f, 0
+	case s.HasMotion:
+		m.window = append(m.window, stillMark{t: t, still: f == CondFrozen})
+	}
+	drop := 0
+	for drop < len(m.window) && t-m.window[drop].t > m.cfg.FrozenWindow {
+		drop++
+	}
+	m.window = append(m.window[:0], m.window[drop:]...)
+	if len(m.window) == 0 {
+		if f == CondFrozen {
+			f = CondOK
+		}
+		return f, 0
+	}
+	still := 0
+	for _, w := range m.window {
+		if w.still {
+			still++
+		}
+	}
+	share := float64(still) / float64(len(m.window))
+	// The window must hold a few frames and span most of FrozenWindow: the
+	// first frames after opening, and a camera's denoiser settling, are
+	// not a frozen picture.
+	span := m.window[len(m.window)-1].t - m.window[0].t
+	full := len(m.window) >= minStillFrames && span >= m.cfg.FrozenWindow*2/3
+	if !full {
+		share = 0
+	}
+	switch {
+	case full && share >= m.cfg.FrozenShare:
+		return CondFrozen, share
+	case f == CondFrozen:
+		// A still frame among moving ones is not a frozen picture; judge
+		// it for noise as any other.
+		if s.Correlation < m.cfg.NoiseCorrelation {
+			return CondNoise, share
+		}
+		return CondOK, share
+	}
+	return f, share
+}
+
 // Observe feeds one frame's statistics at media time t (non-decreasing).
 func (m *HealthMonitor) Observe(t time.Duration, s HealthStats) HealthReport {
-	f := m.cfg.Classify(s)
-	rep := HealthReport{Frame: f}
+	f, share := m.frame(t, s)
+	rep := HealthReport{Frame: f, StillShare: share}
 	switch {
 	case f == m.cur:
 		m.hasCand = false
@@ -334,7 +639,7 @@ func (m *HealthMonitor) Observe(t time.Duration, s HealthStats) HealthReport {
 		case CondOK:
 			need = m.cfg.Recover
 		case CondFrozen:
-			need = m.cfg.FrozenHold
+			need = m.frozenHold(t)
 		}
 		if t-m.candSince >= need {
 			m.cur, m.since, m.hasCand = m.cand, m.candSince, false

@@ -203,8 +203,7 @@ func TestWorkingCamerasSettle(t *testing.T) {
 	names := make([]string, 0, len(scenes))
 	for n := range scenes {
 		// -short keeps the scenes nearest a fault, as the health test
-		// does, and their first 4 s (trust comes after 1.5 s of a steady
-		// picture).
+		// does.
 		if testing.Short() && n != "night" && n != "cloud" {
 			continue
 		}
@@ -213,12 +212,7 @@ func TestWorkingCamerasSettle(t *testing.T) {
 	sort.Strings(names)
 	for _, n := range names {
 		t.Run(n, func(t *testing.T) {
-			s := scenes[n]
-			s.Duration = min(s.Duration, 12)
-			if testing.Short() {
-				s.Duration = 4
-			}
-			p, truth := cachedClip(t, s)
+			p, truth := cachedClip(t, scenes[n])
 			var pool []Point
 			for _, c := range truth.Corners {
 				pool = append(pool, Point{c.Pixel[0], c.Pixel[1]})

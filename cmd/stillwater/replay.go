@@ -137,7 +137,11 @@ func findCamera(cfg Config, id string) (CameraConfig, bool) {
 }
 
 // cameraFromLabels builds a camera with the default detect settings from a
-// label file's pool size and corners A, B, C, D.
+// label file, using what an installer has: the pool size and the corners A,
+// B, C, D as seen on the raw frame, and, where the labels give them (family
+// scenes do), the frame size, the chessboard lens, the measured camera
+// position and the depth profile. The labels' camera angles and field of
+// view are not used: an installer does not measure them.
 func cameraFromLabels(t synth.Truth, clip string) (CameraConfig, error) {
 	if t.Pool.Length <= 0 || t.Pool.Width <= 0 {
 		return CameraConfig{}, fmt.Errorf("pool %gx%g m: both sides must be positive", t.Pool.Length, t.Pool.Width)
@@ -153,7 +157,42 @@ func cameraFromLabels(t synth.Truth, clip string) (CameraConfig, error) {
 	for _, c := range t.Corners {
 		cam.Corners = append(cam.Corners, c.Pixel)
 	}
+	if t.Lens == nil {
+		return cam, nil
+	}
+	// A family scene: the installer's full calibration.
+	if t.Width > 0 && t.Height > 0 {
+		cam.Frame = [2]int{t.Width, t.Height}
+	}
+	l := t.Lens
+	cam.Lens = &LensConfig{Fx: l.Fx, Fy: l.Fy, Cx: l.Cx, Cy: l.Cy, Dist: append([]float64(nil), l.Dist[:]...)}
+	if t.Camera != nil {
+		cam.CameraPosition = &CameraPositionConfig{X: t.Camera.X, Y: t.Camera.Y, Height: t.Camera.Height}
+	}
+	if t.Depth != nil {
+		w, err := waterFromProfile(*t.Depth)
+		if err != nil {
+			return CameraConfig{}, err
+		}
+		cam.Water = w
+	}
 	return cam, nil
+}
+
+// waterFromProfile turns a labelled depth profile of one point (a flat
+// floor) or two (a slope between them, level beyond) into the depth
+// settings an installer would write.
+func waterFromProfile(p synth.DepthProfile) (WaterConfig, error) {
+	switch {
+	case len(p.X) != len(p.D):
+		return WaterConfig{}, fmt.Errorf("depth profile: %d positions and %d depths", len(p.X), len(p.D))
+	case len(p.D) == 1:
+		return WaterConfig{Depth: p.D[0]}, nil
+	case len(p.D) == 2:
+		x := p.X[1]
+		return WaterConfig{Shallow: p.D[0], ShallowX: p.X[0], Deep: p.D[1], DeepX: &x}, nil
+	}
+	return WaterConfig{}, fmt.Errorf("depth profile of %d points: want one (flat) or two (a slope)", len(p.D))
 }
 
 // replaySink collects a frame's messages.
@@ -173,9 +212,9 @@ func (s *replaySink) write(m outMsg) error {
 	})
 }
 
-// replayClip runs the daemon's pipeline (the same camera, detector,
-// processor and step, always armed) over cam.Source and writes each message
-// to w. Wall-clock fields of the messages are taken from media time after
+// replayClip runs the daemon's pipeline (the same camera, detector, picture
+// checks, processor and step, always armed) over cam.Source and writes each
+// message to w: targets, clears, and picture faults raised and cleared. Wall-clock fields of the messages are taken from media time after
 // replayEpoch, so the output is reproducible.
 func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Writer, log *slog.Logger) (replayStats, error) {
 	var st replayStats
@@ -198,6 +237,7 @@ func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Write
 	}
 	sink := &replaySink{prefix: prefix, enc: json.NewEncoder(w)}
 	sink.enc.SetEscapeHTML(false)
+	faults := newPictureFaults(vision.HealthConfig{})
 	var hold []image.Rectangle
 	for {
 		if err := ctx.Err(); err != nil {
@@ -212,6 +252,17 @@ func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Write
 		}
 		media = r.Media
 		st.Frames, st.Media = r.Index+1, r.Media
+		for _, f := range faults.observe(r.Media, r.Health, true) {
+			// One sequence for every kind, as the daemon numbers them.
+			proc.seq++
+			b, err := alert.Encode(alert.NewFault(cam.ID, proc.seq, epoch.Add(r.Media), f.Kind, f.Active, f.Detail))
+			if err != nil {
+				return st, fmt.Errorf("replay: encode fault: %w", err)
+			}
+			if err := sink.write(outMsg{Camera: cam.ID, Kind: alert.KindFault, Data: b, Frame: r.Index, Media: r.Media}); err != nil {
+				return st, fmt.Errorf("replay: write output: %w", err)
+			}
+		}
 		if r.Rejoining {
 			continue // probed only, as in the daemon (see watch.go)
 		}

@@ -1,6 +1,6 @@
 // Command stillwater score compares replay output with the clip's labels:
-// detection, first-alert delay, false alarms, position error and track
-// breaks, per clip and in total.
+// detection, first-alert delay, false alarms, position error, track breaks
+// and picture faults, per clip and in total.
 package main
 
 import (
@@ -52,6 +52,37 @@ type clipScore struct {
 	// Tracked is the longest time, s, one track kept reporting an intruder
 	// with no silence longer than MaxGap.
 	Tracked float64
+	// Picture faults: the labelled fault intervals; how many of them
+	// raised their fault while the fault was on, and how long after its
+	// onset, s; picture faults raised at other times or of another kind;
+	// and target tracks started while a labelled fault was on.
+	FaultsLabelled int
+	FaultsRaised   int
+	FaultDelays    []float64
+	FalseFaults    int
+	FaultTargets   int
+	// FaultKinds and FaultEach are the labelled faults in label order:
+	// the fault each should raise, and its delay, s (NaN when never).
+	FaultKinds []string
+	FaultEach  []float64
+}
+
+// faultKindOf returns the fault a labelled camera fault should raise:
+// black → camera_blinded, frozen → camera_frozen, noise → camera_noise (a
+// fault kind itself is taken as it is).
+func faultKindOf(label string) (string, error) {
+	switch label {
+	case synth.FaultBlack:
+		return alert.FaultCameraBlinded, nil
+	case synth.FaultFrozen:
+		return alert.FaultCameraFrozen, nil
+	case synth.FaultNoise:
+		return alert.FaultCameraNoise, nil
+	}
+	if isPictureFault(label) {
+		return label, nil
+	}
+	return "", fmt.Errorf("labelled fault %q: want black, frozen, noise or a picture fault kind", label)
 }
 
 // missed returns the number of presence intervals without a target.
@@ -59,9 +90,31 @@ func (c clipScore) missed() int { return c.Presences - c.Detected }
 
 // scoreClip scores one replay against its labels.
 func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules) (clipScore, error) {
-	cs := clipScore{Name: name, Presences: len(t.Presence)}
+	cs := clipScore{Name: name, Presences: len(t.Presence), FaultsLabelled: len(t.Faults)}
 	if t.Frames <= 0 {
 		return cs, fmt.Errorf("score %s: labels give no frame count; set \"frames\" to the clip's number of frames", name)
+	}
+	faultKinds := make([]string, len(t.Faults))
+	for i, f := range t.Faults {
+		k, err := faultKindOf(f.Kind)
+		if err != nil {
+			return cs, fmt.Errorf("score %s: %w", name, err)
+		}
+		faultKinds[i] = k
+	}
+	// inFault returns the labelled fault on at media time s, of the given
+	// kind unless kind is empty; -1 for none.
+	inFault := func(s float64, kind string) int {
+		for i, f := range t.Faults {
+			if s >= f.From && s <= f.To && (kind == "" || kind == faultKinds[i]) {
+				return i
+			}
+		}
+		return -1
+	}
+	faultAt := make([]float64, len(t.Faults))
+	for i := range faultAt {
+		faultAt[i] = math.NaN()
 	}
 	cs.Duration = float64(t.Frames) / t.FPS
 	free := cs.Duration
@@ -115,6 +168,9 @@ func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules)
 			}
 			pi := during(l.Media)
 			occ := truthAt(l.Frame)
+			if tg.Event == "start" && inFault(l.Media, "") >= 0 {
+				cs.FaultTargets++
+			}
 			if tg.Event == "start" {
 				far := occ != nil && math.Hypot(tg.Surface.X-occ.X, tg.Surface.Y-occ.Y) > rules.FarM
 				if pi < 0 || far {
@@ -140,6 +196,21 @@ func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules)
 			if occ != nil {
 				cs.Errors = append(cs.Errors, math.Hypot(tg.Surface.X-occ.X, tg.Surface.Y-occ.Y))
 			}
+		case alert.KindFault:
+			var f alert.Fault
+			if err := json.Unmarshal(l.Msg, &f); err != nil {
+				return cs, fmt.Errorf("score %s: line %d: %w", name, n+1, err)
+			}
+			if !f.Active || !isPictureFault(f.Fault) {
+				continue // a clear, or a fault the picture checks do not raise
+			}
+			if i := inFault(l.Media, f.Fault); i >= 0 {
+				if math.IsNaN(faultAt[i]) {
+					faultAt[i] = l.Media
+				}
+				continue
+			}
+			cs.FalseFaults++
 		case alert.KindCleared:
 			var c alert.Cleared
 			if err := json.Unmarshal(l.Msg, &c); err != nil {
@@ -151,6 +222,14 @@ func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules)
 					cs.Breaks++
 				}
 			}
+		}
+	}
+	cs.FaultKinds = faultKinds
+	for i, f := range t.Faults {
+		cs.FaultEach = append(cs.FaultEach, faultAt[i]-f.From)
+		if !math.IsNaN(faultAt[i]) {
+			cs.FaultsRaised++
+			cs.FaultDelays = append(cs.FaultDelays, faultAt[i]-f.From)
 		}
 	}
 	for i, p := range t.Presence {
@@ -170,6 +249,9 @@ type scoreTotal struct {
 	Clips, Presences, Detected, False, Breaks int
 	FreeHours                                 float64
 	Delays, Errors                            []float64
+	// Picture faults, as in clipScore.
+	FaultsLabelled, FaultsRaised, FalseFaults, FaultTargets int
+	FaultDelays                                             []float64
 }
 
 func totalOf(cs []clipScore) scoreTotal {
@@ -183,6 +265,11 @@ func totalOf(cs []clipScore) scoreTotal {
 		t.FreeHours += c.FreeHours
 		t.Delays = append(t.Delays, c.Delays...)
 		t.Errors = append(t.Errors, c.Errors...)
+		t.FaultsLabelled += c.FaultsLabelled
+		t.FaultsRaised += c.FaultsRaised
+		t.FalseFaults += c.FalseFaults
+		t.FaultTargets += c.FaultTargets
+		t.FaultDelays = append(t.FaultDelays, c.FaultDelays...)
 	}
 	return t
 }
@@ -226,6 +313,13 @@ type scoreLimits struct {
 	MaxFalse  int           // false alarms in total
 	MaxP95    float64       // m, 95th percentile position error
 	MaxBreaks int
+	// MaxFaultDelay is the longest a labelled picture fault may take to be
+	// raised; when set, a fault never raised fails too.
+	MaxFaultDelay time.Duration
+	// MaxFalseFaults are picture faults raised with none labelled.
+	MaxFalseFaults int
+	// MaxFaultTargets are target tracks started while a fault was on.
+	MaxFaultTargets int
 }
 
 // check returns one line per broken limit.
@@ -250,20 +344,39 @@ func (l scoreLimits) check(t scoreTotal) []string {
 	if l.MaxBreaks >= 0 && t.Breaks > l.MaxBreaks {
 		out = append(out, fmt.Sprintf("%d track breaks exceed %d", t.Breaks, l.MaxBreaks))
 	}
+	if l.MaxFaultDelay >= 0 {
+		if t.FaultsRaised < t.FaultsLabelled {
+			out = append(out, fmt.Sprintf("%d of %d labelled picture faults never raised their fault", t.FaultsLabelled-t.FaultsRaised, t.FaultsLabelled))
+		}
+		if d := maxOf(t.FaultDelays); d > l.MaxFaultDelay.Seconds() {
+			out = append(out, fmt.Sprintf("worst picture-fault delay %.2f s exceeds %v", d, l.MaxFaultDelay))
+		}
+	}
+	if l.MaxFalseFaults >= 0 && t.FalseFaults > l.MaxFalseFaults {
+		out = append(out, fmt.Sprintf("%d picture faults raised with none labelled exceed %d", t.FalseFaults, l.MaxFalseFaults))
+	}
+	if l.MaxFaultTargets >= 0 && t.FaultTargets > l.MaxFaultTargets {
+		out = append(out, fmt.Sprintf("%d targets raised during a picture fault exceed %d", t.FaultTargets, l.MaxFaultTargets))
+	}
 	return out
 }
 
 // writeScores prints the per-clip table and the total.
 func writeScores(w io.Writer, cs []clipScore) {
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
-	fmt.Fprintln(tw, "clip\tfootage s\tdetected\tdelay s\tfalse\tfalse/h\terr med m\terr p95 m\tbreaks\t")
+	fmt.Fprintln(tw, "clip\tfootage s\tdetected\tdelay s\tfalse\tfalse/h\terr med m\terr p95 m\tbreaks\tfaults\tfault s\tunlabelled faults\ttargets in fault\t")
 	row := func(name string, dur float64, t scoreTotal) {
 		det := "-"
 		if t.Presences > 0 {
 			det = fmt.Sprintf("%d/%d", t.Detected, t.Presences)
 		}
-		fmt.Fprintf(tw, "%s\t%.0f\t%s\t%s\t%d\t%s\t%s\t%s\t%d\t\n", name, dur, det, fmtNum(maxOf(t.Delays), 2), t.False,
-			fmtNum(t.falsePerHour(), 1), fmtNum(quantile(t.Errors, 0.5), 3), fmtNum(quantile(t.Errors, 0.95), 3), t.Breaks)
+		faults := "-"
+		if t.FaultsLabelled > 0 {
+			faults = fmt.Sprintf("%d/%d", t.FaultsRaised, t.FaultsLabelled)
+		}
+		fmt.Fprintf(tw, "%s\t%.0f\t%s\t%s\t%d\t%s\t%s\t%s\t%d\t%s\t%s\t%d\t%d\t\n", name, dur, det, fmtNum(maxOf(t.Delays), 2), t.False,
+			fmtNum(t.falsePerHour(), 1), fmtNum(quantile(t.Errors, 0.5), 3), fmtNum(quantile(t.Errors, 0.95), 3), t.Breaks,
+			faults, fmtNum(maxOf(t.FaultDelays), 2), t.FalseFaults, t.FaultTargets)
 	}
 	var dur float64
 	for _, c := range cs {
@@ -275,6 +388,10 @@ func writeScores(w io.Writer, cs []clipScore) {
 	tw.Flush()
 	fmt.Fprintf(w, "first-alert delay: median %s s, worst %s s over %d detections; intruder-free footage %.2f h\n",
 		fmtNum(quantile(t.Delays, 0.5), 2), fmtNum(maxOf(t.Delays), 2), len(t.Delays), t.FreeHours)
+	if t.FaultsLabelled > 0 || t.FalseFaults > 0 || t.FaultTargets > 0 {
+		fmt.Fprintf(w, "picture faults: %d of %d raised, delay median %s s, worst %s s; %d raised with none labelled; %d targets while a fault was on\n",
+			t.FaultsRaised, t.FaultsLabelled, fmtNum(quantile(t.FaultDelays, 0.5), 2), fmtNum(maxOf(t.FaultDelays), 2), t.FalseFaults, t.FaultTargets)
+	}
 }
 
 func fmtNum(v float64, prec int) string {
@@ -297,6 +414,9 @@ func runScore(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	fs.IntVar(&lim.MaxFalse, "max-false", -1, "fail when there are more false alarms than this `count`")
 	fs.Float64Var(&lim.MaxP95, "max-p95", -1, "fail when the 95th percentile position error exceeds this many `metres`")
 	fs.IntVar(&lim.MaxBreaks, "max-breaks", -1, "fail when there are more track breaks than this `count`")
+	fs.DurationVar(&lim.MaxFaultDelay, "max-fault-delay", -1, "fail when a labelled picture fault is not raised within this `duration` of its onset")
+	fs.IntVar(&lim.MaxFalseFaults, "max-unlabelled-faults", -1, "fail when more picture faults than this `count` are raised with none labelled")
+	fs.IntVar(&lim.MaxFaultTargets, "max-fault-targets", -1, "fail when more targets than this `count` start while a labelled fault is on")
 	rules := defaultScoreRules()
 	fs.Float64Var(&rules.FarM, "far", rules.FarM, "`metres` from the intruder beyond which a new target is a false alarm")
 	fs.DurationVar(&rules.Grace, "grace", rules.Grace, "how long after the intruder leaves a target still counts as theirs")

@@ -210,3 +210,64 @@ func TestReadReplayErrors(t *testing.T) {
 	_, err = readReplay(strings.NewReader(`{"subject":"a"}`), "y.jsonl")
 	assert.ErrorContains(t, err, fmt.Sprintf("%s:1: no msg", "y.jsonl"))
 }
+
+// faultLine is a replay line for a fault message at frame f (10 fps).
+func faultLine(t *testing.T, f int, kind string, active bool) replayLine {
+	t.Helper()
+	b, err := alert.Encode(alert.NewFault("clip", uint64(f), replayEpoch(), kind, active, ""))
+	require.NoError(t, err)
+	return replayLine{Subject: "stillwater.clip.fault", Frame: f, Media: float64(f) / 10, Msg: b}
+}
+
+func TestScoreFaults(t *testing.T) {
+	// A 30 s clip at 10 fps, nobody in the water, the picture frozen from
+	// 10 to 20 s and black from 24 to 27 s. Worked by hand:
+	//   5.0 s camera_lost: not a picture fault, ignored
+	//  12.3 s camera_frozen raised during the frozen fault: raised, 2.3 s
+	//  13.0 s a target starts: false alarm, and a target during a fault
+	//  22.6 s camera_frozen cleared: ignored
+	//  25.5 s camera_noise raised during the black fault: the wrong kind,
+	//         a fault raised with none of its kind labelled (1)
+	//  28.0 s camera_blinded raised after the black fault ended (2)
+	// The black fault never raised camera_blinded while it was on.
+	truth := synth.Truth{Format: synth.LabelFormat, FPS: 10, Frames: 300,
+		Faults: []synth.Fault{{Kind: synth.FaultFrozen, From: 10, To: 20}, {Kind: synth.FaultBlack, From: 24, To: 27}}}
+	lines := func(t *testing.T) []replayLine {
+		return []replayLine{
+			faultLine(t, 50, alert.FaultCameraLost, true),
+			faultLine(t, 123, alert.FaultCameraFrozen, true),
+			targetLine(t, 130, 1, "start", 2, 1),
+			faultLine(t, 226, alert.FaultCameraFrozen, false),
+			faultLine(t, 255, alert.FaultCameraNoise, true),
+			faultLine(t, 280, alert.FaultCameraBlinded, true),
+		}
+	}
+	got, err := scoreClip("c", lines(t), truth, defaultScoreRules())
+	require.NoError(t, err)
+	assert.Equal(t, 2, got.FaultsLabelled)
+	assert.Equal(t, 1, got.FaultsRaised)
+	assert.InDeltaSlice(t, []float64{2.3}, got.FaultDelays, 1e-9)
+	assert.Equal(t, 2, got.FalseFaults)
+	assert.Equal(t, 1, got.FaultTargets)
+	assert.Equal(t, 1, got.False)
+
+	tot := totalOf([]clipScore{got})
+	none := scoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1, MaxFaultDelay: -1, MaxFalseFaults: -1, MaxFaultTargets: -1}
+	assert.Empty(t, none.check(tot))
+	lim := none
+	lim.MaxFaultDelay = 3 * time.Second
+	assert.Equal(t, []string{"1 of 2 labelled picture faults never raised their fault"}, lim.check(tot))
+	lim.MaxFaultDelay = 2 * time.Second
+	assert.Len(t, lim.check(tot), 2, "and 2.3 s is late")
+	lim = none
+	lim.MaxFalseFaults, lim.MaxFaultTargets = 0, 0
+	assert.Equal(t, []string{"2 picture faults raised with none labelled exceed 0", "1 targets raised during a picture fault exceed 0"}, lim.check(tot))
+
+	var sb strings.Builder
+	writeScores(&sb, []clipScore{got})
+	assert.Contains(t, sb.String(), "picture faults: 1 of 2 raised, delay median 2.30 s, worst 2.30 s; 2 raised with none labelled; 1 targets while a fault was on")
+
+	truth.Faults = []synth.Fault{{Kind: "smoke", From: 1, To: 2}}
+	_, err = scoreClip("c", nil, truth, defaultScoreRules())
+	assert.ErrorContains(t, err, `labelled fault "smoke"`)
+}

@@ -219,7 +219,7 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 		// The pool is still watched; only the camera-moved check is off.
 		w.log.Error("camera-moved check off", "err", err)
 	}
-	st := &captureState{proc: proc, drift: drift, health: vision.NewHealthMonitor(vision.HealthConfig{})}
+	st := &captureState{proc: proc, drift: drift, health: newPictureFaults(vision.HealthConfig{})}
 	// A reload swaps st.drift (closing the one it replaces): close the
 	// one held at the end.
 	defer func() { st.drift.Close() }()
@@ -288,17 +288,9 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 type captureState struct {
 	proc   *processor
 	drift  *driftChecker
-	health *vision.HealthMonitor
+	health *pictureFaults
 	stats  vision.CaptureStats
 	hold   []image.Rectangle
-}
-
-// healthFaults maps the picture conditions to fault kinds.
-var healthFaults = map[vision.Condition]string{
-	vision.CondDark:    alert.FaultCameraBlinded,
-	vision.CondUniform: alert.FaultCameraBlinded,
-	vision.CondFrozen:  alert.FaultCameraFrozen,
-	vision.CondNoise:   alert.FaultCameraNoise,
 }
 
 // frames processes frames until the source fails or ends.
@@ -339,7 +331,9 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			r.Media = w.now().Sub(w.epoch)
 		}
 		armed := w.armed(w.now())
-		w.checkHealth(ctx, r.Media, st.health.Observe(r.Media, r.Health), armed)
+		for _, f := range st.health.observe(r.Media, r.Health, armed) {
+			w.raise(ctx, f.Kind, f.Active, f.Detail)
+		}
 		switch r.Rejoined {
 		case "":
 		case vision.RejoinForced:
@@ -401,20 +395,6 @@ func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
 		}
 		w.log.Info("calibration, zones, gating and alarm timing reloaded; the detector's water outline and model settings change at the next restart")
 	default:
-	}
-}
-
-// checkHealth turns picture conditions into faults while armed; a
-// condition that clears clears its fault whether armed or not.
-func (w *cameraWatch) checkHealth(ctx context.Context, media time.Duration, rep vision.HealthReport, armed bool) {
-	want := healthFaults[rep.Condition]
-	for _, kind := range []string{alert.FaultCameraBlinded, alert.FaultCameraFrozen, alert.FaultCameraNoise} {
-		switch {
-		case kind == want && armed:
-			w.raise(ctx, kind, true, fmt.Sprintf("picture %s for %.1f s", rep.Condition, (media-rep.Since).Seconds()))
-		case kind != want:
-			w.raise(ctx, kind, false, "")
-		}
 	}
 }
 
