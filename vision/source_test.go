@@ -3,6 +3,7 @@ package vision
 import (
 	"bufio"
 	"errors"
+	"fmt"
 	"io"
 	"net"
 	"net/http"
@@ -16,6 +17,7 @@ import (
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+	"golang.org/x/sync/errgroup"
 
 	"stillwater/vision/rtsptest"
 )
@@ -312,4 +314,31 @@ func TestEnvLease(t *testing.T) {
 	r2()
 	require.NoError(t, <-got)
 	assert.Equal(t, "b", os.Getenv(name))
+}
+
+// TestOpenGateFreeOnceAnOpenReturns: an open that returned in time leaves
+// the gate free at once, so a reconnect right after it is not refused as
+// stuck. (The gate used to be marked free by the open's goroutine only
+// after it had handed over the result, and a reconnect could slip in
+// between: "blocked for 0s".)
+func TestOpenGateFreeOnceAnOpenReturns(t *testing.T) {
+	failed := errors.New("no such source")
+	// Several gates at once, so that the scheduler moves goroutines
+	// between threads and the window, if there is one, opens.
+	var g errgroup.Group
+	for k := 0; k < 8; k++ {
+		g.Go(func() error {
+			gate := &OpenGate{}
+			for i := 0; i < 20000; i++ {
+				if r := gate.run(time.Minute, func() openResult { return openResult{err: failed} }); !errors.Is(r.err, failed) {
+					return fmt.Errorf("open %d: %v", i, r.err)
+				}
+				if stuck, _ := gate.Stuck(); stuck {
+					return fmt.Errorf("open %d returned, yet the gate is busy", i)
+				}
+			}
+			return nil
+		})
+	}
+	require.NoError(t, g.Wait())
 }
