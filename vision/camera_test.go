@@ -147,6 +147,9 @@ func TestHTTPMJPEGSource(t *testing.T) {
 // TestRTSPDropAndReconnect runs a live RTSP stream (rtsp-server-perl relay,
 // ffmpeg pusher), kills the pusher and brings it back.
 func TestRTSPDropAndReconnect(t *testing.T) {
+	if testing.Short() {
+		t.Skip("runs a live RTSP relay")
+	}
 	clip := smallClip(t, 4)
 	srv := rtsptest.Start(t, clip, "pool")
 	const readTimeout = 2 * time.Second

@@ -1,13 +1,11 @@
 package vision
 
 import (
-	"context"
 	"fmt"
 	"image"
 	"io"
 	"math"
 	"os"
-	"path/filepath"
 	"regexp"
 	"strconv"
 	"strings"
@@ -98,10 +96,7 @@ func cornerShift(t *testing.T, res DriftResult, corners []Point) float64 {
 // the corner shifts in pixels.
 func driftRun(t *testing.T, s synth.Scene, every float64) ([]float64, []float64) {
 	t.Helper()
-	dir := t.TempDir()
-	clip := filepath.Join(dir, "c.avi")
-	truth, err := synth.Render(context.Background(), s, clip, "")
-	require.NoError(t, err)
+	clip, truth := cachedClip(t, s)
 	var corners []Point
 	for _, c := range truth.Corners {
 		corners = append(corners, Point{c.Pixel[0], c.Pixel[1]})
@@ -169,10 +164,20 @@ func TestDriftPanAndStill(t *testing.T) {
 		{"night", night, false},
 		{"corner camera with a child", corner, false},
 	}
+	every := 2.0
+	if testing.Short() {
+		// The pan alone, a 5 s clip panned at 2 s, checked every second.
+		cases = cases[:1]
+		cases[0].name, cases[0].s.PanAt = "pan 3 degrees at 2 s", 2
+		every = 1
+	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
 			tc.s.Duration = 16
-			ts, shifts := driftRun(t, tc.s, 2)
+			if testing.Short() {
+				tc.s.Duration = 5
+			}
+			ts, shifts := driftRun(t, tc.s, every)
 			var b strings.Builder
 			for i := range ts {
 				fmt.Fprintf(&b, " %.0fs:%.1f", ts[i], shifts[i])

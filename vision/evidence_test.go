@@ -1,7 +1,6 @@
 package vision
 
 import (
-	"context"
 	"errors"
 	"image"
 	"io"
@@ -22,9 +21,7 @@ func smallClip(t testing.TB, seconds float64) string {
 	t.Helper()
 	s := synth.Default()
 	s.Width, s.Height, s.Duration = 320, 240, seconds
-	p := filepath.Join(t.TempDir(), "small.avi")
-	_, err := synth.Render(context.Background(), s, p, "")
-	require.NoError(t, err)
+	p, _ := cachedClip(t, s)
 	return p
 }
 

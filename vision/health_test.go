@@ -1,7 +1,6 @@
 package vision
 
 import (
-	"context"
 	"encoding/json"
 	"errors"
 	"fmt"
@@ -26,11 +25,17 @@ import (
 // normalScenes are the named synthetic scenes at the generator's default
 // seed: every one is a working camera. still-child is cut to 20 s, which
 // covers its entry; its last five minutes are the same still picture.
+// With -short each is cut to 8 s (the cloud has dimmed the water by then).
+// The health and settling tests share them through the render cache.
 func normalScenes() map[string]synth.Scene {
 	m := synth.Scenarios(synth.Default().Seed)
-	s := m["still-child"]
-	s.Duration = 20
-	m["still-child"] = s
+	for n, s := range m {
+		s.Duration = min(s.Duration, 20)
+		if testing.Short() {
+			s.Duration = min(s.Duration, 8)
+		}
+		m[n] = s
+	}
 	return m
 }
 
@@ -121,20 +126,20 @@ func TestHealthQuietOnWorkingCameras(t *testing.T) {
 	}
 	clips := map[string]clip{}
 	for _, n := range names {
-		p := filepath.Join(dir, n+".avi")
-		tr, err := synth.Render(context.Background(), scenes[n], p, "")
-		require.NoError(t, err, n)
+		p, tr := cachedClip(t, scenes[n])
 		clips[n] = clip{p, truthMask(tr)}
 	}
-	for _, dn := range []struct {
+	denoised := []struct {
 		name  string
 		night bool
-	}{{"calm-denoised-h264", false}, {"calm-night-denoised-h264", true}} {
+	}{{"calm-denoised-h264", false}, {"calm-night-denoised-h264", true}}
+	if testing.Short() {
+		denoised = nil // ffmpeg re-encodes 20 s clips
+	}
+	for _, dn := range denoised {
 		s := synth.Scenarios(synth.Default().Seed)["calm"]
 		s.Night = dn.night
-		raw := filepath.Join(dir, dn.name+".avi")
-		tr, err := synth.Render(context.Background(), s, raw, "")
-		require.NoError(t, err, dn.name)
+		raw, tr := cachedClip(t, s)
 		p := filepath.Join(dir, dn.name+".mp4")
 		ffmpeg(t, "-i", raw, "-vf", "hqdn3d=4:4:20:20", "-c:v", "libx264", "-b:v", "1M", "-maxrate", "1M", "-bufsize", "1M", "-g", "20", "-pix_fmt", "yuv420p", p)
 		names = append(names, dn.name)
@@ -274,9 +279,7 @@ func TestHealthReportsFaults(t *testing.T) {
 	dir := t.TempDir()
 	s := synth.Default()
 	s.Duration = 7
-	src := filepath.Join(dir, "scene.avi")
-	_, err := synth.Render(context.Background(), s, src, "")
-	require.NoError(t, err)
+	src, _ := cachedClip(t, s)
 	frames := readFrames(t, src)
 	defer closeAll(frames)
 	require.Len(t, frames, 70)
@@ -345,9 +348,7 @@ func TestMJPGRepeatsDecodeIdentical(t *testing.T) {
 	dir := t.TempDir()
 	s := synth.Default()
 	s.Duration = 0.5
-	src := filepath.Join(dir, "scene.avi")
-	_, err := synth.Render(context.Background(), s, src, "")
-	require.NoError(t, err)
+	src, _ := cachedClip(t, s)
 	frames := readFrames(t, src)
 	defer closeAll(frames)
 	require.NotEmpty(t, frames)

@@ -1,7 +1,6 @@
 package vision
 
 import (
-	"context"
 	"image"
 	"image/color"
 	"math"
@@ -26,9 +25,7 @@ func TestGrabFrame(t *testing.T) {
 	dir := t.TempDir()
 	s := synth.Default()
 	s.Duration = 0.3
-	clip := filepath.Join(dir, "c.avi")
-	_, err := synth.Render(context.Background(), s, clip, "")
-	require.NoError(t, err)
+	clip, _ := cachedClip(t, s)
 	f, err := GrabFrame(clip, "", 0)
 	require.NoError(t, err)
 	assert.Equal(t, image.Pt(640, 480), f.Bounds().Size())

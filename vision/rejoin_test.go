@@ -1,7 +1,6 @@
 package vision
 
 import (
-	"context"
 	"image"
 	"os"
 	"os/exec"
@@ -71,10 +70,10 @@ func repeat(p probeStats, n int) []probeStats {
 // midGOPClip renders the empty synthetic pool and re-encodes it with
 // FFmpeg's MPEG-4 encoder, a key frame every 20 frames, once whole and once
 // with its first key frame dropped (the noise bitstream filter), which is
-// what a decoder that joins a live stream between key frames receives, and
-// once more in H.264 with its first key frame dropped. It returns the three
-// paths and the scene's pool corners in pixels.
-func midGOPClip(t *testing.T) (whole, joined, joinedH264 string, pool []Point) {
+// what a decoder that joins a live stream between key frames receives, and,
+// with h264, once more in H.264 with its first key frame dropped. It
+// returns the paths and the scene's pool corners in pixels.
+func midGOPClip(t *testing.T, h264 bool) (whole, joined, joinedH264 string, pool []Point) {
 	t.Helper()
 	if _, err := exec.LookPath("ffmpeg"); err != nil {
 		t.Fatalf("ffmpeg not found (run deploy/setup): %v", err)
@@ -82,9 +81,7 @@ func midGOPClip(t *testing.T) (whole, joined, joinedH264 string, pool []Point) {
 	dir := t.TempDir()
 	s := synth.Scenarios(synth.Default().Seed)["empty"]
 	s.Duration = 8
-	src := filepath.Join(dir, "empty.avi")
-	truth, err := synth.Render(context.Background(), s, src, "")
-	require.NoError(t, err)
+	src, truth := cachedClip(t, s)
 	for _, c := range truth.Corners {
 		pool = append(pool, Point{c.Pixel[0], c.Pixel[1]})
 	}
@@ -94,12 +91,15 @@ func midGOPClip(t *testing.T) (whole, joined, joinedH264 string, pool []Point) {
 		out, err := exec.Command("ffmpeg", append(args, path)...).CombinedOutput()
 		require.NoError(t, err, "ffmpeg: %s", out)
 	}
+	if !h264 {
+		return whole, joined, "", pool
+	}
 	// The same with H.264, which most IP cameras send.
-	h264 := filepath.Join(dir, "joined-h264.mkv")
+	joinedH264 = filepath.Join(dir, "joined-h264.mkv")
 	args := append([]string{"-nostdin", "-loglevel", "error", "-y", "-i", src, "-c:v", "libx264", "-g", "20", "-bf", "0"}, dropFirst...)
-	out, err := exec.Command("ffmpeg", append(args, h264)...).CombinedOutput()
+	out, err := exec.Command("ffmpeg", append(args, joinedH264)...).CombinedOutput()
 	require.NoError(t, err, "ffmpeg: %s", out)
-	return whole, joined, h264, pool
+	return whole, joined, joinedH264, pool
 }
 
 // dropFirst makes FFmpeg drop the first packet it writes: the key frame.
@@ -110,7 +110,10 @@ var dropFirst = []string{"-bsf:v", "noise=drop=eq(n\\,0)"}
 // largely the decoder's fill grey until the next key frame, whole frames of
 // the pool have none of it, and H.264 decoding skips to the next key frame.
 func TestDecoderFillIsRecognised(t *testing.T) {
-	whole, joined, h264, pool := midGOPClip(t)
+	if testing.Short() {
+		t.Skip("encodes three clips with ffmpeg to check FFmpeg's own decoders")
+	}
+	whole, joined, h264, pool := midGOPClip(t, true)
 	fills := func(path string) []float64 {
 		var out []float64
 		probeClip(t, path, pool, func(_ int, _ float64, p probeStats) { out = append(out, p.Fill) })
@@ -150,7 +153,7 @@ func TestDecoderFillIsRecognised(t *testing.T) {
 // test) the grey frames were a scene change and 446 blobs of real water
 // followed in the 79 frames.
 func TestReconnectMidGOPRaisesNothing(t *testing.T) {
-	whole, joined, _, pool := midGOPClip(t)
+	whole, joined, _, pool := midGOPClip(t, false)
 	live := filepath.Join(filepath.Dir(whole), "live.avi")
 	require.NoError(t, os.Link(whole, live))
 	cam, err := OpenCamera(SourceConfig{URI: live}, DetectorConfig{Mask: pool, LearningRate: -1, MinPixels: 6})
@@ -202,20 +205,20 @@ func maxOf(v []float64) float64 {
 // asserted; vtest.avi (a grey street, not a pool) and tree.avi are only
 // reported.
 func TestWorkingCamerasSettle(t *testing.T) {
-	dir := t.TempDir()
 	scenes := normalScenes()
 	names := make([]string, 0, len(scenes))
 	for n := range scenes {
+		// -short keeps the scenes nearest a fault, as the health test
+		// does.
+		if testing.Short() && n != "night" && n != "cloud" {
+			continue
+		}
 		names = append(names, n)
 	}
 	sort.Strings(names)
 	for _, n := range names {
 		t.Run(n, func(t *testing.T) {
-			s := scenes[n]
-			s.Duration = min(s.Duration, 12)
-			p := filepath.Join(dir, n+".avi")
-			truth, err := synth.Render(context.Background(), s, p, "")
-			require.NoError(t, err)
+			p, truth := cachedClip(t, scenes[n])
 			var pool []Point
 			for _, c := range truth.Corners {
 				pool = append(pool, Point{c.Pixel[0], c.Pixel[1]})

@@ -103,6 +103,10 @@ func (g *OpenGate) run(wait time.Duration, open func() openResult) openResult {
 	defer t.Stop()
 	select {
 	case r := <-res:
+		// The goroutine marks the gate free just after handing r over:
+		// wait for that, or an open right after this one (a reconnect)
+		// would be refused as stuck.
+		<-done
 		return r
 	case <-t.C:
 		go func() { (<-res).close() }()

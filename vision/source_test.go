@@ -3,6 +3,7 @@ package vision
 import (
 	"bufio"
 	"errors"
+	"fmt"
 	"io"
 	"net"
 	"net/http"
@@ -16,6 +17,7 @@ import (
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+	"golang.org/x/sync/errgroup"
 
 	"stillwater/vision/rtsptest"
 )
@@ -234,10 +236,14 @@ func TestOpenDoesNotWaitForABlockedBackend(t *testing.T) {
 	assert.Less(t, took, 4*time.Second)
 	stuck, _ := gate.Stuck()
 	assert.True(t, stuck)
+	// Refused at once: with a minute to open, a second open that waited
+	// at all would wait for that minute and end in ErrOpenTimeout.
+	patient := sc
+	patient.OpenTimeout, patient.ReadTimeout = time.Minute, time.Minute
 	t1 := time.Now()
-	_, err = OpenCamera(sc, DetectorConfig{ProcessWidth: 160})
+	_, err = OpenCamera(patient, DetectorConfig{ProcessWidth: 160})
 	require.ErrorIs(t, err, ErrOpenStuck)
-	assert.Less(t, time.Since(t1), 100*time.Millisecond, "the second open waited")
+	assert.Less(t, time.Since(t1), patient.OpenTimeout/2, "the second open waited for its timeout")
 
 	release()
 	require.Eventually(t, func() bool { s, _ := gate.Stuck(); return !s }, 5*time.Second, 10*time.Millisecond)
@@ -308,4 +314,31 @@ func TestEnvLease(t *testing.T) {
 	r2()
 	require.NoError(t, <-got)
 	assert.Equal(t, "b", os.Getenv(name))
+}
+
+// TestOpenGateFreeOnceAnOpenReturns: an open that returned in time leaves
+// the gate free at once, so a reconnect right after it is not refused as
+// stuck. (The gate used to be marked free by the open's goroutine only
+// after it had handed over the result, and a reconnect could slip in
+// between: "blocked for 0s".)
+func TestOpenGateFreeOnceAnOpenReturns(t *testing.T) {
+	failed := errors.New("no such source")
+	// Several gates at once, so that the scheduler moves goroutines
+	// between threads and the window, if there is one, opens.
+	var g errgroup.Group
+	for k := 0; k < 8; k++ {
+		g.Go(func() error {
+			gate := &OpenGate{}
+			for i := 0; i < 20000; i++ {
+				if r := gate.run(time.Minute, func() openResult { return openResult{err: failed} }); !errors.Is(r.err, failed) {
+					return fmt.Errorf("open %d: %v", i, r.err)
+				}
+				if stuck, _ := gate.Stuck(); stuck {
+					return fmt.Errorf("open %d returned, yet the gate is busy", i)
+				}
+			}
+			return nil
+		})
+	}
+	require.NoError(t, g.Wait())
 }

@@ -113,6 +113,10 @@ func queueWhileDown(t *testing.T, dir, prefix string, n int) []string {
 // still be delivered at once, and the old ones end in the dead-letter file
 // after DeadLetterTries tries.
 func TestPoisonedHeadDoesNotBlock(t *testing.T) {
+	// Each try of an old message waits for its acknowledgement that never
+	// comes; a shorter wait than the 2 s default keeps the test quick and
+	// leaves a fresh target a loaded machine's worth of time.
+	const pokeAck = 500 * time.Millisecond
 	cases := []struct {
 		name   string
 		users  bool
@@ -140,7 +144,7 @@ func TestPoisonedHeadDoesNotBlock(t *testing.T) {
 				url = strings.Replace(url, "nats://", "nats://daemon:d-pass@", 1)
 			}
 			acks := newAckLog()
-			p, err := NewPublisherWith(context.Background(), connect(t, emb.URL(), auth...), PublisherConfig{Prefix: "sw", Outbox: OutboxConfig{Dir: dir}, OnResult: acks.result})
+			p, err := NewPublisherWith(context.Background(), connect(t, emb.URL(), auth...), PublisherConfig{Prefix: "sw", Outbox: OutboxConfig{Dir: dir}, OnResult: acks.result, AckTimeout: pokeAck})
 			require.NoError(t, err)
 			defer p.Close()
 			require.Equal(t, 3, p.Stats().Depth)

@@ -3,7 +3,6 @@ package main
 import (
 	"stillwater/vision/refdata"
 
-	"context"
 	"image"
 	"image/png"
 	"io"
@@ -13,6 +12,7 @@ import (
 	"sort"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
@@ -399,14 +399,19 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 		require.True(t, ok, name)
 		cases = append(cases, tcase{"scenario " + name, s, 0})
 	}
+	duration, every := 16.0, Duration(0) // the default period
+	if testing.Short() {
+		// The pan alone, at 2 s of a 5 s clip, checked every second.
+		cases = cases[:1]
+		cases[0].name, cases[0].s.PanAt, cases[0].panAt = "pan 3 degrees at 2 s", 2, 2
+		duration, every = 5, Duration(time.Second)
+	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
 			dir := t.TempDir()
 			s := tc.s
-			s.Duration = 16
-			clip := filepath.Join(dir, "c.avi")
-			truth, err := synth.Render(context.Background(), s, clip, "")
-			require.NoError(t, err)
+			s.Duration = duration
+			truth, clip := cachedClip(t, s)
 			first, err := vision.GrabFrame(clip, "", 0)
 			require.NoError(t, err)
 			ref := filepath.Join(dir, "ref.png")
@@ -414,6 +419,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 			cam := CameraConfig{ID: "t", Source: clip, CalibrationConfig: CalibrationConfig{
 				// No frame_px: the corner camera's corner A lies below the frame.
 				Pool: PoolConfig{Length: truth.Pool.Length, Width: truth.Pool.Width}, ReferenceFrame: ref,
+				Drift: DriftConfig{Every: every},
 			}}
 			for _, c := range truth.Corners {
 				cam.Corners = append(cam.Corners, [2]float64{math.Round(c.Pixel[0]), math.Round(c.Pixel[1])})
@@ -428,7 +434,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 			require.NoError(t, err)
 			defer vc.Close()
 			firstMoved := -1.0
-			worstStill := 0.0
+			worstStill, stillChecks := 0.0, 0
 			for {
 				r, err := vc.Next(nil)
 				if err == io.EOF {
@@ -443,6 +449,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 				at := r.Media.Seconds()
 				if tc.panAt == 0 || at < tc.panAt {
 					worstStill = math.Max(worstStill, st.ShiftM)
+					stillChecks++
 					assert.False(t, st.Moved, "at %.1f s: shift %.3f m", at, st.ShiftM)
 				} else if st.Moved && firstMoved < 0 {
 					firstMoved = at
@@ -450,6 +457,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 				}
 			}
 			refdata.Report(t, "largest shift while still: %.3f m (threshold %.2f m)", worstStill, defaultDriftMaxShift)
+			require.GreaterOrEqual(t, stillChecks, 2, "comparisons while the camera was still")
 			if tc.panAt > 0 {
 				require.GreaterOrEqual(t, firstMoved, tc.panAt, "pan never reported")
 				assert.LessOrEqual(t, firstMoved-tc.panAt, 10.0, "delay, s")
@@ -466,13 +474,13 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 // position, which the renderer displaced by its own Snell's-law geometry
 // before drawing (synth.Scene.Apparent).
 func TestRefractionOnRenderedFrames(t *testing.T) {
-	dir := t.TempDir()
+	if testing.Short() {
+		t.Skip("renders a 12 s clip")
+	}
 	s := synth.Default()
 	s.Duration, s.Ripple, s.Glints = 12, 0.2, 0
 	s.Intruders = []synth.Child{{Enter: 2, Path: []synth.Waypoint{{T: 2, X: 2.5, Y: 1.2}, {T: 12, X: 6.5, Y: 2.8}}, AgeMonths: 24, Lying: true, Contrast: 0.8, Depth: 1.2}}
-	clip := filepath.Join(dir, "c.avi")
-	truth, err := synth.Render(context.Background(), s, clip, "")
-	require.NoError(t, err)
+	truth, clip := cachedClip(t, s)
 	cfg := CalibrationConfig{Pool: PoolConfig{Length: 8, Width: 4}, Frame: [2]int{640, 480}, Lens: &LensConfig{HFOVDeg: 70}, Water: WaterConfig{Depth: 1.2}}
 	for _, c := range truth.Corners {
 		cfg.Corners = append(cfg.Corners, [2]float64{math.Round(c.Pixel[0]), math.Round(c.Pixel[1])})

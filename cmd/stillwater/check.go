@@ -189,13 +189,17 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	}
 	fmt.Fprintln(w)
 	fmt.Fprintln(w, "bus:")
-	if cfg.Bus.URL == "" {
+	if cfg.Bus.embedded() {
 		fmt.Fprintf(w, "  embedded NATS server on %s, JetStream store in %s/jetstream\n", cfg.Bus.Listen, cfg.DataDir)
 		if cfg.Bus.MQTT != "" {
 			fmt.Fprintf(w, "  MQTT listener on %s (topics %s/CAMERA/KIND)\n", cfg.Bus.MQTT, cfg.Bus.Prefix)
 		}
 	} else {
-		fmt.Fprintf(w, "  external NATS %s\n", vision.Redact(cfg.Bus.URL))
+		var servers []string
+		for _, u := range strings.Split(cfg.Bus.serverURLs(), ",") {
+			servers = append(servers, vision.Redact(u))
+		}
+		fmt.Fprintf(w, "  external NATS %s\n", strings.Join(servers, ", "))
 	}
 	if names := cfg.Bus.consumers(); len(names) > 0 {
 		fmt.Fprintf(w, "  durable consumers kept for %s (each binds the one named after it)\n", strings.Join(names, ", "))

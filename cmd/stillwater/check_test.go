@@ -51,6 +51,8 @@ func TestCheckGolden(t *testing.T) {
 		{config: "testdata/check/missing-source.yaml", wantErr: true, mention: []string{"cameras[0] (pool).source", "no-such-clip.mp4", "does not exist"}},
 		{config: "testdata/check/data-dir-file.yaml", ownDataDir: true, wantErr: true, mention: []string{"data_dir", "not a directory"}},
 		{config: "testdata/check/crossed-corners.yaml", mention: []string{"C and D", "crossed"}},
+		// Servers named by bus.urls alone: an external bus, no embedded one.
+		{config: "testdata/check/bus-urls.yaml", mention: []string{"external NATS", "nats-2.example"}},
 	}
 	for _, tt := range tests {
 		name := strings.TrimSuffix(filepath.Base(tt.config), ".yaml")

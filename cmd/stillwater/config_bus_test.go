@@ -278,6 +278,12 @@ func TestNATSControlRecordsBusUser(t *testing.T) {
 	defer func() { cancel(); require.NoError(t, <-done) }()
 	_, err = armed.NextMsg(5 * time.Second) // the start-up state
 	require.NoError(t, err)
+	// Run subscribes the control service beside the arming loop, so the
+	// start-up state can arrive before anyone answers control requests.
+	require.Eventually(t, func() bool {
+		_, err := alice.Request("sw.control.alice.status", nil, time.Second)
+		return err == nil
+	}, 10*time.Second, 20*time.Millisecond, "control never answered")
 
 	assert.Equal(t, "nats:alice", override(request(alice, "sw.control.alice.disarm", `{"for":"1h","by":"bob"}`)),
 		"the author is the bus user the subject belongs to, not the body's by")

@@ -15,6 +15,7 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
+	"github.com/prometheus/client_golang/prometheus"
 
 	"stillwater/alert"
 	"stillwater/vision/synth"
@@ -98,13 +99,21 @@ func (r demoResult) print(w io.Writer) {
 // demo renders the scene into dir, runs serve over it with an embedded bus
 // and collects what a subscriber receives.
 func demo(ctx context.Context, s synth.Scene, dir string, realtime bool, log *slog.Logger, out io.Writer) (demoResult, error) {
-	res := demoResult{Entry: math.NaN(), FirstAlert: math.NaN()}
 	clip := filepath.Join(dir, "demo.avi")
 	fmt.Fprintf(out, "rendering a %.0f s synthetic clip to %s ...\n", s.Duration, clip)
 	truth, err := synth.Render(ctx, s, clip, filepath.Join(dir, "demo.json"))
 	if err != nil {
-		return res, err
+		return demoResult{Entry: math.NaN(), FirstAlert: math.NaN()}, err
 	}
+	return demoClip(ctx, truth, clip, dir, realtime, log, out)
+}
+
+// demoClip runs serve over a rendered clip (its labels in truth), with the
+// daemon's data in dir, and collects what a subscriber receives. Frames is
+// what the daemon counted as processed, not the clip's length.
+func demoClip(ctx context.Context, truth synth.Truth, clip, dir string, realtime bool, log *slog.Logger, out io.Writer) (demoResult, error) {
+	res := demoResult{Entry: math.NaN(), FirstAlert: math.NaN()}
+	var err error
 	if len(truth.Presence) > 0 {
 		res.Entry = truth.Presence[0].From
 	}
@@ -157,7 +166,8 @@ func demo(ctx context.Context, s synth.Scene, dir string, realtime bool, log *sl
 		})
 	}
 	start := time.Now()
-	err = serve(ctx, cfg, deps{Log: log, Ready: ready})
+	reg := prometheus.NewRegistry()
+	err = serve(ctx, cfg, deps{Log: log, Ready: ready, Registry: reg})
 	res.Elapsed = time.Since(start)
 	if nc != nil {
 		nc.Flush()
@@ -170,7 +180,9 @@ func demo(ctx context.Context, s synth.Scene, dir string, realtime bool, log *sl
 	if err != nil {
 		return res, err
 	}
-	res.Frames = truth.Frames
+	if res.Frames, err = framesProcessed(reg, cfg.Cameras[0].ID); err != nil {
+		return res, err
+	}
 	mu.Lock()
 	defer mu.Unlock()
 	for _, t := range res.Targets {
@@ -209,4 +221,26 @@ func demoConfig(t synth.Truth, clip, dir string, realtime bool) Config {
 	}
 	cfg.Cameras = []CameraConfig{cam}
 	return cfg
+}
+
+// framesProcessed reads stillwater_frames_processed_total of a camera from
+// the daemon's registry.
+func framesProcessed(reg prometheus.Gatherer, camera string) (int, error) {
+	mfs, err := reg.Gather()
+	if err != nil {
+		return 0, fmt.Errorf("gather metrics: %w", err)
+	}
+	for _, mf := range mfs {
+		if mf.GetName() != "stillwater_frames_processed_total" {
+			continue
+		}
+		for _, m := range mf.GetMetric() {
+			for _, l := range m.GetLabel() {
+				if l.GetName() == "camera" && l.GetValue() == camera {
+					return int(m.GetCounter().GetValue()), nil
+				}
+			}
+		}
+	}
+	return 0, nil
 }

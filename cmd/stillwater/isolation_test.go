@@ -242,7 +242,9 @@ func TestHangingSourcesDoNotHoldUpAHealthyCamera(t *testing.T) {
 	tg, at := firstStart(t, bl, "demo", 30*time.Second)
 	delay := at.Sub(tg.Time)
 	for _, id := range []string{"silent", "pipe"} {
-		for _, m := range bl.bySubject("stillwater." + id + ".heartbeat") {
+		beats := bl.bySubject("stillwater." + id + ".heartbeat")
+		require.NotEmpty(t, beats, "camera %s sent no heartbeat (one a second)", id)
+		for _, m := range beats {
 			var hb alert.Heartbeat
 			require.NoError(t, json.Unmarshal(m.Data, &hb))
 			assert.False(t, hb.CameraOK, "camera %s delivered no frame yet heartbeats camera_ok=true", id)

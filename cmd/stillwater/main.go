@@ -9,6 +9,7 @@ import (
 	"io"
 	"os"
 	"os/signal"
+	"strings"
 	"syscall"
 )
 
@@ -16,13 +17,20 @@ func main() {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	err := run(ctx, os.Args[1:], os.Stdout, os.Stderr)
 	stop()
-	if err != nil {
-		fmt.Fprintln(os.Stderr, "stillwater:", err)
-		if errors.Is(err, errUsage) {
-			os.Exit(2)
-		}
-		os.Exit(1)
+	os.Exit(exitCode(err, os.Stderr))
+}
+
+// exitCode prints err, if any, and returns the process's exit status: 0
+// without an error, 2 for a usage error, 1 for any other.
+func exitCode(err error, stderr io.Writer) int {
+	if err == nil {
+		return 0
 	}
+	fmt.Fprintln(stderr, "stillwater:", err)
+	if errors.Is(err, errUsage) {
+		return 2
+	}
+	return 1
 }
 
 var errUsage = errors.New("usage")
@@ -48,6 +56,45 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		return errUsage
 	}
 	cmd, rest := args[0], args[1:]
+	err := runCommand(ctx, cmd, rest, stdout, stderr)
+	// A command's flag set prints its flags on -h and then fails to
+	// parse; the commands return the bare errUsage for any parse failure.
+	if err == errUsage && helpAsked(rest) {
+		return nil
+	}
+	return err
+}
+
+// helpAsked reports whether args ask for help the way the flag package
+// reads them: -h, -help, --h or --help among the leading flags, up to "--"
+// or an argument that is neither a flag nor a flag's value. Which flags
+// take a value is the command's business, so a word after a flag counts
+// as its value; run asks only when the command's flags did not parse.
+func helpAsked(args []string) bool {
+	value := false
+	for _, a := range args {
+		if a == "--" {
+			return false
+		}
+		if len(a) < 2 || a[0] != '-' {
+			if !value {
+				return false
+			}
+			value = false
+			continue
+		}
+		name := strings.TrimPrefix(strings.TrimPrefix(a, "-"), "-")
+		name, _, hasValue := strings.Cut(name, "=")
+		if name == "h" || name == "help" {
+			return true
+		}
+		value = !hasValue
+	}
+	return false
+}
+
+// runCommand runs one subcommand.
+func runCommand(ctx context.Context, cmd string, rest []string, stdout, stderr io.Writer) error {
 	switch cmd {
 	case "run":
 		return runDaemon(ctx, rest, stdout, stderr)

@@ -16,24 +16,31 @@ import (
 	"github.com/santhosh-tekuri/jsonschema/v6"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+	"golang.org/x/sync/errgroup"
 
 	"stillwater/alert"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
 
-// renderChild writes a 14 s child clip (entry at 8 s, floating: see
-// floatingChild) and its labels.
+// renderChild returns a 14 s child clip (entry at 8 s, floating: see
+// floatingChild) and its labels
+// from the render cache (see cachedClip); dir is not used.
 func renderChild(t *testing.T, dir string) (clip, labels string, truth synth.Truth) {
 	t.Helper()
-	s, ok := scenarioByName("child", 7)
-	require.True(t, ok)
-	s.Duration = 14
-	floatingChild(&s)
-	clip, labels = filepath.Join(dir, "child.avi"), filepath.Join(dir, "child.json")
-	truth, err := synth.Render(context.Background(), s, clip, labels)
+	cache, err := synth.CacheDir()
+	require.NoError(t, err)
+	clip, labels, truth, err = synth.Cached(context.Background(), childClip(), cache)
 	require.NoError(t, err)
 	return clip, labels, truth
+}
+
+// childClip is the scene renderChild renders.
+func childClip() synth.Scene {
+	s, _ := scenarioByName("child", 7)
+	s.Duration = 14
+	floatingChild(&s)
+	return s
 }
 
 func schemaFor(t *testing.T, kind string) *jsonschema.Schema {
@@ -97,9 +104,7 @@ func TestReplayMatchesDaemon(t *testing.T) {
 		}
 	}
 
-	s, _ := scenarioByName("child", 7)
-	s.Duration = 14
-	res, err := demo(context.Background(), s, t.TempDir(), false, slog.New(slog.NewTextHandler(io.Discard, nil)), io.Discard)
+	res, err := demoClip(context.Background(), truth, clip, t.TempDir(), false, slog.New(slog.NewTextHandler(io.Discard, nil)), io.Discard)
 	require.NoError(t, err)
 	require.Equal(t, len(res.Targets), len(replayed), "target messages: daemon against replay")
 	for i, d := range res.Targets {
@@ -222,26 +227,36 @@ func TestReplayRealFootage(t *testing.T) {
 	}
 	// The left third of the watched paving is excluded.
 	excl := ZoneConfig{Name: "left", PoolM: [][2]float64{{0, 0}, {3, 0}, {3, 7}, {0, 7}}}
-	run := func(cam CameraConfig) []alert.Target {
+	run := func(cam CameraConfig) ([]alert.Target, error) {
 		var buf bytes.Buffer
-		_, err := replayClip(context.Background(), cam, "stillwater", &buf, slog.New(slog.NewTextHandler(io.Discard, nil)))
-		require.NoError(t, err)
+		if _, err := replayClip(context.Background(), cam, "stillwater", &buf, slog.New(slog.NewTextHandler(io.Discard, nil))); err != nil {
+			return nil, err
+		}
 		lines, err := readReplay(&buf, "vtest")
-		require.NoError(t, err)
+		if err != nil {
+			return nil, err
+		}
 		var out []alert.Target
 		for _, l := range lines {
 			var tg alert.Target
-			require.NoError(t, json.Unmarshal(l.Msg, &tg))
+			if err := json.Unmarshal(l.Msg, &tg); err != nil {
+				return nil, err
+			}
 			if tg.Kind == alert.KindTarget {
 				out = append(out, tg)
 			}
 		}
-		return out
+		return out, nil
 	}
 	inZone := func(tg alert.Target) bool { return tg.Surface.X < 3 }
 
-	all := run(plazaCamera(t))
-	zoned := run(plazaCamera(t, excl))
+	// The two replays are independent: one per core.
+	var all, zoned []alert.Target
+	var g errgroup.Group
+	plain, withZone := plazaCamera(t), plazaCamera(t, excl)
+	g.Go(func() (err error) { all, err = run(plain); return err })
+	g.Go(func() (err error) { zoned, err = run(withZone); return err })
+	require.NoError(t, g.Wait())
 	tracks := func(ts []alert.Target) int {
 		ids := map[int]bool{}
 		for _, tg := range ts {

@@ -33,14 +33,19 @@ func TestEndToEnd(t *testing.T) {
 	}
 	for _, tt := range tests {
 		t.Run(tt.scenario, func(t *testing.T) {
-			s, ok := scenarioByName(tt.scenario, 7)
-			require.True(t, ok)
+			// Two at a time on two cores: a render or a daemon run each
+			// keeps about one core busy. The assertions are on media time.
+			t.Parallel()
+			truth, clip, dir := renderScene(t, tt.scenario, 7, nil)
 			ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
 			defer cancel()
 			log := slog.New(slog.NewTextHandler(io.Discard, nil))
-			res, err := demo(ctx, s, t.TempDir(), false, log, io.Discard)
+			res, err := demoClip(ctx, truth, clip, dir, false, log, io.Discard)
 			require.NoError(t, err)
-			assert.Equal(t, 200, res.Frames)
+			// What the daemon's metrics counted, against the clip's labels:
+			// every frame of the clip went through the pipeline.
+			require.Equal(t, 200, truth.Frames, "the clip's length")
+			assert.Equal(t, truth.Frames, res.Frames, "frames the daemon processed")
 			// A normal scene is no camera fault: not blinded (night is dark
 			// but not black), not frozen, not noise, not moved.
 			assert.Empty(t, res.Faults, "camera fault in a normal scene")

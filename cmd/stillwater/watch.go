@@ -220,8 +220,10 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 		// The pool is still watched; only the camera-moved check is off.
 		w.log.Error("camera-moved check off", "err", err)
 	}
-	defer func() { drift.Close() }()
 	st := &captureState{proc: proc, drift: drift, health: newPictureFaults(vision.HealthConfig{})}
+	// A reload swaps st.drift (closing the one it replaces): close the
+	// one held at the end.
+	defer func() { st.drift.Close() }()
 	for ctx.Err() == nil {
 		err := w.frames(ctx, vc, st)
 		switch {

@@ -16,6 +16,7 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
+	"github.com/prometheus/client_golang/prometheus"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
@@ -67,26 +68,44 @@ func httpGet(t *testing.T, url string) (int, string) {
 	return resp.StatusCode, string(b)
 }
 
-// renderScene renders a named scenario at a seed, after edit (may be nil)
-// has changed it, into a fresh directory, and returns the labels, the
-// clip's path and the directory.
+// renderScene returns a named scenario at a seed, after edit (may be nil)
+// has changed it, rendered once into the shared render cache (see
+// cachedClip), with a fresh directory for the daemon's data.
 func renderScene(t *testing.T, name string, seed int64, edit func(*synth.Scene)) (synth.Truth, string, string) {
 	t.Helper()
-	dir := t.TempDir()
 	s, ok := scenarioByName(name, seed)
 	require.True(t, ok, "scenario %q", name)
 	if edit != nil {
 		edit(&s)
 	}
-	clip := filepath.Join(dir, name+".avi")
-	truth, err := synth.Render(context.Background(), s, clip, filepath.Join(dir, name+".json"))
-	require.NoError(t, err)
-	return truth, clip, dir
+	truth, clip := cachedClip(t, s)
+	return truth, clip, t.TempDir()
+}
+
+// cachedClip renders s once into the git-ignored render cache
+// (synth.CacheDir, keyed by a hash of the scene and the renderer version)
+// and returns its labels and the clip's path. Every test and benchmark
+// that needs the same scene shares the one file; the caller must not
+// write beside it.
+func cachedClip(tb testing.TB, s synth.Scene) (synth.Truth, string) {
+	tb.Helper()
+	dir, err := synth.CacheDir()
+	require.NoError(tb, err)
+	clip, _, truth, err := synth.Cached(context.Background(), s, dir)
+	require.NoError(tb, err)
+	return truth, clip
 }
 
 // startDaemon runs serve on cfg in the background with a subscriber on
 // every subject; stop ends it and waits.
 func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
+	t.Helper()
+	return startDaemonWith(t, cfg, nil)
+}
+
+// startDaemonWith is startDaemon with the daemon's metrics on reg (nil: a
+// registry of its own).
+func startDaemonWith(t *testing.T, cfg Config, reg *prometheus.Registry) (log *busLog, stop func() error) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	log = &busLog{}
@@ -98,8 +117,9 @@ func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
 			w = os.Stderr // a daemon's log for a failing test: STILLWATER_TEST_LOG=1
 		}
 		done <- serve(ctx, cfg, deps{
-			Log:   slog.New(slog.NewTextHandler(w, nil)),
-			Ready: func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },
+			Log:      slog.New(slog.NewTextHandler(w, nil)),
+			Registry: reg,
+			Ready:    func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },
 		})
 	}()
 	var url string
