@@ -37,6 +37,7 @@ type cameraWatch struct {
 	lastFrame atomic.Int64  // unix ns (by now) of the last frame read
 	nframes   atomic.Int64  // frames read since start
 	faults    faultBoard
+	lag       lagWatch // the processing_lag fault (lag.go)
 
 	reload   chan CameraConfig // new calibration, zones, detection for this camera
 	gate     vision.OpenGate   // one open of the source at a time; a hung one is abandoned
@@ -293,9 +294,7 @@ type captureState struct {
 
 // frames processes frames until the source fails or ends.
 func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *captureState) error {
-	fps := vc.FPS()
 	live := strings.Contains(w.cam.Source, "://")
-	paceStart := time.Now()
 	proc := st.proc
 	proc.evidence = w.planEvidence
 	defer func() { proc.evidence = nil; w.pendingEvidence = w.pendingEvidence[:0] }()
@@ -325,8 +324,14 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 		w.nframes.Add(1)
 		w.met.frame()
 		w.met.stage("vision", time.Since(t0))
-		if live {
+		captured := vc.Captured()
+		switch {
+		case live:
 			r.Media = w.now().Sub(w.epoch)
+		case w.cam.Realtime:
+			// As a live camera's: when the frame was due, so that
+			// frame_time says when it was taken.
+			r.Media = captured.Sub(w.epoch)
 		}
 		armed := w.armed(w.now())
 		for _, f := range st.health.observe(r.Media, r.Health, armed) {
@@ -357,12 +362,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			}
 		}
 		w.met.processed(time.Since(t0))
-		if w.cam.Realtime && fps > 0 && !live {
-			due := paceStart.Add(time.Duration(float64(r.Index+1) / fps * float64(time.Second)))
-			if !sleep(ctx, time.Until(due)) {
-				return nil
-			}
-		}
+		w.frameAge(ctx, time.Since(captured), armed)
 	}
 }
 
@@ -421,7 +421,7 @@ func (w *cameraWatch) checkDrift(ctx context.Context, st driftStatus) {
 
 func (w *cameraWatch) sourceConfig() vision.SourceConfig {
 	rt := w.frameTimeout()
-	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop, Gate: &w.gate}
+	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop, Realtime: w.cam.Realtime, Gate: &w.gate}
 }
 
 // sleep waits d or until ctx ends; it reports whether ctx is still live.
