@@ -16,6 +16,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/vision"
+	"stillwater/vision/remux"
 )
 
 // cameraWatch runs one camera: capture with reconnects, the detection
@@ -37,7 +38,8 @@ type cameraWatch struct {
 	lastFrame atomic.Int64  // unix ns (by now) of the last frame read
 	nframes   atomic.Int64  // frames read since start
 	faults    faultBoard
-	lag       lagWatch // the processing_lag fault (lag.go)
+	lag       lagWatch        // the processing_lag fault (lag.go)
+	rec       *remux.Recorder // the main stream's pre-roll, when the camera names one (evidence.go)
 
 	reload   chan CameraConfig // new calibration, zones, detection for this camera
 	gate     vision.OpenGate   // one open of the source at a time; a hung one is abandoned
@@ -56,6 +58,8 @@ func newCameraWatch(cam CameraConfig, out sink, armed func(time.Time) bool, now 
 		evidence: ev, snapReq: make(chan chan snapshot),
 	}
 	w.lastFrame.Store(w.epoch.UnixNano())
+	w.cam = detectionCamera(cam)
+	w.startRecorder()
 	return w
 }
 
@@ -69,6 +73,13 @@ func (w *cameraWatch) run(ctx context.Context) error {
 		defer wg.Done()
 		w.watchdog(ctx)
 	}()
+	if w.rec != nil {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			w.runRecorder(ctx)
+		}()
+	}
 	err := w.capture(ctx)
 	stopped := ctx.Err() == nil
 	cancel()
@@ -274,7 +285,7 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 		if err := os.MkdirAll(w.evidence.dir, 0o750); err != nil {
 			w.log.Error("evidence directory", "err", err)
 		}
-		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll, OnWritten: w.evidenceWritten}); err != nil {
+		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll, OnWritten: w.evidenceWritten, SnapshotsOnly: w.rec != nil}); err != nil {
 			vc.Close()
 			return nil, fmt.Errorf("camera %s: evidence: %w", w.cam.ID, err)
 		}
@@ -378,6 +389,7 @@ func (w *cameraWatch) countStats(vc *vision.Camera, st *captureState) {
 func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
 	select {
 	case c := <-w.reload:
+		c = detectionCamera(c)
 		if err := proc.reload(c); err != nil {
 			w.log.Error("reload refused; keeping the running settings", "err", err)
 			return

@@ -64,8 +64,9 @@ type Config struct {
 	// byte before it is killed and restarted; zero selects 10 s.
 	StallAfter time.Duration
 	// OnState, if set, is called when the recorder starts writing
-	// (up true: the first segment of a child appeared) and when a child
-	// exits (up false, with its error).
+	// (up true: the first data of a child appeared) and whenever a child
+	// exits before Run is stopped (up false, with its error). It must not
+	// call the Recorder.
 	OnState func(up bool, err error)
 }
 
@@ -363,11 +364,10 @@ loop:
 			s.end = now
 		}
 	}
-	wasUp := r.up
 	r.pid, r.up, r.exitAt = 0, false, now
 	r.mu.Unlock()
 	lines.flush()
-	if ctx.Err() == nil && r.cfg.OnState != nil && wasUp {
+	if ctx.Err() == nil && r.cfg.OnState != nil {
 		r.cfg.OnState(false, err)
 	}
 	r.keep(now)
