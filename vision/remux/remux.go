@@ -152,6 +152,11 @@ type Recorder struct {
 
 	cuts   chan cutJob
 	cutsWG sync.WaitGroup
+	// dumpExtra repeats the stream's codec set-up before key frames: a
+	// network stream's comes out of band (RTSP's SDP), so segments after
+	// the first would lack it; a file's is needed for codecs other than
+	// H.264 and H.265, for which the MPEG-TS muxer repeats it itself.
+	dumpExtra bool
 }
 
 // New checks the configuration and makes the ring directory.
@@ -217,8 +222,14 @@ func (r *Recorder) args(first int) []string {
 			a = append(a, "-stream_loop", "-1")
 		}
 	}
-	return append(a, "-i", c.Source,
-		"-map", "0:v:0", "-c", "copy",
+	a = append(a, "-i", c.Source, "-map", "0:v:0", "-c", "copy")
+	if r.dumpExtra {
+		// The decoder's set-up (H.264 SPS and PPS, an MPEG-4 VOL header)
+		// is put before every key frame, so that any run of segments
+		// decodes on its own.
+		a = append(a, "-bsf:v", "dump_extra")
+	}
+	return append(a,
 		"-f", "segment", "-segment_format", "mpegts",
 		"-segment_time", strconv.FormatFloat(c.Segment.Seconds(), 'f', 3, 64),
 		"-segment_start_number", strconv.Itoa(first),
@@ -247,6 +258,7 @@ func (r *Recorder) Run(ctx context.Context) error {
 		return fmt.Errorf("evidence recorder: ffmpeg not found: %w", err)
 	}
 	r.clean()
+	r.dumpExtra = strings.Contains(r.cfg.Source, "://") || !annexBCodec(r.cfg.FFmpeg, r.cfg.Source)
 	r.cutsWG.Add(1)
 	go r.cutter()
 	defer func() {
@@ -633,6 +645,25 @@ func (r *Recorder) cut(j cutJob) (res ClipResult) {
 		res.Err = fmt.Errorf("clip %s: ffmpeg: %v: %s", q.path, err, strings.TrimSpace(string(out)))
 	}
 	return res
+}
+
+// annexBCodec reports whether a file's video is H.264 or H.265 (whose
+// set-up the MPEG-TS muxer repeats itself), asking ffprobe beside ffmpeg;
+// when it cannot tell it says yes.
+func annexBCodec(ffmpeg, file string) bool {
+	probe := "ffprobe"
+	if dir := filepath.Dir(ffmpeg); dir != "." {
+		probe = filepath.Join(dir, "ffprobe")
+	}
+	out, err := exec.Command(probe, "-v", "error", "-select_streams", "v:0", "-show_entries", "stream=codec_name", "-of", "csv=p=0", file).Output()
+	if err != nil {
+		return true
+	}
+	switch strings.TrimSpace(string(out)) {
+	case "h264", "hevc":
+		return true
+	}
+	return false
 }
 
 // redact hides a password in a URL for the log.
