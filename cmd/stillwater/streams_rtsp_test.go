@@ -108,7 +108,7 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 	alarm := first.FrameTime
 	assert.False(t, from.After(alarm.Add(-pre)), "the clip starts %v before the alarm frame, want %v", alarm.Sub(from), pre)
 	assert.False(t, to.Before(alarm.Add(post)), "the clip ends %v after the alarm frame, want %v", to.Sub(alarm), post)
-	assert.GreaterOrEqual(t, p.Duration, (pre + post).Seconds()-0.3, "the clip's own length")
+	assert.GreaterOrEqual(t, p.Duration, (pre+post).Seconds()-0.3, "the clip's own length")
 
 	// The copying ffmpeg dies.
 	pid := childWith(t, ringDir(cfg, "pool"))

@@ -32,7 +32,7 @@ func TestDetectionCameraScales(t *testing.T) {
 		Zones: []ZoneConfig{{Name: "steps", Pixels: [][2]float64{{1300, 900}, {1400, 900}, {1400, 1000}, {1300, 1000}}}},
 	}
 	lenses := map[string]*LensConfig{
-		"chessboard": {Fx: 1400, Fy: 1400, Cx: 960, Cy: 540, Dist: []float64{-0.12, 0.03, 0.001, -0.0005, 0}},
+		"chessboard":    {Fx: 1400, Fy: 1400, Cx: 960, Cy: 540, Dist: []float64{-0.12, 0.03, 0.001, -0.0005, 0}},
 		"field of view": {HFOVDeg: 80},
 	}
 	for lname, lens := range lenses {
