@@ -102,10 +102,17 @@ func (w *cameraWatch) evidenceWritten(ev vision.EvidenceWritten) {
 	}
 	w.log.Info("evidence kept", "kind", ev.Kind, "file", filepath.Base(ev.Path), "frames", ev.Frames, "dropped", ev.Dropped,
 		"took", ev.Took.Round(time.Millisecond))
+	w.retain(ev.Path, ev.Recording)
+}
+
+// retain applies retention to the evidence directory, keeping the paths
+// given (the file just written, a clip still open).
+func (w *cameraWatch) retain(paths ...string) {
 	keep := w.evidence.keep
-	keep.Keep = []string{ev.Path}
-	if ev.Recording != "" {
-		keep.Keep = append(keep.Keep, ev.Recording)
+	for _, p := range paths {
+		if p != "" {
+			keep.Keep = append(keep.Keep, p)
+		}
 	}
 	if n, err := vision.PruneEvidence(w.evidence.dir, keep, w.now()); err != nil {
 		w.log.Error("evidence retention", "err", err)
@@ -204,11 +211,15 @@ func (w *cameraWatch) runRecorder(ctx context.Context) {
 // clipWritten reports a clip cut from the evidence stream's ring, and
 // applies retention as evidenceWritten does.
 func (w *cameraWatch) clipWritten(r remux.ClipResult) {
-	ev := vision.EvidenceWritten{Kind: "clip", Path: r.Path, Took: r.Took, Err: r.Err}
-	if r.Err == nil {
-		short := max(r.From.Sub(r.WantFrom), r.WantTo.Sub(r.To), 0)
-		w.log.Info("evidence clip from the evidence stream", "file", filepath.Base(r.Path), "segments", r.Segments,
-			"from", r.From.UTC().Format(time.RFC3339Nano), "to", r.To.UTC().Format(time.RFC3339Nano), "short_by", short.Round(time.Millisecond))
+	if r.Err != nil {
+		w.log.Error("evidence clip failed", "err", r.Err)
+		return
 	}
-	w.evidenceWritten(ev)
+	// short_by says how much of the pre- or post-roll the ring did not
+	// hold (the evidence stream was down, or the daemon had just started).
+	short := max(r.From.Sub(r.WantFrom), r.WantTo.Sub(r.To), 0)
+	w.log.Info("evidence kept", "kind", "clip", "file", filepath.Base(r.Path), "source", "evidence stream", "segments", r.Segments,
+		"from", r.From.UTC().Format(time.RFC3339Nano), "to", r.To.UTC().Format(time.RFC3339Nano), "short_by", short.Round(time.Millisecond),
+		"took", r.Took.Round(time.Millisecond))
+	w.retain(r.Path)
 }

@@ -148,7 +148,7 @@ type Recorder struct {
 	pid     int
 	up      bool
 	exitAt  time.Time // when the last child exited; zero while one runs
-	written int64     // bytes seen in the ring, for stall detection
+	newest  [2]int64  // sequence number and size of the newest segment, for stall detection
 
 	cuts   chan cutJob
 	cutsWG sync.WaitGroup
@@ -196,7 +196,7 @@ func (r *Recorder) clean() {
 	}
 	for _, e := range ents {
 		n := e.Name()
-		if (strings.HasPrefix(n, segPrefix) && strings.HasSuffix(n, segExt)) || strings.HasSuffix(n, ".part") {
+		if strings.HasPrefix(n, segPrefix) && strings.HasSuffix(n, segExt) {
 			os.Remove(filepath.Join(r.cfg.Dir, n))
 		}
 	}
@@ -422,7 +422,6 @@ func (r *Recorder) note(ents []os.DirEntry, run int, now time.Time) (grew, up bo
 	for _, s := range r.segs {
 		known[s.name] = s
 	}
-	var total int64
 	for _, e := range ents {
 		n := e.Name()
 		if !strings.HasPrefix(n, segPrefix) || !strings.HasSuffix(n, segExt) {
@@ -446,10 +445,14 @@ func (r *Recorder) note(ents []os.DirEntry, run int, now time.Time) (grew, up bo
 			r.nextNum = num + 1
 			grew = true
 		}
-		if s.run == run {
-			total += info.Size()
-		}
 		s.size = info.Size()
+		if s.run == run && int64(num) >= r.newest[0] {
+			r.newest[0] = int64(num)
+			if s.size != r.newest[1] {
+				r.newest[1] = s.size
+				grew = true
+			}
+		}
 	}
 	sort.Slice(r.segs, func(i, j int) bool { return r.segs[i].num < r.segs[j].num })
 	// A segment is complete once its successor of the same run appeared.
@@ -458,10 +461,6 @@ func (r *Recorder) note(ents []os.DirEntry, run int, now time.Time) (grew, up bo
 		if a.run == b.run && !a.done() {
 			a.end = b.start
 		}
-	}
-	if total != r.written {
-		grew = true
-		r.written = total
 	}
 	if grew && !r.up {
 		r.up, up = true, true
