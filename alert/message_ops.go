@@ -56,7 +56,7 @@ func FaultMessage(fault string, active bool, detail string) string {
 	case FaultBusBacklog:
 		s = pick(active, "messages are queueing unacknowledged: the bus is unreachable or slow", "queued messages are delivered again")
 	case FaultProcessingLag:
-		s = pick(active, "frames are searched over a second after the camera took them: alarms come late", "frames are searched in time again")
+		s = pick(active, "frames are searched over a second after the camera took them, so alarms come late", "frames are searched in time again")
 	default:
 		s = pick(active, fmt.Sprintf("fault %q raised", fault), fmt.Sprintf("fault %q cleared", fault))
 	}

@@ -42,7 +42,7 @@ func (w *cameraWatch) frameAge(ctx context.Context, age time.Duration, armed boo
 	if age > maxFrameAge {
 		w.lag.inTimeSince = time.Time{}
 		if armed {
-			w.raise(ctx, alert.FaultProcessingLag, true, fmt.Sprintf("a frame was searched %.1f s after it was taken (limit %v)", age.Seconds(), maxFrameAge))
+			w.raise(ctx, alert.FaultProcessingLag, true, fmt.Sprintf("a frame was searched %.1f s after it was taken (limit %.0f s)", age.Seconds(), maxFrameAge.Seconds()))
 		}
 		return
 	}
@@ -50,6 +50,6 @@ func (w *cameraWatch) frameAge(ctx context.Context, age time.Duration, armed boo
 		w.lag.inTimeSince = now
 	}
 	if now.Sub(w.lag.inTimeSince) >= lagClearAfter {
-		w.raise(ctx, alert.FaultProcessingLag, false, fmt.Sprintf("frames searched within %v for %v", maxFrameAge, lagClearAfter))
+		w.raise(ctx, alert.FaultProcessingLag, false, fmt.Sprintf("frames searched within %.0f s of being taken for %.0f s", maxFrameAge.Seconds(), lagClearAfter.Seconds()))
 	}
 }
