@@ -191,6 +191,7 @@ type benchResult struct {
 	RSSBaselineMB     float64 `json:"rss_before_mb"`
 	RSSPeakMB         float64 `json:"rss_peak_mb"`
 	RSSFinalMB        float64 `json:"rss_final_mb"`
+	RSSWarmMB         float64 `json:"rss_after_warmup_mb"`
 	RSSPerCameraMB    float64 `json:"rss_per_camera_mb"`
 	PssChildrenMB     float64 `json:"pss_children_mb"`
 	PeakIncludesSetup bool    `json:"rss_peak_includes_setup,omitempty"`
@@ -459,6 +460,7 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg Config, res *benchResult,
 		if !warmed && !time.Now().Before(warm) {
 			warmed = true
 			at0 = takeSnap(reg, kids)
+			res.RSSWarmMB = round3(float64(procStatus("self", "VmRSS")) / 1024)
 			mu.Lock()
 			counting = at0.at
 			mu.Unlock()
@@ -637,8 +639,8 @@ func (r benchResult) print(w io.Writer) {
 	if r.PeakIncludesSetup {
 		peak = " (includes preparing the clips)"
 	}
-	fmt.Fprintf(tw, "memory\tpeak %.0f MB%s, final %.0f MB = %.0f MB per camera (%.0f MB before the cameras started); ffmpeg children %.0f MB proportional\n",
-		r.RSSPeakMB, peak, r.RSSFinalMB, r.RSSPerCameraMB, r.RSSBaselineMB, r.PssChildrenMB)
+	fmt.Fprintf(tw, "memory\tpeak %.0f MB%s, final %.0f MB = %.0f MB per camera (%.0f MB before the cameras started, %.0f MB after the warm-up); ffmpeg children %.0f MB proportional\n",
+		r.RSSPeakMB, peak, r.RSSFinalMB, r.RSSPerCameraMB, r.RSSBaselineMB, r.RSSWarmMB, r.PssChildrenMB)
 	fmt.Fprintf(tw, "faults raised\t%s\n", faultList(r.Faults))
 	if r.DecodeMsPerFrame > 0 {
 		fmt.Fprintf(tw, "same clip alone\tOpenCV decode %.2f ms/frame, ffmpeg decode (1 thread) %.2f ms/frame, plain OpenCV loop %.2f ms/frame (CPU, median of runs over %d frames)\n",
