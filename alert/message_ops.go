@@ -13,11 +13,12 @@ const (
 	FaultCameraNoise      = "camera_noise"      // frames are so noisy that motion cannot be told from noise
 	FaultCalibrationDrift = "calibration_drift" // the pool corners no longer match the homography
 	FaultBusBacklog       = "bus_backlog"       // messages queue up unacknowledged
+	FaultProcessingLag    = "processing_lag"    // frames are searched over a second after they were captured
 )
 
 // FaultKinds lists every fault kind, in the order of the schema's enum.
 func FaultKinds() []string {
-	return []string{FaultCameraLost, FaultCameraBlinded, FaultCameraFrozen, FaultCameraNoise, FaultCalibrationDrift, FaultBusBacklog}
+	return []string{FaultCameraLost, FaultCameraBlinded, FaultCameraFrozen, FaultCameraNoise, FaultCalibrationDrift, FaultBusBacklog, FaultProcessingLag}
 }
 
 // Fault says a camera or the bus cannot be trusted to see an intruder
@@ -54,6 +55,8 @@ func FaultMessage(fault string, active bool, detail string) string {
 		s = pick(active, "the pool corners no longer match the calibration: positions are off, recalibrate", "the pool corners match the calibration again")
 	case FaultBusBacklog:
 		s = pick(active, "messages are queueing unacknowledged: the bus is unreachable or slow", "queued messages are delivered again")
+	case FaultProcessingLag:
+		s = pick(active, "frames are searched over a second after the camera took them, so alarms come late", "frames are searched in time again")
 	default:
 		s = pick(active, fmt.Sprintf("fault %q raised", fault), fmt.Sprintf("fault %q cleared", fault))
 	}

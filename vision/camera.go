@@ -31,6 +31,10 @@ type SourceConfig struct {
 	// Loop plays a file source again from the start at its end instead of
 	// returning io.EOF; media time keeps increasing across passes.
 	Loop bool
+	// Realtime plays a file source at its own frame rate, as a live camera
+	// delivers it: Next waits for each frame's time, and frames more than
+	// MaxLag late are dropped unsearched (see pace.go).
+	Realtime bool
 	// MaxLag bounds how far behind a live (RTSP or HTTP) stream frames are
 	// searched: when the frame taken is older than this against the newest
 	// one, frames are dropped unsearched until it is not (see backlog.go).
@@ -74,8 +78,9 @@ type CaptureStats struct {
 	Loops int64
 	// Reconnects is the number of successful Reconnect calls.
 	Reconnects int64
-	// Dropped is the number of a live source's frames decoded and dropped
-	// unsearched to catch up with the stream (see SourceConfig.MaxLag).
+	// Dropped is the number of frames of a live source, or of a file
+	// played in real time, decoded and dropped unsearched to catch up
+	// (see SourceConfig.MaxLag).
 	Dropped int64
 }
 
@@ -151,6 +156,10 @@ type Camera struct {
 	lag        backlog
 	gate       *OpenGate
 	closed     bool
+	// captured is when the latest frame was taken (see Captured); pace
+	// times a file played in real time.
+	captured time.Time
+	pace     pace
 }
 
 // Redact returns uri with any password replaced, for logs and errors.
@@ -385,8 +394,21 @@ func (c *Camera) declaredDuration() time.Duration {
 	return time.Duration(math.Round(float64(c.declared) / c.fps * float64(time.Second)))
 }
 
-// advance puts the next frame into c.frame.
+// advance puts the next frame into c.frame and notes when it was taken.
 func (c *Camera) advance() error {
+	if c.kind == kindFile && c.sc.Realtime {
+		return c.advancePaced()
+	}
+	live, primed := c.kind == kindRTSP || c.kind == kindHTTP, c.primed
+	err := c.advanceFrame()
+	if err == nil && (primed || !live) { // advanceLive notes its own
+		c.captured = time.Now()
+	}
+	return err
+}
+
+// advanceFrame puts the next frame into c.frame.
+func (c *Camera) advanceFrame() error {
 	if c.primed {
 		c.primed = false
 		return nil
@@ -456,11 +478,13 @@ func (c *Camera) advanceLive() error {
 		}
 		return grabbed{wall: time.Since(c.started), stream: time.Duration(stream * float64(time.Millisecond)), took: time.Since(t0)}, nil
 	}
-	dropped, err := c.lag.read(grab, maxLag)
+	var last grabbed
+	dropped, err := c.lag.read(func() (grabbed, error) { g, err := grab(); last = g; return g, err }, maxLag)
 	c.stats.Dropped += int64(dropped)
 	if err != nil {
 		return err
 	}
+	c.captured = c.started.Add(last.wall - c.lag.behind(last))
 	ok, err := c.cap.retrieve(&c.scratch)
 	if err != nil {
 		return err

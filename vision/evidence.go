@@ -29,6 +29,10 @@ type EvidenceConfig struct {
 	// FPS is the frame rate written into clips; zero takes the source's
 	// nominal rate, or 10 when it has none.
 	FPS float64
+	// SnapshotsOnly keeps no frames and records no clips: the clips come
+	// from elsewhere (a camera's main stream copied without decoding, see
+	// vision/remux); snapshots are written as usual.
+	SnapshotsOnly bool
 	// OnWritten, if set, is called on the evidence writer's goroutine
 	// after each snapshot is written and each clip is finished, or failed.
 	// It may take its time (prune old files, log): it holds up only the
@@ -127,6 +131,9 @@ func (c *Camera) EnableEvidence(cfg EvidenceConfig) error {
 // add buffers frame and, while a clip is recorded, hands it to the
 // writer. It never waits for the writer.
 func (e *evidence) add(frame gocv.Mat, media time.Duration) error {
+	if e.cfg.SnapshotsOnly {
+		return nil
+	}
 	data, err := encodeJPEG(frame, e.cfg.Quality)
 	if err != nil {
 		return fmt.Errorf("evidence: %w", err)
@@ -194,6 +201,9 @@ func (c *Camera) StartClip(path string) (ClipInfo, error) {
 	e := c.ev
 	if e == nil {
 		return ClipInfo{}, errors.New("start clip: evidence is not enabled (call EnableEvidence)")
+	}
+	if e.cfg.SnapshotsOnly {
+		return ClipInfo{}, fmt.Errorf("start clip %s: this camera's clips come from its evidence stream", path)
 	}
 	until := c.media + e.cfg.PostRoll
 	if e.path != "" {
@@ -348,13 +358,13 @@ type Retention struct {
 // leaves any other file in the directory alone.
 func isEvidence(name string) bool {
 	switch strings.ToLower(filepath.Ext(name)) {
-	case ".avi", ".jpg", ".jpeg":
+	case ".avi", ".mp4", ".jpg", ".jpeg":
 		return true
 	}
 	return false
 }
 
-// PruneEvidence removes evidence files (.avi, .jpg, .jpeg) directly in dir
+// PruneEvidence removes evidence files (.avi, .mp4, .jpg, .jpeg) directly in dir
 // until the newest ones left fit every limit of r, deleting oldest first by
 // modification time. It returns how many files it removed.
 func PruneEvidence(dir string, r Retention, now time.Time) (int, error) {

@@ -72,6 +72,7 @@ func hostProblems(cfg Config, getenv func(string) string) []string {
 		if err := checkSource(cam.Source); err != nil {
 			out = append(out, fmt.Sprintf("cameras[%d] (%s).source: %v", i, cam.ID, err))
 		}
+		out = append(out, streamProblems(fmt.Sprintf("cameras[%d] (%s)", i, cam.ID), cfg, cam)...)
 	}
 	src := cfg.secretSources()
 	fields := make([]string, 0, len(src))
@@ -161,6 +162,9 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 			transport = "backend default"
 		}
 		fmt.Fprintf(w, "  %s  %s (transport %s)\n", cam.ID, vision.Redact(cam.Source), transport)
+		if err := describeStreams(w, cfg, cam); err != nil {
+			return err
+		}
 		cal, err := newCalibration(cam)
 		if err != nil {
 			return err

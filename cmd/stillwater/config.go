@@ -59,6 +59,9 @@ type EvidenceConfig struct {
 	MaxFiles int      `yaml:"max_files"`
 	MaxMB    int64    `yaml:"max_mb"`
 	MaxAge   Duration `yaml:"max_age"`
+	// RingDir holds the pre-roll of the cameras with an evidence_source
+	// (data_dir/evidence-ring when empty); a tmpfs spares an SD card.
+	RingDir string `yaml:"ring_dir"`
 }
 
 // on reports whether evidence is kept.
@@ -94,6 +97,14 @@ type CameraConfig struct {
 	// FrameTimeout is how long without a frame, while armed, before the
 	// camera is reported lost.
 	FrameTimeout Duration `yaml:"frame_timeout"`
+	// EvidenceSource is the camera's main stream, when Source is its low-
+	// resolution sub stream: its packets are copied, never decoded, into
+	// the pre-roll and the alarm clips (see streams.go).
+	EvidenceSource string `yaml:"evidence_source"`
+	// SourcePx is the frame size Source delivers when the calibration's
+	// pixels (frame_px) are another stream's, such as the main stream's:
+	// the calibration is scaled to it.
+	SourcePx [2]int `yaml:"source_px"`
 	// Schedule replaces arming.schedule for this camera when set.
 	Schedule []string `yaml:"schedule"`
 	// Calibration is inline: pool, corners, lens and water keys sit
@@ -274,6 +285,9 @@ func parseConfig(b []byte, env func(string) (string, bool)) (Config, error) {
 		if cfg.Cameras[i].Source, err = expandEnv(cfg.Cameras[i].Source, env, &cfg.secrets); err != nil {
 			return Config{}, fmt.Errorf("cameras[%d].source: %w", i, err)
 		}
+		if cfg.Cameras[i].EvidenceSource, err = expandEnv(cfg.Cameras[i].EvidenceSource, env, &cfg.secrets); err != nil {
+			return Config{}, fmt.Errorf("cameras[%d].evidence_source: %w", i, err)
+		}
 		cfg.Cameras[i].Detect = mergeDetect(defaultDetect(), cfg.Cameras[i].Detect)
 		if cfg.Cameras[i].FrameTimeout == 0 {
 			cfg.Cameras[i].FrameTimeout = Duration(defaultFrameTimeout)
@@ -383,11 +397,19 @@ func (c Config) Validate() error {
 		default:
 			return fmt.Errorf("%s.transport: %q; want tcp or udp", where, cam.Transport)
 		}
+		if err := validateStreams(where, cam, c.Evidence); err != nil {
+			return err
+		}
 		if err := validateCalibration(where, cam.CalibrationConfig); err != nil {
 			return err
 		}
 		if _, err := buildCalibration(cam.CalibrationConfig); err != nil {
 			return fmt.Errorf("%s: calibration: %w", where, err)
+		}
+		if cam.SourcePx != ([2]int{}) {
+			if _, err := buildCalibration(detectionCamera(cam).CalibrationConfig); err != nil {
+				return fmt.Errorf("%s: calibration scaled to source_px %v: %w", where, cam.SourcePx, err)
+			}
 		}
 		if err := validateDetect(where, cam.Detect); err != nil {
 			return err
@@ -447,6 +469,8 @@ func (e EvidenceConfig) validate() error {
 		return fmt.Errorf("evidence.max_mb: %d; want a positive size in MB", e.MaxMB)
 	case e.MaxAge < Duration(time.Hour):
 		return fmt.Errorf("evidence.max_age: %v; want at least 1h", time.Duration(e.MaxAge))
+	case strings.Contains(e.RingDir, "|"):
+		return fmt.Errorf("evidence.ring_dir: %q; a directory whose path has no |", e.RingDir)
 	}
 	return nil
 }

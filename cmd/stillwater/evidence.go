@@ -1,6 +1,7 @@
 package main
 
 import (
+	"context"
 	"fmt"
 	"net/http"
 	"path/filepath"
@@ -9,6 +10,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/vision"
+	"stillwater/vision/remux"
 )
 
 // evidenceSettings is what a camera keeps for each alarm.
@@ -17,6 +19,7 @@ type evidenceSettings struct {
 	dir               string // data_dir/evidence
 	preRoll, postRoll time.Duration
 	keep              vision.Retention
+	ringRoot          string // the pre-roll rings of evidence streams, one directory per camera
 }
 
 func newEvidenceSettings(cfg Config) evidenceSettings {
@@ -27,6 +30,7 @@ func newEvidenceSettings(cfg Config) evidenceSettings {
 		preRoll:  time.Duration(e.PreRoll),
 		postRoll: time.Duration(e.PostRoll),
 		keep:     vision.Retention{MaxFiles: e.MaxFiles, MaxBytes: e.MaxMB << 20, MaxAge: time.Duration(e.MaxAge)},
+		ringRoot: filepath.Dir(ringDir(cfg, "x")),
 	}
 }
 
@@ -45,6 +49,7 @@ func annotation(cam CameraConfig, proc *processor, caption string) vision.Annota
 type evidenceJob struct {
 	base    string // file name without extension, in the evidence directory
 	caption string
+	at      time.Time // when the frame that starts the alarm was taken
 }
 
 // planEvidence names the evidence of an alarm that starts at this frame and
@@ -59,7 +64,7 @@ func (w *cameraWatch) planEvidence(r vision.Result, o alert.Observation) string 
 	stamp = strings.ReplaceAll(stamp, ".", "")
 	base := fmt.Sprintf("%s-%s-track%d", w.cam.ID, stamp, o.Track)
 	caption := fmt.Sprintf("%s  %s  track %d at %.2f m, %.2f m", w.cam.ID, w.epoch.Add(r.Media).UTC().Format(time.RFC3339), o.Track, o.X, o.Y)
-	w.pendingEvidence = append(w.pendingEvidence, evidenceJob{base: base, caption: caption})
+	w.pendingEvidence = append(w.pendingEvidence, evidenceJob{base: base, caption: caption, at: w.epoch.Add(r.Media)})
 	return filepath.Join("evidence", base+".jpg")
 }
 
@@ -73,6 +78,12 @@ func (w *cameraWatch) keepEvidence(vc *vision.Camera, proc *processor) {
 		snap := filepath.Join(w.evidence.dir, j.base+".jpg")
 		if err := vc.SaveSnapshot(snap, annotation(w.cam, proc, j.caption)); err != nil {
 			w.log.Error("evidence snapshot not kept", "snapshot", filepath.Base(snap), "err", err)
+		}
+		if w.rec != nil {
+			if p, ext := w.rec.Clip(filepath.Join(w.evidence.dir, j.base+".mp4"), j.at, w.evidence.preRoll, w.evidence.postRoll, w.clipWritten); ext {
+				w.log.Info("evidence clip extended", "clip", filepath.Base(p))
+			}
+			continue
 		}
 		if _, err := vc.StartClip(filepath.Join(w.evidence.dir, j.base+".avi")); err != nil {
 			w.log.Error("evidence clip not kept", "err", err)
@@ -91,10 +102,17 @@ func (w *cameraWatch) evidenceWritten(ev vision.EvidenceWritten) {
 	}
 	w.log.Info("evidence kept", "kind", ev.Kind, "file", filepath.Base(ev.Path), "frames", ev.Frames, "dropped", ev.Dropped,
 		"took", ev.Took.Round(time.Millisecond))
+	w.retain(ev.Path, ev.Recording)
+}
+
+// retain applies retention to the evidence directory, keeping the paths
+// given (the file just written, a clip still open).
+func (w *cameraWatch) retain(paths ...string) {
 	keep := w.evidence.keep
-	keep.Keep = []string{ev.Path}
-	if ev.Recording != "" {
-		keep.Keep = append(keep.Keep, ev.Recording)
+	for _, p := range paths {
+		if p != "" {
+			keep.Keep = append(keep.Keep, p)
+		}
 	}
 	if n, err := vision.PruneEvidence(w.evidence.dir, keep, w.now()); err != nil {
 		w.log.Error("evidence retention", "err", err)
@@ -152,4 +170,56 @@ func latestHandler(watches []*cameraWatch) http.Handler {
 		}
 		http.Error(rw, "no camera "+id, http.StatusNotFound)
 	})
+}
+
+// startRecorder sets up the copying of the camera's main stream when it
+// names one (evidence_source): the ring keeps the pre-roll and a little
+// more, in segments of about 2 s. A recorder that cannot be set up is
+// logged; the camera is watched all the same, with clips from its
+// decoded frames.
+func (w *cameraWatch) startRecorder() {
+	if !w.evidence.on || w.cam.EvidenceSource == "" {
+		return
+	}
+	rec, err := remux.New(remux.Config{
+		Source: w.cam.EvidenceSource, Transport: w.cam.Transport, Realtime: w.cam.Realtime, Loop: w.cam.Loop,
+		Dir:     filepath.Join(w.evidence.ringRoot, w.cam.ID),
+		Segment: ringSegment,
+		Keep:    w.evidence.preRoll + ringSegment,
+		Log:     w.log,
+		OnState: func(up bool, _ error) { w.met.recorder(up) }, // the recorder logs its exits
+	})
+	if err != nil {
+		w.log.Error("evidence stream not recorded; clips come from the decoded frames", "err", err)
+		return
+	}
+	w.rec = rec
+}
+
+// ringSegment is the length of the evidence ring's segments: short enough
+// that a clip starts close to its pre-roll, long enough to hold one key
+// frame interval of most cameras (1–2 s, common practice).
+const ringSegment = 2 * time.Second
+
+// runRecorder runs the evidence stream's recorder until ctx ends.
+func (w *cameraWatch) runRecorder(ctx context.Context) {
+	if err := w.rec.Run(ctx); err != nil {
+		w.log.Error("evidence stream not recorded", "err", err)
+	}
+}
+
+// clipWritten reports a clip cut from the evidence stream's ring, and
+// applies retention as evidenceWritten does.
+func (w *cameraWatch) clipWritten(r remux.ClipResult) {
+	if r.Err != nil {
+		w.log.Error("evidence clip failed", "err", r.Err)
+		return
+	}
+	// short_by says how much of the pre- or post-roll the ring did not
+	// hold (the evidence stream was down, or the daemon had just started).
+	short := max(r.From.Sub(r.WantFrom), r.WantTo.Sub(r.To), 0)
+	w.log.Info("evidence kept", "kind", "clip", "file", filepath.Base(r.Path), "source", "evidence stream", "segments", r.Segments,
+		"from", r.From.UTC().Format(time.RFC3339Nano), "to", r.To.UTC().Format(time.RFC3339Nano), "short_by", short.Round(time.Millisecond),
+		"took", r.Took.Round(time.Millisecond))
+	w.retain(r.Path)
 }

@@ -47,6 +47,7 @@ commands:
   sweep      replay and score clips over a grid of detection settings
   demo       run the daemon on a generated clip with an in-process bus
   synth      render a synthetic pool clip and its label file
+  bench      run cameras in real time through the daemon and measure its cost
 
 run "stillwater <command> -h" for a command's flags`
 
@@ -114,6 +115,8 @@ func runCommand(ctx context.Context, cmd string, rest []string, stdout, stderr i
 		return runScore(ctx, rest, stdout, stderr)
 	case "sweep":
 		return runSweep(ctx, rest, stdout, stderr)
+	case "bench":
+		return runBench(ctx, rest, stdout, stderr)
 	case "-h", "-help", "--help", "help":
 		fmt.Fprintln(stdout, usage)
 		return nil

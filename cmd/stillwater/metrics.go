@@ -16,6 +16,9 @@ type metrics struct {
 	read        *prometheus.CounterVec
 	processed   *prometheus.CounterVec
 	dropped     *prometheus.CounterVec
+	frameAgeG   *prometheus.GaugeVec
+	recUp       *prometheus.GaugeVec
+	recExits    *prometheus.CounterVec
 	decodeErrs  *prometheus.CounterVec
 	procSecs    *prometheus.HistogramVec
 	stageSecs   *prometheus.HistogramVec
@@ -48,8 +51,11 @@ func newMetrics(reg prometheus.Registerer, version string) *metrics {
 	m := &metrics{
 		read:       counter("stillwater_frames_read_total", "Frames read from the camera.", cam...),
 		processed:  counter("stillwater_frames_processed_total", "Frames that went through the whole pipeline.", cam...),
-		dropped:    counter("stillwater_frames_dropped_total", "Frames of a live camera dropped unsearched to catch up with the stream.", cam...),
+		dropped:    counter("stillwater_frames_dropped_total", "Frames of a live camera (or a file played in real time) dropped unsearched to catch up with the stream.", cam...),
+		frameAgeG:  gauge("stillwater_frame_age_seconds", "Age of the latest processed frame when its processing ended: from when the camera took it (a file played in real time: when it was due) to its messages handed to the bus.", cam...),
 		decodeErrs: counter("stillwater_decode_errors_total", "Reads that returned no decodable frame.", cam...),
+		recUp:      gauge("stillwater_evidence_recorder_up", "1 while the camera's evidence stream is being copied into its pre-roll ring.", cam...),
+		recExits:   counter("stillwater_evidence_recorder_exits_total", "Times the evidence stream's copying process ended and had to be started again.", cam...),
 		procSecs: prometheus.NewHistogramVec(prometheus.HistogramOpts{
 			Name: "stillwater_frame_processing_seconds", Help: "Time to read and process one frame.", Buckets: secs,
 		}, cam),
@@ -74,7 +80,7 @@ func newMetrics(reg prometheus.Registerer, version string) *metrics {
 		refused: counter("stillwater_control_refused_total", "Control requests refused, by channel.", "via"),
 		build:   gauge("stillwater_build_info", "Always 1; labels carry the version.", "version", "goversion"),
 	}
-	reg.MustRegister(m.read, m.processed, m.dropped, m.decodeErrs, m.procSecs, m.stageSecs, m.rejected, m.tracks,
+	reg.MustRegister(m.read, m.processed, m.dropped, m.frameAgeG, m.recUp, m.recExits, m.decodeErrs, m.procSecs, m.stageSecs, m.rejected, m.tracks,
 		m.up, m.reconnects, m.armed, m.alarms, m.faults, m.faultActive, m.beatTime, m.published, m.acked, m.pubErrors, m.pubSecs,
 		m.refused, m.build)
 	m.build.WithLabelValues(version, runtime.Version()).Set(1)
@@ -152,6 +158,25 @@ func (c *cameraMetrics) droppedFrames(n int) {
 		return
 	}
 	c.m.dropped.WithLabelValues(c.id).Add(float64(n))
+}
+
+func (c *cameraMetrics) frameAge(d time.Duration) {
+	if c == nil {
+		return
+	}
+	c.m.frameAgeG.WithLabelValues(c.id).Set(d.Seconds())
+}
+
+// recorder records the evidence stream's recorder starting to write (up)
+// or its process ending.
+func (c *cameraMetrics) recorder(up bool) {
+	if c == nil {
+		return
+	}
+	c.m.recUp.WithLabelValues(c.id).Set(b2f(up))
+	if !up {
+		c.m.recExits.WithLabelValues(c.id).Inc()
+	}
 }
 
 func (c *cameraMetrics) decodeErrors(n int) {

@@ -16,6 +16,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/vision"
+	"stillwater/vision/remux"
 )
 
 // cameraWatch runs one camera: capture with reconnects, the detection
@@ -37,6 +38,8 @@ type cameraWatch struct {
 	lastFrame atomic.Int64  // unix ns (by now) of the last frame read
 	nframes   atomic.Int64  // frames read since start
 	faults    faultBoard
+	lag       lagWatch        // the processing_lag fault (lag.go)
+	rec       *remux.Recorder // the main stream's pre-roll, when the camera names one (evidence.go)
 
 	reload   chan CameraConfig // new calibration, zones, detection for this camera
 	gate     vision.OpenGate   // one open of the source at a time; a hung one is abandoned
@@ -56,6 +59,8 @@ func newCameraWatch(cam CameraConfig, out sink, armed func(time.Time) bool, now 
 		evidence: ev, snapReq: make(chan chan snapshot),
 	}
 	w.lastFrame.Store(w.epoch.UnixNano())
+	w.cam = detectionCamera(cam)
+	w.startRecorder()
 	return w
 }
 
@@ -69,6 +74,13 @@ func (w *cameraWatch) run(ctx context.Context) error {
 		defer wg.Done()
 		w.watchdog(ctx)
 	}()
+	if w.rec != nil {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			w.runRecorder(ctx)
+		}()
+	}
 	err := w.capture(ctx)
 	stopped := ctx.Err() == nil
 	cancel()
@@ -281,7 +293,7 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 		if err := os.MkdirAll(w.evidence.dir, 0o750); err != nil {
 			w.log.Error("evidence directory", "err", err)
 		}
-		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll, OnWritten: w.evidenceWritten}); err != nil {
+		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll, OnWritten: w.evidenceWritten, SnapshotsOnly: w.rec != nil}); err != nil {
 			vc.Close()
 			return nil, fmt.Errorf("camera %s: evidence: %w", w.cam.ID, err)
 		}
@@ -301,9 +313,7 @@ type captureState struct {
 
 // frames processes frames until the source fails or ends.
 func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *captureState) error {
-	fps := vc.FPS()
 	live := strings.Contains(w.cam.Source, "://")
-	paceStart := time.Now()
 	proc := st.proc
 	proc.evidence = w.planEvidence
 	defer func() { proc.evidence = nil; w.pendingEvidence = w.pendingEvidence[:0] }()
@@ -333,8 +343,14 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 		w.nframes.Add(1)
 		w.met.frame()
 		w.met.stage("vision", time.Since(t0))
-		if live {
+		captured := vc.Captured()
+		switch {
+		case live:
 			r.Media = w.now().Sub(w.epoch)
+		case w.cam.Realtime:
+			// As a live camera's: when the frame was due, so that
+			// frame_time says when it was taken.
+			r.Media = captured.Sub(w.epoch)
 		}
 		armed := w.armed(w.now())
 		for _, f := range st.health.observe(r.Media, r.Health, armed) {
@@ -366,12 +382,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			}
 		}
 		w.met.processed(time.Since(t0))
-		if w.cam.Realtime && fps > 0 && !live {
-			due := paceStart.Add(time.Duration(float64(r.Index+1) / fps * float64(time.Second)))
-			if !sleep(ctx, time.Until(due)) {
-				return nil
-			}
-		}
+		w.frameAge(ctx, time.Since(captured), armed)
 	}
 }
 
@@ -387,6 +398,7 @@ func (w *cameraWatch) countStats(vc *vision.Camera, st *captureState) {
 func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
 	select {
 	case c := <-w.reload:
+		c = detectionCamera(c)
 		if err := proc.reload(c); err != nil {
 			w.log.Error("reload refused; keeping the running settings", "err", err)
 			return
@@ -430,7 +442,7 @@ func (w *cameraWatch) checkDrift(ctx context.Context, st driftStatus) {
 
 func (w *cameraWatch) sourceConfig() vision.SourceConfig {
 	rt := w.frameTimeout()
-	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop, Gate: &w.gate}
+	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop, Realtime: w.cam.Realtime, Gate: &w.gate}
 }
 
 // sleep waits d or until ctx ends; it reports whether ctx is still live.
