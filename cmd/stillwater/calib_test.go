@@ -255,6 +255,15 @@ func TestCalibrationAreaInsideMask(t *testing.T) {
 		assert.InDelta(t, c[0], m[i].X, 1e-6)
 		assert.InDelta(t, c[1], m[i].Y, 1e-6)
 	}
+	// Every detector hands the outline to the picture checks: a frozen
+	// picture is found by the water not moving, and without the outline
+	// the deck's stillness hides it (a frozen family scene went unreported).
+	for _, method := range []string{"meanvar", "mog2"} {
+		cam := CameraConfig{ID: "t", CalibrationConfig: cornersConfig(t, s, 0), Detect: mergeDetect(defaultDetect(), DetectConfig{Method: method})}
+		dc, err := detectorConfig(cam, cal)
+		require.NoError(t, err, method)
+		assert.Equal(t, m, dc.Mask, method)
+	}
 	// Without a depth model the floor is the surface.
 	f := cal.floor(homography.Point{X: 2, Y: 3})
 	assert.Equal(t, [3]float64{2, 3, 0}, [3]float64{f.X, f.Y, f.Depth})

@@ -56,6 +56,11 @@ type DetectConfig struct {
 	// DeckRadius: near someone on the deck, m, nothing on the water starts
 	// an alarm (their shadow), until they are in the water (meanvar).
 	DeckRadius float64 `yaml:"deck_radius_m"`
+	// Companion: within this distance, m, of a target already raised, a
+	// new track does not start a second alarm while that target lasts (the
+	// body's shadow on the floor, its refracted legs, its wake); negative
+	// is off (meanvar).
+	Companion float64 `yaml:"companion_m"`
 	// ProcessWidth and History set up mog2 and knn.
 	ProcessWidth int      `yaml:"process_width"`
 	History      int      `yaml:"history"`
@@ -118,6 +123,7 @@ func defaultDetect() DetectConfig {
 		MaxLength:    defaultMaxLength,
 		MaxSpeed:     defaultMaxSpeed,
 		DeckRadius:   defaultDeckRadius,
+		Companion:    defaultCompanion,
 		ProcessWidth: 640,
 		History:      500,
 		MinArea:      MinBodyArea,
@@ -150,12 +156,19 @@ const (
 	defaultMaxSpeed = 1.2
 	// defaultDeckRadius: a shadow on the water beside someone at the edge.
 	defaultDeckRadius = 2.5
+	// defaultCompanion: a body floating in sunlit water casts a shadow on
+	// the floor depth·tan(sun's zenith angle) away, 1–2 m in water 1–2 m
+	// deep with the sun 45° or more up (derived), and an oblique camera
+	// sees the submerged part of a body displaced towards the floor; 2 m
+	// covers both. A second child that close is already where the
+	// responder is sent.
+	defaultCompanion = 2.0
 )
 
 // judgeRulesOf returns the rules tracks are judged by.
 func judgeRulesOf(d DetectConfig) judgeRules {
 	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, MinScore: d.MinScore, MinTint: d.MinTint, MaxLength: d.MaxLength, MaxSpeed: d.MaxSpeed,
-		DeckRadius: max(0, d.DeckRadius), DeckMemory: time.Second, DeckMinArea: d.MinArea}
+		DeckRadius: max(0, d.DeckRadius), Companion: max(0, d.Companion), DeckMemory: time.Second, DeckMinArea: d.MinArea}
 }
 
 // defaultDeck is the deck watched around the water, m: a toddler on
@@ -227,6 +240,9 @@ func mergeDetect(def, d DetectConfig) DetectConfig {
 	}
 	if d.DeckRadius == 0 {
 		d.DeckRadius = def.DeckRadius
+	}
+	if d.Companion == 0 {
+		d.Companion = def.Companion
 	}
 	if d.MinArea == 0 {
 		d.MinArea = def.MinArea
@@ -487,7 +503,9 @@ func detectorConfig(cam CameraConfig, cal *calibration) (vision.DetectorConfig, 
 	mv.Threshold, mv.Low, mv.Noise, mv.LightCell = d.Threshold, d.Extent, d.Noise, d.LightCell
 	mv.Short, mv.Learn = time.Duration(d.ShortMean), time.Duration(d.Learn)
 	mv.Smooth = d.Smooth
-	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv}, nil
+	// The mask is not searched by meanvar (its grid is the pool and its
+	// deck), but the picture checks watch it (see vision.Camera.health).
+	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv, Mask: cal.mask()}, nil
 }
 
 // detectOverrides are the detect settings a replay or sweep may set from

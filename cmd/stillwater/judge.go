@@ -49,6 +49,11 @@ type judgeRules struct {
 	// DeckMinArea is the least area, m², of a candidate on the deck that
 	// counts as a body there.
 	DeckMinArea float64
+	// Companion: a track within this distance, m, of a live track that
+	// has raised an alarm does not start another while that one lives: it
+	// is the raised body's shadow on the floor, its submerged part seen
+	// displaced, or its wake. 0 is off.
+	Companion float64
 }
 
 // trackHistory is one track's recent candidates.
@@ -201,6 +206,10 @@ func (j *judge) eligible(id int) (bool, string) {
 	case r.MaxSpeed > 0 && speed > r.MaxSpeed:
 		why = fmt.Sprintf("moving faster than a child in the water (%.2f m/s > %.2f m/s)", speed, r.MaxSpeed)
 	default:
+		if id2, d, ok := j.companionOf(id, at); ok {
+			why = fmt.Sprintf("%.1f m from target %d, already raised: its shadow or wake", d, id2)
+			break
+		}
 		for _, b := range j.deck {
 			// Nearer than deckSelf it is the track's own body, part of it
 			// still on the deck.
@@ -222,6 +231,24 @@ func (j *judge) eligible(id int) (bool, string) {
 	return why == "", why
 }
 
+// companionOf returns the nearest live track other than id that has
+// raised an alarm, if one lies within the Companion distance of at.
+func (j *judge) companionOf(id int, at homography.Point) (int, float64, bool) {
+	if j.rules.Companion <= 0 {
+		return 0, 0, false
+	}
+	best, bestD := 0, math.Inf(1)
+	for other, h := range j.tracks {
+		if other == id || !h.raised || len(h.at) == 0 {
+			continue
+		}
+		if d := h.at[len(h.at)-1].Dist(at); d <= j.rules.Companion && (d < bestD || d == bestD && other < best) {
+			best, bestD = other, d
+		}
+	}
+	return best, bestD, !math.IsInf(bestD, 1)
+}
+
 // minWaterChroma is how far from grey (Features.Water) the water must be
 // for colour to tell light from a body: a night infrared picture is grey.
 const minWaterChroma = 5
@@ -232,7 +259,9 @@ const minWaterChroma = 5
 const deckSelf = 0.7
 
 // deckBodies returns the positions of this frame's candidates that are
-// bodies on the deck: centre off the water, area at least min.
+// bodies on the deck: centre off the water, area at least min. A faint
+// one counts too: someone walking on the deck beyond the watched ring
+// shows only a weak edge of themselves in it.
 func deckBodies(notes []candidateNote, min float64) []homography.Point {
 	var out []homography.Point
 	for _, n := range notes {

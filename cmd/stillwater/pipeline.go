@@ -123,7 +123,7 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 	}
 	tracks := p.tracker.Update(r.Media, dets)
 	p.tracks = tracks
-	p.judge.observe(r.Media, tracks, deckBodies(p.notes, d.MinArea))
+	p.judge.observe(r.Media, tracks, deckBodies(p.notes, p.judge.rules.DeckMinArea))
 	obs := make([]alert.Observation, 0, len(tracks))
 	var hold []image.Rectangle
 	for _, t := range tracks {

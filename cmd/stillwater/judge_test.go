@@ -1,0 +1,79 @@
+package main
+
+import (
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"stillwater/homography"
+	"stillwater/vision"
+)
+
+// body is a candidate's features that pass every rule of the defaults: a
+// floating toddler's area (WHO-derived, see MinBodyArea), a clear score,
+// coloured, compact.
+func body() vision.Features {
+	return vision.Features{Area: 0.15, Half: 0.12, Score: 120, Contrast: -40, Tint: 60, Water: 20, Length: 0.8, Width: 0.3}
+}
+
+func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
+	rules := judgeRulesOf(defaultDetect())
+	require.Equal(t, 2.0, rules.Companion)
+	cases := []struct {
+		name      string
+		companion float64
+		second    [2]float64 // where the second track lies, m
+		raised    bool       // the first track has raised its alarm
+		gone      bool       // the first track ended before the second is judged
+		eligible  bool
+	}{
+		{"shadow 1.2 m from a raised target", 2.0, [2]float64{4.2, 3}, true, false, false},
+		{"3 m away is another body", 2.0, [2]float64{6, 3}, true, false, true},
+		{"first not raised yet: nothing to be a companion of", 2.0, [2]float64{4.2, 3}, false, false, true},
+		{"the raised target ended", 2.0, [2]float64{4.2, 3}, true, true, true},
+		{"rule off", 0, [2]float64{4.2, 3}, true, false, true},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			r := rules
+			r.Companion = c.companion
+			j := newJudge(time.Second, r, nil)
+			for i := 0; i < 8; i++ {
+				now := time.Duration(i) * 100 * time.Millisecond
+				tracks := []vision.Track{{ID: 2, X: c.second[0], Y: c.second[1], Last: now, Features: body()}}
+				if !c.gone || i < 4 {
+					tracks = append(tracks, vision.Track{ID: 1, X: 3, Y: 3, Last: now, Features: body()})
+				}
+				j.observe(now, tracks, nil)
+				if i == 2 && c.raised {
+					ok, why := j.eligible(1)
+					require.True(t, ok, why)
+					j.raised(1)
+				}
+			}
+			ok, why := j.eligible(2)
+			assert.Equal(t, c.eligible, ok, why)
+			if !c.eligible {
+				assert.Contains(t, why, "target 1")
+			}
+		})
+	}
+}
+
+// TestDeckBodies: someone on the deck counts, even faintly seen (a
+// walker's edge in the watched ring of a tuning scene: area 0.16 m², mean
+// score 38); a speck does not, nor a candidate over the water.
+func TestDeckBodies(t *testing.T) {
+	r := judgeRulesOf(defaultDetect())
+	walker := vision.Features{Area: 0.16, Half: 0.16, Score: 38}
+	speck := vision.Features{Area: 0.01, Half: 0.01, Score: 80}
+	notes := []candidateNote{
+		{At: homography.Point{X: -0.4, Y: 1}, Features: walker, Outside: true},
+		{At: homography.Point{X: -0.3, Y: 2.4}, Features: speck, Outside: true},
+		{At: homography.Point{X: 2, Y: 2}, Features: walker},
+	}
+	got := deckBodies(notes, r.DeckMinArea)
+	assert.Equal(t, []homography.Point{{X: -0.4, Y: 1}}, got)
+}
