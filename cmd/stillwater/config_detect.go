@@ -157,12 +157,13 @@ const (
 	// defaultDeckRadius: a shadow on the water beside someone at the edge.
 	defaultDeckRadius = 2.5
 	// defaultCompanion: a body floating in sunlit water casts a shadow on
-	// the floor depth·tan(sun's zenith angle) away, 1–2 m in water 1–2 m
-	// deep with the sun 45° or more up (derived), and an oblique camera
-	// sees the submerged part of a body displaced towards the floor; 2 m
-	// covers both. A second child that close is already where the
-	// responder is sent.
-	defaultCompanion = 2.0
+	// the floor depth·tan(sun's zenith angle) away: 2.5 m holds for water
+	// up to 1.8 m deep with the sun 36° or more up (derived), and an
+	// oblique camera sees the submerged part of a body displaced towards
+	// the floor. On the development set a floor shadow started its own
+	// track 1.1 m and 2.05 m from a child already raised. A second child
+	// that close is where the responder is already sent.
+	defaultCompanion = 2.5
 )
 
 // judgeRulesOf returns the rules tracks are judged by.

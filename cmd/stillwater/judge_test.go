@@ -20,7 +20,7 @@ func body() vision.Features {
 
 func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
 	rules := judgeRulesOf(defaultDetect())
-	require.Equal(t, 2.0, rules.Companion)
+	require.Equal(t, 2.5, rules.Companion)
 	cases := []struct {
 		name      string
 		companion float64
