@@ -351,6 +351,8 @@ func (c *Camera) probe(r Result) (Result, error) {
 		if err := c.det.reset(); err != nil {
 			return r, fmt.Errorf("frame %d: %w", r.Index, err)
 		}
+	} else if err := c.det.resume(); err != nil {
+		return r, fmt.Errorf("frame %d: %w", r.Index, err)
 	}
 	c.rejoin = nil
 	r.Rejoined = out

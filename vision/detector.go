@@ -166,6 +166,10 @@ type frameDetector interface {
 	Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameStats, error)
 	probe(frame gocv.Mat) (probeStats, error)
 	reset() error
+	// resume follows a reconnect that found the same picture: the
+	// background is kept, but nothing from before the gap may be compared
+	// with what comes after it.
+	resume() error
 	srcSize() image.Point
 	Close() error
 }

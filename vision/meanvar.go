@@ -337,6 +337,9 @@ type meanVar struct {
 	shortN   int // frames in the short mean
 	relearn  int
 	reported bool // the model has reported (warm-up over)
+	// settling: after a reconnect to the same picture the short mean
+	// starts again and fills for Settle before anything is compared.
+	settling bool
 	closed   bool
 	chromas  []float64 // scratch: per-cell chroma of one candidate
 }
@@ -450,7 +453,7 @@ func edgeDistance(water []byte, w, h int) []float32 {
 // restart drops what the model learned: it starts from the reference
 // when there is one, else it warms up again.
 func (d *meanVar) restart() error {
-	d.frames, d.shortN, d.relearn, d.reported = 0, 0, 0, false
+	d.frames, d.shortN, d.relearn, d.reported, d.settling = 0, 0, 0, false, false
 	d.gain.SetTo(gocv.NewScalar(1, 1, 1, 0))
 	d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
 	d.glint.SetTo(gocv.NewScalar(0, 0, 0, 0))
@@ -632,10 +635,13 @@ func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameS
 	default:
 		d.paintHold(hold)
 	}
-	if d.shortN < d.cfg.frames(d.cfg.Settle) && d.ref != nil && d.frames >= warm {
-		// Started from a reference: fill the short mean first, learn nothing.
+	if d.shortN < d.cfg.frames(d.cfg.Settle) && (d.ref != nil && d.frames >= warm || d.settling) {
+		// Started from a reference, or back after a gap: fill the short
+		// mean first, learn nothing.
 		st.WarmingUp = true
 		learn = false
+	} else {
+		d.settling = false
 	}
 	// The light is measured on the water minus last frame's candidates.
 	gocv.BitwiseNot(d.fg, &d.weight)
@@ -968,6 +974,16 @@ const (
 const probeNoise = 12
 
 func (d *meanVar) reset() error { return d.restart() }
+
+// resume starts the short mean again after a gap in the frames, keeping
+// the learned background: the last second before the gap (a child who has
+// since left, the picture of a camera that went down) must not be
+// averaged into the first frames after it.
+func (d *meanVar) resume() error {
+	d.shortN, d.settling = 0, true
+	d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
+	return nil
+}
 
 // Close frees every Mat. Safe to call twice.
 func (d *meanVar) Close() error {

@@ -189,6 +189,41 @@ func TestMeanVarHoldKeepsStillBody(t *testing.T) {
 	assert.Greater(t, last[0].Features.Score, 0.8*first[0].Features.Score)
 }
 
+func TestMeanVarResumeForgetsTheGap(t *testing.T) {
+	// A body held still for 3 s, then the camera goes away and comes back
+	// to the same picture without it (the child got out meanwhile). Kept
+	// as it was, the short mean still holds the body for its next frames;
+	// resumed, it reports nothing, and a body that comes back is found
+	// once the short mean has settled (1.5 s).
+	for _, resume := range []bool{false, true} {
+		t.Run(map[bool]string{false: "kept", true: "resumed"}[resume], func(t *testing.T) {
+			d := newTestMeanVar(t, nil)
+			defer d.Close()
+			s := newWaterScene()
+			run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
+			body := bodyAt(2, 1, 0.4)
+			blobs, _ := run(t, d, s, 30, body, color.RGBA{40, 50, 60, 0}, holdAll)
+			require.Len(t, blobs, 1)
+			if resume {
+				require.NoError(t, d.resume())
+			}
+			_, counts := run(t, d, s, 3, image.Rectangle{}, color.RGBA{}, nil)
+			if !resume {
+				// The control: without resume the gone body is still seen.
+				assert.Equal(t, []int{1, 1, 1}, counts)
+				return
+			}
+			assert.Equal(t, []int{0, 0, 0}, counts)
+			_, counts = run(t, d, s, 40, image.Rectangle{}, color.RGBA{}, nil)
+			for i, c := range counts {
+				assert.Zero(t, c, "frame %d after the gap", i+3)
+			}
+			blobs, _ = run(t, d, s, 20, body, color.RGBA{40, 50, 60, 0}, nil)
+			assert.Len(t, blobs, 1, "a body after the gap")
+		})
+	}
+}
+
 func TestMeanVarStartsFromReference(t *testing.T) {
 	// A reference learned on the empty pool lets a new detector find a body
 	// that is there from its first frame, after the short mean settles

@@ -123,6 +123,10 @@ func (d *Detector) reset() error {
 	return nil
 }
 
+// resume keeps the mixture model as it is: it holds no frames from before
+// the gap.
+func (d *Detector) resume() error { return nil }
+
 // rejoin follows the probing of one (re)connect.
 type rejoin struct {
 	begun   bool

@@ -61,6 +61,10 @@ type trackHistory struct {
 	feats   []vision.Features
 	at      []homography.Point
 	times   []time.Duration
+	// from is where the track was first seen, when its first candidate
+	// lay partly on the deck (it came over the edge); crossed says so.
+	from    homography.Point
+	crossed bool
 	raised  bool   // the track has raised an alarm: it stays eligible
 	verdict string // the last reason it was not eligible, "" when it was
 }
@@ -90,7 +94,7 @@ func (j *judge) observe(now time.Duration, tracks []vision.Track, deck []homogra
 		}
 		h := j.tracks[t.ID]
 		if h == nil {
-			h = &trackHistory{}
+			h = &trackHistory{from: homography.Point{X: t.X, Y: t.Y}, crossed: t.Features.Wet < 1}
 			j.tracks[t.ID] = h
 		}
 		h.feats = append(h.feats, t.Features)
@@ -213,6 +217,11 @@ func (j *judge) eligible(id int) (bool, string) {
 		for _, b := range j.deck {
 			// Nearer than deckSelf it is the track's own body, part of it
 			// still on the deck.
+			// A body that came over the edge leaves its own trail on the
+			// deck where it got in: the short mean still holds it there.
+			if h.crossed && b.at.Dist(h.from) <= trailRadius {
+				continue
+			}
 			if d := b.at.Dist(at); d <= r.DeckRadius && d > deckSelf {
 				why = fmt.Sprintf("someone is on the deck %.1f m away: a shadow until they are in the water", d)
 				break
@@ -252,6 +261,12 @@ func (j *judge) companionOf(id int, at homography.Point) (int, float64, bool) {
 // minWaterChroma is how far from grey (Features.Water) the water must be
 // for colour to tell light from a body: a night infrared picture is grey.
 const minWaterChroma = 5
+
+// trailRadius is how far from where a track came over the edge a body on
+// the deck is its own trail, m: the short mean holds the last second of a
+// child walking in at up to 1 m/s (common practice for a toddler's walk,
+// from memory), plus half a body.
+const trailRadius = 1.2
 
 // deckSelf is the distance, m, within which a body on the deck is the
 // track's own: a child climbing in, whose centre crosses the edge back and

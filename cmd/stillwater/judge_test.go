@@ -77,3 +77,37 @@ func TestDeckBodies(t *testing.T) {
 	got := deckBodies(notes, r.DeckMinArea)
 	assert.Equal(t, []homography.Point{{X: -0.4, Y: 1}}, got)
 }
+
+// TestJudgeOwnTrailOnTheDeck: a child who walked in over the edge leaves
+// their trail in the short mean on the deck where they got in (a tuning
+// scene held its child back 1.5 s for it); a shadow that appeared on the
+// water beside someone standing there did not come over the edge.
+func TestJudgeOwnTrailOnTheDeck(t *testing.T) {
+	r := judgeRulesOf(defaultDetect())
+	for _, c := range []struct {
+		name     string
+		firstWet float64 // share of the track's first candidate on the water
+		eligible bool
+	}{
+		{"came over the edge", 0.4, true},
+		{"appeared on the water", 1, false},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			j := newJudge(time.Second, r, nil)
+			for i := 0; i <= 8; i++ {
+				now := time.Duration(i) * 100 * time.Millisecond
+				f := body()
+				f.Wet = 1
+				if i == 0 {
+					f.Wet = c.firstWet
+				}
+				// The track gets in at (0.2, 2) m and moves to (0.6, 2) m;
+				// a body stays on the deck at (-0.5, 2) m, 1.1 m away.
+				x := 0.2 + 0.05*float64(i)
+				j.observe(now, []vision.Track{{ID: 1, X: x, Y: 2, Last: now, Features: f}}, []homography.Point{{X: -0.5, Y: 2}})
+			}
+			ok, why := j.eligible(1)
+			assert.Equal(t, c.eligible, ok, why)
+		})
+	}
+}

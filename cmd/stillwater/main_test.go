@@ -20,7 +20,7 @@ func TestExitCodes(t *testing.T) {
 			commands = append(commands, f[0])
 		}
 	}
-	assert.Len(t, commands, 9, "commands in the usage text")
+	assert.Len(t, commands, 10, "commands in the usage text")
 	type tcase struct {
 		name string
 		args []string

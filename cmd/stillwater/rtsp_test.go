@@ -71,8 +71,8 @@ func TestRTSPCameraLostAndBack(t *testing.T) {
 	require.Eventually(t, func() bool { return len(log.bySubject(targets)) > before }, entry+20*time.Second, 50*time.Millisecond,
 		"detection did not resume: no target after the stream came back")
 	first := log.bySubject(targets)[before]
-	assert.True(t, first.At.After(quiet), "a target %.1f s after the reconnect, before the child entered (%.1f s)",
-		first.At.Sub(back).Seconds(), entry.Seconds())
+	assert.True(t, first.At.After(quiet), "a target %.1f s after the reconnect, before the child entered (%.1f s): %s",
+		first.At.Sub(back).Seconds(), entry.Seconds(), first.Data)
 	require.NoError(t, stop())
 }
 
