@@ -58,9 +58,9 @@ type judgeRules struct {
 
 // trackHistory is one track's recent candidates.
 type trackHistory struct {
-	feats   []vision.Features
-	at      []homography.Point
-	times   []time.Duration
+	feats []vision.Features
+	at    []homography.Point
+	times []time.Duration
 	// from is where the track was first seen, when its first candidate
 	// lay partly on the deck (it came over the edge); crossed says so.
 	from    homography.Point
