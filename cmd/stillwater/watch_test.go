@@ -208,8 +208,13 @@ func TestDeadCameraIsAFaultAndDoesNotStallOthers(t *testing.T) {
 	require.NoError(t, json.Unmarshal(log.bySubject("stillwater.demo.target")[0].Data, &first))
 	require.Equal(t, "start", first.Event)
 	require.NotEmpty(t, first.Evidence, "the start target names no evidence")
-	jpg, err := os.ReadFile(filepath.Join(cfg.DataDir, first.Evidence))
-	require.NoError(t, err)
+	// The alarm goes out first; its snapshot is written right after.
+	var jpg []byte
+	require.Eventually(t, func() bool {
+		var err error
+		jpg, err = os.ReadFile(filepath.Join(cfg.DataDir, first.Evidence))
+		return err == nil && len(jpg) > 0
+	}, 5*time.Second, 50*time.Millisecond, "no snapshot %s after the alarm", first.Evidence)
 	assert.True(t, bytes.HasPrefix(jpg, []byte{0xff, 0xd8, 0xff}), "evidence is not a JPEG")
 	evClip := strings.TrimSuffix(filepath.Join(cfg.DataDir, first.Evidence), ".jpg") + ".avi"
 	require.Eventually(t, func() bool { st, err := os.Stat(evClip); return err == nil && st.Size() > 0 }, 5*time.Second, 100*time.Millisecond,
