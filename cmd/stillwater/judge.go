@@ -215,13 +215,13 @@ func (j *judge) eligible(id int) (bool, string) {
 			break
 		}
 		for _, b := range j.deck {
-			// Nearer than deckSelf it is the track's own body, part of it
-			// still on the deck.
 			// A body that came over the edge leaves its own trail on the
 			// deck where it got in: the short mean still holds it there.
 			if h.crossed && b.at.Dist(h.from) <= trailRadius {
 				continue
 			}
+			// Nearer than deckSelf it is the track's own body, part of it
+			// still on the deck.
 			if d := b.at.Dist(at); d <= r.DeckRadius && d > deckSelf {
 				why = fmt.Sprintf("someone is on the deck %.1f m away: a shadow until they are in the water", d)
 				break
