@@ -18,6 +18,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/alert/arming"
+	"stillwater/cmd/stillwater/internal/redact"
 	"stillwater/vision"
 )
 
@@ -47,7 +48,7 @@ func runCheck(_ context.Context, args []string, stdout, stderr io.Writer) error 
 	if *dataDir != "" {
 		cfg.DataDir = *dataDir
 	}
-	red := newRedactor(cfg.Secrets()...)
+	red := redact.New(cfg.Secrets()...)
 	if probs := hostProblems(cfg, os.Getenv); len(probs) > 0 {
 		return fmt.Errorf("%s: valid, but run would fail or watch nothing:\n  %s", *path, red.String(strings.Join(probs, "\n  ")))
 	}

@@ -19,6 +19,7 @@ import (
 	"stillwater/alert"
 	"stillwater/alert/arming"
 	"stillwater/alert/bus"
+	"stillwater/cmd/stillwater/internal/redact"
 )
 
 // Config is the daemon's whole configuration, from defaults, the YAML
@@ -295,7 +296,7 @@ func parseConfig(b []byte, env func(string) (string, bool)) (Config, error) {
 	}
 	cfg.secrets = append(cfg.secrets, cfg.secretValues(func(k string) string { v, _ := env(k); return v })...)
 	if err := cfg.Validate(); err != nil {
-		return Config{}, newRedactor(cfg.secrets...).Err(err)
+		return Config{}, redact.New(cfg.secrets...).Err(err)
 	}
 	return cfg, nil
 }

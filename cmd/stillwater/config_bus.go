@@ -696,3 +696,12 @@ func lockDataDir(dir string) (*os.File, error) {
 	}
 	return f, nil
 }
+
+// busRedactList redacts each URL of a comma-separated server list.
+func busRedactList(urls string) string {
+	parts := strings.Split(urls, ",")
+	for i, p := range parts {
+		parts[i] = busRedact(strings.TrimSpace(p))
+	}
+	return strings.Join(parts, ",")
+}

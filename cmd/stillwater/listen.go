@@ -153,14 +153,6 @@ func (f listenFlags) connectOptions(getenv func(string) string) ([]nats.Option, 
 	return bus.ConnectOptions(a)
 }
 
-func busRedactList(urls string) string {
-	parts := strings.Split(urls, ",")
-	for i, p := range parts {
-		parts[i] = busRedact(strings.TrimSpace(p))
-	}
-	return strings.Join(parts, ",")
-}
-
 // lockedWriter serialises writes from the NATS callback goroutines.
 type lockedWriter struct {
 	mu sync.Mutex

@@ -10,6 +10,7 @@ import (
 	"time"
 
 	"stillwater/alert/arming"
+	"stillwater/cmd/stillwater/internal/redact"
 )
 
 // reloadTargets are the parts of the running daemon a reload changes.
@@ -42,7 +43,7 @@ func newReloader(log *slog.Logger, running Config, acc access, to reloadTargets)
 // what changed and which settings wait for a restart. Cameras added,
 // removed or pointed at another source need a restart.
 func (r *reloader) apply(next Config) {
-	log := withRedaction(r.log, next.Secrets()...)
+	log := redact.WithRedaction(r.log, next.Secrets()...)
 	sch, err := next.schedules()
 	if err != nil {
 		log.Error("reload refused", "err", err)

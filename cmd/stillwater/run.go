@@ -10,6 +10,7 @@ import (
 	"os/signal"
 	"syscall"
 
+	"stillwater/cmd/stillwater/internal/redact"
 	"stillwater/vision"
 )
 
@@ -48,7 +49,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		return err
 	}
 	// Every secret the configuration holds is hidden in every log line.
-	log := withRedaction(newLogger(cfg.Log, stderr), cfg.Secrets()...)
+	log := redact.WithRedaction(newLogger(cfg.Log, stderr), cfg.Secrets()...)
 
 	// SIGHUP reloads the file; a broken file is refused and logged, and
 	// the daemon goes on with what it has.
@@ -68,7 +69,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 				log.Error("reload refused; keeping the running configuration", "err", err)
 				continue
 			}
-			withRedaction(log, next.Secrets()...)
+			redact.WithRedaction(log, next.Secrets()...)
 			select {
 			case reload <- next:
 			case <-ctx.Done():
@@ -83,7 +84,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		defer stopLibLog()
 	}
 	// The error is printed by main, outside the log: hide secrets there too.
-	return redactorOf(log).Err(serve(ctx, cfg, deps{Log: log, Reload: reload}))
+	return redact.Of(log).Err(serve(ctx, cfg, deps{Log: log, Reload: reload}))
 }
 
 func newLogger(c LogConfig, w io.Writer) *slog.Logger {

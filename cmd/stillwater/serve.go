@@ -20,6 +20,7 @@ import (
 	"stillwater/alert"
 	"stillwater/alert/arming"
 	"stillwater/alert/bus"
+	"stillwater/cmd/stillwater/internal/redact"
 )
 
 // safetyNotice is logged at start-up and printed by the README.
@@ -50,7 +51,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	if now == nil {
 		now = time.Now
 	}
-	log = withRedaction(log, cfg.Secrets()...)
+	log = redact.WithRedaction(log, cfg.Secrets()...)
 	log.Warn(safetyNotice)
 	if err := os.MkdirAll(cfg.DataDir, 0o750); err != nil {
 		return fmt.Errorf("data_dir %s: %w", cfg.DataDir, err)
@@ -99,7 +100,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	registerBusMetrics(reg, bus, now)
 
 	busOut := &busSink{pub: pub, met: met}
-	bs := redactSink{next: busOut, red: redactorOf(log)}
+	bs := redactSink{next: busOut, red: redact.Of(log)}
 	for _, cam := range cfg.Cameras {
 		id := cam.ID
 		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
@@ -343,7 +344,7 @@ type busSink struct {
 // does: a fault's detail may quote an error that quotes a camera URL.
 type redactSink struct {
 	next sink
-	red  *redactor
+	red  *redact.Redactor
 }
 
 func (r redactSink) send(ctx context.Context, m outMsg) error {

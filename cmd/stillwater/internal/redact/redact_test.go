@@ -1,4 +1,4 @@
-package main
+package redact
 
 import (
 	"bytes"
@@ -14,7 +14,7 @@ import (
 )
 
 func TestRedactorForms(t *testing.T) {
-	r := newRedactor("p@ss&w<rd", "abc", "abcdef", "")
+	r := New("p@ss&w<rd", "abc", "abcdef", "")
 	cases := []struct{ in, want string }{
 		{"rtsp://cam/s?pwd=p@ss&w<rd", "rtsp://cam/s?pwd=xxxxx"},
 		{"rtsp://cam/s?pwd=" + url.QueryEscape("p@ss&w<rd"), "rtsp://cam/s?pwd=xxxxx"},
@@ -30,7 +30,7 @@ func TestRedactorForms(t *testing.T) {
 	b, err := json.Marshal(map[string]string{"detail": "open rtsp://cam/s?pwd=p@ss&w<rd failed"})
 	require.NoError(t, err)
 	assert.NotContains(t, string(r.Bytes(b)), "ss")
-	assert.Nil(t, newRedactor().rep, "nothing to hide, nothing replaced")
+	assert.Nil(t, New().rep, "nothing to hide, nothing replaced")
 	plain := errors.New("plain")
 	assert.Same(t, plain, r.Err(plain), "an error without a secret is passed on as it is")
 }
@@ -49,8 +49,8 @@ func TestRedactHandlerHidesEveryAttribute(t *testing.T) {
 			if format == "json" {
 				base = slog.New(slog.NewJSONHandler(&buf, nil))
 			}
-			log := withRedaction(base, secret)
-			assert.Same(t, log, withRedaction(log, "another-one"), "one redactor per logger")
+			log := WithRedaction(base, secret)
+			assert.Same(t, log, WithRedaction(log, "another-one"), "one redactor per logger")
 			log = log.With("src", "rtsp://cam/?pwd="+secret)
 			log.WithGroup("g").Error("open rtsp://cam/?pwd="+secret+" failed",
 				"err", fmt.Errorf("open camera %q: refused", "rtsp://cam/?pwd="+secret),

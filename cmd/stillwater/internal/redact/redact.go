@@ -1,4 +1,6 @@
-package main
+// Package redact hides secrets (passwords, tokens, their URL- and
+// JSON-escaped forms) in log lines, errors and bus URLs.
+package redact
 
 import (
 	"context"
@@ -16,25 +18,26 @@ import (
 // password.
 const redactMark = "xxxxx"
 
-// redactor replaces secret values wherever they occur in text: every
+// Redactor replaces secret values wherever they occur in text: every
 // value that came from ${NAME}, a *_env or a *_file setting, or an inline
 // secret. Each is also matched as it appears URL-escaped and inside a JSON
 // string. Safe for concurrent use; values are only ever added, so that a
 // secret rotated away stays hidden in later lines too.
-type redactor struct {
+type Redactor struct {
 	mu    sync.RWMutex
 	forms map[string]bool
 	rep   *strings.Replacer // nil while there is nothing to hide
 }
 
-func newRedactor(secrets ...string) *redactor {
-	r := &redactor{forms: map[string]bool{}}
+// New returns a redactor that hides the given secrets.
+func New(secrets ...string) *Redactor {
+	r := &Redactor{forms: map[string]bool{}}
 	r.add(secrets...)
 	return r
 }
 
 // add hides more values; empty ones are ignored.
-func (r *redactor) add(secrets ...string) {
+func (r *Redactor) add(secrets ...string) {
 	r.mu.Lock()
 	defer r.mu.Unlock()
 	n := len(r.forms)
@@ -69,7 +72,7 @@ func (r *redactor) add(secrets ...string) {
 }
 
 // String returns s with every secret replaced.
-func (r *redactor) String(s string) string {
+func (r *Redactor) String(s string) string {
 	if r == nil {
 		return s
 	}
@@ -84,7 +87,7 @@ func (r *redactor) String(s string) string {
 
 // Bytes is String for a byte slice; b itself is returned when nothing
 // was hidden.
-func (r *redactor) Bytes(b []byte) []byte {
+func (r *Redactor) Bytes(b []byte) []byte {
 	s := string(b)
 	if out := r.String(s); out != s {
 		return []byte(out)
@@ -94,7 +97,7 @@ func (r *redactor) Bytes(b []byte) []byte {
 
 // Err returns err with its message redacted; err itself when nothing was
 // hidden, so that errors.Is keeps working in the common case.
-func (r *redactor) Err(err error) error {
+func (r *Redactor) Err(err error) error {
 	if err == nil {
 		return nil
 	}
@@ -110,22 +113,22 @@ func (r *redactor) Err(err error) error {
 // prints a secret) before the next handler formats the record.
 type redactHandler struct {
 	next slog.Handler
-	red  *redactor
+	red  *Redactor
 }
 
-// withRedaction returns log with secrets hidden. A logger already made
+// WithRedaction returns log with secrets hidden. A logger already made
 // by withRedaction only learns the new secrets, so that the daemon keeps
 // one redactor however often it is called.
-func withRedaction(log *slog.Logger, secrets ...string) *slog.Logger {
+func WithRedaction(log *slog.Logger, secrets ...string) *slog.Logger {
 	if h, ok := log.Handler().(*redactHandler); ok {
 		h.red.add(secrets...)
 		return log
 	}
-	return slog.New(&redactHandler{next: log.Handler(), red: newRedactor(secrets...)})
+	return slog.New(&redactHandler{next: log.Handler(), red: New(secrets...)})
 }
 
-// redactorOf returns log's redactor, or nil when it has none.
-func redactorOf(log *slog.Logger) *redactor {
+// Of returns log's redactor, or nil when it has none.
+func Of(log *slog.Logger) *Redactor {
 	if h, ok := log.Handler().(*redactHandler); ok {
 		return h.red
 	}
