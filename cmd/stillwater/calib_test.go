@@ -120,9 +120,9 @@ func TestCalibrationPoseAndRefraction(t *testing.T) {
 			require.NoError(t, err)
 
 			// Pose: height within 10 % of the generator's.
-			herr := math.Abs(cal.cam.Height-tc.pose.Height) / tc.pose.Height
+			herr := math.Abs(camOf(cal).Height-tc.pose.Height) / tc.pose.Height
 			refdata.Report(t, "camera estimated at (%.2f, %.2f) m, %.3f m up; generator (%.2f, %.2f) m, %.2f m: height error %.1f %%",
-				cal.cam.X, cal.cam.Y, cal.cam.Height, tc.pose.X, tc.pose.Y, tc.pose.Height, 100*herr)
+				camOf(cal).X, camOf(cal).Y, camOf(cal).Height, tc.pose.X, tc.pose.Y, tc.pose.Height, 100*herr)
 			assert.LessOrEqual(t, herr, 0.10, "relative height error")
 
 			var worstSurf, worstOn, worstOff, sumOn, sumOff float64
@@ -130,7 +130,7 @@ func TestCalibrationPoseAndRefraction(t *testing.T) {
 			for x := 0.5; x < s.PoolLength; x++ {
 				for y := 0.5; y < s.PoolWidth; y++ {
 					// On the surface: the homography alone.
-					got, ok := cal.surface(click(t, s, x, y, 0))
+					got, ok := calSurface(cal, click(t, s, x, y, 0))
 					require.True(t, ok)
 					worstSurf = math.Max(worstSurf, got.Dist(homography.Point{X: x, Y: y}))
 
@@ -138,9 +138,9 @@ func TestCalibrationPoseAndRefraction(t *testing.T) {
 					d := shallow + (deep-shallow)*x/s.PoolLength
 					ax, ay, err := s.Apparent(x, y, d)
 					require.NoError(t, err)
-					seen, ok := cal.surface(click(t, s, ax, ay, 0))
+					seen, ok := calSurface(cal, click(t, s, ax, ay, 0))
 					require.True(t, ok)
-					f := cal.floor(seen)
+					f := calFloor(cal, seen)
 					truth := homography.Point{X: x, Y: y}
 					on := homography.Point{X: f.X, Y: f.Y}.Dist(truth)
 					off := seen.Dist(truth)
@@ -189,15 +189,15 @@ func TestCalibrationLensDistortion(t *testing.T) {
 		require.NoError(t, err)
 		for x := 0.5; x < 8; x++ {
 			for y := 0.5; y < 4; y++ {
-				got, ok := cal.surface(distorted(x, y))
+				got, ok := calSurface(cal, distorted(x, y))
 				require.True(t, ok)
 				worst[name] = math.Max(worst[name], got.Dist(homography.Point{X: x, Y: y}))
 			}
 		}
 		if name == "with lens" {
 			// The mask follows the curved edges: 16 points an edge.
-			assert.Len(t, cal.mask(), 64)
-			assert.InDelta(t, s.Camera.Height, cal.cam.Height, 0.1*s.Camera.Height, "height from the lens intrinsics")
+			assert.Len(t, calMask(cal), 64)
+			assert.InDelta(t, s.Camera.Height, camOf(cal).Height, 0.1*s.Camera.Height, "height from the lens intrinsics")
 		}
 	}
 	t.Logf("barrel lens k1 = -0.25: worst surface error without lens correction %.3f m, with %.3f m", worst["without lens"], worst["with lens"])
@@ -220,14 +220,14 @@ func TestCalibrationCoping(t *testing.T) {
 		require.NoError(t, err)
 		for x := 0.5; x < 8; x++ {
 			for y := 0.5; y < 4; y++ {
-				got, ok := cal.surface(click(t, s, x, y, 0))
+				got, ok := calSurface(cal, click(t, s, x, y, 0))
 				require.True(t, ok)
 				worst[on] = math.Max(worst[on], got.Dist(homography.Point{X: x, Y: y}))
 			}
 		}
 		if on == "coping" {
-			t.Logf("camera height above the water %.3f m (generator %.2f m)", cal.cam.Height, s.Camera.Height)
-			assert.InDelta(t, s.Camera.Height, cal.cam.Height, 0.1*s.Camera.Height)
+			t.Logf("camera height above the water %.3f m (generator %.2f m)", camOf(cal).Height, s.Camera.Height)
+			assert.InDelta(t, s.Camera.Height, camOf(cal).Height, 0.1*s.Camera.Height)
 		}
 	}
 	t.Logf("corners on the coping: worst surface error taken as water-line clicks %.3f m, with corners_on: coping %.3f m", worst["water"], worst["coping"])
@@ -245,11 +245,11 @@ func TestCalibrationAreaInsideMask(t *testing.T) {
 		u, v, _ := s.Project(q[0], q[1], 0)
 		contour = append(contour, vision.Point{X: u, Y: v})
 	}
-	assert.InDelta(t, 0.5, cal.area(contour), 0.01, "m²")
-	assert.True(t, cal.inside(homography.Point{X: 4, Y: 2}))
-	assert.False(t, cal.inside(homography.Point{X: -0.2, Y: 2}))
-	assert.False(t, cal.inside(homography.Point{X: 4, Y: 4.1}))
-	m := cal.mask()
+	assert.InDelta(t, 0.5, calArea(cal, contour), 0.01, "m²")
+	assert.True(t, cal.Inside(homography.Point{X: 4, Y: 2}))
+	assert.False(t, cal.Inside(homography.Point{X: -0.2, Y: 2}))
+	assert.False(t, cal.Inside(homography.Point{X: 4, Y: 4.1}))
+	m := calMask(cal)
 	require.Len(t, m, 4)
 	for i, c := range cornersConfig(t, s, 0).Corners {
 		assert.InDelta(t, c[0], m[i].X, 1e-6)
@@ -265,16 +265,16 @@ func TestCalibrationAreaInsideMask(t *testing.T) {
 		assert.Equal(t, m, dc.Mask, method)
 	}
 	// Without a depth model the floor is the surface.
-	f := cal.floor(homography.Point{X: 2, Y: 3})
+	f := calFloor(cal, homography.Point{X: 2, Y: 3})
 	assert.Equal(t, [3]float64{2, 3, 0}, [3]float64{f.X, f.Y, f.Depth})
 	// Sky above the horizon does not map onto the pool: a low camera far
 	// back sees the sky in its top rows.
 	low := sceneFor(synth.Pose{X: -8, Y: 2, Height: 3, PitchDeg: 20, HFOVDeg: 70})
 	cal, err = newCalibration(CameraConfig{ID: "t", CalibrationConfig: cornersConfig(t, low, 0)})
 	require.NoError(t, err)
-	_, ok := cal.surface(vision.Point{X: 320, Y: 0})
+	_, ok := calSurface(cal, vision.Point{X: 320, Y: 0})
 	assert.False(t, ok, "sky pixel")
-	_, ok = cal.surface(vision.Point{X: 320, Y: 479})
+	_, ok = calSurface(cal, vision.Point{X: 320, Y: 479})
 	assert.True(t, ok, "deck pixel")
 }
 
@@ -295,11 +295,11 @@ func TestCalibrationFreeform(t *testing.T) {
 	require.NoError(t, validateCalibration("cam", cfg))
 	cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: cfg})
 	require.NoError(t, err)
-	t.Logf("freeform: %d reference points, RMS %.3f m / %.2f px", cal.points, cal.rmsM, cal.rmsPx)
-	assert.Less(t, cal.rmsM, 0.03)
-	assert.True(t, cal.inside(homography.Point{X: 4, Y: 2}))
-	assert.False(t, cal.inside(homography.Point{X: 0.3, Y: 0.3}), "corner of the rectangle is outside the ellipse")
-	assert.Len(t, cal.mask(), 24)
+	t.Logf("freeform: %d reference points, RMS %.3f m / %.2f px", cal.Fit().Points, cal.Fit().RMSM, cal.Fit().RMSPx)
+	assert.Less(t, cal.Fit().RMSM, 0.03)
+	assert.True(t, cal.Inside(homography.Point{X: 4, Y: 2}))
+	assert.False(t, cal.Inside(homography.Point{X: 0.3, Y: 0.3}), "corner of the rectangle is outside the ellipse")
+	assert.Len(t, calMask(cal), 24)
 
 	// A mis-measured point is named.
 	bad := cfg
@@ -368,7 +368,7 @@ func TestCalibrationErrorsNameTheFix(t *testing.T) {
 	require.NoError(t, validateCalibration("cam", out))
 	cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: out})
 	require.NoError(t, err)
-	q, ok := cal.surface(click(t, far, 6, 2, 0))
+	q, ok := calSurface(cal, click(t, far, 6, 2, 0))
 	require.True(t, ok)
 	assert.InDelta(t, 0, q.Dist(homography.Point{X: 6, Y: 2}), 0.05)
 	out.Corners[2] = out.Corners[1]
@@ -497,7 +497,7 @@ func TestRefractionOnRenderedFrames(t *testing.T) {
 	cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: cfg})
 	require.NoError(t, err)
 	vc, err := vision.OpenCamera(vision.SourceConfig{URI: clip}, vision.DetectorConfig{
-		ProcessWidth: 640, Method: "mog2", History: 500, Threshold: 16, LearningRate: -1, MinPixels: 6, Mask: cal.mask()})
+		ProcessWidth: 640, Method: "mog2", History: 500, Threshold: 16, LearningRate: -1, MinPixels: 6, Mask: calMask(cal)})
 	require.NoError(t, err)
 	defer vc.Close()
 	var on, off, seen []float64
@@ -518,9 +518,9 @@ func TestRefractionOnRenderedFrames(t *testing.T) {
 				big = b
 			}
 		}
-		sp, ok := cal.surface(big.Centroid)
+		sp, ok := calSurface(cal, big.Centroid)
 		require.True(t, ok)
-		f := cal.floor(sp)
+		f := calFloor(cal, sp)
 		real := homography.Point{X: occ.Under.X, Y: occ.Under.Y}
 		on = append(on, homography.Point{X: f.X, Y: f.Y}.Dist(real))
 		off = append(off, sp.Dist(real))
@@ -537,4 +537,15 @@ func median(v []float64) float64 {
 	c := append([]float64(nil), v...)
 	sort.Float64s(c)
 	return c[len(c)/2]
+}
+
+// calSurface maps a recorded pixel to pool metres on the water surface.
+func calSurface(c *homography.Calibration, p vision.Point) (homography.Point, bool) {
+	return c.Surface(homography.Point(p))
+}
+
+// camOf returns the calibration's camera centre, pool metres.
+func camOf(c *homography.Calibration) homography.Camera {
+	cam, _, _ := c.Camera()
+	return cam
 }

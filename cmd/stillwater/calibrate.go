@@ -263,10 +263,10 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 	if f.out == "" {
 		report = stderr // stdout carries the YAML
 	}
-	for i, p := range cal.corners {
+	for i, p := range cal.Corners() {
 		if p.X != cfg.Corners[i][0] || p.Y != cfg.Corners[i][1] {
 			fmt.Fprintln(report, "note:       corners C and D were given in crossed order; the written calibration has them swapped back")
-			for j, q := range cal.corners {
+			for j, q := range cal.Corners() {
 				cfg.Corners[j] = [2]float64{q.X, q.Y}
 			}
 			break
@@ -329,30 +329,32 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 }
 
 // printCalibration writes the installer's summary.
-func printCalibration(w io.Writer, src string, size image.Point, cfg CalibrationConfig, cal *calibration) {
+func printCalibration(w io.Writer, src string, size image.Point, cfg CalibrationConfig, cal *homography.Calibration) {
 	fmt.Fprintf(w, "frame:      %s, %d×%d px\n", vision.Redact(src), size.X, size.Y)
-	fmt.Fprintf(w, "pool:       %g m × %g m, corners clicked at the %s\n", cal.length, cal.width, map[bool]string{true: "coping", false: "water line"}[cal.coping > 0])
-	if cal.points == 4 && !cfg.freeform() {
-		fmt.Fprintf(w, "reprojection: %.3f m / %.2f px RMS (four corners fit exactly; click accuracy shows in metres per pixel)\n", cal.rmsM, cal.rmsPx)
+	L, W := cal.Size()
+	fit := cal.Fit()
+	cam, hasCam, estimated := cal.Camera()
+	fmt.Fprintf(w, "pool:       %g m × %g m, corners clicked at the %s\n", L, W, map[bool]string{true: "coping", false: "water line"}[cal.Coping() > 0])
+	if fit.Points == 4 && !cfg.freeform() {
+		fmt.Fprintf(w, "reprojection: %.3f m / %.2f px RMS (four corners fit exactly; click accuracy shows in metres per pixel)\n", fit.RMSM, fit.RMSPx)
 	} else {
-		fmt.Fprintf(w, "reprojection: %.3f m RMS, worst %.3f m, %.2f px RMS over %d points\n", cal.rmsM, cal.worstM, cal.rmsPx, cal.points)
+		fmt.Fprintf(w, "reprojection: %.3f m RMS, worst %.3f m, %.2f px RMS over %d points\n", fit.RMSM, fit.WorstM, fit.RMSPx, fit.Points)
 	}
 	switch {
-	case !cal.hasCam:
+	case !hasCam:
 		fmt.Fprintln(w, "camera:     position unknown (give -hfov, the lens, or -camera to enable refraction)")
-	case cal.estimated:
-		fmt.Fprintf(w, "camera:     estimated at x %.2f m, y %.2f m, %.2f m above the water\n", cal.cam.X, cal.cam.Y, cal.cam.Height)
+	case estimated:
+		fmt.Fprintf(w, "camera:     estimated at x %.2f m, y %.2f m, %.2f m above the water\n", cam.X, cam.Y, cam.Height)
 	default:
-		fmt.Fprintf(w, "camera:     measured at x %.2f m, y %.2f m, %.2f m above the water\n", cal.cam.X, cal.cam.Y, cal.cam.Height)
+		fmt.Fprintf(w, "camera:     measured at x %.2f m, y %.2f m, %.2f m above the water\n", cam.X, cam.Y, cam.Height)
 	}
 	near, far, nearName, farName := math.Inf(1), 0.0, "", ""
-	L, W := cal.length, cal.width
 	for i, q := range []homography.Point{{X: 0, Y: 0}, {X: L, Y: 0}, {X: L, Y: W}, {X: 0, Y: W}} {
-		p, ok := cal.pixel(q)
+		p, ok := cal.Pixel(q)
 		if !ok {
 			continue
 		}
-		m := cal.metresPerPixel(p)
+		m := cal.MetresPerPixel(p)
 		name := string(rune('A' + i))
 		if m < near {
 			near, nearName = m, name
@@ -362,8 +364,8 @@ func printCalibration(w io.Writer, src string, size image.Point, cfg Calibration
 		}
 	}
 	fmt.Fprintf(w, "scale:      %.3f m/px at the near end (corner %s), %.3f m/px at the far end (corner %s)\n", near, nearName, far, farName)
-	if cal.refract {
-		fmt.Fprintf(w, "water:      %.2f m deep at x = 0, %.2f m at x = %g m; floor positions corrected for refraction (n = %.3f)\n", cal.depth.At(0), cal.depth.At(L), L, homography.WaterIndex)
+	if depth, ok := cal.Depth(); ok {
+		fmt.Fprintf(w, "water:      %.2f m deep at x = 0, %.2f m at x = %g m; floor positions corrected for refraction (n = %.3f)\n", depth.At(0), depth.At(L), L, homography.WaterIndex)
 	} else {
 		fmt.Fprintln(w, "water:      no depth given; positions are reported on the surface")
 	}
@@ -425,52 +427,52 @@ var (
 
 // surfaceLine samples the segment a→b on the water surface (pool
 // metres) into frame pixels, so that lens curvature shows.
-func (c *calibration) surfaceLine(a, b homography.Point) []vision.Point {
+func surfaceLine(c *homography.Calibration, a, b homography.Point) []vision.Point {
 	const n = 24
 	var out []vision.Point
 	for k := 0; k <= n; k++ {
 		t := float64(k) / n
-		if p, ok := c.pixel(homography.Point{X: a.X + t*(b.X-a.X), Y: a.Y + t*(b.Y-a.Y)}); ok {
-			out = append(out, p)
+		if p, ok := c.Pixel(homography.Point{X: a.X + t*(b.X-a.X), Y: a.Y + t*(b.Y-a.Y)}); ok {
+			out = append(out, vision.Point(p))
 		}
 	}
 	return out
 }
 
-func overlayStrokes(c *calibration) []vision.Stroke {
-	L, W := c.length, c.width
+func overlayStrokes(c *homography.Calibration) []vision.Stroke {
+	L, W := c.Size()
 	var s []vision.Stroke
 	for x := 1.0; x < L-1e-9; x++ {
-		s = append(s, vision.Stroke{Points: c.surfaceLine(homography.Point{X: x}, homography.Point{X: x, Y: W}), Color: colGrid, Width: 1})
+		s = append(s, vision.Stroke{Points: surfaceLine(c, homography.Point{X: x}, homography.Point{X: x, Y: W}), Color: colGrid, Width: 1})
 	}
 	for y := 1.0; y < W-1e-9; y++ {
-		s = append(s, vision.Stroke{Points: c.surfaceLine(homography.Point{Y: y}, homography.Point{X: L, Y: y}), Color: colGrid, Width: 1})
+		s = append(s, vision.Stroke{Points: surfaceLine(c, homography.Point{Y: y}, homography.Point{X: L, Y: y}), Color: colGrid, Width: 1})
 	}
-	if c.outline != nil {
+	if outline := c.Outline(); outline != nil {
 		var px []vision.Point
-		for _, q := range c.outline {
-			if p, ok := c.pixel(q); ok {
-				px = append(px, p)
+		for _, q := range outline {
+			if p, ok := c.Pixel(q); ok {
+				px = append(px, vision.Point(p))
 			}
 		}
 		s = append(s, vision.Stroke{Points: px, Closed: true, Color: colOutline, Width: 2})
 	} else {
 		corners := []homography.Point{{X: 0, Y: 0}, {X: L, Y: 0}, {X: L, Y: W}, {X: 0, Y: W}}
 		for i := range corners {
-			s = append(s, vision.Stroke{Points: c.surfaceLine(corners[i], corners[(i+1)%4]), Color: colOutline, Width: 2})
+			s = append(s, vision.Stroke{Points: surfaceLine(c, corners[i], corners[(i+1)%4]), Color: colOutline, Width: 2})
 		}
 	}
 	s = append(s,
-		vision.Stroke{Points: c.surfaceLine(homography.Point{}, homography.Point{X: 1}), Color: colX, Width: 3},
-		vision.Stroke{Points: c.surfaceLine(homography.Point{}, homography.Point{Y: 1}), Color: colY, Width: 3})
+		vision.Stroke{Points: surfaceLine(c, homography.Point{}, homography.Point{X: 1}), Color: colX, Width: 3},
+		vision.Stroke{Points: surfaceLine(c, homography.Point{}, homography.Point{Y: 1}), Color: colY, Width: 3})
 	return s
 }
 
-func overlayLabels(c *calibration) []vision.Label {
-	L, W := c.length, c.width
+func overlayLabels(c *homography.Calibration) []vision.Label {
+	L, W := c.Size()
 	var out []vision.Label
 	add := func(q homography.Point, text string, col color.RGBA, dx, dy float64) {
-		if p, ok := c.pixel(q); ok {
+		if p, ok := c.Pixel(q); ok {
 			out = append(out, vision.Label{At: vision.Point{X: p.X + dx, Y: p.Y + dy}, Text: text, Color: col})
 		}
 	}
@@ -490,23 +492,24 @@ const rectMargin = 1.0
 // rectified view at ppm pixels per metre, with the pool's corner A at
 // (ppm·rectMargin, ppm·rectMargin), x to the right and y down, and the
 // view's size.
-func (c *calibration) rectifiedH(ppm float64) (homography.H, image.Point) {
+func rectifiedH(c *homography.Calibration, ppm float64) (homography.H, image.Point) {
 	o := ppm * rectMargin
 	s := homography.H{ppm, 0, o, 0, ppm, o, 0, 0, 1}
-	size := image.Pt(int(math.Ceil(ppm*(c.length+2*rectMargin))), int(math.Ceil(ppm*(c.width+2*rectMargin))))
-	return s.Mul(c.toPlane), size
+	length, width := c.Size()
+	size := image.Pt(int(math.Ceil(ppm*(length+2*rectMargin))), int(math.Ceil(ppm*(width+2*rectMargin))))
+	return s.Mul(c.ToPlane()), size
 }
 
 // rectify returns the top-down view of the calibration plane.
-func rectify(frame image.Image, c *calibration, ppm float64) (image.Image, error) {
-	if c.hasLens {
-		k := c.lens.K
+func rectify(frame image.Image, c *homography.Calibration, ppm float64) (image.Image, error) {
+	if lens, ok := c.Lens(); ok {
+		k := lens.K
 		var err error
-		frame, err = vision.UndistortImage(frame, [9]float64{k.Fx, 0, k.Cx, 0, k.Fy, k.Cy, 0, 0, 1}, c.lens.Dist, c.lens.Model == homography.LensFisheye)
+		frame, err = vision.UndistortImage(frame, [9]float64{k.Fx, 0, k.Cx, 0, k.Fy, k.Cy, 0, 0, 1}, lens.Dist, lens.Model == homography.LensFisheye)
 		if err != nil {
 			return nil, err
 		}
 	}
-	h, size := c.rectifiedH(ppm)
+	h, size := rectifiedH(c, ppm)
 	return vision.WarpPerspective(frame, h, size)
 }

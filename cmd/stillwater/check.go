@@ -19,6 +19,7 @@ import (
 	"stillwater/alert"
 	"stillwater/alert/arming"
 	"stillwater/cmd/stillwater/internal/redact"
+	"stillwater/homography"
 	"stillwater/vision"
 )
 
@@ -174,12 +175,12 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 		if crossedCorners(cam, cal) {
 			fmt.Fprintf(w, "    corners C and D are crossed (A, B, C, D in this order make a bow-tie); used as A, B, D, C: swap C and D in the config\n")
 		}
-		if cal.hasCam {
+		if pos, ok, estimated := cal.Camera(); ok {
 			how := "measured"
-			if cal.estimated {
+			if estimated {
 				how = "estimated from the calibration"
 			}
-			fmt.Fprintf(w, "    camera at x %.2f m, y %.2f m, %.2f m above the water (%s)\n", cal.cam.X, cal.cam.Y, cal.cam.Height, how)
+			fmt.Fprintf(w, "    camera at x %.2f m, y %.2f m, %.2f m above the water (%s)\n", pos.X, pos.Y, pos.Height, how)
 		}
 		if cam.ReferenceFrame != "" {
 			fmt.Fprintf(w, "    camera-moved check against %s\n", cam.ReferenceFrame)
@@ -282,10 +283,10 @@ func calibrationLine(cam CameraConfig) string {
 
 // resolution reports metres per pixel at the sharpest and coarsest point
 // of the water outline, which says how small a child the camera resolves.
-func resolution(cal *calibration) string {
+func resolution(cal *homography.Calibration) string {
 	best, worst := 0.0, 0.0
-	for i, p := range cal.mask() {
-		m := cal.metresPerPixel(p)
+	for i, p := range cal.Mask() {
+		m := cal.MetresPerPixel(p)
 		if i == 0 || m < best {
 			best = m
 		}
@@ -298,12 +299,13 @@ func resolution(cal *calibration) string {
 
 // crossedCorners reports whether the calibration uses the corners in
 // another order than written (C and D swapped to undo a bow-tie).
-func crossedCorners(cam CameraConfig, cal *calibration) bool {
-	if len(cam.Corners) != 4 || len(cal.corners) != 4 {
+func crossedCorners(cam CameraConfig, cal *homography.Calibration) bool {
+	corners := cal.Corners()
+	if len(cam.Corners) != 4 || len(corners) != 4 {
 		return false
 	}
 	for i, p := range cam.Corners {
-		if cal.corners[i].X != p[0] || cal.corners[i].Y != p[1] {
+		if corners[i].X != p[0] || corners[i].Y != p[1] {
 			return true
 		}
 	}

@@ -404,7 +404,8 @@ func (c Config) Validate() error {
 		if err := validateCalibration(where, cam.CalibrationConfig); err != nil {
 			return err
 		}
-		if _, err := buildCalibration(cam.CalibrationConfig); err != nil {
+		cal, err := buildCalibration(cam.CalibrationConfig)
+		if err != nil {
 			return fmt.Errorf("%s: calibration: %w", where, err)
 		}
 		if cam.SourcePx != ([2]int{}) {
@@ -415,7 +416,7 @@ func (c Config) Validate() error {
 		if err := validateDetect(where, cam.Detect); err != nil {
 			return err
 		}
-		if err := validateZones(where, cam); err != nil {
+		if err := validateZones(where, cam, cal); err != nil {
 			return err
 		}
 		if cam.FrameTimeout < Duration(500*time.Millisecond) || cam.FrameTimeout > Duration(20*time.Second) {

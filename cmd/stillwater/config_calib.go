@@ -3,6 +3,7 @@ package main
 import (
 	"errors"
 	"fmt"
+	"image"
 	"math"
 	"time"
 
@@ -124,6 +125,44 @@ func (d DriftConfig) withDefaults() DriftConfig {
 		d.MaxShift = defaultDriftMaxShift
 	}
 	return d
+}
+
+// spec returns the plain description homography.NewCalibration solves.
+func (c CalibrationConfig) spec() homography.CalibrationSpec {
+	s := homography.CalibrationSpec{Length: c.Pool.Length, Width: c.Pool.Width}
+	if c.Frame != [2]int{} {
+		s.Frame = image.Pt(c.Frame[0], c.Frame[1])
+	}
+	if l, ok := c.Lens.lens(); ok {
+		s.Lens = &l
+	} else if c.Lens != nil {
+		s.HFOVDeg = c.Lens.HFOVDeg
+	}
+	if c.CornersOn == "coping" {
+		s.Coping = c.Coping
+		if s.Coping == 0 {
+			s.Coping = homography.DefaultCopingHeight
+		}
+	}
+	for _, p := range c.Corners {
+		s.Corners = append(s.Corners, homography.Point{X: p[0], Y: p[1]})
+	}
+	for _, r := range c.Reference {
+		s.Reference = append(s.Reference, homography.ReferencePoint{
+			Pixel: homography.Point{X: r.Pixel[0], Y: r.Pixel[1]},
+			Pool:  homography.Point{X: r.Pool[0], Y: r.Pool[1]},
+		})
+	}
+	if p := c.CameraPosition; p != nil {
+		s.Camera = &homography.Camera{X: p.X, Y: p.Y, Height: p.Height}
+	}
+	if d, ok := c.Water.depthProfile(c.Pool.Length); ok {
+		s.Depth = &d
+	}
+	for _, p := range c.Outline {
+		s.Outline = append(s.Outline, homography.Point{X: p[0], Y: p[1]})
+	}
+	return s
 }
 
 // freeform reports whether the calibration uses reference points.

@@ -319,15 +319,11 @@ type ZoneConfig struct {
 // edge (a ladder's handrails stand on the coping).
 const zoneMargin = 0.5
 
-// validateZones checks a camera's zones; where names the camera. The
-// camera's pool and corners must already be valid.
-func validateZones(where string, cam CameraConfig) error {
+// validateZones checks a camera's zones against its calibration; where
+// names the camera.
+func validateZones(where string, cam CameraConfig, cal *homography.Calibration) error {
 	if len(cam.Zones) == 0 {
 		return nil
-	}
-	cal, err := newCalibration(cam)
-	if err != nil {
-		return fmt.Errorf("%s.zones: %w", where, err)
 	}
 	names := map[string]bool{}
 	for i, z := range cam.Zones {
@@ -364,13 +360,13 @@ func validateZones(where string, cam CameraConfig) error {
 		for k, p := range pts {
 			q := homography.Point{X: p[0], Y: p[1]}
 			if field == "pixels" {
-				m, ok := cal.surface(vision.Point{X: p[0], Y: p[1]})
+				m, ok := cal.Surface(q)
 				if !ok {
 					return fmt.Errorf("%s.pixels[%d]: (%g, %g) does not map onto the pool plane (above the horizon?)", at, k, p[0], p[1])
 				}
 				q = m
 			}
-			if cal.outline == nil && (q.X < -zoneMargin || q.Y < -zoneMargin || q.X > L+zoneMargin || q.Y > W+zoneMargin) {
+			if cal.Outline() == nil && (q.X < -zoneMargin || q.Y < -zoneMargin || q.X > L+zoneMargin || q.Y > W+zoneMargin) {
 				return fmt.Errorf("%s.%s[%d]: (%g, %g) lies at (%.2f, %.2f) m, outside the %gx%g m pool (more than %g m beyond its edge)",
 					at, field, k, p[0], p[1], q.X, q.Y, L, W, zoneMargin)
 			}
@@ -435,9 +431,10 @@ type zone struct {
 // zoneSet is a camera's exclusion zones.
 type zoneSet []zone
 
-// newZoneSet validates cam's zones and returns them.
-func newZoneSet(cam CameraConfig) (zoneSet, error) {
-	if err := validateZones("camera "+cam.ID, cam); err != nil {
+// newZoneSet validates cam's zones against its calibration and returns
+// them.
+func newZoneSet(cam CameraConfig, cal *homography.Calibration) (zoneSet, error) {
+	if err := validateZones("camera "+cam.ID, cam, cal); err != nil {
 		return nil, err
 	}
 	var zs zoneSet
@@ -486,16 +483,16 @@ func insidePolygon(pts [][2]float64, x, y float64) bool {
 // section, the pool outline as the watched mask and the pool-plane
 // footprint of a pixel, so that clean-up is scale-aware. The daemon and
 // replay both use it so that they see the same blobs.
-func detectorConfig(cam CameraConfig, cal *calibration) (vision.DetectorConfig, error) {
+func detectorConfig(cam CameraConfig, cal *homography.Calibration) (vision.DetectorConfig, error) {
 	d := cam.Detect
 	if d.Method != "meanvar" {
 		return vision.DetectorConfig{
 			ProcessWidth: d.ProcessWidth, Method: d.Method, History: d.History,
-			Threshold: d.Threshold, LearningRate: -1, MinPixels: 6, Mask: cal.mask(),
-			MinArea: d.MinArea, PixelArea: cal.pixelArea,
+			Threshold: d.Threshold, LearningRate: -1, MinPixels: 6, Mask: calMask(cal),
+			MinArea: d.MinArea, PixelArea: func(p vision.Point) float64 { return cal.PixelArea(homography.Point(p)) },
 		}, nil
 	}
-	grid, err := cal.rectification(d.Cell, max(0, d.Deck))
+	grid, err := rectification(cal, d.Cell, max(0, d.Deck))
 	if err != nil {
 		return vision.DetectorConfig{}, fmt.Errorf("camera %s: %w", cam.ID, err)
 	}
@@ -506,7 +503,7 @@ func detectorConfig(cam CameraConfig, cal *calibration) (vision.DetectorConfig, 
 	mv.Smooth = d.Smooth
 	// The mask is not searched by meanvar (its grid is the pool and its
 	// deck), but the picture checks watch it (see vision.Camera.health).
-	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv, Mask: cal.mask()}, nil
+	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv, Mask: calMask(cal)}, nil
 }
 
 // detectOverrides are the detect settings a replay or sweep may set from

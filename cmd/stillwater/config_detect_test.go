@@ -49,7 +49,10 @@ func TestValidateZones(t *testing.T) {
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
-			err := validateZones("cameras[0] (pool)", zoneCamera(tt.zones...))
+			cam := zoneCamera(tt.zones...)
+			cal, err := newCalibration(cam)
+			require.NoError(t, err)
+			err = validateZones("cameras[0] (pool)", cam, cal)
 			if tt.wantErr == "" {
 				assert.NoError(t, err)
 				return
@@ -134,7 +137,9 @@ func TestZoneStep(t *testing.T) {
 				cam.Detect.Method = method
 				var logs bytes.Buffer
 				log := slog.New(slog.NewTextHandler(&logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
-				p, err := newProcessor(cam, 10, time.Time{}, time.Now, log, nil)
+				cal, err := newCalibration(cam)
+				require.NoError(t, err)
+				p, err := newProcessor(cam, cal, 10, time.Time{}, time.Now, log, nil)
 				require.NoError(t, err)
 				var msgs []outMsg
 				for i := 0; i < 20; i++ {

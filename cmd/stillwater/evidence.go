@@ -37,7 +37,7 @@ func newEvidenceSettings(cfg Config) evidenceSettings {
 // annotation draws the water outline and every live track with its
 // position in pool metres.
 func annotation(cam CameraConfig, proc *processor, caption string) vision.Annotation {
-	a := vision.Annotation{Outline: proc.cal.mask(), Caption: caption}
+	a := vision.Annotation{Outline: calMask(proc.cal), Caption: caption}
 	for _, t := range proc.tracks {
 		a.Boxes = append(a.Boxes, vision.LabeledBox{Box: t.Box, Label: fmt.Sprintf("track %d  %.2f m, %.2f m%s", t.ID, t.X, t.Y, proc.why(t.ID))})
 	}

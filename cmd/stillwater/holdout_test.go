@@ -72,7 +72,7 @@ func TestHoldoutCalibration(t *testing.T) {
 					u, ok := toPx.Map(p)
 					require.True(t, ok)
 					raw := lens.Distort(u)
-					q, ok := cal.surface(vision.Point{X: raw.X, Y: raw.Y})
+					q, ok := calSurface(cal, vision.Point{X: raw.X, Y: raw.Y})
 					require.True(t, ok, "(%g, %g) m does not map back", x, y)
 					worst = max(worst, q.Dist(p))
 				}

@@ -33,8 +33,8 @@ type sink interface {
 // same for the daemon and for replays.
 type processor struct {
 	cam    CameraConfig
-	cal    *calibration // frame pixels → pool metres: lens, homography, refraction
-	zones  zoneSet      // exclusion polygons
+	cal    *homography.Calibration // frame pixels → pool metres: lens, homography, refraction
+	zones  zoneSet                 // exclusion polygons
 	tracks []vision.Track
 	// evidence, when set, keeps the evidence of an alarm starting at this
 	// frame and returns its reference for the target message.
@@ -54,12 +54,10 @@ type processor struct {
 	metrics *cameraMetrics
 }
 
-func newProcessor(cam CameraConfig, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *cameraMetrics) (*processor, error) {
-	cal, err := newCalibration(cam)
-	if err != nil {
-		return nil, err
-	}
-	zones, err := newZoneSet(cam)
+// newProcessor returns the pipeline of one camera; cal is the camera's
+// calibration, built once by the caller.
+func newProcessor(cam CameraConfig, cal *homography.Calibration, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *cameraMetrics) (*processor, error) {
+	zones, err := newZoneSet(cam, cal)
 	if err != nil {
 		return nil, err
 	}
@@ -92,7 +90,7 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 			}
 			continue
 		}
-		c, ok := p.cal.surface(b.Centroid)
+		c, ok := p.cal.Surface(homography.Point(b.Centroid))
 		if !ok {
 			p.log.Debug("blob rejected: beyond the pool plane", "frame", r.Index, "px", b.Centroid)
 			p.metrics.rejected("outside")
@@ -103,8 +101,8 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 			p.metrics.rejected("zone")
 			continue
 		}
-		area := p.cal.area(b.Contour)
-		inside := p.cal.inside(c)
+		area := calArea(p.cal, b.Contour)
+		inside := p.cal.Inside(c)
 		switch {
 		case !inside:
 			p.log.Debug("blob rejected: centre outside the pool", "frame", r.Index, "x_m", c.X, "y_m", c.Y)
@@ -186,7 +184,7 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 			V: alert.Version, Kind: alert.KindTarget, Camera: p.cam.ID, Track: o.Track, Seq: p.seq, Event: dec.Event,
 			Time: now, FrameTime: frameTime, Frame: r.Index,
 			Surface:    alert.Position{X: round3(o.X), Y: round3(o.Y)},
-			Floor:      floorOf(p.cal.floor(homography.Point{X: o.X, Y: o.Y})),
+			Floor:      floorOf(calFloor(p.cal, homography.Point{X: o.X, Y: o.Y})),
 			Area:       round4(o.Area),
 			Velocity:   alert.Velocity{X: round3(o.VX), Y: round3(o.VY)},
 			Dwell:      round3(dec.Dwell.Seconds()),
@@ -218,7 +216,7 @@ func (p *processor) reload(cam CameraConfig) error {
 	if err != nil {
 		return err
 	}
-	zones, err := newZoneSet(cam)
+	zones, err := newZoneSet(cam, cal)
 	if err != nil {
 		return err
 	}
@@ -251,7 +249,7 @@ func (p *processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool
 		return reject("zone", "in exclusion zone", "zone", name)
 	}
 	switch {
-	case !p.cal.inside(c):
+	case !p.cal.Inside(c):
 		return reject("outside", "centre outside the pool")
 	case f.Area < d.MinArea*candidateShare:
 		return reject("small", fmt.Sprintf("far smaller than a child's body (%.3f m² < %.3f m²)", f.Area, d.MinArea*candidateShare))

@@ -163,7 +163,7 @@ func restartKeys(running, next Config) []string {
 		}
 		a, errA := newCalibration(o)
 		b, errB := newCalibration(c)
-		if errA == nil && errB == nil && !reflect.DeepEqual(a.mask(), b.mask()) {
+		if errA == nil && errB == nil && !reflect.DeepEqual(a.Mask(), b.Mask()) {
 			out = append(out, fmt.Sprintf("cameras[%s] water outline of the detector (calibration)", c.ID))
 		}
 	}

@@ -243,7 +243,7 @@ func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Write
 	epoch := replayEpoch()
 	var media time.Duration
 	now := func() time.Time { return epoch.Add(media) }
-	proc, err := newProcessor(cam, vc.FPS(), epoch, now, log, nil)
+	proc, err := newProcessor(cam, cal, vc.FPS(), epoch, now, log, nil)
 	if err != nil {
 		return st, err
 	}

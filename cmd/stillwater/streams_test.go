@@ -56,14 +56,14 @@ func TestDetectionCameraScales(t *testing.T) {
 				little, err := newCalibration(small)
 				require.NoError(t, err)
 				for _, p := range [][2]float64{{960, 540}, {700, 300}, {1400, 950}, {1000, 150}, {500, 900}} {
-					a, okA := big.surface(vision.Point{X: p[0], Y: p[1]})
-					b, okB := little.surface(vision.Point{X: p[0] * sx, Y: p[1] * sy})
+					a, okA := calSurface(big, vision.Point{X: p[0], Y: p[1]})
+					b, okB := calSurface(little, vision.Point{X: p[0] * sx, Y: p[1] * sy})
 					require.Equal(t, okA, okB)
 					assert.InDelta(t, a.X, b.X, 1e-6, "pixel %v", p)
 					assert.InDelta(t, a.Y, b.Y, 1e-6, "pixel %v", p)
 				}
-				assert.InDelta(t, big.cam.X, little.cam.X, 1e-6, "the camera is placed where it was")
-				assert.InDelta(t, big.cam.Height, little.cam.Height, 1e-6)
+				assert.InDelta(t, camOf(big).X, camOf(little).X, 1e-6, "the camera is placed where it was")
+				assert.InDelta(t, camOf(big).Height, camOf(little).Height, 1e-6)
 			})
 		}
 	}

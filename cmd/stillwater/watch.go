@@ -15,6 +15,7 @@ import (
 	"time"
 
 	"stillwater/alert"
+	"stillwater/homography"
 	"stillwater/vision"
 	"stillwater/vision/remux"
 )
@@ -209,9 +210,10 @@ func (w *cameraWatch) send(ctx context.Context, m outMsg) {
 func (w *cameraWatch) capture(ctx context.Context) error {
 	bo := backoff{min: 100 * time.Millisecond, max: 2 * time.Second}
 	var vc *vision.Camera
+	var cal *homography.Calibration
 	for vc == nil {
 		var err error
-		vc, err = w.open()
+		vc, cal, err = w.open()
 		if err == nil {
 			break
 		}
@@ -223,7 +225,7 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 	}
 	defer vc.Close()
 	bo.reset()
-	proc, err := newProcessor(w.cam, vc.FPS(), w.epoch, w.now, w.log, w.met)
+	proc, err := newProcessor(w.cam, cal, vc.FPS(), w.epoch, w.now, w.log, w.met)
 	if err != nil {
 		return err
 	}
@@ -261,7 +263,7 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 			}
 			bo.reset()
 			w.log.Info("camera back", "size", info.Size, "model_kept", !info.Rebuilt)
-			if err := proc.cal.checkFrame(info.Size); err != nil {
+			if err := proc.cal.CheckFrame(info.Size); err != nil {
 				w.raise(ctx, alert.FaultCalibrationDrift, true, err.Error())
 			}
 			break
@@ -270,24 +272,25 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 	return nil
 }
 
-// open opens the source with the camera's detector.
-func (w *cameraWatch) open() (*vision.Camera, error) {
+// open opens the source with the camera's detector and returns the
+// camera's calibration, built once here for the whole capture.
+func (w *cameraWatch) open() (*vision.Camera, *homography.Calibration, error) {
 	cal, err := newCalibration(w.cam)
 	if err != nil {
-		return nil, err
+		return nil, nil, err
 	}
 	dc, err := detectorConfig(w.cam, cal)
 	if err != nil {
-		return nil, err
+		return nil, nil, err
 	}
 	w.useReference(&dc)
 	vc, err := vision.OpenCamera(w.sourceConfig(), dc)
 	if err != nil {
-		return nil, err
+		return nil, nil, err
 	}
-	if err := cal.checkFrame(vc.Size()); err != nil {
+	if err := cal.CheckFrame(vc.Size()); err != nil {
 		vc.Close()
-		return nil, fmt.Errorf("camera %s: %w", w.cam.ID, err)
+		return nil, nil, fmt.Errorf("camera %s: %w", w.cam.ID, err)
 	}
 	if w.evidence.on {
 		if err := os.MkdirAll(w.evidence.dir, 0o750); err != nil {
@@ -295,11 +298,11 @@ func (w *cameraWatch) open() (*vision.Camera, error) {
 		}
 		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll, OnWritten: w.evidenceWritten, SnapshotsOnly: w.rec != nil}); err != nil {
 			vc.Close()
-			return nil, fmt.Errorf("camera %s: evidence: %w", w.cam.ID, err)
+			return nil, nil, fmt.Errorf("camera %s: evidence: %w", w.cam.ID, err)
 		}
 	}
 	w.log.Info("camera open", "source", vision.Redact(w.cam.Source), "size", vc.Size(), "fps", vc.FPS())
-	return vc, nil
+	return vc, cal, nil
 }
 
 // captureState is what lives across reconnects of one camera.
