@@ -13,6 +13,7 @@ import (
 	"time"
 
 	"stillwater/alert/arming"
+	"stillwater/cmd/stillwater/internal/config"
 )
 
 // access is who may do what over HTTP and NATS, secrets resolved: the
@@ -24,17 +25,17 @@ type access struct {
 	viewer    string // picture token; empty leaves only the control token
 }
 
-// access resolves the control and viewer secrets. The warnings, to be
+// accessOf resolves the control and viewer secrets. The warnings, to be
 // logged, are the viewer secret's: openBus already logs the control
 // secret's when it opens the control API. A secret that cannot be read is
 // an error naming its field.
-func (c Config) access(getenv func(string) string) (access, []string, error) {
+func accessOf(c config.Config, getenv func(string) string) (access, []string, error) {
 	var warn, ctlWarn []string
-	ctl, err := resolveSecret("control.secret", c.Control.Secret, c.Control.SecretEnv, c.Control.SecretFile, getenv, &ctlWarn)
+	ctl, err := config.ResolveSecret("control.secret", c.Control.Secret, c.Control.SecretEnv, c.Control.SecretFile, getenv, &ctlWarn)
 	if err != nil {
 		return access{}, nil, err
 	}
-	view, err := resolveSecret("http.viewer_secret", c.HTTP.ViewerSecret, c.HTTP.ViewerSecretEnv, c.HTTP.ViewerSecretFile, getenv, &warn)
+	view, err := config.ResolveSecret("http.viewer_secret", c.HTTP.ViewerSecret, c.HTTP.ViewerSecretEnv, c.HTTP.ViewerSecretFile, getenv, &warn)
 	if err != nil {
 		return access{}, nil, err
 	}

@@ -29,6 +29,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -250,7 +251,7 @@ func bench(ctx context.Context, o benchOpts, log *slog.Logger, progress io.Write
 		defer os.RemoveAll(d)
 		dir = d
 	}
-	cfg := Defaults()
+	cfg := config.Defaults()
 	cfg.DataDir = dir
 	cfg.HTTP.Listen = "127.0.0.1:0"
 	cfg.Bus.Listen = "127.0.0.1:-1"
@@ -287,7 +288,7 @@ func bench(ctx context.Context, o benchOpts, log *slog.Logger, progress io.Write
 
 // benchClips returns the camera (calibration, source, evidence stream)
 // and the clips it plays: generated and cached, or given.
-func benchClips(ctx context.Context, o benchOpts, progress io.Writer) (cam CameraConfig, clip, evClip string, frames int, err error) {
+func benchClips(ctx context.Context, o benchOpts, progress io.Writer) (cam config.CameraConfig, clip, evClip string, frames int, err error) {
 	if o.clip != "" {
 		info, err := vision.ProbeClip(o.clip)
 		if err != nil {
@@ -344,29 +345,29 @@ func benchClips(ctx context.Context, o benchOpts, progress io.Writer) (cam Camer
 
 // givenClipCamera watches a clip of unknown scene as if an 8 × 4 m pool
 // filled the middle of the frame.
-func givenClipCamera(clip string, size image.Point) CameraConfig {
+func givenClipCamera(clip string, size image.Point) config.CameraConfig {
 	w, h := float64(size.X), float64(size.Y)
-	return CameraConfig{
+	return config.CameraConfig{
 		ID: "clip", Source: clip,
-		CalibrationConfig: CalibrationConfig{
-			Pool:    PoolConfig{Length: 8, Width: 4},
+		CalibrationConfig: config.CalibrationConfig{
+			Pool:    config.PoolConfig{Length: 8, Width: 4},
 			Corners: [][2]float64{{0.1 * w, 0.8 * h}, {0.9 * w, 0.8 * h}, {0.9 * w, 0.2 * h}, {0.1 * w, 0.2 * h}},
 			Frame:   [2]int{size.X, size.Y},
-			Lens:    &LensConfig{HFOVDeg: 90},
+			Lens:    &config.LensConfig{HFOVDeg: 90},
 		},
 	}
 }
 
 // finishBenchCamera plays the clip as a camera would send it.
-func finishBenchCamera(c CameraConfig) CameraConfig {
+func finishBenchCamera(c config.CameraConfig) config.CameraConfig {
 	c.Realtime, c.Loop = true, true
-	c.Detect = defaultDetect()
-	c.FrameTimeout = Duration(defaultFrameTimeout)
+	c.Detect = config.DefaultDetect()
+	c.FrameTimeout = config.Duration(config.DefaultFrameTimeout)
 	return c
 }
 
 // benchDaemon runs serve over the cameras for the duration and measures.
-func benchDaemon(ctx context.Context, o benchOpts, cfg Config, res *benchResult, log *slog.Logger, progress io.Writer) error {
+func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *benchResult, log *slog.Logger, progress io.Writer) error {
 	reg := prometheus.NewRegistry()
 	runCtx, stop := context.WithCancel(ctx)
 	defer stop()

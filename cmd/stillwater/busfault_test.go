@@ -24,6 +24,7 @@ import (
 	"stillwater/alert"
 	"stillwater/alert/arming"
 	"stillwater/alert/bus"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
@@ -33,22 +34,22 @@ import (
 
 // busOnlyConfig is a daemon configuration for the bus side alone: the
 // embedded server on a free port, data in a fresh directory.
-func busOnlyConfig(t *testing.T) Config {
+func busOnlyConfig(t *testing.T) config.Config {
 	t.Helper()
-	cfg := Defaults()
+	cfg := config.Defaults()
 	cfg.DataDir = t.TempDir()
-	cfg.Bus = BusConfig{Listen: "127.0.0.1:-1", Prefix: "sw"}
+	cfg.Bus = config.BusConfig{Listen: "127.0.0.1:-1", Prefix: "sw"}
 	return cfg
 }
 
-func openTestBus(t *testing.T, cfg Config, log *slog.Logger, h busHooks) *busParts {
+func openTestBus(t *testing.T, cfg config.Config, log *slog.Logger, h config.BusHooks) *config.BusParts {
 	t.Helper()
-	b, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, log, h)
+	b, err := config.OpenBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, log, h)
 	require.NoError(t, err)
 	return b
 }
 
-func runBus(t *testing.T, b *busParts) {
+func runBus(t *testing.T, b *config.BusParts) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	done := make(chan error, 1)
@@ -119,10 +120,10 @@ func hasProblem(problems []string, parts ...string) bool {
 // is 1; removing the other stream clears all three without a restart.
 func TestStreamOverlapIsALoudFault(t *testing.T) {
 	type setup struct {
-		cfg   Config
+		cfg   config.Config
 		other string
-		key   string                          // the setting the fix names
-		fix   func(t *testing.T, b *busParts) // removes the other stream
+		key   string                                 // the setting the fix names
+		fix   func(t *testing.T, b *config.BusParts) // removes the other stream
 	}
 	cases := []struct {
 		name    string
@@ -130,10 +131,10 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 	}{
 		{"bus.stream.name changed on an existing data directory", func(t *testing.T) setup {
 			cfg := busOnlyConfig(t)
-			first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), busHooks{})
+			first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
 			first.Close()
 			cfg.Bus.Stream.Name = "POOL"
-			return setup{cfg: cfg, other: "STILLWATER", key: "bus.stream.name", fix: func(t *testing.T, b *busParts) {
+			return setup{cfg: cfg, other: "STILLWATER", key: "bus.stream.name", fix: func(t *testing.T, b *config.BusParts) {
 				nc, err := nats.Connect(b.Embedded.URL())
 				require.NoError(t, err)
 				defer nc.Close()
@@ -155,7 +156,7 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 			require.NoError(t, err)
 			cfg := busOnlyConfig(t)
 			cfg.Bus.Listen, cfg.Bus.URL = "", emb.URL()
-			return setup{cfg: cfg, other: "HOUSE", key: "bus.subject_prefix", fix: func(t *testing.T, _ *busParts) {
+			return setup{cfg: cfg, other: "HOUSE", key: "bus.subject_prefix", fix: func(t *testing.T, _ *config.BusParts) {
 				require.NoError(t, js.DeleteStream(context.Background(), "HOUSE"))
 			}}
 		}},
@@ -168,7 +169,7 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 				mine = "STILLWATER"
 			}
 			var logs syncBuffer
-			b := openTestBus(t, s.cfg, slog.New(slog.NewTextHandler(&logs, nil)), busHooks{})
+			b := openTestBus(t, s.cfg, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{})
 			reg := prometheus.NewRegistry()
 			registerBusMetrics(reg, b, time.Now)
 			runBus(t, b)
@@ -184,7 +185,7 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 			assert.Contains(t, errLine, "sw.*.target")
 			assert.Contains(t, errLine, s.key)
 
-			problems := b.problems(time.Now())
+			problems := b.Problems(time.Now())
 			t.Logf("log: %s\nreadiness: %q", errLine, problems)
 			assert.True(t, hasProblem(problems, mine, s.other, s.key), "readiness %q", problems)
 			v, ok := metricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
@@ -193,7 +194,7 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 
 			s.fix(t, b)
 			fixed := time.Now()
-			require.Eventually(t, func() bool { return len(b.problems(time.Now())) == 0 }, 30*time.Second, 50*time.Millisecond,
+			require.Eventually(t, func() bool { return len(b.Problems(time.Now())) == 0 }, 30*time.Second, 50*time.Millisecond,
 				"the fault did not clear after the other stream was removed")
 			took := time.Since(fixed)
 			v, _ = metricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
@@ -217,7 +218,7 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 
 	reg := prometheus.NewRegistry()
 	met := newMetrics(reg, "test")
-	b := openTestBus(t, cfg, slog.New(slog.DiscardHandler), busHooks{OnResult: met.busResult})
+	b := openTestBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{OnResult: met.busResult})
 	registerBusMetrics(reg, b, time.Now)
 	runBus(t, b)
 	sink := &busSink{pub: b.Pub, met: met}
@@ -237,7 +238,7 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	assert.Equal(t, 4.0, value("stillwater_messages_queued_total", nil))
 	assert.Zero(t, value("stillwater_publish_seconds", map[string]string{"kind": alert.KindTarget}), "publish_seconds observed before any acknowledgement")
 	// The same queue seen 31 s later: older than the 30 s bound, not ready.
-	assert.True(t, hasProblem(b.problems(time.Now().Add(31*time.Second)), "oldest queued message"), "%q", b.problems(time.Now().Add(31*time.Second)))
+	assert.True(t, hasProblem(b.Problems(time.Now().Add(31*time.Second)), "oldest queued message"), "%q", b.Problems(time.Now().Add(31*time.Second)))
 	v, _ := metricValue(t, reg, "stillwater_outbox_oldest_age_seconds", nil)
 	assert.Greater(t, v, 0.0)
 
@@ -249,7 +250,7 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	assert.Equal(t, 1.0, value("stillwater_messages_acknowledged_total", map[string]string{"camera": "north", "kind": alert.KindArmed}))
 	assert.Equal(t, 3.0, value("stillwater_messages_published_total", target))
 	assert.Equal(t, 3.0, value("stillwater_publish_seconds", map[string]string{"kind": alert.KindTarget}), "one observation per message")
-	assert.Empty(t, b.problems(time.Now()))
+	assert.Empty(t, b.Problems(time.Now()))
 }
 
 // TestSecondDaemonStopsAtTheDataDirectory starts the bus side twice on one
@@ -257,10 +258,10 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 // before it starts a server on the first one's JetStream store.
 func TestSecondDaemonStopsAtTheDataDirectory(t *testing.T) {
 	cfg := busOnlyConfig(t)
-	first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), busHooks{})
+	first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
 	defer first.Close()
 	var logs syncBuffer
-	_, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, slog.New(slog.NewTextHandler(&logs, nil)), busHooks{})
+	_, err := config.OpenBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{})
 	require.Error(t, err)
 	assert.Contains(t, err.Error(), "data_dir "+cfg.DataDir)
 	assert.Contains(t, err.Error(), "another stillwater")
@@ -279,7 +280,7 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	require.NoError(t, l.Close())
 	cfg := busOnlyConfig(t)
 	cfg.Bus.Listen, cfg.Bus.URL, cfg.Bus.Prefix = "", dead, "old"
-	first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), busHooks{})
+	first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
 	for i := 0; i < 3; i++ {
 		require.NoError(t, first.Pub.Publish(context.Background(), "north", alert.KindTarget, fmt.Sprintf("left-%d", i),
 			[]byte(fmt.Sprintf(`{"v":1,"kind":"target","camera":"north","seq":%d}`, i))))
@@ -291,7 +292,7 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	var logs syncBuffer
 	reg := prometheus.NewRegistry()
 	met := newMetrics(reg, "test")
-	b := openTestBus(t, cfg, slog.New(slog.NewTextHandler(&logs, nil)), busHooks{OnResult: met.busResult})
+	b := openTestBus(t, cfg, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{OnResult: met.busResult})
 	registerBusMetrics(reg, b, time.Now)
 	sub, err := nats.Connect(b.Embedded.URL())
 	require.NoError(t, err)
@@ -327,7 +328,7 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	assert.Equal(t, 3, strings.Count(string(b2), "\n"))
 	assert.Equal(t, 3, strings.Count(string(b2), `"subject":"old.north.target"`))
 	assert.Contains(t, logs.String(), "level=ERROR msg=\"message moved to the dead-letter file\"")
-	assert.Empty(t, b.problems(time.Now()))
+	assert.Empty(t, b.Problems(time.Now()))
 	refdata.Report(t, "daemon restarted with another bus.subject_prefix over 3 queued targets: a new target reached a subscriber %.1f ms after it was handed over; the 3 old ones dead-lettered, outbox empty %.2f s after",
 		float64(arrived.Sub(start).Microseconds())/1000, emptied.Seconds())
 }

@@ -6,24 +6,10 @@ import (
 	"time"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/homography"
 	"stillwater/vision"
 )
-
-// newCalibration builds the runtime calibration of one camera from its
-// configuration. Errors name the key and, for corners, the corner.
-func newCalibration(cam CameraConfig) (*homography.Calibration, error) {
-	c, err := buildCalibration(cam.CalibrationConfig)
-	if err != nil {
-		return nil, fmt.Errorf("camera %s: calibration: %w", cam.ID, err)
-	}
-	return c, nil
-}
-
-// buildCalibration solves the calibration the keys describe.
-func buildCalibration(cfg CalibrationConfig) (*homography.Calibration, error) {
-	return homography.NewCalibration(cfg.spec())
-}
 
 // calMask returns the water's outline in recorded pixels, for the
 // detector.
@@ -76,7 +62,7 @@ type driftStatus struct {
 
 // newDriftChecker loads the camera's reference frame. It returns nil and
 // no error when the calibration names no reference frame.
-func newDriftChecker(cam CameraConfig, cal *homography.Calibration) (*driftChecker, error) {
+func newDriftChecker(cam config.CameraConfig, cal *homography.Calibration) (*driftChecker, error) {
 	if cam.ReferenceFrame == "" {
 		return nil, nil
 	}
@@ -91,7 +77,7 @@ func newDriftChecker(cam CameraConfig, cal *homography.Calibration) (*driftCheck
 	if err != nil {
 		return nil, fmt.Errorf("camera %s: reference_frame %s: %w", cam.ID, cam.ReferenceFrame, err)
 	}
-	d := cam.Drift.withDefaults()
+	d := cam.Drift.WithDefaults()
 	return &driftChecker{ref: ref, cal: cal, every: time.Duration(d.Every), max: d.MaxShift}, nil
 }
 
@@ -176,4 +162,31 @@ func calArea(c *homography.Calibration, contour []vision.Point) float64 {
 		poly[i] = homography.Point(p)
 	}
 	return c.Area(poly)
+}
+
+// detectorConfig is the vision stage's setup for a camera: the detect
+// section, the pool outline as the watched mask and the pool-plane
+// footprint of a pixel, so that clean-up is scale-aware. The daemon and
+// replay both use it so that they see the same blobs.
+func detectorConfig(cam config.CameraConfig, cal *homography.Calibration) (vision.DetectorConfig, error) {
+	d := cam.Detect
+	if d.Method != "meanvar" {
+		return vision.DetectorConfig{
+			ProcessWidth: d.ProcessWidth, Method: d.Method, History: d.History,
+			Threshold: d.Threshold, LearningRate: -1, MinPixels: 6, Mask: calMask(cal),
+			MinArea: d.MinArea, PixelArea: func(p vision.Point) float64 { return cal.PixelArea(homography.Point(p)) },
+		}, nil
+	}
+	grid, err := rectification(cal, d.Cell, max(0, d.Deck))
+	if err != nil {
+		return vision.DetectorConfig{}, fmt.Errorf("camera %s: %w", cam.ID, err)
+	}
+	mv := vision.DefaultMeanVar()
+	mv.FPS = 0 // the camera's own
+	mv.Threshold, mv.Low, mv.Noise, mv.LightCell = d.Threshold, d.Extent, d.Noise, d.LightCell
+	mv.Short, mv.Learn = time.Duration(d.ShortMean), time.Duration(d.Learn)
+	mv.Smooth = d.Smooth
+	// The mask is not searched by meanvar (its grid is the pool and its
+	// deck), but the picture checks watch it (see vision.Camera.health).
+	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv, Mask: calMask(cal)}, nil
 }

@@ -1,6 +1,7 @@
 package main
 
 import (
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/refdata"
 
 	"image"
@@ -51,9 +52,9 @@ func sceneFor(p synth.Pose) synth.Scene {
 	return s
 }
 
-func cornersConfig(t *testing.T, s synth.Scene, z float64) CalibrationConfig {
+func cornersConfig(t *testing.T, s synth.Scene, z float64) config.CalibrationConfig {
 	L, W := s.PoolLength, s.PoolWidth
-	cfg := CalibrationConfig{Pool: PoolConfig{Length: L, Width: W}, Frame: [2]int{s.Width, s.Height}, Lens: &LensConfig{HFOVDeg: s.Camera.HFOVDeg}}
+	cfg := config.CalibrationConfig{Pool: config.PoolConfig{Length: L, Width: W}, Frame: [2]int{s.Width, s.Height}, Lens: &config.LensConfig{HFOVDeg: s.Camera.HFOVDeg}}
 	for _, c := range [][2]float64{{0, 0}, {L, 0}, {L, W}, {0, W}} {
 		p := click(t, s, c[0], c[1], z)
 		cfg.Corners = append(cfg.Corners, [2]float64{p.X, p.Y})
@@ -64,7 +65,7 @@ func cornersConfig(t *testing.T, s synth.Scene, z float64) CalibrationConfig {
 // visibleConfig is cornersConfig when all four corners are in the frame,
 // and otherwise a freeform calibration from measured points in view (a
 // low camera close to the pool does not see the corners under it).
-func visibleConfig(t *testing.T, s synth.Scene) CalibrationConfig {
+func visibleConfig(t *testing.T, s synth.Scene) config.CalibrationConfig {
 	cfg := cornersConfig(t, s, 0)
 	inFrame := func(p [2]float64) bool {
 		return p[0] >= 0 && p[1] >= 0 && p[0] <= float64(s.Width) && p[1] <= float64(s.Height)
@@ -81,7 +82,7 @@ func visibleConfig(t *testing.T, s synth.Scene) CalibrationConfig {
 		for y := 0.5; y < s.PoolWidth; y += 1.5 {
 			p := click(t, s, x, y, 0)
 			if inFrame([2]float64{p.X, p.Y}) {
-				cfg.Reference = append(cfg.Reference, ReferencePoint{Pixel: [2]float64{p.X, p.Y}, Pool: [2]float64{x, y}})
+				cfg.Reference = append(cfg.Reference, config.ReferencePoint{Pixel: [2]float64{p.X, p.Y}, Pool: [2]float64{x, y}})
 			}
 		}
 	}
@@ -114,9 +115,9 @@ func TestCalibrationPoseAndRefraction(t *testing.T) {
 			cfg := visibleConfig(t, s)
 			t.Logf("%d corners, %d reference points", len(cfg.Corners), len(cfg.Reference))
 			deepX := s.PoolLength
-			cfg.Water = WaterConfig{Shallow: shallow, Deep: deep, DeepX: &deepX}
-			require.NoError(t, validateCalibration("cameras[0] (test)", cfg))
-			cal, err := newCalibration(CameraConfig{ID: "test", CalibrationConfig: cfg})
+			cfg.Water = config.WaterConfig{Shallow: shallow, Deep: deep, DeepX: &deepX}
+			require.NoError(t, config.ValidateCalibration("cameras[0] (test)", cfg))
+			cal, err := config.NewCalibration(config.CameraConfig{ID: "test", CalibrationConfig: cfg})
 			require.NoError(t, err)
 
 			// Pose: height within 10 % of the generator's.
@@ -175,17 +176,17 @@ func TestCalibrationLensDistortion(t *testing.T) {
 		d := lens.Distort(homography.Point{X: u, Y: v})
 		return vision.Point{X: math.Round(d.X), Y: math.Round(d.Y)}
 	}
-	base := CalibrationConfig{Pool: PoolConfig{Length: 8, Width: 4}, Frame: [2]int{640, 480}}
+	base := config.CalibrationConfig{Pool: config.PoolConfig{Length: 8, Width: 4}, Frame: [2]int{640, 480}}
 	for _, c := range [][2]float64{{0, 0}, {8, 0}, {8, 4}, {0, 4}} {
 		p := distorted(c[0], c[1])
 		base.Corners = append(base.Corners, [2]float64{p.X, p.Y})
 	}
 	withLens := base
-	withLens.Lens = &LensConfig{Fx: k.Fx, Fy: k.Fy, Cx: k.Cx, Cy: k.Cy, Dist: lens.Dist}
+	withLens.Lens = &config.LensConfig{Fx: k.Fx, Fy: k.Fy, Cx: k.Cx, Cy: k.Cy, Dist: lens.Dist}
 	worst := map[string]float64{}
-	for name, cfg := range map[string]CalibrationConfig{"without lens": base, "with lens": withLens} {
-		require.NoError(t, validateCalibration("cam", cfg))
-		cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: cfg})
+	for name, cfg := range map[string]config.CalibrationConfig{"without lens": base, "with lens": withLens} {
+		require.NoError(t, config.ValidateCalibration("cam", cfg))
+		cal, err := config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: cfg})
 		require.NoError(t, err)
 		for x := 0.5; x < 8; x++ {
 			for y := 0.5; y < 4; y++ {
@@ -215,8 +216,8 @@ func TestCalibrationCoping(t *testing.T) {
 	for _, on := range []string{"water", "coping"} {
 		c := cfg
 		c.CornersOn = on
-		require.NoError(t, validateCalibration("cam", c))
-		cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: c})
+		require.NoError(t, config.ValidateCalibration("cam", c))
+		cal, err := config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: c})
 		require.NoError(t, err)
 		for x := 0.5; x < 8; x++ {
 			for y := 0.5; y < 4; y++ {
@@ -237,7 +238,7 @@ func TestCalibrationCoping(t *testing.T) {
 
 func TestCalibrationAreaInsideMask(t *testing.T) {
 	s := sceneFor(calibPoses[0].pose)
-	cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: cornersConfig(t, s, 0)})
+	cal, err := config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: cornersConfig(t, s, 0)})
 	require.NoError(t, err)
 	// A 1 m × 0.5 m rectangle on the water, traced by its pixels.
 	var contour []vision.Point
@@ -259,7 +260,7 @@ func TestCalibrationAreaInsideMask(t *testing.T) {
 	// picture is found by the water not moving, and without the outline
 	// the deck's stillness hides it (a frozen family scene went unreported).
 	for _, method := range []string{"meanvar", "mog2"} {
-		cam := CameraConfig{ID: "t", CalibrationConfig: cornersConfig(t, s, 0), Detect: mergeDetect(defaultDetect(), DetectConfig{Method: method})}
+		cam := config.CameraConfig{ID: "t", CalibrationConfig: cornersConfig(t, s, 0), Detect: config.MergeDetect(config.DefaultDetect(), config.DetectConfig{Method: method})}
 		dc, err := detectorConfig(cam, cal)
 		require.NoError(t, err, method)
 		assert.Equal(t, m, dc.Mask, method)
@@ -270,7 +271,7 @@ func TestCalibrationAreaInsideMask(t *testing.T) {
 	// Sky above the horizon does not map onto the pool: a low camera far
 	// back sees the sky in its top rows.
 	low := sceneFor(synth.Pose{X: -8, Y: 2, Height: 3, PitchDeg: 20, HFOVDeg: 70})
-	cal, err = newCalibration(CameraConfig{ID: "t", CalibrationConfig: cornersConfig(t, low, 0)})
+	cal, err = config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: cornersConfig(t, low, 0)})
 	require.NoError(t, err)
 	_, ok := calSurface(cal, vision.Point{X: 320, Y: 0})
 	assert.False(t, ok, "sky pixel")
@@ -282,18 +283,18 @@ func TestCalibrationAreaInsideMask(t *testing.T) {
 // reference points and an outline.
 func TestCalibrationFreeform(t *testing.T) {
 	s := sceneFor(calibPoses[0].pose)
-	cfg := CalibrationConfig{Pool: PoolConfig{Length: 8, Width: 4}, Frame: [2]int{640, 480}, Lens: &LensConfig{HFOVDeg: 70}, Water: WaterConfig{Depth: 1.4}}
+	cfg := config.CalibrationConfig{Pool: config.PoolConfig{Length: 8, Width: 4}, Frame: [2]int{640, 480}, Lens: &config.LensConfig{HFOVDeg: 70}, Water: config.WaterConfig{Depth: 1.4}}
 	for _, q := range [][2]float64{{0.5, 0.5}, {7.5, 0.3}, {7.8, 3.6}, {0.4, 3.5}, {4, 0.2}, {4.1, 3.8}, {2, 2}} {
 		p := click(t, s, q[0], q[1], 0)
-		cfg.Reference = append(cfg.Reference, ReferencePoint{Pixel: [2]float64{p.X, p.Y}, Pool: q})
+		cfg.Reference = append(cfg.Reference, config.ReferencePoint{Pixel: [2]float64{p.X, p.Y}, Pool: q})
 	}
 	// A rounded outline: an ellipse inscribed in the rectangle.
 	for a := 0.0; a < 2*math.Pi-1e-9; a += math.Pi / 12 {
 		p := click(t, s, 4+3.9*math.Cos(a), 2+1.9*math.Sin(a), 0)
 		cfg.Outline = append(cfg.Outline, [2]float64{p.X, p.Y})
 	}
-	require.NoError(t, validateCalibration("cam", cfg))
-	cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: cfg})
+	require.NoError(t, config.ValidateCalibration("cam", cfg))
+	cal, err := config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: cfg})
 	require.NoError(t, err)
 	t.Logf("freeform: %d reference points, RMS %.3f m / %.2f px", cal.Fit().Points, cal.Fit().RMSM, cal.Fit().RMSPx)
 	assert.Less(t, cal.Fit().RMSM, 0.03)
@@ -303,9 +304,9 @@ func TestCalibrationFreeform(t *testing.T) {
 
 	// A mis-measured point is named.
 	bad := cfg
-	bad.Reference = append([]ReferencePoint(nil), cfg.Reference...)
+	bad.Reference = append([]config.ReferencePoint(nil), cfg.Reference...)
 	bad.Reference[4].Pool = [2]float64{5.5, 0.2}
-	_, err = newCalibration(CameraConfig{ID: "t", CalibrationConfig: bad})
+	_, err = config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: bad})
 	require.Error(t, err)
 	assert.Contains(t, err.Error(), "reference_points[4]")
 }
@@ -313,7 +314,7 @@ func TestCalibrationFreeform(t *testing.T) {
 func TestCalibrationErrorsNameTheFix(t *testing.T) {
 	s := sceneFor(calibPoses[0].pose)
 	good := cornersConfig(t, s, 0)
-	mod := func(f func(c *CalibrationConfig)) CalibrationConfig {
+	mod := func(f func(c *config.CalibrationConfig)) config.CalibrationConfig {
 		c := good
 		c.Corners = append([][2]float64(nil), good.Corners...)
 		f(&c)
@@ -321,43 +322,43 @@ func TestCalibrationErrorsNameTheFix(t *testing.T) {
 	}
 	cases := []struct {
 		name    string
-		cfg     CalibrationConfig
+		cfg     config.CalibrationConfig
 		wantErr string // from validateCalibration or newCalibration
 	}{
-		{"duplicate corner", mod(func(c *CalibrationConfig) { c.Corners[2] = c.Corners[1] }), "corner C duplicates corner B"},
-		{"B opposite A", mod(func(c *CalibrationConfig) { c.Corners[1], c.Corners[2] = c.Corners[2], c.Corners[1] }), "corner B is diagonally opposite corner A"},
-		{"corner outside frame", mod(func(c *CalibrationConfig) { c.Corners[3] = [2]float64{700, 100} }), "corners[3] (corner D)"},
-		{"three corners", mod(func(c *CalibrationConfig) { c.Corners = c.Corners[:3] }), "corners: 3 given"},
-		{"bad corners_on", mod(func(c *CalibrationConfig) { c.CornersOn = "deck" }), "corners_on"},
-		{"coping without corners_on", mod(func(c *CalibrationConfig) { c.Coping = 0.12 }), "coping_m: set, but corners_on"},
-		{"depth without camera", mod(func(c *CalibrationConfig) { c.Lens = nil; c.Water.Depth = 1.2 }), "needs the camera position"},
-		{"depth in centimetres", mod(func(c *CalibrationConfig) { c.Water.Depth = 120 }), "not feet or centimetres"},
-		{"half a slope", mod(func(c *CalibrationConfig) { c.Water.Shallow = 1 }), "both shallow_m and deep_m"},
-		{"lens without focal length", mod(func(c *CalibrationConfig) { c.Lens = &LensConfig{Dist: []float64{0.1, 0, 0, 0}} }), "lens: give fx"},
-		{"lens wrong coefficient count", mod(func(c *CalibrationConfig) {
-			c.Lens = &LensConfig{Fx: 500, Fy: 500, Cx: 320, Cy: 240, Dist: []float64{0.1, 0}}
+		{"duplicate corner", mod(func(c *config.CalibrationConfig) { c.Corners[2] = c.Corners[1] }), "corner C duplicates corner B"},
+		{"B opposite A", mod(func(c *config.CalibrationConfig) { c.Corners[1], c.Corners[2] = c.Corners[2], c.Corners[1] }), "corner B is diagonally opposite corner A"},
+		{"corner outside frame", mod(func(c *config.CalibrationConfig) { c.Corners[3] = [2]float64{700, 100} }), "corners[3] (corner D)"},
+		{"three corners", mod(func(c *config.CalibrationConfig) { c.Corners = c.Corners[:3] }), "corners: 3 given"},
+		{"bad corners_on", mod(func(c *config.CalibrationConfig) { c.CornersOn = "deck" }), "corners_on"},
+		{"coping without corners_on", mod(func(c *config.CalibrationConfig) { c.Coping = 0.12 }), "coping_m: set, but corners_on"},
+		{"depth without camera", mod(func(c *config.CalibrationConfig) { c.Lens = nil; c.Water.Depth = 1.2 }), "needs the camera position"},
+		{"depth in centimetres", mod(func(c *config.CalibrationConfig) { c.Water.Depth = 120 }), "not feet or centimetres"},
+		{"half a slope", mod(func(c *config.CalibrationConfig) { c.Water.Shallow = 1 }), "both shallow_m and deep_m"},
+		{"lens without focal length", mod(func(c *config.CalibrationConfig) { c.Lens = &config.LensConfig{Dist: []float64{0.1, 0, 0, 0}} }), "lens: give fx"},
+		{"lens wrong coefficient count", mod(func(c *config.CalibrationConfig) {
+			c.Lens = &config.LensConfig{Fx: 500, Fy: 500, Cx: 320, Cy: 240, Dist: []float64{0.1, 0}}
 		}), "4 or 5 distortion coefficients"},
-		{"fisheye needs four", mod(func(c *CalibrationConfig) {
-			c.Lens = &LensConfig{Model: "fisheye", Fx: 500, Fy: 500, Cx: 320, Cy: 240, Dist: []float64{0.1, 0, 0, 0, 0}}
+		{"fisheye needs four", mod(func(c *config.CalibrationConfig) {
+			c.Lens = &config.LensConfig{Model: "fisheye", Fx: 500, Fy: 500, Cx: 320, Cy: 240, Dist: []float64{0.1, 0, 0, 0, 0}}
 		}), "fisheye model takes 4"},
-		{"hfov without frame", mod(func(c *CalibrationConfig) { c.Frame = [2]int{} }), "needs frame_px"},
-		{"freeform and corners", mod(func(c *CalibrationConfig) {
-			c.Reference = []ReferencePoint{{}, {}, {}, {}}
+		{"hfov without frame", mod(func(c *config.CalibrationConfig) { c.Frame = [2]int{} }), "needs frame_px"},
+		{"freeform and corners", mod(func(c *config.CalibrationConfig) {
+			c.Reference = []config.ReferencePoint{{}, {}, {}, {}}
 		}), "both corners and reference_points"},
-		{"negative drift", mod(func(c *CalibrationConfig) { c.Drift.MaxShift = -1 }), "drift.max_shift_m"},
+		{"negative drift", mod(func(c *config.CalibrationConfig) { c.Drift.MaxShift = -1 }), "drift.max_shift_m"},
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
-			err := validateCalibration("cameras[0] (north)", tc.cfg)
+			err := config.ValidateCalibration("cameras[0] (north)", tc.cfg)
 			if err == nil {
-				_, err = newCalibration(CameraConfig{ID: "north", CalibrationConfig: tc.cfg})
+				_, err = config.NewCalibration(config.CameraConfig{ID: "north", CalibrationConfig: tc.cfg})
 			}
 			require.Error(t, err)
 			assert.Contains(t, err.Error(), tc.wantErr)
 			assert.True(t, strings.Contains(err.Error(), "north"), "error names the camera: %v", err)
 		})
 	}
-	require.NoError(t, validateCalibration("cam", good))
+	require.NoError(t, config.ValidateCalibration("cam", good))
 
 	// Without frame_px a corner the camera does not see may lie outside
 	// the picture (the scenario suite's low corner camera has corner D at
@@ -365,17 +366,17 @@ func TestCalibrationErrorsNameTheFix(t *testing.T) {
 	far := sceneFor(calibPoses[1].pose)
 	out := cornersConfig(t, far, 0)
 	out.Frame, out.Lens = [2]int{}, nil
-	require.NoError(t, validateCalibration("cam", out))
-	cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: out})
+	require.NoError(t, config.ValidateCalibration("cam", out))
+	cal, err := config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: out})
 	require.NoError(t, err)
 	q, ok := calSurface(cal, click(t, far, 6, 2, 0))
 	require.True(t, ok)
 	assert.InDelta(t, 0, q.Dist(homography.Point{X: 6, Y: 2}), 0.05)
 	out.Corners[2] = out.Corners[1]
-	_, err = newCalibration(CameraConfig{ID: "t", CalibrationConfig: out})
+	_, err = config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: out})
 	assert.ErrorContains(t, err, "corner C duplicates corner B")
 	out.Corners[2] = [2]float64{1e300, 5}
-	_, err = newCalibration(CameraConfig{ID: "t", CalibrationConfig: out})
+	_, err = config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: out})
 	assert.ErrorContains(t, err, "far beyond any camera frame")
 }
 
@@ -408,12 +409,12 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 		require.True(t, ok, name)
 		cases = append(cases, tcase{"scenario " + name, s, 0})
 	}
-	duration, every := 16.0, Duration(0) // the default period
+	duration, every := 16.0, config.Duration(0) // the default period
 	if testing.Short() {
 		// The pan alone, at 2 s of a 5 s clip, checked every second.
 		cases = cases[:1]
 		cases[0].name, cases[0].s.PanAt, cases[0].panAt = "pan 3 degrees at 2 s", 2, 2
-		duration, every = 5, Duration(time.Second)
+		duration, every = 5, config.Duration(time.Second)
 	}
 	for _, tc := range cases {
 		t.Run(tc.name, func(t *testing.T) {
@@ -425,16 +426,16 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 			require.NoError(t, err)
 			ref := filepath.Join(dir, "ref.png")
 			writePNG(t, ref, first)
-			cam := CameraConfig{ID: "t", Source: clip, CalibrationConfig: CalibrationConfig{
+			cam := config.CameraConfig{ID: "t", Source: clip, CalibrationConfig: config.CalibrationConfig{
 				// No frame_px: the corner camera's corner A lies below the frame.
-				Pool: PoolConfig{Length: truth.Pool.Length, Width: truth.Pool.Width}, ReferenceFrame: ref,
-				Drift: DriftConfig{Every: every},
+				Pool: config.PoolConfig{Length: truth.Pool.Length, Width: truth.Pool.Width}, ReferenceFrame: ref,
+				Drift: config.DriftConfig{Every: every},
 			}}
 			for _, c := range truth.Corners {
 				cam.Corners = append(cam.Corners, [2]float64{math.Round(c.Pixel[0]), math.Round(c.Pixel[1])})
 			}
-			require.NoError(t, validateCalibration("cam", cam.CalibrationConfig))
-			cal, err := newCalibration(cam)
+			require.NoError(t, config.ValidateCalibration("cam", cam.CalibrationConfig))
+			cal, err := config.NewCalibration(cam)
 			require.NoError(t, err)
 			chk, err := newDriftChecker(cam, cal)
 			require.NoError(t, err)
@@ -465,7 +466,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 					refdata.Report(t, "moved reported at %.1f s (%.1f s after the pan): corners shifted %.2f m, %d inliers", at, at-tc.panAt, st.ShiftM, st.Inliers)
 				}
 			}
-			refdata.Report(t, "largest shift while still: %.3f m (threshold %.2f m)", worstStill, defaultDriftMaxShift)
+			refdata.Report(t, "largest shift while still: %.3f m (threshold %.2f m)", worstStill, config.DefaultDriftMaxShift)
 			require.GreaterOrEqual(t, stillChecks, 2, "comparisons while the camera was still")
 			if tc.panAt > 0 {
 				require.GreaterOrEqual(t, firstMoved, tc.panAt, "pan never reported")
@@ -490,11 +491,11 @@ func TestRefractionOnRenderedFrames(t *testing.T) {
 	s.Duration, s.Ripple, s.Glints = 12, 0.2, 0
 	s.Intruders = []synth.Child{{Enter: 2, Path: []synth.Waypoint{{T: 2, X: 2.5, Y: 1.2}, {T: 12, X: 6.5, Y: 2.8}}, AgeMonths: 24, Lying: true, Contrast: 0.8, Depth: 1.2}}
 	truth, clip := cachedClip(t, s)
-	cfg := CalibrationConfig{Pool: PoolConfig{Length: 8, Width: 4}, Frame: [2]int{640, 480}, Lens: &LensConfig{HFOVDeg: 70}, Water: WaterConfig{Depth: 1.2}}
+	cfg := config.CalibrationConfig{Pool: config.PoolConfig{Length: 8, Width: 4}, Frame: [2]int{640, 480}, Lens: &config.LensConfig{HFOVDeg: 70}, Water: config.WaterConfig{Depth: 1.2}}
 	for _, c := range truth.Corners {
 		cfg.Corners = append(cfg.Corners, [2]float64{math.Round(c.Pixel[0]), math.Round(c.Pixel[1])})
 	}
-	cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: cfg})
+	cal, err := config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: cfg})
 	require.NoError(t, err)
 	vc, err := vision.OpenCamera(vision.SourceConfig{URI: clip}, vision.DetectorConfig{
 		ProcessWidth: 640, Method: "mog2", History: 500, Threshold: 16, LearningRate: -1, MinPixels: 6, Mask: calMask(cal)})

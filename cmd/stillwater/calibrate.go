@@ -21,6 +21,7 @@ import (
 
 	"gopkg.in/yaml.v3"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/homography"
 	"stillwater/vision"
 )
@@ -127,8 +128,8 @@ func btoi(b bool) int {
 }
 
 // parseReference reads "u,v=x,y ..." into reference points.
-func parseReference(s string) ([]ReferencePoint, error) {
-	var out []ReferencePoint
+func parseReference(s string) ([]config.ReferencePoint, error) {
+	var out []config.ReferencePoint
 	for i, f := range strings.Fields(s) {
 		px, pool, ok := strings.Cut(f, "=")
 		if !ok {
@@ -139,7 +140,7 @@ func parseReference(s string) ([]ReferencePoint, error) {
 		if err1 != nil || err2 != nil || len(a) != 1 || len(b) != 1 {
 			return nil, fmt.Errorf("point %d %q: want u,v=x,y (pixel = pool metres)", i+1, f)
 		}
-		out = append(out, ReferencePoint{Pixel: a[0], Pool: b[0]})
+		out = append(out, config.ReferencePoint{Pixel: a[0], Pool: b[0]})
 	}
 	return out, nil
 }
@@ -178,8 +179,8 @@ func parseCoefficients(s string) ([]float64, error) {
 
 // calibrationFromFlags builds the configuration section from the flags
 // and the frame's size.
-func calibrationFromFlags(f calibrateFlags, size image.Point) (CalibrationConfig, error) {
-	c := CalibrationConfig{Pool: PoolConfig{Length: f.length, Width: f.width}, Frame: [2]int{size.X, size.Y}}
+func calibrationFromFlags(f calibrateFlags, size image.Point) (config.CalibrationConfig, error) {
+	c := config.CalibrationConfig{Pool: config.PoolConfig{Length: f.length, Width: f.width}, Frame: [2]int{size.X, size.Y}}
 	src := f.corners
 	if f.cornersIn != "" {
 		b, err := os.ReadFile(f.cornersIn)
@@ -204,7 +205,7 @@ func calibrationFromFlags(f calibrateFlags, size image.Point) (CalibrationConfig
 	}
 	c.Coping = f.coping
 	if f.fx != 0 || f.dist != "" || f.fisheye {
-		l := &LensConfig{Fx: f.fx, Fy: f.fy, Cx: f.cx, Cy: f.cy}
+		l := &config.LensConfig{Fx: f.fx, Fy: f.fy, Cx: f.cx, Cy: f.cy}
 		if l.Fy == 0 {
 			l.Fy = l.Fx
 		}
@@ -218,16 +219,16 @@ func calibrationFromFlags(f calibrateFlags, size image.Point) (CalibrationConfig
 		}
 		c.Lens = l
 	} else if f.hfov != 0 {
-		c.Lens = &LensConfig{HFOVDeg: f.hfov}
+		c.Lens = &config.LensConfig{HFOVDeg: f.hfov}
 	}
 	if f.camera != "" {
 		v, err := parseCoefficients(f.camera)
 		if err != nil || len(v) != 3 {
 			return c, fmt.Errorf(`-camera %q: want "x,y,height" in metres`, f.camera)
 		}
-		c.CameraPosition = &CameraPositionConfig{X: v[0], Y: v[1], Height: v[2]}
+		c.CameraPosition = &config.CameraPositionConfig{X: v[0], Y: v[1], Height: v[2]}
 	}
-	c.Water = WaterConfig{Depth: f.depth, Shallow: f.shallow, Deep: f.deep}
+	c.Water = config.WaterConfig{Depth: f.depth, Shallow: f.shallow, Deep: f.deep}
 	return c, nil
 }
 
@@ -252,10 +253,10 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 	if cfg.ReferenceFrame = f.reference; f.reference == "" && f.out != "" {
 		cfg.ReferenceFrame = strings.TrimSuffix(f.out, filepath.Ext(f.out)) + "-reference.png"
 	}
-	if err := validateCalibration("calibration", cfg); err != nil {
+	if err := config.ValidateCalibration("calibration", cfg); err != nil {
 		return fmt.Errorf("calibrate: %w", err)
 	}
-	cal, err := buildCalibration(cfg)
+	cal, err := config.BuildCalibration(cfg)
 	if err != nil {
 		return fmt.Errorf("calibrate: %w", err)
 	}
@@ -302,7 +303,7 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 		fmt.Fprintln(report, "reference:  not saved; give -reference or -out to enable the camera-moved check")
 	}
 	if f.dataDir != "" {
-		cam := CameraConfig{ID: f.id, Source: f.frame, CalibrationConfig: cfg, Detect: defaultDetect()}
+		cam := config.CameraConfig{ID: f.id, Source: f.frame, CalibrationConfig: cfg, Detect: config.DefaultDetect()}
 		ref, grid, err := learnReference(ctx, cam, f.transport, f.timeout, f.learn)
 		if err != nil {
 			return fmt.Errorf("calibrate: empty-pool reference: %w", err)
@@ -329,13 +330,13 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 }
 
 // printCalibration writes the installer's summary.
-func printCalibration(w io.Writer, src string, size image.Point, cfg CalibrationConfig, cal *homography.Calibration) {
+func printCalibration(w io.Writer, src string, size image.Point, cfg config.CalibrationConfig, cal *homography.Calibration) {
 	fmt.Fprintf(w, "frame:      %s, %d×%d px\n", vision.Redact(src), size.X, size.Y)
 	L, W := cal.Size()
 	fit := cal.Fit()
 	cam, hasCam, estimated := cal.Camera()
 	fmt.Fprintf(w, "pool:       %g m × %g m, corners clicked at the %s\n", L, W, map[bool]string{true: "coping", false: "water line"}[cal.Coping() > 0])
-	if fit.Points == 4 && !cfg.freeform() {
+	if fit.Points == 4 && !cfg.Freeform() {
 		fmt.Fprintf(w, "reprojection: %.3f m / %.2f px RMS (four corners fit exactly; click accuracy shows in metres per pixel)\n", fit.RMSM, fit.RMSPx)
 	} else {
 		fmt.Fprintf(w, "reprojection: %.3f m RMS, worst %.3f m, %.2f px RMS over %d points\n", fit.RMSM, fit.WorstM, fit.RMSPx, fit.Points)
@@ -373,7 +374,7 @@ func printCalibration(w io.Writer, src string, size image.Point, cfg Calibration
 
 // calibrationYAML renders the configuration section with pixel pairs on
 // one line each.
-func calibrationYAML(cfg CalibrationConfig) ([]byte, error) {
+func calibrationYAML(cfg config.CalibrationConfig) ([]byte, error) {
 	var n yaml.Node
 	if err := n.Encode(cfg); err != nil {
 		return nil, fmt.Errorf("encode calibration: %w", err)

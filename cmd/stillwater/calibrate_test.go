@@ -19,6 +19,7 @@ import (
 	"github.com/stretchr/testify/require"
 	"gopkg.in/yaml.v3"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/synth"
 )
 
@@ -89,13 +90,13 @@ func TestCalibrateCommand(t *testing.T) {
 
 	b, err := os.ReadFile(out)
 	require.NoError(t, err)
-	var cfg CalibrationConfig
+	var cfg config.CalibrationConfig
 	dec := yaml.NewDecoder(bytes.NewReader(b))
 	dec.KnownFields(true)
 	require.NoError(t, dec.Decode(&cfg), string(b))
 	assert.Contains(t, string(b), "corners:\n  - [")
-	require.NoError(t, validateCalibration("calibration", cfg))
-	cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: cfg})
+	require.NoError(t, config.ValidateCalibration("calibration", cfg))
+	cal, err := config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: cfg})
 	require.NoError(t, err)
 	_, refracts := cal.Depth()
 	assert.True(t, refracts)
@@ -253,15 +254,15 @@ func FuzzParsePairs(f *testing.F) {
 		}
 		// Whatever parses must survive validation without a panic, and
 		// bad numbers must be refused there.
-		cfg := CalibrationConfig{Pool: PoolConfig{Length: 8, Width: 4}, Corners: pts}
-		if err := validateCalibration("fuzz", cfg); err == nil {
+		cfg := config.CalibrationConfig{Pool: config.PoolConfig{Length: 8, Width: 4}, Corners: pts}
+		if err := config.ValidateCalibration("fuzz", cfg); err == nil {
 			for _, p := range pts {
 				if math.IsNaN(p[0]) || math.IsInf(p[0], 0) || p[0] < 0 {
 					t.Fatalf("accepted corner %v", p)
 				}
 			}
 		}
-		_, _ = buildCalibration(cfg)
+		_, _ = config.BuildCalibration(cfg)
 	})
 }
 
@@ -288,7 +289,7 @@ func TestCalibrateFreeform(t *testing.T) {
 		"-length", "8", "-width", "4", "-hfov", "70", "-overlay", filepath.Join(dir, "o.png"),
 	}, &so, &se), se.String())
 	assert.Regexp(t, `reprojection: 0\.0\d\d m RMS, worst 0\.0\d\d m, [\d.]+ px RMS over 5 points`, se.String())
-	var cfg CalibrationConfig
+	var cfg config.CalibrationConfig
 	require.NoError(t, yaml.Unmarshal(so.Bytes(), &cfg))
 	assert.Len(t, cfg.Reference, 5)
 	assert.Len(t, cfg.Outline, 16)

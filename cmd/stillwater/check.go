@@ -18,6 +18,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/alert/arming"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/redact"
 	"stillwater/homography"
 	"stillwater/vision"
@@ -42,7 +43,7 @@ func runCheck(_ context.Context, args []string, stdout, stderr io.Writer) error 
 		}
 		now = t
 	}
-	cfg, err := LoadConfig(*path)
+	cfg, err := config.LoadConfig(*path)
 	if err != nil {
 		return fmt.Errorf("config is not valid: %w", err)
 	}
@@ -65,7 +66,7 @@ func runCheck(_ context.Context, args []string, stdout, stderr io.Writer) error 
 // it does not have: a data directory that cannot be made or written, a
 // source file or device that is not there, a secret that cannot be read.
 // Checked as the user running check, which should be the daemon's.
-func hostProblems(cfg Config, getenv func(string) string) []string {
+func hostProblems(cfg config.Config, getenv func(string) string) []string {
 	var out []string
 	if err := checkDataDir(cfg.DataDir); err != nil {
 		out = append(out, "data_dir: "+err.Error())
@@ -76,7 +77,7 @@ func hostProblems(cfg Config, getenv func(string) string) []string {
 		}
 		out = append(out, streamProblems(fmt.Sprintf("cameras[%d] (%s)", i, cam.ID), cfg, cam)...)
 	}
-	src := cfg.secretSources()
+	src := cfg.SecretSources()
 	fields := make([]string, 0, len(src))
 	for f := range src {
 		fields = append(fields, f)
@@ -147,12 +148,12 @@ func checkSource(src string) error {
 
 // describe prints the plan for a valid config: cameras, schedule in local
 // time, bus and storage.
-func describe(w io.Writer, path string, cfg Config, now time.Time) error {
-	sch, err := cfg.schedules()
+func describe(w io.Writer, path string, cfg config.Config, now time.Time) error {
+	sch, err := cfg.Schedules()
 	if err != nil {
 		return err
 	}
-	loc, err := cfg.zone()
+	loc, err := cfg.Zone()
 	if err != nil {
 		return err
 	}
@@ -167,7 +168,7 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 		if err := describeStreams(w, cfg, cam); err != nil {
 			return err
 		}
-		cal, err := newCalibration(cam)
+		cal, err := config.NewCalibration(cam)
 		if err != nil {
 			return err
 		}
@@ -189,25 +190,25 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 		if n := len(cam.Zones); n > 0 {
 			fmt.Fprintf(w, "    %d exclusion zone(s)\n", n)
 		}
-		fmt.Fprintf(w, "    %s\n", detectLine(cam.Detect))
+		fmt.Fprintf(w, "    %s\n", config.DetectLine(cam.Detect))
 		fmt.Fprintf(w, "    camera lost after %v without a frame while armed\n", time.Duration(cam.FrameTimeout))
 		fmt.Fprintf(w, "    %s\n", armingLine(sch[cam.ID], loc, cfg.Arming.TimeZone == "Local", now))
 	}
 	fmt.Fprintln(w)
 	fmt.Fprintln(w, "bus:")
-	if cfg.Bus.embedded() {
+	if cfg.Bus.Embedded() {
 		fmt.Fprintf(w, "  embedded NATS server on %s, JetStream store in %s/jetstream\n", cfg.Bus.Listen, cfg.DataDir)
 		if cfg.Bus.MQTT != "" {
 			fmt.Fprintf(w, "  MQTT listener on %s (topics %s/CAMERA/KIND)\n", cfg.Bus.MQTT, cfg.Bus.Prefix)
 		}
 	} else {
 		var servers []string
-		for _, u := range strings.Split(cfg.Bus.serverURLs(), ",") {
+		for _, u := range strings.Split(cfg.Bus.ServerURLs(), ",") {
 			servers = append(servers, vision.Redact(u))
 		}
 		fmt.Fprintf(w, "  external NATS %s\n", strings.Join(servers, ", "))
 	}
-	if names := cfg.Bus.consumers(); len(names) > 0 {
+	if names := cfg.Bus.Consumers(); len(names) > 0 {
 		fmt.Fprintf(w, "  durable consumers kept for %s (each binds the one named after it)\n", strings.Join(names, ", "))
 	}
 	tw := tabwriter.NewWriter(w, 2, 4, 2, ' ', 0)
@@ -245,7 +246,7 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 	default:
 		fmt.Fprintln(w, "  camera pictures (/cameras/ID/latest.jpg) refused: the listener is not loopback and no token is set")
 	}
-	if cfg.Evidence.on() {
+	if cfg.Evidence.On() {
 		e := cfg.Evidence
 		fmt.Fprintf(w, "evidence: %s/evidence, %v before and %v after each alarm; keep at most %d files, %d MB, %v\n",
 			cfg.DataDir, time.Duration(e.PreRoll), time.Duration(e.PostRoll), e.MaxFiles, e.MaxMB, time.Duration(e.MaxAge))
@@ -256,7 +257,7 @@ func describe(w io.Writer, path string, cfg Config, now time.Time) error {
 }
 
 // calibrationLine summarises how pixels become pool metres.
-func calibrationLine(cam CameraConfig) string {
+func calibrationLine(cam config.CameraConfig) string {
 	c := cam.CalibrationConfig
 	var b strings.Builder
 	if len(c.Reference) > 0 {
@@ -299,7 +300,7 @@ func resolution(cal *homography.Calibration) string {
 
 // crossedCorners reports whether the calibration uses the corners in
 // another order than written (C and D swapped to undo a bow-tie).
-func crossedCorners(cam CameraConfig, cal *homography.Calibration) bool {
+func crossedCorners(cam config.CameraConfig, cal *homography.Calibration) bool {
 	corners := cal.Corners()
 	if len(cam.Corners) != 4 || len(corners) != 4 {
 		return false

@@ -18,6 +18,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/synth"
 )
 
@@ -202,24 +203,24 @@ func demoClip(ctx context.Context, truth synth.Truth, clip, dir string, realtime
 // demoConfig is the daemon configuration for a rendered clip: its corners
 // from the labels, the embedded bus on a free loopback port, metrics on a
 // free loopback port.
-func demoConfig(t synth.Truth, clip, dir string, realtime bool) Config {
-	cfg := Defaults()
+func demoConfig(t synth.Truth, clip, dir string, realtime bool) config.Config {
+	cfg := config.Defaults()
 	cfg.DataDir = filepath.Join(dir, "data")
 	cfg.HTTP.Listen = "127.0.0.1:0"
 	cfg.Bus.Listen = "127.0.0.1:-1"
-	cam := CameraConfig{
+	cam := config.CameraConfig{
 		ID: "demo", Source: clip, Realtime: realtime,
-		CalibrationConfig: CalibrationConfig{
-			Pool:           PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width},
-			CameraPosition: &CameraPositionConfig{X: t.Camera.X, Y: t.Camera.Y, Height: t.Camera.Height},
+		CalibrationConfig: config.CalibrationConfig{
+			Pool:           config.PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width},
+			CameraPosition: &config.CameraPositionConfig{X: t.Camera.X, Y: t.Camera.Y, Height: t.Camera.Height},
 		},
-		Detect:       defaultDetect(),
-		FrameTimeout: Duration(defaultFrameTimeout),
+		Detect:       config.DefaultDetect(),
+		FrameTimeout: config.Duration(config.DefaultFrameTimeout),
 	}
 	for _, c := range t.Corners {
 		cam.Corners = append(cam.Corners, c.Pixel)
 	}
-	cfg.Cameras = []CameraConfig{cam}
+	cfg.Cameras = []config.CameraConfig{cam}
 	return cfg
 }
 

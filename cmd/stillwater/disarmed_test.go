@@ -14,6 +14,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 )
 
 // TestDisarmedPublishesNoTarget runs the child scene while the schedule
@@ -31,7 +32,7 @@ func TestDisarmedPublishesNoTarget(t *testing.T) {
 	cfg := demoConfig(truth, clip, dir, false)
 	// A one-hour window that starts two hours from now: disarmed now.
 	from := time.Now().UTC().Add(2 * time.Hour)
-	cfg.Arming = ArmingConfig{TimeZone: "UTC", Schedule: []string{
+	cfg.Arming = config.ArmingConfig{TimeZone: "UTC", Schedule: []string{
 		fmt.Sprintf("daily %02d:00-%02d:00", from.Hour(), (from.Hour()+1)%24),
 	}}
 	require.NoError(t, cfg.Validate())

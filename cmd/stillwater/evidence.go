@@ -9,6 +9,7 @@ import (
 	"time"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision"
 	"stillwater/vision/remux"
 )
@@ -22,10 +23,10 @@ type evidenceSettings struct {
 	ringRoot          string // the pre-roll rings of evidence streams, one directory per camera
 }
 
-func newEvidenceSettings(cfg Config) evidenceSettings {
+func newEvidenceSettings(cfg config.Config) evidenceSettings {
 	e := cfg.Evidence
 	return evidenceSettings{
-		on:       e.on(),
+		on:       e.On(),
 		dir:      filepath.Join(cfg.DataDir, "evidence"),
 		preRoll:  time.Duration(e.PreRoll),
 		postRoll: time.Duration(e.PostRoll),
@@ -36,7 +37,7 @@ func newEvidenceSettings(cfg Config) evidenceSettings {
 
 // annotation draws the water outline and every live track with its
 // position in pool metres.
-func annotation(cam CameraConfig, proc *processor, caption string) vision.Annotation {
+func annotation(cam config.CameraConfig, proc *processor, caption string) vision.Annotation {
 	a := vision.Annotation{Outline: calMask(proc.cal), Caption: caption}
 	for _, t := range proc.tracks {
 		a.Boxes = append(a.Boxes, vision.LabeledBox{Box: t.Box, Label: fmt.Sprintf("track %d  %.2f m, %.2f m%s", t.ID, t.X, t.Y, proc.why(t.ID))})

@@ -7,6 +7,7 @@ import (
 	"os"
 	"time"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/synth"
 )
 
@@ -118,20 +119,20 @@ func readHoldout(path string) (holdoutLabels, error) {
 // the four corners as clicked on the raw frame, the chessboard lens, the
 // measured camera position and the depth profile. The generator's truth
 // homographies are not used.
-func (h holdoutLabels) camera(clip string) CameraConfig {
-	cam := CameraConfig{
+func (h holdoutLabels) camera(clip string) config.CameraConfig {
+	cam := config.CameraConfig{
 		ID: "clip", Source: clip,
-		CalibrationConfig: CalibrationConfig{
-			Pool:  PoolConfig{Length: h.Pool.Length, Width: h.Pool.Width},
+		CalibrationConfig: config.CalibrationConfig{
+			Pool:  config.PoolConfig{Length: h.Pool.Length, Width: h.Pool.Width},
 			Frame: [2]int{h.Video.Width, h.Video.Height},
-			Lens: &LensConfig{
+			Lens: &config.LensConfig{
 				Fx: h.Camera.K[0][0], Fy: h.Camera.K[1][1], Cx: h.Camera.K[0][2], Cy: h.Camera.K[1][2],
 				Dist: append([]float64(nil), h.Camera.Dist...),
 			},
-			CameraPosition: &CameraPositionConfig{X: h.Camera.Position[0], Y: h.Camera.Position[1], Height: h.Camera.Position[2]},
-			Water:          WaterConfig{Shallow: h.Pool.Depth.AtX0, Deep: h.Pool.Depth.AtXL},
+			CameraPosition: &config.CameraPositionConfig{X: h.Camera.Position[0], Y: h.Camera.Position[1], Height: h.Camera.Position[2]},
+			Water:          config.WaterConfig{Shallow: h.Pool.Depth.AtX0, Deep: h.Pool.Depth.AtXL},
 		},
-		Detect: defaultDetect(),
+		Detect: config.DefaultDetect(),
 	}
 	for _, c := range h.Pool.Corners {
 		cam.Corners = append(cam.Corners, c.Rendered)
@@ -215,21 +216,21 @@ func labelFormat(path string) (string, error) {
 // cameraForLabels builds the camera for replaying clip from a label file
 // of either format: the corners alone for stillwater.labels/v1, the
 // installer's full calibration for pool-holdout-v1.
-func cameraForLabels(path, clip string) (CameraConfig, error) {
+func cameraForLabels(path, clip string) (config.CameraConfig, error) {
 	format, err := labelFormat(path)
 	if err != nil {
-		return CameraConfig{}, err
+		return config.CameraConfig{}, err
 	}
 	if format == holdoutFormat {
 		h, err := readHoldout(path)
 		if err != nil {
-			return CameraConfig{}, err
+			return config.CameraConfig{}, err
 		}
 		return h.camera(clip), nil
 	}
 	t, err := synth.ReadTruth(path)
 	if err != nil {
-		return CameraConfig{}, err
+		return config.CameraConfig{}, err
 	}
 	return cameraFromLabels(t, clip)
 }

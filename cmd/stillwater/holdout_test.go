@@ -14,6 +14,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/homography"
 	"stillwater/vision"
 )
@@ -56,7 +57,7 @@ func TestHoldoutCalibration(t *testing.T) {
 		t.Run(n, func(t *testing.T) {
 			h, err := readHoldout(filepath.Join(dir, n+".json"))
 			require.NoError(t, err)
-			cal, err := newCalibration(h.camera(filepath.Join(dir, n+".mp4")))
+			cal, err := config.NewCalibration(h.camera(filepath.Join(dir, n+".mp4")))
 			require.NoError(t, err)
 			m, ok := h.holdoutH()
 			require.True(t, ok, "labels hold no truth homography")
@@ -102,7 +103,7 @@ func TestReadHoldoutLabels(t *testing.T) {
 	assert.Equal(t, 1.9, cam.Water.Deep)
 	assert.Equal(t, 5.0, cam.CameraPosition.Height)
 	assert.Equal(t, []float64{-0.05, 0, 0, 0, 0}, cam.Lens.Dist)
-	_, err = newCalibration(cam)
+	_, err = config.NewCalibration(cam)
 	require.NoError(t, err)
 
 	// Either format through the one reader the score command uses.
@@ -123,7 +124,7 @@ type holdoutRun struct {
 
 // runHoldout replays and scores every development clip with the detect
 // section adjusted by tweak.
-func runHoldout(ctx context.Context, dir string, tweak func(*DetectConfig), log *slog.Logger) ([]holdoutRun, error) {
+func runHoldout(ctx context.Context, dir string, tweak func(*config.DetectConfig), log *slog.Logger) ([]holdoutRun, error) {
 	var out []holdoutRun
 	for _, n := range holdoutClips {
 		h, err := readHoldout(filepath.Join(dir, n+".json"))
@@ -169,7 +170,7 @@ func BenchmarkHoldoutDev(b *testing.B) {
 	for _, method := range []string{"meanvar", "mog2"} {
 		b.Run(method, func(b *testing.B) {
 			for i := 0; i < b.N; i++ {
-				rs, err := runHoldout(context.Background(), dir, func(d *DetectConfig) { d.Method = method }, slog.New(slog.NewTextHandler(io.Discard, nil)))
+				rs, err := runHoldout(context.Background(), dir, func(d *config.DetectConfig) { d.Method = method }, slog.New(slog.NewTextHandler(io.Discard, nil)))
 				if err != nil {
 					b.Fatal(err)
 				}

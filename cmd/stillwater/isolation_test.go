@@ -29,6 +29,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/refdata"
 )
 
@@ -134,7 +135,7 @@ func recordTime(t *testing.T, rec map[string]any) time.Time {
 // debug level, and a stop that reports how long serve took to return
 // after its context ended (what SIGTERM does in run). stop gives up after
 // limit and reports that as an error.
-func startLoggedDaemon(t *testing.T, cfg Config, limit time.Duration) (*busLog, *logBuffer, func() (time.Duration, error)) {
+func startLoggedDaemon(t *testing.T, cfg config.Config, limit time.Duration) (*busLog, *logBuffer, func() (time.Duration, error)) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	bl := &busLog{}
@@ -224,7 +225,7 @@ func TestHangingSourcesDoNotHoldUpAHealthyCamera(t *testing.T) {
 	}
 	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
 	cfg := demoConfig(truth, clip, dir, true)
-	cfg.HeartbeatEvery = Duration(time.Second)
+	cfg.HeartbeatEvery = config.Duration(time.Second)
 	silent, pipe := cfg.Cameras[0], cfg.Cameras[0]
 	silent.ID, silent.Source, silent.Transport = "silent", "rtsp://"+silentSource(t)+"/pool", "tcp"
 	pipe.ID, pipe.Source = "pipe", writerlessPipe(t)

@@ -7,6 +7,7 @@ import (
 	"sort"
 	"time"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/homography"
 	"stillwater/vision"
 )
@@ -285,4 +286,10 @@ func deckBodies(notes []candidateNote, min float64) []homography.Point {
 		}
 	}
 	return out
+}
+
+// judgeRulesOf returns the rules tracks are judged by.
+func judgeRulesOf(d config.DetectConfig) judgeRules {
+	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, MinScore: d.MinScore, MinTint: d.MinTint, MaxLength: d.MaxLength, MaxSpeed: d.MaxSpeed,
+		DeckRadius: max(0, d.DeckRadius), Companion: max(0, d.Companion), DeckMemory: time.Second, DeckMinArea: d.MinArea}
 }

@@ -7,6 +7,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/homography"
 	"stillwater/vision"
 )
@@ -19,7 +20,7 @@ func body() vision.Features {
 }
 
 func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
-	rules := judgeRulesOf(defaultDetect())
+	rules := judgeRulesOf(config.DefaultDetect())
 	require.Equal(t, 2.5, rules.Companion)
 	cases := []struct {
 		name      string
@@ -66,7 +67,7 @@ func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
 // walker's edge in the watched ring of a tuning scene: area 0.16 m², mean
 // score 38); a speck does not, nor a candidate over the water.
 func TestDeckBodies(t *testing.T) {
-	r := judgeRulesOf(defaultDetect())
+	r := judgeRulesOf(config.DefaultDetect())
 	walker := vision.Features{Area: 0.16, Half: 0.16, Score: 38}
 	speck := vision.Features{Area: 0.01, Half: 0.01, Score: 80}
 	notes := []candidateNote{
@@ -83,7 +84,7 @@ func TestDeckBodies(t *testing.T) {
 // scene held its child back 1.5 s for it); a shadow that appeared on the
 // water beside someone standing there did not come over the edge.
 func TestJudgeOwnTrailOnTheDeck(t *testing.T) {
-	r := judgeRulesOf(defaultDetect())
+	r := judgeRulesOf(config.DefaultDetect())
 	for _, c := range []struct {
 		name     string
 		firstWet float64 // share of the track's first candidate on the water

@@ -7,6 +7,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 
 	"stillwater/alert/bus"
+	"stillwater/cmd/stillwater/internal/config"
 )
 
 // metrics are the daemon's own collectors, registered on the registry
@@ -248,7 +249,7 @@ func (m *metrics) busResult(r bus.PublishResult) {
 
 // registerBusMetrics registers the series read from the bus side at
 // scrape time.
-func registerBusMetrics(reg prometheus.Registerer, b *busParts, now func() time.Time) {
+func registerBusMetrics(reg prometheus.Registerer, b *config.BusParts, now func() time.Time) {
 	pub := b.Pub
 	stats := func(f func(bus.Stats) float64) func() float64 { return func() float64 { return f(pub.Stats()) } }
 	fault := func(reason, help string, active func() bool) prometheus.Collector {
@@ -260,7 +261,7 @@ func registerBusMetrics(reg prometheus.Registerer, b *busParts, now func() time.
 		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_depth", Help: "Messages waiting in the outbox for the bus."},
 			stats(func(s bus.Stats) float64 { return float64(s.Depth) })),
 		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_outbox_oldest_age_seconds", Help: "Age of the oldest message in the outbox; 0 when it is empty."},
-			func() float64 { age, _ := b.stalled(now()); return age.Seconds() }),
+			func() float64 { age, _ := b.Stalled(now()); return age.Seconds() }),
 		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_dropped_total", Help: "Messages the outbox dropped or refused because it was full."},
 			stats(func(s bus.Stats) float64 { return float64(s.Dropped + s.Refused) })),
 		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_messages_queued_total", Help: "Stream messages put in the outbox to wait for the bus."},
@@ -270,6 +271,6 @@ func registerBusMetrics(reg prometheus.Registerer, b *busParts, now func() time.
 		prometheus.NewCounterFunc(prometheus.CounterOpts{Name: "stillwater_outbox_rejected_total", Help: "Outbox lines set aside as invalid when the outbox was opened."},
 			stats(func(s bus.Stats) float64 { return float64(s.Rejected) })),
 		fault("stream", faultHelp, func() bool { return pub.StreamFault() != nil }),
-		fault("stalled", faultHelp, func() bool { _, st := b.stalled(now()); return st }),
+		fault("stalled", faultHelp, func() bool { _, st := b.Stalled(now()); return st }),
 	)
 }

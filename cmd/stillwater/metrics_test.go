@@ -21,6 +21,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/alert/bus"
+	"stillwater/cmd/stillwater/internal/config"
 )
 
 // TestMetricsExposition drives every collector of the daemon's own
@@ -70,7 +71,7 @@ func TestMetricsExposition(t *testing.T) {
 	m.refused.WithLabelValues("http").Inc()
 
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
-	b := openTestBus(t, busOnlyConfig(t), log, busHooks{})
+	b := openTestBus(t, busOnlyConfig(t), log, config.BusHooks{})
 	t.Cleanup(func() { b.Close() })
 	registerBusMetrics(reg, b, func() time.Time { return time.Date(2026, 7, 1, 12, 0, 0, 0, time.UTC) })
 

@@ -9,6 +9,7 @@ import (
 	"time"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/homography"
 	"stillwater/vision"
 )
@@ -32,7 +33,7 @@ type sink interface {
 // to pool metres, physical-size gating, tracking and alarm logic. It is the
 // same for the daemon and for replays.
 type processor struct {
-	cam    CameraConfig
+	cam    config.CameraConfig
 	cal    *homography.Calibration // frame pixels → pool metres: lens, homography, refraction
 	zones  zoneSet                 // exclusion polygons
 	tracks []vision.Track
@@ -56,7 +57,7 @@ type processor struct {
 
 // newProcessor returns the pipeline of one camera; cal is the camera's
 // calibration, built once by the caller.
-func newProcessor(cam CameraConfig, cal *homography.Calibration, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *cameraMetrics) (*processor, error) {
+func newProcessor(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *cameraMetrics) (*processor, error) {
 	zones, err := newZoneSet(cam, cal)
 	if err != nil {
 		return nil, err
@@ -211,8 +212,8 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 // reload swaps in a camera's new calibration, zones and detection
 // thresholds between frames, keeping tracks and alarms. The background
 // model is not touched: the source and its size stay the same.
-func (p *processor) reload(cam CameraConfig) error {
-	cal, err := newCalibration(cam)
+func (p *processor) reload(cam config.CameraConfig) error {
+	cal, err := config.NewCalibration(cam)
 	if err != nil {
 		return err
 	}

@@ -17,6 +17,7 @@ import (
 	"path/filepath"
 	"time"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision"
 )
 
@@ -272,8 +273,8 @@ func (w *cameraWatch) keepReference(vc *vision.Camera, proc *processor, r vision
 // learnReference watches a clip or a camera of the empty pool for learn
 // (media time) and returns the detector's background as a reference,
 // with the grid it is for.
-func learnReference(ctx context.Context, cam CameraConfig, transport string, timeout, learn time.Duration) (vision.Reference, *vision.Rectification, error) {
-	cal, err := newCalibration(cam)
+func learnReference(ctx context.Context, cam config.CameraConfig, transport string, timeout, learn time.Duration) (vision.Reference, *vision.Rectification, error) {
+	cal, err := config.NewCalibration(cam)
 	if err != nil {
 		return vision.Reference{}, nil, err
 	}

@@ -16,6 +16,7 @@ import (
 	"gopkg.in/yaml.v3"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -100,7 +101,7 @@ func TestDaemonStartsFromEmptyPoolReference(t *testing.T) {
 	// The daemon's camera takes the calibration calibrate wrote.
 	y, err := os.ReadFile(filepath.Join(dir, "cal.yaml"))
 	require.NoError(t, err)
-	var cal CalibrationConfig
+	var cal config.CalibrationConfig
 	require.NoError(t, yaml.Unmarshal(y, &cal))
 	targets := func(clip string, withRef bool) []alert.Target {
 		cfg := demoConfig(truth, clip, dir, true)

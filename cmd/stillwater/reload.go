@@ -10,6 +10,7 @@ import (
 	"time"
 
 	"stillwater/alert/arming"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/redact"
 )
 
@@ -27,14 +28,14 @@ type reloadTargets struct {
 // in every reload line until the daemon restarts with it.
 type reloader struct {
 	log     *slog.Logger
-	running Config
-	prev    Config
+	running config.Config
+	prev    config.Config
 	acc     access
 	getenv  func(string) string
 	to      reloadTargets
 }
 
-func newReloader(log *slog.Logger, running Config, acc access, to reloadTargets) *reloader {
+func newReloader(log *slog.Logger, running config.Config, acc access, to reloadTargets) *reloader {
 	return &reloader{log: log, running: running, prev: running, acc: acc, getenv: os.Getenv, to: to}
 }
 
@@ -42,9 +43,9 @@ func newReloader(log *slog.Logger, running Config, acc access, to reloadTargets)
 // the control and viewer tokens and max_disarm, and logs one line saying
 // what changed and which settings wait for a restart. Cameras added,
 // removed or pointed at another source need a restart.
-func (r *reloader) apply(next Config) {
+func (r *reloader) apply(next config.Config) {
 	log := redact.WithRedaction(r.log, next.Secrets()...)
-	sch, err := next.schedules()
+	sch, err := next.Schedules()
 	if err != nil {
 		log.Error("reload refused", "err", err)
 		return
@@ -52,7 +53,7 @@ func (r *reloader) apply(next Config) {
 	changed := changedKeys(r.prev, next)
 	pending := restartKeys(r.running, next)
 
-	byID := map[string]CameraConfig{}
+	byID := map[string]config.CameraConfig{}
 	for _, c := range next.Cameras {
 		byID[c.ID] = c
 	}
@@ -85,11 +86,11 @@ func (r *reloader) apply(next Config) {
 	}
 
 	tokens := "unchanged"
-	if acc, warn, err := next.access(r.getenv); err != nil {
+	if acc, warn, err := accessOf(next, r.getenv); err != nil {
 		log.Error("reload: control and viewer tokens kept as they were", "err", err)
 		tokens = "kept (error)"
 	} else {
-		logWarnings(log, warn)
+		config.LogWarnings(log, warn)
 		if acc != r.acc {
 			tokens = "changed"
 			if r.to.setAccess != nil {
@@ -145,14 +146,14 @@ func (r *reloader) apply(next Config) {
 // configuration and that only a restart applies; a calibration change
 // that moves the detector's water outline is named too, because the
 // outline is set when the camera opens.
-func restartKeys(running, next Config) []string {
+func restartKeys(running, next config.Config) []string {
 	var out []string
 	for _, k := range changedKeys(running, next) {
 		if !liveKey(k) {
 			out = append(out, k)
 		}
 	}
-	old := map[string]CameraConfig{}
+	old := map[string]config.CameraConfig{}
 	for _, c := range running.Cameras {
 		old[c.ID] = c
 	}
@@ -161,8 +162,8 @@ func restartKeys(running, next Config) []string {
 		if !ok || reflect.DeepEqual(o.CalibrationConfig, c.CalibrationConfig) {
 			continue
 		}
-		a, errA := newCalibration(o)
-		b, errB := newCalibration(c)
+		a, errA := config.NewCalibration(o)
+		b, errB := config.NewCalibration(c)
 		if errA == nil && errB == nil && !reflect.DeepEqual(a.Mask(), b.Mask()) {
 			out = append(out, fmt.Sprintf("cameras[%s] water outline of the detector (calibration)", c.ID))
 		}
@@ -189,7 +190,7 @@ func liveKey(k string) bool {
 		return true
 	}
 	first, _, _ := strings.Cut(rest, ".")
-	return slices.Contains(yamlKeys(reflect.TypeOf(CalibrationConfig{})), first)
+	return slices.Contains(yamlKeys(reflect.TypeOf(config.CalibrationConfig{})), first)
 }
 
 // cameraKey splits "cameras[ID].rest" into ID and rest.
@@ -212,10 +213,10 @@ func cameraKey(k string) (id, rest string, ok bool) {
 // dotted ("evidence.max_files"); cameras are matched by id
 // ("cameras[pool].detect.threshold"), and one in a only or b only is
 // "cameras[pool] (removed)" or "(added)".
-func changedKeys(a, b Config) []string {
+func changedKeys(a, b config.Config) []string {
 	var out []string
 	diffStruct("", reflect.ValueOf(a), reflect.ValueOf(b), &out)
-	inB := map[string]CameraConfig{}
+	inB := map[string]config.CameraConfig{}
 	for _, c := range b.Cameras {
 		inB[c.ID] = c
 	}

@@ -12,6 +12,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -37,13 +38,13 @@ func TestReloadedDriftCheckerIsClosed(t *testing.T) {
 	require.NoError(t, err)
 	ref := filepath.Join(t.TempDir(), "ref.png")
 	writePNG(t, ref, first)
-	cam := CameraConfig{ID: "t", Source: clip, FrameTimeout: Duration(defaultFrameTimeout), Detect: defaultDetect(),
-		CalibrationConfig: CalibrationConfig{Pool: PoolConfig{Length: truth.Pool.Length, Width: truth.Pool.Width}, ReferenceFrame: ref}}
+	cam := config.CameraConfig{ID: "t", Source: clip, FrameTimeout: config.Duration(config.DefaultFrameTimeout), Detect: config.DefaultDetect(),
+		CalibrationConfig: config.CalibrationConfig{Pool: config.PoolConfig{Length: truth.Pool.Length, Width: truth.Pool.Width}, ReferenceFrame: ref}}
 	for _, c := range truth.Corners {
 		cam.Corners = append(cam.Corners, [2]float64{math.Round(c.Pixel[0]), math.Round(c.Pixel[1])})
 	}
-	cfg := Defaults()
-	cfg.Cameras = []CameraConfig{cam}
+	cfg := config.Defaults()
+	cfg.Cameras = []config.CameraConfig{cam}
 	require.NoError(t, cfg.Validate())
 	cam = cfg.Cameras[0]
 

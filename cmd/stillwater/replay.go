@@ -18,6 +18,7 @@ import (
 	"time"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -55,18 +56,18 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	prefix := fs.String("prefix", "stillwater", "bus subject `prefix` with -labels")
 	verbose := fs.Bool("v", false, "log at debug level to standard error; with -labels, also say why the labelled intruder is not reported (at most once a second)")
 	why := fs.String("why", "", "with -labels, explain these frame `numbers` (\"120,121\") on standard error")
-	var ov detectOverrides
-	ov.register(fs)
+	var ov config.DetectOverrides
+	ov.Register(fs)
 	if err := fs.Parse(args); err != nil {
 		return errUsage
 	}
 	if *clip == "" {
 		return fmt.Errorf("replay: -clip is required: %w", errUsage)
 	}
-	if err := ov.validate(); err != nil {
+	if err := ov.Validate(); err != nil {
 		return fmt.Errorf("replay: %w: %w", err, errUsage)
 	}
-	var cam CameraConfig
+	var cam config.CameraConfig
 	pfx := *prefix
 	switch {
 	case *labels != "" && *cfgPath != "":
@@ -78,7 +79,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			return fmt.Errorf("replay: labels %s: %w", *labels, err)
 		}
 	case *cfgPath != "":
-		cfg, err := LoadConfig(*cfgPath)
+		cfg, err := config.LoadConfig(*cfgPath)
 		if err != nil {
 			return fmt.Errorf("replay: %w", err)
 		}
@@ -91,8 +92,8 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	default:
 		return fmt.Errorf("replay: give -labels or -config and -camera: %w", errUsage)
 	}
-	cam.Detect = ov.apply(cam.Detect)
-	if err := validateDetect("replay", cam.Detect); err != nil {
+	cam.Detect = ov.Apply(cam.Detect)
+	if err := config.ValidateDetect("replay", cam.Detect); err != nil {
 		return fmt.Errorf("replay: %w", err)
 	}
 	var opts []func(*processor)
@@ -132,7 +133,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 }
 
 // findCamera returns the camera with id, or the only camera when id is empty.
-func findCamera(cfg Config, id string) (CameraConfig, bool) {
+func findCamera(cfg config.Config, id string) (config.CameraConfig, bool) {
 	if id == "" && len(cfg.Cameras) == 1 {
 		return cfg.Cameras[0], true
 	}
@@ -141,7 +142,7 @@ func findCamera(cfg Config, id string) (CameraConfig, bool) {
 			return c, true
 		}
 	}
-	return CameraConfig{}, false
+	return config.CameraConfig{}, false
 }
 
 // cameraFromLabels builds a camera with the default detect settings from a
@@ -150,17 +151,17 @@ func findCamera(cfg Config, id string) (CameraConfig, bool) {
 // scenes do), the frame size, the chessboard lens, the measured camera
 // position and the depth profile. The labels' camera angles and field of
 // view are not used: an installer does not measure them.
-func cameraFromLabels(t synth.Truth, clip string) (CameraConfig, error) {
+func cameraFromLabels(t synth.Truth, clip string) (config.CameraConfig, error) {
 	if t.Pool.Length <= 0 || t.Pool.Width <= 0 {
-		return CameraConfig{}, fmt.Errorf("pool %gx%g m: both sides must be positive", t.Pool.Length, t.Pool.Width)
+		return config.CameraConfig{}, fmt.Errorf("pool %gx%g m: both sides must be positive", t.Pool.Length, t.Pool.Width)
 	}
 	if len(t.Corners) != 4 {
-		return CameraConfig{}, fmt.Errorf("%d corners; want A, B, C, D", len(t.Corners))
+		return config.CameraConfig{}, fmt.Errorf("%d corners; want A, B, C, D", len(t.Corners))
 	}
-	cam := CameraConfig{
+	cam := config.CameraConfig{
 		ID: "clip", Source: clip,
-		CalibrationConfig: CalibrationConfig{Pool: PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width}},
-		Detect:            defaultDetect(),
+		CalibrationConfig: config.CalibrationConfig{Pool: config.PoolConfig{Length: t.Pool.Length, Width: t.Pool.Width}},
+		Detect:            config.DefaultDetect(),
 	}
 	for _, c := range t.Corners {
 		cam.Corners = append(cam.Corners, c.Pixel)
@@ -173,14 +174,14 @@ func cameraFromLabels(t synth.Truth, clip string) (CameraConfig, error) {
 		cam.Frame = [2]int{t.Width, t.Height}
 	}
 	l := t.Lens
-	cam.Lens = &LensConfig{Fx: l.Fx, Fy: l.Fy, Cx: l.Cx, Cy: l.Cy, Dist: append([]float64(nil), l.Dist[:]...)}
+	cam.Lens = &config.LensConfig{Fx: l.Fx, Fy: l.Fy, Cx: l.Cx, Cy: l.Cy, Dist: append([]float64(nil), l.Dist[:]...)}
 	if t.Camera != nil {
-		cam.CameraPosition = &CameraPositionConfig{X: t.Camera.X, Y: t.Camera.Y, Height: t.Camera.Height}
+		cam.CameraPosition = &config.CameraPositionConfig{X: t.Camera.X, Y: t.Camera.Y, Height: t.Camera.Height}
 	}
 	if t.Depth != nil {
 		w, err := waterFromProfile(*t.Depth)
 		if err != nil {
-			return CameraConfig{}, err
+			return config.CameraConfig{}, err
 		}
 		cam.Water = w
 	}
@@ -190,17 +191,17 @@ func cameraFromLabels(t synth.Truth, clip string) (CameraConfig, error) {
 // waterFromProfile turns a labelled depth profile of one point (a flat
 // floor) or two (a slope between them, level beyond) into the depth
 // settings an installer would write.
-func waterFromProfile(p synth.DepthProfile) (WaterConfig, error) {
+func waterFromProfile(p synth.DepthProfile) (config.WaterConfig, error) {
 	switch {
 	case len(p.X) != len(p.D):
-		return WaterConfig{}, fmt.Errorf("depth profile: %d positions and %d depths", len(p.X), len(p.D))
+		return config.WaterConfig{}, fmt.Errorf("depth profile: %d positions and %d depths", len(p.X), len(p.D))
 	case len(p.D) == 1:
-		return WaterConfig{Depth: p.D[0]}, nil
+		return config.WaterConfig{Depth: p.D[0]}, nil
 	case len(p.D) == 2:
 		x := p.X[1]
-		return WaterConfig{Shallow: p.D[0], ShallowX: p.X[0], Deep: p.D[1], DeepX: &x}, nil
+		return config.WaterConfig{Shallow: p.D[0], ShallowX: p.X[0], Deep: p.D[1], DeepX: &x}, nil
 	}
-	return WaterConfig{}, fmt.Errorf("depth profile of %d points: want one (flat) or two (a slope)", len(p.D))
+	return config.WaterConfig{}, fmt.Errorf("depth profile of %d points: want one (flat) or two (a slope)", len(p.D))
 }
 
 // replaySink collects a frame's messages.
@@ -224,10 +225,10 @@ func (s *replaySink) write(m outMsg) error {
 // checks, processor and step, always armed) over cam.Source and writes each
 // message to w: targets, clears, and picture faults raised and cleared. Wall-clock fields of the messages are taken from media time after
 // replayEpoch, so the output is reproducible.
-func replayClip(ctx context.Context, cam CameraConfig, prefix string, w io.Writer, log *slog.Logger, opts ...func(*processor)) (replayStats, error) {
+func replayClip(ctx context.Context, cam config.CameraConfig, prefix string, w io.Writer, log *slog.Logger, opts ...func(*processor)) (replayStats, error) {
 	var st replayStats
 	start := time.Now()
-	cal, err := newCalibration(cam)
+	cal, err := config.NewCalibration(cam)
 	if err != nil {
 		return st, err
 	}

@@ -19,6 +19,7 @@ import (
 	"golang.org/x/sync/errgroup"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
@@ -201,16 +202,16 @@ func writeLabels(t *testing.T, dir string) string {
 // plaza, seen from an upper floor, 768×576 at 10 fps). Four points on the
 // paving are taken as an 8.5 m × 7 m rectangle, a size estimated from the
 // walkers' apparent height of about 1.7 m (common practice), not measured.
-func plazaCamera(t testing.TB, zones ...ZoneConfig) CameraConfig {
+func plazaCamera(t testing.TB, zones ...config.ZoneConfig) config.CameraConfig {
 	t.Helper()
 	clip, err := refdata.Path("vtest.avi")
 	if err != nil {
 		t.Skip(err)
 	}
-	return CameraConfig{
+	return config.CameraConfig{
 		ID: "plaza", Source: clip,
-		CalibrationConfig: CalibrationConfig{
-			Pool:    PoolConfig{Length: 8.5, Width: 7},
+		CalibrationConfig: config.CalibrationConfig{
+			Pool:    config.PoolConfig{Length: 8.5, Width: 7},
 			Corners: [][2]float64{{250, 300}, {720, 300}, {640, 150}, {330, 150}},
 		},
 		Detect: plazaDetect(),
@@ -221,8 +222,8 @@ func plazaCamera(t testing.TB, zones ...ZoneConfig) CameraConfig {
 // plazaDetect is the default detection with the pool's walking-shadow
 // rules relaxed: on the plaza the walkers are the subject, and an adult
 // walks at 1.2–1.5 m/s (common practice), above the pool's max_speed_mps.
-func plazaDetect() DetectConfig {
-	d := defaultDetect()
+func plazaDetect() config.DetectConfig {
+	d := config.DefaultDetect()
 	d.MaxSpeed = 3
 	d.DeckRadius = -1
 	d.Companion = -1
@@ -238,8 +239,8 @@ func TestReplayRealFootage(t *testing.T) {
 		t.Skip("replays 80 s of real video twice")
 	}
 	// The left third of the watched paving is excluded.
-	excl := ZoneConfig{Name: "left", PoolM: [][2]float64{{0, 0}, {3, 0}, {3, 7}, {0, 7}}}
-	run := func(cam CameraConfig) ([]alert.Target, error) {
+	excl := config.ZoneConfig{Name: "left", PoolM: [][2]float64{{0, 0}, {3, 0}, {3, 7}, {0, 7}}}
+	run := func(cam config.CameraConfig) ([]alert.Target, error) {
 		var buf bytes.Buffer
 		if _, err := replayClip(context.Background(), cam, "stillwater", &buf, slog.New(slog.NewTextHandler(io.Discard, nil))); err != nil {
 			return nil, err
@@ -270,7 +271,7 @@ func TestReplayRealFootage(t *testing.T) {
 	// detector's one-second mean draws a walker as a streak 1.3 m long,
 	// whose centre lags and starts late, which suits water, not a plaza.
 	mog := plazaCamera(t, excl)
-	mog.Detect = mergeDetect(defaultDetect(), DetectConfig{Method: "mog2"})
+	mog.Detect = config.MergeDetect(config.DefaultDetect(), config.DetectConfig{Method: "mog2"})
 	g.SetLimit(2)
 	g.Go(func() (err error) { all, err = run(plain); return err })
 	g.Go(func() (err error) { zoned, err = run(withZone); return err })

@@ -10,6 +10,7 @@ import (
 	"os/signal"
 	"syscall"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/redact"
 	"stillwater/vision"
 )
@@ -25,10 +26,10 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err := fs.Parse(args); err != nil {
 		return errUsage
 	}
-	load := func() (Config, error) {
-		cfg, err := LoadConfig(*path)
+	load := func() (config.Config, error) {
+		cfg, err := config.LoadConfig(*path)
 		if err != nil {
-			return Config{}, fmt.Errorf("couldn't load configuration (-config %q): %w", *path, err)
+			return config.Config{}, fmt.Errorf("couldn't load configuration (-config %q): %w", *path, err)
 		}
 		if *httpAddr != "" {
 			cfg.HTTP.Listen = *httpAddr
@@ -40,7 +41,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			cfg.Log.Level = *level
 		}
 		if err := cfg.Validate(); err != nil {
-			return Config{}, fmt.Errorf("configuration after flags: %w", err)
+			return config.Config{}, fmt.Errorf("configuration after flags: %w", err)
 		}
 		return cfg, nil
 	}
@@ -56,7 +57,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	hup := make(chan os.Signal, 1)
 	signal.Notify(hup, syscall.SIGHUP)
 	defer signal.Stop(hup)
-	reload := make(chan Config, 1)
+	reload := make(chan config.Config, 1)
 	go func() {
 		for {
 			select {
@@ -87,7 +88,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	return redact.Of(log).Err(serve(ctx, cfg, deps{Log: log, Reload: reload}))
 }
 
-func newLogger(c LogConfig, w io.Writer) *slog.Logger {
+func newLogger(c config.LogConfig, w io.Writer) *slog.Logger {
 	var lv slog.Level
 	_ = lv.UnmarshalText([]byte(c.Level))
 	o := &slog.HandlerOptions{Level: lv}

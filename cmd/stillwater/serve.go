@@ -20,6 +20,7 @@ import (
 	"stillwater/alert"
 	"stillwater/alert/arming"
 	"stillwater/alert/bus"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/redact"
 )
 
@@ -38,11 +39,11 @@ type deps struct {
 	// Reload delivers a new, validated configuration (on SIGHUP).
 	// Calibration, zones, detection settings and schedules take effect
 	// between frames; anything else needs a restart and is logged.
-	Reload <-chan Config
+	Reload <-chan config.Config
 }
 
 // serve runs the daemon until ctx ends or every camera source has ended.
-func serve(ctx context.Context, cfg Config, d deps) error {
+func serve(ctx context.Context, cfg config.Config, d deps) error {
 	log := d.Log
 	if log == nil {
 		log = slog.New(slog.NewTextHandler(io.Discard, nil))
@@ -66,7 +67,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	met := newMetrics(reg, version)
 	log.Info("stillwater starting", "version", version, "cameras", len(cfg.Cameras))
 
-	sch, err := cfg.schedules()
+	sch, err := cfg.Schedules()
 	if err != nil {
 		return err
 	}
@@ -76,7 +77,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	}
 	var watches []*cameraWatch
 	backlog := make(chan backlogEvent, 64)
-	bus, err := openBus(ctx, cfg, arming.Config{Cameras: ids, Schedules: sch, Log: log}, now, log, busHooks{
+	bus, err := config.OpenBus(ctx, cfg, arming.Config{Cameras: ids, Schedules: sch, Log: log}, now, log, config.BusHooks{
 		OnResult: met.busResult,
 		// The publisher calls this from inside its own publish path: hand
 		// the fault to a goroutine rather than publish from here.
@@ -124,11 +125,11 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 		}
 	}()
 
-	acc, warn, err := cfg.access(os.Getenv)
+	acc, warn, err := accessOf(cfg, os.Getenv)
 	if err != nil {
 		return err
 	}
-	logWarnings(log, warn)
+	config.LogWarnings(log, warn)
 	pictures := newPictureGate(cfg.HTTP.Listen)
 	pictures.set(acc)
 	if !pictures.open && acc.viewer == "" && acc.control == "" {
@@ -140,7 +141,7 @@ func serve(ctx context.Context, cfg Config, d deps) error {
 	mux.Handle("/control/", bus.Control.Handler())
 	mux.Handle("GET /cameras/{id}/latest.jpg", pictures.wrap(latestHandler(watches)))
 	mux.HandleFunc("/readyz", func(w http.ResponseWriter, _ *http.Request) {
-		problems := append(readiness(now(), watches, nc.IsConnected()), bus.problems(now())...)
+		problems := append(readiness(now(), watches, nc.IsConnected()), bus.Problems(now())...)
 		if len(problems) > 0 {
 			w.WriteHeader(http.StatusServiceUnavailable)
 			for _, p := range problems {

@@ -11,11 +11,12 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert/arming"
+	"stillwater/cmd/stillwater/internal/config"
 )
 
-func reloadFixture(t *testing.T) Config {
+func reloadFixture(t *testing.T) config.Config {
 	t.Helper()
-	cfg, err := ParseConfig([]byte(`
+	cfg, err := config.ParseConfig([]byte(`
 arming: {time_zone: UTC, schedule: ["daily 20:00-06:00"]}
 cameras:
   - id: north
@@ -36,7 +37,7 @@ cameras:
 // keeps running unchanged, and the schedule is swapped.
 func TestApplyReload(t *testing.T) {
 	old := reloadFixture(t)
-	sch, err := old.schedules()
+	sch, err := old.Schedules()
 	require.NoError(t, err)
 	arm, err := arming.New(arming.Config{Cameras: []string{"north", "south"}, Schedules: sch}, time.Now())
 	require.NoError(t, err)
@@ -76,23 +77,23 @@ func TestApplyReload(t *testing.T) {
 func TestReloadNamesWhatNeedsARestart(t *testing.T) {
 	cases := []struct {
 		name    string
-		edit    func(*Config)
+		edit    func(*config.Config)
 		restart []string
 		live    bool
 	}{
-		{"schedule", func(c *Config) { c.Arming.Schedule = []string{"daily 00:00-24:00"} }, nil, true},
-		{"control", func(c *Config) { c.Control.SecretEnv, c.Control.MaxDisarm = "X", Duration(time.Hour) }, nil, true},
-		{"viewer token", func(c *Config) { c.HTTP.ViewerSecretFile = "/run/v" }, nil, true},
-		{"gating", func(c *Config) { c.Cameras[0].Detect.MinArea = 0.05 }, nil, true},
-		{"zones", func(c *Config) { c.Cameras[0].Zones = []ZoneConfig{{Name: "ladder"}} }, nil, true},
-		{"listen", func(c *Config) { c.HTTP.Listen = "0.0.0.0:9310" }, []string{"http.listen"}, false},
-		{"bus", func(c *Config) { c.Bus.Prefix, c.Bus.Stream.Name = "pool", "POOL" }, []string{"bus.stream.name", "bus.subject_prefix"}, false},
-		{"log", func(c *Config) { c.Log.Level = "debug" }, []string{"log.level"}, false},
-		{"model", func(c *Config) { c.Cameras[1].Detect.History = 100 }, []string{"cameras[south].detect.history"}, false},
-		{"frame timeout", func(c *Config) { c.Cameras[0].FrameTimeout = Duration(5 * time.Second) }, []string{"cameras[north].frame_timeout"}, false},
-		{"corners", func(c *Config) { c.Cameras[0].Corners[1] = [2]float64{235, 40} },
+		{"schedule", func(c *config.Config) { c.Arming.Schedule = []string{"daily 00:00-24:00"} }, nil, true},
+		{"control", func(c *config.Config) { c.Control.SecretEnv, c.Control.MaxDisarm = "X", config.Duration(time.Hour) }, nil, true},
+		{"viewer token", func(c *config.Config) { c.HTTP.ViewerSecretFile = "/run/v" }, nil, true},
+		{"gating", func(c *config.Config) { c.Cameras[0].Detect.MinArea = 0.05 }, nil, true},
+		{"zones", func(c *config.Config) { c.Cameras[0].Zones = []config.ZoneConfig{{Name: "ladder"}} }, nil, true},
+		{"listen", func(c *config.Config) { c.HTTP.Listen = "0.0.0.0:9310" }, []string{"http.listen"}, false},
+		{"bus", func(c *config.Config) { c.Bus.Prefix, c.Bus.Stream.Name = "pool", "POOL" }, []string{"bus.stream.name", "bus.subject_prefix"}, false},
+		{"log", func(c *config.Config) { c.Log.Level = "debug" }, []string{"log.level"}, false},
+		{"model", func(c *config.Config) { c.Cameras[1].Detect.History = 100 }, []string{"cameras[south].detect.history"}, false},
+		{"frame timeout", func(c *config.Config) { c.Cameras[0].FrameTimeout = config.Duration(5 * time.Second) }, []string{"cameras[north].frame_timeout"}, false},
+		{"corners", func(c *config.Config) { c.Cameras[0].Corners[1] = [2]float64{235, 40} },
 			[]string{"cameras[north] water outline of the detector (calibration)"}, true},
-		{"camera added", func(c *Config) {
+		{"camera added", func(c *config.Config) {
 			n := c.Cameras[0]
 			n.ID = "east"
 			c.Cameras = append(c.Cameras, n)

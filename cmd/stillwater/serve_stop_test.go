@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"stillwater/cmd/stillwater/internal/config"
 	"testing"
 	"time"
 
@@ -12,7 +13,7 @@ import (
 // once it has ended, a camera that does not stop within the grace (one
 // stuck in a call into the video backend) is named and left behind.
 func TestWaitCameras(t *testing.T) {
-	watches := []*cameraWatch{{cam: CameraConfig{ID: "quick"}}, {cam: CameraConfig{ID: "stuck"}}}
+	watches := []*cameraWatch{{cam: config.CameraConfig{ID: "quick"}}, {cam: config.CameraConfig{ID: "stuck"}}}
 	tests := []struct {
 		name      string
 		cancel    bool

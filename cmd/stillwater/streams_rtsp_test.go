@@ -24,6 +24,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
 )
@@ -73,7 +74,7 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 
 	cfg := demoConfig(truth, small, dir, false)
 	const pre, post = 3 * time.Second, 3 * time.Second
-	cfg.Evidence.PreRoll, cfg.Evidence.PostRoll = Duration(pre), Duration(post)
+	cfg.Evidence.PreRoll, cfg.Evidence.PostRoll = config.Duration(pre), config.Duration(post)
 	cam := &cfg.Cameras[0]
 	cam.ID, cam.Source, cam.Transport = "pool", sub.URL(), "udp"
 	cam.EvidenceSource = main.URL()
@@ -134,7 +135,7 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 }
 
 // startDaemonLogged is startDaemon with the daemon's log kept in logs.
-func startDaemonLogged(t *testing.T, cfg Config, logs io.Writer) (*busLog, string, func() error) {
+func startDaemonLogged(t *testing.T, cfg config.Config, logs io.Writer) (*busLog, string, func() error) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	bus := &busLog{}

@@ -27,6 +27,7 @@ import (
 	"gonum.org/v1/plot/vg/draw"
 	"gonum.org/v1/plot/vg/vgimg"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/synth"
 )
 
@@ -37,12 +38,12 @@ type clipJob struct {
 	Name   string
 	Clip   string
 	Truth  synth.Truth
-	Camera *CameraConfig
+	Camera *config.CameraConfig
 }
 
 // replayScore replays one clip with cam's settings and scores it against
 // its labels.
-func replayScore(ctx context.Context, job clipJob, cam CameraConfig, rules scoreRules, log *slog.Logger) (clipScore, replayStats, error) {
+func replayScore(ctx context.Context, job clipJob, cam config.CameraConfig, rules scoreRules, log *slog.Logger) (clipScore, replayStats, error) {
 	cam.Source = job.Clip
 	var buf bytes.Buffer
 	st, err := replayClip(ctx, cam, "stillwater", &buf, log)
@@ -66,8 +67,8 @@ type sweepPoint struct {
 	MinScore  float64
 }
 
-func (p sweepPoint) overrides() detectOverrides {
-	return detectOverrides{Threshold: p.Threshold, MinArea: p.MinArea, Persist: p.Persist, MinScore: p.MinScore}
+func (p sweepPoint) overrides() config.DetectOverrides {
+	return config.DetectOverrides{Threshold: p.Threshold, MinArea: p.MinArea, Persist: p.Persist, MinScore: p.MinScore}
 }
 
 // sweepResult is a setting and its pooled score.
@@ -87,7 +88,7 @@ func sweep(ctx context.Context, jobs []clipJob, points []sweepPoint, method stri
 	for pi, p := range points {
 		for ji, j := range jobs {
 			g.Go(func() error {
-				var cam CameraConfig
+				var cam config.CameraConfig
 				if j.Camera != nil {
 					cam = *j.Camera
 				} else {
@@ -99,9 +100,9 @@ func sweep(ctx context.Context, jobs []clipJob, points []sweepPoint, method stri
 				}
 				if method != "" {
 					cam.Detect.Method = method
-					cam.Detect = mergeDetect(defaultDetect(), DetectConfig{Method: method, Persist: cam.Detect.Persist, UpdateEvery: cam.Detect.UpdateEvery, ClearAfter: cam.Detect.ClearAfter})
+					cam.Detect = config.MergeDetect(config.DefaultDetect(), config.DetectConfig{Method: method, Persist: cam.Detect.Persist, UpdateEvery: cam.Detect.UpdateEvery, ClearAfter: cam.Detect.ClearAfter})
 				}
-				cam.Detect = p.overrides().apply(cam.Detect)
+				cam.Detect = p.overrides().Apply(cam.Detect)
 				cs, _, err := replayScore(gctx, j, cam, rules, log)
 				if err != nil {
 					return err
@@ -290,8 +291,8 @@ func runSweep(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		fs.Usage()
 		return fmt.Errorf("sweep: want pairs of clip and label file, got %d arguments: %w", len(rest), errUsage)
 	}
-	def := mergeDetect(defaultDetect(), DetectConfig{Method: *method})
-	if err := validateDetect("sweep", def); err != nil {
+	def := config.MergeDetect(config.DefaultDetect(), config.DetectConfig{Method: *method})
+	if err := config.ValidateDetect("sweep", def); err != nil {
 		return fmt.Errorf("sweep: -method: %w: %w", err, errUsage)
 	}
 	orDefault := func(s string, v float64) string {

@@ -15,6 +15,7 @@ import (
 	"time"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/homography"
 	"stillwater/vision"
 	"stillwater/vision/remux"
@@ -25,7 +26,7 @@ import (
 // is doing, and heartbeats. Every camera has its own; a failing camera
 // never holds up another.
 type cameraWatch struct {
-	cam       CameraConfig
+	cam       config.CameraConfig
 	out       sink
 	armed     func(now time.Time) bool
 	now       func() time.Time
@@ -42,8 +43,8 @@ type cameraWatch struct {
 	lag       lagWatch        // the processing_lag fault (lag.go)
 	rec       *remux.Recorder // the main stream's pre-roll, when the camera names one (evidence.go)
 
-	reload   chan CameraConfig // new calibration, zones, detection for this camera
-	gate     vision.OpenGate   // one open of the source at a time; a hung one is abandoned
+	reload   chan config.CameraConfig // new calibration, zones, detection for this camera
+	gate     vision.OpenGate          // one open of the source at a time; a hung one is abandoned
 	evidence evidenceSettings
 	// pendingEvidence is planned by the pipeline while it makes a target
 	// start, and handed to the evidence writer once the frame's messages
@@ -53,14 +54,14 @@ type cameraWatch struct {
 	refs            *referenceKeeper   // the empty-pool reference (reference.go)
 }
 
-func newCameraWatch(cam CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *cameraMetrics, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
+func newCameraWatch(cam config.CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *cameraMetrics, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
 	w := &cameraWatch{
 		cam: cam, out: out, armed: armed, now: now, log: log.With("camera", cam.ID), met: met,
-		heartbeat: heartbeat, version: version, epoch: now(), reload: make(chan CameraConfig, 1),
+		heartbeat: heartbeat, version: version, epoch: now(), reload: make(chan config.CameraConfig, 1),
 		evidence: ev, snapReq: make(chan chan snapshot),
 	}
 	w.lastFrame.Store(w.epoch.UnixNano())
-	w.cam = detectionCamera(cam)
+	w.cam = config.DetectionCamera(cam)
 	w.startRecorder()
 	return w
 }
@@ -275,7 +276,7 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 // open opens the source with the camera's detector and returns the
 // camera's calibration, built once here for the whole capture.
 func (w *cameraWatch) open() (*vision.Camera, *homography.Calibration, error) {
-	cal, err := newCalibration(w.cam)
+	cal, err := config.NewCalibration(w.cam)
 	if err != nil {
 		return nil, nil, err
 	}
@@ -401,7 +402,7 @@ func (w *cameraWatch) countStats(vc *vision.Camera, st *captureState) {
 func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
 	select {
 	case c := <-w.reload:
-		c = detectionCamera(c)
+		c = config.DetectionCamera(c)
 		if err := proc.reload(c); err != nil {
 			w.log.Error("reload refused; keeping the running settings", "err", err)
 			return

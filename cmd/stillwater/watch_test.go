@@ -21,6 +21,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/synth"
 )
 
@@ -98,14 +99,14 @@ func cachedClip(tb testing.TB, s synth.Scene) (synth.Truth, string) {
 
 // startDaemon runs serve on cfg in the background with a subscriber on
 // every subject; stop ends it and waits.
-func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
+func startDaemon(t *testing.T, cfg config.Config) (log *busLog, stop func() error) {
 	t.Helper()
 	return startDaemonWith(t, cfg, nil)
 }
 
 // startDaemonWith is startDaemon with the daemon's metrics on reg (nil: a
 // registry of its own).
-func startDaemonWith(t *testing.T, cfg Config, reg *prometheus.Registry) (log *busLog, stop func() error) {
+func startDaemonWith(t *testing.T, cfg config.Config, reg *prometheus.Registry) (log *busLog, stop func() error) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	log = &busLog{}

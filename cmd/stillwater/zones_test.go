@@ -9,21 +9,21 @@ import (
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
-	"gopkg.in/yaml.v3"
 
+	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision"
 )
 
 // zoneCamera sees an 8 m × 4 m pool square-on at 50 px/m: corner A at
 // pixel (100, 300), x to the right, pool y up the image.
-func zoneCamera(zones ...ZoneConfig) CameraConfig {
-	return CameraConfig{
+func zoneCamera(zones ...config.ZoneConfig) config.CameraConfig {
+	return config.CameraConfig{
 		ID: "pool", Source: "clip.avi",
-		CalibrationConfig: CalibrationConfig{
-			Pool:    PoolConfig{Length: 8, Width: 4},
+		CalibrationConfig: config.CalibrationConfig{
+			Pool:    config.PoolConfig{Length: 8, Width: 4},
 			Corners: [][2]float64{{100, 300}, {500, 300}, {500, 100}, {100, 100}},
 		},
-		Detect: defaultDetect(),
+		Detect: config.DefaultDetect(),
 		Zones:  zones,
 	}
 }
@@ -32,27 +32,27 @@ func TestValidateZones(t *testing.T) {
 	ladder := [][2]float64{{7, 1}, {8.2, 1}, {8.2, 2}, {7, 2}}
 	tests := []struct {
 		name    string
-		zones   []ZoneConfig
+		zones   []config.ZoneConfig
 		wantErr string
 	}{
 		{"none", nil, ""},
-		{"pool metres, over the coping", []ZoneConfig{{Name: "ladder", PoolM: ladder}}, ""},
-		{"pixels", []ZoneConfig{{Name: "skimmer", Pixels: [][2]float64{{120, 120}, {160, 120}, {160, 160}}}}, ""},
-		{"two points", []ZoneConfig{{Name: "a", PoolM: [][2]float64{{1, 1}, {2, 2}}}}, "zones[0] (a).pool_m: 2 points; a zone needs at least 3"},
-		{"bow tie", []ZoneConfig{{Name: "x", PoolM: [][2]float64{{1, 1}, {2, 2}, {2, 1}, {1, 2}}}}, "pool_m: edges 0 and 2 cross"},
-		{"no area", []ZoneConfig{{PoolM: [][2]float64{{1, 1}, {2, 1}, {3, 1}}}}, "the outline has no area"},
-		{"outside the pool", []ZoneConfig{{Name: "shed", PoolM: [][2]float64{{1, 1}, {2, 1}, {2, 6}}}}, "pool_m[2]: (2, 6) lies at (2.00, 6.00) m, outside the 8x4 m pool"},
-		{"pixels outside the pool", []ZoneConfig{{Name: "deck", Pixels: [][2]float64{{10, 10}, {60, 10}, {60, 60}}}}, "pixels[0]: (10, 10) lies at (-1.80, 5.80) m, outside"},
-		{"both frames", []ZoneConfig{{Name: "b", PoolM: ladder, Pixels: ladder}}, "both pool_m and pixels given"},
-		{"no outline", []ZoneConfig{{Name: "empty"}}, "no outline"},
-		{"same name twice", []ZoneConfig{{Name: "l", PoolM: ladder}, {Name: "l", PoolM: ladder}}, "zones[1] (l).name: \"l\" is used twice"},
+		{"pool metres, over the coping", []config.ZoneConfig{{Name: "ladder", PoolM: ladder}}, ""},
+		{"pixels", []config.ZoneConfig{{Name: "skimmer", Pixels: [][2]float64{{120, 120}, {160, 120}, {160, 160}}}}, ""},
+		{"two points", []config.ZoneConfig{{Name: "a", PoolM: [][2]float64{{1, 1}, {2, 2}}}}, "zones[0] (a).pool_m: 2 points; a zone needs at least 3"},
+		{"bow tie", []config.ZoneConfig{{Name: "x", PoolM: [][2]float64{{1, 1}, {2, 2}, {2, 1}, {1, 2}}}}, "pool_m: edges 0 and 2 cross"},
+		{"no area", []config.ZoneConfig{{PoolM: [][2]float64{{1, 1}, {2, 1}, {3, 1}}}}, "the outline has no area"},
+		{"outside the pool", []config.ZoneConfig{{Name: "shed", PoolM: [][2]float64{{1, 1}, {2, 1}, {2, 6}}}}, "pool_m[2]: (2, 6) lies at (2.00, 6.00) m, outside the 8x4 m pool"},
+		{"pixels outside the pool", []config.ZoneConfig{{Name: "deck", Pixels: [][2]float64{{10, 10}, {60, 10}, {60, 60}}}}, "pixels[0]: (10, 10) lies at (-1.80, 5.80) m, outside"},
+		{"both frames", []config.ZoneConfig{{Name: "b", PoolM: ladder, Pixels: ladder}}, "both pool_m and pixels given"},
+		{"no outline", []config.ZoneConfig{{Name: "empty"}}, "no outline"},
+		{"same name twice", []config.ZoneConfig{{Name: "l", PoolM: ladder}, {Name: "l", PoolM: ladder}}, "zones[1] (l).name: \"l\" is used twice"},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
 			cam := zoneCamera(tt.zones...)
-			cal, err := newCalibration(cam)
+			cal, err := config.NewCalibration(cam)
 			require.NoError(t, err)
-			err = validateZones("cameras[0] (pool)", cam, cal)
+			err = config.ValidateZones("cameras[0] (pool)", cam, cal)
 			if tt.wantErr == "" {
 				assert.NoError(t, err)
 				return
@@ -64,43 +64,13 @@ func TestValidateZones(t *testing.T) {
 	}
 }
 
-func TestZoneYAML(t *testing.T) {
-	src := []byte("- name: ladder\n  pool_m: [[7, 1], [8.2, 1], [8.2, 2], [7, 2]]\n- pixels: [[120, 120], [160, 120], [160, 160]]\n")
-	var zs []ZoneConfig
-	dec := yaml.NewDecoder(bytes.NewReader(src))
-	dec.KnownFields(true)
-	require.NoError(t, dec.Decode(&zs))
-	require.Len(t, zs, 2)
-	assert.Equal(t, "ladder", zs[0].Name)
-	assert.Equal(t, [2]float64{8.2, 2}, zs[0].PoolM[2])
-	assert.Equal(t, [2]float64{160, 160}, zs[1].Pixels[2])
-	bad := yaml.NewDecoder(bytes.NewReader([]byte("- name: x\n  polygon: [[1, 1]]\n")))
-	bad.KnownFields(true)
-	assert.ErrorContains(t, bad.Decode(&zs), "field polygon not found")
-}
-
-func TestSegmentsAndInside(t *testing.T) {
-	// Hand-worked: the diagonals of the unit square cross at (0.5, 0.5);
-	// two parallel sides never meet; a T touching at an end point meets.
-	assert.True(t, segmentsMeet([2]float64{0, 0}, [2]float64{1, 1}, [2]float64{0, 1}, [2]float64{1, 0}))
-	assert.False(t, segmentsMeet([2]float64{0, 0}, [2]float64{1, 0}, [2]float64{0, 1}, [2]float64{1, 1}))
-	assert.True(t, segmentsMeet([2]float64{0, 0}, [2]float64{2, 0}, [2]float64{1, 0}, [2]float64{1, 1}))
-	sq := [][2]float64{{0, 0}, {2, 0}, {2, 2}, {0, 2}}
-	assert.True(t, insidePolygon(sq, 1, 1))
-	assert.False(t, insidePolygon(sq, 3, 1))
-	// An L-shape: (1.5, 1.5) is in its notch, outside.
-	l := [][2]float64{{0, 0}, {2, 0}, {2, 1}, {1, 1}, {1, 2}, {0, 2}}
-	assert.True(t, insidePolygon(l, 0.5, 1.5))
-	assert.False(t, insidePolygon(l, 1.5, 1.5))
-}
-
 // TestZoneStep feeds the processor one blob per frame for 2 s: a blob in a
 // zone (in pool metres or in pixels) never becomes a track, while the same
 // blob in open water does. Both detectors' blobs are fed: the rectified
 // one's (already in pool metres, with features) and the mixture models'
 // (an outline in pixels).
 func TestZoneStep(t *testing.T) {
-	zones := []ZoneConfig{
+	zones := []config.ZoneConfig{
 		{Name: "ladder", PoolM: [][2]float64{{7, 1}, {8.2, 1}, {8.2, 2}, {7, 2}}},
 		{Name: "skimmer", Pixels: [][2]float64{{120, 120}, {160, 120}, {160, 160}, {120, 160}}},
 	}
@@ -137,7 +107,7 @@ func TestZoneStep(t *testing.T) {
 				cam.Detect.Method = method
 				var logs bytes.Buffer
 				log := slog.New(slog.NewTextHandler(&logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
-				cal, err := newCalibration(cam)
+				cal, err := config.NewCalibration(cam)
 				require.NoError(t, err)
 				p, err := newProcessor(cam, cal, 10, time.Time{}, time.Now, log, nil)
 				require.NoError(t, err)
@@ -157,4 +127,14 @@ func TestZoneStep(t *testing.T) {
 			})
 		}
 	}
+}
+
+func TestInsidePolygon(t *testing.T) {
+	sq := [][2]float64{{0, 0}, {2, 0}, {2, 2}, {0, 2}}
+	assert.True(t, insidePolygon(sq, 1, 1))
+	assert.False(t, insidePolygon(sq, 3, 1))
+	// An L-shape: (1.5, 1.5) is in its notch, outside.
+	l := [][2]float64{{0, 0}, {2, 0}, {2, 1}, {1, 1}, {1, 2}, {0, 2}}
+	assert.True(t, insidePolygon(l, 0.5, 1.5))
+	assert.False(t, insidePolygon(l, 1.5, 1.5))
 }

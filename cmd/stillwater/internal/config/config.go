@@ -1,4 +1,4 @@
-package main
+package config
 
 import (
 	"bytes"
@@ -65,8 +65,8 @@ type EvidenceConfig struct {
 	RingDir string `yaml:"ring_dir"`
 }
 
-// on reports whether evidence is kept.
-func (e EvidenceConfig) on() bool { return e.Enabled == nil || *e.Enabled }
+// On reports whether evidence is kept.
+func (e EvidenceConfig) On() bool { return e.Enabled == nil || *e.Enabled }
 
 // HTTPConfig is the metrics, health, control and picture listener. The
 // viewer secret is a bearer token for the camera pictures
@@ -201,7 +201,7 @@ func (e *lineError) Error() string { return fmt.Sprintf("line %d: %s", e.line, e
 
 var (
 	yamlLine    = regexp.MustCompile(`^line (\d+): (.*)$`)
-	yamlUnknown = regexp.MustCompile(`^field (\S+) not found in type main\.(\w+)$`)
+	yamlUnknown = regexp.MustCompile(`^field (\S+) not found in type config\.(\w+)$`)
 )
 
 // yamlError rewrites the decoder's message into one naming the line and,
@@ -268,10 +268,10 @@ func sectionName(typ string) string {
 // ${NAME} in a camera source or the bus URL is replaced from the process
 // environment.
 func ParseConfig(b []byte) (Config, error) {
-	return parseConfig(b, os.LookupEnv)
+	return ParseConfigEnv(b, os.LookupEnv)
 }
 
-func parseConfig(b []byte, env func(string) (string, bool)) (Config, error) {
+func ParseConfigEnv(b []byte, env func(string) (string, bool)) (Config, error) {
 	cfg := Defaults()
 	dec := yaml.NewDecoder(bytes.NewReader(b))
 	dec.KnownFields(true)
@@ -289,9 +289,9 @@ func parseConfig(b []byte, env func(string) (string, bool)) (Config, error) {
 		if cfg.Cameras[i].EvidenceSource, err = expandEnv(cfg.Cameras[i].EvidenceSource, env, &cfg.secrets); err != nil {
 			return Config{}, fmt.Errorf("cameras[%d].evidence_source: %w", i, err)
 		}
-		cfg.Cameras[i].Detect = mergeDetect(defaultDetect(), cfg.Cameras[i].Detect)
+		cfg.Cameras[i].Detect = MergeDetect(DefaultDetect(), cfg.Cameras[i].Detect)
 		if cfg.Cameras[i].FrameTimeout == 0 {
-			cfg.Cameras[i].FrameTimeout = Duration(defaultFrameTimeout)
+			cfg.Cameras[i].FrameTimeout = Duration(DefaultFrameTimeout)
 		}
 	}
 	cfg.secrets = append(cfg.secrets, cfg.secretValues(func(k string) string { v, _ := env(k); return v })...)
@@ -301,8 +301,8 @@ func parseConfig(b []byte, env func(string) (string, bool)) (Config, error) {
 	return cfg, nil
 }
 
-// secretSources lists every secret setting of c by its field name.
-func (c Config) secretSources() map[string]bus.Secret {
+// SecretSources lists every secret setting of c by its field name.
+func (c Config) SecretSources() map[string]bus.Secret {
 	out := map[string]bus.Secret{
 		"control.secret":     {Value: c.Control.Secret, Env: c.Control.SecretEnv, File: c.Control.SecretFile},
 		"http.viewer_secret": {Value: c.HTTP.ViewerSecret, Env: c.HTTP.ViewerSecretEnv, File: c.HTTP.ViewerSecretFile},
@@ -320,7 +320,7 @@ func (c Config) secretSources() map[string]bus.Secret {
 // field, when the daemon starts or check runs.
 func (c Config) secretValues(getenv func(string) string) []string {
 	var out []string
-	for _, s := range c.secretSources() {
+	for _, s := range c.SecretSources() {
 		if v, _, err := s.Resolve(getenv); err == nil && v != "" {
 			out = append(out, v)
 		}
@@ -331,9 +331,9 @@ func (c Config) secretValues(getenv func(string) string) []string {
 // Secrets returns the values to hide in logs and output (see redactor).
 func (c Config) Secrets() []string { return append([]string(nil), c.secrets...) }
 
-// defaultFrameTimeout is how long a camera may go without a frame while
+// DefaultFrameTimeout is how long a camera may go without a frame while
 // armed before it is reported lost.
-const defaultFrameTimeout = 3 * time.Second
+const DefaultFrameTimeout = 3 * time.Second
 
 // Validate checks every field and names the first one that is wrong.
 func (c Config) Validate() error {
@@ -362,7 +362,7 @@ func (c Config) Validate() error {
 	if err := c.Evidence.validate(); err != nil {
 		return err
 	}
-	if _, err := c.schedules(); err != nil {
+	if _, err := c.Schedules(); err != nil {
 		return err
 	}
 	if len(c.Cameras) == 0 {
@@ -401,22 +401,22 @@ func (c Config) Validate() error {
 		if err := validateStreams(where, cam, c.Evidence); err != nil {
 			return err
 		}
-		if err := validateCalibration(where, cam.CalibrationConfig); err != nil {
+		if err := ValidateCalibration(where, cam.CalibrationConfig); err != nil {
 			return err
 		}
-		cal, err := buildCalibration(cam.CalibrationConfig)
+		cal, err := BuildCalibration(cam.CalibrationConfig)
 		if err != nil {
 			return fmt.Errorf("%s: calibration: %w", where, err)
 		}
 		if cam.SourcePx != ([2]int{}) {
-			if _, err := buildCalibration(detectionCamera(cam).CalibrationConfig); err != nil {
+			if _, err := BuildCalibration(DetectionCamera(cam).CalibrationConfig); err != nil {
 				return fmt.Errorf("%s: calibration scaled to source_px %v: %w", where, cam.SourcePx, err)
 			}
 		}
-		if err := validateDetect(where, cam.Detect); err != nil {
+		if err := ValidateDetect(where, cam.Detect); err != nil {
 			return err
 		}
-		if err := validateZones(where, cam, cal); err != nil {
+		if err := ValidateZones(where, cam, cal); err != nil {
 			return err
 		}
 		if cam.FrameTimeout < Duration(500*time.Millisecond) || cam.FrameTimeout > Duration(20*time.Second) {
@@ -477,10 +477,10 @@ func (e EvidenceConfig) validate() error {
 	return nil
 }
 
-// schedules parses each camera's arming schedule (its own or the default).
+// Schedules parses each camera's arming schedule (its own or the default).
 // A camera with no windows anywhere is armed around the clock (nil).
-func (c Config) schedules() (map[string]*arming.Schedule, error) {
-	loc, err := c.zone()
+func (c Config) Schedules() (map[string]*arming.Schedule, error) {
+	loc, err := c.Zone()
 	if err != nil {
 		return nil, fmt.Errorf("arming.time_zone: %v", err)
 	}
@@ -503,10 +503,10 @@ func (c Config) schedules() (map[string]*arming.Schedule, error) {
 	return out, nil
 }
 
-// zone resolves arming.time_zone. A system zone (Local) that cannot be
+// Zone resolves arming.time_zone. A system zone (Local) that cannot be
 // resolved is an error only when a schedule needs it; a misspelt zone
 // name always is.
-func (c Config) zone() (*time.Location, error) {
+func (c Config) Zone() (*time.Location, error) {
 	loc, err := loadZone(c.Arming.TimeZone)
 	if err == nil || c.Arming.TimeZone != "Local" {
 		return loc, err

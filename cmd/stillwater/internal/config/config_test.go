@@ -1,4 +1,4 @@
-package main
+package config
 
 import (
 	"testing"
@@ -66,12 +66,12 @@ cameras:
 	t.Setenv("TZ", "Europe/Berlin")
 	cfg, err := ParseConfig([]byte("arming: {schedule: [\"daily 20:00-06:00\"]}" + cam))
 	require.NoError(t, err, "Local is the default zone and must work with a schedule")
-	sch, err := cfg.schedules()
+	sch, err := cfg.Schedules()
 	require.NoError(t, err)
 	// 19:30 UTC is 21:30 in Berlin in summer (CEST, UTC+2): inside the window.
 	assert.True(t, sch["pool"].Armed(time.Date(2026, 7, 1, 19, 30, 0, 0, time.UTC)))
 	assert.False(t, sch["pool"].Armed(time.Date(2026, 7, 1, 17, 30, 0, 0, time.UTC)))
-	loc, err := cfg.zone()
+	loc, err := cfg.Zone()
 	require.NoError(t, err)
 	assert.Equal(t, "Europe/Berlin", loc.String())
 

@@ -1,4 +1,4 @@
-package main
+package config
 
 import (
 	"bytes"
@@ -111,11 +111,11 @@ type OutboxSection struct {
 	AckTimeout  Duration `yaml:"ack_timeout"`
 }
 
-// embedded reports whether the daemon runs its own server.
-func (b BusConfig) embedded() bool { return b.URL == "" && len(b.URLs) == 0 }
+// Embedded reports whether the daemon runs its own server.
+func (b BusConfig) Embedded() bool { return b.URL == "" && len(b.URLs) == 0 }
 
-// serverURLs is the comma-joined list nats.Connect takes.
-func (b BusConfig) serverURLs() string {
+// ServerURLs is the comma-joined list nats.Connect takes.
+func (b BusConfig) ServerURLs() string {
 	var all []string
 	if b.URL != "" {
 		all = append(all, b.URL)
@@ -126,7 +126,7 @@ func (b BusConfig) serverURLs() string {
 // validateBus checks the bus section. It reads no files and no
 // environment: secrets are resolved when the daemon starts.
 func validateBus(b BusConfig) error {
-	if b.embedded() && b.Listen == "" {
+	if b.Embedded() && b.Listen == "" {
 		return errors.New("bus: neither url nor listen is set; set url for an external server or listen for the embedded one")
 	}
 	if err := alert.ValidToken(b.Prefix); err != nil {
@@ -144,7 +144,7 @@ func validateBus(b BusConfig) error {
 			return fmt.Errorf("%s: %v; write e.g. nats://bus.example:4222", field, err)
 		}
 	}
-	if !b.embedded() {
+	if !b.Embedded() {
 		switch {
 		case b.MQTT != "":
 			return errors.New("bus.mqtt: only the embedded server has an MQTT listener; remove it or clear bus.url")
@@ -307,9 +307,9 @@ func busRedact(s string) string {
 	return s
 }
 
-// resolveSecret resolves one secret through bus.Secret; inline secrets add a
+// ResolveSecret resolves one secret through bus.Secret; inline secrets add a
 // warning naming the field.
-func resolveSecret(field, inline, env, file string, getenv func(string) string, warn *[]string) (string, error) {
+func ResolveSecret(field, inline, env, file string, getenv func(string) string, warn *[]string) (string, error) {
 	v, isInline, err := bus.Secret{Value: inline, Env: env, File: file}.Resolve(getenv)
 	if err != nil {
 		return "", fmt.Errorf("%s: %w", field, err)
@@ -329,18 +329,18 @@ func (b BusConfig) connectOptions(getenv func(string) string) ([]nats.Option, []
 	auth := bus.Auth{User: a.User, NKeySeedFile: a.NKeySeedFile, CredsFile: a.CredsFile,
 		CAFile: b.TLS.CAFile, CertFile: b.TLS.CertFile, KeyFile: b.TLS.KeyFile}
 	var err error
-	if auth.Password, err = resolveSecret("bus.auth.password", a.Password, a.PasswordEnv, a.PasswordFile, getenv, &warn); err != nil {
+	if auth.Password, err = ResolveSecret("bus.auth.password", a.Password, a.PasswordEnv, a.PasswordFile, getenv, &warn); err != nil {
 		return nil, nil, err
 	}
-	if auth.Token, err = resolveSecret("bus.auth.token", a.Token, a.TokenEnv, a.TokenFile, getenv, &warn); err != nil {
+	if auth.Token, err = ResolveSecret("bus.auth.token", a.Token, a.TokenEnv, a.TokenFile, getenv, &warn); err != nil {
 		return nil, nil, err
 	}
-	if b.embedded() && auth.User == "" && auth.Token == "" && auth.NKeySeedFile == "" && auth.CredsFile == "" {
+	if b.Embedded() && auth.User == "" && auth.Token == "" && auth.NKeySeedFile == "" && auth.CredsFile == "" {
 		for i, u := range b.Users {
 			if u.Role != bus.RoleDaemon {
 				continue
 			}
-			pw, err := resolveSecret(fmt.Sprintf("bus.users[%d].password", i), u.Password, u.PasswordEnv, u.PasswordFile, getenv, &warn)
+			pw, err := ResolveSecret(fmt.Sprintf("bus.users[%d].password", i), u.Password, u.PasswordEnv, u.PasswordFile, getenv, &warn)
 			if err != nil {
 				return nil, nil, err
 			}
@@ -365,7 +365,7 @@ func (b BusConfig) embeddedConfig(dataDir string, getenv func(string) string) (b
 	ec := bus.EmbeddedConfig{Listen: b.Listen, StoreDir: filepath.Join(dataDir, "jetstream"), MQTT: b.MQTT,
 		Prefix: b.Prefix, Stream: b.Stream.Name, Domain: b.JetStreamDomain}
 	for i, u := range b.Users {
-		pw, err := resolveSecret(fmt.Sprintf("bus.users[%d].password", i), u.Password, u.PasswordEnv, u.PasswordFile, getenv, &warn)
+		pw, err := ResolveSecret(fmt.Sprintf("bus.users[%d].password", i), u.Password, u.PasswordEnv, u.PasswordFile, getenv, &warn)
 		if err != nil {
 			return bus.EmbeddedConfig{}, nil, err
 		}
@@ -389,13 +389,13 @@ func (b BusConfig) publisherConfig(dataDir string) bus.PublisherConfig {
 			Duplicates: time.Duration(b.Stream.Duplicates), Replicas: b.Stream.Replicas},
 		Outbox:     bus.OutboxConfig{Dir: filepath.Join(dataDir, "outbox"), MaxMessages: b.Outbox.MaxMessages, MaxBytes: b.Outbox.MaxBytes},
 		AckTimeout: time.Duration(b.Outbox.AckTimeout),
-		Consumers:  b.consumers(),
+		Consumers:  b.Consumers(),
 	}
 }
 
-// consumers names the durable consumers to keep: every responder and
+// Consumers names the durable consumers to keep: every responder and
 // operator of the embedded server, then those listed, each once.
-func (b BusConfig) consumers() []string {
+func (b BusConfig) Consumers() []string {
 	var out []string
 	seen := map[string]bool{}
 	add := func(name string) {
@@ -404,7 +404,7 @@ func (b BusConfig) consumers() []string {
 			out = append(out, name)
 		}
 	}
-	if b.embedded() {
+	if b.Embedded() {
 		for _, u := range b.Users {
 			if u.Role == bus.RoleResponder || u.Role == bus.RoleOperator {
 				add(u.Name)
@@ -441,7 +441,7 @@ func validateControl(c ControlConfig, b BusConfig) error {
 	if err := oneSecretSource(c.Secret, c.SecretEnv, c.SecretFile, false); err != nil {
 		return fmt.Errorf("control.secret: %v", err)
 	}
-	if c.TrustNATS && b.embedded() && len(b.Users) == 0 {
+	if c.TrustNATS && b.Embedded() && len(b.Users) == 0 {
 		return errors.New("control.trust_nats: the embedded server has no bus.users, so anyone on the bus could disarm; add users with roles or drop trust_nats")
 	}
 	if c.MaxDisarm < 0 || time.Duration(c.MaxDisarm) > 7*24*time.Hour {
@@ -453,20 +453,20 @@ func validateControl(c ControlConfig, b BusConfig) error {
 // controlSecret resolves the control secret; warnings are to be logged.
 func (c ControlConfig) controlSecret(getenv func(string) string) (string, []string, error) {
 	var warn []string
-	s, err := resolveSecret("control.secret", c.Secret, c.SecretEnv, c.SecretFile, getenv, &warn)
+	s, err := ResolveSecret("control.secret", c.Secret, c.SecretEnv, c.SecretFile, getenv, &warn)
 	return s, warn, err
 }
 
-// busHooks are the daemon's callbacks into its metrics; any may be nil.
-type busHooks struct {
+// BusHooks are the daemon's callbacks into its metrics; any may be nil.
+type BusHooks struct {
 	OnResult  func(bus.PublishResult)        // stillwater_publish_seconds, publish errors
 	OnBacklog func(active bool, s bus.Stats) // bus_backlog fault
 	OnRefused func(via string)               // stillwater_control_refused_total{via}
 }
 
-// busParts is the bus side of the daemon, opened by openBus. Run drives
+// BusParts is the bus side of the daemon, opened by openBus. Run drives
 // it; Close releases it after Run has returned.
-type busParts struct {
+type BusParts struct {
 	dirLock  *os.File // the data directory's lock, held until Close
 	cfg      BusConfig
 	Embedded *bus.Embedded // nil with an external server
@@ -479,15 +479,15 @@ type busParts struct {
 	log      *slog.Logger
 }
 
-// openBus starts the embedded server (unless bus.url is set), connects,
+// OpenBus starts the embedded server (unless bus.url is set), connects,
 // opens the publisher with its outbox in data_dir/outbox, the per-camera
 // arming with its state in data_dir/arming.json and the control API. An
 // external server that is down is not an error: messages wait in the
 // outbox. An unreadable arming state is logged and every camera runs
 // armed. The caller sets ac's cameras and schedules.
-func openBus(ctx context.Context, cfg Config, ac arming.Config, now func() time.Time, log *slog.Logger, h busHooks) (_ *busParts, err error) {
+func OpenBus(ctx context.Context, cfg Config, ac arming.Config, now func() time.Time, log *slog.Logger, h BusHooks) (_ *BusParts, err error) {
 	getenv := os.Getenv
-	b := &busParts{now: now, log: log, cfg: cfg.Bus}
+	b := &BusParts{now: now, log: log, cfg: cfg.Bus}
 	defer func() {
 		if err != nil {
 			b.Close()
@@ -498,25 +498,25 @@ func openBus(ctx context.Context, cfg Config, ac arming.Config, now func() time.
 	if b.dirLock, err = lockDataDir(cfg.DataDir); err != nil {
 		return nil, err
 	}
-	busURL := cfg.Bus.serverURLs()
-	if cfg.Bus.embedded() {
+	busURL := cfg.Bus.ServerURLs()
+	if cfg.Bus.Embedded() {
 		ec, warn, err := cfg.Bus.embeddedConfig(cfg.DataDir, getenv)
 		if err != nil {
 			return nil, err
 		}
-		logWarnings(log, warn)
+		LogWarnings(log, warn)
 		if b.Embedded, err = bus.StartEmbedded(ec); err != nil {
 			return nil, err
 		}
 		busURL = b.Embedded.URL()
 		log.Info("embedded bus started", "url", busURL, "mqtt", cfg.Bus.MQTT, "users", len(ec.Users), "leaf_remotes", len(ec.Leaf))
 	}
-	b.URL = busRedactList(busURL)
+	b.URL = BusRedactList(busURL)
 	opts, warn, err := cfg.Bus.connectOptions(getenv)
 	if err != nil {
 		return nil, err
 	}
-	logWarnings(log, warn)
+	LogWarnings(log, warn)
 	opts = append(opts, nats.Name("stillwater"), nats.MaxReconnects(-1), nats.ReconnectWait(500*time.Millisecond),
 		nats.RetryOnFailedConnect(true),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) { log.Warn("bus disconnected", "err", err) }),
@@ -543,7 +543,7 @@ func openBus(ctx context.Context, cfg Config, ac arming.Config, now func() time.
 	if err != nil {
 		return nil, err
 	}
-	logWarnings(log, warn)
+	LogWarnings(log, warn)
 	if secret == "" && !cfg.Control.TrustNATS {
 		log.Warn("no control secret configured: arm, disarm and clear requests are refused; set control.secret_env or control.secret_file")
 	}
@@ -555,7 +555,7 @@ func openBus(ctx context.Context, cfg Config, ac arming.Config, now func() time.
 	return b, nil
 }
 
-func logWarnings(log *slog.Logger, warn []string) {
+func LogWarnings(log *slog.Logger, warn []string) {
 	for _, w := range warn {
 		log.Warn(w)
 	}
@@ -564,7 +564,7 @@ func logWarnings(log *slog.Logger, warn []string) {
 // Run drains the outbox, answers control requests and publishes armed
 // changes until ctx ends. Cancel it after the cameras have stopped and
 // Pub.Flush has run, so that nothing queued is left behind needlessly.
-func (b *busParts) Run(ctx context.Context) error {
+func (b *BusParts) Run(ctx context.Context) error {
 	g, gctx := errgroup.WithContext(ctx)
 	g.Go(func() error { return b.Pub.Run(gctx) })
 	g.Go(func() error { return b.Control.Serve(gctx, b.Conn) })
@@ -581,7 +581,7 @@ func (b *busParts) Run(ctx context.Context) error {
 
 // Close releases the outbox, the connection, the embedded server and the
 // data directory, in that order. Safe on a partly opened busParts.
-func (b *busParts) Close() {
+func (b *BusParts) Close() {
 	defer func() {
 		if b.dirLock != nil {
 			b.dirLock.Close()
@@ -607,25 +607,25 @@ func (b *busParts) Close() {
 // to alarm that ASTM F2208 allows twice over.
 const busStallAfter = 30 * time.Second
 
-// problems lists why the bus side is not ready, beyond the connection
+// Problems lists why the bus side is not ready, beyond the connection
 // itself (which readiness reports): a stream that cannot be created or
 // used, and a queue whose oldest message is older than busStallAfter.
 // Empty means ready.
-func (b *busParts) problems(now time.Time) []string {
+func (b *BusParts) Problems(now time.Time) []string {
 	var out []string
 	if err := b.Pub.StreamFault(); err != nil {
 		out = append(out, fmt.Sprintf("bus: %v; %s", err, b.streamAdvice(err)))
 	}
-	if age, stalled := b.stalled(now); stalled {
+	if age, stalled := b.Stalled(now); stalled {
 		out = append(out, fmt.Sprintf("bus: oldest queued message is %.0f s old, over the %.0f s bound; %d messages wait in the outbox",
 			age.Seconds(), busStallAfter.Seconds(), b.Pub.Stats().Depth))
 	}
 	return out
 }
 
-// stalled returns the age of the oldest queued message and whether it is
+// Stalled returns the age of the oldest queued message and whether it is
 // over busStallAfter.
-func (b *busParts) stalled(now time.Time) (time.Duration, bool) {
+func (b *BusParts) Stalled(now time.Time) (time.Duration, bool) {
 	oldest := b.Pub.Stats().Oldest
 	if oldest.IsZero() {
 		return 0, false
@@ -636,7 +636,7 @@ func (b *busParts) stalled(now time.Time) (time.Duration, bool) {
 
 // streamAdvice says which setting or server object to change for a stream
 // fault.
-func (b *busParts) streamAdvice(err error) string {
+func (b *BusParts) streamAdvice(err error) string {
 	var c *bus.StreamConflictError
 	if !errors.As(err, &c) {
 		return "check that the server has JetStream enabled with room for the stream (bus.stream.max_bytes, bus.stream.replicas) and that stillwater's bus user may use $JS.API"
@@ -654,7 +654,7 @@ func (b *busParts) streamAdvice(err error) string {
 
 // logStream is the publisher's OnStream: a stream fault is an ERROR that
 // says what to change; its end is logged too.
-func (b *busParts) logStream(err error) {
+func (b *BusParts) logStream(err error) {
 	name := b.cfg.Stream.Name
 	if name == "" {
 		name = "STILLWATER"
@@ -697,8 +697,8 @@ func lockDataDir(dir string) (*os.File, error) {
 	return f, nil
 }
 
-// busRedactList redacts each URL of a comma-separated server list.
-func busRedactList(urls string) string {
+// BusRedactList redacts each URL of a comma-separated server list.
+func BusRedactList(urls string) string {
 	parts := strings.Split(urls, ",")
 	for i, p := range parts {
 		parts[i] = busRedact(strings.TrimSpace(p))

@@ -1,4 +1,4 @@
-package main
+package config
 
 import (
 	"errors"
@@ -113,16 +113,16 @@ type DriftConfig struct {
 // than the target itself.
 const (
 	defaultDriftEvery    = 5 * time.Second
-	defaultDriftMaxShift = 0.2
+	DefaultDriftMaxShift = 0.2
 )
 
-// withDefaults returns d with zero fields filled in.
-func (d DriftConfig) withDefaults() DriftConfig {
+// WithDefaults returns d with zero fields filled in.
+func (d DriftConfig) WithDefaults() DriftConfig {
 	if d.Every == 0 {
 		d.Every = Duration(defaultDriftEvery)
 	}
 	if d.MaxShift == 0 {
-		d.MaxShift = defaultDriftMaxShift
+		d.MaxShift = DefaultDriftMaxShift
 	}
 	return d
 }
@@ -165,8 +165,8 @@ func (c CalibrationConfig) spec() homography.CalibrationSpec {
 	return s
 }
 
-// freeform reports whether the calibration uses reference points.
-func (c CalibrationConfig) freeform() bool { return len(c.Reference) > 0 }
+// Freeform reports whether the calibration uses reference points.
+func (c CalibrationConfig) Freeform() bool { return len(c.Reference) > 0 }
 
 // depthProfile returns the floor model and whether one is configured.
 func (w WaterConfig) depthProfile(length float64) (homography.DepthProfile, bool) {
@@ -205,9 +205,9 @@ func finite(vs ...float64) bool {
 	return true
 }
 
-// validateCalibration checks one camera's calibration keys; where names
+// ValidateCalibration checks one camera's calibration keys; where names
 // the camera, e.g. "cameras[0] (north)".
-func validateCalibration(where string, c CalibrationConfig) error {
+func ValidateCalibration(where string, c CalibrationConfig) error {
 	if c.Pool.Length <= 0 || c.Pool.Width <= 0 || !finite(c.Pool.Length, c.Pool.Width) {
 		return fmt.Errorf("%s.pool: length_m %g and width_m %g must both be positive metres (for a freeform pool, the sides of a rectangle around it)", where, c.Pool.Length, c.Pool.Width)
 	}
@@ -258,7 +258,7 @@ func validatePixels(where string, c CalibrationConfig) error {
 		return finite(p[0], p[1]) && (c.Frame == [2]int{} ||
 			(p[0] >= 0 && p[1] >= 0 && p[0] <= float64(c.Frame[0]) && p[1] <= float64(c.Frame[1])))
 	}
-	if c.freeform() {
+	if c.Freeform() {
 		if len(c.Corners) != 0 {
 			return fmt.Errorf("%s: both corners and reference_points given; use corners for a rectangular pool or reference_points and outline for a freeform one", where)
 		}
@@ -359,4 +359,19 @@ func validateWater(where string, w WaterConfig, length float64) error {
 		}
 	}
 	return nil
+}
+
+// NewCalibration builds the runtime calibration of one camera from its
+// configuration. Errors name the key and, for corners, the corner.
+func NewCalibration(cam CameraConfig) (*homography.Calibration, error) {
+	c, err := BuildCalibration(cam.CalibrationConfig)
+	if err != nil {
+		return nil, fmt.Errorf("camera %s: calibration: %w", cam.ID, err)
+	}
+	return c, nil
+}
+
+// BuildCalibration solves the calibration the keys describe.
+func BuildCalibration(cfg CalibrationConfig) (*homography.Calibration, error) {
+	return homography.NewCalibration(cfg.spec())
 }

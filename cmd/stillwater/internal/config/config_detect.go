@@ -1,4 +1,4 @@
-package main
+package config
 
 import (
 	"flag"
@@ -103,8 +103,8 @@ const MinBodyArea = 0.03
 // that a one-year-old's head alone passes.
 const MinChildArea = 0.012
 
-// defaultDetect returns the detection defaults.
-func defaultDetect() DetectConfig {
+// DefaultDetect returns the detection defaults.
+func DefaultDetect() DetectConfig {
 	a := alert.DefaultAlarm()
 	mv := vision.DefaultMeanVar()
 	return DetectConfig{
@@ -166,12 +166,6 @@ const (
 	defaultCompanion = 2.5
 )
 
-// judgeRulesOf returns the rules tracks are judged by.
-func judgeRulesOf(d DetectConfig) judgeRules {
-	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, MinScore: d.MinScore, MinTint: d.MinTint, MaxLength: d.MaxLength, MaxSpeed: d.MaxSpeed,
-		DeckRadius: max(0, d.DeckRadius), Companion: max(0, d.Companion), DeckMemory: time.Second, DeckMinArea: d.MinArea}
-}
-
 // defaultDeck is the deck watched around the water, m: a toddler on
 // hands and knees at the edge (WHO median length at 12 months 74–76 cm)
 // is seen whole.
@@ -182,8 +176,8 @@ const defaultDeck = 0.6
 // of 0.14 m) spans more than five cells.
 const defaultCell = 0.025
 
-// mergeDetect fills the zero fields of d from def.
-func mergeDetect(def, d DetectConfig) DetectConfig {
+// MergeDetect fills the zero fields of d from def.
+func MergeDetect(def, d DetectConfig) DetectConfig {
 	if d.ProcessWidth == 0 {
 		d.ProcessWidth = def.ProcessWidth
 	}
@@ -266,8 +260,8 @@ func mergeDetect(def, d DetectConfig) DetectConfig {
 	return d
 }
 
-// validateDetect checks a camera's detect section; where names the camera.
-func validateDetect(where string, d DetectConfig) error {
+// ValidateDetect checks a camera's detect section; where names the camera.
+func ValidateDetect(where string, d DetectConfig) error {
 	switch d.Method {
 	case "meanvar", "mog2", "knn":
 	default:
@@ -319,9 +313,9 @@ type ZoneConfig struct {
 // edge (a ladder's handrails stand on the coping).
 const zoneMargin = 0.5
 
-// validateZones checks a camera's zones against its calibration; where
+// ValidateZones checks a camera's zones against its calibration; where
 // names the camera.
-func validateZones(where string, cam CameraConfig, cal *homography.Calibration) error {
+func ValidateZones(where string, cam CameraConfig, cal *homography.Calibration) error {
 	if len(cam.Zones) == 0 {
 		return nil
 	}
@@ -421,109 +415,24 @@ func segmentsMeet(a, b, c, d [2]float64) bool {
 	return (d1 == 0 && on(c, d, a)) || (d2 == 0 && on(c, d, b)) || (d3 == 0 && on(a, b, c)) || (d4 == 0 && on(a, b, d))
 }
 
-// zone is one validated exclusion polygon in its own frame.
-type zone struct {
-	name   string
-	pixels bool // outline in source pixels; else pool metres
-	pts    [][2]float64
-}
-
-// zoneSet is a camera's exclusion zones.
-type zoneSet []zone
-
-// newZoneSet validates cam's zones against its calibration and returns
-// them.
-func newZoneSet(cam CameraConfig, cal *homography.Calibration) (zoneSet, error) {
-	if err := validateZones("camera "+cam.ID, cam, cal); err != nil {
-		return nil, err
-	}
-	var zs zoneSet
-	for i, z := range cam.Zones {
-		name := z.Name
-		if name == "" {
-			name = fmt.Sprintf("zone%d", i)
-		}
-		if len(z.Pixels) > 0 {
-			zs = append(zs, zone{name: name, pixels: true, pts: z.Pixels})
-		} else {
-			zs = append(zs, zone{name: name, pts: z.PoolM})
-		}
-	}
-	return zs, nil
-}
-
-// excluded returns the zone containing a blob centre, given in source
-// pixels and in pool metres.
-func (zs zoneSet) excluded(px, pool homography.Point) (string, bool) {
-	for _, z := range zs {
-		p := pool
-		if z.pixels {
-			p = px
-		}
-		if insidePolygon(z.pts, p.X, p.Y) {
-			return z.name, true
-		}
-	}
-	return "", false
-}
-
-// insidePolygon is the even-odd ray-crossing test.
-func insidePolygon(pts [][2]float64, x, y float64) bool {
-	in := false
-	for i, j := 0, len(pts)-1; i < len(pts); j, i = i, i+1 {
-		xi, yi, xj, yj := pts[i][0], pts[i][1], pts[j][0], pts[j][1]
-		if (yi > y) != (yj > y) && x < (xj-xi)*(y-yi)/(yj-yi)+xi {
-			in = !in
-		}
-	}
-	return in
-}
-
-// detectorConfig is the vision stage's setup for a camera: the detect
-// section, the pool outline as the watched mask and the pool-plane
-// footprint of a pixel, so that clean-up is scale-aware. The daemon and
-// replay both use it so that they see the same blobs.
-func detectorConfig(cam CameraConfig, cal *homography.Calibration) (vision.DetectorConfig, error) {
-	d := cam.Detect
-	if d.Method != "meanvar" {
-		return vision.DetectorConfig{
-			ProcessWidth: d.ProcessWidth, Method: d.Method, History: d.History,
-			Threshold: d.Threshold, LearningRate: -1, MinPixels: 6, Mask: calMask(cal),
-			MinArea: d.MinArea, PixelArea: func(p vision.Point) float64 { return cal.PixelArea(homography.Point(p)) },
-		}, nil
-	}
-	grid, err := rectification(cal, d.Cell, max(0, d.Deck))
-	if err != nil {
-		return vision.DetectorConfig{}, fmt.Errorf("camera %s: %w", cam.ID, err)
-	}
-	mv := vision.DefaultMeanVar()
-	mv.FPS = 0 // the camera's own
-	mv.Threshold, mv.Low, mv.Noise, mv.LightCell = d.Threshold, d.Extent, d.Noise, d.LightCell
-	mv.Short, mv.Learn = time.Duration(d.ShortMean), time.Duration(d.Learn)
-	mv.Smooth = d.Smooth
-	// The mask is not searched by meanvar (its grid is the pool and its
-	// deck), but the picture checks watch it (see vision.Camera.health).
-	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv, Mask: calMask(cal)}, nil
-}
-
-// detectOverrides are the detect settings a replay or sweep may set from
+// DetectOverrides are the detect settings a replay or sweep may set from
 // flags; zero values keep the camera's own.
-type detectOverrides struct {
+type DetectOverrides struct {
 	Threshold float64
 	MinArea   float64
 	Persist   time.Duration
 	MinScore  float64
 }
 
-func (o *detectOverrides) register(fs *flag.FlagSet) {
+func (o *DetectOverrides) Register(fs *flag.FlagSet) {
 	fs.Float64Var(&o.Threshold, "threshold", 0, "background model `threshold` (0: the camera's)")
 	fs.Float64Var(&o.MinArea, "min-area", 0, "smallest blob in `m²` that may alarm (0: the camera's)")
 	fs.DurationVar(&o.Persist, "persist", 0, "how long a track must last before it alarms (0: the camera's)")
 	fs.Float64Var(&o.MinScore, "min-score", 0, "least mean `score` over a candidate that may alarm, meanvar (0: the camera's)")
 }
 
-// validate rejects negative overrides.
-func (o detectOverrides) validate() error {
+// Validate rejects negative overrides.
+func (o DetectOverrides) Validate() error {
 	switch {
 	case o.Threshold < 0:
 		return fmt.Errorf("-threshold %g: want a positive value", o.Threshold)
@@ -537,7 +446,7 @@ func (o detectOverrides) validate() error {
 	return nil
 }
 
-func (o detectOverrides) apply(d DetectConfig) DetectConfig {
+func (o DetectOverrides) Apply(d DetectConfig) DetectConfig {
 	if o.Threshold > 0 {
 		d.Threshold = o.Threshold
 	}
@@ -553,8 +462,8 @@ func (o detectOverrides) apply(d DetectConfig) DetectConfig {
 	return d
 }
 
-// detectLine is check's summary of a camera's detect section.
-func detectLine(d DetectConfig) string {
+// DetectLine is check's summary of a camera's detect section.
+func DetectLine(d DetectConfig) string {
 	alarm := fmt.Sprintf("alarm after %v, updates every %v, cleared after %v", time.Duration(d.Persist), time.Duration(d.UpdateEvery), time.Duration(d.ClearAfter))
 	if d.Method != "meanvar" {
 		return fmt.Sprintf("detect %s at %d px wide, threshold %g, blobs %g–%g m², %s", d.Method, d.ProcessWidth, d.Threshold, d.MinArea, d.MaxArea, alarm)

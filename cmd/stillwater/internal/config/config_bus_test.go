@@ -1,4 +1,4 @@
-package main
+package config
 
 import (
 	"context"
@@ -172,8 +172,8 @@ func TestOpenBusEndToEnd(t *testing.T) {
 	require.NoError(t, validateBus(cfg.Bus))
 	require.NoError(t, validateControl(cfg.Control, cfg.Bus))
 	refused := make(chan string, 4)
-	b, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"pool"}}, time.Now,
-		slog.New(slog.NewTextHandler(io.Discard, nil)), busHooks{OnRefused: func(via string) { refused <- via }})
+	b, err := OpenBus(context.Background(), cfg, arming.Config{Cameras: []string{"pool"}}, time.Now,
+		slog.New(slog.NewTextHandler(io.Discard, nil)), BusHooks{OnRefused: func(via string) { refused <- via }})
 	require.NoError(t, err)
 	defer b.Close()
 
@@ -237,8 +237,8 @@ func TestNATSControlRecordsBusUser(t *testing.T) {
 	cfg.Control = ControlConfig{TrustNATS: true}
 	require.NoError(t, validateBus(cfg.Bus))
 	require.NoError(t, validateControl(cfg.Control, cfg.Bus))
-	b, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"pool"}}, time.Now,
-		slog.New(slog.NewTextHandler(io.Discard, nil)), busHooks{})
+	b, err := OpenBus(context.Background(), cfg, arming.Config{Cameras: []string{"pool"}}, time.Now,
+		slog.New(slog.NewTextHandler(io.Discard, nil)), BusHooks{})
 	require.NoError(t, err)
 	defer b.Close()
 
