@@ -30,6 +30,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -468,7 +469,7 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *bench
 			continue
 		}
 		if warmed {
-			ages, _ := metricValues(reg, "stillwater_frame_age_seconds", "camera")
+			ages, _ := metrics.Values(reg, "stillwater_frame_age_seconds", "camera")
 			for id, a := range ages {
 				ageMax[id] = math.Max(ageMax[id], a)
 				agesAll = append(agesAll, a)
@@ -542,8 +543,8 @@ type benchSnap struct {
 
 func takeSnap(reg prometheus.Gatherer, kids *childCPU) benchSnap {
 	s := benchSnap{at: time.Now(), self: selfCPU(), children: kids.total()}
-	s.processed, _ = metricValues(reg, "stillwater_frames_processed_total", "camera")
-	s.dropped, _ = metricValues(reg, "stillwater_frames_dropped_total", "camera")
+	s.processed, _ = metrics.Values(reg, "stillwater_frames_processed_total", "camera")
+	s.dropped, _ = metrics.Values(reg, "stillwater_frames_dropped_total", "camera")
 	return s
 }
 

@@ -17,7 +17,6 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/prometheus/client_golang/prometheus"
-	dto "github.com/prometheus/client_model/go"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
@@ -25,76 +24,14 @@ import (
 	"stillwater/alert/arming"
 	"stillwater/alert/bus"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/metrics"
+	"stillwater/cmd/stillwater/internal/testkit"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
 
 // Fault injection on the daemon's bus side, through openBus as serve
 // uses it: what the log, /readyz and /metrics say.
-
-// busOnlyConfig is a daemon configuration for the bus side alone: the
-// embedded server on a free port, data in a fresh directory.
-func busOnlyConfig(t *testing.T) config.Config {
-	t.Helper()
-	cfg := config.Defaults()
-	cfg.DataDir = t.TempDir()
-	cfg.Bus = config.BusConfig{Listen: "127.0.0.1:-1", Prefix: "sw"}
-	return cfg
-}
-
-func openTestBus(t *testing.T, cfg config.Config, log *slog.Logger, h config.BusHooks) *config.BusParts {
-	t.Helper()
-	b, err := config.OpenBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, log, h)
-	require.NoError(t, err)
-	return b
-}
-
-func runBus(t *testing.T, b *config.BusParts) {
-	t.Helper()
-	ctx, cancel := context.WithCancel(context.Background())
-	done := make(chan error, 1)
-	go func() { done <- b.Run(ctx) }()
-	t.Cleanup(func() { cancel(); <-done; b.Close() })
-}
-
-// metricValue returns the value of the series name{labels} on reg: a
-// counter's or gauge's value, a histogram's sample count.
-func metricValue(t *testing.T, reg *prometheus.Registry, name string, labels map[string]string) (float64, bool) {
-	t.Helper()
-	mfs, err := reg.Gather()
-	require.NoError(t, err)
-	for _, mf := range mfs {
-		if mf.GetName() != name {
-			continue
-		}
-	next:
-		for _, m := range mf.GetMetric() {
-			have := map[string]string{}
-			for _, lp := range m.GetLabel() {
-				have[lp.GetName()] = lp.GetValue()
-			}
-			for k, v := range labels {
-				if have[k] != v {
-					continue next
-				}
-			}
-			return sampleValue(m), true
-		}
-	}
-	return 0, false
-}
-
-func sampleValue(m *dto.Metric) float64 {
-	switch {
-	case m.Counter != nil:
-		return m.GetCounter().GetValue()
-	case m.Gauge != nil:
-		return m.GetGauge().GetValue()
-	case m.Histogram != nil:
-		return float64(m.GetHistogram().GetSampleCount())
-	}
-	return 0
-}
 
 func hasProblem(problems []string, parts ...string) bool {
 	for _, p := range problems {
@@ -130,8 +67,8 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 		prepare func(t *testing.T) setup
 	}{
 		{"bus.stream.name changed on an existing data directory", func(t *testing.T) setup {
-			cfg := busOnlyConfig(t)
-			first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
+			cfg := testkit.BusConfig(t)
+			first := testkit.OpenBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
 			first.Close()
 			cfg.Bus.Stream.Name = "POOL"
 			return setup{cfg: cfg, other: "STILLWATER", key: "bus.stream.name", fix: func(t *testing.T, b *config.BusParts) {
@@ -154,7 +91,7 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 			require.NoError(t, err)
 			_, err = js.CreateStream(context.Background(), jetstream.StreamConfig{Name: "HOUSE", Subjects: []string{"sw.>"}})
 			require.NoError(t, err)
-			cfg := busOnlyConfig(t)
+			cfg := testkit.BusConfig(t)
 			cfg.Bus.Listen, cfg.Bus.URL = "", emb.URL()
 			return setup{cfg: cfg, other: "HOUSE", key: "bus.subject_prefix", fix: func(t *testing.T, _ *config.BusParts) {
 				require.NoError(t, js.DeleteStream(context.Background(), "HOUSE"))
@@ -169,10 +106,10 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 				mine = "STILLWATER"
 			}
 			var logs syncBuffer
-			b := openTestBus(t, s.cfg, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{})
+			b := testkit.OpenBus(t, s.cfg, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{})
 			reg := prometheus.NewRegistry()
-			registerBusMetrics(reg, b, time.Now)
-			runBus(t, b)
+			metrics.RegisterBusMetrics(reg, b, time.Now)
+			testkit.RunBus(t, b)
 
 			var errLine string
 			for _, l := range strings.Split(logs.String(), "\n") {
@@ -188,7 +125,7 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 			problems := b.Problems(time.Now())
 			t.Logf("log: %s\nreadiness: %q", errLine, problems)
 			assert.True(t, hasProblem(problems, mine, s.other, s.key), "readiness %q", problems)
-			v, ok := metricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
+			v, ok := testkit.MetricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
 			assert.True(t, ok, "no stillwater_bus_fault{reason=\"stream\"}")
 			assert.Equal(t, 1.0, v)
 
@@ -197,7 +134,7 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 			require.Eventually(t, func() bool { return len(b.Problems(time.Now())) == 0 }, 30*time.Second, 50*time.Millisecond,
 				"the fault did not clear after the other stream was removed")
 			took := time.Since(fixed)
-			v, _ = metricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
+			v, _ = testkit.MetricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
 			assert.Zero(t, v)
 			refdata.Report(t, "stream overlap (%s): fault cleared %.2f s after the other stream was removed", c.name, took.Seconds())
 		})
@@ -213,14 +150,14 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	require.NoError(t, err)
 	port := l.Addr().(*net.TCPAddr).Port
 	require.NoError(t, l.Close())
-	cfg := busOnlyConfig(t)
+	cfg := testkit.BusConfig(t)
 	cfg.Bus.Listen, cfg.Bus.URL = "", "nats://127.0.0.1:"+strconv.Itoa(port)
 
 	reg := prometheus.NewRegistry()
-	met := newMetrics(reg, "test")
-	b := openTestBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{OnResult: met.busResult})
-	registerBusMetrics(reg, b, time.Now)
-	runBus(t, b)
+	met := metrics.New(reg, "test")
+	b := testkit.OpenBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{OnResult: met.BusResult})
+	metrics.RegisterBusMetrics(reg, b, time.Now)
+	testkit.RunBus(t, b)
 	sink := &busSink{pub: b.Pub, met: met}
 	for i := 0; i < 3; i++ {
 		require.NoError(t, sink.send(context.Background(), outMsg{Camera: "north", Kind: alert.KindTarget, ID: fmt.Sprintf("q-%d", i),
@@ -228,7 +165,7 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	}
 	target := map[string]string{"camera": "north", "kind": alert.KindTarget}
 	value := func(name string, labels map[string]string) float64 {
-		v, _ := metricValue(t, reg, name, labels)
+		v, _ := testkit.MetricValue(t, reg, name, labels)
 		return v
 	}
 	assert.Zero(t, value("stillwater_messages_published_total", target), "queued messages counted as published")
@@ -239,7 +176,7 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	assert.Zero(t, value("stillwater_publish_seconds", map[string]string{"kind": alert.KindTarget}), "publish_seconds observed before any acknowledgement")
 	// The same queue seen 31 s later: older than the 30 s bound, not ready.
 	assert.True(t, hasProblem(b.Problems(time.Now().Add(31*time.Second)), "oldest queued message"), "%q", b.Problems(time.Now().Add(31*time.Second)))
-	v, _ := metricValue(t, reg, "stillwater_outbox_oldest_age_seconds", nil)
+	v, _ := testkit.MetricValue(t, reg, "stillwater_outbox_oldest_age_seconds", nil)
 	assert.Greater(t, v, 0.0)
 
 	emb, err := bus.StartEmbedded(bus.EmbeddedConfig{Listen: "127.0.0.1:" + strconv.Itoa(port), StoreDir: t.TempDir(), Name: "late"})
@@ -257,8 +194,8 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 // data directory: the second must be refused by the data directory's lock
 // before it starts a server on the first one's JetStream store.
 func TestSecondDaemonStopsAtTheDataDirectory(t *testing.T) {
-	cfg := busOnlyConfig(t)
-	first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
+	cfg := testkit.BusConfig(t)
+	first := testkit.OpenBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
 	defer first.Close()
 	var logs syncBuffer
 	_, err := config.OpenBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{})
@@ -278,9 +215,9 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	require.NoError(t, err)
 	dead := "nats://" + l.Addr().String()
 	require.NoError(t, l.Close())
-	cfg := busOnlyConfig(t)
+	cfg := testkit.BusConfig(t)
 	cfg.Bus.Listen, cfg.Bus.URL, cfg.Bus.Prefix = "", dead, "old"
-	first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
+	first := testkit.OpenBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
 	for i := 0; i < 3; i++ {
 		require.NoError(t, first.Pub.Publish(context.Background(), "north", alert.KindTarget, fmt.Sprintf("left-%d", i),
 			[]byte(fmt.Sprintf(`{"v":1,"kind":"target","camera":"north","seq":%d}`, i))))
@@ -291,9 +228,9 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	cfg.Bus.Listen, cfg.Bus.URL, cfg.Bus.Prefix = "127.0.0.1:-1", "", "sw"
 	var logs syncBuffer
 	reg := prometheus.NewRegistry()
-	met := newMetrics(reg, "test")
-	b := openTestBus(t, cfg, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{OnResult: met.busResult})
-	registerBusMetrics(reg, b, time.Now)
+	met := metrics.New(reg, "test")
+	b := testkit.OpenBus(t, cfg, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{OnResult: met.BusResult})
+	metrics.RegisterBusMetrics(reg, b, time.Now)
 	sub, err := nats.Connect(b.Embedded.URL())
 	require.NoError(t, err)
 	defer sub.Close()
@@ -306,7 +243,7 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	})
 	require.NoError(t, err)
 	require.NoError(t, sub.Flush())
-	runBus(t, b)
+	testkit.RunBus(t, b)
 
 	sink := &busSink{pub: b.Pub, met: met}
 	start := time.Now()
@@ -321,7 +258,7 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	require.Eventually(t, func() bool { return b.Pub.Stats().Depth == 0 }, 30*time.Second, 20*time.Millisecond)
 	emptied := time.Since(start)
 
-	v, _ := metricValue(t, reg, "stillwater_messages_dead_lettered_total", nil)
+	v, _ := testkit.MetricValue(t, reg, "stillwater_messages_dead_lettered_total", nil)
 	assert.Equal(t, 3.0, v)
 	b2, err := os.ReadFile(filepath.Join(cfg.DataDir, "outbox", bus.DeadLetterFile))
 	require.NoError(t, err)

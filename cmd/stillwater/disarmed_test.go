@@ -15,6 +15,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/testkit"
 )
 
 // TestDisarmedPublishesNoTarget runs the child scene while the schedule
@@ -69,7 +70,7 @@ func TestDisarmedPublishesNoTarget(t *testing.T) {
 	// The clip plays as fast as the CPU allows; the daemon stops by
 	// itself at its end. The gauges hold the last frame's state.
 	metric := func(name string) float64 {
-		v, _ := metricValue(t, reg, name, map[string]string{"camera": "demo"})
+		v, _ := testkit.MetricValue(t, reg, name, map[string]string{"camera": "demo"})
 		return v
 	}
 	require.Eventually(t, func() bool { return metric("stillwater_frames_processed_total") >= float64(truth.Frames) },

@@ -188,7 +188,7 @@ func (w *cameraWatch) startRecorder() {
 		Segment: ringSegment,
 		Keep:    w.evidence.preRoll + ringSegment,
 		Log:     w.log,
-		OnState: func(up bool, _ error) { w.met.recorder(up) }, // the recorder logs its exits
+		OnState: func(up bool, _ error) { w.met.Recorder(up) }, // the recorder logs its exits
 	})
 	if err != nil {
 		w.log.Error("evidence stream not recorded; clips come from the decoded frames", "err", err)

@@ -37,7 +37,7 @@ type lagWatch struct {
 // clears processing_lag. Like camera_lost, the fault is raised only while
 // armed; it clears whenever frames are in time again.
 func (w *cameraWatch) frameAge(ctx context.Context, age time.Duration, armed bool) {
-	w.met.frameAge(age)
+	w.met.FrameAge(age)
 	now := time.Now()
 	if age > maxFrameAge {
 		w.lag.inTimeSince = time.Time{}

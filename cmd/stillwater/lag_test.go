@@ -14,6 +14,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/vision/refdata"
 )
 
@@ -50,10 +51,10 @@ func TestSlowStepRaisesProcessingLag(t *testing.T) {
 	truth, clip, dir := renderScene(t, "child", 7, nil)
 	cfg := demoConfig(truth, clip, dir, true)
 	reg := prometheus.NewRegistry()
-	met := newMetrics(reg, "test")
+	met := metrics.New(reg, "test")
 	sk := &slowSink{delay: 1200 * time.Millisecond, seen: make(chan outMsg, 64)}
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
-	w := newCameraWatch(cfg.Cameras[0], sk, func(time.Time) bool { return true }, time.Now, log, met.camera("demo"), 0, "test", evidenceSettings{})
+	w := newCameraWatch(cfg.Cameras[0], sk, func(time.Time) bool { return true }, time.Now, log, met.Camera("demo"), 0, "test", evidenceSettings{})
 
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
@@ -72,7 +73,7 @@ func TestSlowStepRaisesProcessingLag(t *testing.T) {
 			require.NoError(t, json.Unmarshal(m.Data, &f))
 			if f.Fault == alert.FaultProcessingLag && f.Active {
 				lag = &f
-				v, err := metricValues(reg, "stillwater_frame_age_seconds", "camera")
+				v, err := metrics.Values(reg, "stillwater_frame_age_seconds", "camera")
 				require.NoError(t, err)
 				age = v["demo"]
 			}
@@ -86,7 +87,7 @@ func TestSlowStepRaisesProcessingLag(t *testing.T) {
 	// dropped as the reader catches up, just after.
 	var dropped float64
 	require.Eventually(t, func() bool {
-		v, err := metricValues(reg, "stillwater_frames_dropped_total", "camera")
+		v, err := metrics.Values(reg, "stillwater_frames_dropped_total", "camera")
 		if err != nil {
 			return false
 		}

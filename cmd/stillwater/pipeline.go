@@ -10,6 +10,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/homography"
 	"stillwater/vision"
 )
@@ -52,12 +53,12 @@ type processor struct {
 	seq     uint64
 	epoch   time.Time // wall time of media time 0
 	now     func() time.Time
-	metrics *cameraMetrics
+	metrics *metrics.Camera
 }
 
 // newProcessor returns the pipeline of one camera; cal is the camera's
 // calibration, built once by the caller.
-func newProcessor(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *cameraMetrics) (*processor, error) {
+func newProcessor(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *metrics.Camera) (*processor, error) {
 	zones, err := newZoneSet(cam, cal)
 	if err != nil {
 		return nil, err
@@ -94,12 +95,12 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 		c, ok := p.cal.Surface(homography.Point(b.Centroid))
 		if !ok {
 			p.log.Debug("blob rejected: beyond the pool plane", "frame", r.Index, "px", b.Centroid)
-			p.metrics.rejected("outside")
+			p.metrics.Rejected("outside")
 			continue
 		}
 		if name, in := p.zones.excluded(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}, c); in {
 			p.log.Debug("blob rejected: in exclusion zone", "frame", r.Index, "zone", name, "x_m", c.X, "y_m", c.Y)
-			p.metrics.rejected("zone")
+			p.metrics.Rejected("zone")
 			continue
 		}
 		area := calArea(p.cal, b.Contour)
@@ -107,15 +108,15 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 		switch {
 		case !inside:
 			p.log.Debug("blob rejected: centre outside the pool", "frame", r.Index, "x_m", c.X, "y_m", c.Y)
-			p.metrics.rejected("outside")
+			p.metrics.Rejected("outside")
 			continue
 		case area < d.MinArea:
 			p.log.Debug("blob rejected: too small", "frame", r.Index, "area_m2", area, "min_m2", d.MinArea)
-			p.metrics.rejected("small")
+			p.metrics.Rejected("small")
 			continue
 		case area > d.MaxArea:
 			p.log.Debug("blob rejected: too large", "frame", r.Index, "area_m2", area, "max_m2", d.MaxArea)
-			p.metrics.rejected("large")
+			p.metrics.Rejected("large")
 			continue
 		}
 		dets = append(dets, vision.Detection{X: c.X, Y: c.Y, Area: area, Box: b.Box, Hold: b.Box.Inset(-4)})
@@ -139,7 +140,7 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 		obs = append(obs, o)
 		hold = append(hold, t.Hold)
 	}
-	p.metrics.tracks(len(tracks))
+	p.metrics.Tracks(len(tracks))
 	var out []outMsg
 	for _, dec := range p.alarm.Step(r.Media, obs, armed) {
 		switch {
@@ -176,7 +177,7 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 			f, n, speed := p.judge.summary(o.Track)
 			p.log.Debug("track raised an alarm", append([]any{"track", o.Track, "dwell", dec.Dwell, "x_m", round3(o.X), "y_m", round3(o.Y),
 				"hits", o.Hits, "speed_mps", round3(speed), "candidates", n}, featureArgs(f)...)...)
-			p.metrics.alarm()
+			p.metrics.Alarm()
 			if p.evidence != nil {
 				ref = p.evidence(r, o)
 			}
@@ -242,7 +243,7 @@ func (p *processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool
 	c := homography.Point{X: b.Plane.X, Y: b.Plane.Y}
 	reject := func(reason, why string, args ...any) (vision.Detection, bool) {
 		p.log.Debug("candidate rejected: "+why, append([]any{"frame", r.Index, "x_m", round3(c.X), "y_m", round3(c.Y)}, append(args, featureArgs(f)...)...)...)
-		p.metrics.rejected(reason)
+		p.metrics.Rejected(reason)
 		p.notes = append(p.notes, candidateNote{At: c, Features: f, Rejected: why, Outside: reason == "outside"})
 		return vision.Detection{}, false
 	}

@@ -21,6 +21,7 @@ import (
 	"stillwater/alert/arming"
 	"stillwater/alert/bus"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/cmd/stillwater/internal/redact"
 )
 
@@ -64,7 +65,7 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 	}
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	version := buildVersion()
-	met := newMetrics(reg, version)
+	met := metrics.New(reg, version)
 	log.Info("stillwater starting", "version", version, "cameras", len(cfg.Cameras))
 
 	sch, err := cfg.Schedules()
@@ -78,7 +79,7 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 	var watches []*cameraWatch
 	backlog := make(chan backlogEvent, 64)
 	bus, err := config.OpenBus(ctx, cfg, arming.Config{Cameras: ids, Schedules: sch, Log: log}, now, log, config.BusHooks{
-		OnResult: met.busResult,
+		OnResult: met.BusResult,
 		// The publisher calls this from inside its own publish path: hand
 		// the fault to a goroutine rather than publish from here.
 		OnBacklog: func(active bool, st bus.Stats) {
@@ -88,7 +89,7 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 				log.Error("bus backlog event dropped: too many queued", "active", active)
 			}
 		},
-		OnRefused: func(via string) { met.refused.WithLabelValues(via).Inc() },
+		OnRefused: func(via string) { met.Refused.WithLabelValues(via).Inc() },
 	})
 	if err != nil {
 		return err
@@ -98,14 +99,14 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 	if bus.Embedded != nil {
 		busURL = bus.Embedded.URL()
 	}
-	registerBusMetrics(reg, bus, now)
+	metrics.RegisterBusMetrics(reg, bus, now)
 
 	busOut := &busSink{pub: pub, met: met}
 	bs := redactSink{next: busOut, red: redact.Of(log)}
 	for _, cam := range cfg.Cameras {
 		id := cam.ID
 		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
-		watches = append(watches, newCameraWatch(cam, bs, armed, now, log, met.camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version, newEvidenceSettings(cfg)))
+		watches = append(watches, newCameraWatch(cam, bs, armed, now, log, met.Camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version, newEvidenceSettings(cfg)))
 	}
 	backlogCtx, stopBacklog := context.WithCancel(ctx)
 	backlogDone := make(chan struct{})
@@ -335,7 +336,7 @@ type backlogEvent struct {
 // heartbeats are plain messages, dropped while disconnected.
 type busSink struct {
 	pub *bus.Publisher
-	met *metrics
+	met *metrics.Metrics
 	// closed is set when serve stops with cameras abandoned: what they
 	// send later goes nowhere, not into a closed publisher.
 	closed atomic.Bool
@@ -368,7 +369,7 @@ func (b *busSink) send(ctx context.Context, m outMsg) error {
 		return err
 	}
 	if m.Kind == alert.KindBeat { // stream messages count when acknowledged (busResult)
-		b.met.camera(m.Camera).published(m.Kind)
+		b.met.Camera(m.Camera).Published(m.Kind)
 	}
 	return nil
 }

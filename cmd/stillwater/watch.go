@@ -16,6 +16,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/homography"
 	"stillwater/vision"
 	"stillwater/vision/remux"
@@ -31,7 +32,7 @@ type cameraWatch struct {
 	armed     func(now time.Time) bool
 	now       func() time.Time
 	log       *slog.Logger
-	met       *cameraMetrics
+	met       *metrics.Camera
 	heartbeat time.Duration
 	version   string
 
@@ -54,7 +55,7 @@ type cameraWatch struct {
 	refs            *referenceKeeper   // the empty-pool reference (reference.go)
 }
 
-func newCameraWatch(cam config.CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *cameraMetrics, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
+func newCameraWatch(cam config.CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *metrics.Camera, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
 	w := &cameraWatch{
 		cam: cam, out: out, armed: armed, now: now, log: log.With("camera", cam.ID), met: met,
 		heartbeat: heartbeat, version: version, epoch: now(), reload: make(chan config.CameraConfig, 1),
@@ -119,9 +120,9 @@ func (w *cameraWatch) watchdog(ctx context.Context) {
 		// frame.
 		recent := since <= w.frameTimeout()
 		up := recent && w.nframes.Load() > 0
-		w.met.cameraUp(up)
+		w.met.CameraUp(up)
 		armed := w.armed(now)
-		w.met.armedState(armed)
+		w.met.ArmedState(armed)
 		switch {
 		case !recent && armed:
 			w.raise(ctx, alert.FaultCameraLost, true, w.lostDetail(since))
@@ -156,7 +157,7 @@ func (w *cameraWatch) raise(ctx context.Context, kind string, active bool, msg s
 	if !w.faults.set(kind, active) {
 		return
 	}
-	w.met.fault(kind, active)
+	w.met.Fault(kind, active)
 	if active {
 		w.log.Error("camera fault", "fault", kind, "detail", msg)
 	} else {
@@ -183,7 +184,7 @@ func (w *cameraWatch) beat(ctx context.Context, now time.Time, fps float64, up, 
 		return
 	}
 	w.send(ctx, outMsg{Camera: w.cam.ID, Kind: alert.KindBeat, ID: w.msgID(w.seq.Add(1), "beat"), Data: b})
-	w.met.heartbeat(now)
+	w.met.Heartbeat(now)
 }
 
 func (w *cameraWatch) msgID(seq uint64, what string) string {
@@ -194,10 +195,10 @@ func (w *cameraWatch) send(ctx context.Context, m outMsg) {
 	t0 := time.Now()
 	if err := w.out.send(ctx, m); err != nil {
 		w.log.Error("publish failed", "kind", m.Kind, "err", err)
-		w.met.publishError()
+		w.met.PublishError()
 		return
 	}
-	w.met.stage("publish", time.Since(t0))
+	w.met.Stage("publish", time.Since(t0))
 }
 
 // capture opens the source, runs the pipeline over its frames and, after
@@ -256,7 +257,7 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 			if !sleep(ctx, d) {
 				return nil
 			}
-			w.met.reconnect()
+			w.met.Reconnect()
 			info, err := vc.Reconnect()
 			if err != nil {
 				w.log.Warn("reconnect failed; trying again", "err", err, "next_in", bo.peek().Round(time.Millisecond))
@@ -345,8 +346,8 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			w.log.Warn("late frame after a stalled read", "waited", waited.Round(time.Millisecond))
 		}
 		w.nframes.Add(1)
-		w.met.frame()
-		w.met.stage("vision", time.Since(t0))
+		w.met.Frame()
+		w.met.Stage("vision", time.Since(t0))
 		captured := vc.Captured()
 		switch {
 		case live:
@@ -374,7 +375,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			t1 := time.Now()
 			msgs, h := proc.step(r, armed)
 			st.hold = h
-			w.met.stage("track", time.Since(t1))
+			w.met.Stage("track", time.Since(t1))
 			w.keepReference(vc, proc, r, armed)
 			for _, m := range msgs {
 				w.send(ctx, m)
@@ -385,7 +386,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 				w.checkDrift(ctx, st.drift.check(r.Media, vc))
 			}
 		}
-		w.met.processed(time.Since(t0))
+		w.met.Processed(time.Since(t0))
 		w.frameAge(ctx, time.Since(captured), armed)
 	}
 }
@@ -393,8 +394,8 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 // countStats exports the capture counters' growth.
 func (w *cameraWatch) countStats(vc *vision.Camera, st *captureState) {
 	s := vc.Stats()
-	w.met.decodeErrors(int(s.DecodeErrors - st.stats.DecodeErrors))
-	w.met.droppedFrames(int(s.Dropped - st.stats.Dropped))
+	w.met.DecodeErrors(int(s.DecodeErrors - st.stats.DecodeErrors))
+	w.met.DroppedFrames(int(s.Dropped - st.stats.Dropped))
 	st.stats = s
 }
 
@@ -435,7 +436,7 @@ func (w *cameraWatch) checkDrift(ctx context.Context, st driftStatus) {
 	if !w.faults.set(alert.FaultCalibrationDrift, active) {
 		return
 	}
-	w.met.fault(alert.FaultCalibrationDrift, active)
+	w.met.Fault(alert.FaultCalibrationDrift, active)
 	if active {
 		w.log.Error("camera moved: positions are not trustworthy until recalibrated", "shift_m", st.ShiftM, "lost", st.Lost)
 	} else {

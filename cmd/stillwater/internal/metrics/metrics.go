@@ -1,4 +1,6 @@
-package main
+// Package metrics is the daemon's own Prometheus series: per camera
+// frames, stages, rejections, faults and alarms, and the bus side.
+package metrics
 
 import (
 	"runtime"
@@ -10,10 +12,10 @@ import (
 	"stillwater/cmd/stillwater/internal/config"
 )
 
-// metrics are the daemon's own collectors, registered on the registry
+// Metrics are the daemon's own collectors, registered on the registry
 // that serve creates. Names follow Prometheus conventions: a unit suffix,
 // _total on counters, one "camera" label.
-type metrics struct {
+type Metrics struct {
 	read        *prometheus.CounterVec
 	processed   *prometheus.CounterVec
 	dropped     *prometheus.CounterVec
@@ -36,11 +38,11 @@ type metrics struct {
 	acked       *prometheus.CounterVec
 	pubErrors   *prometheus.CounterVec
 	pubSecs     *prometheus.HistogramVec
-	refused     *prometheus.CounterVec
+	Refused     *prometheus.CounterVec
 	build       *prometheus.GaugeVec
 }
 
-func newMetrics(reg prometheus.Registerer, version string) *metrics {
+func New(reg prometheus.Registerer, version string) *Metrics {
 	cam := []string{"camera"}
 	counter := func(name, help string, labels ...string) *prometheus.CounterVec {
 		return prometheus.NewCounterVec(prometheus.CounterOpts{Name: name, Help: help}, labels)
@@ -49,7 +51,7 @@ func newMetrics(reg prometheus.Registerer, version string) *metrics {
 		return prometheus.NewGaugeVec(prometheus.GaugeOpts{Name: name, Help: help}, labels)
 	}
 	secs := []float64{0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1, 2, 5}
-	m := &metrics{
+	m := &Metrics{
 		read:       counter("stillwater_frames_read_total", "Frames read from the camera.", cam...),
 		processed:  counter("stillwater_frames_processed_total", "Frames that went through the whole pipeline.", cam...),
 		dropped:    counter("stillwater_frames_dropped_total", "Frames of a live camera (or a file played in real time) dropped unsearched to catch up with the stream.", cam...),
@@ -78,33 +80,37 @@ func newMetrics(reg prometheus.Registerer, version string) *metrics {
 		pubSecs: prometheus.NewHistogramVec(prometheus.HistogramOpts{
 			Name: "stillwater_publish_seconds", Help: "Time from handing a stream message to the bus to its acknowledgement, outbox time included, by kind.", Buckets: secs,
 		}, []string{"kind"}),
-		refused: counter("stillwater_control_refused_total", "Control requests refused, by channel.", "via"),
+		Refused: counter("stillwater_control_refused_total", "Control requests refused, by channel.", "via"),
 		build:   gauge("stillwater_build_info", "Always 1; labels carry the version.", "version", "goversion"),
 	}
 	reg.MustRegister(m.read, m.processed, m.dropped, m.frameAgeG, m.recUp, m.recExits, m.decodeErrs, m.procSecs, m.stageSecs, m.rejected, m.tracks,
 		m.up, m.reconnects, m.armed, m.alarms, m.faults, m.faultActive, m.beatTime, m.published, m.acked, m.pubErrors, m.pubSecs,
-		m.refused, m.build)
+		m.Refused, m.build)
 	m.build.WithLabelValues(version, runtime.Version()).Set(1)
 	return m
 }
 
-// cameraMetrics is the per-camera view; a nil one records nothing, so
+// Camera is the per-camera view; a nil one records nothing, so
 // replays and tests can run the pipeline without a registry.
-type cameraMetrics struct {
-	m  *metrics
+type Camera struct {
+	m  *Metrics
 	id string
 }
 
-func (m *metrics) camera(id string) *cameraMetrics { return &cameraMetrics{m: m, id: id} }
+// Camera returns the recorder of one camera's series.
+func (m *Metrics) Camera(id string) *Camera { return &Camera{m: m, id: id} }
 
-func (c *cameraMetrics) frame() {
+// Frame counts a frame read from the camera.
+func (c *Camera) Frame() {
 	if c == nil {
 		return
 	}
 	c.m.read.WithLabelValues(c.id).Inc()
 }
 
-func (c *cameraMetrics) processed(d time.Duration) {
+// Processed counts a frame through the pipeline and observes its
+// processing time.
+func (c *Camera) Processed(d time.Duration) {
 	if c == nil {
 		return
 	}
@@ -112,65 +118,73 @@ func (c *cameraMetrics) processed(d time.Duration) {
 	c.m.procSecs.WithLabelValues(c.id).Observe(d.Seconds())
 }
 
-func (c *cameraMetrics) stage(name string, d time.Duration) {
+// Stage observes the time one stage (vision, track, ...) took.
+func (c *Camera) Stage(name string, d time.Duration) {
 	if c == nil {
 		return
 	}
 	c.m.stageSecs.WithLabelValues(c.id, name).Observe(d.Seconds())
 }
 
-func (c *cameraMetrics) rejected(reason string) {
+// Rejected counts a candidate rejected for reason.
+func (c *Camera) Rejected(reason string) {
 	if c == nil {
 		return
 	}
 	c.m.rejected.WithLabelValues(c.id, reason).Inc()
 }
 
-func (c *cameraMetrics) tracks(n int) {
+// Tracks sets the number of live tracks.
+func (c *Camera) Tracks(n int) {
 	if c == nil {
 		return
 	}
 	c.m.tracks.WithLabelValues(c.id).Set(float64(n))
 }
 
-func (c *cameraMetrics) cameraUp(up bool) {
+// CameraUp sets whether the camera delivers frames.
+func (c *Camera) CameraUp(up bool) {
 	if c == nil {
 		return
 	}
 	c.m.up.WithLabelValues(c.id).Set(b2f(up))
 }
 
-func (c *cameraMetrics) armedState(armed bool) {
+// ArmedState sets whether the camera's pool is armed.
+func (c *Camera) ArmedState(armed bool) {
 	if c == nil {
 		return
 	}
 	c.m.armed.WithLabelValues(c.id).Set(b2f(armed))
 }
 
-func (c *cameraMetrics) reconnect() {
+// Reconnect counts a reconnection attempt.
+func (c *Camera) Reconnect() {
 	if c == nil {
 		return
 	}
 	c.m.reconnects.WithLabelValues(c.id).Inc()
 }
 
-func (c *cameraMetrics) droppedFrames(n int) {
+// DroppedFrames counts n frames dropped to keep up.
+func (c *Camera) DroppedFrames(n int) {
 	if c == nil || n <= 0 {
 		return
 	}
 	c.m.dropped.WithLabelValues(c.id).Add(float64(n))
 }
 
-func (c *cameraMetrics) frameAge(d time.Duration) {
+// FrameAge observes how old a frame was when processed.
+func (c *Camera) FrameAge(d time.Duration) {
 	if c == nil {
 		return
 	}
 	c.m.frameAgeG.WithLabelValues(c.id).Set(d.Seconds())
 }
 
-// recorder records the evidence stream's recorder starting to write (up)
+// Recorder records the evidence stream's recorder starting to write (up)
 // or its process ending.
-func (c *cameraMetrics) recorder(up bool) {
+func (c *Camera) Recorder(up bool) {
 	if c == nil {
 		return
 	}
@@ -180,21 +194,24 @@ func (c *cameraMetrics) recorder(up bool) {
 	}
 }
 
-func (c *cameraMetrics) decodeErrors(n int) {
+// DecodeErrors counts n undecodable frames.
+func (c *Camera) DecodeErrors(n int) {
 	if c == nil || n <= 0 {
 		return
 	}
 	c.m.decodeErrs.WithLabelValues(c.id).Add(float64(n))
 }
 
-func (c *cameraMetrics) alarm() {
+// Alarm counts an alarm raised.
+func (c *Camera) Alarm() {
 	if c == nil {
 		return
 	}
 	c.m.alarms.WithLabelValues(c.id).Inc()
 }
 
-func (c *cameraMetrics) fault(kind string, active bool) {
+// Fault sets whether a fault of kind is active.
+func (c *Camera) Fault(kind string, active bool) {
 	if c == nil {
 		return
 	}
@@ -204,23 +221,25 @@ func (c *cameraMetrics) fault(kind string, active bool) {
 	c.m.faultActive.WithLabelValues(c.id, kind).Set(b2f(active))
 }
 
-func (c *cameraMetrics) heartbeat(t time.Time) {
+// Heartbeat records the time of the last heartbeat.
+func (c *Camera) Heartbeat(t time.Time) {
 	if c == nil {
 		return
 	}
 	c.m.beatTime.WithLabelValues(c.id).Set(float64(t.UnixNano()) / 1e9)
 }
 
-// published counts a plain message (a heartbeat) sent; stream messages
+// Published counts a plain message (a heartbeat) sent; stream messages
 // are counted when acknowledged, by busResult.
-func (c *cameraMetrics) published(kind string) {
+func (c *Camera) Published(kind string) {
 	if c == nil {
 		return
 	}
 	c.m.published.WithLabelValues(c.id, kind).Inc()
 }
 
-func (c *cameraMetrics) publishError() {
+// PublishError counts a message that could not be published.
+func (c *Camera) PublishError() {
 	if c == nil {
 		return
 	}
@@ -234,11 +253,11 @@ func b2f(b bool) float64 {
 	return 0
 }
 
-// busResult records the fate of one message, from the publisher's
+// BusResult records the fate of one message, from the publisher's
 // OnResult callback: an acknowledged stream message is counted as
 // published and acknowledged, and its time from Publish to the
 // acknowledgement observed, once.
-func (m *metrics) busResult(r bus.PublishResult) {
+func (m *Metrics) BusResult(r bus.PublishResult) {
 	if r.Err != nil {
 		return
 	}
@@ -247,9 +266,9 @@ func (m *metrics) busResult(r bus.PublishResult) {
 	m.pubSecs.WithLabelValues(r.Kind).Observe(r.Latency.Seconds())
 }
 
-// registerBusMetrics registers the series read from the bus side at
+// RegisterBusMetrics registers the series read from the bus side at
 // scrape time.
-func registerBusMetrics(reg prometheus.Registerer, b *config.BusParts, now func() time.Time) {
+func RegisterBusMetrics(reg prometheus.Registerer, b *config.BusParts, now func() time.Time) {
 	pub := b.Pub
 	stats := func(f func(bus.Stats) float64) func() float64 { return func() float64 { return f(pub.Stats()) } }
 	fault := func(reason, help string, active func() bool) prometheus.Collector {

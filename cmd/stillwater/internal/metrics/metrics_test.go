@@ -1,7 +1,8 @@
-package main
+package metrics
 
 import (
 	"errors"
+	"flag"
 	"io"
 	"log/slog"
 	"os"
@@ -22,10 +23,13 @@ import (
 	"stillwater/alert"
 	"stillwater/alert/bus"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/testkit"
 )
 
+var update = flag.Bool("update", false, "rewrite golden files")
+
 // TestMetricsExposition drives every collector of the daemon's own
-// metrics (newMetrics, and the bus side's registerBusMetrics over an
+// metrics (New, and the bus side's RegisterBusMetrics over an
 // in-process server) through a fixed sequence and compares the text
 // exposition, names, help, types, labels, buckets and values, with
 // testdata/metrics.golden. Rewrite it with go test -run
@@ -35,45 +39,45 @@ import (
 // GOVERSION in the file.
 func TestMetricsExposition(t *testing.T) {
 	reg := prometheus.NewRegistry()
-	m := newMetrics(reg, "v1.2.3")
+	m := New(reg, "v1.2.3")
 	for _, id := range []string{"north", "south"} {
-		c := m.camera(id)
-		c.cameraUp(true)
-		c.armedState(id == "north")
-		c.heartbeat(time.Date(2026, 7, 1, 12, 0, 0, 0, time.UTC))
-		c.published(alert.KindBeat)
+		c := m.Camera(id)
+		c.CameraUp(true)
+		c.ArmedState(id == "north")
+		c.Heartbeat(time.Date(2026, 7, 1, 12, 0, 0, 0, time.UTC))
+		c.Published(alert.KindBeat)
 	}
-	c := m.camera("north")
+	c := m.Camera("north")
 	for i := 0; i < 3; i++ {
-		c.frame()
-		c.stage("vision", 3*time.Millisecond)
-		c.stage("track", 300*time.Microsecond)
-		c.processed(4 * time.Millisecond)
+		c.Frame()
+		c.Stage("vision", 3*time.Millisecond)
+		c.Stage("track", 300*time.Microsecond)
+		c.Processed(4 * time.Millisecond)
 	}
-	c.frame()
-	c.decodeErrors(1)
-	c.droppedFrames(2)
-	c.droppedFrames(0) // nothing to count: no series change
-	c.rejected("small")
-	c.rejected("small")
-	c.rejected("zone")
-	c.tracks(1)
-	c.alarm()
-	c.fault(alert.FaultCameraFrozen, true)
-	c.fault(alert.FaultCameraFrozen, false)
-	c.fault(alert.FaultCalibrationDrift, true)
-	c.reconnect()
-	c.publishError()
-	m.camera("south").stage("publish", 15*time.Millisecond)
-	m.busResult(bus.PublishResult{Camera: "north", Kind: alert.KindTarget, ID: "a", Latency: 8 * time.Millisecond})
-	m.busResult(bus.PublishResult{Camera: "north", Kind: alert.KindTarget, ID: "b", Latency: 1500 * time.Millisecond, Outboxed: true})
-	m.busResult(bus.PublishResult{Camera: "north", Kind: alert.KindCleared, ID: "c", Err: errors.New("dead-lettered")})
-	m.refused.WithLabelValues("http").Inc()
+	c.Frame()
+	c.DecodeErrors(1)
+	c.DroppedFrames(2)
+	c.DroppedFrames(0) // nothing to count: no series change
+	c.Rejected("small")
+	c.Rejected("small")
+	c.Rejected("zone")
+	c.Tracks(1)
+	c.Alarm()
+	c.Fault(alert.FaultCameraFrozen, true)
+	c.Fault(alert.FaultCameraFrozen, false)
+	c.Fault(alert.FaultCalibrationDrift, true)
+	c.Reconnect()
+	c.PublishError()
+	m.Camera("south").Stage("publish", 15*time.Millisecond)
+	m.BusResult(bus.PublishResult{Camera: "north", Kind: alert.KindTarget, ID: "a", Latency: 8 * time.Millisecond})
+	m.BusResult(bus.PublishResult{Camera: "north", Kind: alert.KindTarget, ID: "b", Latency: 1500 * time.Millisecond, Outboxed: true})
+	m.BusResult(bus.PublishResult{Camera: "north", Kind: alert.KindCleared, ID: "c", Err: errors.New("dead-lettered")})
+	m.Refused.WithLabelValues("http").Inc()
 
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
-	b := openTestBus(t, busOnlyConfig(t), log, config.BusHooks{})
+	b := testkit.OpenBus(t, testkit.BusConfig(t), log, config.BusHooks{})
 	t.Cleanup(func() { b.Close() })
-	registerBusMetrics(reg, b, func() time.Time { return time.Date(2026, 7, 1, 12, 0, 0, 0, time.UTC) })
+	RegisterBusMetrics(reg, b, func() time.Time { return time.Date(2026, 7, 1, 12, 0, 0, 0, time.UTC) })
 
 	// The build's Go version changes with the toolchain; the file keeps a
 	// placeholder.
@@ -111,7 +115,7 @@ func TestMetricsExposition(t *testing.T) {
 
 // TestAlertRulesUseExportedSeries: every stillwater_ series that the
 // Prometheus alert rules in deploy/prometheus read is one the daemon
-// exports (testdata/metrics.golden, checked above against newMetrics). A
+// exports (testdata/metrics.golden, checked above against New). A
 // rule over a renamed series would never fire.
 func TestAlertRulesUseExportedSeries(t *testing.T) {
 	golden, err := os.ReadFile(filepath.Join("testdata", "metrics.golden"))
@@ -121,7 +125,7 @@ func TestAlertRulesUseExportedSeries(t *testing.T) {
 		exported[m[1]] = true
 	}
 	require.NotEmpty(t, exported)
-	rules, err := os.ReadFile(filepath.Join("..", "..", "deploy", "prometheus", "alerts.yml"))
+	rules, err := os.ReadFile(filepath.Join("..", "..", "..", "..", "deploy", "prometheus", "alerts.yml"))
 	require.NoError(t, err)
 	used := regexp.MustCompile(`stillwater_\w+`).FindAllString(string(rules), -1)
 	require.NotEmpty(t, used, "no stillwater_ series in the alert rules")

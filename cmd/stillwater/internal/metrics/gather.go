@@ -1,10 +1,10 @@
-package main
+package metrics
 
 import "github.com/prometheus/client_golang/prometheus"
 
-// metricValues returns, for each value of label, the value of the gauge
+// Values returns, for each value of label, the value of the gauge
 // or counter name in g (the sum where other labels differ).
-func metricValues(g prometheus.Gatherer, name, label string) (map[string]float64, error) {
+func Values(g prometheus.Gatherer, name, label string) (map[string]float64, error) {
 	fams, err := g.Gather()
 	if err != nil {
 		return nil, err
