@@ -31,6 +31,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/metrics"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -462,7 +463,7 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *bench
 		if !warmed && !time.Now().Before(warm) {
 			warmed = true
 			at0 = takeSnap(reg, kids)
-			res.RSSWarmMB = round3(float64(procStatus("self", "VmRSS")) / 1024)
+			res.RSSWarmMB = pipeline.Round3(float64(procStatus("self", "VmRSS")) / 1024)
 			mu.Lock()
 			counting = at0.at
 			mu.Unlock()
@@ -489,12 +490,12 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *bench
 	}
 
 	window := at1.at.Sub(at0.at).Seconds()
-	res.WindowS = round3(window)
+	res.WindowS = pipeline.Round3(window)
 	var fpss []float64
 	for _, c := range cfg.Cameras {
 		p := int64(at1.processed[c.ID] - at0.processed[c.ID])
 		d := int64(at1.dropped[c.ID] - at0.dropped[c.ID])
-		bc := benchCamera{ID: c.ID, FPS: round3(float64(p) / window), Processed: p, Dropped: d, AgeMaxS: round3(ageMax[c.ID])}
+		bc := benchCamera{ID: c.ID, FPS: pipeline.Round3(float64(p) / window), Processed: p, Dropped: d, AgeMaxS: pipeline.Round3(ageMax[c.ID])}
 		res.PerCamera = append(res.PerCamera, bc)
 		res.FramesProcessed += p
 		res.FramesDropped += d
@@ -505,31 +506,31 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *bench
 	res.FPSMin, res.FPSMedian = fpss[0], fpss[len(fpss)/2]
 	if len(agesAll) > 0 {
 		sort.Float64s(agesAll)
-		res.AgeP50S, res.AgeP99S, res.AgeSamples = round3(percentile(agesAll, 0.5)), round3(percentile(agesAll, 0.99)), len(agesAll)
+		res.AgeP50S, res.AgeP99S, res.AgeSamples = pipeline.Round3(percentile(agesAll, 0.5)), pipeline.Round3(percentile(agesAll, 0.99)), len(agesAll)
 	}
 	res.FramesExpected = int64(math.Round(res.FPS * window * float64(o.cameras)))
 	if res.FramesExpected > 0 {
-		res.ReadRatio = round3(float64(res.FramesProcessed+res.FramesDropped) / float64(res.FramesExpected))
+		res.ReadRatio = pipeline.Round3(float64(res.FramesProcessed+res.FramesDropped) / float64(res.FramesExpected))
 	}
-	res.CPUSelfS = round3(at1.self - at0.self)
-	res.CPUChildrenS = round3(at1.children - at0.children)
+	res.CPUSelfS = pipeline.Round3(at1.self - at0.self)
+	res.CPUChildrenS = pipeline.Round3(at1.children - at0.children)
 	cpu := res.CPUSelfS + res.CPUChildrenS
-	res.Cores = round3(cpu / window)
-	res.CPUPerCameraSecS = round3(cpu / window / float64(o.cameras))
+	res.Cores = pipeline.Round3(cpu / window)
+	res.CPUPerCameraSecS = pipeline.Round3(cpu / window / float64(o.cameras))
 	if n := res.FramesProcessed + res.FramesDropped; n > 0 {
-		res.DaemonMsPerFrame = round3(res.CPUSelfS * 1000 / float64(n))
+		res.DaemonMsPerFrame = pipeline.Round3(res.CPUSelfS * 1000 / float64(n))
 	}
-	res.RSSPerCameraMB = round3(res.RSSFinalMB / float64(o.cameras))
-	res.RSSPeakMB, res.RSSFinalMB, res.PssChildrenMB = round3(res.RSSPeakMB), round3(res.RSSFinalMB), round3(res.PssChildrenMB)
-	res.RSSBaselineMB = round3(res.RSSBaselineMB)
+	res.RSSPerCameraMB = pipeline.Round3(res.RSSFinalMB / float64(o.cameras))
+	res.RSSPeakMB, res.RSSFinalMB, res.PssChildrenMB = pipeline.Round3(res.RSSPeakMB), pipeline.Round3(res.RSSFinalMB), pipeline.Round3(res.PssChildrenMB)
+	res.RSSBaselineMB = pipeline.Round3(res.RSSBaselineMB)
 	mu.Lock()
 	defer mu.Unlock()
 	res.LatencySamples = len(latencies)
 	if len(latencies) > 0 {
 		sort.Float64s(latencies)
-		res.LatencyP50ms = round3(percentile(latencies, 0.50))
-		res.LatencyP99ms = round3(percentile(latencies, 0.99))
-		res.LatencyMaxms = round3(latencies[len(latencies)-1])
+		res.LatencyP50ms = pipeline.Round3(percentile(latencies, 0.50))
+		res.LatencyP99ms = pipeline.Round3(percentile(latencies, 0.99))
+		res.LatencyMaxms = pipeline.Round3(latencies[len(latencies)-1])
 	}
 	return nil
 }
@@ -586,14 +587,14 @@ func benchLoops(ctx context.Context, o benchOpts, clip string, frames int, res *
 		}
 		naive = append(naive, (selfCPU()-c0)*1000/float64(max(n, 1)))
 	}
-	res.DecodeMsPerFrame = round3(medianOf(dec))
-	res.FFmpegDecodeMsPerFrame = round3(medianOf(ff))
-	res.NaiveMsPerFrame = round3(medianOf(naive))
+	res.DecodeMsPerFrame = pipeline.Round3(medianOf(dec))
+	res.FFmpegDecodeMsPerFrame = pipeline.Round3(medianOf(ff))
+	res.NaiveMsPerFrame = pipeline.Round3(medianOf(naive))
 	if res.DecodeMsPerFrame > 0 {
-		res.RatioDecode = round3(res.DaemonMsPerFrame / res.DecodeMsPerFrame)
+		res.RatioDecode = pipeline.Round3(res.DaemonMsPerFrame / res.DecodeMsPerFrame)
 	}
 	if res.NaiveMsPerFrame > 0 {
-		res.RatioNaive = round3(res.DaemonMsPerFrame / res.NaiveMsPerFrame)
+		res.RatioNaive = pipeline.Round3(res.DaemonMsPerFrame / res.NaiveMsPerFrame)
 	}
 	return nil
 }

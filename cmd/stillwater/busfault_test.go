@@ -25,6 +25,7 @@ import (
 	"stillwater/alert/bus"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/metrics"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/cmd/stillwater/internal/testkit"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
@@ -160,7 +161,7 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	testkit.RunBus(t, b)
 	sink := &busSink{pub: b.Pub, met: met}
 	for i := 0; i < 3; i++ {
-		require.NoError(t, sink.send(context.Background(), outMsg{Camera: "north", Kind: alert.KindTarget, ID: fmt.Sprintf("q-%d", i),
+		require.NoError(t, sink.Send(context.Background(), pipeline.Message{Camera: "north", Kind: alert.KindTarget, ID: fmt.Sprintf("q-%d", i),
 			Data: []byte(fmt.Sprintf(`{"v":1,"kind":"target","camera":"north","seq":%d}`, i))}))
 	}
 	target := map[string]string{"camera": "north", "kind": alert.KindTarget}
@@ -247,7 +248,7 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 
 	sink := &busSink{pub: b.Pub, met: met}
 	start := time.Now()
-	require.NoError(t, sink.send(context.Background(), outMsg{Camera: "north", Kind: alert.KindTarget, ID: "fresh",
+	require.NoError(t, sink.Send(context.Background(), pipeline.Message{Camera: "north", Kind: alert.KindTarget, ID: "fresh",
 		Data: []byte(`{"v":1,"kind":"target","camera":"north","seq":9}`)}))
 	var arrived time.Time
 	select {

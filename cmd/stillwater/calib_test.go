@@ -2,6 +2,7 @@ package main
 
 import (
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision/refdata"
 
 	"image"
@@ -141,7 +142,7 @@ func TestCalibrationPoseAndRefraction(t *testing.T) {
 					require.NoError(t, err)
 					seen, ok := calSurface(cal, click(t, s, ax, ay, 0))
 					require.True(t, ok)
-					f := calFloor(cal, seen)
+					f := pipeline.FloorPosition(cal, seen)
 					truth := homography.Point{X: x, Y: y}
 					on := homography.Point{X: f.X, Y: f.Y}.Dist(truth)
 					off := seen.Dist(truth)
@@ -197,7 +198,7 @@ func TestCalibrationLensDistortion(t *testing.T) {
 		}
 		if name == "with lens" {
 			// The mask follows the curved edges: 16 points an edge.
-			assert.Len(t, calMask(cal), 64)
+			assert.Len(t, pipeline.WaterMask(cal), 64)
 			assert.InDelta(t, s.Camera.Height, camOf(cal).Height, 0.1*s.Camera.Height, "height from the lens intrinsics")
 		}
 	}
@@ -246,11 +247,11 @@ func TestCalibrationAreaInsideMask(t *testing.T) {
 		u, v, _ := s.Project(q[0], q[1], 0)
 		contour = append(contour, vision.Point{X: u, Y: v})
 	}
-	assert.InDelta(t, 0.5, calArea(cal, contour), 0.01, "m²")
+	assert.InDelta(t, 0.5, pipeline.ContourArea(cal, contour), 0.01, "m²")
 	assert.True(t, cal.Inside(homography.Point{X: 4, Y: 2}))
 	assert.False(t, cal.Inside(homography.Point{X: -0.2, Y: 2}))
 	assert.False(t, cal.Inside(homography.Point{X: 4, Y: 4.1}))
-	m := calMask(cal)
+	m := pipeline.WaterMask(cal)
 	require.Len(t, m, 4)
 	for i, c := range cornersConfig(t, s, 0).Corners {
 		assert.InDelta(t, c[0], m[i].X, 1e-6)
@@ -261,12 +262,12 @@ func TestCalibrationAreaInsideMask(t *testing.T) {
 	// the deck's stillness hides it (a frozen family scene went unreported).
 	for _, method := range []string{"meanvar", "mog2"} {
 		cam := config.CameraConfig{ID: "t", CalibrationConfig: cornersConfig(t, s, 0), Detect: config.MergeDetect(config.DefaultDetect(), config.DetectConfig{Method: method})}
-		dc, err := detectorConfig(cam, cal)
+		dc, err := pipeline.DetectorConfig(cam, cal)
 		require.NoError(t, err, method)
 		assert.Equal(t, m, dc.Mask, method)
 	}
 	// Without a depth model the floor is the surface.
-	f := calFloor(cal, homography.Point{X: 2, Y: 3})
+	f := pipeline.FloorPosition(cal, homography.Point{X: 2, Y: 3})
 	assert.Equal(t, [3]float64{2, 3, 0}, [3]float64{f.X, f.Y, f.Depth})
 	// Sky above the horizon does not map onto the pool: a low camera far
 	// back sees the sky in its top rows.
@@ -300,7 +301,7 @@ func TestCalibrationFreeform(t *testing.T) {
 	assert.Less(t, cal.Fit().RMSM, 0.03)
 	assert.True(t, cal.Inside(homography.Point{X: 4, Y: 2}))
 	assert.False(t, cal.Inside(homography.Point{X: 0.3, Y: 0.3}), "corner of the rectangle is outside the ellipse")
-	assert.Len(t, calMask(cal), 24)
+	assert.Len(t, pipeline.WaterMask(cal), 24)
 
 	// A mis-measured point is named.
 	bad := cfg
@@ -437,7 +438,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 			require.NoError(t, config.ValidateCalibration("cam", cam.CalibrationConfig))
 			cal, err := config.NewCalibration(cam)
 			require.NoError(t, err)
-			chk, err := newDriftChecker(cam, cal)
+			chk, err := pipeline.NewDriftChecker(cam, cal)
 			require.NoError(t, err)
 			defer chk.Close()
 			vc, err := vision.OpenCamera(vision.SourceConfig{URI: clip}, vision.DetectorConfig{ProcessWidth: 320})
@@ -451,10 +452,10 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 					break
 				}
 				require.NoError(t, err)
-				if !chk.due(r.Media) {
+				if !chk.Due(r.Media) {
 					continue
 				}
-				st := chk.check(r.Media, vc)
+				st := chk.Check(r.Media, vc)
 				require.NoError(t, st.Err, "at %v", r.Media)
 				at := r.Media.Seconds()
 				if tc.panAt == 0 || at < tc.panAt {
@@ -498,7 +499,7 @@ func TestRefractionOnRenderedFrames(t *testing.T) {
 	cal, err := config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: cfg})
 	require.NoError(t, err)
 	vc, err := vision.OpenCamera(vision.SourceConfig{URI: clip}, vision.DetectorConfig{
-		ProcessWidth: 640, Method: "mog2", History: 500, Threshold: 16, LearningRate: -1, MinPixels: 6, Mask: calMask(cal)})
+		ProcessWidth: 640, Method: "mog2", History: 500, Threshold: 16, LearningRate: -1, MinPixels: 6, Mask: pipeline.WaterMask(cal)})
 	require.NoError(t, err)
 	defer vc.Close()
 	var on, off, seen []float64
@@ -521,7 +522,7 @@ func TestRefractionOnRenderedFrames(t *testing.T) {
 		}
 		sp, ok := calSurface(cal, big.Centroid)
 		require.True(t, ok)
-		f := calFloor(cal, sp)
+		f := pipeline.FloorPosition(cal, sp)
 		real := homography.Point{X: occ.Under.X, Y: occ.Under.Y}
 		on = append(on, homography.Point{X: f.X, Y: f.Y}.Dist(real))
 		off = append(off, sp.Dist(real))

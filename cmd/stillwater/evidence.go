@@ -10,6 +10,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision"
 	"stillwater/vision/remux"
 )
@@ -37,10 +38,10 @@ func newEvidenceSettings(cfg config.Config) evidenceSettings {
 
 // annotation draws the water outline and every live track with its
 // position in pool metres.
-func annotation(cam config.CameraConfig, proc *processor, caption string) vision.Annotation {
-	a := vision.Annotation{Outline: calMask(proc.cal), Caption: caption}
-	for _, t := range proc.tracks {
-		a.Boxes = append(a.Boxes, vision.LabeledBox{Box: t.Box, Label: fmt.Sprintf("track %d  %.2f m, %.2f m%s", t.ID, t.X, t.Y, proc.why(t.ID))})
+func annotation(cam config.CameraConfig, proc *pipeline.Processor, caption string) vision.Annotation {
+	a := vision.Annotation{Outline: pipeline.WaterMask(proc.Calibration), Caption: caption}
+	for _, t := range proc.Tracks {
+		a.Boxes = append(a.Boxes, vision.LabeledBox{Box: t.Box, Label: fmt.Sprintf("track %d  %.2f m, %.2f m%s", t.ID, t.X, t.Y, proc.Why(t.ID))})
 	}
 	return a
 }
@@ -74,7 +75,7 @@ func (w *cameraWatch) planEvidence(r vision.Result, o alert.Observation) string 
 // is called after the frame's messages are published and returns at once;
 // the files are written on the writer's goroutine (evidenceWritten reports
 // them). A failure is logged and never holds up an alarm.
-func (w *cameraWatch) keepEvidence(vc *vision.Camera, proc *processor) {
+func (w *cameraWatch) keepEvidence(vc *vision.Camera, proc *pipeline.Processor) {
 	for _, j := range w.pendingEvidence {
 		snap := filepath.Join(w.evidence.dir, j.base+".jpg")
 		if err := vc.SaveSnapshot(snap, annotation(w.cam, proc, j.caption)); err != nil {
@@ -124,7 +125,7 @@ func (w *cameraWatch) retain(paths ...string) {
 
 // answerSnapshot serves a pending request for the latest annotated frame.
 // Only the capture goroutine may touch the camera, so HTTP asks it here.
-func (w *cameraWatch) answerSnapshot(vc *vision.Camera, proc *processor) {
+func (w *cameraWatch) answerSnapshot(vc *vision.Camera, proc *pipeline.Processor) {
 	select {
 	case reply := <-w.snapReq:
 		caption := fmt.Sprintf("%s  %s", w.cam.ID, w.now().UTC().Format(time.RFC3339))

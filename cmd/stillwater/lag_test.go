@@ -15,6 +15,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/metrics"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision/refdata"
 )
 
@@ -23,11 +24,11 @@ import (
 type slowSink struct {
 	delay time.Duration
 	mu    sync.Mutex
-	msgs  []outMsg
-	seen  chan outMsg
+	msgs  []pipeline.Message
+	seen  chan pipeline.Message
 }
 
-func (s *slowSink) send(_ context.Context, m outMsg) error {
+func (s *slowSink) Send(_ context.Context, m pipeline.Message) error {
 	if m.Kind == alert.KindTarget {
 		time.Sleep(s.delay)
 	}
@@ -52,7 +53,7 @@ func TestSlowStepRaisesProcessingLag(t *testing.T) {
 	cfg := demoConfig(truth, clip, dir, true)
 	reg := prometheus.NewRegistry()
 	met := metrics.New(reg, "test")
-	sk := &slowSink{delay: 1200 * time.Millisecond, seen: make(chan outMsg, 64)}
+	sk := &slowSink{delay: 1200 * time.Millisecond, seen: make(chan pipeline.Message, 64)}
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
 	w := newCameraWatch(cfg.Cameras[0], sk, func(time.Time) bool { return true }, time.Now, log, met.Camera("demo"), 0, "test", evidenceSettings{})
 

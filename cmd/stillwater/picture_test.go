@@ -16,6 +16,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
@@ -26,11 +27,11 @@ import (
 func TestPictureFaultsOneCodePath(t *testing.T) {
 	ok := vision.HealthStats{Mean: 120, Spread: 30, HasPrev: true, Diff: 1, HasMotion: true, Motion: 1, Correlation: 0.9}
 	dark := vision.HealthStats{Mean: 2, Spread: 1, HasPrev: true, HasMotion: true, Correlation: 0.1}
-	p := newPictureFaults(vision.HealthConfig{})
+	p := pipeline.NewPictureFaults(vision.HealthConfig{})
 	var got []string
 	step := func(from, to time.Duration, s vision.HealthStats, armed bool) {
 		for at := from; at < to; at += 100 * time.Millisecond {
-			for _, c := range p.observe(at, s, armed) {
+			for _, c := range p.Observe(at, s, armed) {
 				got = append(got, fmt.Sprintf("%v %s %v", at, c.Kind, c.Active))
 			}
 		}

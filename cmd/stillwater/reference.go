@@ -18,6 +18,7 @@ import (
 	"time"
 
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision"
 )
 
@@ -260,8 +261,8 @@ func (w *cameraWatch) useReference(dc *vision.DetectorConfig) {
 }
 
 // keepReference refreshes the reference while the pool is armed and quiet.
-func (w *cameraWatch) keepReference(vc *vision.Camera, proc *processor, r vision.Result, armed bool) {
-	saved, err := w.refs.step(vc, r.Media, len(proc.tracks) > 0, armed, w.now())
+func (w *cameraWatch) keepReference(vc *vision.Camera, proc *pipeline.Processor, r vision.Result, armed bool) {
+	saved, err := w.refs.step(vc, r.Media, len(proc.Tracks) > 0, armed, w.now())
 	switch {
 	case err != nil:
 		w.log.Error("empty-pool reference not refreshed", "err", err)
@@ -278,7 +279,7 @@ func learnReference(ctx context.Context, cam config.CameraConfig, transport stri
 	if err != nil {
 		return vision.Reference{}, nil, err
 	}
-	dc, err := detectorConfig(cam, cal)
+	dc, err := pipeline.DetectorConfig(cam, cal)
 	if err != nil {
 		return vision.Reference{}, nil, err
 	}

@@ -13,6 +13,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -20,7 +21,7 @@ import (
 // countSink counts the messages a camera watch sends.
 type countSink struct{ n int }
 
-func (c *countSink) send(context.Context, outMsg) error { c.n++; return nil }
+func (c *countSink) Send(context.Context, pipeline.Message) error { c.n++; return nil }
 
 // TestReloadedDriftCheckerIsClosed watches a short clip with a
 // camera-moved reference frame and a reload queued before the first

@@ -15,10 +15,13 @@ import (
 	"log/slog"
 	"math"
 	"os"
+	"strconv"
+	"strings"
 	"time"
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -96,7 +99,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err := config.ValidateDetect("replay", cam.Detect); err != nil {
 		return fmt.Errorf("replay: %w", err)
 	}
-	var opts []func(*processor)
+	var opts []func(*pipeline.Processor)
 	if *labels != "" && (*verbose || *why != "") {
 		o, err := explainOption(*labels, *why, *verbose, stderr)
 		if err != nil {
@@ -211,7 +214,7 @@ type replaySink struct {
 	n      int
 }
 
-func (s *replaySink) write(m outMsg) error {
+func (s *replaySink) write(m pipeline.Message) error {
 	s.n++
 	return s.enc.Encode(replayLine{
 		Subject: alert.Subject(s.prefix, m.Camera, m.Kind),
@@ -225,14 +228,14 @@ func (s *replaySink) write(m outMsg) error {
 // checks, processor and step, always armed) over cam.Source and writes each
 // message to w: targets, clears, and picture faults raised and cleared. Wall-clock fields of the messages are taken from media time after
 // replayEpoch, so the output is reproducible.
-func replayClip(ctx context.Context, cam config.CameraConfig, prefix string, w io.Writer, log *slog.Logger, opts ...func(*processor)) (replayStats, error) {
+func replayClip(ctx context.Context, cam config.CameraConfig, prefix string, w io.Writer, log *slog.Logger, opts ...func(*pipeline.Processor)) (replayStats, error) {
 	var st replayStats
 	start := time.Now()
 	cal, err := config.NewCalibration(cam)
 	if err != nil {
 		return st, err
 	}
-	dc, err := detectorConfig(cam, cal)
+	dc, err := pipeline.DetectorConfig(cam, cal)
 	if err != nil {
 		return st, err
 	}
@@ -244,7 +247,7 @@ func replayClip(ctx context.Context, cam config.CameraConfig, prefix string, w i
 	epoch := replayEpoch()
 	var media time.Duration
 	now := func() time.Time { return epoch.Add(media) }
-	proc, err := newProcessor(cam, cal, vc.FPS(), epoch, now, log, nil)
+	proc, err := pipeline.New(cam, cal, vc.FPS(), epoch, now, log, nil)
 	if err != nil {
 		return st, err
 	}
@@ -253,7 +256,7 @@ func replayClip(ctx context.Context, cam config.CameraConfig, prefix string, w i
 	}
 	sink := &replaySink{prefix: prefix, enc: json.NewEncoder(w)}
 	sink.enc.SetEscapeHTML(false)
-	faults := newPictureFaults(vision.HealthConfig{})
+	faults := pipeline.NewPictureFaults(vision.HealthConfig{})
 	var hold []image.Rectangle
 	for {
 		if err := ctx.Err(); err != nil {
@@ -268,21 +271,21 @@ func replayClip(ctx context.Context, cam config.CameraConfig, prefix string, w i
 		}
 		media = r.Media
 		st.Frames, st.Media = r.Index+1, r.Media
-		for _, f := range faults.observe(r.Media, r.Health, true) {
+		for _, f := range faults.Observe(r.Media, r.Health, true) {
 			// One sequence for every kind, as the daemon numbers them.
-			proc.seq++
-			b, err := alert.Encode(alert.NewFault(cam.ID, proc.seq, epoch.Add(r.Media), f.Kind, f.Active, f.Detail))
+			proc.Seq++
+			b, err := alert.Encode(alert.NewFault(cam.ID, proc.Seq, epoch.Add(r.Media), f.Kind, f.Active, f.Detail))
 			if err != nil {
 				return st, fmt.Errorf("replay: encode fault: %w", err)
 			}
-			if err := sink.write(outMsg{Camera: cam.ID, Kind: alert.KindFault, Data: b, Frame: r.Index, Media: r.Media}); err != nil {
+			if err := sink.write(pipeline.Message{Camera: cam.ID, Kind: alert.KindFault, Data: b, Frame: r.Index, Media: r.Media}); err != nil {
 				return st, fmt.Errorf("replay: write output: %w", err)
 			}
 		}
 		if r.Rejoining {
 			continue // probed only, as in the daemon (see watch.go)
 		}
-		msgs, h := proc.step(r, true)
+		msgs, h := proc.Step(r, true)
 		hold = h
 		for _, m := range msgs {
 			if err := sink.write(m); err != nil {
@@ -319,4 +322,28 @@ func readReplay(r io.Reader, name string) ([]replayLine, error) {
 		return nil, fmt.Errorf("%s: %w", name, err)
 	}
 	return out, nil
+}
+
+// explainOption reads the labels and returns the replay option that
+// explains the frames listed in why ("120,121"), and with verbose every
+// unreported frame at most once a second, on w.
+func explainOption(labels, why string, verbose bool, w io.Writer) (func(*pipeline.Processor), error) {
+	t, err := readLabels(labels)
+	if err != nil {
+		return nil, err
+	}
+	var frames []int
+	for _, f := range strings.FieldsFunc(why, func(r rune) bool { return r == ',' || r == ' ' }) {
+		n, err := strconv.Atoi(f)
+		if err != nil || n < 0 {
+			return nil, fmt.Errorf("-why %q: %q is not a frame number", why, f)
+		}
+		frames = append(frames, n)
+	}
+	every := time.Duration(0)
+	if verbose {
+		every = time.Second
+	}
+	e := pipeline.NewExplainer(t, defaultScoreRules().FarM, w, every, frames)
+	return func(p *pipeline.Processor) { p.Explain = e.Frame }, nil
 }

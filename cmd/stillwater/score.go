@@ -17,6 +17,7 @@ import (
 	"time"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision/synth"
 )
 
@@ -79,7 +80,7 @@ func faultKindOf(label string) (string, error) {
 	case synth.FaultNoise:
 		return alert.FaultCameraNoise, nil
 	}
-	if isPictureFault(label) {
+	if pipeline.IsPictureFault(label) {
 		return label, nil
 	}
 	return "", fmt.Errorf("labelled fault %q: want black, frozen, noise or a picture fault kind", label)
@@ -206,7 +207,7 @@ func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules)
 			if err := json.Unmarshal(l.Msg, &f); err != nil {
 				return cs, fmt.Errorf("score %s: line %d: %w", name, n+1, err)
 			}
-			if !f.Active || !isPictureFault(f.Fault) {
+			if !f.Active || !pipeline.IsPictureFault(f.Fault) {
 				continue // a clear, or a fault the picture checks do not raise
 			}
 			if i := inFault(l.Media, f.Fault); i >= 0 {

@@ -22,6 +22,7 @@ import (
 	"stillwater/alert/bus"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/metrics"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/cmd/stillwater/internal/redact"
 )
 
@@ -345,20 +346,20 @@ type busSink struct {
 // redactSink hides secrets in messages before they leave, as the log
 // does: a fault's detail may quote an error that quotes a camera URL.
 type redactSink struct {
-	next sink
+	next pipeline.Sink
 	red  *redact.Redactor
 }
 
-func (r redactSink) send(ctx context.Context, m outMsg) error {
+func (r redactSink) Send(ctx context.Context, m pipeline.Message) error {
 	m.Data = r.red.Bytes(m.Data)
-	return r.next.send(ctx, m)
+	return r.next.Send(ctx, m)
 }
 
 var errDaemonStopped = errors.New("the daemon has stopped")
 
 func (b *busSink) stop() { b.closed.Store(true) }
 
-func (b *busSink) send(ctx context.Context, m outMsg) error {
+func (b *busSink) Send(ctx context.Context, m pipeline.Message) error {
 	if b.closed.Load() {
 		return errDaemonStopped
 	}

@@ -17,6 +17,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/metrics"
+	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/homography"
 	"stillwater/vision"
 	"stillwater/vision/remux"
@@ -28,7 +29,7 @@ import (
 // never holds up another.
 type cameraWatch struct {
 	cam       config.CameraConfig
-	out       sink
+	out       pipeline.Sink
 	armed     func(now time.Time) bool
 	now       func() time.Time
 	log       *slog.Logger
@@ -55,7 +56,7 @@ type cameraWatch struct {
 	refs            *referenceKeeper   // the empty-pool reference (reference.go)
 }
 
-func newCameraWatch(cam config.CameraConfig, out sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *metrics.Camera, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
+func newCameraWatch(cam config.CameraConfig, out pipeline.Sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *metrics.Camera, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
 	w := &cameraWatch{
 		cam: cam, out: out, armed: armed, now: now, log: log.With("camera", cam.ID), met: met,
 		heartbeat: heartbeat, version: version, epoch: now(), reload: make(chan config.CameraConfig, 1),
@@ -173,17 +174,17 @@ func (w *cameraWatch) sendFault(ctx context.Context, f alert.Fault) {
 		w.log.Error("cannot encode fault", "err", err)
 		return
 	}
-	w.send(ctx, outMsg{Camera: w.cam.ID, Kind: alert.KindFault, ID: alert.FaultID(f, w.epoch), Data: b})
+	w.send(ctx, pipeline.Message{Camera: w.cam.ID, Kind: alert.KindFault, ID: alert.FaultID(f, w.epoch), Data: b})
 }
 
 func (w *cameraWatch) beat(ctx context.Context, now time.Time, fps float64, up, armed bool) {
-	hb := alert.Heartbeat{V: alert.Version, Kind: alert.KindBeat, Camera: w.cam.ID, Time: now.UTC(), FPS: round3(fps), CameraOK: up && !w.faults.any(), Armed: armed, Version: w.version}
+	hb := alert.Heartbeat{V: alert.Version, Kind: alert.KindBeat, Camera: w.cam.ID, Time: now.UTC(), FPS: pipeline.Round3(fps), CameraOK: up && !w.faults.any(), Armed: armed, Version: w.version}
 	b, err := alert.Encode(hb)
 	if err != nil {
 		w.log.Error("cannot encode heartbeat", "err", err)
 		return
 	}
-	w.send(ctx, outMsg{Camera: w.cam.ID, Kind: alert.KindBeat, ID: w.msgID(w.seq.Add(1), "beat"), Data: b})
+	w.send(ctx, pipeline.Message{Camera: w.cam.ID, Kind: alert.KindBeat, ID: w.msgID(w.seq.Add(1), "beat"), Data: b})
 	w.met.Heartbeat(now)
 }
 
@@ -191,9 +192,9 @@ func (w *cameraWatch) msgID(seq uint64, what string) string {
 	return fmt.Sprintf("%s-%d-%d-%s", w.cam.ID, w.epoch.UnixNano(), seq, what)
 }
 
-func (w *cameraWatch) send(ctx context.Context, m outMsg) {
+func (w *cameraWatch) send(ctx context.Context, m pipeline.Message) {
 	t0 := time.Now()
-	if err := w.out.send(ctx, m); err != nil {
+	if err := w.out.Send(ctx, m); err != nil {
 		w.log.Error("publish failed", "kind", m.Kind, "err", err)
 		w.met.PublishError()
 		return
@@ -227,16 +228,16 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 	}
 	defer vc.Close()
 	bo.reset()
-	proc, err := newProcessor(w.cam, cal, vc.FPS(), w.epoch, w.now, w.log, w.met)
+	proc, err := pipeline.New(w.cam, cal, vc.FPS(), w.epoch, w.now, w.log, w.met)
 	if err != nil {
 		return err
 	}
-	drift, err := newDriftChecker(w.cam, proc.cal)
+	drift, err := pipeline.NewDriftChecker(w.cam, proc.Calibration)
 	if err != nil {
 		// The pool is still watched; only the camera-moved check is off.
 		w.log.Error("camera-moved check off", "err", err)
 	}
-	st := &captureState{proc: proc, drift: drift, health: newPictureFaults(vision.HealthConfig{})}
+	st := &captureState{proc: proc, drift: drift, health: pipeline.NewPictureFaults(vision.HealthConfig{})}
 	// A reload swaps st.drift (closing the one it replaces): close the
 	// one held at the end.
 	defer func() { st.drift.Close() }()
@@ -265,7 +266,7 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 			}
 			bo.reset()
 			w.log.Info("camera back", "size", info.Size, "model_kept", !info.Rebuilt)
-			if err := proc.cal.CheckFrame(info.Size); err != nil {
+			if err := proc.Calibration.CheckFrame(info.Size); err != nil {
 				w.raise(ctx, alert.FaultCalibrationDrift, true, err.Error())
 			}
 			break
@@ -281,7 +282,7 @@ func (w *cameraWatch) open() (*vision.Camera, *homography.Calibration, error) {
 	if err != nil {
 		return nil, nil, err
 	}
-	dc, err := detectorConfig(w.cam, cal)
+	dc, err := pipeline.DetectorConfig(w.cam, cal)
 	if err != nil {
 		return nil, nil, err
 	}
@@ -309,9 +310,9 @@ func (w *cameraWatch) open() (*vision.Camera, *homography.Calibration, error) {
 
 // captureState is what lives across reconnects of one camera.
 type captureState struct {
-	proc   *processor
-	drift  *driftChecker
-	health *pictureFaults
+	proc   *pipeline.Processor
+	drift  *pipeline.DriftChecker
+	health *pipeline.PictureFaults
 	stats  vision.CaptureStats
 	hold   []image.Rectangle
 }
@@ -320,8 +321,8 @@ type captureState struct {
 func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *captureState) error {
 	live := strings.Contains(w.cam.Source, "://")
 	proc := st.proc
-	proc.evidence = w.planEvidence
-	defer func() { proc.evidence = nil; w.pendingEvidence = w.pendingEvidence[:0] }()
+	proc.Evidence = w.planEvidence
+	defer func() { proc.Evidence = nil; w.pendingEvidence = w.pendingEvidence[:0] }()
 	for {
 		if ctx.Err() != nil {
 			return nil
@@ -358,7 +359,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			r.Media = captured.Sub(w.epoch)
 		}
 		armed := w.armed(w.now())
-		for _, f := range st.health.observe(r.Media, r.Health, armed) {
+		for _, f := range st.health.Observe(r.Media, r.Health, armed) {
 			w.raise(ctx, f.Kind, f.Active, f.Detail)
 		}
 		switch r.Rejoined {
@@ -373,7 +374,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 		// a picture that can be trusted.
 		if !r.Rejoining {
 			t1 := time.Now()
-			msgs, h := proc.step(r, armed)
+			msgs, h := proc.Step(r, armed)
 			st.hold = h
 			w.met.Stage("track", time.Since(t1))
 			w.keepReference(vc, proc, r, armed)
@@ -382,8 +383,8 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 			}
 			// Published first, then the evidence is queued.
 			w.keepEvidence(vc, proc)
-			if st.drift.due(r.Media) {
-				w.checkDrift(ctx, st.drift.check(r.Media, vc))
+			if st.drift.Due(r.Media) {
+				w.checkDrift(ctx, st.drift.Check(r.Media, vc))
 			}
 		}
 		w.met.Processed(time.Since(t0))
@@ -400,18 +401,18 @@ func (w *cameraWatch) countStats(vc *vision.Camera, st *captureState) {
 }
 
 // takeReload applies a pending reload between frames.
-func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
+func (w *cameraWatch) takeReload(proc *pipeline.Processor, st *captureState) {
 	select {
 	case c := <-w.reload:
 		c = config.DetectionCamera(c)
-		if err := proc.reload(c); err != nil {
+		if err := proc.Reload(c); err != nil {
 			w.log.Error("reload refused; keeping the running settings", "err", err)
 			return
 		}
 		// w.cam keeps the source settings (and is read by the watchdog
 		// and HTTP); the processor now holds the new calibration, zones
 		// and detection settings.
-		if d, err := newDriftChecker(c, proc.cal); err != nil {
+		if d, err := pipeline.NewDriftChecker(c, proc.Calibration); err != nil {
 			w.log.Error("reload: camera-moved check off", "err", err)
 		} else {
 			st.drift.Close()
@@ -423,7 +424,7 @@ func (w *cameraWatch) takeReload(proc *processor, st *captureState) {
 }
 
 // checkDrift raises or clears calibration_drift from one comparison.
-func (w *cameraWatch) checkDrift(ctx context.Context, st driftStatus) {
+func (w *cameraWatch) checkDrift(ctx context.Context, st pipeline.DriftStatus) {
 	var active bool
 	switch {
 	case st.Moved || st.Lost:
@@ -442,7 +443,7 @@ func (w *cameraWatch) checkDrift(ctx context.Context, st driftStatus) {
 	} else {
 		w.log.Warn("camera matches its calibration again", "shift_m", st.ShiftM)
 	}
-	w.sendFault(ctx, alert.NewDriftFault(w.cam.ID, w.seq.Add(1), w.now(), active, round3(st.ShiftM)))
+	w.sendFault(ctx, alert.NewDriftFault(w.cam.ID, w.seq.Add(1), w.now(), active, pipeline.Round3(st.ShiftM)))
 }
 
 func (w *cameraWatch) sourceConfig() vision.SourceConfig {

@@ -1,3 +1,6 @@
+// Package config decodes and validates the daemon's configuration file:
+// cameras and their calibration keys, detection settings, zones, the bus,
+// arming and HTTP. Every error names the key (and line) at fault.
 package config
 
 import (
@@ -271,6 +274,8 @@ func ParseConfig(b []byte) (Config, error) {
 	return ParseConfigEnv(b, os.LookupEnv)
 }
 
+// ParseConfigEnv is ParseConfig with env looking up the ${NAME}
+// references and *_env secrets.
 func ParseConfigEnv(b []byte, env func(string) (string, bool)) (Config, error) {
 	cfg := Defaults()
 	dec := yaml.NewDecoder(bytes.NewReader(b))

@@ -555,6 +555,7 @@ func OpenBus(ctx context.Context, cfg Config, ac arming.Config, now func() time.
 	return b, nil
 }
 
+// LogWarnings logs each warning of a secret's resolution.
 func LogWarnings(log *slog.Logger, warn []string) {
 	for _, w := range warn {
 		log.Warn(w)

@@ -424,6 +424,7 @@ type DetectOverrides struct {
 	MinScore  float64
 }
 
+// Register adds the override flags to fs.
 func (o *DetectOverrides) Register(fs *flag.FlagSet) {
 	fs.Float64Var(&o.Threshold, "threshold", 0, "background model `threshold` (0: the camera's)")
 	fs.Float64Var(&o.MinArea, "min-area", 0, "smallest blob in `m²` that may alarm (0: the camera's)")
@@ -446,6 +447,7 @@ func (o DetectOverrides) Validate() error {
 	return nil
 }
 
+// Apply returns d with the overrides that are set.
 func (o DetectOverrides) Apply(d DetectConfig) DetectConfig {
 	if o.Threshold > 0 {
 		d.Threshold = o.Threshold

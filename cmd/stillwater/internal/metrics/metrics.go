@@ -42,6 +42,8 @@ type Metrics struct {
 	build       *prometheus.GaugeVec
 }
 
+// New registers the daemon's collectors on reg; version labels
+// stillwater_build_info.
 func New(reg prometheus.Registerer, version string) *Metrics {
 	cam := []string{"camera"}
 	counter := func(name, help string, labels ...string) *prometheus.CounterVec {

@@ -1,4 +1,4 @@
-package main
+package pipeline
 
 import (
 	"fmt"
@@ -11,9 +11,9 @@ import (
 	"stillwater/vision"
 )
 
-// calMask returns the water's outline in recorded pixels, for the
+// WaterMask returns the water's outline in recorded pixels, for the
 // detector.
-func calMask(c *homography.Calibration) []vision.Point {
+func WaterMask(c *homography.Calibration) []vision.Point {
 	m := c.Mask()
 	out := make([]vision.Point, len(m))
 	for i, p := range m {
@@ -22,9 +22,9 @@ func calMask(c *homography.Calibration) []vision.Point {
 	return out
 }
 
-// calFloor returns where a target seen at surface point s (pool metres)
+// FloorPosition returns where a target seen at surface point s (pool metres)
 // lies on the floor, refraction included, as the alarm reports it.
-func calFloor(c *homography.Calibration, s homography.Point) alert.FloorPosition {
+func FloorPosition(c *homography.Calibration, s homography.Point) alert.FloorPosition {
 	f, d := c.Floor(s)
 	return alert.FloorPosition{X: f.X, Y: f.Y, Depth: d}
 }
@@ -34,10 +34,10 @@ func calFloor(c *homography.Calibration, s homography.Point) alert.FloorPosition
 // failure alone is common at dusk and with a person filling the deck.
 const driftLostAfter = 3
 
-// driftChecker compares a camera's live frames with its calibration
+// DriftChecker compares a camera's live frames with its calibration
 // reference frame every few seconds of media time. Not safe for
 // concurrent use; Close frees it.
-type driftChecker struct {
+type DriftChecker struct {
 	ref    *vision.Drift
 	cal    *homography.Calibration
 	every  time.Duration
@@ -46,13 +46,13 @@ type driftChecker struct {
 	failed int
 }
 
-// driftStatus is one comparison's outcome. Moved is set when the pool's
+// DriftStatus is one comparison's outcome. Moved is set when the pool's
 // corners moved more than the configured drift.max_shift_m (ShiftM,
 // metres on the water surface). Lost is set when the shift cannot be
 // measured: the live frame has not registered to the reference
 // driftLostAfter times in a row, or a corner moved off the pool plane
 // (then Moved is set too); ShiftM is 0 then.
-type driftStatus struct {
+type DriftStatus struct {
 	ShiftM  float64
 	Moved   bool
 	Lost    bool
@@ -60,9 +60,9 @@ type driftStatus struct {
 	Err     error // the last registration error, when it failed
 }
 
-// newDriftChecker loads the camera's reference frame. It returns nil and
+// NewDriftChecker loads the camera's reference frame. It returns nil and
 // no error when the calibration names no reference frame.
-func newDriftChecker(cam config.CameraConfig, cal *homography.Calibration) (*driftChecker, error) {
+func NewDriftChecker(cam config.CameraConfig, cal *homography.Calibration) (*DriftChecker, error) {
 	if cam.ReferenceFrame == "" {
 		return nil, nil
 	}
@@ -73,25 +73,25 @@ func newDriftChecker(cam config.CameraConfig, cal *homography.Calibration) (*dri
 	if err := cal.CheckFrame(img.Bounds().Size()); err != nil {
 		return nil, fmt.Errorf("camera %s: reference_frame %s: %w", cam.ID, cam.ReferenceFrame, err)
 	}
-	ref, err := vision.NewDrift(img, vision.DriftConfig{Water: calMask(cal)})
+	ref, err := vision.NewDrift(img, vision.DriftConfig{Water: WaterMask(cal)})
 	if err != nil {
 		return nil, fmt.Errorf("camera %s: reference_frame %s: %w", cam.ID, cam.ReferenceFrame, err)
 	}
 	d := cam.Drift.WithDefaults()
-	return &driftChecker{ref: ref, cal: cal, every: time.Duration(d.Every), max: d.MaxShift}, nil
+	return &DriftChecker{ref: ref, cal: cal, every: time.Duration(d.Every), max: d.MaxShift}, nil
 }
 
-// due reports whether a check is due at media time t.
-func (k *driftChecker) due(t time.Duration) bool { return k != nil && t >= k.next }
+// Due reports whether a check is due at media time t.
+func (k *DriftChecker) Due(t time.Duration) bool { return k != nil && t >= k.next }
 
-// check registers the camera's latest frame (media time t) to the
+// Check registers the camera's latest frame (media time t) to the
 // reference and schedules the next check.
-func (k *driftChecker) check(t time.Duration, vc *vision.Camera) driftStatus {
+func (k *DriftChecker) Check(t time.Duration, vc *vision.Camera) DriftStatus {
 	k.next = t + k.every
 	r, err := vc.CheckDrift(k.ref)
 	if err != nil {
 		k.failed++
-		return driftStatus{Lost: k.failed >= driftLostAfter, Err: err}
+		return DriftStatus{Lost: k.failed >= driftLostAfter, Err: err}
 	}
 	k.failed = 0
 	shift, ok := k.cal.DriftShift(func(p homography.Point) (homography.Point, bool) {
@@ -100,13 +100,13 @@ func (k *driftChecker) check(t time.Duration, vc *vision.Camera) driftStatus {
 	})
 	if !ok {
 		// A corner moved off the pool plane: moved, by an unknown amount.
-		return driftStatus{Moved: true, Lost: true, Inliers: r.Inliers}
+		return DriftStatus{Moved: true, Lost: true, Inliers: r.Inliers}
 	}
-	return driftStatus{ShiftM: shift, Moved: shift > k.max, Inliers: r.Inliers}
+	return DriftStatus{ShiftM: shift, Moved: shift > k.max, Inliers: r.Inliers}
 }
 
 // Close frees the reference features. Safe on a nil checker.
-func (k *driftChecker) Close() error {
+func (k *DriftChecker) Close() error {
 	if k == nil {
 		return nil
 	}
@@ -154,9 +154,9 @@ func rectification(c *homography.Calibration, cell, deck float64) (*vision.Recti
 	}, nil
 }
 
-// calArea returns the area of a contour in recorded pixels on the water
+// ContourArea returns the area of a contour in recorded pixels on the water
 // surface, m².
-func calArea(c *homography.Calibration, contour []vision.Point) float64 {
+func ContourArea(c *homography.Calibration, contour []vision.Point) float64 {
 	poly := make([]homography.Point, len(contour))
 	for i, p := range contour {
 		poly[i] = homography.Point(p)
@@ -164,16 +164,16 @@ func calArea(c *homography.Calibration, contour []vision.Point) float64 {
 	return c.Area(poly)
 }
 
-// detectorConfig is the vision stage's setup for a camera: the detect
+// DetectorConfig is the vision stage's setup for a camera: the detect
 // section, the pool outline as the watched mask and the pool-plane
 // footprint of a pixel, so that clean-up is scale-aware. The daemon and
 // replay both use it so that they see the same blobs.
-func detectorConfig(cam config.CameraConfig, cal *homography.Calibration) (vision.DetectorConfig, error) {
+func DetectorConfig(cam config.CameraConfig, cal *homography.Calibration) (vision.DetectorConfig, error) {
 	d := cam.Detect
 	if d.Method != "meanvar" {
 		return vision.DetectorConfig{
 			ProcessWidth: d.ProcessWidth, Method: d.Method, History: d.History,
-			Threshold: d.Threshold, LearningRate: -1, MinPixels: 6, Mask: calMask(cal),
+			Threshold: d.Threshold, LearningRate: -1, MinPixels: 6, Mask: WaterMask(cal),
 			MinArea: d.MinArea, PixelArea: func(p vision.Point) float64 { return cal.PixelArea(homography.Point(p)) },
 		}, nil
 	}
@@ -188,5 +188,5 @@ func detectorConfig(cam config.CameraConfig, cal *homography.Calibration) (visio
 	mv.Smooth = d.Smooth
 	// The mask is not searched by meanvar (its grid is the pool and its
 	// deck), but the picture checks watch it (see vision.Camera.health).
-	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv, Mask: calMask(cal)}, nil
+	return vision.DetectorConfig{Method: "meanvar", Grid: grid, MeanVar: mv, Mask: WaterMask(cal)}, nil
 }

@@ -1,4 +1,4 @@
-package main
+package pipeline
 
 import (
 	"bytes"
@@ -109,20 +109,20 @@ func TestZoneStep(t *testing.T) {
 				log := slog.New(slog.NewTextHandler(&logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
 				cal, err := config.NewCalibration(cam)
 				require.NoError(t, err)
-				p, err := newProcessor(cam, cal, 10, time.Time{}, time.Now, log, nil)
+				p, err := New(cam, cal, 10, time.Time{}, time.Now, log, nil)
 				require.NoError(t, err)
-				var msgs []outMsg
+				var msgs []Message
 				for i := 0; i < 20; i++ {
-					out, _ := p.step(vision.Result{Index: i, Media: time.Duration(i) * 100 * time.Millisecond, Blobs: []vision.Blob{blob(method, tt.x, tt.y)}}, true)
+					out, _ := p.Step(vision.Result{Index: i, Media: time.Duration(i) * 100 * time.Millisecond, Blobs: []vision.Blob{blob(method, tt.x, tt.y)}}, true)
 					msgs = append(msgs, out...)
 				}
 				if !tt.wantTracks {
-					assert.Empty(t, p.tracks)
+					assert.Empty(t, p.Tracks)
 					assert.Empty(t, msgs)
 					assert.Contains(t, logs.String(), tt.wantLog)
 					return
 				}
-				require.Len(t, p.tracks, 1)
+				require.Len(t, p.Tracks, 1)
 				assert.NotEmpty(t, msgs, "a blob seen for 2 s in open water alarms")
 			})
 		}

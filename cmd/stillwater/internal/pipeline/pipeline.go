@@ -1,4 +1,9 @@
-package main
+// Package pipeline is the per-frame path of one camera after the
+// detector: blobs in pixels go through the calibration to pool metres,
+// zones, the tracker and the judge, and the alarm decides what becomes a
+// message. It also holds the camera-moved check, the picture-fault
+// checks and the replay explainer.
+package pipeline
 
 import (
 	"context"
@@ -15,8 +20,8 @@ import (
 	"stillwater/vision"
 )
 
-// outMsg is one message on its way to the bus (or a replay file).
-type outMsg struct {
+// Message is one message on its way to the bus (or a replay file).
+type Message struct {
 	Camera string
 	Kind   string
 	ID     string // de-duplication id, stable across retries
@@ -25,22 +30,22 @@ type outMsg struct {
 	Media  time.Duration
 }
 
-// sink receives the pipeline's messages.
-type sink interface {
-	send(ctx context.Context, m outMsg) error
+// Sink receives the pipeline's messages.
+type Sink interface {
+	Send(ctx context.Context, m Message) error
 }
 
-// processor is the per-camera decision chain after the vision stage: pixels
+// Processor is the per-camera decision chain after the vision stage: pixels
 // to pool metres, physical-size gating, tracking and alarm logic. It is the
 // same for the daemon and for replays.
-type processor struct {
-	cam    config.CameraConfig
-	cal    *homography.Calibration // frame pixels → pool metres: lens, homography, refraction
-	zones  zoneSet                 // exclusion polygons
-	tracks []vision.Track
-	// evidence, when set, keeps the evidence of an alarm starting at this
+type Processor struct {
+	cam         config.CameraConfig
+	Calibration *homography.Calibration // frame pixels → pool metres: lens, homography, refraction
+	zones       zoneSet                 // exclusion polygons
+	Tracks      []vision.Track
+	// Evidence, when set, keeps the evidence of an alarm starting at this
 	// frame and returns its reference for the target message.
-	evidence func(r vision.Result, o alert.Observation) string
+	Evidence func(r vision.Result, o alert.Observation) string
 	tracker  *vision.Tracker
 	judge    *judge // which tracks of the rectified detector may alarm
 	alarm    *alert.Alarm
@@ -48,40 +53,40 @@ type processor struct {
 	// notes say what became of this frame's candidates, for explaining a
 	// decision (explain.go); explain, when set, is called after each step.
 	notes   []candidateNote
-	explain func(p *processor, r vision.Result)
+	Explain func(p *Processor, r vision.Result)
 	log     *slog.Logger
-	seq     uint64
+	Seq     uint64
 	epoch   time.Time // wall time of media time 0
 	now     func() time.Time
 	metrics *metrics.Camera
 }
 
-// newProcessor returns the pipeline of one camera; cal is the camera's
+// New returns the pipeline of one camera; cal is the camera's
 // calibration, built once by the caller.
-func newProcessor(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *metrics.Camera) (*processor, error) {
+func New(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *metrics.Camera) (*Processor, error) {
 	zones, err := newZoneSet(cam, cal)
 	if err != nil {
 		return nil, err
 	}
 	d := cam.Detect
-	return &processor{
-		cam:     cam,
-		cal:     cal,
-		zones:   zones,
-		tracker: vision.NewTracker(vision.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
-		alarm:   alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio, MaxSpeed: alert.DefaultAlarm().MaxSpeed}, fps),
-		judge:   newJudge(time.Duration(d.Persist), judgeRulesOf(d), log),
-		alarmed: map[int]bool{},
-		log:     log,
-		epoch:   epoch,
-		now:     now,
-		metrics: m,
+	return &Processor{
+		cam:         cam,
+		Calibration: cal,
+		zones:       zones,
+		tracker:     vision.NewTracker(vision.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
+		alarm:       alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio, MaxSpeed: alert.DefaultAlarm().MaxSpeed}, fps),
+		judge:       newJudge(time.Duration(d.Persist), judgeRulesOf(d), log),
+		alarmed:     map[int]bool{},
+		log:         log,
+		epoch:       epoch,
+		now:         now,
+		metrics:     m,
 	}, nil
 }
 
-// step turns one frame's blobs into messages and returns the boxes to hold
+// Step turns one frame's blobs into messages and returns the boxes to hold
 // out of background learning on the next frame.
-func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectangle) {
+func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectangle) {
 	d := p.cam.Detect
 	var dets []vision.Detection
 	p.notes = p.notes[:0]
@@ -92,7 +97,7 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 			}
 			continue
 		}
-		c, ok := p.cal.Surface(homography.Point(b.Centroid))
+		c, ok := p.Calibration.Surface(homography.Point(b.Centroid))
 		if !ok {
 			p.log.Debug("blob rejected: beyond the pool plane", "frame", r.Index, "px", b.Centroid)
 			p.metrics.Rejected("outside")
@@ -103,8 +108,8 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 			p.metrics.Rejected("zone")
 			continue
 		}
-		area := calArea(p.cal, b.Contour)
-		inside := p.cal.Inside(c)
+		area := ContourArea(p.Calibration, b.Contour)
+		inside := p.Calibration.Inside(c)
 		switch {
 		case !inside:
 			p.log.Debug("blob rejected: centre outside the pool", "frame", r.Index, "x_m", c.X, "y_m", c.Y)
@@ -122,7 +127,7 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 		dets = append(dets, vision.Detection{X: c.X, Y: c.Y, Area: area, Box: b.Box, Hold: b.Box.Inset(-4)})
 	}
 	tracks := p.tracker.Update(r.Media, dets)
-	p.tracks = tracks
+	p.Tracks = tracks
 	p.judge.observe(r.Media, tracks, deckBodies(p.notes, p.judge.rules.DeckMinArea))
 	obs := make([]alert.Observation, 0, len(tracks))
 	var hold []image.Rectangle
@@ -141,7 +146,7 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 		hold = append(hold, t.Hold)
 	}
 	p.metrics.Tracks(len(tracks))
-	var out []outMsg
+	var out []Message
 	for _, dec := range p.alarm.Step(r.Media, obs, armed) {
 		switch {
 		case dec.Kind == alert.KindTarget && dec.Event == "start":
@@ -157,14 +162,14 @@ func (p *processor) step(r vision.Result, armed bool) ([]outMsg, []image.Rectang
 		out = append(out, m)
 	}
 	p.noteTracks()
-	if p.explain != nil {
-		p.explain(p, r)
+	if p.Explain != nil {
+		p.Explain(p, r)
 	}
 	return out, hold
 }
 
-func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error) {
-	p.seq++
+func (p *Processor) message(r vision.Result, dec alert.Decision) (Message, error) {
+	p.Seq++
 	frameTime := p.epoch.Add(r.Media).UTC()
 	now := p.now().UTC()
 	o := dec.Obs
@@ -175,45 +180,45 @@ func (p *processor) message(r vision.Result, dec alert.Decision) (outMsg, error)
 		if dec.Event == "start" {
 			p.judge.raised(o.Track)
 			f, n, speed := p.judge.summary(o.Track)
-			p.log.Debug("track raised an alarm", append([]any{"track", o.Track, "dwell", dec.Dwell, "x_m", round3(o.X), "y_m", round3(o.Y),
-				"hits", o.Hits, "speed_mps", round3(speed), "candidates", n}, featureArgs(f)...)...)
+			p.log.Debug("track raised an alarm", append([]any{"track", o.Track, "dwell", dec.Dwell, "x_m", Round3(o.X), "y_m", Round3(o.Y),
+				"hits", o.Hits, "speed_mps", Round3(speed), "candidates", n}, featureArgs(f)...)...)
 			p.metrics.Alarm()
-			if p.evidence != nil {
-				ref = p.evidence(r, o)
+			if p.Evidence != nil {
+				ref = p.Evidence(r, o)
 			}
 		}
 		v = alert.Target{
-			V: alert.Version, Kind: alert.KindTarget, Camera: p.cam.ID, Track: o.Track, Seq: p.seq, Event: dec.Event,
+			V: alert.Version, Kind: alert.KindTarget, Camera: p.cam.ID, Track: o.Track, Seq: p.Seq, Event: dec.Event,
 			Time: now, FrameTime: frameTime, Frame: r.Index,
-			Surface:    alert.Position{X: round3(o.X), Y: round3(o.Y)},
-			Floor:      floorOf(calFloor(p.cal, homography.Point{X: o.X, Y: o.Y})),
+			Surface:    alert.Position{X: Round3(o.X), Y: Round3(o.Y)},
+			Floor:      floorOf(FloorPosition(p.Calibration, homography.Point{X: o.X, Y: o.Y})),
 			Area:       round4(o.Area),
-			Velocity:   alert.Velocity{X: round3(o.VX), Y: round3(o.VY)},
-			Dwell:      round3(dec.Dwell.Seconds()),
+			Velocity:   alert.Velocity{X: Round3(o.VX), Y: Round3(o.VY)},
+			Dwell:      Round3(dec.Dwell.Seconds()),
 			Confidence: dec.Confidence,
 			Evidence:   ref,
 		}
 	case alert.KindCleared:
 		v = alert.Cleared{
-			V: alert.Version, Kind: alert.KindCleared, Camera: p.cam.ID, Track: o.Track, Seq: p.seq,
+			V: alert.Version, Kind: alert.KindCleared, Camera: p.cam.ID, Track: o.Track, Seq: p.Seq,
 			Time: now, FrameTime: frameTime, Frame: r.Index,
-			Last: alert.Position{X: round3(o.X), Y: round3(o.Y)}, Duration: round3(dec.Dwell.Seconds()),
+			Last: alert.Position{X: Round3(o.X), Y: Round3(o.Y)}, Duration: Round3(dec.Dwell.Seconds()),
 		}
 	default:
-		return outMsg{}, fmt.Errorf("unknown decision kind %q", dec.Kind)
+		return Message{}, fmt.Errorf("unknown decision kind %q", dec.Kind)
 	}
 	b, err := alert.Encode(v)
 	if err != nil {
-		return outMsg{}, err
+		return Message{}, err
 	}
-	id := fmt.Sprintf("%s-%d-%d-%s", p.cam.ID, p.epoch.UnixNano(), p.seq, dec.Kind)
-	return outMsg{Camera: p.cam.ID, Kind: dec.Kind, ID: id, Data: b, Frame: r.Index, Media: r.Media}, nil
+	id := fmt.Sprintf("%s-%d-%d-%s", p.cam.ID, p.epoch.UnixNano(), p.Seq, dec.Kind)
+	return Message{Camera: p.cam.ID, Kind: dec.Kind, ID: id, Data: b, Frame: r.Index, Media: r.Media}, nil
 }
 
-// reload swaps in a camera's new calibration, zones and detection
+// Reload swaps in a camera's new calibration, zones and detection
 // thresholds between frames, keeping tracks and alarms. The background
 // model is not touched: the source and its size stay the same.
-func (p *processor) reload(cam config.CameraConfig) error {
+func (p *Processor) Reload(cam config.CameraConfig) error {
 	cal, err := config.NewCalibration(cam)
 	if err != nil {
 		return err
@@ -222,27 +227,28 @@ func (p *processor) reload(cam config.CameraConfig) error {
 	if err != nil {
 		return err
 	}
-	p.cam, p.cal, p.zones = cam, cal, zones
+	p.cam, p.Calibration, p.zones = cam, cal, zones
 	return nil
 }
 
 func floorOf(f alert.FloorPosition) alert.FloorPosition {
-	return alert.FloorPosition{X: round3(f.X), Y: round3(f.Y), Depth: round3(f.Depth)}
+	return alert.FloorPosition{X: Round3(f.X), Y: Round3(f.Y), Depth: Round3(f.Depth)}
 }
 
-func round3(v float64) float64 { return math.Round(v*1000) / 1000 }
+// Round3 rounds v to three decimals: millimetres for pool metres.
+func Round3(v float64) float64 { return math.Round(v*1000) / 1000 }
 func round4(v float64) float64 { return math.Round(v*10000) / 10000 }
 
 // gate judges a candidate of the rectified detector, already in pool
 // metres on the water surface, and returns it as a detection for the
 // tracker; false, with the reason logged and counted, when it cannot be a
 // person in the water.
-func (p *processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool) {
+func (p *Processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool) {
 	d := p.cam.Detect
 	f := b.Features
 	c := homography.Point{X: b.Plane.X, Y: b.Plane.Y}
 	reject := func(reason, why string, args ...any) (vision.Detection, bool) {
-		p.log.Debug("candidate rejected: "+why, append([]any{"frame", r.Index, "x_m", round3(c.X), "y_m", round3(c.Y)}, append(args, featureArgs(f)...)...)...)
+		p.log.Debug("candidate rejected: "+why, append([]any{"frame", r.Index, "x_m", Round3(c.X), "y_m", Round3(c.Y)}, append(args, featureArgs(f)...)...)...)
 		p.metrics.Rejected(reason)
 		p.notes = append(p.notes, candidateNote{At: c, Features: f, Rejected: why, Outside: reason == "outside"})
 		return vision.Detection{}, false
@@ -251,7 +257,7 @@ func (p *processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool
 		return reject("zone", "in exclusion zone", "zone", name)
 	}
 	switch {
-	case !p.cal.Inside(c):
+	case !p.Calibration.Inside(c):
 		return reject("outside", "centre outside the pool")
 	case f.Area < d.MinArea*candidateShare:
 		return reject("small", fmt.Sprintf("far smaller than a child's body (%.3f m² < %.3f m²)", f.Area, d.MinArea*candidateShare))
@@ -270,6 +276,6 @@ const candidateShare = 0.35
 
 // featureArgs are a candidate's features as log attributes.
 func featureArgs(f vision.Features) []any {
-	return []any{"area_m2", round4(f.Area), "core_m2", round4(f.Core), "score", round3(f.Score), "peak", round3(f.Peak),
-		"half_m2", round4(f.Half), "contrast", round3(f.Contrast), "bright", round3(f.Bright), "chroma", round3(f.Chroma), "chroma_top", round3(f.ChromaTop), "water_chroma", round3(f.Water), "tint", round3(f.Tint), "wet", round3(f.Wet), "length_m", round3(f.Length), "width_m", round3(f.Width), "edge_m", round3(f.Edge)}
+	return []any{"area_m2", round4(f.Area), "core_m2", round4(f.Core), "score", Round3(f.Score), "peak", Round3(f.Peak),
+		"half_m2", round4(f.Half), "contrast", Round3(f.Contrast), "bright", Round3(f.Bright), "chroma", Round3(f.Chroma), "chroma_top", Round3(f.ChromaTop), "water_chroma", Round3(f.Water), "tint", Round3(f.Tint), "wet", Round3(f.Wet), "length_m", Round3(f.Length), "width_m", Round3(f.Width), "edge_m", Round3(f.Edge)}
 }

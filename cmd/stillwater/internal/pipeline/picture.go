@@ -1,4 +1,4 @@
-package main
+package pipeline
 
 import (
 	"fmt"
@@ -25,8 +25,8 @@ func faultOf(c vision.Condition) string {
 	return ""
 }
 
-// isPictureFault reports whether kind is one of pictureFaultKinds.
-func isPictureFault(kind string) bool {
+// IsPictureFault reports whether kind is one of pictureFaultKinds.
+func IsPictureFault(kind string) bool {
 	for _, k := range pictureFaultKinds {
 		if k == kind {
 			return true
@@ -42,23 +42,24 @@ type faultChange struct {
 	Detail string
 }
 
-// pictureFaults turns each frame's picture statistics into camera_blinded,
+// PictureFaults turns each frame's picture statistics into camera_blinded,
 // camera_frozen and camera_noise raises and clears. The daemon and replay
 // both run their frames through it, so a replay shows the faults the
 // daemon would send. Not safe for concurrent use.
-type pictureFaults struct {
+type PictureFaults struct {
 	mon    *vision.HealthMonitor
 	active map[string]bool
 }
 
-func newPictureFaults(cfg vision.HealthConfig) *pictureFaults {
-	return &pictureFaults{mon: vision.NewHealthMonitor(cfg), active: map[string]bool{}}
+// NewPictureFaults returns the picture checks of one camera.
+func NewPictureFaults(cfg vision.HealthConfig) *PictureFaults {
+	return &PictureFaults{mon: vision.NewHealthMonitor(cfg), active: map[string]bool{}}
 }
 
-// observe feeds one frame at media time media and returns the faults whose
+// Observe feeds one frame at media time media and returns the faults whose
 // state changes. A fault is raised only while armed; a condition that ends
 // clears its fault whether armed or not.
-func (p *pictureFaults) observe(media time.Duration, s vision.HealthStats, armed bool) []faultChange {
+func (p *PictureFaults) Observe(media time.Duration, s vision.HealthStats, armed bool) []faultChange {
 	rep := p.mon.Observe(media, s)
 	want := faultOf(rep.Condition)
 	var out []faultChange

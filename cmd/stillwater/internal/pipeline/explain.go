@@ -1,10 +1,9 @@
-package main
+package pipeline
 
 import (
 	"fmt"
 	"io"
 	"math"
-	"strconv"
 	"strings"
 	"time"
 
@@ -26,14 +25,14 @@ type candidateNote struct {
 
 // noteTracks links this frame's accepted candidates to the tracks that
 // took them: the nearest track seen in this frame.
-func (p *processor) noteTracks() {
+func (p *Processor) noteTracks() {
 	for i := range p.notes {
 		n := &p.notes[i]
 		if n.Rejected != "" {
 			continue
 		}
 		best := math.Inf(1)
-		for _, t := range p.tracks {
+		for _, t := range p.Tracks {
 			if d := math.Hypot(t.X-n.At.X, t.Y-n.At.Y); d < best && t.Last == p.tracker.Now() {
 				best, n.Track = d, t.ID
 			}
@@ -54,16 +53,18 @@ type explainer struct {
 	had   bool
 }
 
-func newExplainer(t synth.Truth, w io.Writer, every time.Duration, frames []int) *explainer {
-	e := &explainer{truth: t, w: w, far: defaultScoreRules().FarM, every: every, asked: map[int]bool{}}
+// NewExplainer explains frames of a clip labelled t on w; far is the
+// distance, pool metres, beyond which a track is not the intruder's.
+func NewExplainer(t synth.Truth, far float64, w io.Writer, every time.Duration, frames []int) *explainer {
+	e := &explainer{truth: t, w: w, far: far, every: every, asked: map[int]bool{}}
 	for _, f := range frames {
 		e.asked[f] = true
 	}
 	return e
 }
 
-// frame explains frame r after the processor's step.
-func (e *explainer) frame(p *processor, r vision.Result) {
+// Frame explains frame r after the processor's step.
+func (e *explainer) Frame(p *Processor, r vision.Result) {
 	var occ *synth.Occupation
 	if r.Index < len(e.truth.PerFrame) && e.truth.PerFrame[r.Index].Frame == r.Index {
 		occ = e.truth.PerFrame[r.Index].Intruder
@@ -96,10 +97,10 @@ func (e *explainer) frame(p *processor, r vision.Result) {
 
 // why returns the explanation of one frame and whether the intruder was
 // reported in it.
-func (e *explainer) why(p *processor, r vision.Result, occ *synth.Occupation, present bool) (string, bool) {
+func (e *explainer) why(p *Processor, r vision.Result, occ *synth.Occupation, present bool) (string, bool) {
 	head := fmt.Sprintf("frame %d (%.2f s):", r.Index, r.Media.Seconds())
 	if occ == nil {
-		return head + fmt.Sprintf(" no labelled intruder; %d candidates, %d tracks, %d in alarm", len(p.notes), len(p.tracks), len(p.alarmed)), false
+		return head + fmt.Sprintf(" no labelled intruder; %d candidates, %d tracks, %d in alarm", len(p.notes), len(p.Tracks), len(p.alarmed)), false
 	}
 	head += fmt.Sprintf(" intruder at (%.2f, %.2f) m", occ.X, occ.Y)
 	if !present {
@@ -107,7 +108,7 @@ func (e *explainer) why(p *processor, r vision.Result, occ *synth.Occupation, pr
 	}
 	at := homography.Point{X: occ.X, Y: occ.Y}
 	// An alarm on a track near the intruder: reported.
-	for _, t := range p.tracks {
+	for _, t := range p.Tracks {
 		if p.alarmed[t.ID] && math.Hypot(t.X-at.X, t.Y-at.Y) <= e.far {
 			return head + fmt.Sprintf(" reported by track %d at (%.2f, %.2f) m, %.2f m away", t.ID, t.X, t.Y, math.Hypot(t.X-at.X, t.Y-at.Y)), true
 		}
@@ -127,9 +128,9 @@ func (e *explainer) why(p *processor, r vision.Result, occ *synth.Occupation, pr
 	// The nearest track, then the nearest candidate.
 	var near *vision.Track
 	best := math.Inf(1)
-	for i, t := range p.tracks {
+	for i, t := range p.Tracks {
 		if d := math.Hypot(t.X-at.X, t.Y-at.Y); d < best {
-			best, near = d, &p.tracks[i]
+			best, near = d, &p.Tracks[i]
 		}
 	}
 	if near != nil && best <= e.far {
@@ -183,34 +184,10 @@ func featureText(f vision.Features, n int) string {
 	return b.String()
 }
 
-// explainOption reads the labels and returns the replay option that
-// explains the frames listed in why ("120,121"), and with verbose every
-// unreported frame at most once a second, on w.
-func explainOption(labels, why string, verbose bool, w io.Writer) (func(*processor), error) {
-	t, err := readLabels(labels)
-	if err != nil {
-		return nil, err
-	}
-	var frames []int
-	for _, f := range strings.FieldsFunc(why, func(r rune) bool { return r == ',' || r == ' ' }) {
-		n, err := strconv.Atoi(f)
-		if err != nil || n < 0 {
-			return nil, fmt.Errorf("-why %q: %q is not a frame number", why, f)
-		}
-		frames = append(frames, n)
-	}
-	every := time.Duration(0)
-	if verbose {
-		every = time.Second
-	}
-	e := newExplainer(t, w, every, frames)
-	return func(p *processor) { p.explain = e.frame }, nil
-}
-
-// why is the short reason a track of the rectified detector is (or may
+// Why is the short reason a track of the rectified detector is (or may
 // become) an alarm, for the evidence snapshot's label: the medians its
 // alarm was judged on. Empty for the mixture-model detectors.
-func (p *processor) why(id int) string {
+func (p *Processor) Why(id int) string {
 	f, n, speed := p.judge.summary(id)
 	if n == 0 || p.cam.Detect.Method != "meanvar" {
 		return ""

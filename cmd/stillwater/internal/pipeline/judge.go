@@ -1,4 +1,4 @@
-package main
+package pipeline
 
 import (
 	"fmt"
@@ -230,7 +230,7 @@ func (j *judge) eligible(id int) (bool, string) {
 		}
 	}
 	if why != h.verdict && j.log != nil {
-		args := append([]any{"track", id, "speed_mps", round3(speed)}, featureArgs(f)...)
+		args := append([]any{"track", id, "speed_mps", Round3(speed)}, featureArgs(f)...)
 		if why == "" {
 			j.log.Debug("track eligible to alarm", args...)
 		} else {
