@@ -22,6 +22,7 @@ import (
 	"gopkg.in/yaml.v3"
 
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/homography"
 	"stillwater/vision"
 )
@@ -304,14 +305,14 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 	}
 	if f.dataDir != "" {
 		cam := config.CameraConfig{ID: f.id, Source: f.frame, CalibrationConfig: cfg, Detect: config.DefaultDetect()}
-		ref, grid, err := learnReference(ctx, cam, f.transport, f.timeout, f.learn)
+		ref, grid, err := watch.LearnReference(ctx, cam, f.transport, f.timeout, f.learn)
 		if err != nil {
 			return fmt.Errorf("calibrate: empty-pool reference: %w", err)
 		}
-		if err := saveReference(f.dataDir, f.id, grid, ref, time.Now(), "saved by stillwater calibrate"); err != nil {
+		if err := watch.SaveReference(f.dataDir, f.id, grid, ref, time.Now(), "saved by stillwater calibrate"); err != nil {
 			return fmt.Errorf("calibrate: %w", err)
 		}
-		mean, _, _ := referencePaths(f.dataDir, f.id)
+		mean, _, _ := watch.ReferencePaths(f.dataDir, f.id)
 		fmt.Fprintf(report, "empty pool: %s (%d×%d cells of %g m, %v watched; the detector starts from it)\n", mean, grid.Cols, grid.Rows, grid.Cell, f.learn)
 	}
 	y, err := calibrationYAML(cfg)

@@ -9,6 +9,7 @@ import (
 	"io"
 	"io/fs"
 	"os"
+	"os/exec"
 	"path/filepath"
 	"sort"
 	"strings"
@@ -20,6 +21,7 @@ import (
 	"stillwater/alert/arming"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/redact"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/homography"
 	"stillwater/vision"
 )
@@ -334,4 +336,44 @@ func armingLine(s *arming.Schedule, loc *time.Location, system bool, now time.Ti
 		fmt.Fprintf(&b, ", changes at %s", next.In(loc).Format("Mon 2006-01-02 15:04 MST"))
 	}
 	return b.String()
+}
+
+// describeStreams prints, for check, what the camera decodes and what it
+// copies.
+func describeStreams(w io.Writer, cfg config.Config, cam config.CameraConfig) error {
+	if sp := cam.SourcePx; sp != ([2]int{}) && sp != cam.Frame {
+		cal, err := config.NewCalibration(config.DetectionCamera(cam))
+		if err != nil {
+			return err
+		}
+		fmt.Fprintf(w, "    searched at %d×%d px (source_px), the calibration scaled from %d×%d px (frame_px); %s\n",
+			sp[0], sp[1], cam.Frame[0], cam.Frame[1], resolution(cal))
+	}
+	if cam.EvidenceSource == "" {
+		return nil
+	}
+	e := cfg.Evidence
+	fmt.Fprintf(w, "    evidence stream %s: copied without decoding (ffmpeg) into a pre-roll ring in %s, segments of about %v; clips %v before to %v after each alarm (.mp4)\n",
+		vision.Redact(cam.EvidenceSource), watch.RingDir(cfg, cam.ID), watch.RingSegment, time.Duration(e.PreRoll), time.Duration(e.PostRoll))
+	return nil
+}
+
+// streamProblems lists what the evidence stream needs of this machine:
+// ffmpeg on PATH, a file that is there, a ring directory that can be
+// made.
+func streamProblems(where string, cfg config.Config, cam config.CameraConfig) []string {
+	if cam.EvidenceSource == "" {
+		return nil
+	}
+	var out []string
+	if _, err := exec.LookPath("ffmpeg"); err != nil {
+		out = append(out, where+".evidence_source: the evidence stream is copied by ffmpeg, which is not on PATH; install it (deploy/setup)")
+	}
+	if err := checkSource(cam.EvidenceSource); err != nil {
+		out = append(out, fmt.Sprintf("%s.evidence_source: %v", where, err))
+	}
+	if err := checkDataDir(watch.RingDir(cfg, cam.ID)); err != nil {
+		out = append(out, "evidence.ring_dir: "+err.Error())
+	}
+	return out
 }

@@ -16,6 +16,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision/refdata"
 )
 
@@ -55,12 +56,12 @@ func TestSlowStepRaisesProcessingLag(t *testing.T) {
 	met := metrics.New(reg, "test")
 	sk := &slowSink{delay: 1200 * time.Millisecond, seen: make(chan pipeline.Message, 64)}
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
-	w := newCameraWatch(cfg.Cameras[0], sk, func(time.Time) bool { return true }, time.Now, log, met.Camera("demo"), 0, "test", evidenceSettings{})
+	w := watch.New(cfg.Cameras[0], sk, func(time.Time) bool { return true }, time.Now, log, met.Camera("demo"), 0, "test", watch.EvidenceSettings{})
 
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
 	done := make(chan error, 1)
-	go func() { done <- w.run(ctx) }()
+	go func() { done <- w.Run(ctx) }()
 	var lag *alert.Fault
 	var age float64
 	deadline := time.After(60 * time.Second)
@@ -98,6 +99,6 @@ func TestSlowStepRaisesProcessingLag(t *testing.T) {
 	cancel()
 	require.NoError(t, <-done)
 	assert.Contains(t, lag.Message, "after it was taken")
-	assert.Greater(t, age, maxFrameAge.Seconds(), "the age metric shows the late frame")
+	assert.Greater(t, age, watch.MaxFrameAge.Seconds(), "the age metric shows the late frame")
 	refdata.Report(t, "lag: targets taking 1.2 s to hand on: processing_lag raised (%s), frame age %.2f s, %.0f frames dropped", lag.Message, age, dropped)
 }

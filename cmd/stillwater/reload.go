@@ -12,12 +12,13 @@ import (
 	"stillwater/alert/arming"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/redact"
+	"stillwater/cmd/stillwater/internal/watch"
 )
 
 // reloadTargets are the parts of the running daemon a reload changes.
 // Any func may be nil (tests).
 type reloadTargets struct {
-	watches      []*cameraWatch
+	watches      []*watch.Camera
 	setSchedules func(map[string]*arming.Schedule) error
 	setAccess    func(access) error
 	setMaxDisarm func(time.Duration) ([]string, error)
@@ -59,22 +60,22 @@ func (r *reloader) apply(next config.Config) {
 	}
 	held := map[string]bool{} // cameras not reloaded in place
 	for _, w := range r.to.watches {
-		c, ok := byID[w.cam.ID]
+		c, ok := byID[w.Cam.ID]
 		switch {
 		case !ok:
-			log.Warn("reload: camera removed from the config; it keeps running until restart", "camera", w.cam.ID)
+			log.Warn("reload: camera removed from the config; it keeps running until restart", "camera", w.Cam.ID)
 			continue
-		case c.Source != w.cam.Source || c.Transport != w.cam.Transport:
-			log.Warn("reload: camera source changed; restart to use it", "camera", w.cam.ID)
-			held[w.cam.ID] = true
+		case c.Source != w.Cam.Source || c.Transport != w.Cam.Transport:
+			log.Warn("reload: camera source changed; restart to use it", "camera", w.Cam.ID)
+			held[w.Cam.ID] = true
 			continue
 		}
 		delete(byID, c.ID)
 		select {
-		case <-w.reload: // an older reload not yet taken: replace it
+		case <-w.Reload: // an older reload not yet taken: replace it
 		default:
 		}
-		w.reload <- c
+		w.Reload <- c
 	}
 	for id := range byID {
 		log.Warn("reload: new camera in the config; restart to start it", "camera", id)

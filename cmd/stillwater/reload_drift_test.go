@@ -14,6 +14,7 @@ import (
 
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -52,15 +53,15 @@ func TestReloadedDriftCheckerIsClosed(t *testing.T) {
 	before, _ := vision.OpenMats()
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
 	out := &countSink{}
-	w := newCameraWatch(cam, out, func(time.Time) bool { return true }, time.Now, log, nil, 0, "test", evidenceSettings{})
+	w := watch.New(cam, out, func(time.Time) bool { return true }, time.Now, log, nil, 0, "test", watch.EvidenceSettings{})
 	reloaded := cam
 	reloaded.Detect.MinArea *= 1.5
-	w.reload <- reloaded
+	w.Reload <- reloaded
 	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
 	defer cancel()
-	require.NoError(t, w.run(ctx))
-	require.Empty(t, w.reload, "the reload was never taken")
-	assert.Equal(t, int64(truth.Frames), w.nframes.Load(), "frames watched")
+	require.NoError(t, w.Run(ctx))
+	require.Empty(t, w.Reload, "the reload was never taken")
+	assert.Equal(t, int64(truth.Frames), w.Nframes.Load(), "frames watched")
 	after, _ := vision.OpenMats()
 	assert.Equal(t, before, after, "gocv Mats open before and after watching a clip with a reload")
 }

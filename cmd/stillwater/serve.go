@@ -24,6 +24,7 @@ import (
 	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/cmd/stillwater/internal/redact"
+	"stillwater/cmd/stillwater/internal/watch"
 )
 
 // safetyNotice is logged at start-up and printed by the README.
@@ -77,7 +78,7 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 	for i, c := range cfg.Cameras {
 		ids[i] = c.ID
 	}
-	var watches []*cameraWatch
+	var watches []*watch.Camera
 	backlog := make(chan backlogEvent, 64)
 	bus, err := config.OpenBus(ctx, cfg, arming.Config{Cameras: ids, Schedules: sch, Log: log}, now, log, config.BusHooks{
 		OnResult: met.BusResult,
@@ -107,7 +108,7 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 	for _, cam := range cfg.Cameras {
 		id := cam.ID
 		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
-		watches = append(watches, newCameraWatch(cam, bs, armed, now, log, met.Camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version, newEvidenceSettings(cfg)))
+		watches = append(watches, watch.New(cam, bs, armed, now, log, met.Camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version, watch.NewEvidenceSettings(cfg)))
 	}
 	backlogCtx, stopBacklog := context.WithCancel(ctx)
 	backlogDone := make(chan struct{})
@@ -121,7 +122,7 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 			case ev := <-backlog:
 				detail := fmt.Sprintf("%d messages wait in the outbox, oldest from %s", ev.stats.Depth, ev.stats.Oldest.UTC().Format(time.RFC3339))
 				for _, w := range watches {
-					w.raise(backlogCtx, alert.FaultBusBacklog, ev.active, detail)
+					w.Raise(backlogCtx, alert.FaultBusBacklog, ev.active, detail)
 				}
 			}
 		}
@@ -141,7 +142,7 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 	mux.Handle("/metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
 	mux.HandleFunc("/healthz", func(w http.ResponseWriter, _ *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.Handle("/control/", bus.Control.Handler())
-	mux.Handle("GET /cameras/{id}/latest.jpg", pictures.wrap(latestHandler(watches)))
+	mux.Handle("GET /cameras/{id}/latest.jpg", pictures.wrap(watch.LatestHandler(watches)))
 	mux.HandleFunc("/readyz", func(w http.ResponseWriter, _ *http.Request) {
 		problems := append(readiness(now(), watches, nc.IsConnected()), bus.Problems(now())...)
 		if len(problems) > 0 {
@@ -212,8 +213,8 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 		stopped[i] = make(chan struct{})
 		go func() {
 			defer close(stopped[i])
-			if err := w.run(ctx); err != nil {
-				log.Error("camera stopped", "camera", w.cam.ID, "err", err)
+			if err := w.Run(ctx); err != nil {
+				log.Error("camera stopped", "camera", w.Cam.ID, "err", err)
 			}
 		}()
 	}
@@ -249,7 +250,7 @@ const (
 // waitCameras waits until every camera's goroutine has closed its channel
 // in stopped, or, once ctx has ended, grace more at most. It returns the
 // ids of the cameras still running then.
-func waitCameras(ctx context.Context, watches []*cameraWatch, stopped []chan struct{}, grace time.Duration) []string {
+func waitCameras(ctx context.Context, watches []*watch.Camera, stopped []chan struct{}, grace time.Duration) []string {
 	all := make(chan struct{})
 	go func() {
 		for _, ch := range stopped {
@@ -274,7 +275,7 @@ func waitCameras(ctx context.Context, watches []*cameraWatch, stopped []chan str
 		select {
 		case <-ch:
 		default:
-			left = append(left, watches[i].cam.ID)
+			left = append(left, watches[i].Cam.ID)
 		}
 	}
 	return left
@@ -282,13 +283,13 @@ func waitCameras(ctx context.Context, watches []*cameraWatch, stopped []chan str
 
 // readiness lists why the daemon is not ready: an armed camera without
 // frames, or the bus unreachable. Empty means ready.
-func readiness(now time.Time, watches []*cameraWatch, busUp bool) []string {
+func readiness(now time.Time, watches []*watch.Camera, busUp bool) []string {
 	var out []string
 	if !busUp {
 		out = append(out, "bus: not connected")
 	}
 	for _, w := range watches {
-		if err := w.ready(now); err != nil {
+		if err := w.Ready(now); err != nil {
 			out = append(out, err.Error())
 		}
 	}

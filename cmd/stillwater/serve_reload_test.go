@@ -12,6 +12,7 @@ import (
 
 	"stillwater/alert/arming"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/watch"
 )
 
 func reloadFixture(t *testing.T) config.Config {
@@ -43,9 +44,9 @@ func TestApplyReload(t *testing.T) {
 	require.NoError(t, err)
 	armed := func(id string, at time.Time) bool { a, _ := arm.Armed(id, at); return a }
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
-	var watches []*cameraWatch
+	var watches []*watch.Camera
 	for _, c := range old.Cameras {
-		watches = append(watches, newCameraWatch(c, nil, func(time.Time) bool { return true }, time.Now, log, nil, 0, "test", evidenceSettings{}))
+		watches = append(watches, watch.New(c, nil, func(time.Time) bool { return true }, time.Now, log, nil, 0, "test", watch.EvidenceSettings{}))
 	}
 	noon := time.Date(2026, 7, 1, 12, 0, 0, 0, time.UTC)
 	require.False(t, armed("north", noon), "the old schedule is disarmed at noon")
@@ -59,13 +60,13 @@ func TestApplyReload(t *testing.T) {
 		setSchedules: func(s map[string]*arming.Schedule) error { return arm.SetSchedules(nil, s, noon) }}).apply(next)
 
 	select {
-	case c := <-watches[0].reload:
+	case c := <-watches[0].Reload:
 		assert.Equal(t, 0.05, c.Detect.MinArea)
 	default:
 		t.Fatal("north got no reload")
 	}
 	select {
-	case <-watches[1].reload:
+	case <-watches[1].Reload:
 		t.Fatal("south changed source; it must not be reloaded in place")
 	default:
 	}

@@ -3,6 +3,7 @@ package main
 import (
 	"context"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/watch"
 	"testing"
 	"time"
 
@@ -13,7 +14,7 @@ import (
 // once it has ended, a camera that does not stop within the grace (one
 // stuck in a call into the video backend) is named and left behind.
 func TestWaitCameras(t *testing.T) {
-	watches := []*cameraWatch{{cam: config.CameraConfig{ID: "quick"}}, {cam: config.CameraConfig{ID: "stuck"}}}
+	watches := []*watch.Camera{{Cam: config.CameraConfig{ID: "quick"}}, {Cam: config.CameraConfig{ID: "stuck"}}}
 	tests := []struct {
 		name      string
 		cancel    bool

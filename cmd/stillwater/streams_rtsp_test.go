@@ -25,6 +25,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
 )
@@ -98,7 +99,7 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 	clip := strings.TrimSuffix(snap, ".jpg") + ".mp4"
 	if !assert.Eventually(t, func() bool { _, err := os.Stat(clip); return err == nil }, pre+post+20*time.Second, 100*time.Millisecond,
 		"no clip %s from the evidence stream\n%s", clip, logs.String()) {
-		out, _ := exec.Command("ls", "-l", "--time-style=full-iso", ringDir(cfg, "pool")).CombinedOutput()
+		out, _ := exec.Command("ls", "-l", "--time-style=full-iso", watch.RingDir(cfg, "pool")).CombinedOutput()
 		t.Fatalf("ring:\n%s", out)
 	}
 
@@ -112,7 +113,7 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 	assert.GreaterOrEqual(t, p.Duration, (pre+post).Seconds()-0.3, "the clip's own length")
 
 	// The copying ffmpeg dies.
-	pid := childWith(t, ringDir(cfg, "pool"))
+	pid := childWith(t, watch.RingDir(cfg, "pool"))
 	before := scrapeValue(t, httpAddr, `stillwater_frames_processed_total{camera="pool"}`)
 	killed := time.Now()
 	require.NoError(t, syscall.Kill(pid, syscall.SIGKILL))
@@ -129,7 +130,7 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 		assert.False(t, f.Active && m.At.After(killed), "fault %s raised while the evidence recorder was down", f.Fault)
 	}
 	require.NoError(t, stop())
-	assert.Zero(t, childWithOrZero(ringDir(cfg, "pool")), "the copying ffmpeg ends with the daemon")
+	assert.Zero(t, childWithOrZero(watch.RingDir(cfg, "pool")), "the copying ffmpeg ends with the daemon")
 	refdata.Report(t, "two streams: alarm clip from the 1280×960 main stream (%s, %.1f s, from %.2f s before to %.2f s after the alarm frame); evidence ffmpeg back %.1f s after it was killed, %.0f frames searched meanwhile",
 		p.Codec, p.Duration, alarm.Sub(from).Seconds(), to.Sub(alarm).Seconds(), back.Seconds(), after-before)
 }

@@ -1,4 +1,4 @@
-package main
+package watch
 
 import (
 	"context"
@@ -31,12 +31,12 @@ import (
 // CAMERA-spread.png, each cell's standard deviation ×spreadScale; and
 // CAMERA-empty.json, what they were made from.
 
-// spreadScale is how many grey levels of the spread picture one grey level
+// SpreadScale is how many grey levels of the spread picture one grey level
 // of standard deviation is: up to 31.9 grey levels in 1/8 steps.
-const spreadScale = 8
+const SpreadScale = 8
 
-// referenceMeta describes a saved reference.
-type referenceMeta struct {
+// ReferenceMeta describes a saved reference.
+type ReferenceMeta struct {
 	Camera string    `json:"camera"`
 	Saved  time.Time `json:"saved"`
 	Frames int       `json:"frames"`
@@ -50,8 +50,8 @@ type referenceMeta struct {
 	Note string `json:"note,omitempty"`
 }
 
-// referencePaths returns the reference's files for a camera.
-func referencePaths(dataDir, camID string) (mean, spread, meta string) {
+// ReferencePaths returns the reference's files for a camera.
+func ReferencePaths(dataDir, camID string) (mean, spread, meta string) {
 	base := filepath.Join(dataDir, "reference", camID)
 	return base + "-empty.png", base + "-spread.png", base + "-empty.json"
 }
@@ -66,12 +66,12 @@ func gridHash(g *vision.Rectification) string {
 	return hex.EncodeToString(h.Sum(nil))[:16]
 }
 
-// saveReference writes a camera's reference, replacing the files whole.
-func saveReference(dataDir, camID string, g *vision.Rectification, ref vision.Reference, now time.Time, note string) error {
+// SaveReference writes a camera's reference, replacing the files whole.
+func SaveReference(dataDir, camID string, g *vision.Rectification, ref vision.Reference, now time.Time, note string) error {
 	if ref.Cols != g.Cols || ref.Rows != g.Rows || len(ref.Mean) != 3*g.Cols*g.Rows || len(ref.Var) != len(ref.Mean) {
 		return fmt.Errorf("save reference: %d×%d cells for a %d×%d grid", ref.Cols, ref.Rows, g.Cols, g.Rows)
 	}
-	meanPath, spreadPath, metaPath := referencePaths(dataDir, camID)
+	meanPath, spreadPath, metaPath := ReferencePaths(dataDir, camID)
 	if err := os.MkdirAll(filepath.Dir(meanPath), 0o750); err != nil {
 		return fmt.Errorf("save reference: %w", err)
 	}
@@ -82,10 +82,10 @@ func saveReference(dataDir, camID string, g *vision.Rectification, ref vision.Re
 		x, y := i%ref.Cols, i/ref.Cols
 		b, gg, r := ref.Mean[3*i], ref.Mean[3*i+1], ref.Mean[3*i+2]
 		mean.SetRGBA(x, y, color.RGBA{level(float64(r)), level(float64(gg)), level(float64(b)), 255})
-		sd := func(c int) uint8 { return level(spreadScale * math.Sqrt(math.Max(0, float64(ref.Var[3*i+c])))) }
+		sd := func(c int) uint8 { return level(SpreadScale * math.Sqrt(math.Max(0, float64(ref.Var[3*i+c])))) }
 		spread.SetRGBA(x, y, color.RGBA{sd(2), sd(1), sd(0), 255})
 	}
-	meta := referenceMeta{Camera: camID, Saved: now.UTC(), Frames: ref.Frames, Cols: ref.Cols, Rows: ref.Rows, CellM: g.Cell, Grid: gridHash(g), Note: note}
+	meta := ReferenceMeta{Camera: camID, Saved: now.UTC(), Frames: ref.Frames, Cols: ref.Cols, Rows: ref.Rows, CellM: g.Cell, Grid: gridHash(g), Note: note}
 	mb, err := json.MarshalIndent(meta, "", "  ")
 	if err != nil {
 		return fmt.Errorf("save reference: %w", err)
@@ -122,18 +122,18 @@ func writeReplacing(path string, write func(*os.File) error) error {
 	return os.Rename(tmp.Name(), path)
 }
 
-// errNoReference means a camera has no saved reference.
-var errNoReference = errors.New("no empty-pool reference saved")
+// ErrNoReference means a camera has no saved reference.
+var ErrNoReference = errors.New("no empty-pool reference saved")
 
-// loadReference reads a camera's reference. It fails, saying why, when
+// LoadReference reads a camera's reference. It fails, saying why, when
 // there is none, when it is unreadable, or when it was made for another
 // calibration.
-func loadReference(dataDir, camID string, g *vision.Rectification) (*vision.Reference, referenceMeta, error) {
-	meanPath, spreadPath, metaPath := referencePaths(dataDir, camID)
-	var meta referenceMeta
+func LoadReference(dataDir, camID string, g *vision.Rectification) (*vision.Reference, ReferenceMeta, error) {
+	meanPath, spreadPath, metaPath := ReferencePaths(dataDir, camID)
+	var meta ReferenceMeta
 	b, err := os.ReadFile(metaPath)
 	if errors.Is(err, os.ErrNotExist) {
-		return nil, meta, errNoReference
+		return nil, meta, ErrNoReference
 	}
 	if err != nil {
 		return nil, meta, fmt.Errorf("load reference: %w", err)
@@ -175,7 +175,7 @@ func loadReference(dataDir, camID string, g *vision.Rectification) (*vision.Refe
 		ref.Mean[3*i], ref.Mean[3*i+1], ref.Mean[3*i+2] = float32(bb>>8), float32(gg>>8), float32(r>>8)
 		r, gg, bb, _ = spread.At(x, y).RGBA()
 		for c, v := range []uint32{bb >> 8, gg >> 8, r >> 8} {
-			sd := float32(v) / spreadScale
+			sd := float32(v) / SpreadScale
 			ref.Var[3*i+c] = sd * sd
 		}
 	}
@@ -225,7 +225,7 @@ func (k *referenceKeeper) step(vc *vision.Camera, media time.Duration, tracked, 
 		return false, nil
 	}
 	k.next = media + referenceEvery
-	if err := saveReference(k.dataDir, k.camID, k.grid, ref, now, "refreshed while armed and quiet"); err != nil {
+	if err := SaveReference(k.dataDir, k.camID, k.grid, ref, now, "refreshed while armed and quiet"); err != nil {
 		return false, err
 	}
 	k.saved = now
@@ -233,7 +233,7 @@ func (k *referenceKeeper) step(vc *vision.Camera, media time.Duration, tracked, 
 }
 
 // dataDir is the daemon's data directory (evidence lives in data_dir/evidence).
-func (w *cameraWatch) dataDir() string {
+func (w *Camera) dataDir() string {
 	if w.evidence.dir == "" {
 		return ""
 	}
@@ -243,14 +243,14 @@ func (w *cameraWatch) dataDir() string {
 // useReference starts the detector from the camera's saved empty-pool
 // reference when there is one for this calibration, and sets up its
 // refreshing.
-func (w *cameraWatch) useReference(dc *vision.DetectorConfig) {
+func (w *Camera) useReference(dc *vision.DetectorConfig) {
 	if dc.Grid == nil || w.dataDir() == "" {
 		return
 	}
-	w.refs = newReferenceKeeper(w.dataDir(), w.cam.ID, dc.Grid)
-	ref, meta, err := loadReference(w.dataDir(), w.cam.ID, dc.Grid)
+	w.refs = newReferenceKeeper(w.dataDir(), w.Cam.ID, dc.Grid)
+	ref, meta, err := LoadReference(w.dataDir(), w.Cam.ID, dc.Grid)
 	switch {
-	case errors.Is(err, errNoReference):
+	case errors.Is(err, ErrNoReference):
 		w.log.Info("no empty-pool reference yet: the background is learned from the first seconds; whatever is in the water then is learned with it", "saved_by", "stillwater calibrate -data-dir, or after 10 min armed and quiet")
 	case err != nil:
 		w.log.Warn("empty-pool reference not used", "err", err)
@@ -261,7 +261,7 @@ func (w *cameraWatch) useReference(dc *vision.DetectorConfig) {
 }
 
 // keepReference refreshes the reference while the pool is armed and quiet.
-func (w *cameraWatch) keepReference(vc *vision.Camera, proc *pipeline.Processor, r vision.Result, armed bool) {
+func (w *Camera) keepReference(vc *vision.Camera, proc *pipeline.Processor, r vision.Result, armed bool) {
 	saved, err := w.refs.step(vc, r.Media, len(proc.Tracks) > 0, armed, w.now())
 	switch {
 	case err != nil:
@@ -271,10 +271,10 @@ func (w *cameraWatch) keepReference(vc *vision.Camera, proc *pipeline.Processor,
 	}
 }
 
-// learnReference watches a clip or a camera of the empty pool for learn
+// LearnReference watches a clip or a camera of the empty pool for learn
 // (media time) and returns the detector's background as a reference,
 // with the grid it is for.
-func learnReference(ctx context.Context, cam config.CameraConfig, transport string, timeout, learn time.Duration) (vision.Reference, *vision.Rectification, error) {
+func LearnReference(ctx context.Context, cam config.CameraConfig, transport string, timeout, learn time.Duration) (vision.Reference, *vision.Rectification, error) {
 	cal, err := config.NewCalibration(cam)
 	if err != nil {
 		return vision.Reference{}, nil, err

@@ -1,4 +1,4 @@
-package main
+package watch
 
 import (
 	"context"
@@ -17,12 +17,12 @@ import (
 // processing_lag.
 
 const (
-	// maxFrameAge is the age of a searched frame that raises
+	// MaxFrameAge is the age of a searched frame that raises
 	// processing_lag: a second added to an alarm is a second of a child
 	// under water (ASTM F2208 allows 20 s from entry to alarm in all), and
 	// far beyond what a keeping-up reader shows (one frame interval plus
 	// its processing).
-	maxFrameAge = time.Second
+	MaxFrameAge = time.Second
 	// lagClearAfter is how long frames must be in time again before the
 	// fault clears, so that a reader hovering at the limit does not flap.
 	lagClearAfter = 5 * time.Second
@@ -36,13 +36,13 @@ type lagWatch struct {
 // frameAge records the age of the frame just processed and raises or
 // clears processing_lag. Like camera_lost, the fault is raised only while
 // armed; it clears whenever frames are in time again.
-func (w *cameraWatch) frameAge(ctx context.Context, age time.Duration, armed bool) {
+func (w *Camera) frameAge(ctx context.Context, age time.Duration, armed bool) {
 	w.met.FrameAge(age)
 	now := time.Now()
-	if age > maxFrameAge {
+	if age > MaxFrameAge {
 		w.lag.inTimeSince = time.Time{}
 		if armed {
-			w.raise(ctx, alert.FaultProcessingLag, true, fmt.Sprintf("a frame was searched %.1f s after it was taken (limit %.0f s)", age.Seconds(), maxFrameAge.Seconds()))
+			w.Raise(ctx, alert.FaultProcessingLag, true, fmt.Sprintf("a frame was searched %.1f s after it was taken (limit %.0f s)", age.Seconds(), MaxFrameAge.Seconds()))
 		}
 		return
 	}
@@ -50,6 +50,6 @@ func (w *cameraWatch) frameAge(ctx context.Context, age time.Duration, armed boo
 		w.lag.inTimeSince = now
 	}
 	if now.Sub(w.lag.inTimeSince) >= lagClearAfter {
-		w.raise(ctx, alert.FaultProcessingLag, false, fmt.Sprintf("frames searched within %.0f s of being taken for %.0f s", maxFrameAge.Seconds(), lagClearAfter.Seconds()))
+		w.Raise(ctx, alert.FaultProcessingLag, false, fmt.Sprintf("frames searched within %.0f s of being taken for %.0f s", MaxFrameAge.Seconds(), lagClearAfter.Seconds()))
 	}
 }

@@ -1,4 +1,4 @@
-package main
+package watch
 
 import (
 	"context"
@@ -15,8 +15,8 @@ import (
 	"stillwater/vision/remux"
 )
 
-// evidenceSettings is what a camera keeps for each alarm.
-type evidenceSettings struct {
+// EvidenceSettings is what a camera keeps for each alarm.
+type EvidenceSettings struct {
 	on                bool
 	dir               string // data_dir/evidence
 	preRoll, postRoll time.Duration
@@ -24,15 +24,16 @@ type evidenceSettings struct {
 	ringRoot          string // the pre-roll rings of evidence streams, one directory per camera
 }
 
-func newEvidenceSettings(cfg config.Config) evidenceSettings {
+// NewEvidenceSettings reads the evidence section of cfg.
+func NewEvidenceSettings(cfg config.Config) EvidenceSettings {
 	e := cfg.Evidence
-	return evidenceSettings{
+	return EvidenceSettings{
 		on:       e.On(),
 		dir:      filepath.Join(cfg.DataDir, "evidence"),
 		preRoll:  time.Duration(e.PreRoll),
 		postRoll: time.Duration(e.PostRoll),
 		keep:     vision.Retention{MaxFiles: e.MaxFiles, MaxBytes: e.MaxMB << 20, MaxAge: time.Duration(e.MaxAge)},
-		ringRoot: filepath.Dir(ringDir(cfg, "x")),
+		ringRoot: filepath.Dir(RingDir(cfg, "x")),
 	}
 }
 
@@ -58,14 +59,14 @@ type evidenceJob struct {
 // queues it for keepEvidence; it returns the snapshot's path relative to
 // the data directory for the target message, or "" when evidence is off.
 // It touches neither the camera nor the disk: the message goes out first.
-func (w *cameraWatch) planEvidence(r vision.Result, o alert.Observation) string {
+func (w *Camera) planEvidence(r vision.Result, o alert.Observation) string {
 	if !w.evidence.on {
 		return ""
 	}
 	stamp := w.epoch.Add(r.Media).UTC().Format("20060102T150405.000Z")
 	stamp = strings.ReplaceAll(stamp, ".", "")
-	base := fmt.Sprintf("%s-%s-track%d", w.cam.ID, stamp, o.Track)
-	caption := fmt.Sprintf("%s  %s  track %d at %.2f m, %.2f m", w.cam.ID, w.epoch.Add(r.Media).UTC().Format(time.RFC3339), o.Track, o.X, o.Y)
+	base := fmt.Sprintf("%s-%s-track%d", w.Cam.ID, stamp, o.Track)
+	caption := fmt.Sprintf("%s  %s  track %d at %.2f m, %.2f m", w.Cam.ID, w.epoch.Add(r.Media).UTC().Format(time.RFC3339), o.Track, o.X, o.Y)
 	w.pendingEvidence = append(w.pendingEvidence, evidenceJob{base: base, caption: caption, at: w.epoch.Add(r.Media)})
 	return filepath.Join("evidence", base+".jpg")
 }
@@ -75,10 +76,10 @@ func (w *cameraWatch) planEvidence(r vision.Result, o alert.Observation) string 
 // is called after the frame's messages are published and returns at once;
 // the files are written on the writer's goroutine (evidenceWritten reports
 // them). A failure is logged and never holds up an alarm.
-func (w *cameraWatch) keepEvidence(vc *vision.Camera, proc *pipeline.Processor) {
+func (w *Camera) keepEvidence(vc *vision.Camera, proc *pipeline.Processor) {
 	for _, j := range w.pendingEvidence {
 		snap := filepath.Join(w.evidence.dir, j.base+".jpg")
-		if err := vc.SaveSnapshot(snap, annotation(w.cam, proc, j.caption)); err != nil {
+		if err := vc.SaveSnapshot(snap, annotation(w.Cam, proc, j.caption)); err != nil {
 			w.log.Error("evidence snapshot not kept", "snapshot", filepath.Base(snap), "err", err)
 		}
 		if w.rec != nil {
@@ -97,7 +98,7 @@ func (w *cameraWatch) keepEvidence(vc *vision.Camera, proc *pipeline.Processor) 
 // evidenceWritten runs on the camera's evidence writer goroutine for every
 // snapshot written and clip finished: it logs them and applies retention,
 // keeping the file just written and the clip still open.
-func (w *cameraWatch) evidenceWritten(ev vision.EvidenceWritten) {
+func (w *Camera) evidenceWritten(ev vision.EvidenceWritten) {
 	if ev.Err != nil {
 		w.log.Error("evidence "+ev.Kind+" failed", "err", ev.Err)
 		return
@@ -109,7 +110,7 @@ func (w *cameraWatch) evidenceWritten(ev vision.EvidenceWritten) {
 
 // retain applies retention to the evidence directory, keeping the paths
 // given (the file just written, a clip still open).
-func (w *cameraWatch) retain(paths ...string) {
+func (w *Camera) retain(paths ...string) {
 	keep := w.evidence.keep
 	for _, p := range paths {
 		if p != "" {
@@ -125,11 +126,11 @@ func (w *cameraWatch) retain(paths ...string) {
 
 // answerSnapshot serves a pending request for the latest annotated frame.
 // Only the capture goroutine may touch the camera, so HTTP asks it here.
-func (w *cameraWatch) answerSnapshot(vc *vision.Camera, proc *pipeline.Processor) {
+func (w *Camera) answerSnapshot(vc *vision.Camera, proc *pipeline.Processor) {
 	select {
 	case reply := <-w.snapReq:
-		caption := fmt.Sprintf("%s  %s", w.cam.ID, w.now().UTC().Format(time.RFC3339))
-		jpg, err := vc.Snapshot(annotation(w.cam, proc, caption))
+		caption := fmt.Sprintf("%s  %s", w.Cam.ID, w.now().UTC().Format(time.RFC3339))
+		jpg, err := vc.Snapshot(annotation(w.Cam, proc, caption))
 		reply <- snapshot{jpg: jpg, err: err}
 	default:
 	}
@@ -140,13 +141,13 @@ type snapshot struct {
 	err error
 }
 
-// latestHandler serves GET /cameras/{id}/latest.jpg: the camera's latest
+// LatestHandler serves GET /cameras/{id}/latest.jpg: the camera's latest
 // frame with the outline and tracks drawn.
-func latestHandler(watches []*cameraWatch) http.Handler {
+func LatestHandler(watches []*Camera) http.Handler {
 	return http.HandlerFunc(func(rw http.ResponseWriter, req *http.Request) {
 		id := req.PathValue("id")
 		for _, w := range watches {
-			if w.cam.ID != id {
+			if w.Cam.ID != id {
 				continue
 			}
 			reply := make(chan snapshot, 1)
@@ -179,15 +180,15 @@ func latestHandler(watches []*cameraWatch) http.Handler {
 // more, in segments of about 2 s. A recorder that cannot be set up is
 // logged; the camera is watched all the same, with clips from its
 // decoded frames.
-func (w *cameraWatch) startRecorder() {
-	if !w.evidence.on || w.cam.EvidenceSource == "" {
+func (w *Camera) startRecorder() {
+	if !w.evidence.on || w.Cam.EvidenceSource == "" {
 		return
 	}
 	rec, err := remux.New(remux.Config{
-		Source: w.cam.EvidenceSource, Transport: w.cam.Transport, Realtime: w.cam.Realtime, Loop: w.cam.Loop,
-		Dir:     filepath.Join(w.evidence.ringRoot, w.cam.ID),
-		Segment: ringSegment,
-		Keep:    w.evidence.preRoll + ringSegment,
+		Source: w.Cam.EvidenceSource, Transport: w.Cam.Transport, Realtime: w.Cam.Realtime, Loop: w.Cam.Loop,
+		Dir:     filepath.Join(w.evidence.ringRoot, w.Cam.ID),
+		Segment: RingSegment,
+		Keep:    w.evidence.preRoll + RingSegment,
 		Log:     w.log,
 		OnState: func(up bool, _ error) { w.met.Recorder(up) }, // the recorder logs its exits
 	})
@@ -198,13 +199,13 @@ func (w *cameraWatch) startRecorder() {
 	w.rec = rec
 }
 
-// ringSegment is the length of the evidence ring's segments: short enough
+// RingSegment is the length of the evidence ring's segments: short enough
 // that a clip starts close to its pre-roll, long enough to hold one key
 // frame interval of most cameras (1–2 s, common practice).
-const ringSegment = 2 * time.Second
+const RingSegment = 2 * time.Second
 
 // runRecorder runs the evidence stream's recorder until ctx ends.
-func (w *cameraWatch) runRecorder(ctx context.Context) {
+func (w *Camera) runRecorder(ctx context.Context) {
 	if err := w.rec.Run(ctx); err != nil {
 		w.log.Error("evidence stream not recorded", "err", err)
 	}
@@ -212,7 +213,7 @@ func (w *cameraWatch) runRecorder(ctx context.Context) {
 
 // clipWritten reports a clip cut from the evidence stream's ring, and
 // applies retention as evidenceWritten does.
-func (w *cameraWatch) clipWritten(r remux.ClipResult) {
+func (w *Camera) clipWritten(r remux.ClipResult) {
 	if r.Err != nil {
 		w.log.Error("evidence clip failed", "err", r.Err)
 		return

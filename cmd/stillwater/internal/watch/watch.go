@@ -1,4 +1,7 @@
-package main
+// Package watch runs one camera: capture with reconnects, the pipeline,
+// the watchdog, heartbeats, processing lag, evidence clips and the
+// empty-pool reference.
+package watch
 
 import (
 	"context"
@@ -23,12 +26,12 @@ import (
 	"stillwater/vision/remux"
 )
 
-// cameraWatch runs one camera: capture with reconnects, the detection
+// Camera runs one camera: capture with reconnects, the detection
 // pipeline, a watchdog that reports a lost camera whatever a blocked read
 // is doing, and heartbeats. Every camera has its own; a failing camera
 // never holds up another.
-type cameraWatch struct {
-	cam       config.CameraConfig
+type Camera struct {
+	Cam       config.CameraConfig // the camera's settings as configured
 	out       pipeline.Sink
 	armed     func(now time.Time) bool
 	now       func() time.Time
@@ -40,14 +43,14 @@ type cameraWatch struct {
 	epoch     time.Time     // wall time of media time 0
 	seq       atomic.Uint64 // message sequence, shared by every kind
 	lastFrame atomic.Int64  // unix ns (by now) of the last frame read
-	nframes   atomic.Int64  // frames read since start
+	Nframes   atomic.Int64  // frames read since start
 	faults    faultBoard
 	lag       lagWatch        // the processing_lag fault (lag.go)
 	rec       *remux.Recorder // the main stream's pre-roll, when the camera names one (evidence.go)
 
-	reload   chan config.CameraConfig // new calibration, zones, detection for this camera
+	Reload   chan config.CameraConfig // new calibration, zones, detection for this camera
 	gate     vision.OpenGate          // one open of the source at a time; a hung one is abandoned
-	evidence evidenceSettings
+	evidence EvidenceSettings
 	// pendingEvidence is planned by the pipeline while it makes a target
 	// start, and handed to the evidence writer once the frame's messages
 	// are published (capture goroutine only).
@@ -56,20 +59,23 @@ type cameraWatch struct {
 	refs            *referenceKeeper   // the empty-pool reference (reference.go)
 }
 
-func newCameraWatch(cam config.CameraConfig, out pipeline.Sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *metrics.Camera, heartbeat time.Duration, version string, ev evidenceSettings) *cameraWatch {
-	w := &cameraWatch{
-		cam: cam, out: out, armed: armed, now: now, log: log.With("camera", cam.ID), met: met,
-		heartbeat: heartbeat, version: version, epoch: now(), reload: make(chan config.CameraConfig, 1),
+// New returns the watcher of one camera; out takes its messages, armed
+// says whether the pool is armed at a time, met (may be nil) records its
+// series. Run starts it.
+func New(cam config.CameraConfig, out pipeline.Sink, armed func(time.Time) bool, now func() time.Time, log *slog.Logger, met *metrics.Camera, heartbeat time.Duration, version string, ev EvidenceSettings) *Camera {
+	w := &Camera{
+		Cam: cam, out: out, armed: armed, now: now, log: log.With("camera", cam.ID), met: met,
+		heartbeat: heartbeat, version: version, epoch: now(), Reload: make(chan config.CameraConfig, 1),
 		evidence: ev, snapReq: make(chan chan snapshot),
 	}
 	w.lastFrame.Store(w.epoch.UnixNano())
-	w.cam = config.DetectionCamera(cam)
+	w.Cam = config.DetectionCamera(cam)
 	w.startRecorder()
 	return w
 }
 
-// run watches until ctx ends, or a file source (not looped) ends.
-func (w *cameraWatch) run(ctx context.Context) error {
+// Run watches until ctx ends, or a file source (not looped) ends.
+func (w *Camera) Run(ctx context.Context) error {
 	ctx, cancel := context.WithCancel(ctx)
 	defer cancel()
 	var wg sync.WaitGroup
@@ -92,22 +98,22 @@ func (w *cameraWatch) run(ctx context.Context) error {
 	if err != nil && stopped {
 		// The camera stops being watched: say so on the bus, not only in
 		// the log.
-		w.raise(context.WithoutCancel(ctx), alert.FaultCameraLost, true, "camera stopped: "+err.Error())
+		w.Raise(context.WithoutCancel(ctx), alert.FaultCameraLost, true, "camera stopped: "+err.Error())
 	}
 	return err
 }
 
 // frameTimeout is the watchdog limit for this camera.
-func (w *cameraWatch) frameTimeout() time.Duration { return time.Duration(w.cam.FrameTimeout) }
+func (w *Camera) frameTimeout() time.Duration { return time.Duration(w.Cam.FrameTimeout) }
 
 // watchdog checks every 200 ms that frames arrive. No frame for longer
 // than the frame timeout while armed raises camera_lost at once; the next
 // frame clears it. It also sends the heartbeats.
-func (w *cameraWatch) watchdog(ctx context.Context) {
+func (w *Camera) watchdog(ctx context.Context) {
 	tick := time.NewTicker(200 * time.Millisecond)
 	defer tick.Stop()
 	lastBeat := w.now()
-	beatFrames := w.nframes.Load()
+	beatFrames := w.Nframes.Load()
 	for {
 		select {
 		case <-ctx.Done():
@@ -120,18 +126,18 @@ func (w *cameraWatch) watchdog(ctx context.Context) {
 		// delivered yet is not lost, but it is not up either: up needs a
 		// frame.
 		recent := since <= w.frameTimeout()
-		up := recent && w.nframes.Load() > 0
+		up := recent && w.Nframes.Load() > 0
 		w.met.CameraUp(up)
 		armed := w.armed(now)
 		w.met.ArmedState(armed)
 		switch {
 		case !recent && armed:
-			w.raise(ctx, alert.FaultCameraLost, true, w.lostDetail(since))
+			w.Raise(ctx, alert.FaultCameraLost, true, w.lostDetail(since))
 		case up:
-			w.raise(ctx, alert.FaultCameraLost, false, "frames arrive again")
+			w.Raise(ctx, alert.FaultCameraLost, false, "frames arrive again")
 		}
 		if w.heartbeat > 0 && now.Sub(lastBeat) >= w.heartbeat {
-			n := w.nframes.Load()
+			n := w.Nframes.Load()
 			fps := float64(n-beatFrames) / now.Sub(lastBeat).Seconds()
 			w.beat(ctx, now, fps, up, armed)
 			lastBeat, beatFrames = now, n
@@ -141,10 +147,10 @@ func (w *cameraWatch) watchdog(ctx context.Context) {
 
 // lostDetail says why no frame came: for how long, and whether an open
 // of the source is blocked in the backend.
-func (w *cameraWatch) lostDetail(since time.Duration) string {
-	msg := fmt.Sprintf("no frame from %s for %.1f s", vision.Redact(w.cam.Source), since.Seconds())
-	if w.nframes.Load() == 0 {
-		msg = fmt.Sprintf("no frame from %s since the start (%.1f s)", vision.Redact(w.cam.Source), since.Seconds())
+func (w *Camera) lostDetail(since time.Duration) string {
+	msg := fmt.Sprintf("no frame from %s for %.1f s", vision.Redact(w.Cam.Source), since.Seconds())
+	if w.Nframes.Load() == 0 {
+		msg = fmt.Sprintf("no frame from %s since the start (%.1f s)", vision.Redact(w.Cam.Source), since.Seconds())
 	}
 	if stuck, at := w.gate.Stuck(); stuck {
 		msg += fmt.Sprintf("; an open has been blocked in the video backend for %.0f s", time.Since(at).Seconds())
@@ -152,9 +158,9 @@ func (w *cameraWatch) lostDetail(since time.Duration) string {
 	return msg
 }
 
-// raise publishes a fault when its state changes; repeated calls with the
+// Raise publishes a fault when its state changes; repeated calls with the
 // same state do nothing.
-func (w *cameraWatch) raise(ctx context.Context, kind string, active bool, msg string) {
+func (w *Camera) Raise(ctx context.Context, kind string, active bool, msg string) {
 	if !w.faults.set(kind, active) {
 		return
 	}
@@ -164,35 +170,35 @@ func (w *cameraWatch) raise(ctx context.Context, kind string, active bool, msg s
 	} else {
 		w.log.Warn("camera fault cleared", "fault", kind, "detail", msg)
 	}
-	f := alert.NewFault(w.cam.ID, w.seq.Add(1), w.now(), kind, active, msg)
+	f := alert.NewFault(w.Cam.ID, w.seq.Add(1), w.now(), kind, active, msg)
 	w.sendFault(ctx, f)
 }
 
-func (w *cameraWatch) sendFault(ctx context.Context, f alert.Fault) {
+func (w *Camera) sendFault(ctx context.Context, f alert.Fault) {
 	b, err := alert.Encode(f)
 	if err != nil {
 		w.log.Error("cannot encode fault", "err", err)
 		return
 	}
-	w.send(ctx, pipeline.Message{Camera: w.cam.ID, Kind: alert.KindFault, ID: alert.FaultID(f, w.epoch), Data: b})
+	w.send(ctx, pipeline.Message{Camera: w.Cam.ID, Kind: alert.KindFault, ID: alert.FaultID(f, w.epoch), Data: b})
 }
 
-func (w *cameraWatch) beat(ctx context.Context, now time.Time, fps float64, up, armed bool) {
-	hb := alert.Heartbeat{V: alert.Version, Kind: alert.KindBeat, Camera: w.cam.ID, Time: now.UTC(), FPS: pipeline.Round3(fps), CameraOK: up && !w.faults.any(), Armed: armed, Version: w.version}
+func (w *Camera) beat(ctx context.Context, now time.Time, fps float64, up, armed bool) {
+	hb := alert.Heartbeat{V: alert.Version, Kind: alert.KindBeat, Camera: w.Cam.ID, Time: now.UTC(), FPS: pipeline.Round3(fps), CameraOK: up && !w.faults.any(), Armed: armed, Version: w.version}
 	b, err := alert.Encode(hb)
 	if err != nil {
 		w.log.Error("cannot encode heartbeat", "err", err)
 		return
 	}
-	w.send(ctx, pipeline.Message{Camera: w.cam.ID, Kind: alert.KindBeat, ID: w.msgID(w.seq.Add(1), "beat"), Data: b})
+	w.send(ctx, pipeline.Message{Camera: w.Cam.ID, Kind: alert.KindBeat, ID: w.msgID(w.seq.Add(1), "beat"), Data: b})
 	w.met.Heartbeat(now)
 }
 
-func (w *cameraWatch) msgID(seq uint64, what string) string {
-	return fmt.Sprintf("%s-%d-%d-%s", w.cam.ID, w.epoch.UnixNano(), seq, what)
+func (w *Camera) msgID(seq uint64, what string) string {
+	return fmt.Sprintf("%s-%d-%d-%s", w.Cam.ID, w.epoch.UnixNano(), seq, what)
 }
 
-func (w *cameraWatch) send(ctx context.Context, m pipeline.Message) {
+func (w *Camera) send(ctx context.Context, m pipeline.Message) {
 	t0 := time.Now()
 	if err := w.out.Send(ctx, m); err != nil {
 		w.log.Error("publish failed", "kind", m.Kind, "err", err)
@@ -210,7 +216,7 @@ func (w *cameraWatch) send(ctx context.Context, m pipeline.Message) {
 // backoff stops growing at 2 s: a pool camera that comes back must be
 // watched again within seconds, and one attempt every 2 s costs a home
 // network nothing.
-func (w *cameraWatch) capture(ctx context.Context) error {
+func (w *Camera) capture(ctx context.Context) error {
 	bo := backoff{min: 100 * time.Millisecond, max: 2 * time.Second}
 	var vc *vision.Camera
 	var cal *homography.Calibration
@@ -228,11 +234,11 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 	}
 	defer vc.Close()
 	bo.reset()
-	proc, err := pipeline.New(w.cam, cal, vc.FPS(), w.epoch, w.now, w.log, w.met)
+	proc, err := pipeline.New(w.Cam, cal, vc.FPS(), w.epoch, w.now, w.log, w.met)
 	if err != nil {
 		return err
 	}
-	drift, err := pipeline.NewDriftChecker(w.cam, proc.Calibration)
+	drift, err := pipeline.NewDriftChecker(w.Cam, proc.Calibration)
 	if err != nil {
 		// The pool is still watched; only the camera-moved check is off.
 		w.log.Error("camera-moved check off", "err", err)
@@ -247,10 +253,10 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 		case ctx.Err() != nil:
 			return nil
 		case errors.Is(err, io.EOF):
-			w.log.Info("source ended", "frames", w.nframes.Load())
+			w.log.Info("source ended", "frames", w.Nframes.Load())
 			return nil
 		case errors.Is(err, vision.ErrDamagedMedia):
-			return fmt.Errorf("camera %s: %w", w.cam.ID, err)
+			return fmt.Errorf("camera %s: %w", w.Cam.ID, err)
 		}
 		w.log.Warn("camera read failed; reconnecting", "err", err)
 		for ctx.Err() == nil {
@@ -267,7 +273,7 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 			bo.reset()
 			w.log.Info("camera back", "size", info.Size, "model_kept", !info.Rebuilt)
 			if err := proc.Calibration.CheckFrame(info.Size); err != nil {
-				w.raise(ctx, alert.FaultCalibrationDrift, true, err.Error())
+				w.Raise(ctx, alert.FaultCalibrationDrift, true, err.Error())
 			}
 			break
 		}
@@ -277,12 +283,12 @@ func (w *cameraWatch) capture(ctx context.Context) error {
 
 // open opens the source with the camera's detector and returns the
 // camera's calibration, built once here for the whole capture.
-func (w *cameraWatch) open() (*vision.Camera, *homography.Calibration, error) {
-	cal, err := config.NewCalibration(w.cam)
+func (w *Camera) open() (*vision.Camera, *homography.Calibration, error) {
+	cal, err := config.NewCalibration(w.Cam)
 	if err != nil {
 		return nil, nil, err
 	}
-	dc, err := pipeline.DetectorConfig(w.cam, cal)
+	dc, err := pipeline.DetectorConfig(w.Cam, cal)
 	if err != nil {
 		return nil, nil, err
 	}
@@ -293,7 +299,7 @@ func (w *cameraWatch) open() (*vision.Camera, *homography.Calibration, error) {
 	}
 	if err := cal.CheckFrame(vc.Size()); err != nil {
 		vc.Close()
-		return nil, nil, fmt.Errorf("camera %s: %w", w.cam.ID, err)
+		return nil, nil, fmt.Errorf("camera %s: %w", w.Cam.ID, err)
 	}
 	if w.evidence.on {
 		if err := os.MkdirAll(w.evidence.dir, 0o750); err != nil {
@@ -301,10 +307,10 @@ func (w *cameraWatch) open() (*vision.Camera, *homography.Calibration, error) {
 		}
 		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll, OnWritten: w.evidenceWritten, SnapshotsOnly: w.rec != nil}); err != nil {
 			vc.Close()
-			return nil, nil, fmt.Errorf("camera %s: evidence: %w", w.cam.ID, err)
+			return nil, nil, fmt.Errorf("camera %s: evidence: %w", w.Cam.ID, err)
 		}
 	}
-	w.log.Info("camera open", "source", vision.Redact(w.cam.Source), "size", vc.Size(), "fps", vc.FPS())
+	w.log.Info("camera open", "source", vision.Redact(w.Cam.Source), "size", vc.Size(), "fps", vc.FPS())
 	return vc, cal, nil
 }
 
@@ -318,8 +324,8 @@ type captureState struct {
 }
 
 // frames processes frames until the source fails or ends.
-func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *captureState) error {
-	live := strings.Contains(w.cam.Source, "://")
+func (w *Camera) frames(ctx context.Context, vc *vision.Camera, st *captureState) error {
+	live := strings.Contains(w.Cam.Source, "://")
 	proc := st.proc
 	proc.Evidence = w.planEvidence
 	defer func() { proc.Evidence = nil; w.pendingEvidence = w.pendingEvidence[:0] }()
@@ -346,21 +352,21 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 		} else {
 			w.log.Warn("late frame after a stalled read", "waited", waited.Round(time.Millisecond))
 		}
-		w.nframes.Add(1)
+		w.Nframes.Add(1)
 		w.met.Frame()
 		w.met.Stage("vision", time.Since(t0))
 		captured := vc.Captured()
 		switch {
 		case live:
 			r.Media = w.now().Sub(w.epoch)
-		case w.cam.Realtime:
+		case w.Cam.Realtime:
 			// As a live camera's: when the frame was due, so that
 			// frame_time says when it was taken.
 			r.Media = captured.Sub(w.epoch)
 		}
 		armed := w.armed(w.now())
 		for _, f := range st.health.Observe(r.Media, r.Health, armed) {
-			w.raise(ctx, f.Kind, f.Active, f.Detail)
+			w.Raise(ctx, f.Kind, f.Active, f.Detail)
 		}
 		switch r.Rejoined {
 		case "":
@@ -393,7 +399,7 @@ func (w *cameraWatch) frames(ctx context.Context, vc *vision.Camera, st *capture
 }
 
 // countStats exports the capture counters' growth.
-func (w *cameraWatch) countStats(vc *vision.Camera, st *captureState) {
+func (w *Camera) countStats(vc *vision.Camera, st *captureState) {
 	s := vc.Stats()
 	w.met.DecodeErrors(int(s.DecodeErrors - st.stats.DecodeErrors))
 	w.met.DroppedFrames(int(s.Dropped - st.stats.Dropped))
@@ -401,9 +407,9 @@ func (w *cameraWatch) countStats(vc *vision.Camera, st *captureState) {
 }
 
 // takeReload applies a pending reload between frames.
-func (w *cameraWatch) takeReload(proc *pipeline.Processor, st *captureState) {
+func (w *Camera) takeReload(proc *pipeline.Processor, st *captureState) {
 	select {
-	case c := <-w.reload:
+	case c := <-w.Reload:
 		c = config.DetectionCamera(c)
 		if err := proc.Reload(c); err != nil {
 			w.log.Error("reload refused; keeping the running settings", "err", err)
@@ -424,7 +430,7 @@ func (w *cameraWatch) takeReload(proc *pipeline.Processor, st *captureState) {
 }
 
 // checkDrift raises or clears calibration_drift from one comparison.
-func (w *cameraWatch) checkDrift(ctx context.Context, st pipeline.DriftStatus) {
+func (w *Camera) checkDrift(ctx context.Context, st pipeline.DriftStatus) {
 	var active bool
 	switch {
 	case st.Moved || st.Lost:
@@ -443,12 +449,12 @@ func (w *cameraWatch) checkDrift(ctx context.Context, st pipeline.DriftStatus) {
 	} else {
 		w.log.Warn("camera matches its calibration again", "shift_m", st.ShiftM)
 	}
-	w.sendFault(ctx, alert.NewDriftFault(w.cam.ID, w.seq.Add(1), w.now(), active, pipeline.Round3(st.ShiftM)))
+	w.sendFault(ctx, alert.NewDriftFault(w.Cam.ID, w.seq.Add(1), w.now(), active, pipeline.Round3(st.ShiftM)))
 }
 
-func (w *cameraWatch) sourceConfig() vision.SourceConfig {
+func (w *Camera) sourceConfig() vision.SourceConfig {
 	rt := w.frameTimeout()
-	return vision.SourceConfig{URI: w.cam.Source, Transport: w.cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.cam.Loop, Realtime: w.cam.Realtime, Gate: &w.gate}
+	return vision.SourceConfig{URI: w.Cam.Source, Transport: w.Cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.Cam.Loop, Realtime: w.Cam.Realtime, Gate: &w.gate}
 }
 
 // sleep waits d or until ctx ends; it reports whether ctx is still live.
@@ -520,11 +526,11 @@ func (f *faultBoard) any() bool {
 	return false
 }
 
-// ready says why this camera is not ready: armed and without frames.
-func (w *cameraWatch) ready(now time.Time) error {
+// Ready says why this camera is not ready: armed and without frames.
+func (w *Camera) Ready(now time.Time) error {
 	since := now.Sub(time.Unix(0, w.lastFrame.Load()))
 	if w.armed(now) && since > w.frameTimeout() {
-		return fmt.Errorf("camera %s: armed and no frame for %.1f s", w.cam.ID, since.Seconds())
+		return fmt.Errorf("camera %s: armed and no frame for %.1f s", w.Cam.ID, since.Seconds())
 	}
 	return nil
 }
