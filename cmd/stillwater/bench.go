@@ -30,6 +30,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/vision"
@@ -419,7 +420,7 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *bench
 	done := make(chan error, 1)
 	fmt.Fprintf(progress, "running %d camera(s) for %v ...\n", o.cameras, o.duration)
 	start := time.Now()
-	go func() { done <- serve(runCtx, cfg, deps{Log: log, Registry: reg, Ready: onReady}) }()
+	go func() { done <- daemon.Serve(runCtx, cfg, daemon.Deps{Log: log, Registry: reg, Ready: onReady}) }()
 	select {
 	case err := <-ready:
 		if err != nil {

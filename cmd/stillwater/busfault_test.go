@@ -24,6 +24,7 @@ import (
 	"stillwater/alert/arming"
 	"stillwater/alert/bus"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/cmd/stillwater/internal/testkit"
@@ -159,7 +160,7 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	b := testkit.OpenBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{OnResult: met.BusResult})
 	metrics.RegisterBusMetrics(reg, b, time.Now)
 	testkit.RunBus(t, b)
-	sink := &busSink{pub: b.Pub, met: met}
+	sink := &daemon.BusSink{Pub: b.Pub, Met: met}
 	for i := 0; i < 3; i++ {
 		require.NoError(t, sink.Send(context.Background(), pipeline.Message{Camera: "north", Kind: alert.KindTarget, ID: fmt.Sprintf("q-%d", i),
 			Data: []byte(fmt.Sprintf(`{"v":1,"kind":"target","camera":"north","seq":%d}`, i))}))
@@ -246,7 +247,7 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	require.NoError(t, sub.Flush())
 	testkit.RunBus(t, b)
 
-	sink := &busSink{pub: b.Pub, met: met}
+	sink := &daemon.BusSink{Pub: b.Pub, Met: met}
 	start := time.Now()
 	require.NoError(t, sink.Send(context.Background(), pipeline.Message{Camera: "north", Kind: alert.KindTarget, ID: "fresh",
 		Data: []byte(`{"v":1,"kind":"target","camera":"north","seq":9}`)}))

@@ -20,6 +20,7 @@ import (
 	"stillwater/alert"
 	"stillwater/alert/arming"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/cmd/stillwater/internal/redact"
 	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/homography"
@@ -239,7 +240,7 @@ func describe(w io.Writer, path string, cfg config.Config, now time.Time) error 
 	}
 	fmt.Fprintf(w, "http: metrics, /healthz and /readyz on %s\n", cfg.HTTP.Listen)
 	switch c := cfg.HTTP; {
-	case loopbackListen(c.Listen):
+	case daemon.LoopbackListen(c.Listen):
 		fmt.Fprintln(w, "  camera pictures (/cameras/ID/latest.jpg) open: the listener is loopback")
 	case c.ViewerSecret != "" || c.ViewerSecretEnv != "" || c.ViewerSecretFile != "":
 		fmt.Fprintln(w, "  camera pictures (/cameras/ID/latest.jpg) need the viewer or the control token")

@@ -19,6 +19,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/vision/synth"
 )
 
@@ -168,7 +169,7 @@ func demoClip(ctx context.Context, truth synth.Truth, clip, dir string, realtime
 	}
 	start := time.Now()
 	reg := prometheus.NewRegistry()
-	err = serve(ctx, cfg, deps{Log: log, Ready: ready, Registry: reg})
+	err = daemon.Serve(ctx, cfg, daemon.Deps{Log: log, Ready: ready, Registry: reg})
 	res.Elapsed = time.Since(start)
 	if nc != nil {
 		nc.Flush()

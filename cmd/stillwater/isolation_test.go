@@ -30,6 +30,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/vision/refdata"
 )
 
@@ -147,7 +148,7 @@ func startLoggedDaemon(t *testing.T, cfg config.Config, limit time.Duration) (*b
 	ready := make(chan [2]string, 1)
 	done := make(chan error, 1)
 	go func() {
-		done <- serve(ctx, cfg, deps{
+		done <- daemon.Serve(ctx, cfg, daemon.Deps{
 			Log:   slog.New(slog.NewJSONHandler(w, &slog.HandlerOptions{Level: slog.LevelDebug})),
 			Ready: func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },
 		})
@@ -204,7 +205,7 @@ func firstStart(t *testing.T, bl *busLog, camera string, limit time.Duration) (a
 
 // shutdownLimit is how long serve may take to return after its context
 // ends: the cameras' stop wait and the bus flush (see serve).
-const shutdownLimit = cameraStopWait + flushWait + time.Second
+const shutdownLimit = daemon.CameraStopWait + daemon.FlushWait + time.Second
 
 // TestHangingSourcesDoNotHoldUpAHealthyCamera runs a camera playing a
 // generated clip in which a child enters the water beside two cameras

@@ -10,6 +10,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/vision"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
@@ -41,7 +42,7 @@ func TestDaemonLeavesNothingBehind(t *testing.T) {
 	reg := prometheus.NewRegistry()
 	done := make(chan error, 1)
 	start := time.Now()
-	go func() { done <- serve(ctx, cfg, deps{Registry: reg}) }()
+	go func() { done <- daemon.Serve(ctx, cfg, daemon.Deps{Registry: reg}) }()
 	read := func() float64 {
 		mfs, err := reg.Gather()
 		if err != nil {

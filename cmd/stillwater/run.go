@@ -11,6 +11,7 @@ import (
 	"syscall"
 
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/cmd/stillwater/internal/redact"
 	"stillwater/vision"
 )
@@ -85,7 +86,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		defer stopLibLog()
 	}
 	// The error is printed by main, outside the log: hide secrets there too.
-	return redact.Of(log).Err(serve(ctx, cfg, deps{Log: log, Reload: reload}))
+	return redact.Of(log).Err(daemon.Serve(ctx, cfg, daemon.Deps{Log: log, Reload: reload}))
 }
 
 func newLogger(c config.LogConfig, w io.Writer) *slog.Logger {

@@ -25,6 +25,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
@@ -143,7 +144,7 @@ func startDaemonLogged(t *testing.T, cfg config.Config, logs io.Writer) (*busLog
 	ready := make(chan [2]string, 1)
 	done := make(chan error, 1)
 	go func() {
-		done <- serve(ctx, cfg, deps{
+		done <- daemon.Serve(ctx, cfg, daemon.Deps{
 			Log:   slog.New(slog.NewTextHandler(logs, nil)),
 			Ready: func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },
 		})

@@ -22,6 +22,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/vision/synth"
 )
 
@@ -117,7 +118,7 @@ func startDaemonWith(t *testing.T, cfg config.Config, reg *prometheus.Registry) 
 		if os.Getenv("STILLWATER_TEST_LOG") != "" {
 			w = os.Stderr // a daemon's log for a failing test: STILLWATER_TEST_LOG=1
 		}
-		done <- serve(ctx, cfg, deps{
+		done <- daemon.Serve(ctx, cfg, daemon.Deps{
 			Log:      slog.New(slog.NewTextHandler(w, nil)),
 			Registry: reg,
 			Ready:    func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },

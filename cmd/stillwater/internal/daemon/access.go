@@ -1,4 +1,4 @@
-package main
+package daemon
 
 import (
 	"crypto/sha256"
@@ -42,10 +42,10 @@ func accessOf(c config.Config, getenv func(string) string) (access, []string, er
 	return access{control: ctl, tokenName: c.Control.TokenName, trustNATS: c.Control.TrustNATS, viewer: view}, warn, nil
 }
 
-// loopbackListen reports whether a listen address reaches this machine
+// LoopbackListen reports whether a listen address reaches this machine
 // only. An empty host or a host name other than localhost counts as
 // reachable from outside.
-func loopbackListen(addr string) bool {
+func LoopbackListen(addr string) bool {
 	host, _, err := net.SplitHostPort(addr)
 	if err != nil {
 		return false
@@ -69,7 +69,7 @@ type pictureGate struct {
 }
 
 func newPictureGate(listen string) *pictureGate {
-	return &pictureGate{open: loopbackListen(listen), throttle: arming.NewThrottle(0, 0, nil)}
+	return &pictureGate{open: LoopbackListen(listen), throttle: arming.NewThrottle(0, 0, nil)}
 }
 
 // set swaps the accepted tokens, as a reload does.
@@ -150,10 +150,10 @@ type httpTimeouts struct {
 	Idle       time.Duration // a kept-alive connection waiting for its next request
 }
 
-// defaultHTTPTimeouts suit the daemon's requests (control bodies under
+// DefaultHTTPTimeouts suit the daemon's requests (control bodies under
 // 4 KiB, a picture or the metrics page in the reply). Write covers the
 // longest refusal delay a throttled control client can be made to wait.
-func defaultHTTPTimeouts() httpTimeouts {
+func DefaultHTTPTimeouts() httpTimeouts {
 	return httpTimeouts{ReadHeader: 5 * time.Second, Read: 10 * time.Second, Write: 30 * time.Second, Idle: 10 * time.Second}
 }
 

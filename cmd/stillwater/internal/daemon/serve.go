@@ -1,4 +1,7 @@
-package main
+// Package daemon runs the whole watch: the cameras, the bus, arming,
+// HTTP (health, metrics, control, pictures) and configuration reloads, in
+// one goroutine tree with a written shutdown order.
+package daemon
 
 import (
 	"context"
@@ -31,8 +34,8 @@ import (
 const safetyNotice = "stillwater is a supplementary alarm layer. It does not replace adult supervision, pool fencing, " +
 	"self-closing gates, covers or the alarms your local codes require; follow local codes and licensed installers."
 
-// deps are the daemon's outside dependencies, supplied by run or a test.
-type deps struct {
+// Deps are the daemon's outside dependencies, supplied by run or a test.
+type Deps struct {
 	Log *slog.Logger
 	Now func() time.Time
 	// Registry receives the daemon's metrics; nil makes a fresh one.
@@ -45,8 +48,8 @@ type deps struct {
 	Reload <-chan config.Config
 }
 
-// serve runs the daemon until ctx ends or every camera source has ended.
-func serve(ctx context.Context, cfg config.Config, d deps) error {
+// Serve runs the daemon until ctx ends or every camera source has ended.
+func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 	log := d.Log
 	if log == nil {
 		log = slog.New(slog.NewTextHandler(io.Discard, nil))
@@ -103,7 +106,7 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 	}
 	metrics.RegisterBusMetrics(reg, bus, now)
 
-	busOut := &busSink{pub: pub, met: met}
+	busOut := &BusSink{Pub: pub, Met: met}
 	bs := redactSink{next: busOut, red: redact.Of(log)}
 	for _, cam := range cfg.Cameras {
 		id := cam.ID
@@ -158,7 +161,7 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 	if err != nil {
 		return fmt.Errorf("http.listen %s: %w", cfg.HTTP.Listen, err)
 	}
-	hs := newHTTPServer(mux, defaultHTTPTimeouts(), log)
+	hs := newHTTPServer(mux, DefaultHTTPTimeouts(), log)
 	log.Info("http listening", "addr", ln.Addr().String())
 	if d.Ready != nil {
 		d.Ready(busURL, ln.Addr().String())
@@ -218,15 +221,15 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 			}
 		}()
 	}
-	if left := waitCameras(ctx, watches, stopped, cameraStopWait); len(left) > 0 {
+	if left := waitCameras(ctx, watches, stopped, CameraStopWait); len(left) > 0 {
 		busOut.stop()
 		for _, id := range left {
-			log.Error("camera did not stop; abandoned", "camera", id, "waited", cameraStopWait)
+			log.Error("camera did not stop; abandoned", "camera", id, "waited", CameraStopWait)
 		}
 	}
 	close(camsDone)
 
-	fctx, cancel := context.WithTimeout(context.Background(), flushWait)
+	fctx, cancel := context.WithTimeout(context.Background(), FlushWait)
 	defer cancel()
 	if err := pub.Flush(fctx); err != nil {
 		log.Error("flush bus; what is left stays in the outbox for the next start", "err", err, "depth", pub.Stats().Depth)
@@ -243,8 +246,8 @@ func serve(ctx context.Context, cfg config.Config, d deps) error {
 // stop, then the outbox gets flushWait to reach the bus. systemd's
 // TimeoutStopSec (deploy/stillwater.service) must stay above the sum.
 const (
-	cameraStopWait = 3 * time.Second
-	flushWait      = 5 * time.Second
+	CameraStopWait = 3 * time.Second
+	FlushWait      = 5 * time.Second
 )
 
 // waitCameras waits until every camera's goroutine has closed its channel
@@ -333,12 +336,12 @@ type backlogEvent struct {
 	stats  bus.Stats
 }
 
-// busSink hands messages to the publisher: targets, clears, faults and
+// BusSink hands messages to the publisher: targets, clears, faults and
 // armed changes go to the stream (or the outbox while the bus is down);
 // heartbeats are plain messages, dropped while disconnected.
-type busSink struct {
-	pub *bus.Publisher
-	met *metrics.Metrics
+type BusSink struct {
+	Pub *bus.Publisher
+	Met *metrics.Metrics
 	// closed is set when serve stops with cameras abandoned: what they
 	// send later goes nowhere, not into a closed publisher.
 	closed atomic.Bool
@@ -351,6 +354,7 @@ type redactSink struct {
 	red  *redact.Redactor
 }
 
+// Send hides secrets in m and passes it on.
 func (r redactSink) Send(ctx context.Context, m pipeline.Message) error {
 	m.Data = r.red.Bytes(m.Data)
 	return r.next.Send(ctx, m)
@@ -358,20 +362,21 @@ func (r redactSink) Send(ctx context.Context, m pipeline.Message) error {
 
 var errDaemonStopped = errors.New("the daemon has stopped")
 
-func (b *busSink) stop() { b.closed.Store(true) }
+func (b *BusSink) stop() { b.closed.Store(true) }
 
-func (b *busSink) Send(ctx context.Context, m pipeline.Message) error {
+// Send publishes m, or refuses once the daemon has stopped.
+func (b *BusSink) Send(ctx context.Context, m pipeline.Message) error {
 	if b.closed.Load() {
 		return errDaemonStopped
 	}
-	if err := b.pub.Publish(ctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
+	if err := b.Pub.Publish(ctx, m.Camera, m.Kind, m.ID, m.Data); err != nil {
 		if m.Kind == alert.KindBeat && errors.Is(err, bus.ErrNotConnected) {
 			return nil
 		}
 		return err
 	}
 	if m.Kind == alert.KindBeat { // stream messages count when acknowledged (busResult)
-		b.met.Camera(m.Camera).Published(m.Kind)
+		b.Met.Camera(m.Camera).Published(m.Kind)
 	}
 	return nil
 }

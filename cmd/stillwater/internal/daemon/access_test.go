@@ -1,4 +1,4 @@
-package main
+package daemon
 
 import (
 	"net/http"
@@ -13,7 +13,7 @@ func TestLoopbackListen(t *testing.T) {
 		"127.0.0.1:9310": true, "127.0.0.2:1": true, "[::1]:9310": true, "localhost:9310": true,
 		":9310": false, "0.0.0.0:9310": false, "[::]:9310": false, "192.168.1.5:9310": false, "pool.lan:9310": false, "garbage": false,
 	} {
-		assert.Equal(t, want, loopbackListen(addr), addr)
+		assert.Equal(t, want, LoopbackListen(addr), addr)
 	}
 }
 
