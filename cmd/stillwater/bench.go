@@ -33,6 +33,7 @@ import (
 	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -334,7 +335,7 @@ func benchClips(ctx context.Context, o benchOpts, progress io.Writer) (cam confi
 		}
 		calTruth = evTruth
 	}
-	if cam, err = cameraFromLabels(calTruth, clip); err != nil {
+	if cam, err = tuning.CameraFromLabels(calTruth, clip); err != nil {
 		return cam, "", "", 0, fmt.Errorf("bench: %w", err)
 	}
 	cam.EvidenceSource = evClip

@@ -28,6 +28,7 @@ import (
 	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/cmd/stillwater/internal/testkit"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
@@ -281,7 +282,7 @@ func TestDaemonStartsOverAnEmptySubjectRecord(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders a 10 s clip")
 	}
-	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10; floatingChild(s) })
+	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10; tuning.FloatingChild(s) })
 	cfg := demoConfig(truth, clip, dir, false)
 	cfg.Cameras[0].Loop = true
 	cfg.Cameras[0].Detect.ProcessWidth = 160

@@ -3,6 +3,7 @@ package main
 import (
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 
 	"image"
@@ -406,7 +407,7 @@ func TestDriftCheckerPanAndStill(t *testing.T) {
 	}
 	cases := []tcase{{"pan 3 degrees at 7 s", pan, 7}}
 	for _, name := range []string{"deck", "night", "cloud-child", "far-corner"} {
-		s, ok := scenarioByName(name, 1)
+		s, ok := tuning.ScenarioByName(name, 1)
 		require.True(t, ok, name)
 		cases = append(cases, tcase{"scenario " + name, s, 0})
 	}

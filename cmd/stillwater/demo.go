@@ -20,6 +20,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/synth"
 )
 
@@ -37,12 +38,12 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	if err := fs.Parse(args); err != nil {
 		return errUsage
 	}
-	s, ok := scenarioByName(*scenario, *seed)
+	s, ok := tuning.ScenarioByName(*scenario, *seed)
 	if !ok {
 		return fmt.Errorf("demo: unknown scenario %q: %w", *scenario, errUsage)
 	}
 	if !*upright {
-		floatingChild(&s)
+		tuning.FloatingChild(&s)
 	}
 	work := *dir
 	if work == "" {

@@ -31,6 +31,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 )
 
@@ -224,7 +225,7 @@ func TestHangingSourcesDoNotHoldUpAHealthyCamera(t *testing.T) {
 	if testing.Short() {
 		t.Skip("plays a 20 s clip in real time")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
+	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
 	cfg := demoConfig(truth, clip, dir, true)
 	cfg.HeartbeatEvery = config.Duration(time.Second)
 	silent, pipe := cfg.Cameras[0], cfg.Cameras[0]
@@ -427,7 +428,7 @@ func TestTargetPublishedBeforeItsEvidence(t *testing.T) {
 	if testing.Short() {
 		t.Skip("plays a 20 s clip twice")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
+	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
 	delays := map[bool]time.Duration{}
 	var written time.Duration
 	for _, on := range []bool{false, true} {

@@ -20,6 +20,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
@@ -38,9 +39,9 @@ func renderChild(t *testing.T, dir string) (clip, labels string, truth synth.Tru
 
 // childClip is the scene renderChild renders.
 func childClip() synth.Scene {
-	s, _ := scenarioByName("child", 7)
+	s, _ := tuning.ScenarioByName("child", 7)
 	s.Duration = 14
-	floatingChild(&s)
+	tuning.FloatingChild(&s)
 	return s
 }
 
@@ -80,7 +81,7 @@ func TestReplayMatchesDaemon(t *testing.T) {
 	require.NoError(t, runReplay(context.Background(), []string{"-clip", clip, "-labels", labels}, &again, io.Discard))
 	assert.Equal(t, string(first), again.String(), "replay output is reproducible")
 
-	lines, err := readReplay(bytes.NewReader(first), out)
+	lines, err := tuning.ReadReplay(bytes.NewReader(first), out)
 	require.NoError(t, err)
 	require.NotEmpty(t, lines)
 	schemas := map[string]*jsonschema.Schema{alert.KindTarget: schemaFor(t, alert.KindTarget), alert.KindCleared: schemaFor(t, alert.KindCleared)}
@@ -147,7 +148,7 @@ func TestReplayZoneSuppresses(t *testing.T) {
 			require.NoError(t, os.WriteFile(p, []byte(tt.cfg), 0o644))
 			var out bytes.Buffer
 			require.NoError(t, runReplay(context.Background(), []string{"-clip", clip, "-config", p, "-camera", "pool"}, &out, io.Discard))
-			lines, err := readReplay(&out, "out")
+			lines, err := tuning.ReadReplay(&out, "out")
 			require.NoError(t, err)
 			if tt.wantNone {
 				assert.Empty(t, lines)
@@ -242,10 +243,10 @@ func TestReplayRealFootage(t *testing.T) {
 	excl := config.ZoneConfig{Name: "left", PoolM: [][2]float64{{0, 0}, {3, 0}, {3, 7}, {0, 7}}}
 	run := func(cam config.CameraConfig) ([]alert.Target, error) {
 		var buf bytes.Buffer
-		if _, err := replayClip(context.Background(), cam, "stillwater", &buf, slog.New(slog.NewTextHandler(io.Discard, nil))); err != nil {
+		if _, err := tuning.ReplayClip(context.Background(), cam, "stillwater", &buf, slog.New(slog.NewTextHandler(io.Discard, nil))); err != nil {
 			return nil, err
 		}
-		lines, err := readReplay(&buf, "vtest")
+		lines, err := tuning.ReadReplay(&buf, "vtest")
 		if err != nil {
 			return nil, err
 		}
@@ -289,7 +290,7 @@ func TestReplayRealFootage(t *testing.T) {
 		for _, tg := range ts {
 			speeds = append(speeds, math.Hypot(tg.Velocity.X, tg.Velocity.Y))
 		}
-		return quantile(speeds, 0.5)
+		return tuning.Quantile(speeds, 0.5)
 	}
 	med := medSpeed(walked)
 	t.Logf("vtest: %d tracks (%d targets) without the zone, %d tracks with it; median target speed %.2f m/s (mog2, %d tracks), %.2f m/s (default detector)", tracks(all), len(all), tracks(zoned), med, tracks(walked), medSpeed(zoned))
@@ -323,7 +324,7 @@ func BenchmarkReplayRealFootage(b *testing.B) {
 	var frames int
 	var busy time.Duration
 	for i := 0; i < b.N; i++ {
-		st, err := replayClip(context.Background(), cam, "stillwater", io.Discard, log)
+		st, err := tuning.ReplayClip(context.Background(), cam, "stillwater", io.Discard, log)
 		if err != nil {
 			b.Fatal(err)
 		}

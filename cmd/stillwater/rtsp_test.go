@@ -9,6 +9,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
 )
@@ -31,7 +32,7 @@ func TestRTSPCameraLostAndBack(t *testing.T) {
 	if testing.Short() {
 		t.Skip("runs a live RTSP relay for about a minute")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
+	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
 	require.NotEmpty(t, truth.Presence)
 	entry := time.Duration(truth.Presence[0].From * float64(time.Second))
 

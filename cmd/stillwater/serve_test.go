@@ -11,6 +11,7 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/synth"
 )
 
@@ -43,7 +44,7 @@ func TestEndToEnd(t *testing.T) {
 			// scenario suite's gated scenes).
 			var mod func(*synth.Scene)
 			if tt.intruder {
-				mod = floatingChild
+				mod = tuning.FloatingChild
 			}
 			truth, clip, dir := renderScene(t, tt.scenario, 7, mod)
 			ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)

@@ -23,6 +23,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/synth"
 )
 
@@ -75,7 +76,7 @@ func httpGet(t *testing.T, url string) (int, string) {
 // cachedClip), with a fresh directory for the daemon's data.
 func renderScene(t *testing.T, name string, seed int64, edit func(*synth.Scene)) (synth.Truth, string, string) {
 	t.Helper()
-	s, ok := scenarioByName(name, seed)
+	s, ok := tuning.ScenarioByName(name, seed)
 	require.True(t, ok, "scenario %q", name)
 	if edit != nil {
 		edit(&s)
@@ -171,7 +172,7 @@ func TestDeadCameraIsAFaultAndDoesNotStallOthers(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders a 20 s clip")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
+	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
 	cfg := demoConfig(truth, clip, dir, true)
 	dead := cfg.Cameras[0]
 	dead.ID, dead.Source = "dead", "rtsp://127.0.0.1:9/nothing"

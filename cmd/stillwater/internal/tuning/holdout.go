@@ -1,4 +1,4 @@
-package main
+package tuning
 
 import (
 	"encoding/json"
@@ -176,14 +176,14 @@ func (h holdoutLabels) truth() synth.Truth {
 // project's, except that a still child counts as kept while one track
 // reports it with no silence longer than 2 s.
 func holdoutRules() scoreRules {
-	r := defaultScoreRules()
+	r := DefaultScoreRules()
 	r.MaxGap = 2 * time.Second
 	return r
 }
 
-// readLabels loads a label file in either format the project scores:
+// ReadLabels loads a label file in either format the project scores:
 // stillwater.labels/v1 or pool-holdout-v1 (converted).
-func readLabels(path string) (synth.Truth, error) {
+func ReadLabels(path string) (synth.Truth, error) {
 	format, err := labelFormat(path)
 	if err != nil {
 		return synth.Truth{}, err
@@ -213,10 +213,10 @@ func labelFormat(path string) (string, error) {
 	return f.Format, nil
 }
 
-// cameraForLabels builds the camera for replaying clip from a label file
+// CameraForLabels builds the camera for replaying clip from a label file
 // of either format: the corners alone for stillwater.labels/v1, the
 // installer's full calibration for pool-holdout-v1.
-func cameraForLabels(path, clip string) (config.CameraConfig, error) {
+func CameraForLabels(path, clip string) (config.CameraConfig, error) {
 	format, err := labelFormat(path)
 	if err != nil {
 		return config.CameraConfig{}, err
@@ -232,7 +232,7 @@ func cameraForLabels(path, clip string) (config.CameraConfig, error) {
 	if err != nil {
 		return config.CameraConfig{}, err
 	}
-	return cameraFromLabels(t, clip)
+	return CameraFromLabels(t, clip)
 }
 
 // holdoutH returns the generator's truth homography from undistorted

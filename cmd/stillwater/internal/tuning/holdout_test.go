@@ -1,4 +1,4 @@
-package main
+package tuning
 
 import (
 	"context"
@@ -16,7 +16,6 @@ import (
 
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/homography"
-	"stillwater/vision"
 )
 
 // holdoutEnv overrides where the development clips are read from.
@@ -33,7 +32,7 @@ func holdoutDir(tb testing.TB) string {
 	tb.Helper()
 	dir := os.Getenv(holdoutEnv)
 	if dir == "" {
-		dir = filepath.Join("..", "..", "..", "shared", "holdout-dev")
+		dir = filepath.Join("..", "..", "..", "..", "..", "shared", "holdout-dev")
 	}
 	for _, n := range holdoutClips {
 		for _, ext := range []string{".json", ".mp4"} {
@@ -73,7 +72,7 @@ func TestHoldoutCalibration(t *testing.T) {
 					u, ok := toPx.Map(p)
 					require.True(t, ok)
 					raw := lens.Distort(u)
-					q, ok := calSurface(cal, vision.Point{X: raw.X, Y: raw.Y})
+					q, ok := cal.Surface(homography.Point{X: raw.X, Y: raw.Y})
 					require.True(t, ok, "(%g, %g) m does not map back", x, y)
 					worst = max(worst, q.Dist(p))
 				}
@@ -107,17 +106,17 @@ func TestReadHoldoutLabels(t *testing.T) {
 	require.NoError(t, err)
 
 	// Either format through the one reader the score command uses.
-	tr2, err := readLabels(filepath.Join("testdata", "holdout-mini.json"))
+	tr2, err := ReadLabels(filepath.Join("testdata", "holdout-mini.json"))
 	require.NoError(t, err)
 	assert.Equal(t, tr.Presence, tr2.Presence)
-	_, err = readHoldout(filepath.Join("testdata", "check", "minimal.yaml"))
+	_, err = readHoldout(filepath.Join("..", "..", "testdata", "check", "minimal.yaml"))
 	assert.Error(t, err)
 }
 
 // holdoutRun is one clip's replay and score.
 type holdoutRun struct {
 	Name   string
-	Score  clipScore
+	Score  ClipScore
 	Frames int
 	Cost   time.Duration // replay wall time per frame (decode, vision, tracking)
 }
@@ -136,7 +135,7 @@ func runHoldout(ctx context.Context, dir string, tweak func(*config.DetectConfig
 		if tweak != nil {
 			tweak(&cam.Detect)
 		}
-		cs, st, err := replayScore(ctx, clipJob{Name: n, Clip: clip, Truth: h.truth()}, cam, holdoutRules(), log)
+		cs, st, err := ReplayScore(ctx, ClipJob{Name: n, Clip: clip, Truth: h.truth()}, cam, holdoutRules(), log)
 		if err != nil {
 			return nil, err
 		}
@@ -147,15 +146,15 @@ func runHoldout(ctx context.Context, dir string, tweak func(*config.DetectConfig
 
 // printHoldout writes the score table and the per-clip tracking lines.
 func printHoldout(w io.Writer, rs []holdoutRun) scoreTotal {
-	var cs []clipScore
+	var cs []ClipScore
 	for _, r := range rs {
 		cs = append(cs, r.Score)
 	}
-	writeScores(w, cs)
+	WriteScores(w, cs)
 	for _, r := range rs {
 		fmt.Fprintf(w, "%s: %d frames, %.1f ms a frame replayed; longest still-kept run %.1f s\n", r.Name, r.Frames, r.Cost.Seconds()*1000, r.Score.Tracked)
 	}
-	return totalOf(cs)
+	return TotalOf(cs)
 }
 
 // BenchmarkHoldoutDev replays the three independently rendered development
@@ -196,10 +195,10 @@ func reportHoldout(b *testing.B, rs []holdoutRun, t scoreTotal) {
 	b.ReportMetric(float64(t.Detected), "detected")
 	b.ReportMetric(float64(t.Presences), "intruders")
 	b.ReportMetric(float64(t.False), "false_alarms")
-	b.ReportMetric(quantile(t.Delays, 0.5), "delay_med_s")
-	b.ReportMetric(maxOf(t.Delays), "delay_max_s")
-	b.ReportMetric(quantile(t.Errors, 0.5), "err_med_m")
-	b.ReportMetric(quantile(t.Errors, 0.95), "err_p95_m")
+	b.ReportMetric(Quantile(t.Delays, 0.5), "delay_med_s")
+	b.ReportMetric(MaxOf(t.Delays), "delay_max_s")
+	b.ReportMetric(Quantile(t.Errors, 0.5), "err_med_m")
+	b.ReportMetric(Quantile(t.Errors, 0.95), "err_p95_m")
 	kept := 0.0
 	var frames int
 	var cost time.Duration
@@ -225,14 +224,14 @@ func printTargets(w io.Writer, t scoreTotal, kept, keptMin float64) {
 		}
 		return "MISSED"
 	}
-	med, worst := quantile(t.Delays, 0.5), maxOf(t.Delays)
-	em, e95 := quantile(t.Errors, 0.5), quantile(t.Errors, 0.95)
+	med, worst := Quantile(t.Delays, 0.5), MaxOf(t.Delays)
+	em, e95 := Quantile(t.Errors, 0.5), Quantile(t.Errors, 0.95)
 	fmt.Fprintln(w, "targets:")
 	fmt.Fprintf(w, "  every intruder detected: %d of %d, %s\n", t.Detected, t.Presences, mark(t.Detected == t.Presences))
-	fmt.Fprintf(w, "  first alert median ≤ 1.0 s: %s s, %s\n", fmtNum(med, 2), mark(med <= 1))
-	fmt.Fprintf(w, "  first alert worst ≤ 2.0 s: %s s, %s\n", fmtNum(worst, 2), mark(worst <= 2))
+	fmt.Fprintf(w, "  first alert median ≤ 1.0 s: %s s, %s\n", FmtNum(med, 2), mark(med <= 1))
+	fmt.Fprintf(w, "  first alert worst ≤ 2.0 s: %s s, %s\n", FmtNum(worst, 2), mark(worst <= 2))
 	fmt.Fprintf(w, "  no false alarm: %d in %.3f h of intruder-free footage, %s\n", t.False, t.FreeHours, mark(t.False == 0))
 	fmt.Fprintf(w, "  still child kept ≥ %.0f s: %.1f s, %s\n", keptMin, kept, mark(kept >= keptMin))
-	fmt.Fprintf(w, "  position error median ≤ 0.25 m: %s m, %s\n", fmtNum(em, 3), mark(em <= 0.25))
-	fmt.Fprintf(w, "  position error p95 ≤ 0.5 m: %s m, %s\n", fmtNum(e95, 3), mark(e95 <= 0.5))
+	fmt.Fprintf(w, "  position error median ≤ 0.25 m: %s m, %s\n", FmtNum(em, 3), mark(em <= 0.25))
+	fmt.Fprintf(w, "  position error p95 ≤ 0.5 m: %s m, %s\n", FmtNum(e95, 3), mark(e95 <= 0.5))
 }

@@ -1,18 +1,12 @@
-// Command stillwater score compares replay output with the clip's labels:
-// detection, first-alert delay, false alarms, position error, track breaks
-// and picture faults, per clip and in total.
-package main
+package tuning
 
 import (
-	"context"
 	"encoding/json"
-	"flag"
 	"fmt"
 	"io"
 	"math"
 	"os"
 	"sort"
-	"strings"
 	"text/tabwriter"
 	"time"
 
@@ -35,12 +29,13 @@ type scoreRules struct {
 	MaxGap time.Duration
 }
 
-func defaultScoreRules() scoreRules {
+// DefaultScoreRules are the scoring rules of the score command.
+func DefaultScoreRules() scoreRules {
 	return scoreRules{Grace: time.Second, FarM: 1.0, MaxGap: time.Second}
 }
 
-// clipScore is the result for one clip. Times are seconds of media time.
-type clipScore struct {
+// ClipScore is the result for one clip. Times are seconds of media time.
+type ClipScore struct {
 	Name      string
 	Duration  float64 // s of footage
 	FreeHours float64 // hours of intruder-free footage
@@ -68,10 +63,10 @@ type clipScore struct {
 	FaultEach  []float64
 }
 
-// faultKindOf returns the fault a labelled camera fault should raise:
+// FaultKindOf returns the fault a labelled camera fault should raise:
 // black → camera_blinded, frozen → camera_frozen, noise → camera_noise (a
 // fault kind itself is taken as it is).
-func faultKindOf(label string) (string, error) {
+func FaultKindOf(label string) (string, error) {
 	switch label {
 	case synth.FaultBlack:
 		return alert.FaultCameraBlinded, nil
@@ -87,17 +82,17 @@ func faultKindOf(label string) (string, error) {
 }
 
 // missed returns the number of presence intervals without a target.
-func (c clipScore) missed() int { return c.Presences - c.Detected }
+func (c ClipScore) missed() int { return c.Presences - c.Detected }
 
 // scoreClip scores one replay against its labels.
-func scoreClip(name string, lines []replayLine, t synth.Truth, rules scoreRules) (clipScore, error) {
-	cs := clipScore{Name: name, Presences: len(t.Presence), FaultsLabelled: len(t.Faults)}
+func scoreClip(name string, lines []ReplayLine, t synth.Truth, rules scoreRules) (ClipScore, error) {
+	cs := ClipScore{Name: name, Presences: len(t.Presence), FaultsLabelled: len(t.Faults)}
 	if t.Frames <= 0 {
 		return cs, fmt.Errorf("score %s: labels give no frame count; set \"frames\" to the clip's number of frames", name)
 	}
 	faultKinds := make([]string, len(t.Faults))
 	for i, f := range t.Faults {
-		k, err := faultKindOf(f.Kind)
+		k, err := FaultKindOf(f.Kind)
 		if err != nil {
 			return cs, fmt.Errorf("score %s: %w", name, err)
 		}
@@ -260,7 +255,8 @@ type scoreTotal struct {
 	FaultDelays                                             []float64
 }
 
-func totalOf(cs []clipScore) scoreTotal {
+// TotalOf sums the scores of clips.
+func TotalOf(cs []ClipScore) scoreTotal {
 	var t scoreTotal
 	for _, c := range cs {
 		t.Clips++
@@ -289,9 +285,9 @@ func (t scoreTotal) falsePerHour() float64 {
 	return float64(t.False) / t.FreeHours
 }
 
-// quantile returns the q-quantile of v by linear interpolation between
+// Quantile returns the q-quantile of v by linear interpolation between
 // order statistics (NaN for none).
-func quantile(v []float64, q float64) float64 {
+func Quantile(v []float64, q float64) float64 {
 	if len(v) == 0 {
 		return math.NaN()
 	}
@@ -303,7 +299,8 @@ func quantile(v []float64, q float64) float64 {
 	return s[lo] + (pos-float64(lo))*(s[hi]-s[lo])
 }
 
-func maxOf(v []float64) float64 {
+// MaxOf returns the largest of v, NaN for none.
+func MaxOf(v []float64) float64 {
 	m := math.NaN()
 	for _, x := range v {
 		if math.IsNaN(m) || x > m {
@@ -313,8 +310,8 @@ func maxOf(v []float64) float64 {
 	return m
 }
 
-// scoreLimits turn a score into pass or fail; negative fields are unset.
-type scoreLimits struct {
+// ScoreLimits turn a score into pass or fail; negative fields are unset.
+type ScoreLimits struct {
 	MaxDelay  time.Duration // worst first-alert delay
 	MaxFalse  int           // false alarms in total
 	MaxP95    float64       // m, 95th percentile position error
@@ -328,14 +325,14 @@ type scoreLimits struct {
 	MaxFaultTargets int
 }
 
-// check returns one line per broken limit.
-func (l scoreLimits) check(t scoreTotal) []string {
+// Check returns one line per broken limit.
+func (l ScoreLimits) Check(t scoreTotal) []string {
 	var out []string
 	if t.Detected < t.Presences {
 		out = append(out, fmt.Sprintf("%d of %d intruder presences never raised a target", t.Presences-t.Detected, t.Presences))
 	}
 	if l.MaxDelay >= 0 {
-		if d := maxOf(t.Delays); d > l.MaxDelay.Seconds() {
+		if d := MaxOf(t.Delays); d > l.MaxDelay.Seconds() {
 			out = append(out, fmt.Sprintf("worst first-alert delay %.2f s exceeds %v", d, l.MaxDelay))
 		}
 	}
@@ -343,7 +340,7 @@ func (l scoreLimits) check(t scoreTotal) []string {
 		out = append(out, fmt.Sprintf("%d false alarms exceed %d", t.False, l.MaxFalse))
 	}
 	if l.MaxP95 >= 0 {
-		if p := quantile(t.Errors, 0.95); p > l.MaxP95 {
+		if p := Quantile(t.Errors, 0.95); p > l.MaxP95 {
 			out = append(out, fmt.Sprintf("p95 position error %.3f m exceeds %g m", p, l.MaxP95))
 		}
 	}
@@ -354,7 +351,7 @@ func (l scoreLimits) check(t scoreTotal) []string {
 		if t.FaultsRaised < t.FaultsLabelled {
 			out = append(out, fmt.Sprintf("%d of %d labelled picture faults never raised their fault", t.FaultsLabelled-t.FaultsRaised, t.FaultsLabelled))
 		}
-		if d := maxOf(t.FaultDelays); d > l.MaxFaultDelay.Seconds() {
+		if d := MaxOf(t.FaultDelays); d > l.MaxFaultDelay.Seconds() {
 			out = append(out, fmt.Sprintf("worst picture-fault delay %.2f s exceeds %v", d, l.MaxFaultDelay))
 		}
 	}
@@ -367,8 +364,8 @@ func (l scoreLimits) check(t scoreTotal) []string {
 	return out
 }
 
-// writeScores prints the per-clip table and the total.
-func writeScores(w io.Writer, cs []clipScore) {
+// WriteScores prints the per-clip table and the total.
+func WriteScores(w io.Writer, cs []ClipScore) {
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
 	fmt.Fprintln(tw, "clip\tfootage s\tdetected\tdelay s\tfalse\tfalse/h\terr med m\terr p95 m\tbreaks\tfaults\tfault s\tunlabelled faults\ttargets in fault\t")
 	row := func(name string, dur float64, t scoreTotal) {
@@ -380,89 +377,48 @@ func writeScores(w io.Writer, cs []clipScore) {
 		if t.FaultsLabelled > 0 {
 			faults = fmt.Sprintf("%d/%d", t.FaultsRaised, t.FaultsLabelled)
 		}
-		fmt.Fprintf(tw, "%s\t%.0f\t%s\t%s\t%d\t%s\t%s\t%s\t%d\t%s\t%s\t%d\t%d\t\n", name, dur, det, fmtNum(maxOf(t.Delays), 2), t.False,
-			fmtNum(t.falsePerHour(), 1), fmtNum(quantile(t.Errors, 0.5), 3), fmtNum(quantile(t.Errors, 0.95), 3), t.Breaks,
-			faults, fmtNum(maxOf(t.FaultDelays), 2), t.FalseFaults, t.FaultTargets)
+		fmt.Fprintf(tw, "%s\t%.0f\t%s\t%s\t%d\t%s\t%s\t%s\t%d\t%s\t%s\t%d\t%d\t\n", name, dur, det, FmtNum(MaxOf(t.Delays), 2), t.False,
+			FmtNum(t.falsePerHour(), 1), FmtNum(Quantile(t.Errors, 0.5), 3), FmtNum(Quantile(t.Errors, 0.95), 3), t.Breaks,
+			faults, FmtNum(MaxOf(t.FaultDelays), 2), t.FalseFaults, t.FaultTargets)
 	}
 	var dur float64
 	for _, c := range cs {
-		row(c.Name, c.Duration, totalOf([]clipScore{c}))
+		row(c.Name, c.Duration, TotalOf([]ClipScore{c}))
 		dur += c.Duration
 	}
-	t := totalOf(cs)
+	t := TotalOf(cs)
 	row("total", dur, t)
 	tw.Flush()
 	fmt.Fprintf(w, "first-alert delay: median %s s, worst %s s over %d detections; intruder-free footage %.2f h\n",
-		fmtNum(quantile(t.Delays, 0.5), 2), fmtNum(maxOf(t.Delays), 2), len(t.Delays), t.FreeHours)
+		FmtNum(Quantile(t.Delays, 0.5), 2), FmtNum(MaxOf(t.Delays), 2), len(t.Delays), t.FreeHours)
 	if t.FaultsLabelled > 0 || t.FalseFaults > 0 || t.FaultTargets > 0 {
 		fmt.Fprintf(w, "picture faults: %d of %d raised, delay median %s s, worst %s s; %d raised with none labelled; %d targets while a fault was on\n",
-			t.FaultsRaised, t.FaultsLabelled, fmtNum(quantile(t.FaultDelays, 0.5), 2), fmtNum(maxOf(t.FaultDelays), 2), t.FalseFaults, t.FaultTargets)
+			t.FaultsRaised, t.FaultsLabelled, FmtNum(Quantile(t.FaultDelays, 0.5), 2), FmtNum(MaxOf(t.FaultDelays), 2), t.FalseFaults, t.FaultTargets)
 	}
 }
 
-func fmtNum(v float64, prec int) string {
+// FmtNum formats v with prec decimals, "-" for NaN.
+func FmtNum(v float64, prec int) string {
 	if math.IsNaN(v) {
 		return "-"
 	}
 	return fmt.Sprintf("%.*f", prec, v)
 }
 
-// runScore is "stillwater score replay.jsonl labels.json [replay labels ...]".
-func runScore(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("score", flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	fs.Usage = func() {
-		fmt.Fprintln(stderr, "usage: stillwater score [flags] replay.jsonl labels.json [replay.jsonl labels.json ...]")
-		fs.PrintDefaults()
-	}
-	lim := scoreLimits{}
-	fs.DurationVar(&lim.MaxDelay, "max-delay", -1, "fail when the worst first-alert delay exceeds this `duration`")
-	fs.IntVar(&lim.MaxFalse, "max-false", -1, "fail when there are more false alarms than this `count`")
-	fs.Float64Var(&lim.MaxP95, "max-p95", -1, "fail when the 95th percentile position error exceeds this many `metres`")
-	fs.IntVar(&lim.MaxBreaks, "max-breaks", -1, "fail when there are more track breaks than this `count`")
-	fs.DurationVar(&lim.MaxFaultDelay, "max-fault-delay", -1, "fail when a labelled picture fault is not raised within this `duration` of its onset")
-	fs.IntVar(&lim.MaxFalseFaults, "max-unlabelled-faults", -1, "fail when more picture faults than this `count` are raised with none labelled")
-	fs.IntVar(&lim.MaxFaultTargets, "max-fault-targets", -1, "fail when more targets than this `count` start while a labelled fault is on")
-	rules := defaultScoreRules()
-	fs.Float64Var(&rules.FarM, "far", rules.FarM, "`metres` from the intruder beyond which a new target is a false alarm")
-	fs.DurationVar(&rules.Grace, "grace", rules.Grace, "how long after the intruder leaves a target still counts as theirs")
-	if err := fs.Parse(args); err != nil {
-		return errUsage
-	}
-	rest := fs.Args()
-	if len(rest) == 0 || len(rest)%2 != 0 {
-		fs.Usage()
-		return fmt.Errorf("score: want pairs of replay output and label file, got %d arguments: %w", len(rest), errUsage)
-	}
-	var cs []clipScore
-	for i := 0; i < len(rest); i += 2 {
-		c, err := scoreFiles(rest[i], rest[i+1], rules)
-		if err != nil {
-			return err
-		}
-		cs = append(cs, c)
-	}
-	writeScores(stdout, cs)
-	if bad := lim.check(totalOf(cs)); len(bad) > 0 {
-		return fmt.Errorf("score: %s", strings.Join(bad, "; "))
-	}
-	return nil
-}
-
-// scoreFiles reads one replay output and its labels and scores them.
-func scoreFiles(replayPath, labelPath string, rules scoreRules) (clipScore, error) {
+// ScoreFiles reads one replay output and its labels and scores them.
+func ScoreFiles(replayPath, labelPath string, rules scoreRules) (ClipScore, error) {
 	f, err := os.Open(replayPath)
 	if err != nil {
-		return clipScore{}, fmt.Errorf("score: %w", err)
+		return ClipScore{}, fmt.Errorf("score: %w", err)
 	}
 	defer f.Close()
-	lines, err := readReplay(f, replayPath)
+	lines, err := ReadReplay(f, replayPath)
 	if err != nil {
-		return clipScore{}, fmt.Errorf("score: %w", err)
+		return ClipScore{}, fmt.Errorf("score: %w", err)
 	}
-	t, err := readLabels(labelPath)
+	t, err := ReadLabels(labelPath)
 	if err != nil {
-		return clipScore{}, fmt.Errorf("score: %w", err)
+		return ClipScore{}, fmt.Errorf("score: %w", err)
 	}
 	return scoreClip(replayPath, lines, t, rules)
 }

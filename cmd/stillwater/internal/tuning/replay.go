@@ -1,20 +1,19 @@
-// Command stillwater replay runs the daemon's detection pipeline over a
-// recorded clip as fast as the CPU allows and writes every message it would
-// publish as one JSON line.
-package main
+// Package tuning measures detection against labelled clips: replay runs
+// the daemon's pipeline over a clip, score compares its messages with the
+// labels, sweep searches detection settings, and the independent
+// development clips (pool-holdout-v1) are read and calibrated here.
+package tuning
 
 import (
 	"bufio"
 	"context"
 	"encoding/json"
 	"errors"
-	"flag"
 	"fmt"
 	"image"
 	"io"
 	"log/slog"
 	"math"
-	"os"
 	"strconv"
 	"strings"
 	"time"
@@ -30,9 +29,9 @@ import (
 // that the same clip gives the same bytes on every run.
 func replayEpoch() time.Time { return time.Date(2026, 1, 1, 0, 0, 0, 0, time.UTC) }
 
-// replayLine is one line of replay output: the subject and payload the
+// ReplayLine is one line of replay output: the subject and payload the
 // daemon would publish, with the clip's frame index and media time.
-type replayLine struct {
+type ReplayLine struct {
 	Subject string          `json:"subject"`
 	Frame   int             `json:"frame"`
 	Media   float64         `json:"media_s"` // seconds from the first frame
@@ -47,114 +46,13 @@ type replayStats struct {
 	Elapsed  time.Duration
 }
 
-// runReplay is "stillwater replay".
-func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("replay", flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	clip := fs.String("clip", "", "video `file` to replay")
-	cfgPath := fs.String("config", "", "daemon config `file` (with -camera)")
-	camID := fs.String("camera", "", "camera `id` in the config whose settings to use")
-	labels := fs.String("labels", "", "label `file` (stillwater.labels/v1 or pool-holdout-v1) giving the calibration (instead of -config)")
-	out := fs.String("out", "", "output `file` (default standard output)")
-	prefix := fs.String("prefix", "stillwater", "bus subject `prefix` with -labels")
-	verbose := fs.Bool("v", false, "log at debug level to standard error; with -labels, also say why the labelled intruder is not reported (at most once a second)")
-	why := fs.String("why", "", "with -labels, explain these frame `numbers` (\"120,121\") on standard error")
-	var ov config.DetectOverrides
-	ov.Register(fs)
-	if err := fs.Parse(args); err != nil {
-		return errUsage
-	}
-	if *clip == "" {
-		return fmt.Errorf("replay: -clip is required: %w", errUsage)
-	}
-	if err := ov.Validate(); err != nil {
-		return fmt.Errorf("replay: %w: %w", err, errUsage)
-	}
-	var cam config.CameraConfig
-	pfx := *prefix
-	switch {
-	case *labels != "" && *cfgPath != "":
-		return fmt.Errorf("replay: give either -labels or -config, not both: %w", errUsage)
-	case *labels != "":
-		var err error
-		cam, err = cameraForLabels(*labels, *clip)
-		if err != nil {
-			return fmt.Errorf("replay: labels %s: %w", *labels, err)
-		}
-	case *cfgPath != "":
-		cfg, err := config.LoadConfig(*cfgPath)
-		if err != nil {
-			return fmt.Errorf("replay: %w", err)
-		}
-		c, ok := findCamera(cfg, *camID)
-		if !ok {
-			return fmt.Errorf("replay: config %s has no camera %q (use -camera): %w", *cfgPath, *camID, errUsage)
-		}
-		cam, pfx = c, cfg.Bus.Prefix
-		cam.Source = *clip
-	default:
-		return fmt.Errorf("replay: give -labels or -config and -camera: %w", errUsage)
-	}
-	cam.Detect = ov.Apply(cam.Detect)
-	if err := config.ValidateDetect("replay", cam.Detect); err != nil {
-		return fmt.Errorf("replay: %w", err)
-	}
-	var opts []func(*pipeline.Processor)
-	if *labels != "" && (*verbose || *why != "") {
-		o, err := explainOption(*labels, *why, *verbose, stderr)
-		if err != nil {
-			return fmt.Errorf("replay: %w", err)
-		}
-		opts = append(opts, o)
-	} else if *why != "" {
-		return fmt.Errorf("replay: -why needs -labels: %w", errUsage)
-	}
-	w := stdout
-	if *out != "" {
-		f, err := os.Create(*out)
-		if err != nil {
-			return fmt.Errorf("replay: %w", err)
-		}
-		defer f.Close()
-		w = f
-	}
-	lv := slog.LevelWarn
-	if *verbose {
-		lv = slog.LevelDebug
-	}
-	log := slog.New(slog.NewTextHandler(stderr, &slog.HandlerOptions{Level: lv}))
-	bw := bufio.NewWriter(w)
-	st, err := replayClip(ctx, cam, pfx, bw, log, opts...)
-	if ferr := bw.Flush(); err == nil && ferr != nil {
-		err = fmt.Errorf("replay: write output: %w", ferr)
-	}
-	if err != nil {
-		return err
-	}
-	fmt.Fprintf(stderr, "replay: %d frames (%.1f s of media) in %.1f s, %d messages\n", st.Frames, st.Media.Seconds(), st.Elapsed.Seconds(), st.Messages)
-	return nil
-}
-
-// findCamera returns the camera with id, or the only camera when id is empty.
-func findCamera(cfg config.Config, id string) (config.CameraConfig, bool) {
-	if id == "" && len(cfg.Cameras) == 1 {
-		return cfg.Cameras[0], true
-	}
-	for _, c := range cfg.Cameras {
-		if c.ID == id {
-			return c, true
-		}
-	}
-	return config.CameraConfig{}, false
-}
-
-// cameraFromLabels builds a camera with the default detect settings from a
+// CameraFromLabels builds a camera with the default detect settings from a
 // label file, using what an installer has: the pool size and the corners A,
 // B, C, D as seen on the raw frame, and, where the labels give them (family
 // scenes do), the frame size, the chessboard lens, the measured camera
 // position and the depth profile. The labels' camera angles and field of
 // view are not used: an installer does not measure them.
-func cameraFromLabels(t synth.Truth, clip string) (config.CameraConfig, error) {
+func CameraFromLabels(t synth.Truth, clip string) (config.CameraConfig, error) {
 	if t.Pool.Length <= 0 || t.Pool.Width <= 0 {
 		return config.CameraConfig{}, fmt.Errorf("pool %gx%g m: both sides must be positive", t.Pool.Length, t.Pool.Width)
 	}
@@ -216,7 +114,7 @@ type replaySink struct {
 
 func (s *replaySink) write(m pipeline.Message) error {
 	s.n++
-	return s.enc.Encode(replayLine{
+	return s.enc.Encode(ReplayLine{
 		Subject: alert.Subject(s.prefix, m.Camera, m.Kind),
 		Frame:   m.Frame,
 		Media:   math.Round(m.Media.Seconds()*1e6) / 1e6,
@@ -224,11 +122,11 @@ func (s *replaySink) write(m pipeline.Message) error {
 	})
 }
 
-// replayClip runs the daemon's pipeline (the same camera, detector, picture
+// ReplayClip runs the daemon's pipeline (the same camera, detector, picture
 // checks, processor and step, always armed) over cam.Source and writes each
 // message to w: targets, clears, and picture faults raised and cleared. Wall-clock fields of the messages are taken from media time after
 // replayEpoch, so the output is reproducible.
-func replayClip(ctx context.Context, cam config.CameraConfig, prefix string, w io.Writer, log *slog.Logger, opts ...func(*pipeline.Processor)) (replayStats, error) {
+func ReplayClip(ctx context.Context, cam config.CameraConfig, prefix string, w io.Writer, log *slog.Logger, opts ...func(*pipeline.Processor)) (replayStats, error) {
 	var st replayStats
 	start := time.Now()
 	cal, err := config.NewCalibration(cam)
@@ -298,9 +196,9 @@ func replayClip(ctx context.Context, cam config.CameraConfig, prefix string, w i
 	return st, nil
 }
 
-// readReplay parses replay output.
-func readReplay(r io.Reader, name string) ([]replayLine, error) {
-	var out []replayLine
+// ReadReplay parses replay output.
+func ReadReplay(r io.Reader, name string) ([]ReplayLine, error) {
+	var out []ReplayLine
 	sc := bufio.NewScanner(r)
 	sc.Buffer(make([]byte, 64<<10), 4<<20)
 	n := 0
@@ -309,7 +207,7 @@ func readReplay(r io.Reader, name string) ([]replayLine, error) {
 		if len(sc.Bytes()) == 0 {
 			continue
 		}
-		var l replayLine
+		var l ReplayLine
 		if err := json.Unmarshal(sc.Bytes(), &l); err != nil {
 			return nil, fmt.Errorf("%s:%d: %w", name, n, err)
 		}
@@ -324,11 +222,11 @@ func readReplay(r io.Reader, name string) ([]replayLine, error) {
 	return out, nil
 }
 
-// explainOption reads the labels and returns the replay option that
+// ExplainOption reads the labels and returns the replay option that
 // explains the frames listed in why ("120,121"), and with verbose every
 // unreported frame at most once a second, on w.
-func explainOption(labels, why string, verbose bool, w io.Writer) (func(*pipeline.Processor), error) {
-	t, err := readLabels(labels)
+func ExplainOption(labels, why string, verbose bool, w io.Writer) (func(*pipeline.Processor), error) {
+	t, err := ReadLabels(labels)
 	if err != nil {
 		return nil, err
 	}
@@ -344,6 +242,6 @@ func explainOption(labels, why string, verbose bool, w io.Writer) (func(*pipelin
 	if verbose {
 		every = time.Second
 	}
-	e := pipeline.NewExplainer(t, defaultScoreRules().FarM, w, every, frames)
+	e := pipeline.NewExplainer(t, DefaultScoreRules().FarM, w, every, frames)
 	return func(p *pipeline.Processor) { p.Explain = e.Frame }, nil
 }

@@ -1,4 +1,4 @@
-package main
+package tuning
 
 import (
 	"context"
@@ -49,7 +49,7 @@ func (c suiteClip) scene() (synth.Scene, error) {
 	if c.Family {
 		return synth.FamilyScene(c.Seed, c.Variant), nil
 	}
-	s, ok := scenarioByName(c.Scene, c.Seed)
+	s, ok := ScenarioByName(c.Scene, c.Seed)
 	if !ok {
 		return s, fmt.Errorf("no scene %q", c.Scene)
 	}
@@ -96,7 +96,7 @@ func suiteClips() []suiteClip {
 // suiteResult is a clip's score and how long its render and replay took.
 type suiteResult struct {
 	Clip   suiteClip
-	Score  clipScore
+	Score  ClipScore
 	Render time.Duration
 	Replay time.Duration
 	Frames int
@@ -133,11 +133,11 @@ func runSuite(ctx context.Context, dir string, clips []suiteClip, limit int) ([]
 				return fmt.Errorf("render %s: %w", c.name(), err)
 			}
 			t1 := time.Now()
-			cam, err := cameraFromLabels(truth, clip)
+			cam, err := CameraFromLabels(truth, clip)
 			if err != nil {
 				return fmt.Errorf("%s: %w", c.name(), err)
 			}
-			cs, st, err := replayScore(gctx, clipJob{Name: c.name(), Clip: clip, Truth: truth}, cam, defaultScoreRules(), log)
+			cs, st, err := ReplayScore(gctx, ClipJob{Name: c.name(), Clip: clip, Truth: truth}, cam, DefaultScoreRules(), log)
 			if err != nil {
 				return err
 			}
@@ -183,7 +183,7 @@ func defaultSuiteLimits() suiteLimits {
 // alarms, delays, position errors), and the seconds of intruder-free
 // footage.
 func judgeSuite(rs []suiteResult, lim suiteLimits) (fails, targets []string, free float64) {
-	var gated []clipScore
+	var gated []ClipScore
 	for _, r := range rs {
 		if !r.Clip.Gate {
 			continue
@@ -205,20 +205,20 @@ func judgeSuite(rs []suiteResult, lim suiteLimits) (fails, targets []string, fre
 			}
 		}
 	}
-	t := totalOf(gated)
+	t := TotalOf(gated)
 	if t.False > lim.FalseAlarms {
 		targets = append(targets, fmt.Sprintf("%d false alarms over %.0f s of intruder-free footage, want ≤ %d", t.False, free, lim.FalseAlarms))
 	}
-	if m := quantile(t.Delays, 0.5); !(m <= lim.DelayMedian.Seconds()) {
+	if m := Quantile(t.Delays, 0.5); !(m <= lim.DelayMedian.Seconds()) {
 		targets = append(targets, fmt.Sprintf("median first-alert delay %.2f s, want ≤ %v", m, lim.DelayMedian))
 	}
-	if m := maxOf(t.Delays); !(m <= lim.DelayWorst.Seconds()) {
+	if m := MaxOf(t.Delays); !(m <= lim.DelayWorst.Seconds()) {
 		targets = append(targets, fmt.Sprintf("worst first-alert delay %.2f s, want ≤ %v", m, lim.DelayWorst))
 	}
-	if m := quantile(t.Errors, 0.5); !(m <= lim.ErrMedian) {
+	if m := Quantile(t.Errors, 0.5); !(m <= lim.ErrMedian) {
 		targets = append(targets, fmt.Sprintf("median position error %.3f m, want ≤ %g m", m, lim.ErrMedian))
 	}
-	if m := quantile(t.Errors, 0.95); !(m <= lim.ErrP95) {
+	if m := Quantile(t.Errors, 0.95); !(m <= lim.ErrP95) {
 		targets = append(targets, fmt.Sprintf("p95 position error %.3f m, want ≤ %g m", m, lim.ErrP95))
 	}
 	return fails, targets, free
@@ -269,9 +269,9 @@ func BenchmarkScenarioSuite(b *testing.B) {
 // printSuite writes the per-clip table, the intruder-free clips pooled per
 // scene, and the totals.
 func printSuite(w io.Writer, rs []suiteResult) {
-	var intr []clipScore
-	byScene := map[string][]clipScore{}
-	var known []clipScore
+	var intr []ClipScore
+	byScene := map[string][]ClipScore{}
+	var known []ClipScore
 	for _, r := range rs {
 		switch {
 		case !r.Clip.Gate:
@@ -282,7 +282,7 @@ func printSuite(w io.Writer, rs []suiteResult) {
 			byScene[r.Clip.Scene] = append(byScene[r.Clip.Scene], r.Score)
 		}
 	}
-	var rows []clipScore
+	var rows []ClipScore
 	rows = append(rows, intr...)
 	var scenes []string
 	for s := range byScene {
@@ -292,7 +292,7 @@ func printSuite(w io.Writer, rs []suiteResult) {
 	for _, s := range scenes {
 		rows = append(rows, pooled(s+" ×"+fmt.Sprint(len(byScene[s])), byScene[s]))
 	}
-	writeScores(w, rows)
+	WriteScores(w, rows)
 	for _, r := range rs {
 		if r.Clip.Scene == "still-child" {
 			fmt.Fprintf(w, "%s: tracked without a gap for %.1f s, %d track breaks\n", r.Score.Name, r.Score.Tracked, r.Score.Breaks)
@@ -300,18 +300,18 @@ func printSuite(w io.Writer, rs []suiteResult) {
 	}
 	if len(known) > 0 {
 		fmt.Fprintln(w, "known limits, not gated:")
-		writeScores(w, known)
+		WriteScores(w, known)
 	}
 }
 
 // pooled merges clip scores into one row named name.
-func pooled(name string, cs []clipScore) clipScore {
-	t := totalOf(cs)
+func pooled(name string, cs []ClipScore) ClipScore {
+	t := TotalOf(cs)
 	var d float64
 	for _, c := range cs {
 		d += c.Duration
 	}
-	return clipScore{Name: name, Duration: d, FreeHours: t.FreeHours, Presences: t.Presences, Detected: t.Detected,
+	return ClipScore{Name: name, Duration: d, FreeHours: t.FreeHours, Presences: t.Presences, Detected: t.Detected,
 		Delays: t.Delays, False: t.False, Errors: t.Errors, Breaks: t.Breaks,
 		FaultsLabelled: t.FaultsLabelled, FaultsRaised: t.FaultsRaised, FaultDelays: t.FaultDelays, FalseFaults: t.FalseFaults, FaultTargets: t.FaultTargets}
 }
@@ -352,7 +352,7 @@ func TestStillChildFiveMinutes(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders and replays a 320 s clip")
 	}
-	s, ok := scenarioByName("still-child", 7)
+	s, ok := ScenarioByName("still-child", 7)
 	if !ok {
 		t.Fatal("no still-child scene")
 	}
@@ -361,16 +361,16 @@ func TestStillChildFiveMinutes(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	cam, err := cameraFromLabels(truth, clip)
+	cam, err := CameraFromLabels(truth, clip)
 	if err != nil {
 		t.Fatal(err)
 	}
-	cs, st, err := replayScore(context.Background(), clipJob{Name: "still-child", Clip: clip, Truth: truth}, cam, defaultScoreRules(), slog.New(slog.NewTextHandler(io.Discard, nil)))
+	cs, st, err := ReplayScore(context.Background(), ClipJob{Name: "still-child", Clip: clip, Truth: truth}, cam, DefaultScoreRules(), slog.New(slog.NewTextHandler(io.Discard, nil)))
 	if err != nil {
 		t.Fatal(err)
 	}
 	var sb strings.Builder
-	writeScores(&sb, []clipScore{cs})
+	WriteScores(&sb, []ClipScore{cs})
 	t.Logf("%d frames\n%s tracked without a gap for %.1f s", st.Frames, sb.String(), cs.Tracked)
 	if cs.missed() > 0 {
 		t.Fatal("the child was never detected")
@@ -383,7 +383,7 @@ func TestStillChildFiveMinutes(t *testing.T) {
 	if want := p.To - p.From - cs.Delays[0] - 0.5; cs.Tracked < want {
 		t.Errorf("tracked without a gap for %.1f s of %.1f s", cs.Tracked, want)
 	}
-	if e := quantile(cs.Errors, 0.95); e > 0.5 {
+	if e := Quantile(cs.Errors, 0.95); e > 0.5 {
 		t.Errorf("p95 position error %.3f m, want ≤ 0.5 m", e)
 	}
 }

@@ -1,4 +1,4 @@
-package main
+package tuning
 
 import (
 	"context"
@@ -153,7 +153,7 @@ const longStill = 120.0
 
 func familyFiguresOf(rs []suiteResult, lim familyLimits) familyFigures {
 	var f familyFigures
-	var cs []clipScore
+	var cs []ClipScore
 	for _, r := range rs {
 		cs = append(cs, r.Score)
 		f.Frames += r.Frames
@@ -171,7 +171,7 @@ func familyFiguresOf(rs []suiteResult, lim familyLimits) familyFigures {
 			}
 		}
 	}
-	f.Total = totalOf(cs)
+	f.Total = TotalOf(cs)
 	return f
 }
 
@@ -199,17 +199,17 @@ func judgeFamily(f familyFigures, lim familyLimits) (faultFails, detectFails []s
 	if t.FaultTargets > 0 {
 		detectFails = append(detectFails, fmt.Sprintf("%d targets raised during camera faults", t.FaultTargets))
 	}
-	if m := quantile(t.Delays, 0.5); !(m <= l.DelayMedian.Seconds()) {
-		detectFails = append(detectFails, fmt.Sprintf("median first-alert delay %s s, want ≤ %v", fmtNum(m, 2), l.DelayMedian))
+	if m := Quantile(t.Delays, 0.5); !(m <= l.DelayMedian.Seconds()) {
+		detectFails = append(detectFails, fmt.Sprintf("median first-alert delay %s s, want ≤ %v", FmtNum(m, 2), l.DelayMedian))
 	}
-	if m := maxOf(t.Delays); !(m <= l.DelayWorst.Seconds()) {
-		detectFails = append(detectFails, fmt.Sprintf("worst first-alert delay %s s, want ≤ %v", fmtNum(m, 2), l.DelayWorst))
+	if m := MaxOf(t.Delays); !(m <= l.DelayWorst.Seconds()) {
+		detectFails = append(detectFails, fmt.Sprintf("worst first-alert delay %s s, want ≤ %v", FmtNum(m, 2), l.DelayWorst))
 	}
-	if m := quantile(t.Errors, 0.5); !(m <= l.ErrMedian) {
-		detectFails = append(detectFails, fmt.Sprintf("median position error %s m, want ≤ %g m", fmtNum(m, 3), l.ErrMedian))
+	if m := Quantile(t.Errors, 0.5); !(m <= l.ErrMedian) {
+		detectFails = append(detectFails, fmt.Sprintf("median position error %s m, want ≤ %g m", FmtNum(m, 3), l.ErrMedian))
 	}
-	if m := quantile(t.Errors, 0.95); !(m <= l.ErrP95) {
-		detectFails = append(detectFails, fmt.Sprintf("p95 position error %s m, want ≤ %g m", fmtNum(m, 3), l.ErrP95))
+	if m := Quantile(t.Errors, 0.95); !(m <= l.ErrP95) {
+		detectFails = append(detectFails, fmt.Sprintf("p95 position error %s m, want ≤ %g m", FmtNum(m, 3), l.ErrP95))
 	}
 	for _, s := range f.Still {
 		// Kept as one track for the whole stillness, less one update
@@ -224,8 +224,8 @@ func judgeFamily(f familyFigures, lim familyLimits) (faultFails, detectFails []s
 // printFamily writes the per-clip table (Quiet scenes pooled), the
 // still children, the faults by kind and the headline figures.
 func printFamily(w io.Writer, name string, rs []suiteResult, f familyFigures) {
-	var rows []clipScore
-	var quiet []clipScore
+	var rows []ClipScore
+	var quiet []ClipScore
 	for _, r := range rs {
 		if r.Clip.Variant == synth.Quiet {
 			quiet = append(quiet, r.Score)
@@ -234,9 +234,9 @@ func printFamily(w io.Writer, name string, rs []suiteResult, f familyFigures) {
 		rows = append(rows, r.Score)
 	}
 	if len(quiet) > 0 {
-		rows = append([]clipScore{pooled(fmt.Sprintf("quiet ×%d", len(quiet)), quiet)}, rows...)
+		rows = append([]ClipScore{pooled(fmt.Sprintf("quiet ×%d", len(quiet)), quiet)}, rows...)
 	}
-	writeScores(w, rows)
+	WriteScores(w, rows)
 	for _, s := range f.Still {
 		fmt.Fprintf(w, "%s: child still for %.0f s, one track kept %.1f s, %d track breaks\n", s.Name, s.StillFor, s.Tracked, s.Breaks)
 	}
@@ -270,8 +270,8 @@ func printFamily(w io.Writer, name string, rs []suiteResult, f familyFigures) {
 		still = fmt.Sprintf("shortest %.1f s (%s, still for %.0f s)", lo.Tracked, lo.Name, lo.StillFor)
 	}
 	fmt.Fprintf(w, "%s: intruders detected %d/%d; first alert median %s s, worst %s s; false alarms %d over %.2f h intruder-free (%.2f h of Quiet scenes); still child kept as one track: %s; position error median %s m, p95 %s m; camera faults raised within 3 s %d/%d, targets during faults %d; %d clips, %d frames in %.0f s\n",
-		name, t.Detected, t.Presences, fmtNum(quantile(t.Delays, 0.5), 2), fmtNum(maxOf(t.Delays), 2), t.False, t.FreeHours, f.QuietHours,
-		still, fmtNum(quantile(t.Errors, 0.5), 3), fmtNum(quantile(t.Errors, 0.95), 3), f.FaultsInTime, t.FaultsLabelled, t.FaultTargets,
+		name, t.Detected, t.Presences, FmtNum(Quantile(t.Delays, 0.5), 2), FmtNum(MaxOf(t.Delays), 2), t.False, t.FreeHours, f.QuietHours,
+		still, FmtNum(Quantile(t.Errors, 0.5), 3), FmtNum(Quantile(t.Errors, 0.95), 3), f.FaultsInTime, t.FaultsLabelled, t.FaultTargets,
 		len(rs), f.Frames, f.Wall.Seconds())
 }
 
@@ -296,8 +296,8 @@ func runFamilyBench(b *testing.B, name string, clips []suiteClip, gate bool) {
 		t := f.Total
 		b.ReportMetric(float64(t.Detected), "detected")
 		b.ReportMetric(float64(t.Presences), "intruders")
-		b.ReportMetric(quantile(t.Delays, 0.5), "delay_med_s")
-		b.ReportMetric(maxOf(t.Delays), "delay_max_s")
+		b.ReportMetric(Quantile(t.Delays, 0.5), "delay_med_s")
+		b.ReportMetric(MaxOf(t.Delays), "delay_max_s")
 		b.ReportMetric(float64(t.False), "false")
 		b.ReportMetric(t.FreeHours, "free_h")
 		if len(f.Still) > 0 {
@@ -307,8 +307,8 @@ func runFamilyBench(b *testing.B, name string, clips []suiteClip, gate bool) {
 			}
 			b.ReportMetric(lo, "still_track_s")
 		}
-		b.ReportMetric(quantile(t.Errors, 0.5), "err_med_m")
-		b.ReportMetric(quantile(t.Errors, 0.95), "err_p95_m")
+		b.ReportMetric(Quantile(t.Errors, 0.5), "err_med_m")
+		b.ReportMetric(Quantile(t.Errors, 0.95), "err_p95_m")
 		b.ReportMetric(float64(f.FaultsInTime), "faults_3s")
 		b.ReportMetric(float64(t.FaultsLabelled), "faults")
 		b.ReportMetric(float64(t.FaultTargets), "fault_targets")

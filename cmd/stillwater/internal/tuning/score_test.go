@@ -1,12 +1,8 @@
-package main
+package tuning
 
 import (
-	"bytes"
-	"encoding/json"
 	"fmt"
 	"math"
-	"os"
-	"path/filepath"
 	"strings"
 	"testing"
 	"time"
@@ -19,19 +15,19 @@ import (
 )
 
 // targetLine is a replay line for a target message at frame f (10 fps).
-func targetLine(t *testing.T, f, track int, event string, x, y float64) replayLine {
+func targetLine(t *testing.T, f, track int, event string, x, y float64) ReplayLine {
 	t.Helper()
 	b, err := alert.Encode(alert.Target{V: alert.Version, Kind: alert.KindTarget, Camera: "clip", Track: track, Event: event,
 		Frame: f, Surface: alert.Position{X: x, Y: y}, Area: 0.04})
 	require.NoError(t, err)
-	return replayLine{Subject: "stillwater.clip.target", Frame: f, Media: float64(f) / 10, Msg: b}
+	return ReplayLine{Subject: "stillwater.clip.target", Frame: f, Media: float64(f) / 10, Msg: b}
 }
 
-func clearedLine(t *testing.T, f, track int) replayLine {
+func clearedLine(t *testing.T, f, track int) ReplayLine {
 	t.Helper()
 	b, err := alert.Encode(alert.Cleared{V: alert.Version, Kind: alert.KindCleared, Camera: "clip", Track: track, Frame: f})
 	require.NoError(t, err)
-	return replayLine{Subject: "stillwater.clip.cleared", Frame: f, Media: float64(f) / 10, Msg: b}
+	return ReplayLine{Subject: "stillwater.clip.cleared", Frame: f, Media: float64(f) / 10, Msg: b}
 }
 
 // handTruth is a 20 s clip at 10 fps with an intruder at (2, 1) m from 8 s
@@ -53,9 +49,9 @@ func handTruth(withFrames bool) synth.Truth {
 func TestScoreClip(t *testing.T) {
 	tests := []struct {
 		name   string
-		lines  func(t *testing.T) []replayLine
+		lines  func(t *testing.T) []ReplayLine
 		frames bool
-		want   clipScore
+		want   ClipScore
 	}{
 		{
 			// Worked by hand:
@@ -70,8 +66,8 @@ func TestScoreClip(t *testing.T) {
 			// Free footage 20 − 8 = 12 s. Longest unbroken run: track 2,
 			// 8.7–9.2 s = 0.5 s.
 			name: "labelled positions",
-			lines: func(t *testing.T) []replayLine {
-				return []replayLine{
+			lines: func(t *testing.T) []ReplayLine {
+				return []ReplayLine{
 					targetLine(t, 30, 1, "start", 5, 3),
 					targetLine(t, 35, 1, "update", 5, 3),
 					targetLine(t, 87, 2, "start", 2.1, 1),
@@ -82,7 +78,7 @@ func TestScoreClip(t *testing.T) {
 				}
 			},
 			frames: true,
-			want: clipScore{Name: "c", Duration: 20, FreeHours: 12.0 / 3600, Presences: 1, Detected: 1,
+			want: ClipScore{Name: "c", Duration: 20, FreeHours: 12.0 / 3600, Presences: 1, Detected: 1,
 				Delays: []float64{0.7}, False: 2, Errors: []float64{0.1, 0.2, 0.3}, Breaks: 2, Tracked: 0.5},
 		},
 		{
@@ -94,8 +90,8 @@ func TestScoreClip(t *testing.T) {
 			//        longest unbroken run is 9.0–10.0 = 1.0 s
 			// 17.5 s start track 5: after 16 s + 1 s grace → false
 			name: "presence only",
-			lines: func(t *testing.T) []replayLine {
-				return []replayLine{
+			lines: func(t *testing.T) []ReplayLine {
+				return []ReplayLine{
 					targetLine(t, 90, 1, "start", 2, 1),
 					targetLine(t, 95, 1, "update", 2, 1),
 					targetLine(t, 100, 1, "update", 2, 1),
@@ -103,18 +99,18 @@ func TestScoreClip(t *testing.T) {
 					targetLine(t, 175, 5, "start", 6, 3),
 				}
 			},
-			want: clipScore{Name: "c", Duration: 20, FreeHours: 12.0 / 3600, Presences: 1, Detected: 1,
+			want: ClipScore{Name: "c", Duration: 20, FreeHours: 12.0 / 3600, Presences: 1, Detected: 1,
 				Delays: []float64{1.0}, False: 1, Tracked: 1.0},
 		},
 		{
 			name:  "missed",
-			lines: func(t *testing.T) []replayLine { return nil },
-			want:  clipScore{Name: "c", Duration: 20, FreeHours: 12.0 / 3600, Presences: 1},
+			lines: func(t *testing.T) []ReplayLine { return nil },
+			want:  ClipScore{Name: "c", Duration: 20, FreeHours: 12.0 / 3600, Presences: 1},
 		},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
-			got, err := scoreClip("c", tt.lines(t), handTruth(tt.frames), defaultScoreRules())
+			got, err := scoreClip("c", tt.lines(t), handTruth(tt.frames), DefaultScoreRules())
 			require.NoError(t, err)
 			assert.Equal(t, tt.want.Presences, got.Presences)
 			assert.Equal(t, tt.want.Detected, got.Detected)
@@ -133,90 +129,48 @@ func TestScoreTotals(t *testing.T) {
 	// Errors 0.1, 0.2, 0.3: median 0.2; p95 at rank 0.95·2 = 1.9, so
 	// 0.2 + 0.9·(0.3 − 0.2) = 0.29 (linear interpolation between order
 	// statistics). Two false alarms in 12 s are 600 per hour.
-	c := clipScore{Presences: 1, Detected: 1, Delays: []float64{0.7}, False: 2, FreeHours: 12.0 / 3600, Errors: []float64{0.3, 0.1, 0.2}, Breaks: 2}
-	tot := totalOf([]clipScore{c})
-	assert.InDelta(t, 0.2, quantile(tot.Errors, 0.5), 1e-12)
-	assert.InDelta(t, 0.29, quantile(tot.Errors, 0.95), 1e-12)
+	c := ClipScore{Presences: 1, Detected: 1, Delays: []float64{0.7}, False: 2, FreeHours: 12.0 / 3600, Errors: []float64{0.3, 0.1, 0.2}, Breaks: 2}
+	tot := TotalOf([]ClipScore{c})
+	assert.InDelta(t, 0.2, Quantile(tot.Errors, 0.5), 1e-12)
+	assert.InDelta(t, 0.29, Quantile(tot.Errors, 0.95), 1e-12)
 	assert.InDelta(t, 600, tot.falsePerHour(), 1e-9)
-	assert.True(t, math.IsNaN(quantile(nil, 0.5)))
+	assert.True(t, math.IsNaN(Quantile(nil, 0.5)))
 
 	tests := []struct {
 		name string
-		lim  scoreLimits
+		lim  ScoreLimits
 		want int // broken limits
 	}{
-		{"none set", scoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}, 0},
-		{"delay", scoreLimits{MaxDelay: 500 * time.Millisecond, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}, 1},
-		{"delay met", scoreLimits{MaxDelay: time.Second, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}, 0},
-		{"false", scoreLimits{MaxDelay: -1, MaxFalse: 0, MaxP95: -1, MaxBreaks: -1}, 1},
-		{"p95", scoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: 0.25, MaxBreaks: -1}, 1},
-		{"all", scoreLimits{MaxDelay: 0, MaxFalse: 0, MaxP95: 0, MaxBreaks: 0}, 4},
+		{"none set", ScoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}, 0},
+		{"delay", ScoreLimits{MaxDelay: 500 * time.Millisecond, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}, 1},
+		{"delay met", ScoreLimits{MaxDelay: time.Second, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}, 0},
+		{"false", ScoreLimits{MaxDelay: -1, MaxFalse: 0, MaxP95: -1, MaxBreaks: -1}, 1},
+		{"p95", ScoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: 0.25, MaxBreaks: -1}, 1},
+		{"all", ScoreLimits{MaxDelay: 0, MaxFalse: 0, MaxP95: 0, MaxBreaks: 0}, 4},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
-			assert.Len(t, tt.lim.check(tot), tt.want)
+			assert.Len(t, tt.lim.Check(tot), tt.want)
 		})
 	}
-	missed := totalOf([]clipScore{{Presences: 2, Detected: 1}})
-	assert.Len(t, scoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}.check(missed), 1, "a missed intruder always fails")
-}
-
-func TestRunScoreFiles(t *testing.T) {
-	dir := t.TempDir()
-	var rb bytes.Buffer
-	enc := json.NewEncoder(&rb)
-	for _, l := range []replayLine{targetLine(t, 87, 2, "start", 2.1, 1), targetLine(t, 97, 3, "start", 4, 1)} {
-		require.NoError(t, enc.Encode(l))
-	}
-	rp := filepath.Join(dir, "r.jsonl")
-	require.NoError(t, os.WriteFile(rp, rb.Bytes(), 0o644))
-	// A hand-written label file: format, fps, frames and presence only.
-	lp := filepath.Join(dir, "l.json")
-	require.NoError(t, os.WriteFile(lp, []byte(`{"format":"stillwater.labels/v1","fps":10,"frames":200,"presence":[{"from_s":8,"to_s":16}]}`), 0o644))
-
-	tests := []struct {
-		name    string
-		args    []string
-		wantErr string
-	}{
-		{"no limits", []string{rp, lp}, ""},
-		{"delay met", []string{"-max-delay", "1s", rp, lp}, ""},
-		// Without positions the 4 m start counts as the intruder's track (a
-		// second id: one break), not as a false alarm.
-		{"breaks", []string{"-max-breaks", "0", rp, lp}, "1 track breaks exceed 0"},
-		{"delay missed", []string{"-max-delay", "500ms", rp, lp}, "worst first-alert delay 0.70 s exceeds 500ms"},
-		{"odd args", []string{rp}, "usage"},
-		{"bad labels", []string{rp, rp}, "read labels"},
-	}
-	for _, tt := range tests {
-		t.Run(tt.name, func(t *testing.T) {
-			var out, errb bytes.Buffer
-			err := runScore(t.Context(), tt.args, &out, &errb)
-			if tt.wantErr == "" {
-				require.NoError(t, err)
-				assert.Contains(t, out.String(), "1/1")
-				return
-			}
-			require.Error(t, err)
-			assert.Contains(t, err.Error(), tt.wantErr)
-		})
-	}
+	missed := TotalOf([]ClipScore{{Presences: 2, Detected: 1}})
+	assert.Len(t, ScoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1}.Check(missed), 1, "a missed intruder always fails")
 }
 
 func TestReadReplayErrors(t *testing.T) {
-	_, err := readReplay(strings.NewReader("{\"subject\":\"a\",\"msg\":{}}\nnot json\n"), "x.jsonl")
+	_, err := ReadReplay(strings.NewReader("{\"subject\":\"a\",\"msg\":{}}\nnot json\n"), "x.jsonl")
 	require.Error(t, err)
 	assert.Contains(t, err.Error(), "x.jsonl:2")
-	_, err = readReplay(strings.NewReader(`{"subject":"a"}`), "y.jsonl")
+	_, err = ReadReplay(strings.NewReader(`{"subject":"a"}`), "y.jsonl")
 	assert.ErrorContains(t, err, fmt.Sprintf("%s:1: no msg", "y.jsonl"))
 }
 
 // faultLine is a replay line for a fault message at frame f (10 fps).
-func faultLine(t *testing.T, f int, kind string, active bool) replayLine {
+func faultLine(t *testing.T, f int, kind string, active bool) ReplayLine {
 	t.Helper()
 	b, err := alert.Encode(alert.NewFault("clip", uint64(f), replayEpoch(), kind, active, ""))
 	require.NoError(t, err)
-	return replayLine{Subject: "stillwater.clip.fault", Frame: f, Media: float64(f) / 10, Msg: b}
+	return ReplayLine{Subject: "stillwater.clip.fault", Frame: f, Media: float64(f) / 10, Msg: b}
 }
 
 func TestScoreFaults(t *testing.T) {
@@ -232,8 +186,8 @@ func TestScoreFaults(t *testing.T) {
 	// The black fault never raised camera_blinded while it was on.
 	truth := synth.Truth{Format: synth.LabelFormat, FPS: 10, Frames: 300,
 		Faults: []synth.Fault{{Kind: synth.FaultFrozen, From: 10, To: 20}, {Kind: synth.FaultBlack, From: 24, To: 27}}}
-	lines := func(t *testing.T) []replayLine {
-		return []replayLine{
+	lines := func(t *testing.T) []ReplayLine {
+		return []ReplayLine{
 			faultLine(t, 50, alert.FaultCameraLost, true),
 			faultLine(t, 123, alert.FaultCameraFrozen, true),
 			targetLine(t, 130, 1, "start", 2, 1),
@@ -242,7 +196,7 @@ func TestScoreFaults(t *testing.T) {
 			faultLine(t, 280, alert.FaultCameraBlinded, true),
 		}
 	}
-	got, err := scoreClip("c", lines(t), truth, defaultScoreRules())
+	got, err := scoreClip("c", lines(t), truth, DefaultScoreRules())
 	require.NoError(t, err)
 	assert.Equal(t, 2, got.FaultsLabelled)
 	assert.Equal(t, 1, got.FaultsRaised)
@@ -251,23 +205,23 @@ func TestScoreFaults(t *testing.T) {
 	assert.Equal(t, 1, got.FaultTargets)
 	assert.Equal(t, 1, got.False)
 
-	tot := totalOf([]clipScore{got})
-	none := scoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1, MaxFaultDelay: -1, MaxFalseFaults: -1, MaxFaultTargets: -1}
-	assert.Empty(t, none.check(tot))
+	tot := TotalOf([]ClipScore{got})
+	none := ScoreLimits{MaxDelay: -1, MaxFalse: -1, MaxP95: -1, MaxBreaks: -1, MaxFaultDelay: -1, MaxFalseFaults: -1, MaxFaultTargets: -1}
+	assert.Empty(t, none.Check(tot))
 	lim := none
 	lim.MaxFaultDelay = 3 * time.Second
-	assert.Equal(t, []string{"1 of 2 labelled picture faults never raised their fault"}, lim.check(tot))
+	assert.Equal(t, []string{"1 of 2 labelled picture faults never raised their fault"}, lim.Check(tot))
 	lim.MaxFaultDelay = 2 * time.Second
-	assert.Len(t, lim.check(tot), 2, "and 2.3 s is late")
+	assert.Len(t, lim.Check(tot), 2, "and 2.3 s is late")
 	lim = none
 	lim.MaxFalseFaults, lim.MaxFaultTargets = 0, 0
-	assert.Equal(t, []string{"2 picture faults raised with none labelled exceed 0", "1 targets raised during a picture fault exceed 0"}, lim.check(tot))
+	assert.Equal(t, []string{"2 picture faults raised with none labelled exceed 0", "1 targets raised during a picture fault exceed 0"}, lim.Check(tot))
 
 	var sb strings.Builder
-	writeScores(&sb, []clipScore{got})
+	WriteScores(&sb, []ClipScore{got})
 	assert.Contains(t, sb.String(), "picture faults: 1 of 2 raised, delay median 2.30 s, worst 2.30 s; 2 raised with none labelled; 1 targets while a fault was on")
 
 	truth.Faults = []synth.Fault{{Kind: "smoke", From: 1, To: 2}}
-	_, err = scoreClip("c", nil, truth, defaultScoreRules())
+	_, err = scoreClip("c", nil, truth, DefaultScoreRules())
 	assert.ErrorContains(t, err, `labelled fault "smoke"`)
 }
