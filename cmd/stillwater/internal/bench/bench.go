@@ -1,4 +1,7 @@
-package main
+// Package bench runs cameras in real time through the daemon and measures
+// its cost: CPU, memory, latency and dropped frames, beside yardstick
+// loops (decode alone, ffmpeg, a plain OpenCV loop).
+package bench
 
 import (
 	"bufio"
@@ -6,7 +9,6 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
-	"flag"
 	"fmt"
 	"image"
 	"io"
@@ -38,104 +40,47 @@ import (
 	"stillwater/vision/synth"
 )
 
-// runBench is "stillwater bench": N cameras played in real time through
-// the whole daemon (serve, its embedded bus, a subscriber timing what
-// arrives), and, in the same run, the same clip decoded alone and run
-// through a plain OpenCV motion loop, so that what the daemon costs is a
-// ratio to what decoding costs.
-func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := flag.NewFlagSet("bench", flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	var o benchOpts
-	var size, evSize string
-	fs.IntVar(&o.cameras, "cameras", 1, "`number` of cameras, each playing the clip")
-	fs.StringVar(&size, "size", "640x360", "frame `size` of the generated clip: WxH, or 360p, 720p, 1080p")
-	fs.Float64Var(&o.fps, "fps", 15, "frame `rate` of the generated clips")
-	fs.StringVar(&o.codec, "codec", "h264", "`codec` of the generated clip: h264, mpeg4 or mjpeg")
-	fs.DurationVar(&o.duration, "duration", 60*time.Second, "how long the cameras run")
-	fs.DurationVar(&o.warmup, "warmup", 10*time.Second, "first part of the run left out of the figures (opening, background learning)")
-	fs.StringVar(&o.clip, "clip", "", "a video `file` to play instead of a generated clip (watched as if an 8 × 4 m pool filled its middle)")
-	fs.StringVar(&evSize, "evidence-size", "", "also give each camera an evidence stream of this `size` (WxH or 1080p), copied without decoding")
-	fs.StringVar(&o.evClip, "evidence-clip", "", "the evidence stream's video `file` instead of a generated one")
-	fs.Int64Var(&o.seed, "seed", 34, "`seed` of the generated family scene (34: daylight, a child in the water from about 6 s)")
-	fs.Float64Var(&o.clipSeconds, "clip-seconds", 40, "`length` of the generated clip, played in a loop")
-	fs.IntVar(&o.repeat, "repeat", 3, "`runs` of each yardstick loop; the median is reported")
-	fs.BoolVar(&o.loops, "loops", true, "run the yardsticks (decode alone, ffmpeg decode, plain OpenCV loop) after the cameras")
-	fs.StringVar(&o.dataDir, "data-dir", "", "data `directory` of the daemon (default: a temporary one, removed after)")
-	fs.StringVar(&o.cache, "cache", "", "render cache `directory` (default: testdata/cache/synth in the checkout, else the user cache)")
-	verbose := fs.Bool("v", false, "log the daemon to stderr")
-	if err := fs.Parse(args); err != nil {
-		return errUsage
-	}
-	var err error
-	if o.size, err = parseSize(size); err != nil {
-		return fmt.Errorf("bench -size: %v: %w", err, errUsage)
-	}
-	if evSize != "" {
-		if o.evSize, err = parseSize(evSize); err != nil {
-			return fmt.Errorf("bench -evidence-size: %v: %w", err, errUsage)
-		}
-	}
-	if err := o.validate(); err != nil {
-		return fmt.Errorf("bench: %v: %w", err, errUsage)
-	}
-	log := slog.New(slog.NewTextHandler(io.Discard, nil))
-	if *verbose {
-		log = slog.New(slog.NewTextHandler(stderr, nil))
-	}
-	res, err := bench(ctx, o, log, stderr)
-	if err != nil {
-		return err
-	}
-	res.print(stdout)
-	b, err := json.Marshal(res)
-	if err != nil {
-		return err
-	}
-	_, err = fmt.Fprintf(stdout, "%s\n", b)
-	return err
+// Options are bench's flags.
+type Options struct {
+	Cameras          int
+	Size, EvSize     image.Point
+	Fps              float64
+	Codec            string
+	Duration, Warmup time.Duration
+	Clip, EvClip     string
+	Seed             int64
+	ClipSeconds      float64
+	Repeat           int
+	Loops            bool
+	DataDir, Cache   string
 }
 
-// benchOpts are bench's flags.
-type benchOpts struct {
-	cameras          int
-	size, evSize     image.Point
-	fps              float64
-	codec            string
-	duration, warmup time.Duration
-	clip, evClip     string
-	seed             int64
-	clipSeconds      float64
-	repeat           int
-	loops            bool
-	dataDir, cache   string
-}
-
-func (o benchOpts) validate() error {
+// Validate rejects options the run cannot honour.
+func (o Options) Validate() error {
 	switch {
-	case o.cameras < 1 || o.cameras > 64:
-		return fmt.Errorf("-cameras %d: want 1 to 64", o.cameras)
-	case o.fps <= 0 || o.fps > 60:
-		return fmt.Errorf("-fps %g: want up to 60", o.fps)
-	case o.duration <= o.warmup:
-		return fmt.Errorf("-duration %v must be longer than -warmup %v", o.duration, o.warmup)
-	case o.warmup < 0:
-		return fmt.Errorf("-warmup %v: want 0 or more", o.warmup)
-	case o.clipSeconds < 2:
-		return fmt.Errorf("-clip-seconds %g: want at least 2", o.clipSeconds)
-	case o.repeat < 1:
-		return fmt.Errorf("-repeat %d: want at least 1", o.repeat)
+	case o.Cameras < 1 || o.Cameras > 64:
+		return fmt.Errorf("-cameras %d: want 1 to 64", o.Cameras)
+	case o.Fps <= 0 || o.Fps > 60:
+		return fmt.Errorf("-fps %g: want up to 60", o.Fps)
+	case o.Duration <= o.Warmup:
+		return fmt.Errorf("-duration %v must be longer than -warmup %v", o.Duration, o.Warmup)
+	case o.Warmup < 0:
+		return fmt.Errorf("-warmup %v: want 0 or more", o.Warmup)
+	case o.ClipSeconds < 2:
+		return fmt.Errorf("-clip-seconds %g: want at least 2", o.ClipSeconds)
+	case o.Repeat < 1:
+		return fmt.Errorf("-repeat %d: want at least 1", o.Repeat)
 	}
-	switch o.codec {
+	switch o.Codec {
 	case "h264", "mpeg4", "mjpeg":
 	default:
-		return fmt.Errorf("-codec %q: want h264, mpeg4 or mjpeg", o.codec)
+		return fmt.Errorf("-codec %q: want h264, mpeg4 or mjpeg", o.Codec)
 	}
 	return nil
 }
 
-// parseSize reads WxH or a name.
-func parseSize(s string) (image.Point, error) {
+// ParseSize reads WxH or a name.
+func ParseSize(s string) (image.Point, error) {
 	switch strings.ToLower(s) {
 	case "360p":
 		return image.Pt(640, 360), nil
@@ -153,9 +98,9 @@ func parseSize(s string) (image.Point, error) {
 	return image.Pt(W, H), nil
 }
 
-// benchResult is what bench measured; it is printed as a table and as one
+// Result is what bench measured; it is printed as a table and as one
 // JSON line.
-type benchResult struct {
+type Result struct {
 	Cameras      int     `json:"cameras"`
 	Size         string  `json:"size"`
 	FPS          float64 `json:"fps"`
@@ -220,10 +165,10 @@ type benchCamera struct {
 	AgeMaxS   float64 `json:"frame_age_max_s"`
 }
 
-// bench prepares the clips, runs the daemon over them and the yardsticks
+// Run prepares the clips, runs the daemon over them and the yardsticks
 // after it.
-func bench(ctx context.Context, o benchOpts, log *slog.Logger, progress io.Writer) (benchResult, error) {
-	res := benchResult{Cameras: o.cameras, FPS: o.fps, Codec: o.codec, DurationS: o.duration.Seconds(), WindowS: (o.duration - o.warmup).Seconds(),
+func Run(ctx context.Context, o Options, log *slog.Logger, progress io.Writer) (Result, error) {
+	res := Result{Cameras: o.Cameras, FPS: o.Fps, Codec: o.Codec, DurationS: o.Duration.Seconds(), WindowS: (o.Duration - o.Warmup).Seconds(),
 		CPUs: runtime.NumCPU(), CPUModel: cpuModel(), LoadAvg: loadAvg(), Go: runtime.Version(), Faults: map[string]int{}}
 	cam, clip, evClip, clipFrames, err := benchClips(ctx, o, progress)
 	if err != nil {
@@ -246,7 +191,7 @@ func bench(ctx context.Context, o benchOpts, log *slog.Logger, progress io.Write
 		res.EvidenceSize = fmt.Sprintf("%dx%d", ev.Size.X, ev.Size.Y)
 	}
 
-	dir := o.dataDir
+	dir := o.DataDir
 	if dir == "" {
 		d, err := os.MkdirTemp("", "stillwater-bench-")
 		if err != nil {
@@ -259,7 +204,7 @@ func bench(ctx context.Context, o benchOpts, log *slog.Logger, progress io.Write
 	cfg.DataDir = dir
 	cfg.HTTP.Listen = "127.0.0.1:0"
 	cfg.Bus.Listen = "127.0.0.1:-1"
-	for i := 0; i < o.cameras; i++ {
+	for i := 0; i < o.Cameras; i++ {
 		c := cam
 		c.ID = fmt.Sprintf("cam%d", i+1)
 		cfg.Cameras = append(cfg.Cameras, c)
@@ -281,7 +226,7 @@ func bench(ctx context.Context, o benchOpts, log *slog.Logger, progress io.Write
 	if err := benchDaemon(ctx, o, cfg, &res, log, progress); err != nil {
 		return res, err
 	}
-	if o.loops {
+	if o.Loops {
 		if err := benchLoops(ctx, o, clip, clipFrames, &res, progress); err != nil {
 			return res, err
 		}
@@ -292,17 +237,17 @@ func bench(ctx context.Context, o benchOpts, log *slog.Logger, progress io.Write
 
 // benchClips returns the camera (calibration, source, evidence stream)
 // and the clips it plays: generated and cached, or given.
-func benchClips(ctx context.Context, o benchOpts, progress io.Writer) (cam config.CameraConfig, clip, evClip string, frames int, err error) {
-	if o.clip != "" {
-		info, err := vision.ProbeClip(o.clip)
+func benchClips(ctx context.Context, o Options, progress io.Writer) (cam config.CameraConfig, clip, evClip string, frames int, err error) {
+	if o.Clip != "" {
+		info, err := vision.ProbeClip(o.Clip)
 		if err != nil {
 			return cam, "", "", 0, err
 		}
-		cam = givenClipCamera(o.clip, info.Size)
-		cam.EvidenceSource = o.evClip
-		return finishBenchCamera(cam), o.clip, o.evClip, info.Frames, nil
+		cam = givenClipCamera(o.Clip, info.Size)
+		cam.EvidenceSource = o.EvClip
+		return finishBenchCamera(cam), o.Clip, o.EvClip, info.Frames, nil
 	}
-	cache := o.cache
+	cache := o.Cache
 	if cache == "" {
 		if cache, err = synth.CacheDir(); err != nil {
 			base, uerr := os.UserCacheDir()
@@ -312,25 +257,25 @@ func benchClips(ctx context.Context, o benchOpts, progress io.Writer) (cam confi
 			cache = filepath.Join(base, "stillwater", "synth")
 		}
 	}
-	base := synth.FamilyScene(o.seed, synth.Intruder)
+	base := synth.FamilyScene(o.Seed, synth.Intruder)
 	render := func(size image.Point, codec string) (string, synth.Truth, error) {
-		s, err := synth.Sized(base, size.X, size.Y, o.fps, o.clipSeconds, codec)
+		s, err := synth.Sized(base, size.X, size.Y, o.Fps, o.ClipSeconds, codec)
 		if err != nil {
 			return "", synth.Truth{}, err
 		}
-		fmt.Fprintf(progress, "clip %dx%d %g fps %s, %g s (rendered once, then cached in %s) ...\n", size.X, size.Y, o.fps, codec, o.clipSeconds, cache)
+		fmt.Fprintf(progress, "clip %dx%d %g fps %s, %g s (rendered once, then cached in %s) ...\n", size.X, size.Y, o.Fps, codec, o.ClipSeconds, cache)
 		video, _, truth, err := synth.Cached(ctx, s, cache)
 		return video, truth, err
 	}
-	clip, truth, err := render(o.size, o.codec)
+	clip, truth, err := render(o.Size, o.Codec)
 	if err != nil {
 		return cam, "", "", 0, fmt.Errorf("bench: %w", err)
 	}
 	calTruth := truth
-	evClip = o.evClip
-	if o.evSize != (image.Point{}) && evClip == "" {
+	evClip = o.EvClip
+	if o.EvSize != (image.Point{}) && evClip == "" {
 		var evTruth synth.Truth
-		if evClip, evTruth, err = render(o.evSize, "h264"); err != nil {
+		if evClip, evTruth, err = render(o.EvSize, "h264"); err != nil {
 			return cam, "", "", 0, fmt.Errorf("bench: %w", err)
 		}
 		calTruth = evTruth
@@ -371,7 +316,7 @@ func finishBenchCamera(c config.CameraConfig) config.CameraConfig {
 }
 
 // benchDaemon runs serve over the cameras for the duration and measures.
-func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *benchResult, log *slog.Logger, progress io.Writer) error {
+func benchDaemon(ctx context.Context, o Options, cfg config.Config, res *Result, log *slog.Logger, progress io.Writer) error {
 	reg := prometheus.NewRegistry()
 	runCtx, stop := context.WithCancel(ctx)
 	defer stop()
@@ -419,7 +364,7 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *bench
 		ready <- err
 	}
 	done := make(chan error, 1)
-	fmt.Fprintf(progress, "running %d camera(s) for %v ...\n", o.cameras, o.duration)
+	fmt.Fprintf(progress, "running %d camera(s) for %v ...\n", o.Cameras, o.Duration)
 	start := time.Now()
 	go func() { done <- daemon.Serve(runCtx, cfg, daemon.Deps{Log: log, Registry: reg, Ready: onReady}) }()
 	select {
@@ -448,8 +393,8 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *bench
 	var at0 benchSnap
 	tick := time.NewTicker(500 * time.Millisecond)
 	defer tick.Stop()
-	warm := start.Add(o.warmup)
-	end := start.Add(o.duration)
+	warm := start.Add(o.Warmup)
+	end := start.Add(o.Duration)
 	warmed := false
 	for time.Now().Before(end) {
 		select {
@@ -510,7 +455,7 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *bench
 		sort.Float64s(agesAll)
 		res.AgeP50S, res.AgeP99S, res.AgeSamples = pipeline.Round3(percentile(agesAll, 0.5)), pipeline.Round3(percentile(agesAll, 0.99)), len(agesAll)
 	}
-	res.FramesExpected = int64(math.Round(res.FPS * window * float64(o.cameras)))
+	res.FramesExpected = int64(math.Round(res.FPS * window * float64(o.Cameras)))
 	if res.FramesExpected > 0 {
 		res.ReadRatio = pipeline.Round3(float64(res.FramesProcessed+res.FramesDropped) / float64(res.FramesExpected))
 	}
@@ -518,11 +463,11 @@ func benchDaemon(ctx context.Context, o benchOpts, cfg config.Config, res *bench
 	res.CPUChildrenS = pipeline.Round3(at1.children - at0.children)
 	cpu := res.CPUSelfS + res.CPUChildrenS
 	res.Cores = pipeline.Round3(cpu / window)
-	res.CPUPerCameraSecS = pipeline.Round3(cpu / window / float64(o.cameras))
+	res.CPUPerCameraSecS = pipeline.Round3(cpu / window / float64(o.Cameras))
 	if n := res.FramesProcessed + res.FramesDropped; n > 0 {
 		res.DaemonMsPerFrame = pipeline.Round3(res.CPUSelfS * 1000 / float64(n))
 	}
-	res.RSSPerCameraMB = pipeline.Round3(res.RSSFinalMB / float64(o.cameras))
+	res.RSSPerCameraMB = pipeline.Round3(res.RSSFinalMB / float64(o.Cameras))
 	res.RSSPeakMB, res.RSSFinalMB, res.PssChildrenMB = pipeline.Round3(res.RSSPeakMB), pipeline.Round3(res.RSSFinalMB), pipeline.Round3(res.PssChildrenMB)
 	res.RSSBaselineMB = pipeline.Round3(res.RSSBaselineMB)
 	mu.Lock()
@@ -559,13 +504,13 @@ func percentile(sorted []float64, p float64) float64 {
 
 // benchLoops runs the yardsticks over the clip, repeat times each, and
 // keeps the medians of CPU milliseconds per frame.
-func benchLoops(ctx context.Context, o benchOpts, clip string, frames int, res *benchResult, progress io.Writer) error {
+func benchLoops(ctx context.Context, o Options, clip string, frames int, res *Result, progress io.Writer) error {
 	if frames <= 0 {
-		frames = int(math.Round(res.FPS * o.clipSeconds))
+		frames = int(math.Round(res.FPS * o.ClipSeconds))
 	}
-	fmt.Fprintf(progress, "yardsticks over %s (%d frames, %d runs each) ...\n", filepath.Base(clip), frames, o.repeat)
+	fmt.Fprintf(progress, "yardsticks over %s (%d frames, %d runs each) ...\n", filepath.Base(clip), frames, o.Repeat)
 	var dec, ff, naive []float64
-	for i := 0; i < o.repeat; i++ {
+	for i := 0; i < o.Repeat; i++ {
 		c0 := selfCPU()
 		n, err := vision.DecodeLoop(ctx, clip, frames)
 		if err != nil {
@@ -613,8 +558,8 @@ func medianOf(v []float64) float64 {
 	return s[len(s)/2]
 }
 
-// print writes the table.
-func (r benchResult) print(w io.Writer) {
+// Print writes the table.
+func (r Result) Print(w io.Writer) {
 	fmt.Fprintf(w, "stillwater bench: %d camera(s), %s at %g fps (%s), played in real time in a loop\n", r.Cameras, r.Size, r.FPS, r.Codec)
 	if r.EvidenceSize != "" {
 		fmt.Fprintf(w, "evidence stream: %s, copied without decoding\n", r.EvidenceSize)

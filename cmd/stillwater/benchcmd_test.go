@@ -4,39 +4,15 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
-	"image"
 	"strings"
 	"testing"
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/bench"
 	"stillwater/vision/refdata"
 )
-
-func TestParseSize(t *testing.T) {
-	for _, tc := range []struct {
-		in   string
-		want image.Point
-		err  bool
-	}{
-		{"640x360", image.Pt(640, 360), false},
-		{"1080p", image.Pt(1920, 1080), false},
-		{"720P", image.Pt(1280, 720), false},
-		{"1920X1080", image.Pt(1920, 1080), false},
-		{"640", image.Point{}, true},
-		{"10x10", image.Point{}, true},
-		{"axb", image.Point{}, true},
-	} {
-		got, err := parseSize(tc.in)
-		if tc.err {
-			assert.Error(t, err, tc.in)
-			continue
-		}
-		require.NoError(t, err, tc.in)
-		assert.Equal(t, tc.want, got, tc.in)
-	}
-}
 
 func TestBenchRefusesBadFlags(t *testing.T) {
 	for _, args := range [][]string{
@@ -66,7 +42,7 @@ func TestBenchReports(t *testing.T) {
 		"-clip-seconds", "12", "-duration", "8s", "-warmup", "3s", "-repeat", "1", "-data-dir", t.TempDir()}, &out, &errOut)
 	require.NoError(t, err, errOut.String())
 	lines := strings.Split(strings.TrimSpace(out.String()), "\n")
-	var r benchResult
+	var r bench.Result
 	require.NoError(t, json.Unmarshal([]byte(lines[len(lines)-1]), &r), "the last line is JSON")
 	table := out.String()
 	for _, want := range []string{"2 camera(s), 320x180 at 10 fps", "evidence stream: 480x270", "frame to publish", "CPU", "memory", "same clip alone", "daemon"} {
