@@ -19,6 +19,7 @@ import (
 	"github.com/stretchr/testify/require"
 	"gopkg.in/yaml.v3"
 
+	"stillwater/cmd/stillwater/internal/calibrate"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision/synth"
 )
@@ -181,7 +182,7 @@ func TestCalibrateUsageErrors(t *testing.T) {
 			assert.Contains(t, err.Error(), tc.want)
 		})
 	}
-	_, err := parsePairs("1,2 3")
+	_, err := calibrate.ParsePairs("1,2 3")
 	assert.ErrorContains(t, err, `point 2 "3": want x,y`)
 	var so, se bytes.Buffer
 	err = runCalibrate(context.Background(), []string{"-frame", "/nonexistent/f.png", "-corners", "1,1 2,2 3,3 4,4", "-length", "8", "-width", "4"}, &so, &se)
@@ -248,7 +249,7 @@ func FuzzParsePairs(f *testing.F) {
 		f.Add(s)
 	}
 	f.Fuzz(func(t *testing.T, s string) {
-		pts, err := parsePairs(s)
+		pts, err := calibrate.ParsePairs(s)
 		if err != nil {
 			return
 		}
@@ -296,6 +297,6 @@ func TestCalibrateFreeform(t *testing.T) {
 
 	err = runCalibrate(context.Background(), []string{"-frame", clip, "-points", strings.Join(pts, " ")}, &so, &se)
 	assert.ErrorContains(t, err, "-points needs -outline")
-	_, err = parseReference("1,2=3")
+	_, err = calibrate.ParseReference("1,2=3")
 	assert.ErrorContains(t, err, "want u,v=x,y")
 }
