@@ -25,6 +25,7 @@ import (
 	"stillwater/alert/bus"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/cmd/stillwater/internal/testkit"
@@ -283,7 +284,7 @@ func TestDaemonStartsOverAnEmptySubjectRecord(t *testing.T) {
 		t.Skip("renders a 10 s clip")
 	}
 	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10; tuning.FloatingChild(s) })
-	cfg := demoConfig(truth, clip, dir, false)
+	cfg := demo.Config(truth, clip, dir, false)
 	cfg.Cameras[0].Loop = true
 	cfg.Cameras[0].Detect.ProcessWidth = 160
 	require.NoError(t, cfg.Validate())

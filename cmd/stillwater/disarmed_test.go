@@ -15,6 +15,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/testkit"
 )
 
@@ -30,7 +31,7 @@ func TestDisarmedPublishesNoTarget(t *testing.T) {
 	}
 	truth, clip, dir := renderScene(t, "child", 7, nil)
 	require.NotNil(t, truth.PerFrame[len(truth.PerFrame)-1].Intruder, "the labels have no child in the water at the end")
-	cfg := demoConfig(truth, clip, dir, false)
+	cfg := demo.Config(truth, clip, dir, false)
 	// A one-hour window that starts two hours from now: disarmed now.
 	from := time.Now().UTC().Add(2 * time.Hour)
 	cfg.Arming = config.ArmingConfig{TimeZone: "UTC", Schedule: []string{

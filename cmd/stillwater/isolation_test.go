@@ -31,6 +31,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 )
@@ -226,7 +227,7 @@ func TestHangingSourcesDoNotHoldUpAHealthyCamera(t *testing.T) {
 		t.Skip("plays a 20 s clip in real time")
 	}
 	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
-	cfg := demoConfig(truth, clip, dir, true)
+	cfg := demo.Config(truth, clip, dir, true)
 	cfg.HeartbeatEvery = config.Duration(time.Second)
 	silent, pipe := cfg.Cameras[0], cfg.Cameras[0]
 	silent.ID, silent.Source, silent.Transport = "silent", "rtsp://"+silentSource(t)+"/pool", "tcp"
@@ -344,7 +345,7 @@ func TestSilentSourcesDoNotStallAReopen(t *testing.T) {
 	truth, clip, dir := renderScene(t, "empty", 7, nil)
 	frames := aviJPEGs(t, clip)
 	require.NotEmpty(t, frames)
-	cfg := demoConfig(truth, clip, dir, false)
+	cfg := demo.Config(truth, clip, dir, false)
 	healthy := &cfg.Cameras[0]
 	healthy.Source = segmentedMJPEG(t, frames, 15, 10)
 	for i := 0; i < 3; i++ {
@@ -432,7 +433,7 @@ func TestTargetPublishedBeforeItsEvidence(t *testing.T) {
 	delays := map[bool]time.Duration{}
 	var written time.Duration
 	for _, on := range []bool{false, true} {
-		cfg := demoConfig(truth, clip, filepath.Join(dir, fmt.Sprint(on)), false)
+		cfg := demo.Config(truth, clip, filepath.Join(dir, fmt.Sprint(on)), false)
 		cfg.Evidence.Enabled = &on
 		require.NoError(t, cfg.Validate())
 		bl, logs, stop := startLoggedDaemon(t, cfg, 60*time.Second)

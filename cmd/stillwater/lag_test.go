@@ -14,6 +14,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/cmd/stillwater/internal/watch"
@@ -51,7 +52,7 @@ func (s *slowSink) Send(_ context.Context, m pipeline.Message) error {
 // longer silent when it falls behind).
 func TestSlowStepRaisesProcessingLag(t *testing.T) {
 	truth, clip, dir := renderScene(t, "child", 7, nil)
-	cfg := demoConfig(truth, clip, dir, true)
+	cfg := demo.Config(truth, clip, dir, true)
 	reg := prometheus.NewRegistry()
 	met := metrics.New(reg, "test")
 	sk := &slowSink{delay: 1200 * time.Millisecond, seen: make(chan pipeline.Message, 64)}

@@ -11,6 +11,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision"
 	"stillwater/vision/refdata"
@@ -29,7 +30,7 @@ func TestDaemonLeavesNothingBehind(t *testing.T) {
 	}
 	const frames = 10000
 	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10; tuning.FloatingChild(s) })
-	cfg := demoConfig(truth, clip, dir, false)
+	cfg := demo.Config(truth, clip, dir, false)
 	cfg.Cameras[0].Loop = true
 	cfg.Cameras[0].Detect.ProcessWidth = 160
 	require.NoError(t, cfg.Validate())

@@ -17,6 +17,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision"
 	"stillwater/vision/synth"
@@ -105,7 +106,7 @@ func TestDaemonStartsFromEmptyPoolReference(t *testing.T) {
 	var cal config.CalibrationConfig
 	require.NoError(t, yaml.Unmarshal(y, &cal))
 	targets := func(clip string, withRef bool) []alert.Target {
-		cfg := demoConfig(truth, clip, dir, true)
+		cfg := demo.Config(truth, clip, dir, true)
 		cfg.Cameras[0].CalibrationConfig = cal
 		cfg.DataDir = data
 		if !withRef {

@@ -20,6 +20,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
@@ -106,7 +107,7 @@ func TestReplayMatchesDaemon(t *testing.T) {
 		}
 	}
 
-	res, err := demoClip(context.Background(), truth, clip, t.TempDir(), false, slog.New(slog.NewTextHandler(io.Discard, nil)), io.Discard)
+	res, err := demo.Clip(context.Background(), truth, clip, t.TempDir(), false, slog.New(slog.NewTextHandler(io.Discard, nil)), io.Discard)
 	require.NoError(t, err)
 	require.Equal(t, len(res.Targets), len(replayed), "target messages: daemon against replay")
 	for i, d := range res.Targets {

@@ -9,6 +9,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
@@ -37,7 +38,7 @@ func TestRTSPCameraLostAndBack(t *testing.T) {
 	entry := time.Duration(truth.Presence[0].From * float64(time.Second))
 
 	srv := rtsptest.Start(t, clip, "pool")
-	cfg := demoConfig(truth, clip, dir, false)
+	cfg := demo.Config(truth, clip, dir, false)
 	cfg.Cameras[0].ID = "pool"
 	cfg.Cameras[0].Source = srv.URL()
 	cfg.Cameras[0].Transport = "udp"

@@ -26,6 +26,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
@@ -74,7 +75,7 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 	sub := rtsptest.Start(t, small, "sub")
 	main := rtsptest.Start(t, big, "main")
 
-	cfg := demoConfig(truth, small, dir, false)
+	cfg := demo.Config(truth, small, dir, false)
 	const pre, post = 3 * time.Second, 3 * time.Second
 	cfg.Evidence.PreRoll, cfg.Evidence.PostRoll = config.Duration(pre), config.Duration(post)
 	cam := &cfg.Cameras[0]

@@ -23,6 +23,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/synth"
 )
@@ -173,7 +174,7 @@ func TestDeadCameraIsAFaultAndDoesNotStallOthers(t *testing.T) {
 		t.Skip("renders a 20 s clip")
 	}
 	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
-	cfg := demoConfig(truth, clip, dir, true)
+	cfg := demo.Config(truth, clip, dir, true)
 	dead := cfg.Cameras[0]
 	dead.ID, dead.Source = "dead", "rtsp://127.0.0.1:9/nothing"
 	cfg.Cameras = append(cfg.Cameras, dead)
