@@ -126,7 +126,7 @@ func (e *explainer) why(p *Processor, r vision.Result, occ *synth.Occupation, pr
 		return head + " the detector is relearning the water after a scene-wide change", false
 	}
 	// The nearest track, then the nearest candidate.
-	var near *vision.Track
+	var near *poolTrack
 	best := math.Inf(1)
 	for i, t := range p.Tracks {
 		if d := math.Hypot(t.X-at.X, t.Y-at.Y); d < best {

@@ -86,7 +86,7 @@ func newJudge(window time.Duration, rules judgeRules, log *slog.Logger) *judge {
 // observe records the candidates of the tracks seen at media time now,
 // and the bodies seen on the deck (deck), and forgets tracks that are
 // gone.
-func (j *judge) observe(now time.Duration, tracks []vision.Track, deck []homography.Point) {
+func (j *judge) observe(now time.Duration, tracks []poolTrack, deck []homography.Point) {
 	live := map[int]bool{}
 	for _, t := range tracks {
 		live[t.ID] = true

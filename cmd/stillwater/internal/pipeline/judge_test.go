@@ -43,9 +43,9 @@ func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
 			j := newJudge(time.Second, r, nil)
 			for i := 0; i < 8; i++ {
 				now := time.Duration(i) * 100 * time.Millisecond
-				tracks := []vision.Track{{ID: 2, X: c.second[0], Y: c.second[1], Last: now, Features: body()}}
+				tracks := []poolTrack{{ID: 2, X: c.second[0], Y: c.second[1], Last: now, Features: body()}}
 				if !c.gone || i < 4 {
-					tracks = append(tracks, vision.Track{ID: 1, X: 3, Y: 3, Last: now, Features: body()})
+					tracks = append(tracks, poolTrack{ID: 1, X: 3, Y: 3, Last: now, Features: body()})
 				}
 				j.observe(now, tracks, nil)
 				if i == 2 && c.raised {
@@ -105,7 +105,7 @@ func TestJudgeOwnTrailOnTheDeck(t *testing.T) {
 				// The track gets in at (0.2, 2) m and moves to (0.6, 2) m;
 				// a body stays on the deck at (-0.5, 2) m, 1.1 m away.
 				x := 0.2 + 0.05*float64(i)
-				j.observe(now, []vision.Track{{ID: 1, X: x, Y: 2, Last: now, Features: f}}, []homography.Point{{X: -0.5, Y: 2}})
+				j.observe(now, []poolTrack{{ID: 1, X: x, Y: 2, Last: now, Features: f}}, []homography.Point{{X: -0.5, Y: 2}})
 			}
 			ok, why := j.eligible(1)
 			assert.Equal(t, c.eligible, ok, why)

@@ -18,6 +18,7 @@ import (
 	"stillwater/cmd/stillwater/internal/metrics"
 	"stillwater/homography"
 	"stillwater/vision"
+	"stillwater/vision/track"
 )
 
 // Message is one message on its way to the bus (or a replay file).
@@ -35,6 +36,13 @@ type Sink interface {
 	Send(ctx context.Context, m Message) error
 }
 
+// poolTrack and detection are the tracker's types carrying the rectified
+// detector's measurements; positions are pool metres.
+type (
+	poolTrack = track.Track[vision.Features]
+	detection = track.Detection[vision.Features]
+)
+
 // Processor is the per-camera decision chain after the vision stage: pixels
 // to pool metres, physical-size gating, tracking and alarm logic. It is the
 // same for the daemon and for replays.
@@ -42,11 +50,11 @@ type Processor struct {
 	cam         config.CameraConfig
 	Calibration *homography.Calibration // frame pixels → pool metres: lens, homography, refraction
 	zones       zoneSet                 // exclusion polygons
-	Tracks      []vision.Track
+	Tracks      []poolTrack
 	// Evidence, when set, keeps the evidence of an alarm starting at this
 	// frame and returns its reference for the target message.
 	Evidence func(r vision.Result, o alert.Observation) string
-	tracker  *vision.Tracker
+	tracker  *track.Tracker[vision.Features]
 	judge    *judge // which tracks of the rectified detector may alarm
 	alarm    *alert.Alarm
 	alarmed  map[int]bool // tracks in alarm
@@ -73,7 +81,7 @@ func New(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoc
 		cam:         cam,
 		Calibration: cal,
 		zones:       zones,
-		tracker:     vision.NewTracker(vision.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
+		tracker:     track.NewTracker[vision.Features](track.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
 		alarm:       alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio, MaxSpeed: alert.DefaultAlarm().MaxSpeed}, fps),
 		judge:       newJudge(time.Duration(d.Persist), judgeRulesOf(d), log),
 		alarmed:     map[int]bool{},
@@ -88,7 +96,7 @@ func New(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoc
 // out of background learning on the next frame.
 func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectangle) {
 	d := p.cam.Detect
-	var dets []vision.Detection
+	var dets []detection
 	p.notes = p.notes[:0]
 	for _, b := range r.Blobs {
 		if b.Plane != nil {
@@ -124,7 +132,7 @@ func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectan
 			p.metrics.Rejected("large")
 			continue
 		}
-		dets = append(dets, vision.Detection{X: c.X, Y: c.Y, Area: area, Box: b.Box, Hold: b.Box.Inset(-4)})
+		dets = append(dets, detection{X: c.X, Y: c.Y, Area: area, Box: b.Box, Hold: b.Box.Inset(-4)})
 	}
 	tracks := p.tracker.Update(r.Media, dets)
 	p.Tracks = tracks
@@ -243,15 +251,15 @@ func round4(v float64) float64 { return math.Round(v*10000) / 10000 }
 // metres on the water surface, and returns it as a detection for the
 // tracker; false, with the reason logged and counted, when it cannot be a
 // person in the water.
-func (p *Processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool) {
+func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 	d := p.cam.Detect
 	f := b.Features
 	c := homography.Point{X: b.Plane.X, Y: b.Plane.Y}
-	reject := func(reason, why string, args ...any) (vision.Detection, bool) {
+	reject := func(reason, why string, args ...any) (detection, bool) {
 		p.log.Debug("candidate rejected: "+why, append([]any{"frame", r.Index, "x_m", Round3(c.X), "y_m", Round3(c.Y)}, append(args, featureArgs(f)...)...)...)
 		p.metrics.Rejected(reason)
 		p.notes = append(p.notes, candidateNote{At: c, Features: f, Rejected: why, Outside: reason == "outside"})
-		return vision.Detection{}, false
+		return detection{}, false
 	}
 	if name, in := p.zones.excluded(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}, c); in {
 		return reject("zone", "in exclusion zone", "zone", name)
@@ -265,7 +273,7 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (vision.Detection, bool
 		return reject("large", fmt.Sprintf("too large (%.3f m² > %.3f m²)", f.Area, d.MaxArea))
 	}
 	p.notes = append(p.notes, candidateNote{At: c, Features: f})
-	return vision.Detection{X: c.X, Y: c.Y, Area: f.Area, Box: b.Box, Hold: b.Plane.Cells, Features: f}, true
+	return detection{X: c.X, Y: c.Y, Area: f.Area, Box: b.Box, Hold: b.Plane.Cells, Features: f, FeatureArea: f.Area}, true
 }
 
 // candidateShare is the share of min_area_m2 a candidate of the rectified

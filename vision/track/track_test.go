@@ -1,4 +1,4 @@
-package vision
+package track
 
 import (
 	"image"
@@ -10,12 +10,12 @@ import (
 )
 
 func TestTrackerKeepsIDsAndVelocity(t *testing.T) {
-	tr := NewTracker(TrackerConfig{Gate: 0.6, MergeRadius: 0.3, MaxMissing: time.Second})
-	var got []Track
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.6, MergeRadius: 0.3, MaxMissing: time.Second})
+	var got []Track[struct{}]
 	// An object moving at 0.5 m/s along x, seen at 10 fps.
 	for i := 0; i < 20; i++ {
 		now := time.Duration(i) * 100 * time.Millisecond
-		got = tr.Update(now, []Detection{{X: 1 + 0.05*float64(i), Y: 2, Area: 0.04, Box: image.Rect(0, 0, 5, 5)}})
+		got = tr.Update(now, []Detection[struct{}]{{X: 1 + 0.05*float64(i), Y: 2, Area: 0.04, Box: image.Rect(0, 0, 5, 5)}})
 	}
 	require.Len(t, got, 1)
 	assert.Equal(t, 1, got[0].ID)
@@ -25,10 +25,10 @@ func TestTrackerKeepsIDsAndVelocity(t *testing.T) {
 }
 
 func TestTrackerMergesSplitBlobs(t *testing.T) {
-	tr := NewTracker(TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Second})
-	tr.Update(0, []Detection{{X: 2, Y: 2, Area: 0.04}})
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Second})
+	tr.Update(0, []Detection[struct{}]{{X: 2, Y: 2, Area: 0.04}})
 	// An arm splashing beside the head: two blobs, one track.
-	got := tr.Update(100*time.Millisecond, []Detection{{X: 2, Y: 2, Area: 0.03}, {X: 2.25, Y: 2, Area: 0.01}})
+	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 2, Y: 2, Area: 0.03}, {X: 2.25, Y: 2, Area: 0.01}})
 	require.Len(t, got, 1)
 	assert.Equal(t, 1, got[0].ID)
 	assert.InDelta(t, 0.04, got[0].Area, 1e-9)
@@ -36,9 +36,9 @@ func TestTrackerMergesSplitBlobs(t *testing.T) {
 }
 
 func TestTrackerStartsNewTrackBeyondGateAndExpires(t *testing.T) {
-	tr := NewTracker(TrackerConfig{Gate: 0.5, MaxMissing: 300 * time.Millisecond})
-	tr.Update(0, []Detection{{X: 1, Y: 1, Area: 0.04}})
-	got := tr.Update(100*time.Millisecond, []Detection{{X: 3, Y: 1, Area: 0.04}})
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.5, MaxMissing: 300 * time.Millisecond})
+	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
+	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 3, Y: 1, Area: 0.04}})
 	require.Len(t, got, 2)
 	assert.Equal(t, []int{1, 2}, []int{got[0].ID, got[1].ID})
 	got = tr.Update(time.Second, nil)

@@ -1,4 +1,8 @@
-package vision
+// Package track follows detections across frames by nearest neighbour in
+// the plane the caller places them on (stillwater uses pool metres: origin
+// at corner A, x along the length). It does no image processing and
+// imports no OpenCV; the detector's measurements ride along as F.
+package track
 
 import (
 	"image"
@@ -9,26 +13,29 @@ import (
 
 // Detection is one blob placed on the pool plane by the caller. X and Y are
 // in the caller's plane units (stillwater uses pool metres).
-type Detection struct {
+type Detection[F any] struct {
 	X, Y float64
 	Area float64         // plane units²
 	Box  image.Rectangle // source pixels
 	// Hold is the box to keep out of background learning while the object
 	// is tracked, in the detector's own pixels (grid cells for meanvar).
 	Hold image.Rectangle
-	// Features are the detector's measurements of the largest part.
-	Features Features
+	// Features are the detector's measurements of the largest part, and
+	// FeatureArea that part's area (plane units²; 0 without measurements):
+	// when detections merge, the largest part's Features are kept.
+	Features    F
+	FeatureArea float64
 }
 
 // Track is an object followed across frames, in plane units.
-type Track struct {
+type Track[F any] struct {
 	ID          int
 	X, Y        float64
 	VX, VY      float64 // units per second
 	Area        float64
 	Box         image.Rectangle // source pixels, latest
 	Hold        image.Rectangle // detector pixels, latest (see Detection.Hold)
-	Features    Features        // latest
+	Features    F               // latest
 	First, Last time.Duration   // media time first and last seen
 	Hits        int             // frames with a detection
 	// RunStart and RunHits are the start and the detections of the
@@ -56,15 +63,15 @@ type TrackerConfig struct {
 
 // Tracker associates detections across frames by nearest neighbour within
 // a gate. Not safe for concurrent use.
-type Tracker struct {
+type Tracker[F any] struct {
 	cfg    TrackerConfig
 	next   int
-	tracks []*Track
+	tracks []*Track[F]
 	last   time.Duration
 }
 
 // NewTracker returns an empty tracker.
-func NewTracker(cfg TrackerConfig) *Tracker {
+func NewTracker[F any](cfg TrackerConfig) *Tracker[F] {
 	if cfg.Gate <= 0 {
 		cfg.Gate = 1.0
 	}
@@ -77,12 +84,12 @@ func NewTracker(cfg TrackerConfig) *Tracker {
 	if cfg.RunGap <= 0 {
 		cfg.RunGap = 300 * time.Millisecond
 	}
-	return &Tracker{cfg: cfg, next: 1}
+	return &Tracker[F]{cfg: cfg, next: 1}
 }
 
 // Update feeds the detections of the frame at media time now and returns
 // the live tracks, those seen in this frame first, ordered by id.
-func (t *Tracker) Update(now time.Duration, dets []Detection) []Track {
+func (t *Tracker[F]) Update(now time.Duration, dets []Detection[F]) []Track[F] {
 	groups := mergeDetections(dets, t.cfg.MergeRadius)
 	type pair struct {
 		ti, gi int
@@ -125,7 +132,7 @@ func (t *Tracker) Update(now time.Duration, dets []Detection) []Track {
 		if usedG[gi] {
 			continue
 		}
-		t.tracks = append(t.tracks, &Track{ID: t.next, X: g.X, Y: g.Y, Area: g.Area, Box: g.Box, Hold: g.Hold, Features: g.Features, First: now, Last: now, Hits: 1, RunStart: now, RunHits: 1})
+		t.tracks = append(t.tracks, &Track[F]{ID: t.next, X: g.X, Y: g.Y, Area: g.Area, Box: g.Box, Hold: g.Hold, Features: g.Features, First: now, Last: now, Hits: 1, RunStart: now, RunHits: 1})
 		t.next++
 	}
 	keep := t.tracks[:0]
@@ -136,7 +143,7 @@ func (t *Tracker) Update(now time.Duration, dets []Detection) []Track {
 	}
 	t.tracks = keep
 	t.last = now
-	out := make([]Track, len(t.tracks))
+	out := make([]Track[F], len(t.tracks))
 	for i, tr := range t.tracks {
 		out[i] = *tr
 	}
@@ -144,15 +151,15 @@ func (t *Tracker) Update(now time.Duration, dets []Detection) []Track {
 }
 
 // Now returns the media time of the last Update.
-func (t *Tracker) Now() time.Duration { return t.last }
+func (t *Tracker[F]) Now() time.Duration { return t.last }
 
 // Reset forgets every track (after the model was rebuilt or the camera
 // moved); ids keep counting up.
-func (t *Tracker) Reset() { t.tracks = nil }
+func (t *Tracker[F]) Reset() { t.tracks = nil }
 
 // mergeDetections joins detections closer than r (single linkage) into one,
 // with the area-weighted centre, summed area and the union box.
-func mergeDetections(dets []Detection, r float64) []Detection {
+func mergeDetections[F any](dets []Detection[F], r float64) []Detection[F] {
 	n := len(dets)
 	parent := make([]int, n)
 	for i := range parent {
@@ -174,7 +181,7 @@ func mergeDetections(dets []Detection, r float64) []Detection {
 		}
 	}
 	idx := map[int]int{}
-	var out []Detection
+	var out []Detection[F]
 	var wsum []float64
 	for i, d := range dets {
 		root := find(i)
@@ -182,7 +189,7 @@ func mergeDetections(dets []Detection, r float64) []Detection {
 		if !ok {
 			k = len(out)
 			idx[root] = k
-			out = append(out, Detection{Box: d.Box, Hold: d.Hold})
+			out = append(out, Detection[F]{Box: d.Box, Hold: d.Hold})
 			wsum = append(wsum, 0)
 		}
 		w := math.Max(d.Area, 1e-9)
@@ -192,8 +199,8 @@ func mergeDetections(dets []Detection, r float64) []Detection {
 		o.Area += d.Area
 		o.Box = o.Box.Union(d.Box)
 		o.Hold = o.Hold.Union(d.Hold)
-		if d.Features.Area >= o.Features.Area {
-			o.Features = d.Features
+		if d.FeatureArea >= o.FeatureArea {
+			o.Features, o.FeatureArea = d.Features, d.FeatureArea
 		}
 		wsum[k] += w
 	}
