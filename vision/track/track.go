@@ -88,7 +88,8 @@ func NewTracker[F any](cfg TrackerConfig) *Tracker[F] {
 }
 
 // Update feeds the detections of the frame at media time now and returns
-// the live tracks, those seen in this frame first, ordered by id.
+// the live tracks: those seen in this frame first, then those kept alive
+// without a detection, each group ordered by id.
 func (t *Tracker[F]) Update(now time.Duration, dets []Detection[F]) []Track[F] {
 	groups := mergeDetections(dets, t.cfg.MergeRadius)
 	type pair struct {
@@ -143,9 +144,18 @@ func (t *Tracker[F]) Update(now time.Duration, dets []Detection[F]) []Track[F] {
 	}
 	t.tracks = keep
 	t.last = now
-	out := make([]Track[F], len(t.tracks))
-	for i, tr := range t.tracks {
-		out[i] = *tr
+	// t.tracks is in id order; those seen now go first, in a stable
+	// partition.
+	out := make([]Track[F], 0, len(t.tracks))
+	for _, tr := range t.tracks {
+		if tr.Last == now {
+			out = append(out, *tr)
+		}
+	}
+	for _, tr := range t.tracks {
+		if tr.Last != now {
+			out = append(out, *tr)
+		}
 	}
 	return out
 }

@@ -40,7 +40,38 @@ func TestTrackerStartsNewTrackBeyondGateAndExpires(t *testing.T) {
 	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
 	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 3, Y: 1, Area: 0.04}})
 	require.Len(t, got, 2)
-	assert.Equal(t, []int{1, 2}, []int{got[0].ID, got[1].ID})
+	// The new track, seen in this frame, first; track 1 is kept alive.
+	assert.Equal(t, []int{2, 1}, []int{got[0].ID, got[1].ID})
 	got = tr.Update(time.Second, nil)
 	assert.Empty(t, got)
+}
+
+// TestTrackerSeenFirst checks the order Update returns: the tracks seen in
+// this frame first, then those kept alive without a detection, each group
+// by id.
+func TestTrackerSeenFirst(t *testing.T) {
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.5, MaxMissing: time.Second})
+	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}, {X: 3, Y: 1, Area: 0.04}, {X: 5, Y: 1, Area: 0.04}})
+	// Track 1 and 3 are missed in the second frame; 2 is seen, and a new
+	// object (4) appears.
+	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 3, Y: 1, Area: 0.04}, {X: 7, Y: 1, Area: 0.04}})
+	ids := make([]int, len(got))
+	for i, g := range got {
+		ids[i] = g.ID
+	}
+	assert.Equal(t, []int{2, 4, 1, 3}, ids)
+	for _, g := range got[:2] {
+		assert.Equal(t, 100*time.Millisecond, g.Last, "track %d", g.ID)
+	}
+}
+
+// TestTrackerReset checks that after Reset an object at the same place
+// starts a new track.
+func TestTrackerReset(t *testing.T) {
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.5, MaxMissing: time.Second})
+	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
+	tr.Reset()
+	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
+	require.Len(t, got, 1)
+	assert.Equal(t, 2, got[0].ID)
 }

@@ -93,8 +93,17 @@ func New(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoc
 }
 
 // Step turns one frame's blobs into messages and returns the boxes to hold
-// out of background learning on the next frame.
+// out of background learning on the next frame. A frame that was only
+// probed after a (re)connect (vision.Result.Rejoining) gives nothing; the
+// one that ends the probing with the background model started again
+// forgets the tracks (see ModelRestarted).
 func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectangle) {
+	if r.Rejoined == vision.RejoinRebuilt || r.Rejoined == vision.RejoinForced {
+		p.ModelRestarted()
+	}
+	if r.Rejoining {
+		return nil, nil
+	}
 	d := p.cam.Detect
 	var dets []detection
 	p.notes = p.notes[:0]
@@ -222,6 +231,13 @@ func (p *Processor) message(r vision.Result, dec alert.Decision) (Message, error
 	id := fmt.Sprintf("%s-%d-%d-%s", p.cam.ID, p.epoch.UnixNano(), p.Seq, dec.Kind)
 	return Message{Camera: p.cam.ID, Kind: dec.Kind, ID: id, Data: b, Frame: r.Index, Media: r.Media}, nil
 }
+
+// ModelRestarted forgets the tracks when the detector's background model
+// starts again (rebuilt for a new frame size, or learned anew after a
+// reconnect): what the old model saw is no evidence for the new one, and
+// a body still there starts a new track. Alarms clear on their own after
+// ClearAfter, as for any track no longer seen.
+func (p *Processor) ModelRestarted() { p.tracker.Reset() }
 
 // Reload swaps in a camera's new calibration, zones and detection
 // thresholds between frames, keeping tracks and alarms. The background

@@ -181,7 +181,8 @@ func ReplayClip(ctx context.Context, cam config.CameraConfig, prefix string, w i
 			}
 		}
 		if r.Rejoining {
-			continue // probed only, as in the daemon (see watch.go)
+			proc.Step(r, true) // probed only, as in the daemon (see watch.go)
+			continue
 		}
 		msgs, h := proc.Step(r, true)
 		hold = h

@@ -272,6 +272,9 @@ func (w *Camera) capture(ctx context.Context) error {
 			}
 			bo.reset()
 			w.log.Info("camera back", "size", info.Size, "model_kept", !info.Rebuilt)
+			if info.Rebuilt {
+				proc.ModelRestarted()
+			}
 			if err := proc.Calibration.CheckFrame(info.Size); err != nil {
 				w.Raise(ctx, alert.FaultCalibrationDrift, true, err.Error())
 			}
@@ -378,7 +381,9 @@ func (w *Camera) frames(ctx context.Context, vc *vision.Camera, st *captureState
 		// A frame that was only probed (see vision.Result.Rejoining) does
 		// not move tracks, alarms or the camera-moved check: they wait for
 		// a picture that can be trusted.
-		if !r.Rejoining {
+		if r.Rejoining {
+			proc.Step(r, armed) // gives nothing, but hears how the probing ended
+		} else {
 			t1 := time.Now()
 			msgs, h := proc.Step(r, armed)
 			st.hold = h
