@@ -221,8 +221,15 @@ func (w *Camera) capture(ctx context.Context) error {
 	var vc *vision.Camera
 	var cal *homography.Calibration
 	for vc == nil {
+		// The calibration is built once, on the first try that gets that
+		// far, and shared by the detector, the processor and the zones.
 		var err error
-		vc, cal, err = w.open()
+		if cal == nil {
+			cal, err = config.NewCalibration(w.Cam)
+		}
+		if err == nil {
+			vc, err = w.open(cal)
+		}
 		if err == nil {
 			break
 		}
@@ -284,25 +291,21 @@ func (w *Camera) capture(ctx context.Context) error {
 	return nil
 }
 
-// open opens the source with the camera's detector and returns the
-// camera's calibration, built once here for the whole capture.
-func (w *Camera) open() (*vision.Camera, *homography.Calibration, error) {
-	cal, err := config.NewCalibration(w.Cam)
-	if err != nil {
-		return nil, nil, err
-	}
+// open opens the source with the camera's detector, set up for the
+// camera's calibration cal.
+func (w *Camera) open(cal *homography.Calibration) (*vision.Camera, error) {
 	dc, err := pipeline.DetectorConfig(w.Cam, cal)
 	if err != nil {
-		return nil, nil, err
+		return nil, err
 	}
 	w.useReference(&dc)
 	vc, err := vision.OpenCamera(w.sourceConfig(), dc)
 	if err != nil {
-		return nil, nil, err
+		return nil, err
 	}
 	if err := cal.CheckFrame(vc.Size()); err != nil {
 		vc.Close()
-		return nil, nil, fmt.Errorf("camera %s: %w", w.Cam.ID, err)
+		return nil, fmt.Errorf("camera %s: %w", w.Cam.ID, err)
 	}
 	if w.evidence.on {
 		if err := os.MkdirAll(w.evidence.dir, 0o750); err != nil {
@@ -310,11 +313,11 @@ func (w *Camera) open() (*vision.Camera, *homography.Calibration, error) {
 		}
 		if err := vc.EnableEvidence(vision.EvidenceConfig{PreRoll: w.evidence.preRoll, PostRoll: w.evidence.postRoll, OnWritten: w.evidenceWritten, SnapshotsOnly: w.rec != nil}); err != nil {
 			vc.Close()
-			return nil, nil, fmt.Errorf("camera %s: evidence: %w", w.Cam.ID, err)
+			return nil, fmt.Errorf("camera %s: evidence: %w", w.Cam.ID, err)
 		}
 	}
 	w.log.Info("camera open", "source", vision.Redact(w.Cam.Source), "size", vc.Size(), "fps", vc.FPS())
-	return vc, cal, nil
+	return vc, nil
 }
 
 // captureState is what lives across reconnects of one camera.
