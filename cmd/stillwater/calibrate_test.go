@@ -21,6 +21,7 @@ import (
 
 	"stillwater/cmd/stillwater/internal/calibrate"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/testkit"
 	"stillwater/vision/synth"
 )
 
@@ -277,11 +278,11 @@ func TestCalibrateFreeform(t *testing.T) {
 	require.NoError(t, err)
 	var pts, outline []string
 	for _, q := range [][2]float64{{0.5, 0.5}, {7.5, 0.3}, {7.8, 3.6}, {0.4, 3.5}, {4, 0.2}} {
-		p := click(t, s, q[0], q[1], 0)
+		p := testkit.Click(t, s, q[0], q[1], 0)
 		pts = append(pts, fmt.Sprintf("%g,%g=%g,%g", p.X, p.Y, q[0], q[1]))
 	}
 	for a := 0.0; a < 2*math.Pi-1e-9; a += math.Pi / 8 {
-		p := click(t, s, 4+3.9*math.Cos(a), 2+1.9*math.Sin(a), 0)
+		p := testkit.Click(t, s, 4+3.9*math.Cos(a), 2+1.9*math.Sin(a), 0)
 		outline = append(outline, fmt.Sprintf("%g,%g", p.X, p.Y))
 	}
 	var so, se bytes.Buffer

@@ -12,6 +12,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/testkit"
 	"stillwater/vision"
 )
 
@@ -57,14 +58,14 @@ func TestDetectionCameraScales(t *testing.T) {
 				little, err := config.NewCalibration(small)
 				require.NoError(t, err)
 				for _, p := range [][2]float64{{960, 540}, {700, 300}, {1400, 950}, {1000, 150}, {500, 900}} {
-					a, okA := calSurface(big, vision.Point{X: p[0], Y: p[1]})
-					b, okB := calSurface(little, vision.Point{X: p[0] * sx, Y: p[1] * sy})
+					a, okA := testkit.Surface(big, vision.Point{X: p[0], Y: p[1]})
+					b, okB := testkit.Surface(little, vision.Point{X: p[0] * sx, Y: p[1] * sy})
 					require.Equal(t, okA, okB)
 					assert.InDelta(t, a.X, b.X, 1e-6, "pixel %v", p)
 					assert.InDelta(t, a.Y, b.Y, 1e-6, "pixel %v", p)
 				}
-				assert.InDelta(t, camOf(big).X, camOf(little).X, 1e-6, "the camera is placed where it was")
-				assert.InDelta(t, camOf(big).Height, camOf(little).Height, 1e-6)
+				assert.InDelta(t, testkit.CameraOf(big).X, testkit.CameraOf(little).X, 1e-6, "the camera is placed where it was")
+				assert.InDelta(t, testkit.CameraOf(big).Height, testkit.CameraOf(little).Height, 1e-6)
 			})
 		}
 	}

@@ -1,5 +1,6 @@
 // Package testkit holds the test fixtures several packages of the
-// stillwater command share: an in-process bus and metric look-ups.
+// stillwater command share: an in-process bus, metric look-ups, and clicks
+// on synthetic scenes.
 package testkit
 
 import (
