@@ -7,8 +7,9 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
-	"stillwater/cmd/stillwater/internal/bench"
 	"time"
+
+	"stillwater/cmd/stillwater/internal/bench"
 )
 
 // runBench is "stillwater bench": N cameras played in real time through

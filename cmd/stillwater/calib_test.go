@@ -1,12 +1,6 @@
 package main
 
 import (
-	"stillwater/cmd/stillwater/internal/config"
-	"stillwater/cmd/stillwater/internal/pipeline"
-	"stillwater/cmd/stillwater/internal/testkit"
-	"stillwater/cmd/stillwater/internal/tuning"
-	"stillwater/vision/refdata"
-
 	"image"
 	"image/png"
 	"io"
@@ -20,8 +14,13 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/testkit"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/homography"
 	"stillwater/vision"
+	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
 

@@ -7,11 +7,11 @@ import (
 	"path/filepath"
 	"testing"
 
-	"stillwater/alert"
-	"stillwater/cmd/stillwater/internal/tuning"
-
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
+
+	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/tuning"
 )
 
 // replayTarget is a replay line for a target message at frame f (10 fps),

@@ -2,12 +2,13 @@ package daemon
 
 import (
 	"context"
-	"stillwater/cmd/stillwater/internal/config"
-	"stillwater/cmd/stillwater/internal/watch"
 	"testing"
 	"time"
 
 	"github.com/stretchr/testify/assert"
+
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/watch"
 )
 
 // TestWaitCameras: serve waits for every camera while its context lives;
