@@ -17,83 +17,25 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/prometheus/client_golang/prometheus"
-	dto "github.com/prometheus/client_model/go"
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
 	"stillwater/alert/arming"
 	"stillwater/alert/bus"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/metrics"
+	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/testkit"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
 
 // Fault injection on the daemon's bus side, through openBus as serve
 // uses it: what the log, /readyz and /metrics say.
-
-// busOnlyConfig is a daemon configuration for the bus side alone: the
-// embedded server on a free port, data in a fresh directory.
-func busOnlyConfig(t *testing.T) Config {
-	t.Helper()
-	cfg := Defaults()
-	cfg.DataDir = t.TempDir()
-	cfg.Bus = BusConfig{Listen: "127.0.0.1:-1", Prefix: "sw"}
-	return cfg
-}
-
-func openTestBus(t *testing.T, cfg Config, log *slog.Logger, h busHooks) *busParts {
-	t.Helper()
-	b, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, log, h)
-	require.NoError(t, err)
-	return b
-}
-
-func runBus(t *testing.T, b *busParts) {
-	t.Helper()
-	ctx, cancel := context.WithCancel(context.Background())
-	done := make(chan error, 1)
-	go func() { done <- b.Run(ctx) }()
-	t.Cleanup(func() { cancel(); <-done; b.Close() })
-}
-
-// metricValue returns the value of the series name{labels} on reg: a
-// counter's or gauge's value, a histogram's sample count.
-func metricValue(t *testing.T, reg *prometheus.Registry, name string, labels map[string]string) (float64, bool) {
-	t.Helper()
-	mfs, err := reg.Gather()
-	require.NoError(t, err)
-	for _, mf := range mfs {
-		if mf.GetName() != name {
-			continue
-		}
-	next:
-		for _, m := range mf.GetMetric() {
-			have := map[string]string{}
-			for _, lp := range m.GetLabel() {
-				have[lp.GetName()] = lp.GetValue()
-			}
-			for k, v := range labels {
-				if have[k] != v {
-					continue next
-				}
-			}
-			return sampleValue(m), true
-		}
-	}
-	return 0, false
-}
-
-func sampleValue(m *dto.Metric) float64 {
-	switch {
-	case m.Counter != nil:
-		return m.GetCounter().GetValue()
-	case m.Gauge != nil:
-		return m.GetGauge().GetValue()
-	case m.Histogram != nil:
-		return float64(m.GetHistogram().GetSampleCount())
-	}
-	return 0
-}
 
 func hasProblem(problems []string, parts ...string) bool {
 	for _, p := range problems {
@@ -119,21 +61,21 @@ func hasProblem(problems []string, parts ...string) bool {
 // is 1; removing the other stream clears all three without a restart.
 func TestStreamOverlapIsALoudFault(t *testing.T) {
 	type setup struct {
-		cfg   Config
+		cfg   config.Config
 		other string
-		key   string                          // the setting the fix names
-		fix   func(t *testing.T, b *busParts) // removes the other stream
+		key   string                                 // the setting the fix names
+		fix   func(t *testing.T, b *config.BusParts) // removes the other stream
 	}
 	cases := []struct {
 		name    string
 		prepare func(t *testing.T) setup
 	}{
 		{"bus.stream.name changed on an existing data directory", func(t *testing.T) setup {
-			cfg := busOnlyConfig(t)
-			first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), busHooks{})
+			cfg := testkit.BusConfig(t)
+			first := testkit.OpenBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
 			first.Close()
 			cfg.Bus.Stream.Name = "POOL"
-			return setup{cfg: cfg, other: "STILLWATER", key: "bus.stream.name", fix: func(t *testing.T, b *busParts) {
+			return setup{cfg: cfg, other: "STILLWATER", key: "bus.stream.name", fix: func(t *testing.T, b *config.BusParts) {
 				nc, err := nats.Connect(b.Embedded.URL())
 				require.NoError(t, err)
 				defer nc.Close()
@@ -153,9 +95,9 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 			require.NoError(t, err)
 			_, err = js.CreateStream(context.Background(), jetstream.StreamConfig{Name: "HOUSE", Subjects: []string{"sw.>"}})
 			require.NoError(t, err)
-			cfg := busOnlyConfig(t)
+			cfg := testkit.BusConfig(t)
 			cfg.Bus.Listen, cfg.Bus.URL = "", emb.URL()
-			return setup{cfg: cfg, other: "HOUSE", key: "bus.subject_prefix", fix: func(t *testing.T, _ *busParts) {
+			return setup{cfg: cfg, other: "HOUSE", key: "bus.subject_prefix", fix: func(t *testing.T, _ *config.BusParts) {
 				require.NoError(t, js.DeleteStream(context.Background(), "HOUSE"))
 			}}
 		}},
@@ -168,10 +110,10 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 				mine = "STILLWATER"
 			}
 			var logs syncBuffer
-			b := openTestBus(t, s.cfg, slog.New(slog.NewTextHandler(&logs, nil)), busHooks{})
+			b := testkit.OpenBus(t, s.cfg, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{})
 			reg := prometheus.NewRegistry()
-			registerBusMetrics(reg, b, time.Now)
-			runBus(t, b)
+			metrics.RegisterBusMetrics(reg, b, time.Now)
+			testkit.RunBus(t, b)
 
 			var errLine string
 			for _, l := range strings.Split(logs.String(), "\n") {
@@ -184,19 +126,19 @@ func TestStreamOverlapIsALoudFault(t *testing.T) {
 			assert.Contains(t, errLine, "sw.*.target")
 			assert.Contains(t, errLine, s.key)
 
-			problems := b.problems(time.Now())
+			problems := b.Problems(time.Now())
 			t.Logf("log: %s\nreadiness: %q", errLine, problems)
 			assert.True(t, hasProblem(problems, mine, s.other, s.key), "readiness %q", problems)
-			v, ok := metricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
+			v, ok := testkit.MetricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
 			assert.True(t, ok, "no stillwater_bus_fault{reason=\"stream\"}")
 			assert.Equal(t, 1.0, v)
 
 			s.fix(t, b)
 			fixed := time.Now()
-			require.Eventually(t, func() bool { return len(b.problems(time.Now())) == 0 }, 30*time.Second, 50*time.Millisecond,
+			require.Eventually(t, func() bool { return len(b.Problems(time.Now())) == 0 }, 30*time.Second, 50*time.Millisecond,
 				"the fault did not clear after the other stream was removed")
 			took := time.Since(fixed)
-			v, _ = metricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
+			v, _ = testkit.MetricValue(t, reg, "stillwater_bus_fault", map[string]string{"reason": "stream"})
 			assert.Zero(t, v)
 			refdata.Report(t, "stream overlap (%s): fault cleared %.2f s after the other stream was removed", c.name, took.Seconds())
 		})
@@ -212,22 +154,22 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	require.NoError(t, err)
 	port := l.Addr().(*net.TCPAddr).Port
 	require.NoError(t, l.Close())
-	cfg := busOnlyConfig(t)
+	cfg := testkit.BusConfig(t)
 	cfg.Bus.Listen, cfg.Bus.URL = "", "nats://127.0.0.1:"+strconv.Itoa(port)
 
 	reg := prometheus.NewRegistry()
-	met := newMetrics(reg, "test")
-	b := openTestBus(t, cfg, slog.New(slog.DiscardHandler), busHooks{OnResult: met.busResult})
-	registerBusMetrics(reg, b, time.Now)
-	runBus(t, b)
-	sink := &busSink{pub: b.Pub, met: met}
+	met := metrics.New(reg, "test")
+	b := testkit.OpenBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{OnResult: met.BusResult})
+	metrics.RegisterBusMetrics(reg, b, time.Now)
+	testkit.RunBus(t, b)
+	sink := &daemon.BusSink{Pub: b.Pub, Met: met}
 	for i := 0; i < 3; i++ {
-		require.NoError(t, sink.send(context.Background(), outMsg{Camera: "north", Kind: alert.KindTarget, ID: fmt.Sprintf("q-%d", i),
+		require.NoError(t, sink.Send(context.Background(), pipeline.Message{Camera: "north", Kind: alert.KindTarget, ID: fmt.Sprintf("q-%d", i),
 			Data: []byte(fmt.Sprintf(`{"v":1,"kind":"target","camera":"north","seq":%d}`, i))}))
 	}
 	target := map[string]string{"camera": "north", "kind": alert.KindTarget}
 	value := func(name string, labels map[string]string) float64 {
-		v, _ := metricValue(t, reg, name, labels)
+		v, _ := testkit.MetricValue(t, reg, name, labels)
 		return v
 	}
 	assert.Zero(t, value("stillwater_messages_published_total", target), "queued messages counted as published")
@@ -237,8 +179,8 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	assert.Equal(t, 4.0, value("stillwater_messages_queued_total", nil))
 	assert.Zero(t, value("stillwater_publish_seconds", map[string]string{"kind": alert.KindTarget}), "publish_seconds observed before any acknowledgement")
 	// The same queue seen 31 s later: older than the 30 s bound, not ready.
-	assert.True(t, hasProblem(b.problems(time.Now().Add(31*time.Second)), "oldest queued message"), "%q", b.problems(time.Now().Add(31*time.Second)))
-	v, _ := metricValue(t, reg, "stillwater_outbox_oldest_age_seconds", nil)
+	assert.True(t, hasProblem(b.Problems(time.Now().Add(31*time.Second)), "oldest queued message"), "%q", b.Problems(time.Now().Add(31*time.Second)))
+	v, _ := testkit.MetricValue(t, reg, "stillwater_outbox_oldest_age_seconds", nil)
 	assert.Greater(t, v, 0.0)
 
 	emb, err := bus.StartEmbedded(bus.EmbeddedConfig{Listen: "127.0.0.1:" + strconv.Itoa(port), StoreDir: t.TempDir(), Name: "late"})
@@ -249,18 +191,18 @@ func TestBusMetricsCountAcknowledgedApartFromQueued(t *testing.T) {
 	assert.Equal(t, 1.0, value("stillwater_messages_acknowledged_total", map[string]string{"camera": "north", "kind": alert.KindArmed}))
 	assert.Equal(t, 3.0, value("stillwater_messages_published_total", target))
 	assert.Equal(t, 3.0, value("stillwater_publish_seconds", map[string]string{"kind": alert.KindTarget}), "one observation per message")
-	assert.Empty(t, b.problems(time.Now()))
+	assert.Empty(t, b.Problems(time.Now()))
 }
 
 // TestSecondDaemonStopsAtTheDataDirectory starts the bus side twice on one
 // data directory: the second must be refused by the data directory's lock
 // before it starts a server on the first one's JetStream store.
 func TestSecondDaemonStopsAtTheDataDirectory(t *testing.T) {
-	cfg := busOnlyConfig(t)
-	first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), busHooks{})
+	cfg := testkit.BusConfig(t)
+	first := testkit.OpenBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
 	defer first.Close()
 	var logs syncBuffer
-	_, err := openBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, slog.New(slog.NewTextHandler(&logs, nil)), busHooks{})
+	_, err := config.OpenBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{})
 	require.Error(t, err)
 	assert.Contains(t, err.Error(), "data_dir "+cfg.DataDir)
 	assert.Contains(t, err.Error(), "another stillwater")
@@ -277,9 +219,9 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	require.NoError(t, err)
 	dead := "nats://" + l.Addr().String()
 	require.NoError(t, l.Close())
-	cfg := busOnlyConfig(t)
+	cfg := testkit.BusConfig(t)
 	cfg.Bus.Listen, cfg.Bus.URL, cfg.Bus.Prefix = "", dead, "old"
-	first := openTestBus(t, cfg, slog.New(slog.DiscardHandler), busHooks{})
+	first := testkit.OpenBus(t, cfg, slog.New(slog.DiscardHandler), config.BusHooks{})
 	for i := 0; i < 3; i++ {
 		require.NoError(t, first.Pub.Publish(context.Background(), "north", alert.KindTarget, fmt.Sprintf("left-%d", i),
 			[]byte(fmt.Sprintf(`{"v":1,"kind":"target","camera":"north","seq":%d}`, i))))
@@ -290,9 +232,9 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	cfg.Bus.Listen, cfg.Bus.URL, cfg.Bus.Prefix = "127.0.0.1:-1", "", "sw"
 	var logs syncBuffer
 	reg := prometheus.NewRegistry()
-	met := newMetrics(reg, "test")
-	b := openTestBus(t, cfg, slog.New(slog.NewTextHandler(&logs, nil)), busHooks{OnResult: met.busResult})
-	registerBusMetrics(reg, b, time.Now)
+	met := metrics.New(reg, "test")
+	b := testkit.OpenBus(t, cfg, slog.New(slog.NewTextHandler(&logs, nil)), config.BusHooks{OnResult: met.BusResult})
+	metrics.RegisterBusMetrics(reg, b, time.Now)
 	sub, err := nats.Connect(b.Embedded.URL())
 	require.NoError(t, err)
 	defer sub.Close()
@@ -305,11 +247,11 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	})
 	require.NoError(t, err)
 	require.NoError(t, sub.Flush())
-	runBus(t, b)
+	testkit.RunBus(t, b)
 
-	sink := &busSink{pub: b.Pub, met: met}
+	sink := &daemon.BusSink{Pub: b.Pub, Met: met}
 	start := time.Now()
-	require.NoError(t, sink.send(context.Background(), outMsg{Camera: "north", Kind: alert.KindTarget, ID: "fresh",
+	require.NoError(t, sink.Send(context.Background(), pipeline.Message{Camera: "north", Kind: alert.KindTarget, ID: "fresh",
 		Data: []byte(`{"v":1,"kind":"target","camera":"north","seq":9}`)}))
 	var arrived time.Time
 	select {
@@ -320,14 +262,14 @@ func TestPoisonedOutboxAfterPrefixChange(t *testing.T) {
 	require.Eventually(t, func() bool { return b.Pub.Stats().Depth == 0 }, 30*time.Second, 20*time.Millisecond)
 	emptied := time.Since(start)
 
-	v, _ := metricValue(t, reg, "stillwater_messages_dead_lettered_total", nil)
+	v, _ := testkit.MetricValue(t, reg, "stillwater_messages_dead_lettered_total", nil)
 	assert.Equal(t, 3.0, v)
 	b2, err := os.ReadFile(filepath.Join(cfg.DataDir, "outbox", bus.DeadLetterFile))
 	require.NoError(t, err)
 	assert.Equal(t, 3, strings.Count(string(b2), "\n"))
 	assert.Equal(t, 3, strings.Count(string(b2), `"subject":"old.north.target"`))
 	assert.Contains(t, logs.String(), "level=ERROR msg=\"message moved to the dead-letter file\"")
-	assert.Empty(t, b.problems(time.Now()))
+	assert.Empty(t, b.Problems(time.Now()))
 	refdata.Report(t, "daemon restarted with another bus.subject_prefix over 3 queued targets: a new target reached a subscriber %.1f ms after it was handed over; the 3 old ones dead-lettered, outbox empty %.2f s after",
 		float64(arrived.Sub(start).Microseconds())/1000, emptied.Seconds())
 }
@@ -341,8 +283,8 @@ func TestDaemonStartsOverAnEmptySubjectRecord(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders a 10 s clip")
 	}
-	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10; floatingChild(s) })
-	cfg := demoConfig(truth, clip, dir, false)
+	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10; tuning.FloatingChild(s) })
+	cfg := demo.Config(truth, clip, dir, false)
 	cfg.Cameras[0].Loop = true
 	cfg.Cameras[0].Detect.ProcessWidth = 160
 	require.NoError(t, cfg.Validate())

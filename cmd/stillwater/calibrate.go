@@ -4,23 +4,19 @@
 package main
 
 import (
-	"bytes"
 	"context"
 	"flag"
 	"fmt"
 	"image"
-	"image/color"
-	"image/png"
 	"io"
-	"math"
 	"os"
 	"path/filepath"
-	"strconv"
 	"strings"
 	"time"
 
-	"gopkg.in/yaml.v3"
-
+	"stillwater/cmd/stillwater/internal/calibrate"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/homography"
 	"stillwater/vision"
 )
@@ -126,60 +122,10 @@ func btoi(b bool) int {
 	return 0
 }
 
-// parseReference reads "u,v=x,y ..." into reference points.
-func parseReference(s string) ([]ReferencePoint, error) {
-	var out []ReferencePoint
-	for i, f := range strings.Fields(s) {
-		px, pool, ok := strings.Cut(f, "=")
-		if !ok {
-			return nil, fmt.Errorf("point %d %q: want u,v=x,y (pixel = pool metres)", i+1, f)
-		}
-		a, err1 := parsePairs(px)
-		b, err2 := parsePairs(pool)
-		if err1 != nil || err2 != nil || len(a) != 1 || len(b) != 1 {
-			return nil, fmt.Errorf("point %d %q: want u,v=x,y (pixel = pool metres)", i+1, f)
-		}
-		out = append(out, ReferencePoint{Pixel: a[0], Pool: b[0]})
-	}
-	return out, nil
-}
-
-// parsePairs reads "x,y x,y ..." (spaces, semicolons or newlines between
-// pairs) into pixel pairs.
-func parsePairs(s string) ([][2]float64, error) {
-	fields := strings.FieldsFunc(s, func(r rune) bool { return r == ' ' || r == '\n' || r == '\t' || r == ';' || r == '\r' })
-	out := make([][2]float64, 0, len(fields))
-	for i, f := range fields {
-		xy := strings.Split(f, ",")
-		if len(xy) != 2 {
-			return nil, fmt.Errorf("point %d %q: want x,y", i+1, f)
-		}
-		x, err1 := strconv.ParseFloat(xy[0], 64)
-		y, err2 := strconv.ParseFloat(xy[1], 64)
-		if err1 != nil || err2 != nil {
-			return nil, fmt.Errorf("point %d %q: x and y must be numbers", i+1, f)
-		}
-		out = append(out, [2]float64{x, y})
-	}
-	return out, nil
-}
-
-func parseCoefficients(s string) ([]float64, error) {
-	var out []float64
-	for _, f := range strings.Split(s, ",") {
-		v, err := strconv.ParseFloat(strings.TrimSpace(f), 64)
-		if err != nil {
-			return nil, fmt.Errorf("%q is not a number", f)
-		}
-		out = append(out, v)
-	}
-	return out, nil
-}
-
 // calibrationFromFlags builds the configuration section from the flags
 // and the frame's size.
-func calibrationFromFlags(f calibrateFlags, size image.Point) (CalibrationConfig, error) {
-	c := CalibrationConfig{Pool: PoolConfig{Length: f.length, Width: f.width}, Frame: [2]int{size.X, size.Y}}
+func calibrationFromFlags(f calibrateFlags, size image.Point) (config.CalibrationConfig, error) {
+	c := config.CalibrationConfig{Pool: config.PoolConfig{Length: f.length, Width: f.width}, Frame: [2]int{size.X, size.Y}}
 	src := f.corners
 	if f.cornersIn != "" {
 		b, err := os.ReadFile(f.cornersIn)
@@ -190,13 +136,13 @@ func calibrationFromFlags(f calibrateFlags, size image.Point) (CalibrationConfig
 	}
 	var err error
 	if f.points != "" {
-		if c.Reference, err = parseReference(f.points); err != nil {
+		if c.Reference, err = calibrate.ParseReference(f.points); err != nil {
 			return c, fmt.Errorf("-points: %w", err)
 		}
-		if c.Outline, err = parsePairs(f.outline); err != nil {
+		if c.Outline, err = calibrate.ParsePairs(f.outline); err != nil {
 			return c, fmt.Errorf("-outline: %w", err)
 		}
-	} else if c.Corners, err = parsePairs(src); err != nil {
+	} else if c.Corners, err = calibrate.ParsePairs(src); err != nil {
 		return c, fmt.Errorf("corners: %w", err)
 	}
 	if f.cornersOn != "water" {
@@ -204,7 +150,7 @@ func calibrationFromFlags(f calibrateFlags, size image.Point) (CalibrationConfig
 	}
 	c.Coping = f.coping
 	if f.fx != 0 || f.dist != "" || f.fisheye {
-		l := &LensConfig{Fx: f.fx, Fy: f.fy, Cx: f.cx, Cy: f.cy}
+		l := &config.LensConfig{Fx: f.fx, Fy: f.fy, Cx: f.cx, Cy: f.cy}
 		if l.Fy == 0 {
 			l.Fy = l.Fx
 		}
@@ -212,22 +158,22 @@ func calibrationFromFlags(f calibrateFlags, size image.Point) (CalibrationConfig
 			l.Model = homography.LensFisheye
 		}
 		if f.dist != "" {
-			if l.Dist, err = parseCoefficients(f.dist); err != nil {
+			if l.Dist, err = calibrate.ParseCoefficients(f.dist); err != nil {
 				return c, fmt.Errorf("-dist: %w", err)
 			}
 		}
 		c.Lens = l
 	} else if f.hfov != 0 {
-		c.Lens = &LensConfig{HFOVDeg: f.hfov}
+		c.Lens = &config.LensConfig{HFOVDeg: f.hfov}
 	}
 	if f.camera != "" {
-		v, err := parseCoefficients(f.camera)
+		v, err := calibrate.ParseCoefficients(f.camera)
 		if err != nil || len(v) != 3 {
 			return c, fmt.Errorf(`-camera %q: want "x,y,height" in metres`, f.camera)
 		}
-		c.CameraPosition = &CameraPositionConfig{X: v[0], Y: v[1], Height: v[2]}
+		c.CameraPosition = &config.CameraPositionConfig{X: v[0], Y: v[1], Height: v[2]}
 	}
-	c.Water = WaterConfig{Depth: f.depth, Shallow: f.shallow, Deep: f.deep}
+	c.Water = config.WaterConfig{Depth: f.depth, Shallow: f.shallow, Deep: f.deep}
 	return c, nil
 }
 
@@ -252,10 +198,10 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 	if cfg.ReferenceFrame = f.reference; f.reference == "" && f.out != "" {
 		cfg.ReferenceFrame = strings.TrimSuffix(f.out, filepath.Ext(f.out)) + "-reference.png"
 	}
-	if err := validateCalibration("calibration", cfg); err != nil {
+	if err := config.ValidateCalibration("calibration", cfg); err != nil {
 		return fmt.Errorf("calibrate: %w", err)
 	}
-	cal, err := buildCalibration(cfg)
+	cal, err := config.BuildCalibration(cfg)
 	if err != nil {
 		return fmt.Errorf("calibrate: %w", err)
 	}
@@ -263,38 +209,38 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 	if f.out == "" {
 		report = stderr // stdout carries the YAML
 	}
-	for i, p := range cal.corners {
+	for i, p := range cal.Corners() {
 		if p.X != cfg.Corners[i][0] || p.Y != cfg.Corners[i][1] {
 			fmt.Fprintln(report, "note:       corners C and D were given in crossed order; the written calibration has them swapped back")
-			for j, q := range cal.corners {
+			for j, q := range cal.Corners() {
 				cfg.Corners[j] = [2]float64{q.X, q.Y}
 			}
 			break
 		}
 	}
-	printCalibration(report, f.frame, size, cfg, cal)
+	calibrate.PrintSummary(report, f.frame, size, cfg, cal)
 	if f.overlay != "" {
-		img, err := vision.DrawOverlay(frame, overlayStrokes(cal), overlayLabels(cal))
+		img, err := vision.DrawOverlay(frame, calibrate.OverlayStrokes(cal), calibrate.OverlayLabels(cal))
 		if err != nil {
 			return fmt.Errorf("calibrate: overlay: %w", err)
 		}
-		if err := writePNGFile(f.overlay, img); err != nil {
+		if err := calibrate.WritePNG(f.overlay, img); err != nil {
 			return fmt.Errorf("calibrate: overlay: %w", err)
 		}
 		fmt.Fprintf(report, "overlay:    %s\n", f.overlay)
 	}
 	if f.rect != "" {
-		img, err := rectify(frame, cal, f.ppm)
+		img, err := calibrate.Rectify(frame, cal, f.ppm)
 		if err != nil {
 			return fmt.Errorf("calibrate: rectified view: %w", err)
 		}
-		if err := writePNGFile(f.rect, img); err != nil {
+		if err := calibrate.WritePNG(f.rect, img); err != nil {
 			return fmt.Errorf("calibrate: rectified view: %w", err)
 		}
-		fmt.Fprintf(report, "rectified:  %s (%g px/m, %g m margin)\n", f.rect, f.ppm, rectMargin)
+		fmt.Fprintf(report, "rectified:  %s (%g px/m, %g m margin)\n", f.rect, f.ppm, calibrate.RectMargin)
 	}
 	if cfg.ReferenceFrame != "" {
-		if err := writePNGFile(cfg.ReferenceFrame, frame); err != nil {
+		if err := calibrate.WritePNG(cfg.ReferenceFrame, frame); err != nil {
 			return fmt.Errorf("calibrate: reference frame: %w", err)
 		}
 		fmt.Fprintf(report, "reference:  %s (camera-moved check)\n", cfg.ReferenceFrame)
@@ -302,18 +248,18 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 		fmt.Fprintln(report, "reference:  not saved; give -reference or -out to enable the camera-moved check")
 	}
 	if f.dataDir != "" {
-		cam := CameraConfig{ID: f.id, Source: f.frame, CalibrationConfig: cfg, Detect: defaultDetect()}
-		ref, grid, err := learnReference(ctx, cam, f.transport, f.timeout, f.learn)
+		cam := config.CameraConfig{ID: f.id, Source: f.frame, CalibrationConfig: cfg, Detect: config.DefaultDetect()}
+		ref, grid, err := watch.LearnReference(ctx, cam, f.transport, f.timeout, f.learn)
 		if err != nil {
 			return fmt.Errorf("calibrate: empty-pool reference: %w", err)
 		}
-		if err := saveReference(f.dataDir, f.id, grid, ref, time.Now(), "saved by stillwater calibrate"); err != nil {
+		if err := watch.SaveReference(f.dataDir, f.id, grid, ref, time.Now(), "saved by stillwater calibrate"); err != nil {
 			return fmt.Errorf("calibrate: %w", err)
 		}
-		mean, _, _ := referencePaths(f.dataDir, f.id)
+		mean, _, _ := watch.ReferencePaths(f.dataDir, f.id)
 		fmt.Fprintf(report, "empty pool: %s (%d×%d cells of %g m, %v watched; the detector starts from it)\n", mean, grid.Cols, grid.Rows, grid.Cell, f.learn)
 	}
-	y, err := calibrationYAML(cfg)
+	y, err := calibrate.YAML(cfg)
 	if err != nil {
 		return fmt.Errorf("calibrate: %w", err)
 	}
@@ -326,187 +272,4 @@ func runCalibrate(ctx context.Context, args []string, stdout, stderr io.Writer) 
 	}
 	fmt.Fprintf(report, "wrote %s\n", f.out)
 	return nil
-}
-
-// printCalibration writes the installer's summary.
-func printCalibration(w io.Writer, src string, size image.Point, cfg CalibrationConfig, cal *calibration) {
-	fmt.Fprintf(w, "frame:      %s, %d×%d px\n", vision.Redact(src), size.X, size.Y)
-	fmt.Fprintf(w, "pool:       %g m × %g m, corners clicked at the %s\n", cal.length, cal.width, map[bool]string{true: "coping", false: "water line"}[cal.coping > 0])
-	if cal.points == 4 && !cfg.freeform() {
-		fmt.Fprintf(w, "reprojection: %.3f m / %.2f px RMS (four corners fit exactly; click accuracy shows in metres per pixel)\n", cal.rmsM, cal.rmsPx)
-	} else {
-		fmt.Fprintf(w, "reprojection: %.3f m RMS, worst %.3f m, %.2f px RMS over %d points\n", cal.rmsM, cal.worstM, cal.rmsPx, cal.points)
-	}
-	switch {
-	case !cal.hasCam:
-		fmt.Fprintln(w, "camera:     position unknown (give -hfov, the lens, or -camera to enable refraction)")
-	case cal.estimated:
-		fmt.Fprintf(w, "camera:     estimated at x %.2f m, y %.2f m, %.2f m above the water\n", cal.cam.X, cal.cam.Y, cal.cam.Height)
-	default:
-		fmt.Fprintf(w, "camera:     measured at x %.2f m, y %.2f m, %.2f m above the water\n", cal.cam.X, cal.cam.Y, cal.cam.Height)
-	}
-	near, far, nearName, farName := math.Inf(1), 0.0, "", ""
-	L, W := cal.length, cal.width
-	for i, q := range []homography.Point{{X: 0, Y: 0}, {X: L, Y: 0}, {X: L, Y: W}, {X: 0, Y: W}} {
-		p, ok := cal.pixel(q)
-		if !ok {
-			continue
-		}
-		m := cal.metresPerPixel(p)
-		name := string(rune('A' + i))
-		if m < near {
-			near, nearName = m, name
-		}
-		if m > far {
-			far, farName = m, name
-		}
-	}
-	fmt.Fprintf(w, "scale:      %.3f m/px at the near end (corner %s), %.3f m/px at the far end (corner %s)\n", near, nearName, far, farName)
-	if cal.refract {
-		fmt.Fprintf(w, "water:      %.2f m deep at x = 0, %.2f m at x = %g m; floor positions corrected for refraction (n = %.3f)\n", cal.depth.At(0), cal.depth.At(L), L, homography.WaterIndex)
-	} else {
-		fmt.Fprintln(w, "water:      no depth given; positions are reported on the surface")
-	}
-}
-
-// calibrationYAML renders the configuration section with pixel pairs on
-// one line each.
-func calibrationYAML(cfg CalibrationConfig) ([]byte, error) {
-	var n yaml.Node
-	if err := n.Encode(cfg); err != nil {
-		return nil, fmt.Errorf("encode calibration: %w", err)
-	}
-	flowPairs(&n)
-	var b bytes.Buffer
-	b.WriteString("# stillwater calibration: paste under the camera's entry in the config\n")
-	enc := yaml.NewEncoder(&b)
-	enc.SetIndent(2)
-	if err := enc.Encode(&n); err != nil {
-		return nil, fmt.Errorf("encode calibration: %w", err)
-	}
-	return b.Bytes(), nil
-}
-
-// flowPairs switches every sequence of scalars to flow style ([x, y]).
-func flowPairs(n *yaml.Node) {
-	if n.Kind == yaml.SequenceNode {
-		scalars := len(n.Content) > 0
-		for _, c := range n.Content {
-			scalars = scalars && c.Kind == yaml.ScalarNode
-		}
-		if scalars {
-			n.Style = yaml.FlowStyle
-		}
-	}
-	for _, c := range n.Content {
-		flowPairs(c)
-	}
-}
-
-func writePNGFile(path string, img image.Image) error {
-	var b bytes.Buffer
-	enc := png.Encoder{CompressionLevel: png.BestCompression}
-	if err := enc.Encode(&b, img); err != nil {
-		return fmt.Errorf("encode %s: %w", path, err)
-	}
-	if err := os.WriteFile(path, b.Bytes(), 0o644); err != nil {
-		return err
-	}
-	return nil
-}
-
-// Overlay colours (RGB).
-var (
-	colOutline = color.RGBA{255, 220, 0, 255}
-	colGrid    = color.RGBA{255, 255, 255, 255}
-	colX       = color.RGBA{230, 40, 40, 255}
-	colY       = color.RGBA{40, 200, 60, 255}
-)
-
-// surfaceLine samples the segment a→b on the water surface (pool
-// metres) into frame pixels, so that lens curvature shows.
-func (c *calibration) surfaceLine(a, b homography.Point) []vision.Point {
-	const n = 24
-	var out []vision.Point
-	for k := 0; k <= n; k++ {
-		t := float64(k) / n
-		if p, ok := c.pixel(homography.Point{X: a.X + t*(b.X-a.X), Y: a.Y + t*(b.Y-a.Y)}); ok {
-			out = append(out, p)
-		}
-	}
-	return out
-}
-
-func overlayStrokes(c *calibration) []vision.Stroke {
-	L, W := c.length, c.width
-	var s []vision.Stroke
-	for x := 1.0; x < L-1e-9; x++ {
-		s = append(s, vision.Stroke{Points: c.surfaceLine(homography.Point{X: x}, homography.Point{X: x, Y: W}), Color: colGrid, Width: 1})
-	}
-	for y := 1.0; y < W-1e-9; y++ {
-		s = append(s, vision.Stroke{Points: c.surfaceLine(homography.Point{Y: y}, homography.Point{X: L, Y: y}), Color: colGrid, Width: 1})
-	}
-	if c.outline != nil {
-		var px []vision.Point
-		for _, q := range c.outline {
-			if p, ok := c.pixel(q); ok {
-				px = append(px, p)
-			}
-		}
-		s = append(s, vision.Stroke{Points: px, Closed: true, Color: colOutline, Width: 2})
-	} else {
-		corners := []homography.Point{{X: 0, Y: 0}, {X: L, Y: 0}, {X: L, Y: W}, {X: 0, Y: W}}
-		for i := range corners {
-			s = append(s, vision.Stroke{Points: c.surfaceLine(corners[i], corners[(i+1)%4]), Color: colOutline, Width: 2})
-		}
-	}
-	s = append(s,
-		vision.Stroke{Points: c.surfaceLine(homography.Point{}, homography.Point{X: 1}), Color: colX, Width: 3},
-		vision.Stroke{Points: c.surfaceLine(homography.Point{}, homography.Point{Y: 1}), Color: colY, Width: 3})
-	return s
-}
-
-func overlayLabels(c *calibration) []vision.Label {
-	L, W := c.length, c.width
-	var out []vision.Label
-	add := func(q homography.Point, text string, col color.RGBA, dx, dy float64) {
-		if p, ok := c.pixel(q); ok {
-			out = append(out, vision.Label{At: vision.Point{X: p.X + dx, Y: p.Y + dy}, Text: text, Color: col})
-		}
-	}
-	add(homography.Point{}, "A (0,0)", colOutline, 6, -6)
-	add(homography.Point{X: L}, fmt.Sprintf("B (%g,0)", L), colOutline, 6, -6)
-	add(homography.Point{X: L, Y: W}, fmt.Sprintf("C (%g,%g)", L, W), colOutline, 6, -6)
-	add(homography.Point{Y: W}, fmt.Sprintf("D (0,%g)", W), colOutline, 6, -6)
-	add(homography.Point{X: 1.05}, "x", colX, 2, 4)
-	add(homography.Point{Y: 1.05}, "y", colY, 2, 4)
-	return out
-}
-
-// rectMargin is the deck shown around the pool in the rectified view, m.
-const rectMargin = 1.0
-
-// rectifiedH returns the transform from undistorted frame pixels to the
-// rectified view at ppm pixels per metre, with the pool's corner A at
-// (ppm·rectMargin, ppm·rectMargin), x to the right and y down, and the
-// view's size.
-func (c *calibration) rectifiedH(ppm float64) (homography.H, image.Point) {
-	o := ppm * rectMargin
-	s := homography.H{ppm, 0, o, 0, ppm, o, 0, 0, 1}
-	size := image.Pt(int(math.Ceil(ppm*(c.length+2*rectMargin))), int(math.Ceil(ppm*(c.width+2*rectMargin))))
-	return s.Mul(c.toPlane), size
-}
-
-// rectify returns the top-down view of the calibration plane.
-func rectify(frame image.Image, c *calibration, ppm float64) (image.Image, error) {
-	if c.hasLens {
-		k := c.lens.K
-		var err error
-		frame, err = vision.UndistortImage(frame, [9]float64{k.Fx, 0, k.Cx, 0, k.Fy, k.Cy, 0, 0, 1}, c.lens.Dist, c.lens.Model == homography.LensFisheye)
-		if err != nil {
-			return nil, err
-		}
-	}
-	h, size := c.rectifiedH(ppm)
-	return vision.WarpPerspective(frame, h, size)
 }

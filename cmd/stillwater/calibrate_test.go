@@ -19,6 +19,9 @@ import (
 	"github.com/stretchr/testify/require"
 	"gopkg.in/yaml.v3"
 
+	"stillwater/cmd/stillwater/internal/calibrate"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/testkit"
 	"stillwater/vision/synth"
 )
 
@@ -89,15 +92,16 @@ func TestCalibrateCommand(t *testing.T) {
 
 	b, err := os.ReadFile(out)
 	require.NoError(t, err)
-	var cfg CalibrationConfig
+	var cfg config.CalibrationConfig
 	dec := yaml.NewDecoder(bytes.NewReader(b))
 	dec.KnownFields(true)
 	require.NoError(t, dec.Decode(&cfg), string(b))
 	assert.Contains(t, string(b), "corners:\n  - [")
-	require.NoError(t, validateCalibration("calibration", cfg))
-	cal, err := newCalibration(CameraConfig{ID: "t", CalibrationConfig: cfg})
+	require.NoError(t, config.ValidateCalibration("calibration", cfg))
+	cal, err := config.NewCalibration(config.CameraConfig{ID: "t", CalibrationConfig: cfg})
 	require.NoError(t, err)
-	assert.True(t, cal.refract)
+	_, refracts := cal.Depth()
+	assert.True(t, refracts)
 	assert.Equal(t, [2]int{640, 480}, cfg.Frame)
 	ref := readPNG(t, cfg.ReferenceFrame)
 	assert.Equal(t, image.Pt(640, 480), ref.Bounds().Size())
@@ -179,7 +183,7 @@ func TestCalibrateUsageErrors(t *testing.T) {
 			assert.Contains(t, err.Error(), tc.want)
 		})
 	}
-	_, err := parsePairs("1,2 3")
+	_, err := calibrate.ParsePairs("1,2 3")
 	assert.ErrorContains(t, err, `point 2 "3": want x,y`)
 	var so, se bytes.Buffer
 	err = runCalibrate(context.Background(), []string{"-frame", "/nonexistent/f.png", "-corners", "1,1 2,2 3,3 4,4", "-length", "8", "-width", "4"}, &so, &se)
@@ -246,21 +250,21 @@ func FuzzParsePairs(f *testing.F) {
 		f.Add(s)
 	}
 	f.Fuzz(func(t *testing.T, s string) {
-		pts, err := parsePairs(s)
+		pts, err := calibrate.ParsePairs(s)
 		if err != nil {
 			return
 		}
 		// Whatever parses must survive validation without a panic, and
 		// bad numbers must be refused there.
-		cfg := CalibrationConfig{Pool: PoolConfig{Length: 8, Width: 4}, Corners: pts}
-		if err := validateCalibration("fuzz", cfg); err == nil {
+		cfg := config.CalibrationConfig{Pool: config.PoolConfig{Length: 8, Width: 4}, Corners: pts}
+		if err := config.ValidateCalibration("fuzz", cfg); err == nil {
 			for _, p := range pts {
 				if math.IsNaN(p[0]) || math.IsInf(p[0], 0) || p[0] < 0 {
 					t.Fatalf("accepted corner %v", p)
 				}
 			}
 		}
-		_, _ = buildCalibration(cfg)
+		_, _ = config.BuildCalibration(cfg)
 	})
 }
 
@@ -274,11 +278,11 @@ func TestCalibrateFreeform(t *testing.T) {
 	require.NoError(t, err)
 	var pts, outline []string
 	for _, q := range [][2]float64{{0.5, 0.5}, {7.5, 0.3}, {7.8, 3.6}, {0.4, 3.5}, {4, 0.2}} {
-		p := click(t, s, q[0], q[1], 0)
+		p := testkit.Click(t, s, q[0], q[1], 0)
 		pts = append(pts, fmt.Sprintf("%g,%g=%g,%g", p.X, p.Y, q[0], q[1]))
 	}
 	for a := 0.0; a < 2*math.Pi-1e-9; a += math.Pi / 8 {
-		p := click(t, s, 4+3.9*math.Cos(a), 2+1.9*math.Sin(a), 0)
+		p := testkit.Click(t, s, 4+3.9*math.Cos(a), 2+1.9*math.Sin(a), 0)
 		outline = append(outline, fmt.Sprintf("%g,%g", p.X, p.Y))
 	}
 	var so, se bytes.Buffer
@@ -287,13 +291,13 @@ func TestCalibrateFreeform(t *testing.T) {
 		"-length", "8", "-width", "4", "-hfov", "70", "-overlay", filepath.Join(dir, "o.png"),
 	}, &so, &se), se.String())
 	assert.Regexp(t, `reprojection: 0\.0\d\d m RMS, worst 0\.0\d\d m, [\d.]+ px RMS over 5 points`, se.String())
-	var cfg CalibrationConfig
+	var cfg config.CalibrationConfig
 	require.NoError(t, yaml.Unmarshal(so.Bytes(), &cfg))
 	assert.Len(t, cfg.Reference, 5)
 	assert.Len(t, cfg.Outline, 16)
 
 	err = runCalibrate(context.Background(), []string{"-frame", clip, "-points", strings.Join(pts, " ")}, &so, &se)
 	assert.ErrorContains(t, err, "-points needs -outline")
-	_, err = parseReference("1,2=3")
+	_, err = calibrate.ParseReference("1,2=3")
 	assert.ErrorContains(t, err, "want u,v=x,y")
 }

@@ -14,6 +14,9 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/testkit"
 )
 
 // TestDisarmedPublishesNoTarget runs the child scene while the schedule
@@ -28,10 +31,10 @@ func TestDisarmedPublishesNoTarget(t *testing.T) {
 	}
 	truth, clip, dir := renderScene(t, "child", 7, nil)
 	require.NotNil(t, truth.PerFrame[len(truth.PerFrame)-1].Intruder, "the labels have no child in the water at the end")
-	cfg := demoConfig(truth, clip, dir, false)
+	cfg := demo.Config(truth, clip, dir, false)
 	// A one-hour window that starts two hours from now: disarmed now.
 	from := time.Now().UTC().Add(2 * time.Hour)
-	cfg.Arming = ArmingConfig{TimeZone: "UTC", Schedule: []string{
+	cfg.Arming = config.ArmingConfig{TimeZone: "UTC", Schedule: []string{
 		fmt.Sprintf("daily %02d:00-%02d:00", from.Hour(), (from.Hour()+1)%24),
 	}}
 	require.NoError(t, cfg.Validate())
@@ -68,7 +71,7 @@ func TestDisarmedPublishesNoTarget(t *testing.T) {
 	// The clip plays as fast as the CPU allows; the daemon stops by
 	// itself at its end. The gauges hold the last frame's state.
 	metric := func(name string) float64 {
-		v, _ := metricValue(t, reg, name, map[string]string{"camera": "demo"})
+		v, _ := testkit.MetricValue(t, reg, name, map[string]string{"camera": "demo"})
 		return v
 	}
 	require.Eventually(t, func() bool { return metric("stillwater_frames_processed_total") >= float64(truth.Frames) },

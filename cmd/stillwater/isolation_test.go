@@ -29,6 +29,10 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 )
 
@@ -134,7 +138,7 @@ func recordTime(t *testing.T, rec map[string]any) time.Time {
 // debug level, and a stop that reports how long serve took to return
 // after its context ended (what SIGTERM does in run). stop gives up after
 // limit and reports that as an error.
-func startLoggedDaemon(t *testing.T, cfg Config, limit time.Duration) (*busLog, *logBuffer, func() (time.Duration, error)) {
+func startLoggedDaemon(t *testing.T, cfg config.Config, limit time.Duration) (*busLog, *logBuffer, func() (time.Duration, error)) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	bl := &busLog{}
@@ -146,7 +150,7 @@ func startLoggedDaemon(t *testing.T, cfg Config, limit time.Duration) (*busLog, 
 	ready := make(chan [2]string, 1)
 	done := make(chan error, 1)
 	go func() {
-		done <- serve(ctx, cfg, deps{
+		done <- daemon.Serve(ctx, cfg, daemon.Deps{
 			Log:   slog.New(slog.NewJSONHandler(w, &slog.HandlerOptions{Level: slog.LevelDebug})),
 			Ready: func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },
 		})
@@ -203,7 +207,7 @@ func firstStart(t *testing.T, bl *busLog, camera string, limit time.Duration) (a
 
 // shutdownLimit is how long serve may take to return after its context
 // ends: the cameras' stop wait and the bus flush (see serve).
-const shutdownLimit = cameraStopWait + flushWait + time.Second
+const shutdownLimit = daemon.CameraStopWait + daemon.FlushWait + time.Second
 
 // TestHangingSourcesDoNotHoldUpAHealthyCamera runs a camera playing a
 // generated clip in which a child enters the water beside two cameras
@@ -222,9 +226,9 @@ func TestHangingSourcesDoNotHoldUpAHealthyCamera(t *testing.T) {
 	if testing.Short() {
 		t.Skip("plays a 20 s clip in real time")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
-	cfg := demoConfig(truth, clip, dir, true)
-	cfg.HeartbeatEvery = Duration(time.Second)
+	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
+	cfg := demo.Config(truth, clip, dir, true)
+	cfg.HeartbeatEvery = config.Duration(time.Second)
 	silent, pipe := cfg.Cameras[0], cfg.Cameras[0]
 	silent.ID, silent.Source, silent.Transport = "silent", "rtsp://"+silentSource(t)+"/pool", "tcp"
 	pipe.ID, pipe.Source = "pipe", writerlessPipe(t)
@@ -341,7 +345,7 @@ func TestSilentSourcesDoNotStallAReopen(t *testing.T) {
 	truth, clip, dir := renderScene(t, "empty", 7, nil)
 	frames := aviJPEGs(t, clip)
 	require.NotEmpty(t, frames)
-	cfg := demoConfig(truth, clip, dir, false)
+	cfg := demo.Config(truth, clip, dir, false)
 	healthy := &cfg.Cameras[0]
 	healthy.Source = segmentedMJPEG(t, frames, 15, 10)
 	for i := 0; i < 3; i++ {
@@ -425,11 +429,11 @@ func TestTargetPublishedBeforeItsEvidence(t *testing.T) {
 	if testing.Short() {
 		t.Skip("plays a 20 s clip twice")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
+	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
 	delays := map[bool]time.Duration{}
 	var written time.Duration
 	for _, on := range []bool{false, true} {
-		cfg := demoConfig(truth, clip, filepath.Join(dir, fmt.Sprint(on)), false)
+		cfg := demo.Config(truth, clip, filepath.Join(dir, fmt.Sprint(on)), false)
 		cfg.Evidence.Enabled = &on
 		require.NoError(t, cfg.Validate())
 		bl, logs, stop := startLoggedDaemon(t, cfg, 60*time.Second)

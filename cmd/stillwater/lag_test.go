@@ -14,6 +14,10 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/metrics"
+	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision/refdata"
 )
 
@@ -22,11 +26,11 @@ import (
 type slowSink struct {
 	delay time.Duration
 	mu    sync.Mutex
-	msgs  []outMsg
-	seen  chan outMsg
+	msgs  []pipeline.Message
+	seen  chan pipeline.Message
 }
 
-func (s *slowSink) send(_ context.Context, m outMsg) error {
+func (s *slowSink) Send(_ context.Context, m pipeline.Message) error {
 	if m.Kind == alert.KindTarget {
 		time.Sleep(s.delay)
 	}
@@ -48,17 +52,17 @@ func (s *slowSink) send(_ context.Context, m outMsg) error {
 // longer silent when it falls behind).
 func TestSlowStepRaisesProcessingLag(t *testing.T) {
 	truth, clip, dir := renderScene(t, "child", 7, nil)
-	cfg := demoConfig(truth, clip, dir, true)
+	cfg := demo.Config(truth, clip, dir, true)
 	reg := prometheus.NewRegistry()
-	met := newMetrics(reg, "test")
-	sk := &slowSink{delay: 1200 * time.Millisecond, seen: make(chan outMsg, 64)}
+	met := metrics.New(reg, "test")
+	sk := &slowSink{delay: 1200 * time.Millisecond, seen: make(chan pipeline.Message, 64)}
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
-	w := newCameraWatch(cfg.Cameras[0], sk, func(time.Time) bool { return true }, time.Now, log, met.camera("demo"), 0, "test", evidenceSettings{})
+	w := watch.New(cfg.Cameras[0], sk, func(time.Time) bool { return true }, time.Now, log, met.Camera("demo"), 0, "test", watch.EvidenceSettings{})
 
 	ctx, cancel := context.WithCancel(context.Background())
 	defer cancel()
 	done := make(chan error, 1)
-	go func() { done <- w.run(ctx) }()
+	go func() { done <- w.Run(ctx) }()
 	var lag *alert.Fault
 	var age float64
 	deadline := time.After(60 * time.Second)
@@ -72,7 +76,7 @@ func TestSlowStepRaisesProcessingLag(t *testing.T) {
 			require.NoError(t, json.Unmarshal(m.Data, &f))
 			if f.Fault == alert.FaultProcessingLag && f.Active {
 				lag = &f
-				v, err := metricValues(reg, "stillwater_frame_age_seconds", "camera")
+				v, err := metrics.Values(reg, "stillwater_frame_age_seconds", "camera")
 				require.NoError(t, err)
 				age = v["demo"]
 			}
@@ -86,7 +90,7 @@ func TestSlowStepRaisesProcessingLag(t *testing.T) {
 	// dropped as the reader catches up, just after.
 	var dropped float64
 	require.Eventually(t, func() bool {
-		v, err := metricValues(reg, "stillwater_frames_dropped_total", "camera")
+		v, err := metrics.Values(reg, "stillwater_frames_dropped_total", "camera")
 		if err != nil {
 			return false
 		}
@@ -96,6 +100,6 @@ func TestSlowStepRaisesProcessingLag(t *testing.T) {
 	cancel()
 	require.NoError(t, <-done)
 	assert.Contains(t, lag.Message, "after it was taken")
-	assert.Greater(t, age, maxFrameAge.Seconds(), "the age metric shows the late frame")
+	assert.Greater(t, age, watch.MaxFrameAge.Seconds(), "the age metric shows the late frame")
 	refdata.Report(t, "lag: targets taking 1.2 s to hand on: processing_lag raised (%s), frame age %.2f s, %.0f frames dropped", lag.Message, age, dropped)
 }

@@ -10,6 +10,9 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
@@ -26,8 +29,8 @@ func TestDaemonLeavesNothingBehind(t *testing.T) {
 		t.Skip("processes 10 000 frames")
 	}
 	const frames = 10000
-	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10; floatingChild(s) })
-	cfg := demoConfig(truth, clip, dir, false)
+	truth, clip, dir := renderScene(t, "child", 3, func(s *synth.Scene) { s.Width, s.Height, s.Duration = 320, 240, 10; tuning.FloatingChild(s) })
+	cfg := demo.Config(truth, clip, dir, false)
 	cfg.Cameras[0].Loop = true
 	cfg.Cameras[0].Detect.ProcessWidth = 160
 	require.NoError(t, cfg.Validate())
@@ -41,7 +44,7 @@ func TestDaemonLeavesNothingBehind(t *testing.T) {
 	reg := prometheus.NewRegistry()
 	done := make(chan error, 1)
 	start := time.Now()
-	go func() { done <- serve(ctx, cfg, deps{Registry: reg}) }()
+	go func() { done <- daemon.Serve(ctx, cfg, daemon.Deps{Registry: reg}) }()
 	read := func() float64 {
 		mfs, err := reg.Gather()
 		if err != nil {

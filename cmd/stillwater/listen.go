@@ -18,6 +18,7 @@ import (
 
 	"stillwater/alert"
 	"stillwater/alert/bus"
+	"stillwater/cmd/stillwater/internal/config"
 )
 
 // listenFlags are the flags of "stillwater listen".
@@ -80,7 +81,7 @@ func runListen(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		nats.ErrorHandler(func(_ *nats.Conn, _ *nats.Subscription, err error) { fmt.Fprintf(errw, "listen: %v\n", err) }))
 	nc, err := nats.Connect(f.url, opts...)
 	if err != nil {
-		return fmt.Errorf("listen: connect %s: %w", busRedactList(f.url), err)
+		return fmt.Errorf("listen: connect %s: %w", config.BusRedactList(f.url), err)
 	}
 	defer nc.Close()
 	sub, err := nc.SubscribeSync(subject)
@@ -151,14 +152,6 @@ func (f listenFlags) connectOptions(getenv func(string) string) ([]nats.Option, 
 	}
 	a.Password, a.Token = pw, tok
 	return bus.ConnectOptions(a)
-}
-
-func busRedactList(urls string) string {
-	parts := strings.Split(urls, ",")
-	for i, p := range parts {
-		parts[i] = busRedact(strings.TrimSpace(p))
-	}
-	return strings.Join(parts, ",")
 }
 
 // lockedWriter serialises writes from the NATS callback goroutines.

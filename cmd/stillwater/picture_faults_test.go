@@ -11,6 +11,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/demo"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
@@ -48,7 +49,7 @@ func TestPictureFaults(t *testing.T) {
 			out, err := exec.Command("ffmpeg", args...).CombinedOutput()
 			require.NoError(t, err, "ffmpeg (deploy/setup installs it): %s", out)
 
-			cfg := demoConfig(truth, clip, dir, true)
+			cfg := demo.Config(truth, clip, dir, true)
 			cfg.DataDir = filepath.Join(dir, tt.name)
 			require.NoError(t, cfg.Validate())
 			log, stop := startDaemon(t, cfg)

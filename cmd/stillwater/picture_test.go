@@ -16,6 +16,8 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
@@ -26,11 +28,11 @@ import (
 func TestPictureFaultsOneCodePath(t *testing.T) {
 	ok := vision.HealthStats{Mean: 120, Spread: 30, HasPrev: true, Diff: 1, HasMotion: true, Motion: 1, Correlation: 0.9}
 	dark := vision.HealthStats{Mean: 2, Spread: 1, HasPrev: true, HasMotion: true, Correlation: 0.1}
-	p := newPictureFaults(vision.HealthConfig{})
+	p := pipeline.NewPictureFaults(vision.HealthConfig{})
 	var got []string
 	step := func(from, to time.Duration, s vision.HealthStats, armed bool) {
 		for at := from; at < to; at += 100 * time.Millisecond {
-			for _, c := range p.observe(at, s, armed) {
+			for _, c := range p.Observe(at, s, armed) {
 				got = append(got, fmt.Sprintf("%v %s %v", at, c.Kind, c.Active))
 			}
 		}
@@ -109,16 +111,16 @@ func TestReplayRaisesPictureFaults(t *testing.T) {
 		faultClip{"noise h264 gop 2 s", []string{"-c:v", "libx264", "-crf", "26", "-g", "20", "-f", "mp4"}, synth.FaultNoise},
 	)
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
-	var scores []clipScore
+	var scores []tuning.ClipScore
 	for i, fc := range clips {
 		t.Run(fc.name, func(t *testing.T) {
 			clip := filepath.Join(dir, fmt.Sprintf("fault%d.mp4", i))
 			makeFaultClip(t, src, clip, fc, truth.Width, truth.Height, fps, onset, dur)
-			cam, err := cameraFromLabels(truth, clip)
+			cam, err := tuning.CameraFromLabels(truth, clip)
 			require.NoError(t, err)
 			lt := synth.Truth{Format: synth.LabelFormat, FPS: fps, Frames: truth.Frames + int(dur*fps),
 				Faults: []synth.Fault{{Kind: fc.kind, From: onset, To: onset + dur}}}
-			cs, st, err := replayScore(context.Background(), clipJob{Name: fc.name, Clip: clip, Truth: lt}, cam, defaultScoreRules(), log)
+			cs, st, err := tuning.ReplayScore(context.Background(), tuning.ClipJob{Name: fc.name, Clip: clip, Truth: lt}, cam, tuning.DefaultScoreRules(), log)
 			require.NoError(t, err)
 			require.Equal(t, lt.Frames, st.Frames, "frames replayed")
 			scores = append(scores, cs)
@@ -131,13 +133,13 @@ func TestReplayRaisesPictureFaults(t *testing.T) {
 		})
 	}
 	var sb strings.Builder
-	writeScores(&sb, scores)
+	tuning.WriteScores(&sb, scores)
 	t.Log("\n" + sb.String())
 }
 
 func mustFaultKind(t *testing.T, label string) string {
 	t.Helper()
-	k, err := faultKindOf(label)
+	k, err := tuning.FaultKindOf(label)
 	require.NoError(t, err)
 	return k
 }
@@ -148,12 +150,12 @@ func TestReplayWritesFaultMessages(t *testing.T) {
 	truth, src, dir := renderScene(t, "calm", 12, func(s *synth.Scene) { s.Duration = 10 })
 	clip := filepath.Join(dir, "frozen.mp4")
 	makeFaultClip(t, src, clip, faultClip{"frozen", []string{"-c:v", "libx264", "-crf", "26", "-g", "10", "-f", "mp4"}, synth.FaultFrozen}, truth.Width, truth.Height, 10, 3, 5)
-	cam, err := cameraFromLabels(truth, clip)
+	cam, err := tuning.CameraFromLabels(truth, clip)
 	require.NoError(t, err)
 	var sb strings.Builder
-	_, err = replayClip(context.Background(), cam, "pool", &sb, slog.New(slog.NewTextHandler(io.Discard, nil)))
+	_, err = tuning.ReplayClip(context.Background(), cam, "pool", &sb, slog.New(slog.NewTextHandler(io.Discard, nil)))
 	require.NoError(t, err)
-	lines, err := readReplay(strings.NewReader(sb.String()), "replay")
+	lines, err := tuning.ReadReplay(strings.NewReader(sb.String()), "replay")
 	require.NoError(t, err)
 	var faults []alert.Fault
 	for _, l := range lines {

@@ -16,6 +16,9 @@ import (
 	"gopkg.in/yaml.v3"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -28,12 +31,12 @@ func TestReferenceRoundTrip(t *testing.T) {
 		ref.Var = append(ref.Var, float32(i*i), 4, 0.25)
 	}
 	dir := t.TempDir()
-	_, _, err := loadReference(dir, "pool", g)
-	require.ErrorIs(t, err, errNoReference)
+	_, _, err := watch.LoadReference(dir, "pool", g)
+	require.ErrorIs(t, err, watch.ErrNoReference)
 
 	now := time.Date(2026, 7, 1, 12, 0, 0, 0, time.UTC)
-	require.NoError(t, saveReference(dir, "pool", g, ref, now, "test"))
-	got, meta, err := loadReference(dir, "pool", g)
+	require.NoError(t, watch.SaveReference(dir, "pool", g, ref, now, "test"))
+	got, meta, err := watch.LoadReference(dir, "pool", g)
 	require.NoError(t, err)
 	assert.Equal(t, now, meta.Saved)
 	assert.Equal(t, 100, got.Frames)
@@ -41,17 +44,17 @@ func TestReferenceRoundTrip(t *testing.T) {
 		// 8-bit pictures: the mean to the nearest grey level, the spread
 		// to the nearest 1/spreadScale.
 		assert.InDelta(t, ref.Mean[i], got.Mean[i], 0.5, "mean %d", i)
-		assert.InDelta(t, math.Sqrt(float64(ref.Var[i])), math.Sqrt(float64(got.Var[i])), 0.5/spreadScale+1e-6, "spread %d", i)
+		assert.InDelta(t, math.Sqrt(float64(ref.Var[i])), math.Sqrt(float64(got.Var[i])), 0.5/watch.SpreadScale+1e-6, "spread %d", i)
 	}
 	// Another calibration (one map value moved): not used.
 	g2 := *g
 	g2.MapX = append([]float32(nil), g.MapX...)
 	g2.MapX[0] = 1.5
-	_, _, err = loadReference(dir, "pool", &g2)
+	_, _, err = watch.LoadReference(dir, "pool", &g2)
 	assert.ErrorContains(t, err, "another calibration")
 	// Another camera has none.
-	_, _, err = loadReference(dir, "deck", g)
-	assert.ErrorIs(t, err, errNoReference)
+	_, _, err = watch.LoadReference(dir, "deck", g)
+	assert.ErrorIs(t, err, watch.ErrNoReference)
 }
 
 // childFromStart renders the "child" scene (seed 11) with the child already
@@ -94,16 +97,16 @@ func TestDaemonStartsFromEmptyPoolReference(t *testing.T) {
 		"-data-dir", data, "-id", "demo", "-learn", "5s", "-out", filepath.Join(dir, "cal.yaml")}, &out, &errOut)
 	require.NoError(t, err, errOut.String())
 	assert.Contains(t, out.String(), "empty pool:")
-	mean, _, _ := referencePaths(data, "demo")
+	mean, _, _ := watch.ReferencePaths(data, "demo")
 	require.FileExists(t, mean)
 
 	// The daemon's camera takes the calibration calibrate wrote.
 	y, err := os.ReadFile(filepath.Join(dir, "cal.yaml"))
 	require.NoError(t, err)
-	var cal CalibrationConfig
+	var cal config.CalibrationConfig
 	require.NoError(t, yaml.Unmarshal(y, &cal))
 	targets := func(clip string, withRef bool) []alert.Target {
-		cfg := demoConfig(truth, clip, dir, true)
+		cfg := demo.Config(truth, clip, dir, true)
 		cfg.Cameras[0].CalibrationConfig = cal
 		cfg.DataDir = data
 		if !withRef {
@@ -144,12 +147,12 @@ func TestDaemonStartsFromEmptyPoolReference(t *testing.T) {
 }
 
 // loadReferenceMeta reads a reference's description only.
-func loadReferenceMeta(dataDir, camID string) (string, referenceMeta, error) {
-	_, _, metaPath := referencePaths(dataDir, camID)
+func loadReferenceMeta(dataDir, camID string) (string, watch.ReferenceMeta, error) {
+	_, _, metaPath := watch.ReferencePaths(dataDir, camID)
 	b, err := os.ReadFile(metaPath)
 	if err != nil {
-		return metaPath, referenceMeta{}, err
+		return metaPath, watch.ReferenceMeta{}, err
 	}
-	var m referenceMeta
+	var m watch.ReferenceMeta
 	return metaPath, m, json.Unmarshal(b, &m)
 }

@@ -12,6 +12,9 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision"
 	"stillwater/vision/synth"
 )
@@ -19,7 +22,7 @@ import (
 // countSink counts the messages a camera watch sends.
 type countSink struct{ n int }
 
-func (c *countSink) send(context.Context, outMsg) error { c.n++; return nil }
+func (c *countSink) Send(context.Context, pipeline.Message) error { c.n++; return nil }
 
 // TestReloadedDriftCheckerIsClosed watches a short clip with a
 // camera-moved reference frame and a reload queued before the first
@@ -37,28 +40,28 @@ func TestReloadedDriftCheckerIsClosed(t *testing.T) {
 	require.NoError(t, err)
 	ref := filepath.Join(t.TempDir(), "ref.png")
 	writePNG(t, ref, first)
-	cam := CameraConfig{ID: "t", Source: clip, FrameTimeout: Duration(defaultFrameTimeout), Detect: defaultDetect(),
-		CalibrationConfig: CalibrationConfig{Pool: PoolConfig{Length: truth.Pool.Length, Width: truth.Pool.Width}, ReferenceFrame: ref}}
+	cam := config.CameraConfig{ID: "t", Source: clip, FrameTimeout: config.Duration(config.DefaultFrameTimeout), Detect: config.DefaultDetect(),
+		CalibrationConfig: config.CalibrationConfig{Pool: config.PoolConfig{Length: truth.Pool.Length, Width: truth.Pool.Width}, ReferenceFrame: ref}}
 	for _, c := range truth.Corners {
 		cam.Corners = append(cam.Corners, [2]float64{math.Round(c.Pixel[0]), math.Round(c.Pixel[1])})
 	}
-	cfg := Defaults()
-	cfg.Cameras = []CameraConfig{cam}
+	cfg := config.Defaults()
+	cfg.Cameras = []config.CameraConfig{cam}
 	require.NoError(t, cfg.Validate())
 	cam = cfg.Cameras[0]
 
 	before, _ := vision.OpenMats()
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
 	out := &countSink{}
-	w := newCameraWatch(cam, out, func(time.Time) bool { return true }, time.Now, log, nil, 0, "test", evidenceSettings{})
+	w := watch.New(cam, out, func(time.Time) bool { return true }, time.Now, log, nil, 0, "test", watch.EvidenceSettings{})
 	reloaded := cam
 	reloaded.Detect.MinArea *= 1.5
-	w.reload <- reloaded
+	w.Reload <- reloaded
 	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
 	defer cancel()
-	require.NoError(t, w.run(ctx))
-	require.Empty(t, w.reload, "the reload was never taken")
-	assert.Equal(t, int64(truth.Frames), w.nframes.Load(), "frames watched")
+	require.NoError(t, w.Run(ctx))
+	require.Empty(t, w.Reload, "the reload was never taken")
+	assert.Equal(t, int64(truth.Frames), w.Nframes.Load(), "frames watched")
 	after, _ := vision.OpenMats()
 	assert.Equal(t, before, after, "gocv Mats open before and after watching a clip with a reload")
 }

@@ -19,6 +19,9 @@ import (
 	"golang.org/x/sync/errgroup"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
@@ -37,9 +40,9 @@ func renderChild(t *testing.T, dir string) (clip, labels string, truth synth.Tru
 
 // childClip is the scene renderChild renders.
 func childClip() synth.Scene {
-	s, _ := scenarioByName("child", 7)
+	s, _ := tuning.ScenarioByName("child", 7)
 	s.Duration = 14
-	floatingChild(&s)
+	tuning.FloatingChild(&s)
 	return s
 }
 
@@ -79,7 +82,7 @@ func TestReplayMatchesDaemon(t *testing.T) {
 	require.NoError(t, runReplay(context.Background(), []string{"-clip", clip, "-labels", labels}, &again, io.Discard))
 	assert.Equal(t, string(first), again.String(), "replay output is reproducible")
 
-	lines, err := readReplay(bytes.NewReader(first), out)
+	lines, err := tuning.ReadReplay(bytes.NewReader(first), out)
 	require.NoError(t, err)
 	require.NotEmpty(t, lines)
 	schemas := map[string]*jsonschema.Schema{alert.KindTarget: schemaFor(t, alert.KindTarget), alert.KindCleared: schemaFor(t, alert.KindCleared)}
@@ -104,7 +107,7 @@ func TestReplayMatchesDaemon(t *testing.T) {
 		}
 	}
 
-	res, err := demoClip(context.Background(), truth, clip, t.TempDir(), false, slog.New(slog.NewTextHandler(io.Discard, nil)), io.Discard)
+	res, err := demo.Clip(context.Background(), truth, clip, t.TempDir(), false, slog.New(slog.NewTextHandler(io.Discard, nil)), io.Discard)
 	require.NoError(t, err)
 	require.Equal(t, len(res.Targets), len(replayed), "target messages: daemon against replay")
 	for i, d := range res.Targets {
@@ -146,7 +149,7 @@ func TestReplayZoneSuppresses(t *testing.T) {
 			require.NoError(t, os.WriteFile(p, []byte(tt.cfg), 0o644))
 			var out bytes.Buffer
 			require.NoError(t, runReplay(context.Background(), []string{"-clip", clip, "-config", p, "-camera", "pool"}, &out, io.Discard))
-			lines, err := readReplay(&out, "out")
+			lines, err := tuning.ReadReplay(&out, "out")
 			require.NoError(t, err)
 			if tt.wantNone {
 				assert.Empty(t, lines)
@@ -201,16 +204,16 @@ func writeLabels(t *testing.T, dir string) string {
 // plaza, seen from an upper floor, 768×576 at 10 fps). Four points on the
 // paving are taken as an 8.5 m × 7 m rectangle, a size estimated from the
 // walkers' apparent height of about 1.7 m (common practice), not measured.
-func plazaCamera(t testing.TB, zones ...ZoneConfig) CameraConfig {
+func plazaCamera(t testing.TB, zones ...config.ZoneConfig) config.CameraConfig {
 	t.Helper()
 	clip, err := refdata.Path("vtest.avi")
 	if err != nil {
 		t.Skip(err)
 	}
-	return CameraConfig{
+	return config.CameraConfig{
 		ID: "plaza", Source: clip,
-		CalibrationConfig: CalibrationConfig{
-			Pool:    PoolConfig{Length: 8.5, Width: 7},
+		CalibrationConfig: config.CalibrationConfig{
+			Pool:    config.PoolConfig{Length: 8.5, Width: 7},
 			Corners: [][2]float64{{250, 300}, {720, 300}, {640, 150}, {330, 150}},
 		},
 		Detect: plazaDetect(),
@@ -221,8 +224,8 @@ func plazaCamera(t testing.TB, zones ...ZoneConfig) CameraConfig {
 // plazaDetect is the default detection with the pool's walking-shadow
 // rules relaxed: on the plaza the walkers are the subject, and an adult
 // walks at 1.2–1.5 m/s (common practice), above the pool's max_speed_mps.
-func plazaDetect() DetectConfig {
-	d := defaultDetect()
+func plazaDetect() config.DetectConfig {
+	d := config.DefaultDetect()
 	d.MaxSpeed = 3
 	d.DeckRadius = -1
 	d.Companion = -1
@@ -238,13 +241,13 @@ func TestReplayRealFootage(t *testing.T) {
 		t.Skip("replays 80 s of real video twice")
 	}
 	// The left third of the watched paving is excluded.
-	excl := ZoneConfig{Name: "left", PoolM: [][2]float64{{0, 0}, {3, 0}, {3, 7}, {0, 7}}}
-	run := func(cam CameraConfig) ([]alert.Target, error) {
+	excl := config.ZoneConfig{Name: "left", PoolM: [][2]float64{{0, 0}, {3, 0}, {3, 7}, {0, 7}}}
+	run := func(cam config.CameraConfig) ([]alert.Target, error) {
 		var buf bytes.Buffer
-		if _, err := replayClip(context.Background(), cam, "stillwater", &buf, slog.New(slog.NewTextHandler(io.Discard, nil))); err != nil {
+		if _, err := tuning.ReplayClip(context.Background(), cam, "stillwater", &buf, slog.New(slog.NewTextHandler(io.Discard, nil))); err != nil {
 			return nil, err
 		}
-		lines, err := readReplay(&buf, "vtest")
+		lines, err := tuning.ReadReplay(&buf, "vtest")
 		if err != nil {
 			return nil, err
 		}
@@ -270,7 +273,7 @@ func TestReplayRealFootage(t *testing.T) {
 	// detector's one-second mean draws a walker as a streak 1.3 m long,
 	// whose centre lags and starts late, which suits water, not a plaza.
 	mog := plazaCamera(t, excl)
-	mog.Detect = mergeDetect(defaultDetect(), DetectConfig{Method: "mog2"})
+	mog.Detect = config.MergeDetect(config.DefaultDetect(), config.DetectConfig{Method: "mog2"})
 	g.SetLimit(2)
 	g.Go(func() (err error) { all, err = run(plain); return err })
 	g.Go(func() (err error) { zoned, err = run(withZone); return err })
@@ -288,7 +291,7 @@ func TestReplayRealFootage(t *testing.T) {
 		for _, tg := range ts {
 			speeds = append(speeds, math.Hypot(tg.Velocity.X, tg.Velocity.Y))
 		}
-		return quantile(speeds, 0.5)
+		return tuning.Quantile(speeds, 0.5)
 	}
 	med := medSpeed(walked)
 	t.Logf("vtest: %d tracks (%d targets) without the zone, %d tracks with it; median target speed %.2f m/s (mog2, %d tracks), %.2f m/s (default detector)", tracks(all), len(all), tracks(zoned), med, tracks(walked), medSpeed(zoned))
@@ -322,7 +325,7 @@ func BenchmarkReplayRealFootage(b *testing.B) {
 	var frames int
 	var busy time.Duration
 	for i := 0; i < b.N; i++ {
-		st, err := replayClip(context.Background(), cam, "stillwater", io.Discard, log)
+		st, err := tuning.ReplayClip(context.Background(), cam, "stillwater", io.Discard, log)
 		if err != nil {
 			b.Fatal(err)
 		}

@@ -9,6 +9,8 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
 )
@@ -31,12 +33,12 @@ func TestRTSPCameraLostAndBack(t *testing.T) {
 	if testing.Short() {
 		t.Skip("runs a live RTSP relay for about a minute")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
+	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
 	require.NotEmpty(t, truth.Presence)
 	entry := time.Duration(truth.Presence[0].From * float64(time.Second))
 
 	srv := rtsptest.Start(t, clip, "pool")
-	cfg := demoConfig(truth, clip, dir, false)
+	cfg := demo.Config(truth, clip, dir, false)
 	cfg.Cameras[0].ID = "pool"
 	cfg.Cameras[0].Source = srv.URL()
 	cfg.Cameras[0].Transport = "udp"

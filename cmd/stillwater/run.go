@@ -10,6 +10,9 @@ import (
 	"os/signal"
 	"syscall"
 
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/redact"
 	"stillwater/vision"
 )
 
@@ -24,10 +27,10 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err := fs.Parse(args); err != nil {
 		return errUsage
 	}
-	load := func() (Config, error) {
-		cfg, err := LoadConfig(*path)
+	load := func() (config.Config, error) {
+		cfg, err := config.LoadConfig(*path)
 		if err != nil {
-			return Config{}, fmt.Errorf("couldn't load configuration (-config %q): %w", *path, err)
+			return config.Config{}, fmt.Errorf("couldn't load configuration (-config %q): %w", *path, err)
 		}
 		if *httpAddr != "" {
 			cfg.HTTP.Listen = *httpAddr
@@ -39,7 +42,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			cfg.Log.Level = *level
 		}
 		if err := cfg.Validate(); err != nil {
-			return Config{}, fmt.Errorf("configuration after flags: %w", err)
+			return config.Config{}, fmt.Errorf("configuration after flags: %w", err)
 		}
 		return cfg, nil
 	}
@@ -48,14 +51,14 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		return err
 	}
 	// Every secret the configuration holds is hidden in every log line.
-	log := withRedaction(newLogger(cfg.Log, stderr), cfg.Secrets()...)
+	log := redact.WithRedaction(newLogger(cfg.Log, stderr), cfg.Secrets()...)
 
 	// SIGHUP reloads the file; a broken file is refused and logged, and
 	// the daemon goes on with what it has.
 	hup := make(chan os.Signal, 1)
 	signal.Notify(hup, syscall.SIGHUP)
 	defer signal.Stop(hup)
-	reload := make(chan Config, 1)
+	reload := make(chan config.Config, 1)
 	go func() {
 		for {
 			select {
@@ -68,7 +71,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 				log.Error("reload refused; keeping the running configuration", "err", err)
 				continue
 			}
-			withRedaction(log, next.Secrets()...)
+			redact.WithRedaction(log, next.Secrets()...)
 			select {
 			case reload <- next:
 			case <-ctx.Done():
@@ -83,10 +86,10 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		defer stopLibLog()
 	}
 	// The error is printed by main, outside the log: hide secrets there too.
-	return redactorOf(log).Err(serve(ctx, cfg, deps{Log: log, Reload: reload}))
+	return redact.Of(log).Err(daemon.Serve(ctx, cfg, daemon.Deps{Log: log, Reload: reload}))
 }
 
-func newLogger(c LogConfig, w io.Writer) *slog.Logger {
+func newLogger(c config.LogConfig, w io.Writer) *slog.Logger {
 	var lv slog.Level
 	_ = lv.UnmarshalText([]byte(c.Level))
 	o := &slog.HandlerOptions{Level: lv}

@@ -21,6 +21,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert/arming"
+	"stillwater/cmd/stillwater/internal/daemon"
 	"stillwater/vision/refdata"
 )
 
@@ -306,7 +307,7 @@ func TestHTTPCutsSlowClients(t *testing.T) {
 	dir := t.TempDir()
 	cfg := "log: {format: json}\nbus: {listen: 127.0.0.1:-1}\ncameras:" + faultCamera("pool", "rtsp://"+closedPort(t)+"/a")
 	d := startRun(t, dir, cfg, "-http", "127.0.0.1:0")
-	to := defaultHTTPTimeouts()
+	to := daemon.DefaultHTTPTimeouts()
 
 	// cutAfter opens a connection, sends what, and returns how long until
 	// the server closes it (or limit).

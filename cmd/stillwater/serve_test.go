@@ -11,6 +11,8 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/synth"
 )
 
@@ -43,13 +45,13 @@ func TestEndToEnd(t *testing.T) {
 			// scenario suite's gated scenes).
 			var mod func(*synth.Scene)
 			if tt.intruder {
-				mod = floatingChild
+				mod = tuning.FloatingChild
 			}
 			truth, clip, dir := renderScene(t, tt.scenario, 7, mod)
 			ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
 			defer cancel()
 			log := slog.New(slog.NewTextHandler(io.Discard, nil))
-			res, err := demoClip(ctx, truth, clip, dir, false, log, io.Discard)
+			res, err := demo.Clip(ctx, truth, clip, dir, false, log, io.Discard)
 			require.NoError(t, err)
 			// What the daemon's metrics counted, against the clip's labels:
 			// every frame of the clip went through the pipeline.
@@ -63,12 +65,12 @@ func TestEndToEnd(t *testing.T) {
 				return
 			}
 			require.False(t, math.IsNaN(res.FirstAlert), "intruder not detected")
-			assert.GreaterOrEqual(t, res.delay(), 0.0)
+			assert.GreaterOrEqual(t, res.Delay(), 0.0)
 			// The daemon adds nothing to the detector's delay; the delay
 			// targets (median 1 s, worst 2 s) are the benchmarks', which
 			// report the submerged scene's 2.1 s as a miss. This bound
 			// catches a daemon path that loses or holds back frames.
-			assert.LessOrEqual(t, res.delay(), 3.0)
+			assert.LessOrEqual(t, res.Delay(), 3.0)
 			require.NotEmpty(t, res.Errors)
 			for _, e := range res.Errors {
 				assert.LessOrEqual(t, e, 0.5, "position error against the generator's ground truth, m")

@@ -24,6 +24,10 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/watch"
 	"stillwater/vision/refdata"
 	"stillwater/vision/rtsptest"
 )
@@ -71,9 +75,9 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 	sub := rtsptest.Start(t, small, "sub")
 	main := rtsptest.Start(t, big, "main")
 
-	cfg := demoConfig(truth, small, dir, false)
+	cfg := demo.Config(truth, small, dir, false)
 	const pre, post = 3 * time.Second, 3 * time.Second
-	cfg.Evidence.PreRoll, cfg.Evidence.PostRoll = Duration(pre), Duration(post)
+	cfg.Evidence.PreRoll, cfg.Evidence.PostRoll = config.Duration(pre), config.Duration(post)
 	cam := &cfg.Cameras[0]
 	cam.ID, cam.Source, cam.Transport = "pool", sub.URL(), "udp"
 	cam.EvidenceSource = main.URL()
@@ -97,7 +101,7 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 	clip := strings.TrimSuffix(snap, ".jpg") + ".mp4"
 	if !assert.Eventually(t, func() bool { _, err := os.Stat(clip); return err == nil }, pre+post+20*time.Second, 100*time.Millisecond,
 		"no clip %s from the evidence stream\n%s", clip, logs.String()) {
-		out, _ := exec.Command("ls", "-l", "--time-style=full-iso", ringDir(cfg, "pool")).CombinedOutput()
+		out, _ := exec.Command("ls", "-l", "--time-style=full-iso", watch.RingDir(cfg, "pool")).CombinedOutput()
 		t.Fatalf("ring:\n%s", out)
 	}
 
@@ -111,7 +115,7 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 	assert.GreaterOrEqual(t, p.Duration, (pre+post).Seconds()-0.3, "the clip's own length")
 
 	// The copying ffmpeg dies.
-	pid := childWith(t, ringDir(cfg, "pool"))
+	pid := childWith(t, watch.RingDir(cfg, "pool"))
 	before := scrapeValue(t, httpAddr, `stillwater_frames_processed_total{camera="pool"}`)
 	killed := time.Now()
 	require.NoError(t, syscall.Kill(pid, syscall.SIGKILL))
@@ -128,20 +132,20 @@ func TestTwoStreamsOverRTSP(t *testing.T) {
 		assert.False(t, f.Active && m.At.After(killed), "fault %s raised while the evidence recorder was down", f.Fault)
 	}
 	require.NoError(t, stop())
-	assert.Zero(t, childWithOrZero(ringDir(cfg, "pool")), "the copying ffmpeg ends with the daemon")
+	assert.Zero(t, childWithOrZero(watch.RingDir(cfg, "pool")), "the copying ffmpeg ends with the daemon")
 	refdata.Report(t, "two streams: alarm clip from the 1280×960 main stream (%s, %.1f s, from %.2f s before to %.2f s after the alarm frame); evidence ffmpeg back %.1f s after it was killed, %.0f frames searched meanwhile",
 		p.Codec, p.Duration, alarm.Sub(from).Seconds(), to.Sub(alarm).Seconds(), back.Seconds(), after-before)
 }
 
 // startDaemonLogged is startDaemon with the daemon's log kept in logs.
-func startDaemonLogged(t *testing.T, cfg Config, logs io.Writer) (*busLog, string, func() error) {
+func startDaemonLogged(t *testing.T, cfg config.Config, logs io.Writer) (*busLog, string, func() error) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	bus := &busLog{}
 	ready := make(chan [2]string, 1)
 	done := make(chan error, 1)
 	go func() {
-		done <- serve(ctx, cfg, deps{
+		done <- daemon.Serve(ctx, cfg, daemon.Deps{
 			Log:   slog.New(slog.NewTextHandler(logs, nil)),
 			Ready: func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },
 		})

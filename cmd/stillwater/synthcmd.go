@@ -11,6 +11,7 @@ import (
 	"path/filepath"
 	"strings"
 
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/synth"
 )
 
@@ -20,7 +21,7 @@ func runSynth(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	fs.SetOutput(stderr)
 	out := fs.String("out", "clip.avi", "video `file` to write (AVI) for a named scene")
 	labels := fs.String("labels", "", "label `file` to write for a named scene (default: the video name with .json)")
-	scenario := fs.String("scenario", "child", "`name` of the scene: "+strings.Join(scenarioNames(), ", "))
+	scenario := fs.String("scenario", "child", "`name` of the scene: "+strings.Join(tuning.ScenarioNames(), ", "))
 	seed := fs.Int64("seed", 1, "random `seed` (the first of -count seeds with -family)")
 	duration := fs.Float64("duration", 0, "clip length in `seconds` (0: the scene's own)")
 	family := fs.Bool("family", false, "draw the scene from the randomised family instead of a named scene")
@@ -44,9 +45,9 @@ func runSynth(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		}
 		return runSynthFamily(ctx, synthFamilyArgs{seed: *seed, count: *count, v: v, dir: *dir, duration: *duration, sheet: *sheet}, stdout, stderr)
 	}
-	s, ok := scenarioByName(*scenario, *seed)
+	s, ok := tuning.ScenarioByName(*scenario, *seed)
 	if !ok {
-		return fmt.Errorf("synth: unknown scenario %q; choose one of %s: %w", *scenario, strings.Join(scenarioNames(), ", "), errUsage)
+		return fmt.Errorf("synth: unknown scenario %q; choose one of %s: %w", *scenario, strings.Join(tuning.ScenarioNames(), ", "), errUsage)
 	}
 	if *duration > 0 {
 		s.Duration = *duration

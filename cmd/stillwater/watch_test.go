@@ -21,6 +21,10 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/daemon"
+	"stillwater/cmd/stillwater/internal/demo"
+	"stillwater/cmd/stillwater/internal/tuning"
 	"stillwater/vision/synth"
 )
 
@@ -73,7 +77,7 @@ func httpGet(t *testing.T, url string) (int, string) {
 // cachedClip), with a fresh directory for the daemon's data.
 func renderScene(t *testing.T, name string, seed int64, edit func(*synth.Scene)) (synth.Truth, string, string) {
 	t.Helper()
-	s, ok := scenarioByName(name, seed)
+	s, ok := tuning.ScenarioByName(name, seed)
 	require.True(t, ok, "scenario %q", name)
 	if edit != nil {
 		edit(&s)
@@ -98,14 +102,14 @@ func cachedClip(tb testing.TB, s synth.Scene) (synth.Truth, string) {
 
 // startDaemon runs serve on cfg in the background with a subscriber on
 // every subject; stop ends it and waits.
-func startDaemon(t *testing.T, cfg Config) (log *busLog, stop func() error) {
+func startDaemon(t *testing.T, cfg config.Config) (log *busLog, stop func() error) {
 	t.Helper()
 	return startDaemonWith(t, cfg, nil)
 }
 
 // startDaemonWith is startDaemon with the daemon's metrics on reg (nil: a
 // registry of its own).
-func startDaemonWith(t *testing.T, cfg Config, reg *prometheus.Registry) (log *busLog, stop func() error) {
+func startDaemonWith(t *testing.T, cfg config.Config, reg *prometheus.Registry) (log *busLog, stop func() error) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	log = &busLog{}
@@ -116,7 +120,7 @@ func startDaemonWith(t *testing.T, cfg Config, reg *prometheus.Registry) (log *b
 		if os.Getenv("STILLWATER_TEST_LOG") != "" {
 			w = os.Stderr // a daemon's log for a failing test: STILLWATER_TEST_LOG=1
 		}
-		done <- serve(ctx, cfg, deps{
+		done <- daemon.Serve(ctx, cfg, daemon.Deps{
 			Log:      slog.New(slog.NewTextHandler(w, nil)),
 			Registry: reg,
 			Ready:    func(busURL, httpAddr string) { ready <- [2]string{busURL, httpAddr} },
@@ -169,8 +173,8 @@ func TestDeadCameraIsAFaultAndDoesNotStallOthers(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders a 20 s clip")
 	}
-	truth, clip, dir := renderScene(t, "child", 7, floatingChild)
-	cfg := demoConfig(truth, clip, dir, true)
+	truth, clip, dir := renderScene(t, "child", 7, tuning.FloatingChild)
+	cfg := demo.Config(truth, clip, dir, true)
 	dead := cfg.Cameras[0]
 	dead.ID, dead.Source = "dead", "rtsp://127.0.0.1:9/nothing"
 	cfg.Cameras = append(cfg.Cameras, dead)

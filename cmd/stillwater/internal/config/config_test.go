@@ -1,0 +1,84 @@
+package config
+
+import (
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+)
+
+const goodConfig = `
+data_dir: /tmp/sw
+cameras:
+  - id: pool
+    source: rtsp://user:pw@127.0.0.1:554/stream1
+    transport: udp
+    pool: {length_m: 8, width_m: 4}
+    corners: [[145, 390], [229, 42], [420, 42], [500, 390]]
+    detect:
+      persist: 900ms
+`
+
+func TestParseConfigMergesDefaults(t *testing.T) {
+	cfg, err := ParseConfig([]byte(goodConfig))
+	require.NoError(t, err)
+	require.Len(t, cfg.Cameras, 1)
+	d := cfg.Cameras[0].Detect
+	assert.Equal(t, Duration(900*time.Millisecond), d.Persist)
+	assert.Equal(t, 640, d.ProcessWidth)
+	assert.Equal(t, "meanvar", d.Method)
+	assert.Equal(t, MinBodyArea, d.MinArea)
+	assert.Equal(t, "127.0.0.1:9310", cfg.HTTP.Listen)
+	assert.Equal(t, "stillwater", cfg.Bus.Prefix)
+}
+
+func TestParseConfigErrors(t *testing.T) {
+	tests := []struct {
+		name, yaml, want string
+	}{
+		{"unknown key", "data_dir: /x\ncolour: blue\n", `line 2: unknown key "colour" in the top level`},
+		{"no cameras", "data_dir: /x\n", "cameras: none configured"},
+		{"three corners", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1]]}]`, "corners: 3 given"},
+		{"negative area", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]], detect: {min_area_m2: -1}}]`, "min_area_m2 -1"},
+		{"bad duration", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]], detect: {persist: soon}}]`, `"soon" is not a duration`},
+		{"dotted id", `cameras: [{id: a.b, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1],[0,1]]}]`, "cameras[0].id"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			_, err := ParseConfig([]byte(tt.yaml))
+			require.Error(t, err)
+			assert.Contains(t, err.Error(), tt.want)
+		})
+	}
+}
+
+// Local is the machine's zone under its IANA name, from TZ here; a TZ
+// that names no zone is an error once a schedule depends on it.
+func TestLocalZoneIsTheSystemZone(t *testing.T) {
+	const cam = `
+cameras:
+  - id: pool
+    source: rtsp://192.0.2.10/a
+    pool: {length_m: 8, width_m: 4}
+    corners: [[145, 390], [229, 42], [420, 42], [500, 390]]
+`
+	t.Setenv("TZ", "Europe/Berlin")
+	cfg, err := ParseConfig([]byte("arming: {schedule: [\"daily 20:00-06:00\"]}" + cam))
+	require.NoError(t, err, "Local is the default zone and must work with a schedule")
+	sch, err := cfg.Schedules()
+	require.NoError(t, err)
+	// 19:30 UTC is 21:30 in Berlin in summer (CEST, UTC+2): inside the window.
+	assert.True(t, sch["pool"].Armed(time.Date(2026, 7, 1, 19, 30, 0, 0, time.UTC)))
+	assert.False(t, sch["pool"].Armed(time.Date(2026, 7, 1, 17, 30, 0, 0, time.UTC)))
+	loc, err := cfg.Zone()
+	require.NoError(t, err)
+	assert.Equal(t, "Europe/Berlin", loc.String())
+
+	t.Setenv("TZ", "Mars/Olympus_Mons")
+	_, err = ParseConfig([]byte("arming: {schedule: [\"daily 20:00-06:00\"]}" + cam))
+	require.Error(t, err)
+	assert.Contains(t, err.Error(), "Mars/Olympus_Mons")
+	_, err = ParseConfig([]byte(cam))
+	assert.NoError(t, err, "without a schedule the zone does not matter")
+}

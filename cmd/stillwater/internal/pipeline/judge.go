@@ -1,0 +1,295 @@
+package pipeline
+
+import (
+	"fmt"
+	"log/slog"
+	"math"
+	"sort"
+	"time"
+
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/homography"
+	"stillwater/vision"
+)
+
+// judge decides which tracks of the rectified detector may raise an alarm,
+// on what their candidates looked like over the last window of media time
+// (the medians of their features and how far they moved), not on one
+// frame: water makes candidates that pass any one test now and then.
+type judge struct {
+	window time.Duration
+	rules  judgeRules
+	tracks map[int]*trackHistory
+	deck   []deckBody
+	log    *slog.Logger
+}
+
+// judgeRules are the thresholds a track's evidence is held to.
+type judgeRules struct {
+	// MinArea is the least area at half contrast (Features.Half) of the
+	// whole visible body, m²; MaxArea the most (Features.Area).
+	MinArea, MaxArea float64
+	// MaxLength is the longest a body can be, m.
+	MaxLength float64
+	// MinTint: a candidate brighter than the water whose difference from
+	// it is whiter than this (Features.Tint) is light, not a body, where
+	// the water has a colour to tell by.
+	MinTint float64
+	// MinScore is the least mean score over the candidate (Features.Score):
+	// broad, faint changes of the water are not a body.
+	MinScore float64
+	// MaxSpeed is the fastest, m/s, a track may move over the window and
+	// still start an alarm.
+	MaxSpeed float64
+	// DeckRadius: a track within this distance, m, of a body seen on the
+	// deck in the last DeckMemory does not start an alarm; what lies on
+	// the water beside someone standing at the edge is their shadow, until
+	// they are in the water themselves.
+	DeckRadius float64
+	DeckMemory time.Duration
+	// DeckMinArea is the least area, m², of a candidate on the deck that
+	// counts as a body there.
+	DeckMinArea float64
+	// Companion: a track within this distance, m, of a live track that
+	// has raised an alarm does not start another while that one lives: it
+	// is the raised body's shadow on the floor, its submerged part seen
+	// displaced, or its wake. 0 is off.
+	Companion float64
+}
+
+// trackHistory is one track's recent candidates.
+type trackHistory struct {
+	feats []vision.Features
+	at    []homography.Point
+	times []time.Duration
+	// from is where the track was first seen, when its first candidate
+	// lay partly on the deck (it came over the edge); crossed says so.
+	from    homography.Point
+	crossed bool
+	raised  bool   // the track has raised an alarm: it stays eligible
+	verdict string // the last reason it was not eligible, "" when it was
+}
+
+// deckBody is a candidate whose centre was on the deck.
+type deckBody struct {
+	at homography.Point
+	t  time.Duration
+}
+
+func newJudge(window time.Duration, rules judgeRules, log *slog.Logger) *judge {
+	if window <= 0 {
+		window = time.Second
+	}
+	return &judge{window: window, rules: rules, tracks: map[int]*trackHistory{}, log: log}
+}
+
+// observe records the candidates of the tracks seen at media time now,
+// and the bodies seen on the deck (deck), and forgets tracks that are
+// gone.
+func (j *judge) observe(now time.Duration, tracks []poolTrack, deck []homography.Point) {
+	live := map[int]bool{}
+	for _, t := range tracks {
+		live[t.ID] = true
+		if t.Last != now {
+			continue
+		}
+		h := j.tracks[t.ID]
+		if h == nil {
+			h = &trackHistory{from: homography.Point{X: t.X, Y: t.Y}, crossed: t.Features.Wet < 1}
+			j.tracks[t.ID] = h
+		}
+		h.feats = append(h.feats, t.Features)
+		h.at = append(h.at, homography.Point{X: t.X, Y: t.Y})
+		h.times = append(h.times, now)
+		// Keep the window, and at least the last candidate.
+		cut := 0
+		for cut < len(h.times)-1 && now-h.times[cut] > j.window {
+			cut++
+		}
+		h.feats, h.at, h.times = h.feats[cut:], h.at[cut:], h.times[cut:]
+	}
+	for id := range j.tracks {
+		if !live[id] {
+			delete(j.tracks, id)
+		}
+	}
+	keep := j.deck[:0]
+	for _, b := range j.deck {
+		if now-b.t <= j.rules.DeckMemory {
+			keep = append(keep, b)
+		}
+	}
+	j.deck = keep
+	for _, p := range deck {
+		j.deck = append(j.deck, deckBody{at: p, t: now})
+	}
+}
+
+// raised marks a track as having raised an alarm.
+func (j *judge) raised(id int) {
+	if h := j.tracks[id]; h != nil {
+		h.raised = true
+	}
+}
+
+// summary returns the medians of a track's features over the window, the
+// number of candidates they are of, and its speed over the window, m/s.
+func (j *judge) summary(id int) (vision.Features, int, float64) {
+	h := j.tracks[id]
+	if h == nil || len(h.feats) == 0 {
+		return vision.Features{}, 0, 0
+	}
+	med := func(get func(vision.Features) float64) float64 { return featureMedian(h.feats, get) }
+	f := vision.Features{
+		Area:      med(func(f vision.Features) float64 { return f.Area }),
+		Core:      med(func(f vision.Features) float64 { return f.Core }),
+		Half:      med(func(f vision.Features) float64 { return f.Half }),
+		Score:     med(func(f vision.Features) float64 { return f.Score }),
+		Peak:      med(func(f vision.Features) float64 { return f.Peak }),
+		Contrast:  med(func(f vision.Features) float64 { return f.Contrast }),
+		Bright:    med(func(f vision.Features) float64 { return f.Bright }),
+		Chroma:    med(func(f vision.Features) float64 { return f.Chroma }),
+		ChromaTop: med(func(f vision.Features) float64 { return f.ChromaTop }),
+		Water:     med(func(f vision.Features) float64 { return f.Water }),
+		Wet:       med(func(f vision.Features) float64 { return f.Wet }),
+		Tint:      med(func(f vision.Features) float64 { return f.Tint }),
+		Length:    med(func(f vision.Features) float64 { return f.Length }),
+		Width:     med(func(f vision.Features) float64 { return f.Width }),
+		Edge:      med(func(f vision.Features) float64 { return f.Edge }),
+	}
+	speed := 0.0
+	if n := len(h.times); n > 1 {
+		if dt := (h.times[n-1] - h.times[0]).Seconds(); dt > 0 {
+			speed = h.at[n-1].Dist(h.at[0]) / dt
+		}
+	}
+	return f, len(h.feats), speed
+}
+
+// featureMedian returns the median of one feature over fs.
+func featureMedian(fs []vision.Features, get func(vision.Features) float64) float64 {
+	v := make([]float64, len(fs))
+	for i, f := range fs {
+		v[i] = get(f)
+	}
+	sort.Float64s(v)
+	n := len(v)
+	if n == 0 {
+		return 0
+	}
+	if n%2 == 1 {
+		return v[n/2]
+	}
+	return (v[n/2-1] + v[n/2]) / 2
+}
+
+// eligible says whether a track may raise (or keep) an alarm, and if not,
+// why. A track that has raised an alarm stays eligible while it lives.
+func (j *judge) eligible(id int) (bool, string) {
+	h := j.tracks[id]
+	if h == nil {
+		return false, "no candidates yet"
+	}
+	if h.raised {
+		return true, ""
+	}
+	f, _, speed := j.summary(id)
+	r := j.rules
+	at := h.at[len(h.at)-1]
+	why := ""
+	switch {
+	case f.Half < r.MinArea:
+		why = fmt.Sprintf("smaller than a child's body (%.3f m² at half contrast < %.3f m²)", f.Half, r.MinArea)
+	case f.Area > r.MaxArea:
+		why = fmt.Sprintf("larger than a person (%.3f m² > %.3f m²)", f.Area, r.MaxArea)
+	case r.MinTint > 0 && f.Contrast > 0 && f.Tint < r.MinTint && f.Water >= minWaterChroma:
+		why = fmt.Sprintf("light on the water (a glint or a reflection): brighter, and white (tint %.1f < %.1f)", f.Tint, r.MinTint)
+	case f.Score < r.MinScore:
+		why = fmt.Sprintf("too faint over its area (mean score %.0f < %.0f)", f.Score, r.MinScore)
+	case r.MaxLength > 0 && f.Length > r.MaxLength:
+		why = fmt.Sprintf("longer than a person (%.2f m > %.2f m)", f.Length, r.MaxLength)
+	case r.MaxSpeed > 0 && speed > r.MaxSpeed:
+		why = fmt.Sprintf("moving faster than a child in the water (%.2f m/s > %.2f m/s)", speed, r.MaxSpeed)
+	default:
+		if id2, d, ok := j.companionOf(id, at); ok {
+			why = fmt.Sprintf("%.1f m from target %d, already raised: its shadow or wake", d, id2)
+			break
+		}
+		for _, b := range j.deck {
+			// A body that came over the edge leaves its own trail on the
+			// deck where it got in: the short mean still holds it there.
+			if h.crossed && b.at.Dist(h.from) <= trailRadius {
+				continue
+			}
+			// Nearer than deckSelf it is the track's own body, part of it
+			// still on the deck.
+			if d := b.at.Dist(at); d <= r.DeckRadius && d > deckSelf {
+				why = fmt.Sprintf("someone is on the deck %.1f m away: a shadow until they are in the water", d)
+				break
+			}
+		}
+	}
+	if why != h.verdict && j.log != nil {
+		args := append([]any{"track", id, "speed_mps", Round3(speed)}, featureArgs(f)...)
+		if why == "" {
+			j.log.Debug("track eligible to alarm", args...)
+		} else {
+			j.log.Debug("track not eligible to alarm: "+why, args...)
+		}
+	}
+	h.verdict = why
+	return why == "", why
+}
+
+// companionOf returns the nearest live track other than id that has
+// raised an alarm, if one lies within the Companion distance of at.
+func (j *judge) companionOf(id int, at homography.Point) (int, float64, bool) {
+	if j.rules.Companion <= 0 {
+		return 0, 0, false
+	}
+	best, bestD := 0, math.Inf(1)
+	for other, h := range j.tracks {
+		if other == id || !h.raised || len(h.at) == 0 {
+			continue
+		}
+		if d := h.at[len(h.at)-1].Dist(at); d <= j.rules.Companion && (d < bestD || d == bestD && other < best) {
+			best, bestD = other, d
+		}
+	}
+	return best, bestD, !math.IsInf(bestD, 1)
+}
+
+// minWaterChroma is how far from grey (Features.Water) the water must be
+// for colour to tell light from a body: a night infrared picture is grey.
+const minWaterChroma = 5
+
+// trailRadius is how far from where a track came over the edge a body on
+// the deck is its own trail, m: the short mean holds the last second of a
+// child walking in at up to 1 m/s (common practice for a toddler's walk,
+// from memory), plus half a body.
+const trailRadius = 1.2
+
+// deckSelf is the distance, m, within which a body on the deck is the
+// track's own: a child climbing in, whose centre crosses the edge back and
+// forth.
+const deckSelf = 0.7
+
+// deckBodies returns the positions of this frame's candidates that are
+// bodies on the deck: centre off the water, area at least min. A faint
+// one counts too: someone walking on the deck beyond the watched ring
+// shows only a weak edge of themselves in it.
+func deckBodies(notes []candidateNote, min float64) []homography.Point {
+	var out []homography.Point
+	for _, n := range notes {
+		if n.Outside && n.Features.Area >= min && !math.IsNaN(n.At.X) {
+			out = append(out, n.At)
+		}
+	}
+	return out
+}
+
+// judgeRulesOf returns the rules tracks are judged by.
+func judgeRulesOf(d config.DetectConfig) judgeRules {
+	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, MinScore: d.MinScore, MinTint: d.MinTint, MaxLength: d.MaxLength, MaxSpeed: d.MaxSpeed,
+		DeckRadius: max(0, d.DeckRadius), Companion: max(0, d.Companion), DeckMemory: time.Second, DeckMinArea: d.MinArea}
+}

@@ -1,0 +1,114 @@
+package pipeline
+
+import (
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/homography"
+	"stillwater/vision"
+)
+
+// body is a candidate's features that pass every rule of the defaults: a
+// floating toddler's area (WHO-derived, see MinBodyArea), a clear score,
+// coloured, compact.
+func body() vision.Features {
+	return vision.Features{Area: 0.15, Half: 0.12, Score: 120, Contrast: -40, Tint: 60, Water: 20, Length: 0.8, Width: 0.3}
+}
+
+func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
+	rules := judgeRulesOf(config.DefaultDetect())
+	require.Equal(t, 2.5, rules.Companion)
+	cases := []struct {
+		name      string
+		companion float64
+		second    [2]float64 // where the second track lies, m
+		raised    bool       // the first track has raised its alarm
+		gone      bool       // the first track ended before the second is judged
+		eligible  bool
+	}{
+		{"shadow 1.2 m from a raised target", 2.0, [2]float64{4.2, 3}, true, false, false},
+		{"3 m away is another body", 2.0, [2]float64{6, 3}, true, false, true},
+		{"first not raised yet: nothing to be a companion of", 2.0, [2]float64{4.2, 3}, false, false, true},
+		{"the raised target ended", 2.0, [2]float64{4.2, 3}, true, true, true},
+		{"rule off", 0, [2]float64{4.2, 3}, true, false, true},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			r := rules
+			r.Companion = c.companion
+			j := newJudge(time.Second, r, nil)
+			for i := 0; i < 8; i++ {
+				now := time.Duration(i) * 100 * time.Millisecond
+				tracks := []poolTrack{{ID: 2, X: c.second[0], Y: c.second[1], Last: now, Features: body()}}
+				if !c.gone || i < 4 {
+					tracks = append(tracks, poolTrack{ID: 1, X: 3, Y: 3, Last: now, Features: body()})
+				}
+				j.observe(now, tracks, nil)
+				if i == 2 && c.raised {
+					ok, why := j.eligible(1)
+					require.True(t, ok, why)
+					j.raised(1)
+				}
+			}
+			ok, why := j.eligible(2)
+			assert.Equal(t, c.eligible, ok, why)
+			if !c.eligible {
+				assert.Contains(t, why, "target 1")
+			}
+		})
+	}
+}
+
+// TestDeckBodies: someone on the deck counts, even faintly seen (a
+// walker's edge in the watched ring of a tuning scene: area 0.16 m², mean
+// score 38); a speck does not, nor a candidate over the water.
+func TestDeckBodies(t *testing.T) {
+	r := judgeRulesOf(config.DefaultDetect())
+	walker := vision.Features{Area: 0.16, Half: 0.16, Score: 38}
+	speck := vision.Features{Area: 0.01, Half: 0.01, Score: 80}
+	notes := []candidateNote{
+		{At: homography.Point{X: -0.4, Y: 1}, Features: walker, Outside: true},
+		{At: homography.Point{X: -0.3, Y: 2.4}, Features: speck, Outside: true},
+		{At: homography.Point{X: 2, Y: 2}, Features: walker},
+	}
+	got := deckBodies(notes, r.DeckMinArea)
+	assert.Equal(t, []homography.Point{{X: -0.4, Y: 1}}, got)
+}
+
+// TestJudgeOwnTrailOnTheDeck: a child who walked in over the edge leaves
+// their trail in the short mean on the deck where they got in (a tuning
+// scene held its child back 1.5 s for it); a shadow that appeared on the
+// water beside someone standing there did not come over the edge.
+func TestJudgeOwnTrailOnTheDeck(t *testing.T) {
+	r := judgeRulesOf(config.DefaultDetect())
+	for _, c := range []struct {
+		name     string
+		firstWet float64 // share of the track's first candidate on the water
+		eligible bool
+	}{
+		{"came over the edge", 0.4, true},
+		{"appeared on the water", 1, false},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			j := newJudge(time.Second, r, nil)
+			for i := 0; i <= 8; i++ {
+				now := time.Duration(i) * 100 * time.Millisecond
+				f := body()
+				f.Wet = 1
+				if i == 0 {
+					f.Wet = c.firstWet
+				}
+				// The track gets in at (0.2, 2) m and moves to (0.6, 2) m;
+				// a body stays on the deck at (-0.5, 2) m, 1.1 m away.
+				x := 0.2 + 0.05*float64(i)
+				j.observe(now, []poolTrack{{ID: 1, X: x, Y: 2, Last: now, Features: f}}, []homography.Point{{X: -0.5, Y: 2}})
+			}
+			ok, why := j.eligible(1)
+			assert.Equal(t, c.eligible, ok, why)
+		})
+	}
+}

@@ -1,0 +1,305 @@
+// Package pipeline is the per-frame path of one camera after the
+// detector: blobs in pixels go through the calibration to pool metres,
+// zones, the tracker and the judge, and the alarm decides what becomes a
+// message. It also holds the camera-moved check, the picture-fault
+// checks and the replay explainer.
+package pipeline
+
+import (
+	"context"
+	"fmt"
+	"image"
+	"log/slog"
+	"math"
+	"time"
+
+	"stillwater/alert"
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/cmd/stillwater/internal/metrics"
+	"stillwater/homography"
+	"stillwater/vision"
+	"stillwater/vision/track"
+)
+
+// Message is one message on its way to the bus (or a replay file).
+type Message struct {
+	Camera string
+	Kind   string
+	ID     string // de-duplication id, stable across retries
+	Data   []byte
+	Frame  int
+	Media  time.Duration
+}
+
+// Sink receives the pipeline's messages.
+type Sink interface {
+	Send(ctx context.Context, m Message) error
+}
+
+// poolTrack and detection are the tracker's types carrying the rectified
+// detector's measurements; positions are pool metres.
+type (
+	poolTrack = track.Track[vision.Features]
+	detection = track.Detection[vision.Features]
+)
+
+// Processor is the per-camera decision chain after the vision stage: pixels
+// to pool metres, physical-size gating, tracking and alarm logic. It is the
+// same for the daemon and for replays.
+type Processor struct {
+	cam         config.CameraConfig
+	Calibration *homography.Calibration // frame pixels → pool metres: lens, homography, refraction
+	zones       zoneSet                 // exclusion polygons
+	Tracks      []poolTrack
+	// Evidence, when set, keeps the evidence of an alarm starting at this
+	// frame and returns its reference for the target message.
+	Evidence func(r vision.Result, o alert.Observation) string
+	tracker  *track.Tracker[vision.Features]
+	judge    *judge // which tracks of the rectified detector may alarm
+	alarm    *alert.Alarm
+	alarmed  map[int]bool // tracks in alarm
+	// notes say what became of this frame's candidates, for explaining a
+	// decision (explain.go); explain, when set, is called after each step.
+	notes   []candidateNote
+	Explain func(p *Processor, r vision.Result)
+	log     *slog.Logger
+	Seq     uint64
+	epoch   time.Time // wall time of media time 0
+	now     func() time.Time
+	metrics *metrics.Camera
+}
+
+// New returns the pipeline of one camera; cal is the camera's
+// calibration, built once by the caller.
+func New(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoch time.Time, now func() time.Time, log *slog.Logger, m *metrics.Camera) (*Processor, error) {
+	zones, err := newZoneSet(cam, cal)
+	if err != nil {
+		return nil, err
+	}
+	d := cam.Detect
+	return &Processor{
+		cam:         cam,
+		Calibration: cal,
+		zones:       zones,
+		tracker:     track.NewTracker[vision.Features](track.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter)}),
+		alarm:       alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio, MaxSpeed: alert.DefaultAlarm().MaxSpeed}, fps),
+		judge:       newJudge(time.Duration(d.Persist), judgeRulesOf(d), log),
+		alarmed:     map[int]bool{},
+		log:         log,
+		epoch:       epoch,
+		now:         now,
+		metrics:     m,
+	}, nil
+}
+
+// Step turns one frame's blobs into messages and returns the boxes to hold
+// out of background learning on the next frame. A frame that was only
+// probed after a (re)connect (vision.Result.Rejoining) gives nothing; the
+// one that ends the probing with the background model started again
+// forgets the tracks (see ModelRestarted).
+func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectangle) {
+	if r.Rejoined == vision.RejoinRebuilt || r.Rejoined == vision.RejoinForced {
+		p.ModelRestarted()
+	}
+	if r.Rejoining {
+		return nil, nil
+	}
+	d := p.cam.Detect
+	var dets []detection
+	p.notes = p.notes[:0]
+	for _, b := range r.Blobs {
+		if b.Plane != nil {
+			if det, ok := p.gate(r, b); ok {
+				dets = append(dets, det)
+			}
+			continue
+		}
+		c, ok := p.Calibration.Surface(homography.Point(b.Centroid))
+		if !ok {
+			p.log.Debug("blob rejected: beyond the pool plane", "frame", r.Index, "px", b.Centroid)
+			p.metrics.Rejected("outside")
+			continue
+		}
+		if name, in := p.zones.excluded(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}, c); in {
+			p.log.Debug("blob rejected: in exclusion zone", "frame", r.Index, "zone", name, "x_m", c.X, "y_m", c.Y)
+			p.metrics.Rejected("zone")
+			continue
+		}
+		area := ContourArea(p.Calibration, b.Contour)
+		inside := p.Calibration.Inside(c)
+		switch {
+		case !inside:
+			p.log.Debug("blob rejected: centre outside the pool", "frame", r.Index, "x_m", c.X, "y_m", c.Y)
+			p.metrics.Rejected("outside")
+			continue
+		case area < d.MinArea:
+			p.log.Debug("blob rejected: too small", "frame", r.Index, "area_m2", area, "min_m2", d.MinArea)
+			p.metrics.Rejected("small")
+			continue
+		case area > d.MaxArea:
+			p.log.Debug("blob rejected: too large", "frame", r.Index, "area_m2", area, "max_m2", d.MaxArea)
+			p.metrics.Rejected("large")
+			continue
+		}
+		dets = append(dets, detection{X: c.X, Y: c.Y, Area: area, Box: b.Box, Hold: b.Box.Inset(-4)})
+	}
+	tracks := p.tracker.Update(r.Media, dets)
+	p.Tracks = tracks
+	p.judge.observe(r.Media, tracks, deckBodies(p.notes, p.judge.rules.DeckMinArea))
+	obs := make([]alert.Observation, 0, len(tracks))
+	var hold []image.Rectangle
+	for _, t := range tracks {
+		if ok, _ := p.judge.eligible(t.ID); !ok && d.Method == "meanvar" {
+			continue
+		}
+		o := alert.Observation{Track: t.ID, X: t.X, Y: t.Y, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits}
+		if d.Method == "meanvar" && !p.alarmed[t.ID] {
+			// Persistence and the share of frames seen count from the
+			// track's current run, not from the sparse flicker it may
+			// have grown out of.
+			o.First, o.Hits = t.RunStart, t.RunHits
+		}
+		obs = append(obs, o)
+		hold = append(hold, t.Hold)
+	}
+	p.metrics.Tracks(len(tracks))
+	var out []Message
+	for _, dec := range p.alarm.Step(r.Media, obs, armed) {
+		switch {
+		case dec.Kind == alert.KindTarget && dec.Event == "start":
+			p.alarmed[dec.Obs.Track] = true
+		case dec.Kind == alert.KindCleared:
+			delete(p.alarmed, dec.Obs.Track)
+		}
+		m, err := p.message(r, dec)
+		if err != nil {
+			p.log.Error("cannot encode message", "err", err)
+			continue
+		}
+		out = append(out, m)
+	}
+	p.noteTracks()
+	if p.Explain != nil {
+		p.Explain(p, r)
+	}
+	return out, hold
+}
+
+func (p *Processor) message(r vision.Result, dec alert.Decision) (Message, error) {
+	p.Seq++
+	frameTime := p.epoch.Add(r.Media).UTC()
+	now := p.now().UTC()
+	o := dec.Obs
+	var v any
+	switch dec.Kind {
+	case alert.KindTarget:
+		var ref string
+		if dec.Event == "start" {
+			p.judge.raised(o.Track)
+			f, n, speed := p.judge.summary(o.Track)
+			p.log.Debug("track raised an alarm", append([]any{"track", o.Track, "dwell", dec.Dwell, "x_m", Round3(o.X), "y_m", Round3(o.Y),
+				"hits", o.Hits, "speed_mps", Round3(speed), "candidates", n}, featureArgs(f)...)...)
+			p.metrics.Alarm()
+			if p.Evidence != nil {
+				ref = p.Evidence(r, o)
+			}
+		}
+		v = alert.Target{
+			V: alert.Version, Kind: alert.KindTarget, Camera: p.cam.ID, Track: o.Track, Seq: p.Seq, Event: dec.Event,
+			Time: now, FrameTime: frameTime, Frame: r.Index,
+			Surface:    alert.Position{X: Round3(o.X), Y: Round3(o.Y)},
+			Floor:      floorOf(FloorPosition(p.Calibration, homography.Point{X: o.X, Y: o.Y})),
+			Area:       round4(o.Area),
+			Velocity:   alert.Velocity{X: Round3(o.VX), Y: Round3(o.VY)},
+			Dwell:      Round3(dec.Dwell.Seconds()),
+			Confidence: dec.Confidence,
+			Evidence:   ref,
+		}
+	case alert.KindCleared:
+		v = alert.Cleared{
+			V: alert.Version, Kind: alert.KindCleared, Camera: p.cam.ID, Track: o.Track, Seq: p.Seq,
+			Time: now, FrameTime: frameTime, Frame: r.Index,
+			Last: alert.Position{X: Round3(o.X), Y: Round3(o.Y)}, Duration: Round3(dec.Dwell.Seconds()),
+		}
+	default:
+		return Message{}, fmt.Errorf("unknown decision kind %q", dec.Kind)
+	}
+	b, err := alert.Encode(v)
+	if err != nil {
+		return Message{}, err
+	}
+	id := fmt.Sprintf("%s-%d-%d-%s", p.cam.ID, p.epoch.UnixNano(), p.Seq, dec.Kind)
+	return Message{Camera: p.cam.ID, Kind: dec.Kind, ID: id, Data: b, Frame: r.Index, Media: r.Media}, nil
+}
+
+// ModelRestarted forgets the tracks when the detector's background model
+// starts again (rebuilt for a new frame size, or learned anew after a
+// reconnect): what the old model saw is no evidence for the new one, and
+// a body still there starts a new track. Alarms clear on their own after
+// ClearAfter, as for any track no longer seen.
+func (p *Processor) ModelRestarted() { p.tracker.Reset() }
+
+// Reload swaps in a camera's new calibration, zones and detection
+// thresholds between frames, keeping tracks and alarms. The background
+// model is not touched: the source and its size stay the same.
+func (p *Processor) Reload(cam config.CameraConfig) error {
+	cal, err := config.NewCalibration(cam)
+	if err != nil {
+		return err
+	}
+	zones, err := newZoneSet(cam, cal)
+	if err != nil {
+		return err
+	}
+	p.cam, p.Calibration, p.zones = cam, cal, zones
+	return nil
+}
+
+func floorOf(f alert.FloorPosition) alert.FloorPosition {
+	return alert.FloorPosition{X: Round3(f.X), Y: Round3(f.Y), Depth: Round3(f.Depth)}
+}
+
+// Round3 rounds v to three decimals: millimetres for pool metres.
+func Round3(v float64) float64 { return math.Round(v*1000) / 1000 }
+func round4(v float64) float64 { return math.Round(v*10000) / 10000 }
+
+// gate judges a candidate of the rectified detector, already in pool
+// metres on the water surface, and returns it as a detection for the
+// tracker; false, with the reason logged and counted, when it cannot be a
+// person in the water.
+func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
+	d := p.cam.Detect
+	f := b.Features
+	c := homography.Point{X: b.Plane.X, Y: b.Plane.Y}
+	reject := func(reason, why string, args ...any) (detection, bool) {
+		p.log.Debug("candidate rejected: "+why, append([]any{"frame", r.Index, "x_m", Round3(c.X), "y_m", Round3(c.Y)}, append(args, featureArgs(f)...)...)...)
+		p.metrics.Rejected(reason)
+		p.notes = append(p.notes, candidateNote{At: c, Features: f, Rejected: why, Outside: reason == "outside"})
+		return detection{}, false
+	}
+	if name, in := p.zones.excluded(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}, c); in {
+		return reject("zone", "in exclusion zone", "zone", name)
+	}
+	switch {
+	case !p.Calibration.Inside(c):
+		return reject("outside", "centre outside the pool")
+	case f.Area < d.MinArea*candidateShare:
+		return reject("small", fmt.Sprintf("far smaller than a child's body (%.3f m² < %.3f m²)", f.Area, d.MinArea*candidateShare))
+	case f.Area > d.MaxArea:
+		return reject("large", fmt.Sprintf("too large (%.3f m² > %.3f m²)", f.Area, d.MaxArea))
+	}
+	p.notes = append(p.notes, candidateNote{At: c, Features: f})
+	return detection{X: c.X, Y: c.Y, Area: f.Area, Box: b.Box, Hold: b.Plane.Cells, Features: f, FeatureArea: f.Area}, true
+}
+
+// candidateShare is the share of min_area_m2 a candidate of the rectified
+// detector needs to be tracked at all; the track must then show the whole
+// min_area_m2 over the judge's window before it may alarm (a body entering
+// the water shows a part of itself first).
+const candidateShare = 0.35
+
+// featureArgs are a candidate's features as log attributes.
+func featureArgs(f vision.Features) []any {
+	return []any{"area_m2", round4(f.Area), "core_m2", round4(f.Core), "score", Round3(f.Score), "peak", Round3(f.Peak),
+		"half_m2", round4(f.Half), "contrast", Round3(f.Contrast), "bright", Round3(f.Bright), "chroma", Round3(f.Chroma), "chroma_top", Round3(f.ChromaTop), "water_chroma", Round3(f.Water), "tint", Round3(f.Tint), "wet", Round3(f.Wet), "length_m", Round3(f.Length), "width_m", Round3(f.Width), "edge_m", Round3(f.Edge)}
+}

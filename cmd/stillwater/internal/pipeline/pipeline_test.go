@@ -1,0 +1,60 @@
+package pipeline
+
+import (
+	"image"
+	"io"
+	"log/slog"
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+
+	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/vision"
+)
+
+// TestStepForgetsTracksWhenModelRestarts feeds a mixture-model blob in
+// open water for 1 s, then frames only probed after a reconnect (see
+// vision.Result.Rejoining), then the blob again. When the probing ends
+// with the background model started again, its old blobs are no evidence
+// for the tracks: the blob starts a new track. When the kept model is
+// trusted again, the track goes on.
+func TestStepForgetsTracksWhenModelRestarts(t *testing.T) {
+	// A 0.3 m square blob at pool (4, 2) m, pixel (300, 200) for
+	// zoneCamera.
+	blob := vision.Blob{
+		Centroid: vision.Point{X: 300, Y: 200},
+		Box:      image.Rect(292, 192, 308, 208),
+		Contour:  []vision.Point{{X: 292.5, Y: 192.5}, {X: 307.5, Y: 192.5}, {X: 307.5, Y: 207.5}, {X: 292.5, Y: 207.5}},
+	}
+	tests := []struct {
+		rejoined string
+		wantID   int
+	}{
+		{vision.RejoinKept, 1},
+		{vision.RejoinRebuilt, 2},
+		{vision.RejoinForced, 2},
+	}
+	for _, tt := range tests {
+		t.Run(tt.rejoined, func(t *testing.T) {
+			cam := zoneCamera()
+			cam.Detect.Method = "mog2"
+			cal, err := config.NewCalibration(cam)
+			require.NoError(t, err)
+			p, err := New(cam, cal, 10, time.Time{}, time.Now, slog.New(slog.NewTextHandler(io.Discard, nil)), nil)
+			require.NoError(t, err)
+			media := func(i int) time.Duration { return time.Duration(i) * 100 * time.Millisecond }
+			for i := 0; i < 10; i++ {
+				p.Step(vision.Result{Index: i, Media: media(i), Blobs: []vision.Blob{blob}}, true)
+			}
+			require.Len(t, p.Tracks, 1)
+			require.Equal(t, 1, p.Tracks[0].ID)
+			p.Step(vision.Result{Index: 10, Media: media(10), Rejoining: true}, true)
+			p.Step(vision.Result{Index: 11, Media: media(11), Rejoining: true, Rejoined: tt.rejoined}, true)
+			p.Step(vision.Result{Index: 12, Media: media(12), Blobs: []vision.Blob{blob}}, true)
+			require.NotEmpty(t, p.Tracks)
+			assert.Equal(t, tt.wantID, p.Tracks[0].ID, "the track seen after the probing")
+		})
+	}
+}

@@ -1,0 +1,77 @@
+package track
+
+import (
+	"image"
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+)
+
+func TestTrackerKeepsIDsAndVelocity(t *testing.T) {
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.6, MergeRadius: 0.3, MaxMissing: time.Second})
+	var got []Track[struct{}]
+	// An object moving at 0.5 m/s along x, seen at 10 fps.
+	for i := 0; i < 20; i++ {
+		now := time.Duration(i) * 100 * time.Millisecond
+		got = tr.Update(now, []Detection[struct{}]{{X: 1 + 0.05*float64(i), Y: 2, Area: 0.04, Box: image.Rect(0, 0, 5, 5)}})
+	}
+	require.Len(t, got, 1)
+	assert.Equal(t, 1, got[0].ID)
+	assert.Equal(t, 20, got[0].Hits)
+	assert.InDelta(t, 0.5, got[0].VX, 0.05)
+	assert.InDelta(t, 0, got[0].VY, 0.01)
+}
+
+func TestTrackerMergesSplitBlobs(t *testing.T) {
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Second})
+	tr.Update(0, []Detection[struct{}]{{X: 2, Y: 2, Area: 0.04}})
+	// An arm splashing beside the head: two blobs, one track.
+	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 2, Y: 2, Area: 0.03}, {X: 2.25, Y: 2, Area: 0.01}})
+	require.Len(t, got, 1)
+	assert.Equal(t, 1, got[0].ID)
+	assert.InDelta(t, 0.04, got[0].Area, 1e-9)
+	assert.InDelta(t, 2.0625, got[0].X, 1e-9) // area-weighted: (2·0.03 + 2.25·0.01)/0.04
+}
+
+func TestTrackerStartsNewTrackBeyondGateAndExpires(t *testing.T) {
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.5, MaxMissing: 300 * time.Millisecond})
+	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
+	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 3, Y: 1, Area: 0.04}})
+	require.Len(t, got, 2)
+	// The new track, seen in this frame, first; track 1 is kept alive.
+	assert.Equal(t, []int{2, 1}, []int{got[0].ID, got[1].ID})
+	got = tr.Update(time.Second, nil)
+	assert.Empty(t, got)
+}
+
+// TestTrackerSeenFirst checks the order Update returns: the tracks seen in
+// this frame first, then those kept alive without a detection, each group
+// by id.
+func TestTrackerSeenFirst(t *testing.T) {
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.5, MaxMissing: time.Second})
+	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}, {X: 3, Y: 1, Area: 0.04}, {X: 5, Y: 1, Area: 0.04}})
+	// Track 1 and 3 are missed in the second frame; 2 is seen, and a new
+	// object (4) appears.
+	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 3, Y: 1, Area: 0.04}, {X: 7, Y: 1, Area: 0.04}})
+	ids := make([]int, len(got))
+	for i, g := range got {
+		ids[i] = g.ID
+	}
+	assert.Equal(t, []int{2, 4, 1, 3}, ids)
+	for _, g := range got[:2] {
+		assert.Equal(t, 100*time.Millisecond, g.Last, "track %d", g.ID)
+	}
+}
+
+// TestTrackerReset checks that after Reset an object at the same place
+// starts a new track.
+func TestTrackerReset(t *testing.T) {
+	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.5, MaxMissing: time.Second})
+	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
+	tr.Reset()
+	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
+	require.Len(t, got, 1)
+	assert.Equal(t, 2, got[0].ID)
+}
