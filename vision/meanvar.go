@@ -342,6 +342,7 @@ type meanVar struct {
 	settling bool
 	closed   bool
 	chromas  []float64 // scratch: per-cell chroma of one candidate
+	clock    *StageClock
 }
 
 // errNoRectification is returned for a mean–variance detector set up
@@ -600,9 +601,11 @@ func (d *meanVar) paintHold(hold []image.Rectangle) {
 // absorbed.
 func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameStats, error) {
 	var st FrameStats
+	d.clock.start()
 	if err := d.rectify(frame); err != nil {
 		return nil, st, err
 	}
+	d.clock.lap(StageRectify)
 	var buf [errBufLen]C.char
 	if err := cErr(C.sw_pool_glint(unsafe.Pointer(d.frame.Ptr()), unsafe.Pointer(d.glint.Ptr()), unsafe.Pointer(d.glintPrev.Ptr()), C.double(d.cfg.rate(glintTime)), C.int(glintLevel), &buf[0], errBufLen), &buf, "glints"); err != nil {
 		return nil, st, err
@@ -660,6 +663,7 @@ func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameS
 	if learn {
 		d.frames++
 	}
+	d.clock.lap(StageModel)
 	if st.WarmingUp {
 		d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
 		return nil, st, nil
@@ -690,6 +694,10 @@ func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameS
 		return nil, st, err
 	}
 	gocv.Dilate(d.lo, &d.fg, d.kGrow)
+	d.clock.lap(StageCandidates)
+	if d.clock != nil {
+		d.clock.Frames++
+	}
 	return blobs, st, nil
 }
 

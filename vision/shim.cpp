@@ -182,3 +182,7 @@ int sw_cap_retrieve(SwCapture c, void* dst, char* err, int errlen) {
 double sw_cap_get(SwCapture c, int prop) { return static_cast<cv::VideoCapture*>(c)->get(prop); }
 
 void sw_cap_close(SwCapture c) { delete static_cast<cv::VideoCapture*>(c); }
+
+void sw_set_threads(int n) { cv::setNumThreads(n); }
+
+int sw_get_threads(void) { return cv::getNumThreads(); }

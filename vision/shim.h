@@ -32,6 +32,11 @@ int sw_cap_retrieve(SwCapture c, void* dst, char* err, int errlen);
 double sw_cap_get(SwCapture c, int prop);
 void sw_cap_close(SwCapture c);
 
+// OpenCV's worker pool for the whole process: n > 0 threads, n < 0 its
+// default; sw_get_threads returns the current size.
+void sw_set_threads(int n);
+int sw_get_threads(void);
+
 
 // The rectified pool's mean–variance model (see meanvar.go). Every image
 // argument is a cv::Mat* of the grid's size: frames CV_8UC3, the short mean,
