@@ -19,6 +19,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
+	"golang.org/x/sync/errgroup"
 
 	"stillwater/alert"
 	"stillwater/alert/arming"
@@ -113,24 +114,6 @@ func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
 		watches = append(watches, watch.New(cam, bs, armed, now, log, met.Camera(cam.ID), time.Duration(cfg.HeartbeatEvery), version, watch.NewEvidenceSettings(cfg)))
 	}
-	backlogCtx, stopBacklog := context.WithCancel(ctx)
-	backlogDone := make(chan struct{})
-	defer func() { stopBacklog(); <-backlogDone }()
-	go func() {
-		defer close(backlogDone)
-		for {
-			select {
-			case <-backlogCtx.Done():
-				return
-			case ev := <-backlog:
-				detail := fmt.Sprintf("%d messages wait in the outbox, oldest from %s", ev.stats.Depth, ev.stats.Oldest.UTC().Format(time.RFC3339))
-				for _, w := range watches {
-					w.Raise(backlogCtx, alert.FaultBusBacklog, ev.active, detail)
-				}
-			}
-		}
-	}()
-
 	acc, warn, err := accessOf(cfg, os.Getenv)
 	if err != nil {
 		return err
@@ -167,28 +150,6 @@ func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 		d.Ready(busURL, ln.Addr().String())
 	}
 
-	// Shutdown order: cameras stop first (their context ends or their file
-	// ends), then the bus is flushed, then HTTP closes.
-	httpCtx, stopHTTP := context.WithCancel(context.Background())
-	defer stopHTTP()
-	httpDone := make(chan error, 1)
-	go func() {
-		go func() { <-httpCtx.Done(); hs.Close() }()
-		if err := hs.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {
-			httpDone <- err
-			return
-		}
-		httpDone <- nil
-	}()
-
-	// The bus side (outbox drain, control requests, armed changes) runs
-	// until the cameras have stopped and the outbox has been flushed.
-	busCtx, stopBus := context.WithCancel(context.Background())
-	defer stopBus()
-	busDone := make(chan error, 1)
-	go func() { busDone <- bus.Run(busCtx) }()
-
-	camsDone := make(chan struct{})
 	rl := newReloader(log, cfg, acc, reloadTargets{
 		watches:      watches,
 		setSchedules: func(sch map[string]*arming.Schedule) error { return bus.Arming.SetSchedules(nil, sch, now()) },
@@ -198,48 +159,57 @@ func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 		},
 		setMaxDisarm: func(d time.Duration) ([]string, error) { return bus.Arming.SetMaxDisarm(d, now()) },
 	})
-	go func() {
-		for {
-			select {
-			case <-camsDone:
-				return
-			case nc := <-d.Reload:
-				rl.apply(nc)
-			}
-		}
-	}()
-	// One goroutine per camera; a failing camera logs and ends alone. A
-	// camera still running cameraStopWait after ctx ended (a call into the
-	// video backend that does not return) is abandoned, not waited for.
-	stopped := make([]chan struct{}, len(watches))
-	for i, w := range watches {
-		stopped[i] = make(chan struct{})
-		go func() {
-			defer close(stopped[i])
-			if err := w.Run(ctx); err != nil {
-				log.Error("camera stopped", "camera", w.Cam.ID, "err", err)
-			}
-		}()
-	}
-	if left := waitCameras(ctx, watches, stopped, CameraStopWait); len(left) > 0 {
-		busOut.stop()
-		for _, id := range left {
-			log.Error("camera did not stop; abandoned", "camera", id, "waited", CameraStopWait)
-		}
-	}
-	close(camsDone)
 
-	fctx, cancel := context.WithTimeout(context.Background(), FlushWait)
-	defer cancel()
-	if err := pub.Flush(fctx); err != nil {
-		log.Error("flush bus; what is left stays in the outbox for the next start", "err", err, "depth", pub.Stats().Depth)
-	}
-	stopBus()
-	if err := <-busDone; err != nil {
-		log.Error("bus", "err", err)
-	}
-	stopHTTP()
-	return <-httpDone
+	// The daemon's parts run in one group. They stop in this order:
+	//  1. capture: the cameras, when ctx ends or every source has ended,
+	//     with the backlog relay and the reloader, which serve them;
+	//  2. the publisher: the outbox gets FlushWait to reach the bus, then
+	//     the bus side (outbox drain, control requests, armed changes)
+	//     stops;
+	//  3. HTTP, last, so /metrics and /readyz answer while the rest stops.
+	// The bus side and HTTP run on contexts of their own, ended by the
+	// stop sequence, not by ctx.
+	busCtx, stopBus := context.WithCancel(context.WithoutCancel(ctx))
+	defer stopBus()
+	httpCtx, stopHTTP := context.WithCancel(context.WithoutCancel(ctx))
+	defer stopHTTP()
+	var g errgroup.Group
+
+	// HTTP: metrics, health, readiness, control, camera pictures.
+	g.Go(func() error { return httpPart{srv: hs, ln: ln}.Run(httpCtx) })
+
+	// The bus side. A failure is logged; the cameras go on, their
+	// messages waiting in the outbox.
+	g.Go(func() error {
+		if err := bus.Run(busCtx); err != nil {
+			log.Error("bus", "err", err)
+		}
+		return nil
+	})
+
+	// Capture, and the ordered stop that follows it.
+	g.Go(func() error {
+		defer stopHTTP()
+		capCtx, stopCapture := context.WithCancel(ctx)
+		var helpers errgroup.Group
+		// The outbox's backlog, raised as a fault on every camera.
+		helpers.Go(func() error { return backlogRelay{events: backlog, watches: watches}.Run(capCtx) })
+		// A new configuration on SIGHUP, applied between frames.
+		helpers.Go(func() error { return rl.Run(capCtx, d.Reload) })
+		// The cameras; an abandoned one can no longer publish.
+		cameraSet{watches: watches, log: log, grace: CameraStopWait, onAbandon: func([]string) { busOut.stop() }}.Run(ctx)
+		stopCapture()
+		helpers.Wait()
+
+		fctx, cancel := context.WithTimeout(context.Background(), FlushWait)
+		defer cancel()
+		if err := pub.Flush(fctx); err != nil {
+			log.Error("flush bus; what is left stays in the outbox for the next start", "err", err, "depth", pub.Stats().Depth)
+		}
+		stopBus()
+		return nil
+	})
+	return g.Wait()
 }
 
 // Shutdown bounds: after the context ends, cameras get cameraStopWait to
