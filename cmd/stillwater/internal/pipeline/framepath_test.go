@@ -70,12 +70,17 @@ func framePathClip(tb testing.TB, size image.Point) (string, synth.Truth) {
 //
 // The model learns on the first two thirds of the clip, then the last
 // third (the child in the water) is timed; everything runs on one
-// goroutine and the figures are wall time per timed frame. Messages are
+// goroutine, with OpenCV's pool at the daemon's default size
+// (opencv_threads 1), and the figures are wall time per timed frame. Messages are
 // few, so publishing is timed over every message of the clip and given
 // per message and spread over the frames of the whole clip.
 //
 //	go test -run '^$' -bench FramePath -benchtime 1x ./cmd/stillwater/internal/pipeline/
 func BenchmarkFramePath(b *testing.B) {
+	// OpenCV's pool as the daemon sizes it by default.
+	if err := config.Defaults().ApplyOpenCVThreads(); err != nil {
+		b.Fatal(err)
+	}
 	for _, size := range framePathSizes {
 		b.Run(fmt.Sprintf("%dx%d", size.X, size.Y), func(b *testing.B) {
 			clip, truth := framePathClip(b, size)
