@@ -151,6 +151,13 @@ func Describe(w io.Writer, path string, cfg config.Config, now time.Time) error 
 			fmt.Fprintf(w, "    camera-moved check against %s\n", cam.ReferenceFrame)
 		}
 		fmt.Fprintf(w, "    %s\n", resolution(cal))
+		if g, ok, err := detectionGrid(cam); err != nil {
+			return err
+		} else if ok {
+			for _, l := range g.lines() {
+				fmt.Fprintf(w, "    %s\n", l)
+			}
+		}
 		if n := len(cam.Zones); n > 0 {
 			fmt.Fprintf(w, "    %d exclusion zone(s)\n", n)
 		}
