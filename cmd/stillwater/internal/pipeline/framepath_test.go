@@ -115,6 +115,9 @@ func BenchmarkFramePath(b *testing.B) {
 			if st.timed == 0 || st.searched == 0 {
 				b.Fatalf("%s: no frame was timed", clip)
 			}
+			if st.vision.Frames == 0 || st.step.Frames == 0 {
+				b.Fatalf("%s: no timed frame reached the detector's candidates (%d) or Step (%d)", clip, st.vision.Frames, st.step.Frames)
+			}
 			line := fmt.Sprintf("frame path at %dx%d (ms/frame over %d timed frames):", size.X, size.Y, st.timed/b.N)
 			var sum float64
 			for _, s := range st.stages() {
