@@ -160,6 +160,7 @@ type Camera struct {
 	// times a file played in real time.
 	captured time.Time
 	pace     pace
+	clock    *StageClock // nil unless timed (SetStageClock)
 }
 
 // Redact returns uri with any password replaced, for logs and errors.
@@ -312,13 +313,16 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 	if c.cap == nil {
 		return Result{}, ErrDisconnected
 	}
+	c.clock.start()
 	if err := c.advance(); err != nil {
 		return Result{}, err
 	}
+	c.clock.lap(StageDecode)
 	r := Result{Index: c.index, Size: c.det.srcSize(), Media: c.mediaTime()}
 	c.index++
 	c.media = r.Media
 	r.Health = c.health.measure(c.frame, r.Media)
+	c.clock.lap(StageChecks)
 	if c.ev != nil {
 		if err := c.ev.add(c.frame, r.Media); err != nil {
 			return r, fmt.Errorf("frame %d: %w", r.Index, err)
@@ -563,6 +567,7 @@ func (c *Camera) Reconnect() (ReconnectInfo, error) {
 	}
 	c.det.Close()
 	c.det, c.dc = det, dc
+	c.SetStageClock(c.clock) // the new detector keeps the timing
 	info.Rebuilt = true
 	if c.ev != nil {
 		if err := c.ev.resize(); err != nil {

@@ -6,8 +6,8 @@ import "time"
 // the order Detect does them.
 type Stage int
 
-// The stages of Detect. Decoding happens before Detect and is not one of
-// them.
+// The stages of Detect, then the camera's own work before it, which only
+// a Camera given a clock (Camera.SetStageClock) times.
 const (
 	// StageRectify remaps the camera frame onto the pool grid (the
 	// resize and, for a grey source, the colour conversion).
@@ -18,6 +18,11 @@ const (
 	// StageCandidates thresholds the score, joins and labels the
 	// components and measures each candidate's features.
 	StageCandidates
+	// StageDecode is the camera reading the next frame: the FFmpeg
+	// backend's demuxing and decoding, on the camera's goroutine.
+	StageDecode
+	// StageChecks is the picture-health probe (black, frozen, noise).
+	StageChecks
 	nStages
 )
 
@@ -29,6 +34,10 @@ func (s Stage) String() string {
 		return "model"
 	case StageCandidates:
 		return "candidates"
+	case StageDecode:
+		return "decode"
+	case StageChecks:
+		return "checks"
 	}
 	return "stage?"
 }
@@ -62,5 +71,18 @@ func (c *StageClock) lap(s Stage) {
 // Total is the time spent in stage s so far.
 func (c *StageClock) Total(s Stage) time.Duration { return c.total[s] }
 
-// Stages lists the stages in the order Detect runs them.
+// Stages lists the stages of Detect in the order it runs them; StageDecode
+// and StageChecks come before them in Camera.Next.
 func Stages() []Stage { return []Stage{StageRectify, StageModel, StageCandidates} }
+
+// SetStageClock makes the camera time its frames into clock: decoding and
+// the picture checks in Next and, for the mean–variance detector, the
+// stages of Detect. nil stops the timing. For benchmarks: a file played in
+// real time counts its wait for each frame's time as decoding. The camera
+// does not own the clock.
+func (c *Camera) SetStageClock(clock *StageClock) {
+	c.clock = clock
+	if d, ok := c.det.(*meanVar); ok {
+		d.clock = clock
+	}
+}

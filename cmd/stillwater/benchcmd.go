@@ -10,6 +10,7 @@ import (
 	"time"
 
 	"stillwater/cmd/stillwater/internal/bench"
+	"stillwater/cmd/stillwater/internal/config"
 )
 
 // runBench is "stillwater bench": N cameras played in real time through
@@ -34,6 +35,7 @@ func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	fs.Int64Var(&o.Seed, "seed", 34, "`seed` of the generated family scene (34: daylight, a child in the water from about 6 s)")
 	fs.Float64Var(&o.ClipSeconds, "clip-seconds", 40, "`length` of the generated clip, played in a loop")
 	fs.IntVar(&o.Repeat, "repeat", 3, "`runs` of each yardstick loop; the median is reported")
+	fs.IntVar(&o.OpenCVThreads, "opencv-threads", config.DefaultOpenCVThreads, "OpenCV's worker pool `size` for the run, as the config's opencv_threads (0: one per CPU)")
 	fs.BoolVar(&o.Loops, "loops", true, "run the yardsticks (decode alone, ffmpeg decode, plain OpenCV loop) after the cameras")
 	fs.StringVar(&o.DataDir, "data-dir", "", "data `directory` of the daemon (default: a temporary one, removed after)")
 	fs.StringVar(&o.Cache, "cache", "", "render cache `directory` (default: testdata/cache/synth in the checkout, else the user cache)")

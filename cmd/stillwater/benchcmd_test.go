@@ -21,6 +21,8 @@ func TestBenchRefusesBadFlags(t *testing.T) {
 		{"-codec", "vp9"},
 		{"-size", "huge"},
 		{"-evidence-size", "1x1"},
+		{"-opencv-threads", "-1"},
+		{"-opencv-threads", "100000"},
 	} {
 		var out, errOut bytes.Buffer
 		err := run(context.Background(), append([]string{"bench"}, args...), &out, &errOut)
@@ -45,11 +47,12 @@ func TestBenchReports(t *testing.T) {
 	var r bench.Result
 	require.NoError(t, json.Unmarshal([]byte(lines[len(lines)-1]), &r), "the last line is JSON")
 	table := out.String()
-	for _, want := range []string{"2 camera(s), 320x180 at 10 fps", "evidence stream: 480x270", "frame to publish", "CPU", "memory", "same clip alone", "daemon"} {
+	for _, want := range []string{"2 camera(s), 320x180 at 10 fps", "evidence stream: 480x270", "frame to publish", "CPU", "memory", "same clip alone", "daemon", "OpenCV pool of 1 thread(s) (opencv_threads 1)"} {
 		assert.Contains(t, table, want)
 	}
 
 	require.Len(t, r.PerCamera, 2)
+	assert.Equal(t, 1, r.OpenCVThreads, "the daemon's default pool size")
 	assert.Equal(t, "480x270", r.EvidenceSize)
 	assert.InDelta(t, 5, r.WindowS, 1.5)
 	// Frames cannot be searched or dropped beyond those due in the window

@@ -52,7 +52,10 @@ type Options struct {
 	ClipSeconds      float64
 	Repeat           int
 	Loops            bool
-	DataDir, Cache   string
+	// OpenCVThreads is OpenCV's pool size for the whole run, the daemon's
+	// opencv_threads (1 by default; 0 is OpenCV's default).
+	OpenCVThreads  int
+	DataDir, Cache string
 }
 
 // Validate rejects options the run cannot honour.
@@ -70,6 +73,8 @@ func (o Options) Validate() error {
 		return fmt.Errorf("-clip-seconds %g: want at least 2", o.ClipSeconds)
 	case o.Repeat < 1:
 		return fmt.Errorf("-repeat %d: want at least 1", o.Repeat)
+	case o.OpenCVThreads < 0 || o.OpenCVThreads > 4*runtime.NumCPU():
+		return fmt.Errorf("-opencv-threads %d: want 0 (OpenCV's default, one per CPU) to %d", o.OpenCVThreads, 4*runtime.NumCPU())
 	}
 	switch o.Codec {
 	case "h264", "mpeg4", "mjpeg":
@@ -111,11 +116,12 @@ type Result struct {
 	DurationS    float64 `json:"duration_s"`
 	WindowS      float64 `json:"window_s"`
 
-	CPUs     int        `json:"cpus"`
-	CPUModel string     `json:"cpu_model"`
-	LoadAvg  [3]float64 `json:"load_avg_start"`
-	LoadEnd  [3]float64 `json:"load_avg_end"`
-	Go       string     `json:"go"`
+	CPUs          int        `json:"cpus"`
+	OpenCVThreads int        `json:"opencv_threads"`
+	CPUModel      string     `json:"cpu_model"`
+	LoadAvg       [3]float64 `json:"load_avg_start"`
+	LoadEnd       [3]float64 `json:"load_avg_end"`
+	Go            string     `json:"go"`
 
 	PerCamera         []benchCamera `json:"per_camera"`
 	FPSMin, FPSMedian float64       `json:"-"`
@@ -169,7 +175,7 @@ type benchCamera struct {
 // after it.
 func Run(ctx context.Context, o Options, log *slog.Logger, progress io.Writer) (Result, error) {
 	res := Result{Cameras: o.Cameras, FPS: o.Fps, Codec: o.Codec, DurationS: o.Duration.Seconds(), WindowS: (o.Duration - o.Warmup).Seconds(),
-		CPUs: runtime.NumCPU(), CPUModel: cpuModel(), LoadAvg: loadAvg(), Go: runtime.Version(), Faults: map[string]int{}}
+		CPUs: runtime.NumCPU(), OpenCVThreads: o.OpenCVThreads, CPUModel: cpuModel(), LoadAvg: loadAvg(), Go: runtime.Version(), Faults: map[string]int{}}
 	cam, clip, evClip, clipFrames, err := benchClips(ctx, o, progress)
 	if err != nil {
 		return res, err
@@ -204,6 +210,7 @@ func Run(ctx context.Context, o Options, log *slog.Logger, progress io.Writer) (
 	cfg.DataDir = dir
 	cfg.HTTP.Listen = "127.0.0.1:0"
 	cfg.Bus.Listen = "127.0.0.1:-1"
+	cfg.OpenCVThreads = o.OpenCVThreads
 	for i := 0; i < o.Cameras; i++ {
 		c := cam
 		c.ID = fmt.Sprintf("cam%d", i+1)
@@ -211,6 +218,11 @@ func Run(ctx context.Context, o Options, log *slog.Logger, progress io.Writer) (
 	}
 	if err := cfg.Validate(); err != nil {
 		return res, fmt.Errorf("bench: camera configuration: %w", err)
+	}
+	// As the daemon does at start-up; the yardsticks after it share the
+	// pool size.
+	if err := cfg.ApplyOpenCVThreads(); err != nil {
+		return res, fmt.Errorf("bench: %w", err)
 	}
 
 	// What the preparation used (rendering holds large tables) is given
@@ -564,8 +576,8 @@ func (r Result) Print(w io.Writer) {
 	if r.EvidenceSize != "" {
 		fmt.Fprintf(w, "evidence stream: %s, copied without decoding\n", r.EvidenceSize)
 	}
-	fmt.Fprintf(w, "machine: %d CPUs (%s), %s; load average %.2f %.2f %.2f at the start, %.2f %.2f %.2f at the end\n",
-		r.CPUs, r.CPUModel, r.Go, r.LoadAvg[0], r.LoadAvg[1], r.LoadAvg[2], r.LoadEnd[0], r.LoadEnd[1], r.LoadEnd[2])
+	fmt.Fprintf(w, "machine: %d CPUs (%s), %s, OpenCV pool of %s; load average %.2f %.2f %.2f at the start, %.2f %.2f %.2f at the end\n",
+		r.CPUs, r.CPUModel, r.Go, poolLine(r.OpenCVThreads), r.LoadAvg[0], r.LoadAvg[1], r.LoadAvg[2], r.LoadEnd[0], r.LoadEnd[1], r.LoadEnd[2])
 	fmt.Fprintf(w, "run: %.0f s, measured over the last %.1f s\n\n", r.DurationS, r.WindowS)
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
 	fmt.Fprintln(tw, "camera\tframes/s\tprocessed\tdropped\tframe age max")
@@ -598,6 +610,14 @@ func (r Result) Print(w io.Writer) {
 		fmt.Fprintf(tw, "daemon\t%.2f ms CPU per frame decoded = %.2f× OpenCV decode alone, %.2f× the plain loop\n", r.DaemonMsPerFrame, r.RatioDecode, r.RatioNaive)
 	}
 	tw.Flush()
+}
+
+// poolLine names OpenCV's pool size as opencv_threads sets it.
+func poolLine(n int) string {
+	if n == 0 {
+		return "one thread per CPU (opencv_threads 0)"
+	}
+	return fmt.Sprintf("%d thread(s) (opencv_threads %d)", n, n)
 }
 
 func pct(a, b int64) float64 {

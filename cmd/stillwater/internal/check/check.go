@@ -151,6 +151,13 @@ func Describe(w io.Writer, path string, cfg config.Config, now time.Time) error 
 			fmt.Fprintf(w, "    camera-moved check against %s\n", cam.ReferenceFrame)
 		}
 		fmt.Fprintf(w, "    %s\n", resolution(cal))
+		if g, ok, err := detectionGrid(cam); err != nil {
+			return err
+		} else if ok {
+			for _, l := range g.lines() {
+				fmt.Fprintf(w, "    %s\n", l)
+			}
+		}
 		if n := len(cam.Zones); n > 0 {
 			fmt.Fprintf(w, "    %d exclusion zone(s)\n", n)
 		}
@@ -158,6 +165,7 @@ func Describe(w io.Writer, path string, cfg config.Config, now time.Time) error 
 		fmt.Fprintf(w, "    camera lost after %v without a frame while armed\n", time.Duration(cam.FrameTimeout))
 		fmt.Fprintf(w, "    %s\n", armingLine(sch[cam.ID], loc, cfg.Arming.TimeZone == "Local", now))
 	}
+	fmt.Fprintf(w, "  %s\n", openCVLine(cfg.OpenCVThreads))
 	fmt.Fprintln(w)
 	fmt.Fprintln(w, "bus:")
 	if cfg.Bus.Embedded() {
@@ -218,6 +226,15 @@ func Describe(w io.Writer, path string, cfg config.Config, now time.Time) error 
 		fmt.Fprintln(w, "evidence: off")
 	}
 	return nil
+}
+
+// openCVLine says how many threads OpenCV's pool, shared by the cameras,
+// will have.
+func openCVLine(n int) string {
+	if n == 0 {
+		return "OpenCV's worker pool, shared by the cameras: one thread per CPU (opencv_threads 0)"
+	}
+	return fmt.Sprintf("OpenCV's worker pool, shared by the cameras: %d thread(s) (opencv_threads %d)", n, n)
 }
 
 // calibrationLine summarises how pixels become pool metres.

@@ -1,6 +1,8 @@
 package config
 
 import (
+	"fmt"
+	"runtime"
 	"testing"
 	"time"
 
@@ -81,4 +83,54 @@ cameras:
 	assert.Contains(t, err.Error(), "Mars/Olympus_Mons")
 	_, err = ParseConfig([]byte(cam))
 	assert.NoError(t, err, "without a schedule the zone does not matter")
+}
+
+func TestOpenCVThreads(t *testing.T) {
+	most := 4 * runtime.NumCPU()
+	tests := []struct {
+		name, key string // key is the opencv_threads line, empty for none
+		want      int
+		err       string
+	}{
+		{name: "default", want: 1},
+		{name: "one", key: "opencv_threads: 1", want: 1},
+		{name: "OpenCV's default", key: "opencv_threads: 0", want: 0},
+		{name: "two", key: "opencv_threads: 2", want: 2},
+		{name: "four per CPU", key: fmt.Sprintf("opencv_threads: %d", most), want: most},
+		{name: "negative", key: "opencv_threads: -1", err: fmt.Sprintf("opencv_threads: -1; want 0 (OpenCV's default, one per CPU) to %d", most)},
+		{name: "too many", key: fmt.Sprintf("opencv_threads: %d", most+1), err: fmt.Sprintf("opencv_threads: %d; want 0", most+1)},
+		{name: "not a number", key: "opencv_threads: two", err: "line 1: cannot unmarshal"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			cfg, err := ParseConfig([]byte(tt.key + "\n" + goodConfig))
+			if tt.err != "" {
+				require.Error(t, err)
+				assert.Contains(t, err.Error(), tt.err)
+				return
+			}
+			require.NoError(t, err)
+			assert.Equal(t, tt.want, cfg.OpenCVThreads)
+		})
+	}
+}
+
+func TestValidateOpenCVThreads(t *testing.T) {
+	tests := []struct {
+		n, cpus int
+		ok      bool
+	}{
+		{0, 2, true}, {1, 2, true}, {8, 2, true}, {9, 2, false}, {-1, 2, false}, {32, 8, true}, {33, 8, false},
+	}
+	for _, tt := range tests {
+		t.Run(fmt.Sprintf("%d of %d CPUs", tt.n, tt.cpus), func(t *testing.T) {
+			err := validateOpenCVThreads(tt.n, tt.cpus)
+			if tt.ok {
+				assert.NoError(t, err)
+				return
+			}
+			require.Error(t, err)
+			assert.Contains(t, err.Error(), fmt.Sprintf("opencv_threads: %d; want 0 (OpenCV's default, one per CPU) to %d (four per CPU on this machine's %d)", tt.n, 4*tt.cpus, tt.cpus))
+		})
+	}
 }

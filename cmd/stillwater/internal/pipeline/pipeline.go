@@ -62,6 +62,8 @@ type Processor struct {
 	// decision (explain.go); explain, when set, is called after each step.
 	notes   []candidateNote
 	Explain func(p *Processor, r vision.Result)
+	// Clock, when set, times the stages of Step (benchmarks).
+	Clock   *StepClock
 	log     *slog.Logger
 	Seq     uint64
 	epoch   time.Time // wall time of media time 0
@@ -104,6 +106,7 @@ func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectan
 	if r.Rejoining {
 		return nil, nil
 	}
+	p.Clock.start()
 	d := p.cam.Detect
 	var dets []detection
 	p.notes = p.notes[:0]
@@ -143,8 +146,10 @@ func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectan
 		}
 		dets = append(dets, detection{X: c.X, Y: c.Y, Area: area, Box: b.Box, Hold: b.Box.Inset(-4)})
 	}
+	p.Clock.lap(StepGate)
 	tracks := p.tracker.Update(r.Media, dets)
 	p.Tracks = tracks
+	p.Clock.lap(StepTrack)
 	p.judge.observe(r.Media, tracks, deckBodies(p.notes, p.judge.rules.DeckMinArea))
 	obs := make([]alert.Observation, 0, len(tracks))
 	var hold []image.Rectangle
@@ -163,6 +168,7 @@ func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectan
 		hold = append(hold, t.Hold)
 	}
 	p.metrics.Tracks(len(tracks))
+	p.Clock.lap(StepJudge)
 	var out []Message
 	for _, dec := range p.alarm.Step(r.Media, obs, armed) {
 		switch {
@@ -177,6 +183,10 @@ func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectan
 			continue
 		}
 		out = append(out, m)
+	}
+	p.Clock.lap(StepAlarm)
+	if p.Clock != nil {
+		p.Clock.Frames++
 	}
 	p.noteTracks()
 	if p.Explain != nil {

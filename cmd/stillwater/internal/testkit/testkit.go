@@ -19,7 +19,7 @@ import (
 
 // BusConfig is a daemon configuration for the bus side alone: the
 // embedded server on a free port, data in a fresh directory.
-func BusConfig(t *testing.T) config.Config {
+func BusConfig(t testing.TB) config.Config {
 	t.Helper()
 	cfg := config.Defaults()
 	cfg.DataDir = t.TempDir()
@@ -28,7 +28,7 @@ func BusConfig(t *testing.T) config.Config {
 }
 
 // OpenBus opens the daemon's bus side for cfg, with one camera, north.
-func OpenBus(t *testing.T, cfg config.Config, log *slog.Logger, h config.BusHooks) *config.BusParts {
+func OpenBus(t testing.TB, cfg config.Config, log *slog.Logger, h config.BusHooks) *config.BusParts {
 	t.Helper()
 	b, err := config.OpenBus(context.Background(), cfg, arming.Config{Cameras: []string{"north"}}, time.Now, log, h)
 	require.NoError(t, err)
@@ -36,7 +36,7 @@ func OpenBus(t *testing.T, cfg config.Config, log *slog.Logger, h config.BusHook
 }
 
 // RunBus runs b until the test ends, then closes it.
-func RunBus(t *testing.T, b *config.BusParts) {
+func RunBus(t testing.TB, b *config.BusParts) {
 	t.Helper()
 	ctx, cancel := context.WithCancel(context.Background())
 	done := make(chan error, 1)
