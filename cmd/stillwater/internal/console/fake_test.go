@@ -74,6 +74,14 @@ func newFakeBackend(t testing.TB, now func() time.Time) *fakeBackend {
 // fakeJPEG draws the pool, and a bar whose place moves with seq so that
 // successive frames differ; mark, when set, is a track's box.
 func fakeJPEG(seq uint64, mark *image.Rectangle) ([]byte, error) {
+	var b bytes.Buffer
+	if err := jpeg.Encode(&b, fakeImage(seq, mark), &jpeg.Options{Quality: 80}); err != nil {
+		return nil, fmt.Errorf("encode fake frame: %w", err)
+	}
+	return b.Bytes(), nil
+}
+
+func fakeImage(seq uint64, mark *image.Rectangle) *image.RGBA {
 	w, h := fakeFrame[0], fakeFrame[1]
 	img := image.NewRGBA(image.Rect(0, 0, w, h))
 	deck := color.RGBA{196, 186, 168, 255}
@@ -96,11 +104,7 @@ func fakeJPEG(seq uint64, mark *image.Rectangle) ([]byte, error) {
 			img.SetRGBA(x, y, color.RGBA{20, 20, 20, 255})
 		}
 	}
-	var b bytes.Buffer
-	if err := jpeg.Encode(&b, img, &jpeg.Options{Quality: 80}); err != nil {
-		return nil, fmt.Errorf("encode fake frame: %w", err)
-	}
-	return b.Bytes(), nil
+	return img
 }
 
 // inQuad reports whether (x, y) is inside the convex quadrilateral q.
@@ -236,7 +240,32 @@ func (f *fakeBackend) PreviewCalibration(ctx context.Context, camera string, in 
 			p.FarMPP, p.FarCorner = m, string(rune('A'+i))
 		}
 	}
+	if p.Rectified, err = fakeRectify(fakeImage(0, nil), inv, in.Length, in.Width, 30); err != nil {
+		return Preview{}, err
+	}
+	p.PPM = 30
 	return p, nil
+}
+
+// fakeRectify samples the top-down view at ppm pixels per metre, with
+// 1 m of deck round the pool, nearest pixel: toPx maps pool metres to
+// frame pixels.
+func fakeRectify(frame *image.RGBA, toPx homography.H, length, width, ppm float64) ([]byte, error) {
+	w, h := int(ppm*(length+2)), int(ppm*(width+2))
+	out := image.NewRGBA(image.Rect(0, 0, w, h))
+	for v := range h {
+		for u := range w {
+			q, ok := toPx.Map(homography.Point{X: float64(u)/ppm - 1, Y: float64(v)/ppm - 1})
+			if ok && image.Pt(int(q.X), int(q.Y)).In(frame.Bounds()) {
+				out.SetRGBA(u, v, frame.RGBAAt(int(q.X), int(q.Y)))
+			}
+		}
+	}
+	var b bytes.Buffer
+	if err := jpeg.Encode(&b, out, &jpeg.Options{Quality: 80}); err != nil {
+		return nil, fmt.Errorf("encode rectified view: %w", err)
+	}
+	return b.Bytes(), nil
 }
 
 func (f *fakeBackend) SaveCalibration(ctx context.Context, camera string, in CalibrationInput) error {

@@ -197,8 +197,17 @@ func TestPreviewOrdersCornersFromTheOrigin(t *testing.T) {
 	assert.Contains(t, []string{"A", "B"}, p.NearCorner)
 	assert.Contains(t, []string{"C", "D"}, p.FarCorner)
 	assert.Less(t, p.NearMPP, p.FarMPP)
-	// Hand-worked: A→B is 420 px for 10 m along the near edge.
-	assert.InDelta(t, 10.0/420, p.NearMPP, 0.01)
+
+	// Hand-worked: a camera square above a 10 m × 5 m pool drawn 400 px ×
+	// 200 px sees 2.5 cm per pixel everywhere.
+	square := `{"corners":[[100,100],[500,100],[500,300],[100,300]],"length_m":10,"width_m":5}`
+	rec = do(t, h, "POST", "/console/api/cameras/deck/calibration/preview", square, nil)
+	require.Equal(t, 200, rec.Code, rec.Body.String())
+	require.NoError(t, json.Unmarshal(rec.Body.Bytes(), &p))
+	assert.InDelta(t, 0.025, p.NearMPP, 1e-9)
+	assert.InDelta(t, 0.025, p.FarMPP, 1e-9)
+	assert.InDelta(t, 140, p.AxisX[1][0], 1e-9, "1 m along x is 40 px right of A")
+	assert.InDelta(t, 140, p.AxisY[1][1], 1e-9, "1 m along y is 40 px below A")
 }
 
 func TestCalibrationErrorsPointAtTheClick(t *testing.T) {

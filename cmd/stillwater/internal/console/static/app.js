@@ -33,6 +33,38 @@
     }
     return e;
   }
+  // Icons drawn for this page, 16 × 16: each part is a path and how it
+  // is painted (f fill, s stroke, w white fill). They repeat what the
+  // words say; the words carry the meaning.
+  const ICONS = {
+    shield: [["M8 1l6 2.2v4.6c0 3.6-2.6 6.2-6 7.2-3.4-1-6-3.6-6-7.2V3.2z", "f"]],
+    pause: [["M3.5 2h3.2v12H3.5zM9.3 2h3.2v12H9.3z", "f"]],
+    alarm: [["M8 1l7.5 13.5H.5z", "f"], ["M7.1 5h1.8v5H7.1zM7.1 11.2h1.8v1.8H7.1z", "w"]],
+    warn: [["M8 1.8l6.6 12H1.4z", "s"], ["M7.2 5.5h1.6v4.5H7.2zM7.2 11h1.6v1.6H7.2z", "f"]],
+    check: [["M2 8.5l4 4 8-9", "s"]],
+    cross: [["M3 3l10 10M13 3L3 13", "s"]],
+    wait: [["M4 1.5h8v3l-3 3.5 3 3.5v3H4v-3l3-3.5-3-3.5z", "s"]],
+    eye: [["M1 8s2.6-5 7-5 7 5 7 5-2.6 5-7 5-7-5-7-5z", "s"], ["M8 5.8a2.2 2.2 0 1 1 0 4.4 2.2 2.2 0 1 1 0-4.4z", "f"]],
+    key: [["M5 6.5a3 3 0 1 1 0 6 3 3 0 1 1 0-6zM7.2 7.3L13.5 1M11 3.5l2 2", "s"]],
+    dot: [["M8 4a4 4 0 1 1 0 8 4 4 0 1 1 0-8z", "f"]],
+    back: [["M12.6 9.5A5 5 0 1 1 11 4.2", "s"], ["M9 1.5l3.8 1.6-1.4 3.9", "s"]],
+    play: [["M4 2l10 6-10 6z", "f"]],
+  };
+  function icon(name) {
+    const svg = document.createElementNS(SVG, "svg");
+    svg.setAttribute("viewBox", "0 0 16 16");
+    svg.setAttribute("class", "ic");
+    svg.setAttribute("aria-hidden", "true");
+    svg.setAttribute("focusable", "false");
+    for (const [d, how] of ICONS[name] || ICONS.dot) {
+      const p = document.createElementNS(SVG, "path");
+      p.setAttribute("d", d);
+      if (how === "s") { p.setAttribute("fill", "none"); p.setAttribute("stroke", "currentColor"); p.setAttribute("stroke-width", "2"); p.setAttribute("stroke-linecap", "round"); p.setAttribute("stroke-linejoin", "round"); }
+      else p.setAttribute("fill", how === "w" ? "#fff" : "currentColor");
+      svg.append(p);
+    }
+    return svg;
+  }
   const pts = (list) => list.map((p) => p[0] + "," + p[1]).join(" ");
   const fix = (v, n) => Number(v).toFixed(n);
 
@@ -60,30 +92,43 @@
   const keyState = document.getElementById("key-state");
   function showKeyState() {
     const words = keyState.querySelector(".words");
-    const icon = keyState.querySelector(".icon");
+    const ic = keyState.querySelector(".icon");
     if (key) {
       keyState.dataset.mode = "control";
-      icon.textContent = "\u{1F511}";
+      ic.replaceChildren(icon("key"));
       words.textContent = "Control key entered for this tab. The daemon checks it on every request.";
     } else {
       keyState.dataset.mode = "read-only";
-      icon.textContent = "\u{1F441}";
+      ic.replaceChildren(icon("eye"));
       words.textContent = "Read-only. Enter the control key to arm, disarm or save a calibration.";
     }
     for (const b of document.querySelectorAll("[data-needs-key]")) b.disabled = !key;
+    for (const d of document.querySelectorAll("[data-shown-without-key]")) d.hidden = !!key;
   }
-  document.getElementById("key-form").addEventListener("submit", (ev) => {
-    ev.preventDefault();
-    key = keyInput.value.trim();
-    keyInput.value = "";
+  function useKey(k) {
+    key = k.trim();
     if (key) sessionStorage.setItem(KEY_ITEM, key);
     else sessionStorage.removeItem(KEY_ITEM);
     showKeyState();
+  }
+  document.getElementById("key-form").addEventListener("submit", (ev) => {
+    ev.preventDefault();
+    useKey(keyInput.value);
+    keyInput.value = "";
   });
-  document.getElementById("key-forget").addEventListener("click", () => {
-    key = "";
-    sessionStorage.removeItem(KEY_ITEM);
-    showKeyState();
+  document.getElementById("key-forget").addEventListener("click", () => useKey(""));
+  // The page behind the calibration dialog is inert: it has a key field too.
+  const calibKeyInput = document.getElementById("calib-key-input");
+  document.getElementById("calib-key-use").addEventListener("click", () => {
+    useKey(calibKeyInput.value);
+    calibKeyInput.value = "";
+  });
+  calibKeyInput.addEventListener("keydown", (ev) => {
+    if (ev.key === "Enter") {
+      ev.preventDefault();
+      useKey(calibKeyInput.value);
+      calibKeyInput.value = "";
+    }
   });
 
   // ---- cameras ----
@@ -91,14 +136,14 @@
   const camsBox = document.getElementById("cameras");
 
   const HEALTH = {
-    watching: { icon: "\u2714", words: "Watching", tone: "ok" },
-    starting: { icon: "\u231B", words: "Starting, no picture yet", tone: "warn" },
-    faulty: { icon: "\u26A0", words: "Fault", tone: "warn" },
-    lost: { icon: "\u2716", words: "No picture", tone: "bad" },
+    watching: { icon: "check", words: "Watching", tone: "ok" },
+    starting: { icon: "wait", words: "Starting, no picture yet", tone: "warn" },
+    faulty: { icon: "warn", words: "Fault", tone: "warn" },
+    lost: { icon: "cross", words: "No picture", tone: "bad" },
   };
 
-  function badge(icon, words, tone) {
-    return el("span", { class: "badge", "data-tone": tone }, el("span", { "aria-hidden": "true", text: icon + " " }), words);
+  function badge(name, words, tone) {
+    return el("span", { class: "badge", "data-tone": tone }, icon(name), " " + words);
   }
 
   function makeCamera(id) {
@@ -115,10 +160,10 @@
     };
     const act = (action) => () => control(v, action);
     const controls = el("div", { class: "controls", role: "group", "aria-label": "Arming of camera " + id },
-      el("button", { type: "button", "data-act": "arm", "data-needs-key": true, onclick: act("arm"), "aria-label": "Arm camera " + id + " now" }, "\u{1F6E1} Arm now"),
+      el("button", { type: "button", "data-act": "arm", "data-needs-key": true, onclick: act("arm"), "aria-label": "Arm camera " + id + " now" }, icon("shield"), " Arm now"),
       el("div", { class: "until" }, el("label", { for: sid + "-until", text: "Disarm until (local time)" }), untilIn),
-      el("button", { type: "button", "data-act": "disarm", "data-needs-key": true, onclick: act("disarm"), "aria-label": "Disarm camera " + id + " until the time given" }, "\u23F8 Disarm until"),
-      el("button", { type: "button", "data-act": "clear", "data-needs-key": true, onclick: act("clear"), "aria-label": "Camera " + id + " back to its schedule" }, "\u21BA Back to schedule"),
+      el("button", { type: "button", "data-act": "disarm", "data-needs-key": true, onclick: act("disarm"), "aria-label": "Disarm camera " + id + " until the time given" }, icon("pause"), " Disarm until"),
+      el("button", { type: "button", "data-act": "clear", "data-needs-key": true, onclick: act("clear"), "aria-label": "Camera " + id + " back to its schedule" }, icon("back"), " Back to schedule"),
       reply);
     const calibBtn = el("button", { type: "button", class: "calibrate", onclick: () => openCalibration(v), "aria-label": "Calibrate camera " + id }, "Calibrate\u2026");
     v.box.append(el("h2", { id: sid + "-h", text: "Camera " + id }), el("div", { class: "view" }, img, svg), facts, tracks, controls, calibBtn);
@@ -129,8 +174,8 @@
   }
 
   function renderCamera(v, c) {
-    const h = HEALTH[c.health] || { icon: "?", words: c.health, tone: "plain" };
-    const armed = c.armed ? badge("\u{1F6E1}", "ARMED", "ok") : badge("\u23F8", "DISARMED", "warn");
+    const h = HEALTH[c.health] || { icon: "dot", words: c.health, tone: "plain" };
+    const armed = c.armed ? badge("shield", "ARMED", "ok") : badge("pause", "DISARMED", "warn");
     const f = [];
     const row = (dt, ...dd) => f.push(el("dt", { text: dt }), el("dd", {}, ...dd));
     row("Camera", badge(h.icon, h.words, h.tone));
@@ -171,7 +216,7 @@
         g.push(svgEl("rect", { class: "track" + (t.alarm ? " alarm" : ""), x, y, width: bw, height: bh }));
         g.push(svgEl("circle", { class: "track" + (t.alarm ? " alarm" : ""), cx: t.at[0], cy: t.at[1], r: 4 }));
         g.push(svgEl("text", { x: x, y: Math.max(14, y - 6), class: "track-label", text: label }));
-        items.push(el("li", { "data-track": t.id }, t.alarm ? badge("\u{1F6A8}", "ALARM", "bad") : badge("\u25CF", "tracking", "plain"), " " + label.replace(" ALARM", "")));
+        items.push(el("li", { "data-track": t.id }, t.alarm ? badge("alarm", "ALARM", "bad") : badge("dot", "tracking", "plain"), " " + label.replace(" ALARM", "")));
       }
       v.svg.replaceChildren(...g);
     } else if (c.overlay_error) {
@@ -253,10 +298,10 @@
   const snaps = new Map(); // snapshot URL -> object URL
 
   const KIND = {
-    alarm: { icon: "\u{1F6A8}", words: "Alarm" },
-    alarm_cleared: { icon: "\u2714", words: "Alarm ended" },
-    fault: { icon: "\u26A0", words: "Fault" },
-    fault_cleared: { icon: "\u2714", words: "Fault cleared" },
+    alarm: { icon: "alarm", words: "Alarm" },
+    alarm_cleared: { icon: "check", words: "Alarm ended" },
+    fault: { icon: "warn", words: "Fault" },
+    fault_cleared: { icon: "check", words: "Fault cleared" },
   };
 
   async function loadSnap(img, url) {
@@ -279,9 +324,9 @@
     shownEvents = sig;
     eventsEmpty.hidden = events.length > 0;
     eventList.replaceChildren(...events.map((e) => {
-      const k = KIND[e.kind] || { icon: "\u2022", words: e.kind };
+      const k = KIND[e.kind] || { icon: "dot", words: e.kind };
       const li = el("li", { class: "event", "data-kind": e.kind, "data-id": e.id });
-      li.append(el("h3", {}, el("span", { "aria-hidden": "true", text: k.icon + " " }), k.words + " \u2014 camera " + e.camera));
+      li.append(el("h3", {}, icon(k.icon), " " + k.words + " \u2014 camera " + e.camera));
       li.append(el("p", { class: "when" }, el("time", { datetime: e.time, text: localTime(e.time) })));
       li.append(el("p", { text: e.text }));
       if (e.position_m) li.append(el("p", { text: "Position: " + fix(e.position_m[0], 2) + " m along, " + fix(e.position_m[1], 2) + " m across (track " + e.track + ")" }));
@@ -296,7 +341,7 @@
         loadSnap(img, e.snapshot_url);
         li.append(el("a", { href: e.snapshot_url, target: "_blank", rel: "noopener", "aria-label": "Open the snapshot full size" }, img));
       }
-      if (e.clip_url) li.append(el("p", {}, el("a", { href: e.clip_url, download: true, text: "\u25B6 Download the clip" })));
+      if (e.clip_url) li.append(el("p", {}, el("a", { href: e.clip_url, download: true }, icon("play"), " Download the clip")));
       return li;
     }));
   }
@@ -377,8 +422,7 @@
     cal.frame = [cImg.naturalWidth, cImg.naturalHeight];
     cSvg.setAttribute("viewBox", "0 0 " + cal.frame[0] + " " + cal.frame[1]);
     dlg.showModal();
-    drawCalib();
-    schedulePreview();
+    changed();
   }
   document.getElementById("calib-close").addEventListener("click", () => dlg.close());
 
@@ -425,7 +469,9 @@
   document.getElementById("corners-reset").addEventListener("click", () => { cal.corners = []; changed(); });
   document.getElementById("outline-undo").addEventListener("click", () => { cal.outline.pop(); changed(); });
   document.getElementById("outline-reset").addEventListener("click", () => { cal.outline = []; changed(); });
-  for (const i of [inLength, inWidth, inDepth, inOrigin]) i.addEventListener("input", () => { drawCalib(); schedulePreview(); });
+  for (const i of [inLength, inWidth, inDepth]) i.addEventListener("input", () => { drawCalib(); schedulePreview(); });
+  // The origin renames the corners in the list as well as on the picture.
+  inOrigin.addEventListener("change", changed);
 
   function changed() {
     drawCalib();
@@ -523,18 +569,21 @@
       return;
     }
     const seq = ++cal.seq;
+    const sent = input();
     try {
-      const r = await fetch(API + "cameras/" + encodeURIComponent(cal.cam) + "/calibration/preview", { method: "POST", headers: authHeaders({ "Content-Type": "application/json" }), body: JSON.stringify(input()) });
+      const r = await fetch(API + "cameras/" + encodeURIComponent(cal.cam) + "/calibration/preview", { method: "POST", headers: authHeaders({ "Content-Type": "application/json" }), body: JSON.stringify(sent) });
       const j = await r.json().catch(() => ({ error: "reply is not JSON (HTTP " + r.status + ")" }));
       if (seq !== cal.seq) return; // a newer preview is on its way
       if (!r.ok) {
         cal.preview = null;
         cal.error = { field: j.field || "", point: j.point === undefined ? -1 : j.point, msg: j.error };
+        delete cStatus.dataset.solved;
         say(cStatus, "bad", "\u2716 " + j.error);
         cScale.replaceChildren();
         cRect.hidden = true;
       } else {
         cal.preview = j; cal.error = null;
+        cStatus.dataset.solved = JSON.stringify(sent.corners) + " " + sent.origin + " " + sent.length_m + " " + sent.width_m;
         say(cStatus, "ok", "\u2714 Solved. Check that the 1 m grid lies flat on the water and the top-down view is square.");
         const f = [];
         const row = (dt, dd) => f.push(el("dt", { text: dt }), el("dd", { text: dd }));
