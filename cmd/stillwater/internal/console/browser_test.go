@@ -204,6 +204,18 @@ func TestBrowserCalibrationByClicking(t *testing.T) {
 	bt.Do(t, ctx, "type it back", retype("#p-corners-2-x", "445"))
 	bt.WaitFor(t, ctx, "the solved preview", solvedFor(clicks, 0, 10, 5)+` && document.getElementById("err-corners-2").textContent === ""`)
 
+	// Trace the water's edge a little inside the corners.
+	bt.Do(t, ctx, "switch to the edge", chromedp.Click(chromedp.CSS(`input[name="mode"][value="outline"]`)))
+	// Pressing on a corner's handle drags the corner: the edge points
+	// keep clear of them.
+	edge := [][2]float64{{140, 284}, {500, 286}, {430, 106}, {222, 104}}
+	for _, c := range edge {
+		x, y := svgPoint(t, ctx, c[0], c[1])
+		bt.Do(t, ctx, "click an edge point", chromedp.MouseClickXY(x, y))
+	}
+	bt.WaitFor(t, ctx, "four edge points", `document.querySelectorAll("#outline-list li").length === 4`)
+	assert.Equal(t, 1, bt.Eval[int](t, ctx, `document.querySelectorAll("#calib-svg polygon.edge").length`))
+
 	// The second click is the origin; the pool is 12.5 m × 6 m.
 	bt.Do(t, ctx, "set the origin and size",
 		chromedp.Focus(chromedp.CSS("#c-origin")), chromedp.KeyEvent(kb.ArrowDown),
@@ -221,7 +233,7 @@ func TestBrowserCalibrationByClicking(t *testing.T) {
 	saved := r.fb.savedCalibrations()
 	require.Len(t, saved, 1)
 	want := [][2]float64{clicks[1], clicks[2], clicks[3], clicks[0]}
-	assert.Equal(t, CalibrationInput{Corners: want, Length: 12.5, Width: 6}, saved[0])
+	assert.Equal(t, CalibrationInput{Corners: want, Outline: edge, Length: 12.5, Width: 6}, saved[0])
 }
 
 func TestBrowserPhoneWidth(t *testing.T) {
