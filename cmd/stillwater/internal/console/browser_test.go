@@ -90,6 +90,7 @@ func TestBrowserFrameShowsAndRefreshes(t *testing.T) {
 		assert.Contains(t, facts, want)
 	}
 	assert.Equal(t, "true", bt.Eval[string](t, ctx, `document.querySelector("#cam-deck").dataset.alarm`), "an alarming track marks the camera")
+	assert.Equal(t, "ALARM — stillwater · pool watch", bt.Eval[string](t, ctx, `document.title`), "and the tab's title")
 	bt.Screen(t, ctx, *updateScreens, "testdata/readme", "page-desktop.png")
 }
 

@@ -363,6 +363,8 @@
         refreshFrame(v);
       }
       renderEvents(st.events);
+      const alarming = st.cameras.some((c) => c.overlay && c.overlay.tracks.some((t) => t.alarm));
+      document.title = (alarming ? "ALARM \u2014 " : "") + "stillwater \u00B7 pool watch";
     } catch (e) {
       conn.dataset.state = "down";
       conn.textContent = "\u2716 Cannot reach the daemon: " + e.message;
