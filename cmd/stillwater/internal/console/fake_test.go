@@ -8,7 +8,6 @@ import (
 	"image/color"
 	"image/jpeg"
 	"io/fs"
-	"math"
 	"sync"
 	"testing"
 	"testing/fstest"
@@ -219,33 +218,32 @@ func (f *fakeBackend) PreviewCalibration(ctx context.Context, camera string, in 
 	if err != nil {
 		return Preview{}, err
 	}
-	px := func(x, y float64) [2]float64 {
-		p, _ := inv.Map(homography.Point{X: x, Y: y})
-		return [2]float64{p.X, p.Y}
-	}
-	p := Preview{Frame: fakeFrame, Corners: in.Corners, AxisX: [][2]float64{px(0, 0), px(1, 0)}, AxisY: [][2]float64{px(0, 0), px(0, 1)}}
-	for x := 0.0; x <= in.Length; x++ {
-		p.Grid = append(p.Grid, [][2]float64{px(x, 0), px(x, in.Width)})
-	}
-	for y := 0.0; y <= in.Width; y++ {
-		p.Grid = append(p.Grid, [][2]float64{px(0, y), px(in.Length, y)})
-	}
-	p.NearMPP, p.FarMPP = math.Inf(1), 0
+	corners := make([]homography.Point, len(in.Corners))
 	for i, c := range in.Corners {
-		m := homography.MetresPerPixel(h, homography.Point{X: c[0], Y: c[1]})
-		if m < p.NearMPP {
-			p.NearMPP, p.NearCorner = m, string(rune('A'+i))
-		}
-		if m > p.FarMPP {
-			p.FarMPP, p.FarCorner = m, string(rune('A'+i))
-		}
+		corners[i] = homography.Point{X: c[0], Y: c[1]}
 	}
+	p := PreviewOf(planeSolved{toPool: h, toPx: inv, length: in.Length, width: in.Width, corners: corners}, fakeFrame)
 	if p.Rectified, err = fakeRectify(fakeImage(0, nil), inv, in.Length, in.Width, 30); err != nil {
 		return Preview{}, err
 	}
 	p.PPM = 30
 	return p, nil
 }
+
+// planeSolved is a calibration that is a plain homography: no lens, no
+// refraction.
+type planeSolved struct {
+	toPool, toPx  homography.H
+	length, width float64
+	corners       []homography.Point
+}
+
+func (p planeSolved) Pixel(s homography.Point) (homography.Point, bool) { return p.toPx.Map(s) }
+func (p planeSolved) MetresPerPixel(px homography.Point) float64 {
+	return homography.MetresPerPixel(p.toPool, px)
+}
+func (p planeSolved) Size() (float64, float64)    { return p.length, p.width }
+func (p planeSolved) Corners() []homography.Point { return p.corners }
 
 // fakeRectify samples the top-down view at ppm pixels per metre, with
 // 1 m of deck round the pool, nearest pixel: toPx maps pool metres to
