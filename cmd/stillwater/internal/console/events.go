@@ -2,7 +2,6 @@ package console
 
 import (
 	"encoding/json"
-	"errors"
 	"fmt"
 	"io/fs"
 	"path"
@@ -153,20 +152,9 @@ func (r *Recorder) Faults(camera string) []Fault {
 	return out
 }
 
-// WhyName is the file beside an alarm's snapshot that holds the features
-// its alarm was judged on (JSON, a list of Feature): NAME.jpg → NAME.why.json.
-func WhyName(snapshot string) string {
-	return strings.TrimSuffix(snapshot, path.Ext(snapshot)) + ".why.json"
-}
-
-// maxWhyBytes bounds a why file; a real one is a few hundred bytes.
-const maxWhyBytes = 16 << 10
-
-// WithEvidence fills in each alarm's clip and the features it was judged
-// on from the evidence directory: a clip is the snapshot's name with .mp4
-// or .avi, present once written; the features are in WhyName. A file
-// missing (not written yet, or removed by retention) leaves the field
-// empty; a why file that does not decode is reported as its own feature.
+// WithEvidence checks each alarm's evidence in the evidence directory: a
+// snapshot retention has removed is no longer offered, and the clip is
+// the snapshot's name with .mp4 or .avi, once written.
 func WithEvidence(events []Event, fsys fs.FS) []Event {
 	if fsys == nil {
 		return events
@@ -187,36 +175,6 @@ func WithEvidence(events []Event, fsys fs.FS) []Event {
 				break
 			}
 		}
-		if e.Why == nil {
-			out[i].Why = readWhy(fsys, WhyName(e.Snapshot))
-		}
 	}
 	return out
-}
-
-func readWhy(fsys fs.FS, name string) []Feature {
-	b, err := fs.ReadFile(fsys, name)
-	if errors.Is(err, fs.ErrNotExist) {
-		return nil
-	}
-	if err == nil && len(b) > maxWhyBytes {
-		err = fmt.Errorf("%d bytes, over %d", len(b), maxWhyBytes)
-	}
-	var why []Feature
-	if err == nil {
-		err = json.Unmarshal(b, &why)
-	}
-	if err != nil {
-		return []Feature{{Name: "Features", Value: fmt.Sprintf("not readable (%s: %v)", name, err)}}
-	}
-	return why
-}
-
-// EncodeWhy is the content of a why file.
-func EncodeWhy(why []Feature) ([]byte, error) {
-	b, err := json.Marshal(why)
-	if err != nil {
-		return nil, fmt.Errorf("encode alarm features: %w", err)
-	}
-	return b, nil
 }

@@ -104,29 +104,21 @@ func TestRecorderActiveFaults(t *testing.T) {
 }
 
 func TestWithEvidence(t *testing.T) {
-	why, err := EncodeWhy([]Feature{{Name: "Body area", Value: "0.21 m²"}})
-	require.NoError(t, err)
-	fsys := fstest.MapFS{
-		"a.jpg": {}, "a.mp4": {}, "a.why.json": {Data: why},
-		"b.jpg": {}, "b.avi": {},
-		"c.jpg": {}, "c.why.json": {Data: []byte("{")},
-	}
+	fsys := fstest.MapFS{"a.jpg": {}, "a.mp4": {}, "b.jpg": {}, "b.avi": {}, "c.jpg": {}, "d.mp4": {}}
 	in := []Event{
 		{ID: "a", Snapshot: "a.jpg"},
 		{ID: "b", Snapshot: "b.jpg"},
 		{ID: "c", Snapshot: "c.jpg"},
-		{ID: "gone", Snapshot: "gone.jpg"},
+		{ID: "gone", Snapshot: "d.jpg"},
 		{ID: "fault"},
 	}
 	out := WithEvidence(in, fsys)
 	assert.Equal(t, "a.mp4", out[0].Clip)
-	assert.Equal(t, []Feature{{Name: "Body area", Value: "0.21 m²"}}, out[0].Why)
 	assert.Equal(t, "b.avi", out[1].Clip)
-	assert.Nil(t, out[1].Why)
-	require.Len(t, out[2].Why, 1)
-	assert.Contains(t, out[2].Why[0].Value, "not readable (c.why.json")
+	assert.Equal(t, Event{ID: "c", Snapshot: "c.jpg"}, out[2], "no clip written yet")
 	assert.Empty(t, out[3].Snapshot, "a snapshot retention removed is not offered")
+	assert.Equal(t, "d.mp4", out[3].Clip, "its clip still is")
 	assert.Equal(t, Event{ID: "fault"}, out[4])
 	assert.Empty(t, in[0].Clip, "the input is not changed")
-	assert.Equal(t, "a.why.json", WhyName("a.jpg"))
+	assert.Empty(t, WithEvidence(nil, fsys))
 }
