@@ -614,7 +614,7 @@
         say(saveReply, "bad", "\u2716 Not saved: " + (j.error || "HTTP " + r.status));
         return;
       }
-      say(saveReply, "ok", "\u2714 Saved. The daemon has reloaded the calibration.");
+      say(saveReply, "ok", "\u2714 Saved. The daemon is reloading it; the camera uses it from its next frame.");
     } catch (e) {
       say(saveReply, "bad", "\u2716 Not sent: " + e.message);
     }
