@@ -99,10 +99,35 @@ func value(m *yaml.Node, key string) *yaml.Node {
 	return nil
 }
 
+// keep writes data to a new file named name, or name-2, name-3 … when
+// that is taken, and returns the name used: an earlier copy is never
+// written over.
+func keep(name string, data []byte, mode os.FileMode) (string, error) {
+	for i := 1; ; i++ {
+		p := name
+		if i > 1 {
+			p = fmt.Sprintf("%s-%d", name, i)
+		}
+		f, err := os.OpenFile(p, os.O_WRONLY|os.O_CREATE|os.O_EXCL, mode)
+		if errors.Is(err, os.ErrExist) && i < 1000 {
+			continue
+		}
+		if err != nil {
+			return "", err
+		}
+		if _, err := f.Write(data); err != nil {
+			f.Close()
+			return "", err
+		}
+		return p, f.Close()
+	}
+}
+
 // Replace writes data to path through a temporary file in the same
 // directory and a rename, keeping the file's mode. The file as it was is
-// kept beside it as PATH.prev-TIME (UTC, to the second), so that nothing
-// written by hand is lost; it returns that name.
+// kept beside it as PATH.prev-TIME (UTC, to the second; -2, -3 … added
+// for more in the same second), so that nothing written by hand is lost;
+// it returns that name.
 func Replace(path string, data []byte, now time.Time) (prev string, err error) {
 	old, err := os.ReadFile(path)
 	if err != nil {
@@ -112,8 +137,7 @@ func Replace(path string, data []byte, now time.Time) (prev string, err error) {
 	if err != nil {
 		return "", fmt.Errorf("replace %s: %w", path, err)
 	}
-	prev = path + ".prev-" + now.UTC().Format("20060102T150405Z")
-	if err := os.WriteFile(prev, old, st.Mode().Perm()); err != nil {
+	if prev, err = keep(path+".prev-"+now.UTC().Format("20060102T150405Z"), old, st.Mode().Perm()); err != nil {
 		return "", fmt.Errorf("keep the previous configuration: %w", err)
 	}
 	tmp, err := os.CreateTemp(filepath.Dir(path), "."+filepath.Base(path)+".new-*")

@@ -115,6 +115,19 @@ func TestReplaceKeepsThePrevious(t *testing.T) {
 	require.NoError(t, err)
 	assert.Empty(t, left, "no temporary file left")
 
+	// Twice more in the same second: no copy is written over.
+	prev2, err := Replace(p, []byte("newer\n"), at)
+	require.NoError(t, err)
+	prev3, err := Replace(p, []byte("newest\n"), at)
+	require.NoError(t, err)
+	assert.Equal(t, p+".prev-20261202T160509Z-2", prev2)
+	assert.Equal(t, p+".prev-20261202T160509Z-3", prev3)
+	for name, want := range map[string]string{prev: "old\n", prev2: "new\n", prev3: "newer\n", p: "newest\n"} {
+		b, err := os.ReadFile(name)
+		require.NoError(t, err)
+		assert.Equal(t, want, string(b), name)
+	}
+
 	_, err = Replace(filepath.Join(dir, "missing.yaml"), []byte("x"), at)
 	assert.ErrorContains(t, err, "missing.yaml")
 }
