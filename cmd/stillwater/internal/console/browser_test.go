@@ -85,6 +85,7 @@ func TestBrowserFrameShowsAndRefreshes(t *testing.T) {
 	assert.Equal(t, "Track 3: 6.20 m, 2.40 m ALARM", label)
 	assert.Equal(t, "0 0 640 360", bt.Eval[string](t, ctx, `document.querySelector("#cam-deck svg").getAttribute("viewBox")`))
 	assert.Equal(t, 1, bt.Eval[int](t, ctx, `document.querySelectorAll("#cam-deck svg polygon.zone").length`))
+	assert.Contains(t, bt.Eval[string](t, ctx, `document.querySelector("#cam-deck .tracks").innerText`), "4 small changes on the water ignored")
 	facts := bt.Eval[string](t, ctx, `document.querySelector("#cam-deck .facts").innerText`)
 	for _, want := range []string{"Watching", "12.5 frames a second", "0.1 s", "ARMED", "armed"} {
 		assert.Contains(t, facts, want)

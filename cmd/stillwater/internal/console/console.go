@@ -106,6 +106,10 @@ type Overlay struct {
 	Outline [][2]float64 `json:"outline"` // the water's edge, closed
 	Zones   []Zone       `json:"zones"`
 	Tracks  []Track      `json:"tracks"`
+	// Ignored counts the tracks not shown: changes on the water the
+	// detector does not take for a person (ripples, glints, small
+	// floating things).
+	Ignored int `json:"ignored"`
 }
 
 // Zone is an excluded area (a ladder, a fountain).

@@ -147,6 +147,7 @@ func (f *fakeBackend) Overlay(ctx context.Context, camera string) (Overlay, erro
 		Outline: fakeCorners,
 		Zones:   []Zone{{Name: "ladder", Pixels: [][2]float64{{480, 260}, {520, 260}, {515, 290}, {485, 290}}}},
 		Tracks:  []Track{{ID: 3, Box: [4]float64{300, 170, 40, 50}, At: [2]float64{320, 220}, X: 6.2, Y: 2.4, Alarm: true}},
+		Ignored: 4,
 	}, nil
 }
 

@@ -223,6 +223,7 @@
       items.push(el("li", { text: "Overlay unavailable: " + c.overlay_error }));
     }
     if (!items.length) items.push(el("li", { class: "empty", text: "No one tracked in the water." }));
+    if (ov && ov.ignored > 0) items.push(el("li", { class: "ignored", text: ov.ignored + (ov.ignored === 1 ? " small change" : " small changes") + " on the water ignored (ripples, glints, floating things)." }));
     v.tracks.replaceChildren(...items);
   }
 
