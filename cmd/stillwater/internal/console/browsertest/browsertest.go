@@ -31,7 +31,10 @@ const MaxScreenBytes = 150 << 10
 // Debian and others install it under.
 func executable() string {
 	if p := os.Getenv("STILLWATER_CHROMIUM"); p != "" {
-		return p
+		if q, err := exec.LookPath(p); err == nil {
+			return q
+		}
+		return ""
 	}
 	for _, name := range []string{"chromium", "chromium-browser", "google-chrome"} {
 		if p, err := exec.LookPath(name); err == nil {
@@ -48,7 +51,7 @@ func Start(t testing.TB, width, height int, timeout time.Duration) context.Conte
 	t.Helper()
 	exe := executable()
 	if exe == "" {
-		msg := "chromium not found: install it (deploy/setup installs Debian's chromium package) or set STILLWATER_CHROMIUM to its path"
+		msg := "chromium not found (on PATH as chromium, chromium-browser or google-chrome, or at STILLWATER_CHROMIUM): install it (deploy/setup installs Debian's chromium package) or set STILLWATER_CHROMIUM to its path"
 		if os.Getenv("STILLWATER_REQUIRE_BROWSER") == "1" {
 			t.Fatal(msg + "; STILLWATER_REQUIRE_BROWSER=1 makes this a failure")
 		}
