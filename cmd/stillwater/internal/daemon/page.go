@@ -112,6 +112,20 @@ func (s recordingSink) Send(ctx context.Context, m pipeline.Message) error {
 	return s.next.Send(ctx, m)
 }
 
+// live is the camera of id when it delivers frames: a camera the watchdog
+// counts as lost is not asked for a view, which would wait out its frame
+// timeout on every look of the page.
+func (p *pageBackend) live(id string) (*watch.Camera, error) {
+	w, err := p.camera(id)
+	if err != nil {
+		return nil, err
+	}
+	if _, _, lost := w.Health(p.now()); lost {
+		return nil, fmt.Errorf("camera %s: %w", id, watch.ErrNoFrame)
+	}
+	return w, nil
+}
+
 func (p *pageBackend) camera(id string) (*watch.Camera, error) {
 	for _, w := range p.watches {
 		if w.Cam.ID == id {
@@ -172,7 +186,7 @@ func (p *pageBackend) fps(id string, now time.Time, frames int64) float64 {
 
 // Overlay implements console.Backend.
 func (p *pageBackend) Overlay(ctx context.Context, id string) (console.Overlay, error) {
-	w, err := p.camera(id)
+	w, err := p.live(id)
 	if err != nil {
 		return console.Overlay{}, err
 	}
@@ -189,7 +203,7 @@ func (p *pageBackend) Overlay(ctx context.Context, id string) (console.Overlay, 
 
 // Frame implements console.Backend.
 func (p *pageBackend) Frame(ctx context.Context, id string) (console.Frame, error) {
-	w, err := p.camera(id)
+	w, err := p.live(id)
 	if err != nil {
 		return console.Frame{}, err
 	}
