@@ -19,6 +19,7 @@ import (
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/cmd/stillwater/internal/console"
 	"stillwater/cmd/stillwater/internal/pipeline"
+	"stillwater/cmd/stillwater/internal/watch"
 )
 
 func TestCalibrationErrorPointsAtWhatIsWrong(t *testing.T) {
@@ -123,4 +124,40 @@ func TestRecordingSinkPassesEverythingOn(t *testing.T) {
 	require.NoError(t, s.Send(context.Background(), pipeline.Message{Camera: "a", Kind: alert.KindTarget, Data: []byte("{")}))
 	assert.Equal(t, []string{alert.KindFault, alert.KindTarget}, passed, "a message the page cannot read still goes out")
 	assert.Len(t, rec.Events(10), 1)
+}
+
+// A camera the watchdog counts as lost is shown as lost, and the page
+// is answered at once instead of waiting for a frame.
+func TestPageOnALostCamera(t *testing.T) {
+	t0 := time.Date(2026, 12, 2, 15, 0, 0, 0, time.UTC)
+	at := t0
+	now := func() time.Time { return at }
+	cfg := reloadFixture(t)
+	arm, err := arming.New(arming.Config{Cameras: []string{"north", "south"}}, t0)
+	require.NoError(t, err)
+	log := slog.New(slog.NewTextHandler(io.Discard, nil))
+	p := newPage(cfg, Deps{}, arm, now, log)
+	for _, c := range cfg.Cameras {
+		p.watches = append(p.watches, watch.New(c, nil, func(time.Time) bool { return true }, now, log, nil, 0, "test", watch.EvidenceSettings{}))
+	}
+	st := p.Cameras(context.Background())
+	require.Len(t, st, 2)
+	assert.Equal(t, console.HealthStarting, st[0].Health, "no frame yet, within the frame timeout")
+	assert.Equal(t, -1.0, st[0].FrameAge)
+	assert.True(t, st[0].Armed)
+
+	at = t0.Add(time.Minute) // past any frame timeout, still no frame
+	st = p.Cameras(context.Background())
+	assert.Equal(t, console.HealthLost, st[0].Health)
+	_, err = p.Overlay(context.Background(), "north")
+	assert.ErrorIs(t, err, watch.ErrNoFrame)
+	_, err = p.Frame(context.Background(), "south")
+	assert.ErrorIs(t, err, watch.ErrNoFrame)
+	_, err = p.Overlay(context.Background(), "east")
+	assert.ErrorIs(t, err, console.ErrNoCamera)
+
+	err = p.SaveCalibration(context.Background(), "north", console.CalibrationInput{})
+	var rf *console.Refusal
+	require.ErrorAs(t, err, &rf, "a daemon not started from a file it can rewrite refuses a save")
+	assert.Equal(t, http.StatusConflict, rf.Status)
 }
