@@ -58,6 +58,14 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	hup := make(chan os.Signal, 1)
 	signal.Notify(hup, syscall.SIGHUP)
 	defer signal.Stop(hup)
+	// A calibration saved from the page reloads as SIGHUP does; a reload
+	// already pending reads the new file too.
+	reread := func() {
+		select {
+		case hup <- syscall.SIGHUP:
+		default:
+		}
+	}
 	reload := make(chan config.Config, 1)
 	go func() {
 		for {
@@ -86,7 +94,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		defer stopLibLog()
 	}
 	// The error is printed by main, outside the log: hide secrets there too.
-	return redact.Of(log).Err(daemon.Serve(ctx, cfg, daemon.Deps{Log: log, Reload: reload}))
+	return redact.Of(log).Err(daemon.Serve(ctx, cfg, daemon.Deps{Log: log, Reload: reload, ConfigFile: *path, LoadConfig: load, Reread: reread}))
 }
 
 func newLogger(c config.LogConfig, w io.Writer) *slog.Logger {

@@ -47,6 +47,12 @@ type Deps struct {
 	// Calibration, zones, detection settings and schedules take effect
 	// between frames; anything else needs a restart and is logged.
 	Reload <-chan config.Config
+	// ConfigFile is the file the configuration came from, LoadConfig
+	// reads and validates it as a reload does, and Reread reloads it as
+	// SIGHUP does: with all three the page may save a calibration.
+	ConfigFile string
+	LoadConfig func() (config.Config, error)
+	Reread     func()
 }
 
 // Serve runs the daemon until ctx ends or every camera source has ended.
@@ -108,7 +114,8 @@ func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 	metrics.RegisterBusMetrics(reg, bus, now)
 
 	busOut := &BusSink{Pub: pub, Met: met}
-	bs := redactSink{next: busOut, red: redact.Of(log)}
+	page := newPage(cfg, d, bus.Arming, now, log)
+	bs := page.sink(redactSink{next: busOut, red: redact.Of(log)})
 	for _, cam := range cfg.Cameras {
 		id := cam.ID
 		armed := func(t time.Time) bool { a, _ := bus.Arming.Armed(id, t); return a }
@@ -129,6 +136,9 @@ func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 	mux.HandleFunc("/healthz", func(w http.ResponseWriter, _ *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.Handle("/control/", bus.Control.Handler())
 	mux.Handle("GET /cameras/{id}/latest.jpg", pictures.wrap(watch.LatestHandler(watches)))
+	page.watches = watches // built since
+	page.ctl.set(acc.control)
+	mux.Handle("/", page.handler(pictures, func() { met.Refused.WithLabelValues("http").Inc() }))
 	mux.HandleFunc("/readyz", func(w http.ResponseWriter, _ *http.Request) {
 		problems := append(readiness(now(), watches, nc.IsConnected()), bus.Problems(now())...)
 		if len(problems) > 0 {
@@ -155,6 +165,7 @@ func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 		setSchedules: func(sch map[string]*arming.Schedule) error { return bus.Arming.SetSchedules(nil, sch, now()) },
 		setAccess: func(a access) error {
 			pictures.set(a)
+			page.ctl.set(a.control)
 			return bus.Control.SetAuth(a.control, a.tokenName, a.trustNATS)
 		},
 		setMaxDisarm: func(d time.Duration) ([]string, error) { return bus.Arming.SetMaxDisarm(d, now()) },

@@ -53,6 +53,7 @@ type evidenceJob struct {
 	base    string // file name without extension, in the evidence directory
 	caption string
 	at      time.Time // when the frame that starts the alarm was taken
+	track   int
 }
 
 // planEvidence names the evidence of an alarm that starts at this frame and
@@ -67,7 +68,7 @@ func (w *Camera) planEvidence(r vision.Result, o alert.Observation) string {
 	stamp = strings.ReplaceAll(stamp, ".", "")
 	base := fmt.Sprintf("%s-%s-track%d", w.Cam.ID, stamp, o.Track)
 	caption := fmt.Sprintf("%s  %s  track %d at %.2f m, %.2f m", w.Cam.ID, w.epoch.Add(r.Media).UTC().Format(time.RFC3339), o.Track, o.X, o.Y)
-	w.pendingEvidence = append(w.pendingEvidence, evidenceJob{base: base, caption: caption, at: w.epoch.Add(r.Media)})
+	w.pendingEvidence = append(w.pendingEvidence, evidenceJob{base: base, caption: caption, at: w.epoch.Add(r.Media), track: o.Track})
 	return filepath.Join("evidence", base+".jpg")
 }
 
@@ -82,6 +83,7 @@ func (w *Camera) keepEvidence(vc *vision.Camera, proc *pipeline.Processor) {
 		if err := vc.SaveSnapshot(snap, annotation(w.Cam, proc, j.caption)); err != nil {
 			w.log.Error("evidence snapshot not kept", "snapshot", filepath.Base(snap), "err", err)
 		}
+		w.keepWhy(j, proc)
 		if w.rec != nil {
 			if p, ext := w.rec.Clip(filepath.Join(w.evidence.dir, j.base+".mp4"), j.at, w.evidence.preRoll, w.evidence.postRoll, w.clipWritten); ext {
 				w.log.Info("evidence clip extended", "clip", filepath.Base(p))

@@ -56,6 +56,8 @@ type Camera struct {
 	// are published (capture goroutine only).
 	pendingEvidence []evidenceJob
 	snapReq         chan chan snapshot // HTTP asks the capture goroutine for a frame
+	viewReq         chan viewRequest   // the page asks it for the frame and tracks (page.go)
+	why             whyBook            // the latest alarms' features, for the page (page.go)
 	refs            *referenceKeeper   // the empty-pool reference (reference.go)
 }
 
@@ -66,7 +68,7 @@ func New(cam config.CameraConfig, out pipeline.Sink, armed func(time.Time) bool,
 	w := &Camera{
 		Cam: cam, out: out, armed: armed, now: now, log: log.With("camera", cam.ID), met: met,
 		heartbeat: heartbeat, version: version, epoch: now(), Reload: make(chan config.CameraConfig, 1),
-		evidence: ev, snapReq: make(chan chan snapshot),
+		evidence: ev, snapReq: make(chan chan snapshot), viewReq: make(chan viewRequest),
 	}
 	w.lastFrame.Store(w.epoch.UnixNano())
 	w.Cam = config.DetectionCamera(cam)
@@ -341,6 +343,7 @@ func (w *Camera) frames(ctx context.Context, vc *vision.Camera, st *captureState
 		}
 		w.takeReload(proc, st)
 		w.answerSnapshot(vc, proc)
+		w.answerView(vc, proc, w.Nframes.Load())
 		t0 := time.Now()
 		r, err := vc.Next(st.hold)
 		w.countStats(vc, st)
