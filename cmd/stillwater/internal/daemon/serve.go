@@ -78,7 +78,12 @@ func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	version := buildVersion()
 	met := metrics.New(reg, version)
-	log.Info("stillwater starting", "version", version, "cameras", len(cfg.Cameras))
+	log.Info("stillwater starting", "version", version, "cameras", len(cfg.Cameras), "opencv_threads", cfg.OpenCVThreads)
+	// OpenCV's worker pool is the whole process's: sized once, before any
+	// camera opens.
+	if err := cfg.ApplyOpenCVThreads(); err != nil {
+		return err
+	}
 
 	sch, err := cfg.Schedules()
 	if err != nil {
