@@ -193,7 +193,7 @@ func TestFamilyRangesCovered(t *testing.T) {
 	}
 	for _, tc := range []struct {
 		name   string
-		lo, hi float64 // the range the brief and common practice give
+		lo, hi float64 // the range the family is built to cover (common practice for home pools and cameras)
 		reach  float64 // fraction of the range each end must be reached within
 	}{
 		{"camera height m", 2.5, 6, 0.05},
