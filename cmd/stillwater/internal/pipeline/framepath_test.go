@@ -24,21 +24,10 @@ import (
 // streams.
 var framePathSizes = []image.Point{{640, 360}, {1280, 720}, {1920, 1080}}
 
-// framePathClip renders (once, into the render cache) the family scene
-// stillwater bench plays, seed 34 (daylight, a child in the water from
-// about 6 s), at size, 15 fps H.264, 9 s: the clip the vision stage
-// benchmark uses, so the two share the cache.
+// framePathClip is synth.StageClip, failing tb when it cannot be made.
 func framePathClip(tb testing.TB, size image.Point) (string, synth.Truth) {
 	tb.Helper()
-	s, err := synth.Sized(synth.FamilyScene(34, synth.Intruder), size.X, size.Y, 15, 9, "h264")
-	if err != nil {
-		tb.Fatal(err)
-	}
-	dir, err := synth.CacheDir()
-	if err != nil {
-		tb.Fatal(err)
-	}
-	video, _, truth, err := synth.Cached(context.Background(), s, dir)
+	video, truth, err := synth.StageClip(context.Background(), size)
 	if err != nil {
 		tb.Fatal(err)
 	}
