@@ -1,6 +1,7 @@
 #include "shim.h"
 
 #include <dlfcn.h>
+#include <malloc.h>
 #include <unistd.h>
 
 #include <cstdarg>
@@ -186,3 +187,15 @@ void sw_cap_close(SwCapture c) { delete static_cast<cv::VideoCapture*>(c); }
 void sw_set_threads(int n) { cv::setNumThreads(n); }
 
 int sw_get_threads(void) { return cv::getNumThreads(); }
+
+int sw_malloc_arenas(int n) { return mallopt(M_ARENA_MAX, n); }
+
+void sw_malloc_stats(unsigned long long* inuse, unsigned long long* free) {
+    struct mallinfo2 mi = mallinfo2();
+    // uordblks: bytes in chunks handed out (all arenas); fordblks: free
+    // bytes kept in them; hblkhd: large blocks mapped on their own.
+    *inuse = mi.uordblks + mi.hblkhd;
+    *free = mi.fordblks;
+}
+
+int sw_malloc_trim(void) { return malloc_trim(0); }

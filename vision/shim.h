@@ -37,6 +37,16 @@ void sw_cap_close(SwCapture c);
 void sw_set_threads(int n);
 int sw_get_threads(void);
 
+// The C allocator (glibc malloc) that OpenCV and FFmpeg use.
+// sw_malloc_arenas caps the number of arenas it may create (mallopt
+// M_ARENA_MAX); returns 1 on success. sw_malloc_stats fills the bytes in
+// use and free inside its heaps (mallinfo2). sw_malloc_trim gives free
+// pages of every arena back to the system (malloc_trim); returns 1 when
+// some memory was released.
+int sw_malloc_arenas(int n);
+void sw_malloc_stats(unsigned long long* inuse, unsigned long long* free);
+int sw_malloc_trim(void);
+
 
 // The rectified pool's mean–variance model (see meanvar.go). Every image
 // argument is a cv::Mat* of the grid's size: frames CV_8UC3, the short mean,

@@ -139,17 +139,33 @@ type Result struct {
 	LatencyP99ms   float64 `json:"latency_p99_ms"`
 	LatencyMaxms   float64 `json:"latency_max_ms"`
 
-	CPUSelfS          float64 `json:"cpu_daemon_s"`
-	CPUChildrenS      float64 `json:"cpu_children_s"`
-	Cores             float64 `json:"cores"`
-	CPUPerCameraSecS  float64 `json:"cpu_s_per_camera_s"`
-	DaemonMsPerFrame  float64 `json:"daemon_cpu_ms_per_frame"`
-	RSSBaselineMB     float64 `json:"rss_before_mb"`
-	RSSPeakMB         float64 `json:"rss_peak_mb"`
-	RSSFinalMB        float64 `json:"rss_final_mb"`
-	RSSWarmMB         float64 `json:"rss_after_warmup_mb"`
-	RSSPerCameraMB    float64 `json:"rss_per_camera_mb"`
-	PssChildrenMB     float64 `json:"pss_children_mb"`
+	CPUSelfS         float64 `json:"cpu_daemon_s"`
+	CPUChildrenS     float64 `json:"cpu_children_s"`
+	Cores            float64 `json:"cores"`
+	CPUPerCameraSecS float64 `json:"cpu_s_per_camera_s"`
+	DaemonMsPerFrame float64 `json:"daemon_cpu_ms_per_frame"`
+	RSSBaselineMB    float64 `json:"rss_before_mb"`
+	RSSPeakMB        float64 `json:"rss_peak_mb"`
+	RSSFinalMB       float64 `json:"rss_final_mb"`
+	RSSWarmMB        float64 `json:"rss_after_warmup_mb"`
+	RSSPerCameraMB   float64 `json:"rss_per_camera_mb"`
+	PssChildrenMB    float64 `json:"pss_children_mb"`
+	// RSSQuartersMB is the resident size at each quarter of the window
+	// (after 25, 50, 75 and 100 %), to tell growth from a plateau.
+	RSSQuartersMB [4]float64 `json:"rss_quarters_mb"`
+	// Go's own share: heap in use and all it holds from the system, at
+	// the warm-up and at the end; the rest of the resident size is C's
+	// (OpenCV, FFmpeg) and the binary's.
+	GoHeapWarmMB  float64 `json:"go_heap_after_warmup_mb"`
+	GoHeapFinalMB float64 `json:"go_heap_final_mb"`
+	GoSysFinalMB  float64 `json:"go_sys_final_mb"`
+	// The C allocator's (OpenCV's and FFmpeg's) bytes in use and free
+	// inside its arenas, at the warm-up and at the end: in use growing is
+	// a leak, free growing is the heap fragmenting.
+	CInUseWarmMB      float64 `json:"c_heap_in_use_after_warmup_mb"`
+	CInUseFinalMB     float64 `json:"c_heap_in_use_final_mb"`
+	CFreeWarmMB       float64 `json:"c_heap_free_after_warmup_mb"`
+	CFreeFinalMB      float64 `json:"c_heap_free_final_mb"`
 	PeakIncludesSetup bool    `json:"rss_peak_includes_setup,omitempty"`
 
 	Faults map[string]int `json:"faults"`
@@ -423,12 +439,19 @@ func benchDaemon(ctx context.Context, o Options, cfg config.Config, res *Result,
 			warmed = true
 			at0 = takeSnap(reg, kids)
 			res.RSSWarmMB = pipeline.Round3(float64(procStatus("self", "VmRSS")) / 1024)
+			res.GoHeapWarmMB, _ = goMemMB()
+			res.CInUseWarmMB, res.CFreeWarmMB = cHeapMB()
 			mu.Lock()
 			counting = at0.at
 			mu.Unlock()
 			continue
 		}
 		if warmed {
+			for q := 0; q < 3; q++ {
+				if res.RSSQuartersMB[q] == 0 && time.Since(warm) >= time.Duration(q+1)*end.Sub(warm)/4 {
+					res.RSSQuartersMB[q] = pipeline.Round3(float64(procStatus("self", "VmRSS")) / 1024)
+				}
+			}
 			ages, _ := metrics.Values(reg, "stillwater_frame_age_seconds", "camera")
 			for id, a := range ages {
 				ageMax[id] = math.Max(ageMax[id], a)
@@ -440,6 +463,9 @@ func benchDaemon(ctx context.Context, o Options, cfg config.Config, res *Result,
 	at1 := takeSnap(reg, kids)
 	res.RSSPeakMB = float64(procStatus("self", "VmHWM")) / 1024
 	res.RSSFinalMB = float64(procStatus("self", "VmRSS")) / 1024
+	res.RSSQuartersMB[3] = pipeline.Round3(res.RSSFinalMB)
+	res.GoHeapFinalMB, res.GoSysFinalMB = goMemMB()
+	res.CInUseFinalMB, res.CFreeFinalMB = cHeapMB()
 	for _, pid := range childPIDs() {
 		res.PssChildrenMB += float64(procPss(pid)) / 1024
 	}
@@ -603,6 +629,10 @@ func (r Result) Print(w io.Writer) {
 	}
 	fmt.Fprintf(tw, "memory\tpeak %.0f MB%s, final %.0f MB = %.0f MB per camera (%.0f MB before the cameras started, %.0f MB after the warm-up); ffmpeg children %.0f MB proportional\n",
 		r.RSSPeakMB, peak, r.RSSFinalMB, r.RSSPerCameraMB, r.RSSBaselineMB, r.RSSWarmMB, r.PssChildrenMB)
+	fmt.Fprintf(tw, "memory over the window\t%.0f, %.0f, %.0f, %.0f MB at each quarter; Go heap in use %.0f MB after the warm-up, %.0f MB at the end (Go holds %.0f MB from the system)\n",
+		r.RSSQuartersMB[0], r.RSSQuartersMB[1], r.RSSQuartersMB[2], r.RSSQuartersMB[3], r.GoHeapWarmMB, r.GoHeapFinalMB, r.GoSysFinalMB)
+	fmt.Fprintf(tw, "C heap (OpenCV, FFmpeg)\t%.0f MB in use and %.0f MB free inside it after the warm-up; %.0f MB in use and %.0f MB free at the end\n",
+		r.CInUseWarmMB, r.CFreeWarmMB, r.CInUseFinalMB, r.CFreeFinalMB)
 	fmt.Fprintf(tw, "faults raised\t%s\n", faultList(r.Faults))
 	if r.DecodeMsPerFrame > 0 {
 		fmt.Fprintf(tw, "same clip alone\tOpenCV decode %.2f ms/frame, ffmpeg decode (1 thread) %.2f ms/frame, plain OpenCV loop %.2f ms/frame (CPU, median of runs over %d frames)\n",
@@ -733,6 +763,19 @@ func procCPU(pid int) (float64, bool) {
 		return 0, false
 	}
 	return (u + s) / clockTicks, true
+}
+
+// goMemMB returns Go's heap in use and all Go holds from the system, in MB.
+func goMemMB() (heap, sys float64) {
+	var m runtime.MemStats
+	runtime.ReadMemStats(&m)
+	return pipeline.Round3(float64(m.HeapInuse) / (1 << 20)), pipeline.Round3(float64(m.Sys) / (1 << 20))
+}
+
+// cHeapMB returns the C allocator's bytes in use and free, in MB.
+func cHeapMB() (inUse, free float64) {
+	h := vision.CHeapStats()
+	return pipeline.Round3(float64(h.InUse) / (1 << 20)), pipeline.Round3(float64(h.Free) / (1 << 20))
 }
 
 // procStatus reads a kB field (VmRSS, VmHWM) of /proc/PID/status; 0 when

@@ -5,6 +5,7 @@ import (
 	"io"
 	"net"
 	"net/http"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -23,6 +24,7 @@ func TestPartsStopWithTheirContext(t *testing.T) {
 	mux.HandleFunc("/healthz", func(w http.ResponseWriter, _ *http.Request) { io.WriteString(w, "ok\n") })
 	url := "http://" + ln.Addr().String() + "/healthz"
 	reload := make(chan config.Config)
+	var trims atomic.Int32
 	parts := []struct {
 		name  string
 		run   func(context.Context) error
@@ -46,6 +48,18 @@ func TestPartsStopWithTheirContext(t *testing.T) {
 		{name: "backlog relay", run: backlogRelay{events: make(chan backlogEvent)}.Run},
 		{name: "reloader", run: func(ctx context.Context) error { return (&reloader{}).Run(ctx, reload) }},
 		{name: "no cameras", run: cameraSet{grace: time.Second}.Run},
+		{
+			name: "heap trimmer",
+			run:  heapTrimmer{every: 5 * time.Millisecond, trim: func() bool { trims.Add(1); return true }}.Run,
+			alive: func(t *testing.T) {
+				assert.Positive(t, trims.Load(), "trimmed on its timer")
+			},
+			dead: func(t *testing.T) {
+				n := trims.Load()
+				time.Sleep(30 * time.Millisecond)
+				assert.Equal(t, n, trims.Load(), "no trimming once Run has returned")
+			},
+		},
 	}
 	for _, p := range parts {
 		t.Run(p.name, func(t *testing.T) {

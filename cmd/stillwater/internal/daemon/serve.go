@@ -29,6 +29,7 @@ import (
 	"stillwater/cmd/stillwater/internal/pipeline"
 	"stillwater/cmd/stillwater/internal/redact"
 	"stillwater/cmd/stillwater/internal/watch"
+	"stillwater/vision"
 )
 
 // safetyNotice is logged at start-up and printed by the README.
@@ -117,6 +118,7 @@ func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 		busURL = bus.Embedded.URL()
 	}
 	metrics.RegisterBusMetrics(reg, bus, now)
+	metrics.RegisterCHeap(reg, vision.CHeapStats)
 
 	busOut := &BusSink{Pub: pub, Met: met}
 	page := newPage(cfg, d, bus.Arming, now, log)
@@ -212,6 +214,8 @@ func Serve(ctx context.Context, cfg config.Config, d Deps) error {
 		helpers.Go(func() error { return backlogRelay{events: backlog, watches: watches}.Run(capCtx) })
 		// A new configuration on SIGHUP, applied between frames.
 		helpers.Go(func() error { return rl.Run(capCtx, d.Reload) })
+		// The C heap's free pages, given back while the cameras run.
+		helpers.Go(func() error { return heapTrimmer{every: cHeapTrimEvery, trim: vision.TrimCHeap}.Run(capCtx) })
 		// The cameras; an abandoned one can no longer publish.
 		cameraSet{watches: watches, log: log, grace: CameraStopWait, onAbandon: func([]string) { busOut.stop() }}.Run(ctx)
 		stopCapture()

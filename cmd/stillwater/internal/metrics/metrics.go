@@ -10,6 +10,7 @@ import (
 
 	"stillwater/alert/bus"
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/vision"
 )
 
 // Metrics are the daemon's own collectors, registered on the registry
@@ -293,5 +294,18 @@ func RegisterBusMetrics(reg prometheus.Registerer, b *config.BusParts, now func(
 			stats(func(s bus.Stats) float64 { return float64(s.Rejected) })),
 		fault("stream", faultHelp, func() bool { return pub.StreamFault() != nil }),
 		fault("stalled", faultHelp, func() bool { _, st := b.Stalled(now()); return st }),
+	)
+}
+
+// RegisterCHeap registers the C allocator's bytes (OpenCV's Mats,
+// FFmpeg's decoders), read at scrape time: state "in_use" growing is a
+// leak, "free" growing is memory held back from the system.
+func RegisterCHeap(reg prometheus.Registerer, stats func() vision.CHeap) {
+	help := "Bytes of the C heap (OpenCV, FFmpeg) by state: in_use, or free inside its arenas."
+	reg.MustRegister(
+		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_c_heap_bytes", Help: help, ConstLabels: prometheus.Labels{"state": "in_use"}},
+			func() float64 { return float64(stats().InUse) }),
+		prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "stillwater_c_heap_bytes", Help: help, ConstLabels: prometheus.Labels{"state": "free"}},
+			func() float64 { return float64(stats().Free) }),
 	)
 }
