@@ -188,7 +188,9 @@ void sw_set_threads(int n) { cv::setNumThreads(n); }
 
 int sw_get_threads(void) { return cv::getNumThreads(); }
 
-int sw_malloc_arenas(int n) { return mallopt(M_ARENA_MAX, n); }
+int sw_malloc_arenas(int n, int mmapThreshold) {
+    return mallopt(M_ARENA_MAX, n) == 1 && mallopt(M_MMAP_THRESHOLD, mmapThreshold) == 1 ? 1 : 0;
+}
 
 void sw_malloc_stats(unsigned long long* inuse, unsigned long long* free) {
     struct mallinfo2 mi = mallinfo2();

@@ -39,11 +39,13 @@ int sw_get_threads(void);
 
 // The C allocator (glibc malloc) that OpenCV and FFmpeg use.
 // sw_malloc_arenas caps the number of arenas it may create (mallopt
-// M_ARENA_MAX); returns 1 on success. sw_malloc_stats fills the bytes in
+// M_ARENA_MAX) and fixes the size from which blocks are mapped on their
+// own (M_MMAP_THRESHOLD, which also stops glibc raising it as large
+// blocks are freed); returns 1 on success. sw_malloc_stats fills the bytes in
 // use and free inside its heaps (mallinfo2). sw_malloc_trim gives free
 // pages of every arena back to the system (malloc_trim); returns 1 when
 // some memory was released.
-int sw_malloc_arenas(int n);
+int sw_malloc_arenas(int n, int mmapThreshold);
 void sw_malloc_stats(unsigned long long* inuse, unsigned long long* free);
 int sw_malloc_trim(void);
 
