@@ -119,16 +119,21 @@ func TestJudgeOwnTrailOnTheDeck(t *testing.T) {
 // two targets at once, one of them on the floor 0.7 m away. The shadow
 // only darkens the water and keeps its chromaticity; the body has colours
 // of its own. The feature medians are those measured on the development
-// set's H4 at 26.8 s (body: chroma 6.9, half area 0.12 m²; floor shadow:
-// chroma 1.5, half area 0.058 m²).
+// set's H4 at 26.8 s (body: chroma 6.9; floor shadow: chroma 1.5) and on
+// the tuning scene intruder/7 at 8.5 s (a child getting in, seen as two
+// tracks with chroma 1.1 and 0.4: when one waited for the other, the
+// first alert came 2.1 s after entry instead of at once).
 func TestJudgeShadowBesideAnUnraisedBody(t *testing.T) {
 	child := body()
 	child.Chroma, child.Half, child.Water = 6.9, 0.12, 18.5
 	shadow := body()
 	shadow.Chroma, shadow.Half, shadow.Water, shadow.Tint = 1.5, 0.058, 19, 13.8
 	grey := func(f vision.Features) vision.Features { f.Water = 1; return f }
-	faint := shadow
+	faint := child
 	faint.Score = 20
+	enteringA, enteringB := body(), body()
+	enteringA.Chroma, enteringA.Water, enteringA.Half = 1.1, 12.7, 0.035
+	enteringB.Chroma, enteringB.Water, enteringB.Half = 0.4, 12.7, 0.044
 	cases := []struct {
 		name      string
 		companion float64
@@ -139,8 +144,9 @@ func TestJudgeShadowBesideAnUnraisedBody(t *testing.T) {
 		{"the shadow 0.7 m from the child waits", 2.5, child, shadow, [2]float64{5.41, 1.93}, true, false},
 		{"the same, the shadow's track older", 2.5, shadow, child, [2]float64{5.41, 1.93}, false, true},
 		{"3 m apart: two bodies", 2.5, child, shadow, [2]float64{5, 5.5}, true, true},
-		{"no colour to tell by: the larger at half contrast", 2.5, grey(child), grey(shadow), [2]float64{5.41, 1.93}, true, false},
-		{"a rival that cannot be a body holds nothing back", 2.5, faint, child, [2]float64{5.41, 1.93}, false, true},
+		{"no colour in the picture: neither waits", 2.5, grey(child), grey(shadow), [2]float64{5.41, 1.93}, true, true},
+		{"neither has colours of its own: neither waits", 2.5, enteringA, enteringB, [2]float64{5.6, 2.5}, true, true},
+		{"a coloured rival that cannot be a body holds nothing back", 2.5, faint, shadow, [2]float64{5.41, 1.93}, false, true},
 		{"rule off", 0, child, shadow, [2]float64{5.41, 1.93}, true, true},
 	}
 	for _, c := range cases {
