@@ -60,11 +60,13 @@ type TrackerConfig struct {
 	// selects 300 ms.
 	RunGap time.Duration
 	// Drift is how fast, plane units per second, a track's predicted
-	// position loses its worth while the track is not seen: where tracks
-	// compete for a detection, each pair is ranked by its distance plus
-	// Drift times the time the track has gone unseen, so a track seen a
-	// moment ago keeps its object before one that was last seen there a
-	// second ago. The gate is unchanged. Zero ranks by distance alone.
+	// position loses its worth once its run has ended (unseen for longer
+	// than RunGap): where tracks compete for a detection, each pair is
+	// ranked by its distance plus Drift times the time unseen beyond
+	// RunGap, so a track in its run keeps its object before one that was
+	// last seen there a second ago. Tracks within their runs, as a body
+	// seen in flickering pieces is, rank by distance alone, and the gate is
+	// unchanged. Zero ranks every pair by distance alone.
 	Drift float64
 }
 
@@ -101,7 +103,7 @@ func (t *Tracker[F]) Update(now time.Duration, dets []Detection[F]) []Track[F] {
 	groups := mergeDetections(dets, t.cfg.MergeRadius)
 	type pair struct {
 		ti, gi int
-		rank   float64 // distance, plus Drift × time unseen
+		rank   float64 // distance, plus Drift × time unseen beyond RunGap
 	}
 	var pairs []pair
 	for ti, tr := range t.tracks {
@@ -110,7 +112,7 @@ func (t *Tracker[F]) Update(now time.Duration, dets []Detection[F]) []Track[F] {
 		for gi, g := range groups {
 			d := math.Hypot(g.X-px, g.Y-py)
 			if d <= t.cfg.Gate {
-				pairs = append(pairs, pair{ti, gi, d + t.cfg.Drift*dt})
+				pairs = append(pairs, pair{ti, gi, d + t.cfg.Drift*math.Max(0, dt-t.cfg.RunGap.Seconds())})
 			}
 		}
 	}
