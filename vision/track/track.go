@@ -59,6 +59,15 @@ type TrackerConfig struct {
 	// RunGap is the longest gap within a run (Track.RunStart); zero
 	// selects 300 ms.
 	RunGap time.Duration
+	// Drift is how fast, plane units per second, a track's predicted
+	// position loses its worth once its run has ended (unseen for longer
+	// than RunGap): where tracks compete for a detection, each pair is
+	// ranked by its distance plus Drift times the time unseen beyond
+	// RunGap, so a track in its run keeps its object before one that was
+	// last seen there a second ago. Tracks within their runs, as a body
+	// seen in flickering pieces is, rank by distance alone, and the gate is
+	// unchanged. Zero ranks every pair by distance alone.
+	Drift float64
 }
 
 // Tracker associates detections across frames by nearest neighbour within
@@ -94,7 +103,7 @@ func (t *Tracker[F]) Update(now time.Duration, dets []Detection[F]) []Track[F] {
 	groups := mergeDetections(dets, t.cfg.MergeRadius)
 	type pair struct {
 		ti, gi int
-		d      float64
+		rank   float64 // distance, plus Drift × time unseen beyond RunGap
 	}
 	var pairs []pair
 	for ti, tr := range t.tracks {
@@ -103,11 +112,11 @@ func (t *Tracker[F]) Update(now time.Duration, dets []Detection[F]) []Track[F] {
 		for gi, g := range groups {
 			d := math.Hypot(g.X-px, g.Y-py)
 			if d <= t.cfg.Gate {
-				pairs = append(pairs, pair{ti, gi, d})
+				pairs = append(pairs, pair{ti, gi, d + t.cfg.Drift*math.Max(0, dt-t.cfg.RunGap.Seconds())})
 			}
 		}
 	}
-	sort.Slice(pairs, func(i, j int) bool { return pairs[i].d < pairs[j].d })
+	sort.Slice(pairs, func(i, j int) bool { return pairs[i].rank < pairs[j].rank })
 	usedT := make([]bool, len(t.tracks))
 	usedG := make([]bool, len(groups))
 	for _, p := range pairs {

@@ -75,3 +75,47 @@ func TestTrackerReset(t *testing.T) {
 	require.Len(t, got, 1)
 	assert.Equal(t, 2, got[0].ID)
 }
+
+// TestTrackerUnseenTrackYields: a child swimming at 0.5 m/s passes the spot
+// where a stale track (a blob last seen there 0.8 s before, beyond its
+// 0.3 s run gap) still waits to be cleared. Ranked by distance alone, the
+// stale track takes the child's detection and the child's own track is
+// lost; with the time unseen beyond the run counted at Drift, the child's
+// track keeps it. A track still in its run (seen 0.2 s or a frame ago)
+// competes by distance alone, as before. The case is the development
+// set's H4 at 23.8 s, where a raised child's track lost its body this way
+// to a track last seen 0.9 s earlier.
+func TestTrackerUnseenTrackYields(t *testing.T) {
+	cases := []struct {
+		name     string
+		drift    float64
+		lastSeen int // last frame (of 0–7, 0.1 s apart) with the blob at (5, 3.55)
+		want     int // track that takes the detection at (5, 3.57) in frame 8
+	}{
+		{"distance alone: the stale track takes it", 0, 0, 2},
+		{"drift 0.5 m/s: the child's track keeps it", 0.5, 0, 1},
+		{"drift 0.5 m/s, the blob seen 0.2 s ago, within its run: the nearer", 0.5, 6, 2},
+		{"drift 0.5 m/s, the blob seen a frame ago: the nearer", 0.5, 7, 2},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			tr := NewTracker[struct{}](TrackerConfig{Gate: 0.6, MaxMissing: 3 * time.Second, Drift: c.drift})
+			blob := Detection[struct{}]{X: 5, Y: 3.55, Area: 0.05}
+			// Frame 0: the child at (5, 4) and the blob; then the child
+			// along −y at 0.5 m/s for 0.7 s.
+			tr.Update(0, []Detection[struct{}]{{X: 5, Y: 4, Area: 0.2}, blob})
+			for i := 1; i < 8; i++ {
+				dets := []Detection[struct{}]{{X: 5, Y: 4 - 0.05*float64(i), Area: 0.2}}
+				if i <= c.lastSeen {
+					dets = append(dets, blob)
+				}
+				got := tr.Update(time.Duration(i)*100*time.Millisecond, dets)
+				require.Equal(t, 1, got[0].ID, "frame %d", i)
+			}
+			got := tr.Update(800*time.Millisecond, []Detection[struct{}]{{X: 5, Y: 3.57, Area: 0.2}})
+			require.NotEmpty(t, got)
+			assert.Equal(t, c.want, got[0].ID, "the track seen in this frame")
+			assert.Equal(t, 800*time.Millisecond, got[0].Last)
+		})
+	}
+}

@@ -112,3 +112,59 @@ func TestJudgeOwnTrailOnTheDeck(t *testing.T) {
 		})
 	}
 }
+
+// TestJudgeShadowBesideAnUnraisedBody: a child floating in sunlit water
+// and its shadow on the floor can both pass every rule with no target
+// raised near them (the child's first track ended), and would then raise
+// two targets at once, one of them on the floor 0.7 m away. The shadow
+// only darkens the water and keeps its chromaticity; the body has colours
+// of its own. The feature medians are those measured on the development
+// set's H4 at 26.8 s (body: chroma 6.9; floor shadow: chroma 1.5) and on
+// the tuning scene intruder/7 at 8.5 s (a child getting in, seen as two
+// tracks with chroma 1.1 and 0.4: when one waited for the other, the
+// first alert came 2.1 s after entry instead of at once).
+func TestJudgeShadowBesideAnUnraisedBody(t *testing.T) {
+	child := body()
+	child.Chroma, child.Half, child.Water = 6.9, 0.12, 18.5
+	shadow := body()
+	shadow.Chroma, shadow.Half, shadow.Water, shadow.Tint = 1.5, 0.058, 19, 13.8
+	grey := func(f vision.Features) vision.Features { f.Water = 1; return f }
+	faint := child
+	faint.Score = 20
+	enteringA, enteringB := body(), body()
+	enteringA.Chroma, enteringA.Water, enteringA.Half = 1.1, 12.7, 0.035
+	enteringB.Chroma, enteringB.Water, enteringB.Half = 0.4, 12.7, 0.044
+	cases := []struct {
+		name      string
+		companion float64
+		one, two  vision.Features // the tracks' candidates; track 1 is the older
+		at        [2]float64      // where track 2 lies, m; track 1 is at (5, 2.5)
+		ok1, ok2  bool            // eligible
+	}{
+		{"the shadow 0.7 m from the child waits", 2.5, child, shadow, [2]float64{5.41, 1.93}, true, false},
+		{"the same, the shadow's track older", 2.5, shadow, child, [2]float64{5.41, 1.93}, false, true},
+		{"3 m apart: two bodies", 2.5, child, shadow, [2]float64{5, 5.5}, true, true},
+		{"no colour in the picture: neither waits", 2.5, grey(child), grey(shadow), [2]float64{5.41, 1.93}, true, true},
+		{"neither has colours of its own: neither waits", 2.5, enteringA, enteringB, [2]float64{5.6, 2.5}, true, true},
+		{"a coloured rival that cannot be a body holds nothing back", 2.5, faint, shadow, [2]float64{5.41, 1.93}, false, true},
+		{"rule off", 0, child, shadow, [2]float64{5.41, 1.93}, true, true},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			r := judgeRulesOf(config.DefaultDetect())
+			r.Companion = c.companion
+			j := newJudge(time.Second, r, nil)
+			for i := 0; i < 8; i++ {
+				now := time.Duration(i) * 100 * time.Millisecond
+				j.observe(now, []poolTrack{
+					{ID: 1, X: 5, Y: 2.5, Last: now, Features: c.one},
+					{ID: 2, X: c.at[0], Y: c.at[1], Last: now, Features: c.two},
+				}, nil)
+			}
+			ok1, why1 := j.eligible(1)
+			ok2, why2 := j.eligible(2)
+			assert.Equal(t, c.ok1, ok1, why1)
+			assert.Equal(t, c.ok2, ok2, why2)
+		})
+	}
+}

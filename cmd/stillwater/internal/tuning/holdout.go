@@ -73,7 +73,16 @@ type holdoutLabels struct {
 		T     []float64     `json:"t_s"`
 		Child [][]float64   `json:"child_centre_m"` // null rows when absent
 		InW   []interface{} `json:"child_in_water"`
+		Pose  []*string     `json:"child_pose"` // "up", "flat"; null when absent
 	} `json:"per_frame"`
+}
+
+// poseAt returns the child's labelled pose at a frame, "-" when none.
+func (h holdoutLabels) poseAt(frame int) string {
+	if frame < 0 || frame >= len(h.PerFrame.Pose) || h.PerFrame.Pose[frame] == nil {
+		return "-"
+	}
+	return *h.PerFrame.Pose[frame]
 }
 
 // holdoutInterval is a run of frames; EndFrame is inclusive.

@@ -44,7 +44,10 @@ type ClipScore struct {
 	Delays    []float64 // s from entry to the first target, per detected interval
 	False     int       // target tracks not explained by an intruder
 	Errors    []float64 // m, per target message with a labelled position
-	Breaks    int       // extra track ids and clears during presence intervals
+	// Misses are the same target messages with where each was and where
+	// the label put the intruder, for breaking the errors down.
+	Misses []PositionMiss
+	Breaks int // extra track ids and clears during presence intervals
 	// Tracked is the longest time, s, one track kept reporting an intruder
 	// with no silence longer than MaxGap.
 	Tracked float64
@@ -61,6 +64,17 @@ type ClipScore struct {
 	// the fault each should raise, and its delay, s (NaN when never).
 	FaultKinds []string
 	FaultEach  []float64
+}
+
+// PositionMiss is one target message scored for position: its frame,
+// media time (s) and track, the surface position it reported and the
+// labelled one (pool metres), and the distance between them, m.
+type PositionMiss struct {
+	Frame     int
+	Media     float64
+	Track     int
+	At, Label [2]float64
+	Err       float64
 }
 
 // FaultKindOf returns the fault a labelled camera fault should raise:
@@ -195,7 +209,10 @@ func scoreClip(name string, lines []ReplayLine, t synth.Truth, rules scoreRules)
 			cs.Tracked = math.Max(cs.Tracked, r.until-r.from)
 			ids[pi][tg.Track] = true
 			if occ != nil {
-				cs.Errors = append(cs.Errors, math.Hypot(tg.Surface.X-occ.X, tg.Surface.Y-occ.Y))
+				e := math.Hypot(tg.Surface.X-occ.X, tg.Surface.Y-occ.Y)
+				cs.Errors = append(cs.Errors, e)
+				cs.Misses = append(cs.Misses, PositionMiss{Frame: l.Frame, Media: l.Media, Track: tg.Track,
+					At: [2]float64{tg.Surface.X, tg.Surface.Y}, Label: [2]float64{occ.X, occ.Y}, Err: e})
 			}
 		case alert.KindFault:
 			var f alert.Fault

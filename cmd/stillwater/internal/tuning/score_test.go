@@ -121,6 +121,16 @@ func TestScoreClip(t *testing.T) {
 			assert.InDelta(t, tt.want.Tracked, got.Tracked, 1e-9)
 			assert.InDeltaSlice(t, tt.want.Delays, got.Delays, 1e-9)
 			assert.InDeltaSlice(t, tt.want.Errors, got.Errors, 1e-9)
+			// Each scored message keeps its track and both positions.
+			require.Len(t, got.Misses, len(got.Errors))
+			for i, m := range got.Misses {
+				assert.InDelta(t, got.Errors[i], math.Hypot(m.At[0]-m.Label[0], m.At[1]-m.Label[1]), 1e-9)
+				assert.Equal(t, got.Errors[i], m.Err)
+			}
+			if tt.frames {
+				assert.Equal(t, []int{2, 2, 4}, []int{got.Misses[0].Track, got.Misses[1].Track, got.Misses[2].Track})
+				assert.Equal(t, 105, got.Misses[2].Frame)
+			}
 		})
 	}
 }
