@@ -11,16 +11,17 @@ import (
 // The C heap is where OpenCV's Mats and FFmpeg's decoders live, outside
 // Go's garbage collector. glibc's malloc gives each thread that meets
 // contention an arena of its own, up to eight per CPU, and serves blocks
-// below a threshold from them; it raises that threshold (up to 32 MB)
-// each time a large mapped block is freed (from glibc's manual, from
-// memory), so that frame-sized buffers end up inside the arenas too.
-// cgo calls run on whichever OS thread the goroutine is on, and
-// FFmpeg's packets of every size come and go beside them: the free
-// space inside the arenas grows in pieces too small to give back, and
-// the resident size creeps up while the memory in use does not. Measured with eight 640×360 cameras and their copied 1080p
-// evidence streams over 180 s (stillwater bench): glibc's defaults grew
-// from 264 to 344 MB; two arenas and a fixed threshold of 128 KiB held
-// 254 to 264 MB with the C heap in use flat, at no more CPU.
+// below a threshold from them; it raises that threshold (up to 32 MB) each
+// time a large mapped block is freed (from glibc's manual, from memory),
+// so that frame-sized buffers end up inside the arenas too. cgo calls run
+// on whichever OS thread the goroutine is on, and FFmpeg's packets of
+// every size come and go beside them: the free space inside the arenas
+// grows in pieces too small to give back, and the resident size creeps up
+// while the memory in use does not. Measured with eight 640×360 cameras
+// and their copied 1080p evidence streams over 180 s (stillwater bench):
+// glibc's defaults grew from 264 to 344 MB; two arenas and a fixed
+// threshold of 128 KiB held 254 to 264 MB with the C heap in use flat, at
+// no more CPU.
 
 // CHeapMapFrom is the block size from which the C allocator maps blocks
 // on their own, given back to the system when freed: glibc's starting
