@@ -1,7 +1,7 @@
 # Build: Debian bookworm with OpenCV 4.6 development files and Go.
 FROM golang:1.26-bookworm AS build
 RUN apt-get update \
- && DEBIAN_FRONTEND=noninteractive apt-get install -y --no-install-recommends libopencv-dev pkg-config g++ \
+ && DEBIAN_FRONTEND=noninteractive apt-get install -y --no-install-recommends libopencv-dev libjpeg-dev pkg-config g++ \
  && rm -rf /var/lib/apt/lists/*
 WORKDIR /src
 COPY go.mod go.sum ./

@@ -2,7 +2,7 @@ package vision
 
 // #cgo pkg-config: opencv4
 // #cgo CXXFLAGS: -std=c++11
-// #cgo LDFLAGS: -ldl
+// #cgo LDFLAGS: -ldl -ljpeg
 // #include <stdlib.h>
 // #include "shim.h"
 import "C"
@@ -157,4 +157,20 @@ func (c *capture) Close() error {
 		c.fd = -1
 	}
 	return nil
+}
+
+// encodeJPEG encodes an 8-bit grey or BGR Mat as a baseline JPEG of the
+// given quality (1–100) through libjpeg directly (see sw_jpeg_encode).
+func encodeJPEG(m gocv.Mat, quality int) ([]byte, error) {
+	var out *C.uchar
+	var n C.ulong
+	var buf [errBufLen]C.char
+	if C.sw_jpeg_encode(unsafe.Pointer(m.Ptr()), C.int(quality), &out, &n, &buf[0], errBufLen) != 0 {
+		return nil, errors.New(C.GoString(&buf[0]))
+	}
+	defer C.sw_jpeg_free(out)
+	if n == 0 {
+		return nil, errors.New("encode jpeg: empty result")
+	}
+	return C.GoBytes(unsafe.Pointer(out), C.int(n)), nil
 }

@@ -330,21 +330,6 @@ func asciiLabel(s string) string {
 	return b.String()
 }
 
-func encodeJPEG(m gocv.Mat, quality int) ([]byte, error) {
-	buf, err := gocv.IMEncodeWithParams(gocv.JPEGFileExt, m, []int{gocv.IMWriteJpegQuality, quality})
-	if err != nil {
-		return nil, fmt.Errorf("encode jpeg: %w", err)
-	}
-	defer buf.Close()
-	b := buf.GetBytes()
-	if len(b) == 0 {
-		return nil, errors.New("encode jpeg: empty result")
-	}
-	out := make([]byte, len(b))
-	copy(out, b)
-	return out, nil
-}
-
 // Retention limits an evidence directory. Zero fields do not limit.
 type Retention struct {
 	MaxFiles int           // keep at most this many files

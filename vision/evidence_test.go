@@ -13,6 +13,7 @@ import (
 	"github.com/stretchr/testify/require"
 	"gocv.io/x/gocv"
 
+	"stillwater/vision/refdata"
 	"stillwater/vision/synth"
 )
 
@@ -220,4 +221,49 @@ func TestPruneEvidence(t *testing.T) {
 	}
 	_, err := PruneEvidence(filepath.Join(t.TempDir(), "missing"), Retention{}, now)
 	assert.ErrorContains(t, err, "missing")
+}
+
+// TestEncodeJPEGMatchesOpenCV: the pre-roll's JPEG encoder (libjpeg called
+// directly, BGR rows handed over as they are) writes the very bytes
+// OpenCV's own imencode writes with the same quality, for colour and grey
+// frames of real footage (vtest.avi from Debian's opencv-doc) at three
+// qualities; and it refuses what it cannot encode with a message.
+func TestEncodeJPEGMatchesOpenCV(t *testing.T) {
+	p, err := refdata.Path("vtest.avi")
+	require.NoError(t, err)
+	frames := readFrames(t, p)
+	defer closeAll(frames)
+	require.NotEmpty(t, frames)
+	bgr := frames[len(frames)/2]
+	grey := gocv.NewMat()
+	defer grey.Close()
+	gocv.CvtColor(bgr, &grey, gocv.ColorBGRToGray)
+	// A region of interest: rows that are not contiguous in memory.
+	roi := bgr.Region(image.Rect(37, 11, 37+301, 11+203))
+	defer roi.Close()
+	for name, m := range map[string]gocv.Mat{"bgr": bgr, "grey": grey, "roi": roi} {
+		for _, q := range []int{50, 80, 95} {
+			got, err := encodeJPEG(m, q)
+			require.NoError(t, err, "%s q%d", name, q)
+			ref, err := gocv.IMEncodeWithParams(gocv.JPEGFileExt, m, []int{gocv.IMWriteJpegQuality, q})
+			require.NoError(t, err)
+			want := append([]byte(nil), ref.GetBytes()...)
+			ref.Close()
+			assert.Equal(t, want, got, "%s at quality %d: bytes differ from OpenCV's imencode", name, q)
+			back, err := gocv.IMDecode(got, gocv.IMReadUnchanged)
+			require.NoError(t, err)
+			assert.Equal(t, m.Cols(), back.Cols())
+			assert.Equal(t, m.Rows(), back.Rows())
+			assert.Equal(t, m.Channels(), back.Channels())
+			back.Close()
+		}
+	}
+	wide := gocv.NewMatWithSize(8, 8, gocv.MatTypeCV16UC3)
+	defer wide.Close()
+	_, err = encodeJPEG(wide, 80)
+	assert.ErrorContains(t, err, "want an 8-bit grey or BGR image")
+	empty := gocv.NewMat()
+	defer empty.Close()
+	_, err = encodeJPEG(empty, 80)
+	assert.ErrorContains(t, err, "encode jpeg")
 }

@@ -2,7 +2,11 @@
 
 #include <dlfcn.h>
 #include <malloc.h>
+#include <setjmp.h>
+#include <stdio.h>
 #include <unistd.h>
+
+#include <jpeglib.h>
 
 #include <cstdarg>
 #include <cstring>
@@ -201,3 +205,68 @@ void sw_malloc_stats(unsigned long long* inuse, unsigned long long* free) {
 }
 
 int sw_malloc_trim(void) { return malloc_trim(0); }
+
+namespace {
+
+// jpegFail carries libjpeg's error exit back to sw_jpeg_encode: libjpeg's
+// default handler would end the process.
+struct jpegFail {
+    struct jpeg_error_mgr mgr;
+    jmp_buf back;
+    char msg[JMSG_LENGTH_MAX];
+};
+
+void jpegErrorExit(j_common_ptr c) {
+    jpegFail* f = reinterpret_cast<jpegFail*>(c->err);
+    (*c->err->format_message)(c, f->msg);
+    longjmp(f->back, 1);
+}
+
+void jpegQuiet(j_common_ptr, int) {}
+
+}  // namespace
+
+int sw_jpeg_encode(void* img, int quality, unsigned char** out, unsigned long* outlen, char* err, int errlen) {
+    const cv::Mat* m = static_cast<const cv::Mat*>(img);
+    *out = nullptr;
+    *outlen = 0;
+    if (m->empty() || m->depth() != CV_8U || (m->channels() != 1 && m->channels() != 3)) {
+        std::snprintf(err, errlen, "encode jpeg: want an 8-bit grey or BGR image, have type %d", m->type());
+        return -1;
+    }
+    struct jpeg_compress_struct c;
+    jpegFail f;
+    std::memset(&c, 0, sizeof c);
+    c.err = jpeg_std_error(&f.mgr);
+    f.mgr.error_exit = jpegErrorExit;
+    f.mgr.emit_message = jpegQuiet;
+    // Everything setjmp must see after a longjmp lives in c, f and the
+    // caller's *out: nothing with a destructor is made below.
+    if (setjmp(f.back)) {
+        std::snprintf(err, errlen, "encode jpeg: %s", f.msg);
+        jpeg_destroy_compress(&c);
+        if (*out != nullptr) free(*out);
+        *out = nullptr;
+        *outlen = 0;
+        return -1;
+    }
+    jpeg_create_compress(&c);
+    jpeg_mem_dest(&c, out, outlen);
+    c.image_width = m->cols;
+    c.image_height = m->rows;
+    c.input_components = m->channels();
+    c.in_color_space = m->channels() == 3 ? JCS_EXT_BGR : JCS_GRAYSCALE;
+    jpeg_set_defaults(&c);
+    jpeg_set_quality(&c, quality, TRUE);
+    c.dct_method = JDCT_ISLOW;
+    jpeg_start_compress(&c, TRUE);
+    while (c.next_scanline < c.image_height) {
+        JSAMPROW row = const_cast<JSAMPROW>(m->ptr<unsigned char>(c.next_scanline));
+        jpeg_write_scanlines(&c, &row, 1);
+    }
+    jpeg_finish_compress(&c);
+    jpeg_destroy_compress(&c);
+    return 0;
+}
+
+void sw_jpeg_free(unsigned char* p) { free(p); }

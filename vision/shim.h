@@ -102,6 +102,16 @@ int sw_pool_update(void* img, void* mean, void* var, void* gain, void* water, vo
 // (found at run time, so the build needs no FFmpeg headers).
 int sw_log_forward(int fd);
 
+// JPEG encoding with libjpeg(-turbo) directly, with the settings OpenCV's
+// encoder uses by default (baseline, 4:2:0, the accurate integer DCT), but
+// the frame's BGR (or grey) rows handed over as they are rather than
+// copied into RGB order first. img is a cv::Mat* of 8-bit pixels, 1 or 3
+// channels; quality 1–100. On success returns 0 and sets *out (free it
+// with sw_jpeg_free) and *outlen; on failure returns -1 with the message
+// in err.
+int sw_jpeg_encode(void* img, int quality, unsigned char** out, unsigned long* outlen, char* err, int errlen);
+void sw_jpeg_free(unsigned char* p);
+
 #ifdef __cplusplus
 }
 #endif

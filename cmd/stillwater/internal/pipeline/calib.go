@@ -1,6 +1,7 @@
 package pipeline
 
 import (
+	"errors"
 	"fmt"
 	"math"
 	"time"
@@ -178,6 +179,17 @@ func DetectorConfig(cam config.CameraConfig, cal *homography.Calibration) (visio
 		}, nil
 	}
 	grid, err := rectification(cal, d.Cell, max(0, d.Deck))
+	if errors.Is(err, homography.ErrGridTooLarge) {
+		// The range check passed; this pool and its deck are too large
+		// for cells this small. Name the setting and the least that fits.
+		length, width := cal.Size()
+		deck := max(0, d.Deck)
+		// 1 % over the bare quotient covers the cells rounded up at the
+		// edges.
+		least := 1.01 * math.Sqrt((length+2*deck)*(width+2*deck)/homography.MaxGridCells)
+		return vision.DetectorConfig{}, fmt.Errorf("camera %s: detect.cell_m %g m is too small for a %gx%g m pool with %g m of deck; want at least %.3f m: %w",
+			cam.ID, d.Cell, length, width, deck, math.Ceil(least*1000)/1000, err)
+	}
 	if err != nil {
 		return vision.DetectorConfig{}, fmt.Errorf("camera %s: %w", cam.ID, err)
 	}

@@ -2,8 +2,10 @@ package pipeline
 
 import (
 	"bytes"
+	"fmt"
 	"image"
 	"log/slog"
+	"strings"
 	"testing"
 	"time"
 
@@ -11,6 +13,7 @@ import (
 	"github.com/stretchr/testify/require"
 
 	"stillwater/cmd/stillwater/internal/config"
+	"stillwater/homography"
 	"stillwater/vision"
 )
 
@@ -137,4 +140,26 @@ func TestInsidePolygon(t *testing.T) {
 	l := [][2]float64{{0, 0}, {2, 0}, {2, 1}, {1, 1}, {1, 2}, {0, 2}}
 	assert.True(t, insidePolygon(l, 0.5, 1.5))
 	assert.False(t, insidePolygon(l, 1.5, 1.5))
+}
+
+// TestDetectorConfigNamesATooFineGrid: a cell size inside the accepted
+// range that makes too many cells for this pool is refused naming the
+// setting and the least size that fits, and that size is accepted.
+func TestDetectorConfigNamesATooFineGrid(t *testing.T) {
+	cam := zoneCamera()
+	cam.Pool = config.PoolConfig{Length: 12, Width: 6}
+	cam.Detect.Cell = 0.005
+	require.NoError(t, config.ValidateDetect("cameras[0]", cam.Detect), "0.005 m is inside the accepted range")
+	cal, err := config.NewCalibration(cam)
+	require.NoError(t, err)
+	_, err = DetectorConfig(cam, cal)
+	require.ErrorIs(t, err, homography.ErrGridTooLarge)
+	t.Log(err)
+	assert.ErrorContains(t, err, "camera pool: detect.cell_m 0.005 m is too small for a 12x6 m pool")
+	var least float64
+	_, scanErr := fmt.Sscanf(err.Error()[strings.Index(err.Error(), "want at least ")+len("want at least "):], "%g m", &least)
+	require.NoError(t, scanErr, err.Error())
+	cam.Detect.Cell = least
+	_, err = DetectorConfig(cam, cal)
+	assert.NoError(t, err, "the suggested %g m", least)
 }
