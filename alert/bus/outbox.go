@@ -40,6 +40,12 @@ type OutboxConfig struct {
 	MaxMessages int
 	// MaxBytes bounds the payload bytes queued; default 16 MiB.
 	MaxBytes int64
+	// DeadLetterMaxBytes bounds DeadLetterFile; default 64 MiB. A letter
+	// that would take it past the bound first moves the file to
+	// DeadLetterFile+".1" (replacing the one there) and starts it afresh,
+	// so the two never hold much more than twice the bound and the newest
+	// letters are always kept.
+	DeadLetterMaxBytes int64
 }
 
 func (c OutboxConfig) withDefaults() OutboxConfig {
@@ -48,6 +54,9 @@ func (c OutboxConfig) withDefaults() OutboxConfig {
 	}
 	if c.MaxBytes <= 0 {
 		c.MaxBytes = 16 << 20
+	}
+	if c.DeadLetterMaxBytes <= 0 {
+		c.DeadLetterMaxBytes = 64 << 20
 	}
 	return c
 }
@@ -520,23 +529,23 @@ func (o *outbox) snapshot() []outboxRecord {
 }
 
 // deadLetter writes r with why to the dead-letter file, synced, then takes
-// it off the queue. Memory-only outboxes keep no file.
-func (o *outbox) deadLetter(r outboxRecord, reason string, tries int, at time.Time) error {
-	if err := o.writeDeadLetter(r, reason, tries, at); err != nil {
-		return err
+// it off the queue. Memory-only outboxes keep no file. rotated is true
+// when the file had reached its bound and was moved aside first.
+func (o *outbox) deadLetter(r outboxRecord, reason string, tries int, at time.Time) (rotated bool, err error) {
+	if rotated, err = o.writeDeadLetter(r, reason, tries, at); err != nil {
+		return rotated, err
 	}
-	return o.remove(r.N)
+	return rotated, o.remove(r.N)
 }
 
 // writeDeadLetter appends r with why to the dead-letter file, synced, and
-// counts it.
-
-func (o *outbox) writeDeadLetter(r outboxRecord, reason string, tries int, at time.Time) error {
+// counts it; rotated as for deadLetter.
+func (o *outbox) writeDeadLetter(r outboxRecord, reason string, tries int, at time.Time) (rotated bool, err error) {
 	if o.cfg.Dir == "" {
 		o.mu.Lock()
 		o.deadLettered++
 		o.mu.Unlock()
-		return nil
+		return false, nil
 	}
 	d := DeadLetter{At: at.UTC(), Reason: reason, Tries: tries, Subject: r.Subject, Kind: r.Kind, ID: r.ID, Queued: r.Queued}
 	if json.Valid(r.Data) {
@@ -546,15 +555,23 @@ func (o *outbox) writeDeadLetter(r outboxRecord, reason string, tries int, at ti
 	}
 	b, err := json.Marshal(d)
 	if err != nil {
-		return fmt.Errorf("outbox: encode dead letter %s: %w", r.ID, err)
+		return false, fmt.Errorf("outbox: encode dead letter %s: %w", r.ID, err)
 	}
+	b = append(b, '\n')
 	o.mu.Lock()
 	defer o.mu.Unlock()
-	if err := appendSynced(o.deadLetterPath(), append(b, '\n')); err != nil {
-		return fmt.Errorf("outbox: dead letter %s: %w", r.ID, err)
+	path := o.deadLetterPath()
+	if st, err := os.Stat(path); err == nil && st.Size() > 0 && st.Size()+int64(len(b)) > o.cfg.DeadLetterMaxBytes {
+		if err := os.Rename(path, path+".1"); err != nil {
+			return false, fmt.Errorf("outbox: dead letter %s: move the full file aside: %w", r.ID, err)
+		}
+		rotated = true
+	}
+	if err := appendSynced(path, b); err != nil {
+		return rotated, fmt.Errorf("outbox: dead letter %s: %w", r.ID, err)
 	}
 	o.deadLettered++
-	return nil
+	return rotated, nil
 }
 
 func (o *outbox) deadLetterPath() string { return filepath.Join(o.cfg.Dir, DeadLetterFile) }

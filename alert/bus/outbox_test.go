@@ -3,6 +3,7 @@ package bus
 import (
 	"bytes"
 	"encoding/json"
+	"fmt"
 	"os"
 	"path/filepath"
 	"strings"
@@ -177,4 +178,46 @@ func FuzzParseOutbox(f *testing.F) {
 			}
 		}
 	})
+}
+
+// TestDeadLetterFileBounded: with a bound of 1 000 bytes, letters of about
+// 200 bytes fill the file, the next one moves it aside to .1 and starts a
+// fresh one; a second rotation replaces the .1. Every letter written is
+// counted, the newest always kept, and neither file passes the bound.
+func TestDeadLetterFileBounded(t *testing.T) {
+	dir := t.TempDir()
+	const bound = 1000
+	ob, err := openOutbox(OutboxConfig{Dir: dir, DeadLetterMaxBytes: bound})
+	require.NoError(t, err)
+	defer ob.close()
+	path := filepath.Join(dir, DeadLetterFile)
+	payload := `{"pad":"` + strings.Repeat("x", 60) + `"}`
+	var ids []string
+	rotations := 0
+	for i := 0; i < 12; i++ {
+		id := fmt.Sprintf("msg-%02d", i)
+		ids = append(ids, id)
+		rotated, err := ob.writeDeadLetter(outboxRecord{N: uint64(i + 1), ID: id, Subject: "sw.north.target", Kind: "target", Data: []byte(payload), Queued: outboxNow}, "refused", 1, outboxNow)
+		require.NoError(t, err)
+		if rotated {
+			rotations++
+		}
+		for _, p := range []string{path, path + ".1"} {
+			if st, err := os.Stat(p); err == nil {
+				assert.LessOrEqual(t, st.Size(), int64(bound), "%s after letter %d", filepath.Base(p), i)
+			}
+		}
+		cur := readDeadLetters(t, path)
+		require.NotEmpty(t, cur)
+		assert.Equal(t, id, cur[len(cur)-1].ID, "the newest letter is in the current file")
+	}
+	assert.GreaterOrEqual(t, rotations, 2, "12 letters of about 200 bytes make at least two rotations")
+	assert.Equal(t, uint64(12), ob.stats().deadLettered)
+	// The current file and the one moved aside hold the newest letters,
+	// in order, with none missing between them.
+	var kept []string
+	for _, d := range append(readDeadLetters(t, path+".1"), readDeadLetters(t, path)...) {
+		kept = append(kept, d.ID)
+	}
+	assert.Equal(t, ids[len(ids)-len(kept):], kept)
 }

@@ -799,14 +799,18 @@ func (p *Publisher) ours(subj string) bool {
 // outbox) and reports it lost.
 func (p *Publisher) deadLetter(rec outboxRecord, queued bool, reason string, tries int) error {
 	var err error
+	var rotated bool
 	if queued {
-		err = p.ob.deadLetter(rec, reason, tries, time.Now())
+		rotated, err = p.ob.deadLetter(rec, reason, tries, time.Now())
 	} else {
-		err = p.ob.writeDeadLetter(rec, reason, tries, time.Now())
+		rotated, err = p.ob.writeDeadLetter(rec, reason, tries, time.Now())
 	}
 	file := p.ob.deadLetterPath()
 	if p.cfg.Outbox.Dir == "" {
 		file = "" // memory-only: the log line is all that is kept
+	}
+	if rotated {
+		p.log.Warn("dead-letter file reached its bound: moved aside, replacing the earlier one; older letters are gone", "file", file, "moved_to", file+".1", "bound_bytes", p.ob.cfg.DeadLetterMaxBytes)
 	}
 	if err != nil {
 		p.log.Error("message could not be moved to the dead-letter file; it stays queued", "subject", rec.Subject, "id", rec.ID, "reason", reason, "err", err)

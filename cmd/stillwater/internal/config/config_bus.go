@@ -104,11 +104,13 @@ type StreamSection struct {
 }
 
 // OutboxSection bounds the on-disk queue of unacknowledged messages;
-// zero values take the bus package's defaults (10000 messages, 16 MiB, 2 s).
+// zero values take the bus package's defaults (10000 messages, 16 MiB, 2 s,
+// and 64 MiB for the dead-letter file).
 type OutboxSection struct {
-	MaxMessages int      `yaml:"max_messages"`
-	MaxBytes    int64    `yaml:"max_bytes"`
-	AckTimeout  Duration `yaml:"ack_timeout"`
+	MaxMessages        int      `yaml:"max_messages"`
+	MaxBytes           int64    `yaml:"max_bytes"`
+	AckTimeout         Duration `yaml:"ack_timeout"`
+	DeadLetterMaxBytes int64    `yaml:"dead_letter_max_bytes"`
 }
 
 // Embedded reports whether the daemon runs its own server.
@@ -230,6 +232,8 @@ func validateBus(b BusConfig) error {
 	switch {
 	case o.MaxMessages < 0 || o.MaxBytes < 0:
 		return errors.New("bus.outbox: max_messages and max_bytes must not be negative")
+	case o.DeadLetterMaxBytes < 0:
+		return fmt.Errorf("bus.outbox.dead_letter_max_bytes: %d; want 0 (default 64 MiB) or a positive number of bytes", o.DeadLetterMaxBytes)
 	case o.AckTimeout < 0 || time.Duration(o.AckTimeout) > 30*time.Second:
 		return errors.New("bus.outbox.ack_timeout: want 0 (default 2s) up to 30s; the camera loop waits this long at most")
 	}
@@ -387,7 +391,7 @@ func (b BusConfig) publisherConfig(dataDir string) bus.PublisherConfig {
 		Prefix: b.Prefix,
 		Stream: bus.StreamConfig{Name: b.Stream.Name, MaxAge: time.Duration(b.Stream.MaxAge), MaxBytes: b.Stream.MaxBytes,
 			Duplicates: time.Duration(b.Stream.Duplicates), Replicas: b.Stream.Replicas},
-		Outbox:     bus.OutboxConfig{Dir: filepath.Join(dataDir, "outbox"), MaxMessages: b.Outbox.MaxMessages, MaxBytes: b.Outbox.MaxBytes},
+		Outbox:     bus.OutboxConfig{Dir: filepath.Join(dataDir, "outbox"), MaxMessages: b.Outbox.MaxMessages, MaxBytes: b.Outbox.MaxBytes, DeadLetterMaxBytes: b.Outbox.DeadLetterMaxBytes},
 		AckTimeout: time.Duration(b.Outbox.AckTimeout),
 		Consumers:  b.Consumers(),
 	}

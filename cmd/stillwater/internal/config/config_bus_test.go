@@ -33,7 +33,7 @@ bus:
   leaf:
     - urls: [nats-leaf://hub.example:7422]
   stream: {max_age: 720h, max_bytes: 1000000, duplicates: 30m, replicas: 1, consumers: [dashboard, pager]}
-  outbox: {max_messages: 500, max_bytes: 1000000, ack_timeout: 1500ms}
+  outbox: {max_messages: 500, max_bytes: 1000000, ack_timeout: 1500ms, dead_letter_max_bytes: 2000000}
 control:
   secret_env: SW_TEST_CONTROL
   max_disarm: 12h
@@ -66,6 +66,7 @@ func TestBusConfigFromYAML(t *testing.T) {
 	pc := cfg.Bus.publisherConfig("/data")
 	assert.Equal(t, "/data/outbox", pc.Outbox.Dir)
 	assert.Equal(t, 500, pc.Outbox.MaxMessages)
+	assert.Equal(t, int64(2000000), pc.Outbox.DeadLetterMaxBytes)
 	assert.Equal(t, 1500*time.Millisecond, pc.AckTimeout)
 	assert.Equal(t, 30*time.Minute, pc.Stream.Duplicates)
 	assert.Equal(t, []string{"pager", "alice", "dashboard"}, pc.Consumers, "every responder and operator, then those listed, once each")
@@ -128,6 +129,7 @@ func TestValidateBusErrors(t *testing.T) {
 			b.Stream.Duplicates = Duration(2 * time.Hour)
 		}, "bus.stream.duplicates"},
 		{"ack timeout", func(b *BusConfig) { b.Outbox.AckTimeout = Duration(time.Minute) }, "bus.outbox.ack_timeout"},
+		{"dead-letter bound", func(b *BusConfig) { b.Outbox.DeadLetterMaxBytes = -1 }, "bus.outbox.dead_letter_max_bytes: -1"},
 		{"consumer name", func(b *BusConfig) { b.Stream.Consumers = []string{"ok", "a/b"} }, "bus.stream.consumers[1]"},
 		{"consumer twice", func(b *BusConfig) { b.Stream.Consumers = []string{"x", "x"} }, "listed twice"},
 		{"operator name", func(b *BusConfig) {
