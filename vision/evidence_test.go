@@ -266,4 +266,13 @@ func TestEncodeJPEGMatchesOpenCV(t *testing.T) {
 	defer empty.Close()
 	_, err = encodeJPEG(empty, 80)
 	assert.ErrorContains(t, err, "encode jpeg")
+	// Wider than JPEG allows (65 500 px, libjpeg's JPEG_MAX_DIMENSION):
+	// libjpeg's own error comes back as an error, not an exit.
+	long := gocv.NewMatWithSize(1, 70000, gocv.MatTypeCV8UC1)
+	defer long.Close()
+	_, err = encodeJPEG(long, 80)
+	assert.ErrorContains(t, err, "65500")
+	// And the encoder still works after it.
+	_, err = encodeJPEG(grey, 80)
+	assert.NoError(t, err)
 }

@@ -240,12 +240,16 @@ int sw_jpeg_encode(void* img, int quality, unsigned char** out, unsigned long* o
     c.err = jpeg_std_error(&f.mgr);
     f.mgr.error_exit = jpegErrorExit;
     f.mgr.emit_message = jpegQuiet;
-    // Everything setjmp must see after a longjmp lives in c, f and the
-    // caller's *out: nothing with a destructor is made below.
+    // Everything setjmp must see after a longjmp lives in c, f, writing
+    // and the caller's *out: nothing with a destructor is made below.
+    // Once rows are written the memory destination may have replaced (and
+    // freed) the buffer *out points to, so it is freed only before that;
+    // libjpeg fails there only when it cannot allocate.
+    volatile bool writing = false;
     if (setjmp(f.back)) {
         std::snprintf(err, errlen, "encode jpeg: %s", f.msg);
         jpeg_destroy_compress(&c);
-        if (*out != nullptr) free(*out);
+        if (!writing && *out != nullptr) free(*out);
         *out = nullptr;
         *outlen = 0;
         return -1;
@@ -260,6 +264,7 @@ int sw_jpeg_encode(void* img, int quality, unsigned char** out, unsigned long* o
     jpeg_set_quality(&c, quality, TRUE);
     c.dct_method = JDCT_ISLOW;
     jpeg_start_compress(&c, TRUE);
+    writing = true;
     while (c.next_scanline < c.image_height) {
         JSAMPROW row = const_cast<JSAMPROW>(m->ptr<unsigned char>(c.next_scanline));
         jpeg_write_scanlines(&c, &row, 1);
