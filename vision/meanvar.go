@@ -293,6 +293,12 @@ type Features struct {
 type PlaneBlob struct {
 	X, Y  float64         // centre
 	Cells image.Rectangle // bounding box in grid cells; give it back as a hold box
+	// WaterX, WaterY are the centre of the strongest part (as X, Y) over
+	// the water's cells alone, and WaterArea its area (m²); WaterArea is 0
+	// when none of the strongest part is on the water. A body climbing in
+	// from the deck, smeared along its path by the short mean, has its
+	// centre on the deck while a good part of it is already in the water.
+	WaterX, WaterY, WaterArea float64
 }
 
 // meanVar is the mean–variance detector on the rectified pool. Not safe
@@ -821,8 +827,8 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		// The area at a quarter of the peak score (half its contrast):
 		// close to the object's own outline, where Area also counts the
 		// blur around it.
-		half, bright, wet := 0, 0, 0
-		var hx, hy float64
+		half, bright, wet, halfWet := 0, 0, 0, 0
+		var hx, hy, hwx, hwy float64
 		hthr := max(float32(d.cfg.Low), peak/4)
 		for y := by; y < by+bh; y++ {
 			for x := bx; x < bx+bw; x++ {
@@ -834,6 +840,11 @@ func (d *meanVar) candidates() ([]Blob, error) {
 					half++
 					hx += float64(x) + 0.5
 					hy += float64(y) + 0.5
+					if d.wet[i] != 0 {
+						halfWet++
+						hwx += float64(x) + 0.5
+						hwy += float64(y) + 0.5
+					}
 				}
 				if con[i] > 0 {
 					bright++
@@ -895,6 +906,10 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		px, py := d.rect.plane(cx, cy)
 		cells := image.Rect(bx, by, bx+bw, by+bh)
 		b := Blob{Pixels: cnt, Plane: &PlaneBlob{X: px, Y: py, Cells: cells}, Features: f}
+		if halfWet > 0 {
+			b.Plane.WaterX, b.Plane.WaterY = d.rect.plane(hwx/float64(halfWet), hwy/float64(halfWet))
+			b.Plane.WaterArea = float64(halfWet) * cellArea
+		}
 		if c, ok := d.rect.source(cx, cy); ok {
 			b.Centroid = c
 		}

@@ -163,3 +163,52 @@ func TestDetectorConfigNamesATooFineGrid(t *testing.T) {
 	_, err = DetectorConfig(cam, cal)
 	assert.NoError(t, err, "the suggested %g m", least)
 }
+
+// TestGateBodyGettingIn: a rectified candidate whose centre is on the deck
+// (pool y 4.2 m, the pool is 4 m wide) is tracked from the centre of its
+// part on the water when that part is large enough and enough of the
+// candidate is on the water; otherwise it is rejected as outside.
+func TestGateBodyGettingIn(t *testing.T) {
+	tests := []struct {
+		name       string
+		wet        float64 // share of the candidate on the water
+		waterArea  float64 // m², its strongest part on the water
+		waterY     float64 // pool metres
+		wantTrack  bool
+		wantReject string
+	}{
+		{"a third in the water", 0.37, 0.02, 3.8, true, ""},
+		{"at the edge, a tenth in", 0.12, 0.02, 3.8, false, "centre outside the pool"},
+		{"water part too small", 0.37, 0.005, 3.8, false, "centre outside the pool"},
+		{"no part on the water", 0.37, 0, 0, false, "centre outside the pool"},
+		{"water part outside too", 0.37, 0.02, 4.1, false, "centre outside the pool"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			cam := zoneCamera()
+			var logs bytes.Buffer
+			log := slog.New(slog.NewTextHandler(&logs, &slog.HandlerOptions{Level: slog.LevelDebug}))
+			cal, err := config.NewCalibration(cam)
+			require.NoError(t, err)
+			p, err := New(cam, cal, 10, time.Time{}, time.Now, log, nil)
+			require.NoError(t, err)
+			b := vision.Blob{
+				Centroid: vision.Point{X: 300, Y: 90},
+				Box:      image.Rect(290, 80, 310, 110),
+				Plane:    &vision.PlaneBlob{X: 4, Y: 4.2, Cells: image.Rect(10, 10, 22, 22), WaterX: 4, WaterY: tt.waterY, WaterArea: tt.waterArea},
+				Features: vision.Features{Area: 0.2, Half: 0.1, Core: 0.05, Score: 200, Peak: 600, Length: 0.6, Width: 0.3, Wet: tt.wet, Edge: 0},
+			}
+			for i := 0; i < 5; i++ {
+				p.Step(vision.Result{Index: i, Media: time.Duration(i) * 100 * time.Millisecond, Blobs: []vision.Blob{b}}, true)
+			}
+			if !tt.wantTrack {
+				assert.Empty(t, p.Tracks)
+				assert.Contains(t, logs.String(), tt.wantReject)
+				return
+			}
+			require.Len(t, p.Tracks, 1)
+			assert.InDelta(t, 4, p.Tracks[0].X, 0.01)
+			assert.InDelta(t, tt.waterY, p.Tracks[0].Y, 0.01, "tracked from the part on the water")
+		})
+	}
+}
