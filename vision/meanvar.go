@@ -293,9 +293,10 @@ type Features struct {
 type PlaneBlob struct {
 	X, Y  float64         // centre
 	Cells image.Rectangle // bounding box in grid cells; give it back as a hold box
-	// WaterX, WaterY are the centre of the strongest part (as X, Y) over
-	// the water's cells alone, and WaterArea its area (m²); WaterArea is 0
-	// when none of the strongest part is on the water. A body climbing in
+	// WaterX, WaterY are the centre of the strongest part of the
+	// candidate's water cells alone (at a quarter of their own peak score),
+	// and WaterArea its area (m²); WaterArea is 0 when none of it is on
+	// the water. A body climbing in
 	// from the deck, smeared along its path by the short mean, has its
 	// centre on the deck while a good part of it is already in the water.
 	WaterX, WaterY, WaterArea float64
@@ -827,8 +828,9 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		// The area at a quarter of the peak score (half its contrast):
 		// close to the object's own outline, where Area also counts the
 		// blur around it.
-		half, bright, wet, halfWet := 0, 0, 0, 0
-		var hx, hy, hwx, hwy float64
+		half, bright, wet := 0, 0, 0
+		var hx, hy float64
+		var wpeak float32
 		hthr := max(float32(d.cfg.Low), peak/4)
 		for y := by; y < by+bh; y++ {
 			for x := bx; x < bx+bw; x++ {
@@ -840,16 +842,32 @@ func (d *meanVar) candidates() ([]Blob, error) {
 					half++
 					hx += float64(x) + 0.5
 					hy += float64(y) + 0.5
-					if d.wet[i] != 0 {
+				}
+				if con[i] > 0 {
+					bright++
+				}
+				if d.wet[i] != 0 {
+					wet++
+					wpeak = max(wpeak, sc[i])
+				}
+			}
+		}
+		// The strongest part over the water alone, at a quarter of the
+		// water part's own peak: a child climbing in is often weaker in
+		// the water (partly under it) than its trace on the coping.
+		halfWet := 0
+		var hwx, hwy float64
+		if wet > 0 {
+			wthr := max(float32(d.cfg.Low), wpeak/4)
+			for y := by; y < by+bh; y++ {
+				for x := bx; x < bx+bw; x++ {
+					i := y*w + x
+					if lab[i] == int32(k) && d.wet[i] != 0 && sc[i] >= wthr {
 						halfWet++
 						hwx += float64(x) + 0.5
 						hwy += float64(y) + 0.5
 					}
 				}
-				if con[i] > 0 {
-					bright++
-				}
-				wet += int(d.wet[i])
 			}
 		}
 		// The tint of the difference: light added to the water (a glint, a

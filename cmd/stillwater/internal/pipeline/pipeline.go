@@ -313,7 +313,7 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 		// large enough and a good share of the whole is on the water.
 		w := homography.Point{X: b.Plane.WaterX, Y: b.Plane.WaterY}
 		if !(b.Plane.WaterArea >= d.MinArea*candidateShare && f.Wet >= straddleWet && p.Calibration.Inside(w)) {
-			return reject("outside", "centre outside the pool")
+			return reject("outside", fmt.Sprintf("centre outside the pool (%.2f of it on the water, its water part %.3f m²)", f.Wet, b.Plane.WaterArea))
 		}
 		c = w
 	}
