@@ -210,8 +210,10 @@ func (j *judge) eligible(id int) (bool, string) {
 					continue
 				}
 				// Nearer than deckSelf it is the track's own body, part of it
-				// still on the deck.
-				if d := b.at.Dist(at); d <= r.DeckRadius && d > deckSelf {
+				// still on the deck, unless the track has no colour of its
+				// own and never lay on the deck: then it is the shadow of
+				// what stands at the edge (a bird on the coping).
+				if d := b.at.Dist(at); d <= r.DeckRadius && (d > deckSelf || !h.crossed && colourless(f)) {
 					why = fmt.Sprintf("someone is on the deck %.1f m away: a shadow until they are in the water", d)
 					break
 				}
@@ -261,7 +263,7 @@ func (j *judge) unlikeBody(f vision.Features, speed float64) string {
 // water shows no colour (a night infrared picture, lit from the camera,
 // where a body hides its own shadow) nothing is held back.
 func (j *judge) rivalOf(id int, at homography.Point, f vision.Features) (int, float64, bool) {
-	if j.rules.Companion <= 0 || f.Water < minWaterChroma || f.Chroma >= shadowChroma {
+	if j.rules.Companion <= 0 || !colourless(f) {
 		return 0, 0, false
 	}
 	best, bestD := 0, math.Inf(1)
@@ -306,6 +308,12 @@ func (j *judge) companionOf(id int, at homography.Point) (int, float64, bool) {
 		}
 	}
 	return best, bestD, !math.IsInf(bestD, 1)
+}
+
+// colourless reports whether a track's medians f show no colour of their
+// own in a picture whose water has colour: a shadow only darkens the water.
+func colourless(f vision.Features) bool {
+	return f.Water >= minWaterChroma && f.Chroma < shadowChroma
 }
 
 // minWaterChroma is how far from grey (Features.Water) the water must be

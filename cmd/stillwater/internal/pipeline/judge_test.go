@@ -168,3 +168,47 @@ func TestJudgeShadowBesideAnUnraisedBody(t *testing.T) {
 		})
 	}
 }
+
+// TestJudgeShadowOfWhatStandsAtTheEdge: something standing on the coping
+// casts its shadow on the water beside it, nearer than a body's own part
+// on the deck (deckSelf). The shadow has no colour of its own and never
+// lay on the deck: it waits for as long as the body stands there. The
+// shadow's medians are those measured on the tuning scene intruder/6 at
+// 22.4 s (a bird on the coping 0.42 m from its shadow: chroma 1.25, water
+// 11.7, half area 0.033 m²), where it raised a false alarm.
+func TestJudgeShadowOfWhatStandsAtTheEdge(t *testing.T) {
+	shadow := body()
+	shadow.Chroma, shadow.Water, shadow.Half = 1.25, 11.7, 0.033
+	child := body()
+	child.Chroma, child.Water = 6.9, 18.5
+	grey := shadow
+	grey.Water = 1
+	for _, c := range []struct {
+		name     string
+		f        vision.Features
+		firstWet float64 // share of the track's first candidate on the water
+		eligible bool
+	}{
+		{"a shadow beside it waits", shadow, 1, false},
+		{"a coloured body beside it is its own", child, 1, true},
+		{"a colourless body that came over the edge is its own", shadow, 0.4, true},
+		{"no colour in the picture: nothing to tell", grey, 1, true},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			j := newJudge(time.Second, judgeRulesOf(config.DefaultDetect()), nil)
+			for i := 0; i <= 8; i++ {
+				now := time.Duration(i) * 100 * time.Millisecond
+				f := c.f
+				f.Wet = 1
+				if i == 0 {
+					f.Wet = c.firstWet
+				}
+				// The track at (1.55, 0.25) m; the body on the coping at
+				// (1.68, -0.15) m, 0.42 m away.
+				j.observe(now, []poolTrack{{ID: 1, X: 1.55, Y: 0.25, Last: now, Features: f}}, []homography.Point{{X: 1.68, Y: -0.15}})
+			}
+			ok, why := j.eligible(1)
+			assert.Equal(t, c.eligible, ok, why)
+		})
+	}
+}
