@@ -245,6 +245,8 @@ func (j *judge) unlikeBody(f vision.Features, speed float64) string {
 		return fmt.Sprintf("light on the water (a glint or a reflection): brighter, and white (tint %.1f < %.1f)", f.Tint, r.MinTint)
 	case f.Score < r.MinScore:
 		return fmt.Sprintf("too faint over its area (mean score %.0f < %.0f)", f.Score, r.MinScore)
+	case movedLight(f, r.MinScore):
+		return fmt.Sprintf("as much brighter as darker, faintly (%.0f %% brighter, contrast %.3f, mean score %.0f): light moved by the waves, not a body", 100*f.Bright, f.Contrast, f.Score)
 	case r.MaxLength > 0 && f.Length > r.MaxLength:
 		return fmt.Sprintf("longer than a person (%.2f m > %.2f m)", f.Length, r.MaxLength)
 	case r.MaxSpeed > 0 && speed > r.MaxSpeed:
@@ -309,6 +311,28 @@ func (j *judge) companionOf(id int, at homography.Point) (int, float64, bool) {
 	}
 	return best, bestD, !math.IsInf(bestD, 1)
 }
+
+// movedLight reports whether a track's medians f are light the waves
+// moved rather than a body: refraction at the surface focuses light into
+// bright bands and leaves dark ones beside them, so over an area about as
+// much is brighter as darker and the mean contrast stays near zero. A body
+// blocks or reflects light: children raised on the tuning sample showed
+// 0–19 % of their area brighter and contrasts of −0.08 to −0.18 (the
+// development set −0.06 to −0.16), a child at night under infrared light
+// is brighter all over; the false targets of the scenario suite's leaf
+// scenes 40–42 % brighter at −0.013 to −0.029, mean score 52–56. A strong
+// candidate (mean score at least twice minScore) is never taken for moved
+// light: a child both paler and darker than the water can be half and
+// half too.
+func movedLight(f vision.Features, minScore float64) bool {
+	return f.Bright >= movedBright && f.Bright <= 1-movedBright && math.Abs(f.Contrast) < movedContrast && f.Score < 2*minScore
+}
+
+// movedBright and movedContrast bound moved light (see movedLight).
+const (
+	movedBright   = 0.25
+	movedContrast = 0.05
+)
 
 // colourless reports whether a track's medians f show no colour of their
 // own in a picture whose water has colour: a shadow only darkens the water.

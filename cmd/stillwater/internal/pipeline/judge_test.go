@@ -212,3 +212,37 @@ func TestJudgeShadowOfWhatStandsAtTheEdge(t *testing.T) {
 		})
 	}
 }
+
+// TestJudgeLightMovedByTheWaves: caustics focus light into bright bands
+// beside dark ones, so a patch of them is as much brighter as darker with
+// a mean contrast near zero; a body is darker (or, lit at night, brighter)
+// over most of itself. The medians are measured: the scenario suite's
+// leaf scenes (seed 101: two false targets at 46.8 and 47.4 s), and
+// children raised on the tuning sample (intruder/1 and /7) and the
+// development set (H7).
+func TestJudgeLightMovedByTheWaves(t *testing.T) {
+	with := func(bright, contrast, score float64) vision.Features {
+		f := body()
+		f.Bright, f.Contrast, f.Score = bright, contrast, score
+		return f
+	}
+	for _, c := range []struct {
+		name string
+		f    vision.Features
+		ok   bool
+	}{
+		{"ripples, leaves scene 101 at 46.8 s", with(0.423, -0.029, 56.4), false},
+		{"ripples, leaves scene 101 at 47.4 s", with(0.402, -0.013, 52.5), false},
+		{"a child, tuning intruder/1", with(0, -0.098, 110.4), true},
+		{"a child partly pale, tuning intruder/7", with(0.188, -0.081, 224.5), true},
+		{"a faint child, development H7", with(0.07, -0.06, 62), true},
+		{"a child lit at night: brighter all over", with(1, 0.03, 60), true},
+		{"half pale, half dark, strong", with(0.5, 0.01, 150), true},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			j := newJudge(time.Second, judgeRulesOf(config.DefaultDetect()), nil)
+			why := j.unlikeBody(c.f, 0.1)
+			assert.Equal(t, c.ok, why == "", why)
+		})
+	}
+}
