@@ -293,13 +293,6 @@ type Features struct {
 type PlaneBlob struct {
 	X, Y  float64         // centre
 	Cells image.Rectangle // bounding box in grid cells; give it back as a hold box
-	// WaterX, WaterY are the centre of the strongest part of the
-	// candidate's water cells alone (at a quarter of their own peak score),
-	// and WaterArea its area (m²); WaterArea is 0 when none of it is on
-	// the water. A body climbing in
-	// from the deck, smeared along its path by the short mean, has its
-	// centre on the deck while a good part of it is already in the water.
-	WaterX, WaterY, WaterArea float64
 }
 
 // meanVar is the mean–variance detector on the rectified pool. Not safe
@@ -830,7 +823,6 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		// blur around it.
 		half, bright, wet := 0, 0, 0
 		var hx, hy float64
-		var wpeak float32
 		hthr := max(float32(d.cfg.Low), peak/4)
 		for y := by; y < by+bh; y++ {
 			for x := bx; x < bx+bw; x++ {
@@ -846,28 +838,7 @@ func (d *meanVar) candidates() ([]Blob, error) {
 				if con[i] > 0 {
 					bright++
 				}
-				if d.wet[i] != 0 {
-					wet++
-					wpeak = max(wpeak, sc[i])
-				}
-			}
-		}
-		// The strongest part over the water alone, at a quarter of the
-		// water part's own peak: a child climbing in is often weaker in
-		// the water (partly under it) than its trace on the coping.
-		halfWet := 0
-		var hwx, hwy float64
-		if wet > 0 {
-			wthr := max(float32(d.cfg.Low), wpeak/4)
-			for y := by; y < by+bh; y++ {
-				for x := bx; x < bx+bw; x++ {
-					i := y*w + x
-					if lab[i] == int32(k) && d.wet[i] != 0 && sc[i] >= wthr {
-						halfWet++
-						hwx += float64(x) + 0.5
-						hwy += float64(y) + 0.5
-					}
-				}
+				wet += int(d.wet[i])
 			}
 		}
 		// The tint of the difference: light added to the water (a glint, a
@@ -924,10 +895,6 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		px, py := d.rect.plane(cx, cy)
 		cells := image.Rect(bx, by, bx+bw, by+bh)
 		b := Blob{Pixels: cnt, Plane: &PlaneBlob{X: px, Y: py, Cells: cells}, Features: f}
-		if halfWet > 0 {
-			b.Plane.WaterX, b.Plane.WaterY = d.rect.plane(hwx/float64(halfWet), hwy/float64(halfWet))
-			b.Plane.WaterArea = float64(halfWet) * cellArea
-		}
 		if c, ok := d.rect.source(cx, cy); ok {
 			b.Centroid = c
 		}

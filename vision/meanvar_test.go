@@ -43,10 +43,6 @@ type waterScene struct {
 	light float64 // 1 is full sun
 	n     int
 	noise []byte
-	// also is drawn after the body, before the noise: a second part of
-	// it in another colour.
-	also    image.Rectangle
-	alsoCol color.RGBA
 }
 
 func newWaterScene() *waterScene {
@@ -66,11 +62,6 @@ func (s *waterScene) frame(body image.Rectangle, col color.RGBA) gocv.Mat {
 	if !body.Empty() {
 		px := image.Rect(20+body.Min.X, 20+body.Min.Y, 20+body.Max.X, 20+body.Max.Y)
 		gocv.Rectangle(&m, px, color.RGBA{uint8(float64(col.R) * s.light), uint8(float64(col.G) * s.light), uint8(float64(col.B) * s.light), 0}, -1)
-		if !s.also.Empty() {
-			px := image.Rect(20+s.also.Min.X, 20+s.also.Min.Y, 20+s.also.Max.X, 20+s.also.Max.Y)
-			c := s.alsoCol
-			gocv.Rectangle(&m, px, color.RGBA{uint8(float64(c.R) * s.light), uint8(float64(c.G) * s.light), uint8(float64(c.B) * s.light), 0}, -1)
-		}
 	}
 	if s.noise == nil {
 		s.noise = make([]byte, 240*440*3)
@@ -295,30 +286,6 @@ func TestMeanVarBodyOnDeckIsNotWet(t *testing.T) {
 	require.Len(t, blobs, 1)
 	assert.InDelta(t, 0.6, blobs[0].Features.Wet, 0.15)
 	assert.Less(t, blobs[0].Features.Edge, 0.1)
-}
-
-func TestMeanVarWaterPartOfABodyGettingIn(t *testing.T) {
-	// A body getting in at the water's edge (x = 0): its part on the deck
-	// dark and strong, its part in the water faint, as one half under the
-	// surface. The water part is measured against its own peak, not the
-	// deck part's.
-	d := newTestMeanVar(t, nil)
-	defer d.Close()
-	s := newWaterScene()
-	run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
-	body := image.Rect(-15, 85, 25, 115) // x −0.15 to 0.25 m
-	s.also, s.alsoCol = image.Rect(0, 85, 25, 115), color.RGBA{150, 140, 75, 0}
-	blobs, _ := run(t, d, s, 20, body, color.RGBA{40, 50, 60, 0}, nil)
-	require.Len(t, blobs, 1)
-	b := blobs[0]
-	t.Logf("centre %.3f, wet %.2f, water part at %.3f, %.4f m², peak %.0f", b.Plane.X, b.Features.Wet, b.Plane.WaterX, b.Plane.WaterArea, b.Features.Peak)
-	assert.Less(t, b.Plane.X, 0.0, "the centre is on the deck, where the body is strongest")
-	assert.Greater(t, b.Features.Wet, 0.3)
-	// The water part, 0.25 × 0.3 m drawn (blurred by the cells), is found
-	// with its centre in the water.
-	assert.InDelta(t, 0.075, b.Plane.WaterArea, 0.04)
-	assert.InDelta(t, 0.125, b.Plane.WaterX, 0.06)
-	assert.InDelta(t, 1.0, b.Plane.WaterY, 0.06)
 }
 
 func TestRectificationSource(t *testing.T) {

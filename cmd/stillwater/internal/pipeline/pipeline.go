@@ -305,19 +305,9 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 	if name, in := p.zones.excluded(homography.Point{X: b.Centroid.X, Y: b.Centroid.Y}, c); in {
 		return reject("zone", "in exclusion zone", "zone", name)
 	}
-	if !p.Calibration.Inside(c) {
-		// A body getting in from the deck: the short mean smears it along
-		// its path, so its centre stays on the deck for up to a second
-		// after a good part of it is in the water. It counts from the
-		// centre of its strongest part on the water when that part is
-		// large enough and a good share of the whole is on the water.
-		w := homography.Point{X: b.Plane.WaterX, Y: b.Plane.WaterY}
-		if !(b.Plane.WaterArea >= d.MinArea*candidateShare && f.Wet >= straddleWet && p.Calibration.Inside(w)) {
-			return reject("outside", fmt.Sprintf("centre outside the pool (%.2f of it on the water, its water part %.3f m²)", f.Wet, b.Plane.WaterArea))
-		}
-		c = w
-	}
 	switch {
+	case !p.Calibration.Inside(c):
+		return reject("outside", fmt.Sprintf("centre outside the pool (%.2f of it on the water)", f.Wet))
 	case f.Area < d.MinArea*candidateShare:
 		return reject("small", fmt.Sprintf("far smaller than a child's body (%.3f m² < %.3f m²)", f.Area, d.MinArea*candidateShare))
 	case f.Area > d.MaxArea:
@@ -326,14 +316,6 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 	p.notes = append(p.notes, candidateNote{At: c, Features: f})
 	return detection{X: c.X, Y: c.Y, Area: f.Area, Box: b.Box, Hold: b.Plane.Cells, Features: f, FeatureArea: f.Area}, true
 }
-
-// straddleWet is the least share of a candidate on the water (Features.Wet)
-// for one whose centre is on the deck to count from its water part: a
-// child getting in on the development set showed 0.36–0.38 while its
-// centre was still on the deck; a child standing at the edge before
-// getting in (tuning intruder/7) showed 0.10–0.13, and its earlier alarm
-// would have been a false one by the labels.
-const straddleWet = 0.25
 
 // candidateShare is the share of min_area_m2 a candidate of the rectified
 // detector needs to be tracked at all; the track must then show the whole
