@@ -318,7 +318,8 @@ func (j *judge) companionOf(id int, at homography.Point) (int, float64, bool) {
 // much is brighter as darker and the mean contrast stays near zero. A body
 // blocks or reflects light: children raised on the tuning sample showed
 // 0–19 % of their area brighter and contrasts of −0.08 to −0.18 (the
-// development set −0.06 to −0.16), a child at night under infrared light
+// development set's children −0.06 and −0.16 just before their first
+// alerts), a child at night under infrared light
 // is brighter all over; the false targets of the scenario suite's leaf
 // scenes 40–42 % brighter at −0.013 to −0.029, mean score 52–56. A strong
 // candidate (mean score at least twice minScore) is never taken for moved
