@@ -270,7 +270,10 @@ func TestBrowserEveryControlHasAName(t *testing.T) {
 	neg := bt.Eval[int](t, ctx, `[...document.querySelectorAll("button, input, select, a[href]")].filter((e) => e.tabIndex < 0).length`)
 	assert.Zero(t, neg, "every control is in the keyboard's tab order")
 
-	// Keyboard only: Tab to the corner's x field and type into it.
+	// Keyboard only: Tab to the corner's x field and type into it. The
+	// preview of the current calibration comes first: its request could
+	// otherwise reach the backend after the typed one's.
+	bt.WaitFor(t, ctx, "the current calibration's preview", `document.querySelectorAll("#calib-svg polyline.grid").length > 0`)
 	bt.Do(t, ctx, "focus and type", retype("#p-corners-0-x", "100"))
 	bt.WaitFor(t, ctx, "the typed corner in a preview", `document.getElementById("p-corners-0-x").value === "100"`)
 	bt.WaitFor(t, ctx, "the preview", solvedFor([][2]float64{{100, 300}, {530, 300}, {450, 90}, {190, 90}}, 0, 10, 5))
