@@ -316,15 +316,14 @@ func (j *judge) companionOf(id int, at homography.Point) (int, float64, bool) {
 // moved rather than a body: refraction at the surface focuses light into
 // bright bands and leaves dark ones beside them, so over an area about as
 // much is brighter as darker and the mean contrast stays near zero. A body
-// blocks or reflects light: children raised on the tuning sample showed
-// 0–19 % of their area brighter and contrasts of −0.08 to −0.18 (the
-// development set's children −0.06 and −0.16 just before their first
-// alerts), a child at night under infrared light
-// is brighter all over; the false targets of the scenario suite's leaf
-// scenes 40–42 % brighter at −0.013 to −0.029, mean score 52–56. A strong
-// candidate (mean score at least twice minScore) is never taken for moved
-// light: a child both paler and darker than the water can be half and
-// half too.
+// blocks or reflects light. Measured: children raised on the tuning sample
+// showed 0–19 % of their area brighter and contrasts of −0.08 to −0.18;
+// the development set's children −0.06 and −0.16 just before their first
+// alerts; the false targets of the scenario suite's leaf scenes 40–42 %
+// brighter at −0.013 to −0.029, mean score 52–56. A child at night under
+// infrared light is brighter all over. A strong candidate (mean score at
+// least twice minScore) is never taken for moved light: a child both paler
+// and darker than the water can be half and half too.
 func movedLight(f vision.Features, minScore float64) bool {
 	return f.Bright >= movedBright && f.Bright <= 1-movedBright && math.Abs(f.Contrast) < movedContrast && f.Score < 2*minScore
 }
