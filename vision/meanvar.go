@@ -34,6 +34,10 @@ type Rectification struct {
 	MapX, MapY       []float32
 	Water            []byte
 	Src              image.Point
+	// Nadir is the point of the plane under the camera, plane units; nil
+	// when the camera's position is not known. It tells which end of a
+	// candidate is nearest the camera (Features.Foot).
+	Nadir *Point
 }
 
 // Kinds of cell in Rectification.Water.
@@ -286,6 +290,14 @@ type Features struct {
 	// Edge is the distance from the candidate's centre to the nearest
 	// cell that is not water.
 	Edge float64
+	// Foot is how far out on the deck the candidate's end nearest the
+	// camera lies (its part at half contrast), from the nearest water: 0
+	// when that end is on the water or the camera's position is not known
+	// (Rectification.Nadir). Something upright is seen from above as if
+	// laid down on the plane away from the camera, from where it stands:
+	// a person standing on the deck between the camera and the water is
+	// seen over the water, with only the feet on the deck.
+	Foot float64
 }
 
 // PlaneBlob is where a candidate of the rectified detector is on the
@@ -308,6 +320,7 @@ type meanVar struct {
 	waterArea  int
 	wet        []byte    // 1 on the water's cells
 	edge       []float32 // distance to the nearest unwatched cell, cells
+	deckDepth  []float32 // distance of a deck cell from the nearest water cell, cells; 0 on the water
 	frame      gocv.Mat  // CV_8UC3 remapped frame
 	short      gocv.Mat  // CV_32FC3 short temporal mean
 	mean, vari gocv.Mat  // CV_32FC3 background
@@ -406,7 +419,14 @@ func newMeanVar(cfg DetectorConfig, src image.Point) (*meanVar, error) {
 			wb[i] = 0
 		}
 	}
-	d.edge = edgeDistance(d.wet, w, h)
+	d.edge = edgeDistance(d.wet, w, h, 0)
+	if r.Nadir != nil {
+		deck := make([]byte, len(d.wet))
+		for i, v := range d.wet {
+			deck[i] = 1 - v
+		}
+		d.deckDepth = edgeDistance(deck, w, h, float32(w+h))
+	}
 	if err := d.restart(); err != nil {
 		d.Close()
 		return nil, err
@@ -414,19 +434,20 @@ func newMeanVar(cfg DetectorConfig, src image.Point) (*meanVar, error) {
 	return d, nil
 }
 
-// edgeDistance returns, per cell, the distance in cells to the nearest
-// unwatched cell (a two-pass chamfer transform, 3-4 weights).
-func edgeDistance(water []byte, w, h int) []float32 {
+// edgeDistance returns, per cell set in in, the distance in cells to the
+// nearest cell not set (a two-pass chamfer transform), beyond the grid
+// being outside cells away.
+func edgeDistance(in []byte, w, h int, outside float32) []float32 {
 	const inf = float32(1e9)
 	d := make([]float32, w*h)
-	for i, v := range water {
+	for i, v := range in {
 		if v != 0 {
 			d[i] = inf
 		}
 	}
 	at := func(x, y int) float32 {
 		if x < 0 || y < 0 || x >= w || y >= h {
-			return 0
+			return outside
 		}
 		return d[y*w+x]
 	}
@@ -889,6 +910,7 @@ func (d *meanVar) candidates() ([]Blob, error) {
 			// The position is that of the strongest part: where a body
 			// and its shadow on the floor join, the body.
 			cx, cy = hx/float64(half), hy/float64(half)
+			f.Foot = d.foot(lab, int32(k), sc, hthr, image.Rect(bx, by, bx+bw, by+bh))
 		}
 		ci, cj := min(max(int(cx), 0), w-1), min(max(int(cy), 0), d.size.Y-1)
 		f.Edge = float64(d.edge[cj*w+ci]) * cell
@@ -902,6 +924,50 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		out = append(out, b)
 	}
 	return out, nil
+}
+
+// footBand is how far beyond a candidate's nearest point to the camera,
+// m, its near end reaches (Features.Foot): about a foot's length.
+const footBand = 0.15
+
+// foot returns Features.Foot for component k (cells of lab within box
+// scoring at least thr): the mean distance from the water of its cells
+// within footBand of its nearest point to the camera's nadir, plane units;
+// 0 when the nadir is not known.
+func (d *meanVar) foot(lab []int32, k int32, sc []float32, thr float32, box image.Rectangle) float64 {
+	if d.rect.Nadir == nil || d.deckDepth == nil {
+		return 0
+	}
+	w := d.size.X
+	cell := d.rect.Cell
+	// The nadir in cell units.
+	nx, ny := (d.rect.Nadir.X-d.rect.OriginX)/cell, (d.rect.Nadir.Y-d.rect.OriginY)/cell
+	near := math.Inf(1)
+	for y := box.Min.Y; y < box.Max.Y; y++ {
+		for x := box.Min.X; x < box.Max.X; x++ {
+			if i := y*w + x; lab[i] == k && sc[i] >= thr {
+				near = min(near, math.Hypot(float64(x)+0.5-nx, float64(y)+0.5-ny))
+			}
+		}
+	}
+	band := near + footBand/cell
+	var sum float64
+	n := 0
+	for y := box.Min.Y; y < box.Max.Y; y++ {
+		for x := box.Min.X; x < box.Max.X; x++ {
+			if i := y*w + x; lab[i] == k && sc[i] >= thr && math.Hypot(float64(x)+0.5-nx, float64(y)+0.5-ny) <= band {
+				// A deck cell beside the water is half a cell from its edge.
+				if dd := d.deckDepth[i]; dd > 0 {
+					sum += float64(dd) - 0.5
+				}
+				n++
+			}
+		}
+	}
+	if n == 0 {
+		return 0
+	}
+	return sum / float64(n) * cell
 }
 
 // sourceBox returns the source-pixel bounding box of a box of cells and

@@ -288,6 +288,39 @@ func TestMeanVarBodyOnDeckIsNotWet(t *testing.T) {
 	assert.Less(t, blobs[0].Features.Edge, 0.1)
 }
 
+func TestMeanVarFootOnTheDeck(t *testing.T) {
+	// A long dark body from x = -0.18 m (on the deck, which is 0.2 m wide
+	// here) to x = 0.5 m across the edge at x = 0, its centre on the water.
+	// Its end nearest the camera is on the deck when the camera is beyond
+	// x = 0, on the water when it is beyond x = 4.
+	for _, c := range []struct {
+		name  string
+		nadir *Point
+		foot  float64
+	}{
+		// The cells within footBand of the near end: x from -0.175 to
+		// -0.025 m, on average 0.1 m from the water.
+		{"camera beyond the deck end", &Point{X: -4, Y: 1}, 0.1},
+		{"camera beyond the far end", &Point{X: 8, Y: 1}, 0},
+		{"camera position not known", nil, 0},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			g := squareGrid()
+			g.Nadir = c.nadir
+			fd, err := newFrameDetector(DetectorConfig{Method: "meanvar", Grid: g, MeanVar: MeanVarConfig{FPS: 10}}, image.Pt(440, 240))
+			require.NoError(t, err)
+			d := fd.(*meanVar)
+			defer d.Close()
+			s := newWaterScene()
+			run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
+			blobs, _ := run(t, d, s, 20, image.Rect(-18, 85, 50, 115), color.RGBA{40, 50, 60, 0}, nil)
+			require.Len(t, blobs, 1)
+			assert.Greater(t, blobs[0].Plane.X, 0.0, "centre on the water")
+			assert.InDelta(t, c.foot, blobs[0].Features.Foot, 0.03)
+		})
+	}
+}
+
 func TestRectificationSource(t *testing.T) {
 	r := squareGrid()
 	// Cell units: the centre of cell (i, j) is (i+0.5, j+0.5); pool metre
@@ -314,7 +347,7 @@ func TestEdgeDistance(t *testing.T) {
 			w[y*7+x] = 1
 		}
 	}
-	d := edgeDistance(w, 7, 7)
+	d := edgeDistance(w, 7, 7, 0)
 	assert.InDelta(t, 3, d[3*7+3], 1e-6)
 	assert.InDelta(t, 1, d[1*7+3], 1e-6)
 	assert.Zero(t, d[0])

@@ -149,10 +149,14 @@ func rectification(c *homography.Calibration, cell, deck float64) (*vision.Recti
 			}
 		}
 	}
-	return &vision.Rectification{
+	r := &vision.Rectification{
 		Cols: g.CellsX, Rows: g.CellsY, Cell: g.Cell, OriginX: g.Origin.X, OriginY: g.Origin.Y,
 		MapX: g.MapX, MapY: g.MapY, Water: water, Src: c.Frame(),
-	}, nil
+	}
+	if cam, ok, _ := c.Camera(); ok {
+		r.Nadir = &vision.Point{X: cam.X, Y: cam.Y}
+	}
+	return r, nil
 }
 
 // ContourArea returns the area of a contour in recorded pixels on the water

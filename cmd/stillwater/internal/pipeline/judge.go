@@ -55,6 +55,10 @@ type judgeRules struct {
 	// is the raised body's shadow on the floor, its submerged part seen
 	// displaced, or its wake. 0 is off.
 	Companion float64
+	// Nadir is the point of the pool plane under the camera, nil when the
+	// camera's position is not known: a body standing on the deck is seen
+	// over the water beyond it, away from the camera.
+	Nadir *homography.Point
 }
 
 // trackHistory is one track's recent candidates.
@@ -209,11 +213,16 @@ func (j *judge) eligible(id int) (bool, string) {
 				if h.crossed && b.at.Dist(h.from) <= trailRadius {
 					continue
 				}
+				d := b.at.Dist(at)
+				if d <= r.DeckRadius && !h.crossed && beyond(r.Nadir, b.at, at) {
+					why = fmt.Sprintf("%.1f m beyond someone on the deck, seen from the camera: their upright body over the water", d)
+					break
+				}
 				// Nearer than deckSelf it is the track's own body, part of it
 				// still on the deck, unless the track has no colour of its
 				// own and never lay on the deck: then it is the shadow of
 				// what stands at the edge (a bird on the coping).
-				if d := b.at.Dist(at); d <= r.DeckRadius && (d > deckSelf || !h.crossed && colourless(f)) {
+				if d <= r.DeckRadius && (d > deckSelf || !h.crossed && colourless(f)) {
 					why = fmt.Sprintf("someone is on the deck %.1f m away: a shadow until they are in the water", d)
 					break
 				}
@@ -344,6 +353,28 @@ func colourless(f vision.Features) bool {
 // for colour to tell light from a body: a night infrared picture is grey.
 const minWaterChroma = 5
 
+// beyond reports whether at lies away from the camera behind a body seen
+// on the deck at deck, within beyondAngle of the line from the point
+// under the camera (nadir) through it: where the upright body standing
+// there is seen on the plane. False when the nadir is not known.
+func beyond(nadir *homography.Point, deck, at homography.Point) bool {
+	if nadir == nil {
+		return false
+	}
+	rx, ry := deck.X-nadir.X, deck.Y-nadir.Y
+	ax, ay := at.X-deck.X, at.Y-deck.Y
+	rn, an := math.Hypot(rx, ry), math.Hypot(ax, ay)
+	if rn == 0 || an == 0 {
+		return false
+	}
+	return (rx*ax+ry*ay)/(rn*an) >= math.Cos(beyondAngle*math.Pi/180)
+}
+
+// beyondAngle is how far, degrees, from the line away from the camera a
+// track may lie and still be the upright body of someone on the deck:
+// the body leans and the candidates' centres wander.
+const beyondAngle = 30
+
 // trailRadius is how far from where a track came over the edge a body on
 // the deck is its own trail, m: the short mean holds the last second of a
 // child walking in at up to 1 m/s (common practice for a toddler's walk,
@@ -370,7 +401,18 @@ func deckBodies(notes []candidateNote, min float64) []homography.Point {
 }
 
 // judgeRulesOf returns the rules tracks are judged by.
-func judgeRulesOf(d config.DetectConfig) judgeRules {
-	return judgeRules{MinArea: d.MinArea, MaxArea: d.MaxArea, MinScore: d.MinScore, MinTint: d.MinTint, MaxLength: d.MaxLength, MaxSpeed: d.MaxSpeed,
+// nadir is the point of the pool plane under the camera, nil when the
+// camera's position is neither measured nor estimable.
+func judgeRulesOf(d config.DetectConfig, nadir *homography.Point) judgeRules {
+	return judgeRules{Nadir: nadir, MinArea: d.MinArea, MaxArea: d.MaxArea, MinScore: d.MinScore, MinTint: d.MinTint, MaxLength: d.MaxLength, MaxSpeed: d.MaxSpeed,
 		DeckRadius: max(0, d.DeckRadius), Companion: max(0, d.Companion), DeckMemory: time.Second, DeckMinArea: d.MinArea}
+}
+
+// nadirOf returns the point of the pool plane under the camera, nil when
+// the calibration does not place the camera.
+func nadirOf(cal *homography.Calibration) *homography.Point {
+	if cam, ok, _ := cal.Camera(); ok {
+		return &homography.Point{X: cam.X, Y: cam.Y}
+	}
+	return nil
 }

@@ -20,7 +20,7 @@ func body() vision.Features {
 }
 
 func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
-	rules := judgeRulesOf(config.DefaultDetect())
+	rules := judgeRulesOf(config.DefaultDetect(), nil)
 	require.Equal(t, 2.5, rules.Companion)
 	cases := []struct {
 		name      string
@@ -67,7 +67,7 @@ func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
 // walker's edge in the watched ring of a tuning scene: area 0.16 m², mean
 // score 38); a speck does not, nor a candidate over the water.
 func TestDeckBodies(t *testing.T) {
-	r := judgeRulesOf(config.DefaultDetect())
+	r := judgeRulesOf(config.DefaultDetect(), nil)
 	walker := vision.Features{Area: 0.16, Half: 0.16, Score: 38}
 	speck := vision.Features{Area: 0.01, Half: 0.01, Score: 80}
 	notes := []candidateNote{
@@ -84,7 +84,7 @@ func TestDeckBodies(t *testing.T) {
 // scene held its child back 1.5 s for it); a shadow that appeared on the
 // water beside someone standing there did not come over the edge.
 func TestJudgeOwnTrailOnTheDeck(t *testing.T) {
-	r := judgeRulesOf(config.DefaultDetect())
+	r := judgeRulesOf(config.DefaultDetect(), nil)
 	for _, c := range []struct {
 		name     string
 		firstWet float64 // share of the track's first candidate on the water
@@ -151,7 +151,7 @@ func TestJudgeShadowBesideAnUnraisedBody(t *testing.T) {
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
-			r := judgeRulesOf(config.DefaultDetect())
+			r := judgeRulesOf(config.DefaultDetect(), nil)
 			r.Companion = c.companion
 			j := newJudge(time.Second, r, nil)
 			for i := 0; i < 8; i++ {
@@ -195,7 +195,7 @@ func TestJudgeShadowOfWhatStandsAtTheEdge(t *testing.T) {
 		{"no colour in the picture: nothing to tell", grey, 1, true},
 	} {
 		t.Run(c.name, func(t *testing.T) {
-			j := newJudge(time.Second, judgeRulesOf(config.DefaultDetect()), nil)
+			j := newJudge(time.Second, judgeRulesOf(config.DefaultDetect(), nil), nil)
 			for i := 0; i <= 8; i++ {
 				now := time.Duration(i) * 100 * time.Millisecond
 				f := c.f
@@ -240,9 +240,63 @@ func TestJudgeLightMovedByTheWaves(t *testing.T) {
 		{"half pale, half dark, strong", with(0.5, 0.01, 150), true},
 	} {
 		t.Run(c.name, func(t *testing.T) {
-			j := newJudge(time.Second, judgeRulesOf(config.DefaultDetect()), nil)
+			j := newJudge(time.Second, judgeRulesOf(config.DefaultDetect(), nil), nil)
 			why := j.unlikeBody(c.f, 0.1)
 			assert.Equal(t, c.ok, why == "", why)
 		})
 	}
+}
+
+// TestJudgeUprightBodyOnTheDeck: someone standing on the deck between the
+// camera and the water is seen over the water, laid away from the camera
+// from where they stand (tuning scene intruder/11 at night: the lit upper
+// body a candidate of its own 0.5 m beyond the dark one at the edge). The
+// track beyond them does not alarm; one beside them, or on the camera's
+// side, is judged as before.
+func TestJudgeUprightBodyOnTheDeck(t *testing.T) {
+	child := body()
+	child.Chroma, child.Water = 6.9, 18.5
+	camera := &homography.Point{X: 3.2, Y: 7.5}
+	deck := homography.Point{X: 2.0, Y: 3.9} // 0.3 m onto the deck of a 3.6 m wide pool
+	for _, c := range []struct {
+		name     string
+		nadir    *homography.Point
+		at       homography.Point
+		eligible bool
+	}{
+		{"beyond them, away from the camera", camera, homography.Point{X: 1.9, Y: 3.4}, false},
+		{"beside them along the edge", camera, homography.Point{X: 2.55, Y: 3.5}, true},
+		{"camera position not known", nil, homography.Point{X: 1.9, Y: 3.4}, true},
+		{"camera across the pool: the body is seen over the deck", &homography.Point{X: 3.2, Y: -4}, homography.Point{X: 1.9, Y: 3.4}, true},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			j := newJudge(time.Second, judgeRulesOf(config.DefaultDetect(), c.nadir), nil)
+			for i := 0; i <= 8; i++ {
+				now := time.Duration(i) * 100 * time.Millisecond
+				f := child
+				f.Wet = 1
+				j.observe(now, []poolTrack{{ID: 1, X: c.at.X, Y: c.at.Y, Last: now, Features: f}}, []homography.Point{deck})
+			}
+			ok, why := j.eligible(1)
+			assert.Equal(t, c.eligible, ok, why)
+		})
+	}
+}
+
+func TestBeyond(t *testing.T) {
+	nadir := &homography.Point{X: 0, Y: 0}
+	deck := homography.Point{X: 0, Y: 4}
+	for _, c := range []struct {
+		at   homography.Point
+		want bool
+	}{
+		{homography.Point{X: 0, Y: 5}, true},    // straight on
+		{homography.Point{X: 0.5, Y: 5}, true},  // 27° off the line
+		{homography.Point{X: 0.7, Y: 5}, false}, // 35° off
+		{homography.Point{X: 0, Y: 3}, false},   // on the camera's side
+		{homography.Point{X: 0, Y: 4}, false},   // the same place
+	} {
+		assert.Equal(t, c.want, beyond(nadir, deck, c.at), "%v", c.at)
+	}
+	assert.False(t, beyond(nil, deck, homography.Point{X: 0, Y: 5}), "no nadir")
 }

@@ -85,7 +85,7 @@ func New(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoc
 		zones:       zones,
 		tracker:     track.NewTracker[vision.Features](track.TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Duration(d.ClearAfter), Drift: unseenDrift(d.Method)}),
 		alarm:       alert.NewAlarm(alert.AlarmConfig{Persist: time.Duration(d.Persist), UpdateEvery: time.Duration(d.UpdateEvery), ClearAfter: time.Duration(d.ClearAfter), MinHitRatio: alert.DefaultAlarm().MinHitRatio, MaxSpeed: alert.DefaultAlarm().MaxSpeed}, fps),
-		judge:       newJudge(time.Duration(d.Persist), judgeRulesOf(d), log),
+		judge:       newJudge(time.Duration(d.Persist), judgeRulesOf(d, nadirOf(cal)), log),
 		alarmed:     map[int]bool{},
 		log:         log,
 		epoch:       epoch,
@@ -277,6 +277,7 @@ func (p *Processor) Reload(cam config.CameraConfig) error {
 		return err
 	}
 	p.cam, p.Calibration, p.zones = cam, cal, zones
+	p.judge.rules = judgeRulesOf(cam.Detect, nadirOf(cal))
 	return nil
 }
 
@@ -308,6 +309,8 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 	switch {
 	case !p.Calibration.Inside(c):
 		return reject("outside", fmt.Sprintf("centre outside the pool (%.2f of it on the water)", f.Wet))
+	case f.Foot >= footOnDeck:
+		return reject("standing", fmt.Sprintf("stands on the deck: its end nearest the camera is %.2f m from the water, and what stands upright there is seen over the water", f.Foot))
 	case f.Area < d.MinArea*candidateShare:
 		return reject("small", fmt.Sprintf("far smaller than a child's body (%.3f m² < %.3f m²)", f.Area, d.MinArea*candidateShare))
 	case f.Area > d.MaxArea:
@@ -316,6 +319,12 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 	p.notes = append(p.notes, candidateNote{At: c, Features: f})
 	return detection{X: c.X, Y: c.Y, Area: f.Area, Box: b.Box, Hold: b.Plane.Cells, Features: f, FeatureArea: f.Area}, true
 }
+
+// footOnDeck is how far out on the deck, m, a candidate's end nearest the
+// camera (vision.Features.Foot) must lie for it to stand there: a child in
+// the water holding the coping reaches onto it with hands and arms, less
+// than this (from memory: a toddler's forearm and hand are about 0.2 m).
+const footOnDeck = 0.3
 
 // candidateShare is the share of min_area_m2 a candidate of the rectified
 // detector needs to be tracked at all; the track must then show the whole
@@ -326,5 +335,5 @@ const candidateShare = 0.35
 // featureArgs are a candidate's features as log attributes.
 func featureArgs(f vision.Features) []any {
 	return []any{"area_m2", round4(f.Area), "core_m2", round4(f.Core), "score", Round3(f.Score), "peak", Round3(f.Peak),
-		"half_m2", round4(f.Half), "contrast", Round3(f.Contrast), "bright", Round3(f.Bright), "chroma", Round3(f.Chroma), "chroma_top", Round3(f.ChromaTop), "water_chroma", Round3(f.Water), "tint", Round3(f.Tint), "wet", Round3(f.Wet), "length_m", Round3(f.Length), "width_m", Round3(f.Width), "edge_m", Round3(f.Edge)}
+		"half_m2", round4(f.Half), "contrast", Round3(f.Contrast), "bright", Round3(f.Bright), "chroma", Round3(f.Chroma), "chroma_top", Round3(f.ChromaTop), "water_chroma", Round3(f.Water), "tint", Round3(f.Tint), "wet", Round3(f.Wet), "length_m", Round3(f.Length), "width_m", Round3(f.Width), "edge_m", Round3(f.Edge), "foot_m", Round3(f.Foot)}
 }
