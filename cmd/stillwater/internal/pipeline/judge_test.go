@@ -300,3 +300,35 @@ func TestBeyond(t *testing.T) {
 	}
 	assert.False(t, beyond(nil, deck, homography.Point{X: 0, Y: 5}), "no nadir")
 }
+
+// TestJudgeLateGrowth: a track seen for seconds at about the least body
+// area that only now crosses it is floating debris (whole tuning set:
+// leaves at 0.030–0.035 m² after 4–120 s); a child shows its whole body
+// within seconds, and a small one that raises at once is not held back
+// (development H4: 0.039 m², 0.7 s).
+func TestJudgeLateGrowth(t *testing.T) {
+	for _, c := range []struct {
+		name string
+		half float64
+		age  time.Duration
+		ok   bool
+	}{
+		{"a leaf after 20 s, tuning quiet/10", 0.0306, 20 * time.Second, false},
+		{"a leaf after 4.3 s, tuning intruder/24", 0.0331, 4300 * time.Millisecond, false},
+		{"a small child at once, development H4", 0.0394, 700 * time.Millisecond, true},
+		{"a child held back 6 s, tuning intruder/7", 0.0844, 6 * time.Second, true},
+		{"just below the late floor after 4 s", 0.040, 4 * time.Second, false},
+		{"just above it", 0.041, 4 * time.Second, true},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			j := newJudge(700*time.Millisecond, judgeRulesOf(config.DefaultDetect(), nil), nil)
+			f := body()
+			f.Half, f.Wet = c.half, 1
+			for now := time.Duration(0); now <= c.age; now += 100 * time.Millisecond {
+				j.observe(now, []poolTrack{{ID: 1, X: 2, Y: 1, Last: now, Features: f}}, nil)
+			}
+			ok, why := j.eligible(1)
+			assert.Equal(t, c.ok, ok, why)
+		})
+	}
+}
