@@ -71,8 +71,8 @@ type trackHistory struct {
 	from    homography.Point
 	crossed bool
 	born    time.Duration // media time of its first candidate
-	raised  bool   // the track has raised an alarm: it stays eligible
-	verdict string // the last reason it was not eligible, "" when it was
+	raised  bool          // the track has raised an alarm: it stays eligible
+	verdict string        // the last reason it was not eligible, "" when it was
 }
 
 // deckBody is a candidate whose centre was on the deck.
