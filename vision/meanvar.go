@@ -298,6 +298,13 @@ type Features struct {
 	// a person standing on the deck between the camera and the water is
 	// seen over the water, with only the feet on the deck.
 	Foot float64
+	// Present is how much of the candidate is there in the current frame:
+	// its difference from the expected water in this frame over its
+	// difference in the short mean, on its part at half contrast. About 1
+	// for something that stays, near 0 for the trail of something that has
+	// left (the short mean still holds it), above 1 where something has
+	// just arrived.
+	Present float64
 }
 
 // PlaneBlob is where a candidate of the rectified detector is on the
@@ -766,6 +773,10 @@ func (d *meanVar) candidates() ([]Blob, error) {
 	if err != nil {
 		return nil, err
 	}
+	fr, err := d.frame.DataPtrUint8()
+	if err != nil {
+		return nil, err
+	}
 	cell := d.rect.Cell
 	cellArea := cell * cell
 	thr := float32(d.cfg.Threshold)
@@ -843,7 +854,7 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		// close to the object's own outline, where Area also counts the
 		// blur around it.
 		half, bright, wet := 0, 0, 0
-		var hx, hy float64
+		var hx, hy, nowDiff, meanDiff float64
 		hthr := max(float32(d.cfg.Low), peak/4)
 		for y := by; y < by+bh; y++ {
 			for x := bx; x < bx+bw; x++ {
@@ -855,6 +866,11 @@ func (d *meanVar) candidates() ([]Blob, error) {
 					half++
 					hx += float64(x) + 0.5
 					hy += float64(y) + 0.5
+					for c := 0; c < 3; c++ {
+						e := float64(gn[3*i+c] * mn[3*i+c])
+						nowDiff += math.Abs(float64(fr[3*i+c]) - e)
+						meanDiff += math.Abs(float64(sh[3*i+c]) - e)
+					}
 				}
 				if con[i] > 0 {
 					bright++
@@ -905,6 +921,9 @@ func (d *meanVar) candidates() ([]Blob, error) {
 			// An ellipse's axis is 4 standard deviations; a cell adds its width.
 			Length: (4*math.Sqrt(l1) + 1) * cell,
 			Width:  (4*math.Sqrt(l2) + 1) * cell,
+		}
+		if meanDiff > 0 {
+			f.Present = min(2, nowDiff/meanDiff)
 		}
 		if half > 0 {
 			// The position is that of the strongest part: where a body

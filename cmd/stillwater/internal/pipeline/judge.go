@@ -75,10 +75,12 @@ type trackHistory struct {
 	verdict string        // the last reason it was not eligible, "" when it was
 }
 
-// deckBody is a candidate whose centre was on the deck.
+// deckBody is a candidate whose centre was on the deck; trails counts
+// the frames since in which only a trail was seen near it.
 type deckBody struct {
-	at homography.Point
-	t  time.Duration
+	at     homography.Point
+	t      time.Duration
+	trails int
 }
 
 func newJudge(window time.Duration, rules judgeRules, log *slog.Logger) *judge {
@@ -90,8 +92,9 @@ func newJudge(window time.Duration, rules judgeRules, log *slog.Logger) *judge {
 
 // observe records the candidates of the tracks seen at media time now,
 // and the bodies seen on the deck (deck), and forgets tracks that are
-// gone.
-func (j *judge) observe(now time.Duration, tracks []poolTrack, deck []homography.Point) {
+// gone and bodies remembered on the deck near where one has left (left:
+// the trails the short mean still holds).
+func (j *judge) observe(now time.Duration, tracks []poolTrack, deck, left []homography.Point) {
 	live := map[int]bool{}
 	for _, t := range tracks {
 		live[t.ID] = true
@@ -121,6 +124,9 @@ func (j *judge) observe(now time.Duration, tracks []poolTrack, deck []homography
 	keep := j.deck[:0]
 	for _, b := range j.deck {
 		if now-b.t <= j.rules.DeckMemory {
+			if near(b.at, left, leftRadius) {
+				b.trails++
+			}
 			keep = append(keep, b)
 		}
 	}
@@ -161,6 +167,8 @@ func (j *judge) summary(id int) (vision.Features, int, float64) {
 		Length:    med(func(f vision.Features) float64 { return f.Length }),
 		Width:     med(func(f vision.Features) float64 { return f.Width }),
 		Edge:      med(func(f vision.Features) float64 { return f.Edge }),
+		Foot:      med(func(f vision.Features) float64 { return f.Foot }),
+		Present:   med(func(f vision.Features) float64 { return f.Present }),
 	}
 	speed := 0.0
 	if n := len(h.times); n > 1 {
@@ -211,6 +219,7 @@ func (j *judge) eligible(id int) (bool, string) {
 		} else if id2, d, ok := j.rivalOf(id, at, f); ok {
 			why = fmt.Sprintf("%.1f m from track %d, which has colours of its own where this has none: its shadow on the floor", d, id2)
 		} else {
+			here := h.feats[len(h.feats)-1].Present >= trackPresent
 			for _, b := range j.deck {
 				// A body that came over the edge leaves its own trail on the
 				// deck where it got in: the short mean still holds it there.
@@ -221,6 +230,11 @@ func (j *judge) eligible(id int) (bool, string) {
 				if d <= r.DeckRadius && !h.crossed && beyond(r.Nadir, b.at, at) {
 					why = fmt.Sprintf("%.1f m beyond someone on the deck, seen from the camera: their upright body over the water", d)
 					break
+				}
+				// Someone who has left the deck holds back only what is
+				// leaving too: their shadow, still in the short mean.
+				if b.trails >= leftFrames && here {
+					continue
 				}
 				// Nearer than deckSelf it is the track's own body, part of it
 				// still on the deck, unless the track has no colour of its
@@ -406,17 +420,57 @@ const trailRadius = 1.2
 const deckSelf = 0.7
 
 // deckBodies returns the positions of this frame's candidates that are
-// bodies on the deck: centre off the water, area at least min. A faint
-// one counts too: someone walking on the deck beyond the watched ring
-// shows only a weak edge of themselves in it.
-func deckBodies(notes []candidateNote, min float64) []homography.Point {
-	var out []homography.Point
+// bodies on the deck (centre off the water, area at least min), and of
+// those that are the trails of bodies that have left (less than
+// presentMin of them still there: vision.Features.Present). A faint one
+// counts too: someone walking on the deck beyond the watched ring shows
+// only a weak edge of themselves in it.
+func deckBodies(notes []candidateNote, min float64) (bodies, left []homography.Point) {
 	for _, n := range notes {
-		if n.Outside && n.Features.Area >= min && !math.IsNaN(n.At.X) {
-			out = append(out, n.At)
+		if !n.Outside || n.Features.Area < min || math.IsNaN(n.At.X) {
+			continue
+		}
+		if n.Features.Present < presentMin {
+			left = append(left, n.At)
+			continue
+		}
+		bodies = append(bodies, n.At)
+	}
+	return bodies, left
+}
+
+// presentMin is the least share of a candidate on the deck that must be
+// there in the current frame for it to be a body there (Features.Present):
+// measured on tuning scene intruder/30, a child standing and walking on
+// the deck 0.56–2, its trail in the short mean once it was in the water
+// 0.17–0.32.
+const presentMin = 0.4
+
+// trackPresent is the least share of a track's latest candidate there
+// in the current frame (Features.Present) for it to be let go by someone
+// who has left the deck: a body that stays, or has just arrived, is
+// there; the shadow of someone who walked away is leaving with them.
+const trackPresent = 0.7
+
+// leftFrames is in how many frames a trail must be seen near where a
+// body was last seen on the deck for it to have left: someone who stood
+// still and starts to walk away leaves a trail where they stood while
+// they are still there.
+const leftFrames = 3
+
+// leftRadius is how near, m, a trail on the deck must be to a body
+// remembered there to say it has left: the trail spans the last second
+// of a walk.
+const leftRadius = 0.6
+
+// near reports whether p lies within r of any of ps.
+func near(p homography.Point, ps []homography.Point, r float64) bool {
+	for _, q := range ps {
+		if p.Dist(q) <= r {
+			return true
 		}
 	}
-	return out
+	return false
 }
 
 // judgeRulesOf returns the rules tracks are judged by.

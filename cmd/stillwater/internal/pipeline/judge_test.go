@@ -47,7 +47,7 @@ func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
 				if !c.gone || i < 4 {
 					tracks = append(tracks, poolTrack{ID: 1, X: 3, Y: 3, Last: now, Features: body()})
 				}
-				j.observe(now, tracks, nil)
+				j.observe(now, tracks, nil, nil)
 				if i == 2 && c.raised {
 					ok, why := j.eligible(1)
 					require.True(t, ok, why)
@@ -65,18 +65,67 @@ func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
 
 // TestDeckBodies: someone on the deck counts, even faintly seen (a
 // walker's edge in the watched ring of a tuning scene: area 0.16 m², mean
-// score 38); a speck does not, nor a candidate over the water.
+// score 38); a speck does not, nor a candidate over the water; the trail
+// of someone who has left (tuning intruder/30 once the child was in the
+// water: 0.17–0.32 of it still there) says they left.
 func TestDeckBodies(t *testing.T) {
 	r := judgeRulesOf(config.DefaultDetect(), nil)
-	walker := vision.Features{Area: 0.16, Half: 0.16, Score: 38}
-	speck := vision.Features{Area: 0.01, Half: 0.01, Score: 80}
+	walker := vision.Features{Area: 0.16, Half: 0.16, Score: 38, Present: 0.9}
+	speck := vision.Features{Area: 0.01, Half: 0.01, Score: 80, Present: 1}
+	trail := vision.Features{Area: 0.25, Half: 0.1, Score: 90, Present: 0.2}
 	notes := []candidateNote{
 		{At: homography.Point{X: -0.4, Y: 1}, Features: walker, Outside: true},
 		{At: homography.Point{X: -0.3, Y: 2.4}, Features: speck, Outside: true},
 		{At: homography.Point{X: 2, Y: 2}, Features: walker},
+		{At: homography.Point{X: 4.2, Y: 1}, Features: trail, Outside: true},
 	}
-	got := deckBodies(notes, r.DeckMinArea)
-	assert.Equal(t, []homography.Point{{X: -0.4, Y: 1}}, got)
+	bodies, left := deckBodies(notes, r.DeckMinArea)
+	assert.Equal(t, []homography.Point{{X: -0.4, Y: 1}}, bodies)
+	assert.Equal(t, []homography.Point{{X: 4.2, Y: 1}}, left)
+}
+
+// TestJudgeDeckBodyLeft: a child on the deck holds back a track on the
+// water 1 m away; once only its trail is seen where it stood, in three
+// frames, it has left, and a track that is there in the current frame may
+// alarm at once rather than a second later (tuning intruder/30: 1.8 s to
+// 1.15 s). A track that is leaving too (an adult's shadow as they walk
+// away, tuning quiet/1) stays held, and one trail frame is not enough:
+// someone who stood still leaves a trail as they start to move.
+func TestJudgeDeckBodyLeft(t *testing.T) {
+	where := homography.Point{X: 4.3, Y: 1.1}
+	for _, c := range []struct {
+		name    string
+		trail   homography.Point
+		frames  int     // frames with the trail
+		present float64 // the track's share there in the current frame
+		ok      bool
+	}{
+		{"its trail where it stood", where, 5, 1, true},
+		{"a trail elsewhere on the deck", homography.Point{X: -0.4, Y: 1}, 5, 1, false},
+		{"the track leaves too", where, 5, 0.3, false},
+		{"a trail in two frames", where, 2, 1, false},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			j := newJudge(700*time.Millisecond, judgeRulesOf(config.DefaultDetect(), nil), nil)
+			f := body()
+			f.Wet, f.Present = 1, c.present
+			deck := []homography.Point{{X: 4.2, Y: 1}}
+			now := time.Duration(0)
+			for ; now < 500*time.Millisecond; now += 100 * time.Millisecond {
+				j.observe(now, []poolTrack{{ID: 1, X: 3.2, Y: 1, Last: now, Features: f}}, deck, nil)
+			}
+			for i := 0; i < 6; i++ {
+				var left []homography.Point
+				if i < c.frames {
+					left = []homography.Point{c.trail}
+				}
+				j.observe(now, []poolTrack{{ID: 1, X: 3.2, Y: 1, Last: now, Features: f}}, nil, left)
+				now += 100 * time.Millisecond
+			}
+			ok, why := j.eligible(1)
+			assert.Equal(t, c.ok, ok, why)
+		})
+	}
 }
 
 // TestJudgeOwnTrailOnTheDeck: a child who walked in over the edge leaves
@@ -105,7 +154,7 @@ func TestJudgeOwnTrailOnTheDeck(t *testing.T) {
 				// The track gets in at (0.2, 2) m and moves to (0.6, 2) m;
 				// a body stays on the deck at (-0.5, 2) m, 1.1 m away.
 				x := 0.2 + 0.05*float64(i)
-				j.observe(now, []poolTrack{{ID: 1, X: x, Y: 2, Last: now, Features: f}}, []homography.Point{{X: -0.5, Y: 2}})
+				j.observe(now, []poolTrack{{ID: 1, X: x, Y: 2, Last: now, Features: f}}, []homography.Point{{X: -0.5, Y: 2}}, nil)
 			}
 			ok, why := j.eligible(1)
 			assert.Equal(t, c.eligible, ok, why)
@@ -159,7 +208,7 @@ func TestJudgeShadowBesideAnUnraisedBody(t *testing.T) {
 				j.observe(now, []poolTrack{
 					{ID: 1, X: 5, Y: 2.5, Last: now, Features: c.one},
 					{ID: 2, X: c.at[0], Y: c.at[1], Last: now, Features: c.two},
-				}, nil)
+				}, nil, nil)
 			}
 			ok1, why1 := j.eligible(1)
 			ok2, why2 := j.eligible(2)
@@ -205,7 +254,7 @@ func TestJudgeShadowOfWhatStandsAtTheEdge(t *testing.T) {
 				}
 				// The track at (1.55, 0.25) m; the body on the coping at
 				// (1.68, -0.15) m, 0.42 m away.
-				j.observe(now, []poolTrack{{ID: 1, X: 1.55, Y: 0.25, Last: now, Features: f}}, []homography.Point{{X: 1.68, Y: -0.15}})
+				j.observe(now, []poolTrack{{ID: 1, X: 1.55, Y: 0.25, Last: now, Features: f}}, []homography.Point{{X: 1.68, Y: -0.15}}, nil)
 			}
 			ok, why := j.eligible(1)
 			assert.Equal(t, c.eligible, ok, why)
@@ -275,7 +324,7 @@ func TestJudgeUprightBodyOnTheDeck(t *testing.T) {
 				now := time.Duration(i) * 100 * time.Millisecond
 				f := child
 				f.Wet = 1
-				j.observe(now, []poolTrack{{ID: 1, X: c.at.X, Y: c.at.Y, Last: now, Features: f}}, []homography.Point{deck})
+				j.observe(now, []poolTrack{{ID: 1, X: c.at.X, Y: c.at.Y, Last: now, Features: f}}, []homography.Point{deck}, nil)
 			}
 			ok, why := j.eligible(1)
 			assert.Equal(t, c.eligible, ok, why)
@@ -325,7 +374,7 @@ func TestJudgeLateGrowth(t *testing.T) {
 			f := body()
 			f.Half, f.Wet = c.half, 1
 			for now := time.Duration(0); now <= c.age; now += 100 * time.Millisecond {
-				j.observe(now, []poolTrack{{ID: 1, X: 2, Y: 1, Last: now, Features: f}}, nil)
+				j.observe(now, []poolTrack{{ID: 1, X: 2, Y: 1, Last: now, Features: f}}, nil, nil)
 			}
 			ok, why := j.eligible(1)
 			assert.Equal(t, c.ok, ok, why)

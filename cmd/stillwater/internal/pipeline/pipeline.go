@@ -165,7 +165,8 @@ func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectan
 	tracks := p.tracker.Update(r.Media, dets)
 	p.Tracks = tracks
 	p.Clock.lap(StepTrack)
-	p.judge.observe(r.Media, tracks, deckBodies(p.notes, p.judge.rules.DeckMinArea))
+	bodies, left := deckBodies(p.notes, p.judge.rules.DeckMinArea)
+	p.judge.observe(r.Media, tracks, bodies, left)
 	obs := make([]alert.Observation, 0, len(tracks))
 	var hold []image.Rectangle
 	for _, t := range tracks {
@@ -335,5 +336,5 @@ const candidateShare = 0.35
 // featureArgs are a candidate's features as log attributes.
 func featureArgs(f vision.Features) []any {
 	return []any{"area_m2", round4(f.Area), "core_m2", round4(f.Core), "score", Round3(f.Score), "peak", Round3(f.Peak),
-		"half_m2", round4(f.Half), "contrast", Round3(f.Contrast), "bright", Round3(f.Bright), "chroma", Round3(f.Chroma), "chroma_top", Round3(f.ChromaTop), "water_chroma", Round3(f.Water), "tint", Round3(f.Tint), "wet", Round3(f.Wet), "length_m", Round3(f.Length), "width_m", Round3(f.Width), "edge_m", Round3(f.Edge), "foot_m", Round3(f.Foot)}
+		"half_m2", round4(f.Half), "contrast", Round3(f.Contrast), "bright", Round3(f.Bright), "chroma", Round3(f.Chroma), "chroma_top", Round3(f.ChromaTop), "water_chroma", Round3(f.Water), "tint", Round3(f.Tint), "wet", Round3(f.Wet), "length_m", Round3(f.Length), "width_m", Round3(f.Width), "edge_m", Round3(f.Edge), "foot_m", Round3(f.Foot), "present", Round3(f.Present)}
 }
