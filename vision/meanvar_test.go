@@ -297,12 +297,14 @@ func TestMeanVarFootOnTheDeck(t *testing.T) {
 		name  string
 		nadir *Point
 		foot  float64
+		near  float64 // x of the near end's centre, NaN: none
 	}{
 		// The cells within footBand of the near end: x from -0.175 to
 		// -0.025 m, on average 0.1 m from the water.
-		{"camera beyond the deck end", &Point{X: -4, Y: 1}, 0.1},
-		{"camera beyond the far end", &Point{X: 8, Y: 1}, 0},
-		{"camera position not known", nil, 0},
+		{"camera beyond the deck end", &Point{X: -4, Y: 1}, 0.1, -0.1},
+		// From 0.35 to 0.5 m.
+		{"camera beyond the far end", &Point{X: 8, Y: 1}, 0, 0.425},
+		{"camera position not known", nil, 0, math.NaN()},
 	} {
 		t.Run(c.name, func(t *testing.T) {
 			g := squareGrid()
@@ -317,6 +319,56 @@ func TestMeanVarFootOnTheDeck(t *testing.T) {
 			require.Len(t, blobs, 1)
 			assert.Greater(t, blobs[0].Plane.X, 0.0, "centre on the water")
 			assert.InDelta(t, c.foot, blobs[0].Features.Foot, 0.03)
+			if near := blobs[0].Plane.Near; math.IsNaN(c.near) {
+				assert.Nil(t, near)
+			} else {
+				require.NotNil(t, near)
+				assert.InDelta(t, c.near, near.X, 0.03)
+				assert.InDelta(t, 1.0, near.Y, 0.05)
+			}
+		})
+	}
+}
+
+func TestMeanVarPlacesAMovedBodyWhereItIsNow(t *testing.T) {
+	// A dark body stands across the edge at x = 0 for two seconds, its
+	// centre on the deck (x −0.15 to 0.05 m), then steps onto the water
+	// (x 0.05 to 0.25 m). Two frames later the short mean holds mostly its
+	// trail where it stood: the candidate is placed where it is there in
+	// this frame, on the water, not at the centre of what the mean holds
+	// (x = −0.05 m); unless the camera stands beyond the deck end, when
+	// what is there now lies beyond the centre, away from the camera, where
+	// the upright part of someone standing at the edge is seen.
+	for _, c := range []struct {
+		name  string
+		nadir *Point
+		moved bool
+	}{
+		{"camera position not known", nil, true},
+		{"camera beyond the far end", &Point{X: 8, Y: 1}, true},
+		{"camera beyond the deck end", &Point{X: -4, Y: 1}, false},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			g := squareGrid()
+			g.Nadir = c.nadir
+			fd, err := newFrameDetector(DetectorConfig{Method: "meanvar", Grid: g, MeanVar: MeanVarConfig{FPS: 10}}, image.Pt(440, 240))
+			require.NoError(t, err)
+			d := fd.(*meanVar)
+			defer d.Close()
+			s := newWaterScene()
+			col := color.RGBA{40, 50, 60, 0}
+			run(t, d, s, 80, image.Rectangle{}, col, nil)
+			run(t, d, s, 20, image.Rect(-15, 90, 5, 110), col, nil)
+			blobs, _ := run(t, d, s, 2, image.Rect(5, 90, 25, 110), col, nil)
+			require.Len(t, blobs, 1)
+			b := blobs[0]
+			assert.Less(t, b.Features.Present, trailPresent, "mostly trail")
+			if c.moved {
+				assert.InDelta(t, 0.15, b.Plane.X, 0.1, "within the body where it is now, x 0.05 to 0.25 m")
+			} else {
+				assert.Less(t, b.Plane.X, 0.0, "at the centre of the trail, on the deck")
+			}
+			assert.InDelta(t, 1.0, b.Plane.Y, 0.05)
 		})
 	}
 }

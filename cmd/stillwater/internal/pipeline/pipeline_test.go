@@ -58,3 +58,44 @@ func TestStepForgetsTracksWhenModelRestarts(t *testing.T) {
 		})
 	}
 }
+
+// TestGateUprightInTheWater: a candidate whose centre lies beyond the
+// pool's edge but whose end nearest the camera is on the water is a body
+// upright in the water, its upper part seen reaching over the deck (as a
+// child wading in at the far end of the development set's H7, seen from a
+// camera 2.5 m up); it is placed where it meets the water. Its end on the
+// deck, or too little of it on the water, and it stays outside.
+func TestGateUprightInTheWater(t *testing.T) {
+	for _, c := range []struct {
+		name string
+		foot float64
+		wet  float64
+		near *vision.Point
+		ok   bool
+	}{
+		{"near end on the water", 0, 0.4, &vision.Point{X: 7.7, Y: 2}, true},
+		{"near end on the deck", 0.2, 0.4, &vision.Point{X: 8.1, Y: 2}, false},
+		{"hardly on the water", 0, 0.1, &vision.Point{X: 7.9, Y: 2}, false},
+		{"camera position not known", 0, 0.4, nil, false},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			cam := zoneCamera()
+			cal, err := config.NewCalibration(cam)
+			require.NoError(t, err)
+			p, err := New(cam, cal, 10, time.Time{}, time.Now, slog.New(slog.NewTextHandler(io.Discard, nil)), nil)
+			require.NoError(t, err)
+			f := body()
+			f.Foot, f.Wet = c.foot, c.wet
+			b := vision.Blob{Plane: &vision.PlaneBlob{X: 8.3, Y: 2, Near: c.near}, Features: f}
+			det, ok := p.gate(vision.Result{}, b)
+			require.Equal(t, c.ok, ok)
+			if ok {
+				assert.InDelta(t, c.near.X, det.X, 1e-9)
+				assert.InDelta(t, c.near.Y, det.Y, 1e-9)
+			} else {
+				require.NotEmpty(t, p.notes)
+				assert.True(t, p.notes[len(p.notes)-1].Outside, "counted as outside: %s", p.notes[len(p.notes)-1].Rejected)
+			}
+		})
+	}
+}
