@@ -191,6 +191,9 @@ func WhyOf(f vision.Features, n int, speed float64) []console.Feature {
 		{Name: "Colour", Value: fmt.Sprintf("%.1f from the water's (tint %.0f)", f.Chroma, f.Tint)},
 		{Name: "Score", Value: fmt.Sprintf("%.0f (peak %.0f)", f.Score, f.Peak)},
 		{Name: "From the edge", Value: fmt.Sprintf("%.2f m", f.Edge)},
+		{Name: "On the water", Value: fmt.Sprintf("%.0f %% of it", 100*f.Wet)},
+		{Name: "Near end on the deck", Value: fmt.Sprintf("%.2f m out (its end nearest the camera)", f.Foot)},
+		{Name: "There in this frame", Value: fmt.Sprintf("%.2f (its difference from the water in this frame over that in the last second)", f.Present)},
 		{Name: "Speed", Value: fmt.Sprintf("%.2f m/s", speed)},
 		{Name: "Frames judged", Value: fmt.Sprintf("%d", n)},
 	}

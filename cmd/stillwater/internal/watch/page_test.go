@@ -12,7 +12,7 @@ import (
 
 func TestWhyOf(t *testing.T) {
 	assert.Nil(t, WhyOf(vision.Features{Area: 1}, 0, 0), "no candidates judged: nothing to say")
-	f := vision.Features{Area: 0.3, Half: 0.21, Length: 0.9, Width: 0.35, Contrast: -0.38, Chroma: 6.5, Tint: 12, Score: 40, Peak: 95, Edge: 1.25}
+	f := vision.Features{Area: 0.3, Half: 0.21, Length: 0.9, Width: 0.35, Contrast: -0.38, Chroma: 6.5, Tint: 12, Score: 40, Peak: 95, Edge: 1.25, Wet: 0.8, Foot: 0.1, Present: 1.2}
 	why := WhyOf(f, 12, 0.4)
 	got := map[string]string{}
 	for _, w := range why {
@@ -23,6 +23,9 @@ func TestWhyOf(t *testing.T) {
 	assert.Equal(t, "38 % darker than the water", got["Contrast"])
 	assert.Equal(t, "0.40 m/s", got["Speed"])
 	assert.Equal(t, "12", got["Frames judged"])
+	assert.Equal(t, "80 % of it", got["On the water"])
+	assert.Equal(t, "0.10 m out (its end nearest the camera)", got["Near end on the deck"])
+	assert.Equal(t, "1.20 (its difference from the water in this frame over that in the last second)", got["There in this frame"])
 	f.Contrast = 0.2
 	assert.Equal(t, "20 % brighter than the water", WhyOf(f, 1, 0)[2].Value)
 }
