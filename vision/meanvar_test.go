@@ -81,6 +81,17 @@ func bodyAt(x, y, side float64) image.Rectangle {
 	return image.Rect(int(x*100-h), int(y*100-h), int(x*100+h), int(y*100+h))
 }
 
+// meanVarSeenFrom returns a detector on squareGrid with the camera above
+// nadir (nil: position not known); the caller closes it.
+func meanVarSeenFrom(t *testing.T, nadir *Point) *meanVar {
+	t.Helper()
+	g := squareGrid()
+	g.Nadir = nadir
+	fd, err := newFrameDetector(DetectorConfig{Method: "meanvar", Grid: g, MeanVar: MeanVarConfig{FPS: 10}}, image.Pt(440, 240))
+	require.NoError(t, err)
+	return fd.(*meanVar)
+}
+
 func newTestMeanVar(t *testing.T, ref *Reference) *meanVar {
 	t.Helper()
 	cfg := DetectorConfig{Method: "meanvar", Grid: squareGrid(), MeanVar: MeanVarConfig{FPS: 10}, Reference: ref}
@@ -307,11 +318,7 @@ func TestMeanVarFootOnTheDeck(t *testing.T) {
 		{"camera position not known", nil, 0, math.NaN()},
 	} {
 		t.Run(c.name, func(t *testing.T) {
-			g := squareGrid()
-			g.Nadir = c.nadir
-			fd, err := newFrameDetector(DetectorConfig{Method: "meanvar", Grid: g, MeanVar: MeanVarConfig{FPS: 10}}, image.Pt(440, 240))
-			require.NoError(t, err)
-			d := fd.(*meanVar)
+			d := meanVarSeenFrom(t, c.nadir)
 			defer d.Close()
 			s := newWaterScene()
 			run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
@@ -349,11 +356,7 @@ func TestMeanVarPlacesAMovedBodyWhereItIsNow(t *testing.T) {
 		{"camera beyond the deck end", &Point{X: -4, Y: 1}, false},
 	} {
 		t.Run(c.name, func(t *testing.T) {
-			g := squareGrid()
-			g.Nadir = c.nadir
-			fd, err := newFrameDetector(DetectorConfig{Method: "meanvar", Grid: g, MeanVar: MeanVarConfig{FPS: 10}}, image.Pt(440, 240))
-			require.NoError(t, err)
-			d := fd.(*meanVar)
+			d := meanVarSeenFrom(t, c.nadir)
 			defer d.Close()
 			s := newWaterScene()
 			col := color.RGBA{40, 50, 60, 0}
