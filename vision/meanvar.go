@@ -946,11 +946,15 @@ func (d *meanVar) candidates() ([]Blob, error) {
 			cx, cy = hx/float64(half), hy/float64(half)
 			f.Foot, near = d.foot(lab, int32(k), sc, hthr, image.Rect(bx, by, bx+bw, by+bh))
 		}
-		if f.Present < trailPresent && nn >= 2 {
-			// Mostly the trail the short mean holds of a body that moved:
-			// the body is where the candidate is there in this frame;
-			// unless that lies beyond the centre, away from the camera,
-			// where an upright body is seen reaching over the plane.
+		if f.Present < trailPresent && nn >= 2 && wet > 0 && wet < cnt {
+			// Across the edge, mostly the trail the short mean holds of a
+			// body that moved (a child stepping in): the body is where the
+			// candidate is there in this frame; unless that lies beyond
+			// the centre, away from the camera, where an upright body is
+			// seen reaching over the plane. In open water the strongest
+			// part stays the position: there, placing by this frame's part
+			// put one target of the named child scene 0.68 m from the
+			// child (0.45 m by its strongest part).
 			if px, py := nx/float64(nn), ny/float64(nn); !d.fartherFromCamera(px, py, cx, cy) {
 				cx, cy = px, py
 			}
@@ -969,9 +973,10 @@ func (d *meanVar) candidates() ([]Blob, error) {
 	return out, nil
 }
 
-// trailPresent and nowShare: a candidate less than trailPresent of
-// which is there in the current frame (Features.Present) is mostly the
-// trail of a body that moved, and is placed at its cells whose difference
+// trailPresent and nowShare: a candidate across the water's edge less
+// than trailPresent of which is there in the current frame
+// (Features.Present) is mostly the trail of a body that moved, and is
+// placed at its cells whose difference
 // from the water in this frame is at least nowShare of that in the short
 // mean. Measured on the development set's H4: a child stepping in over
 // the edge, its trail on the deck 0.06–0.17 there in the frames before
