@@ -976,11 +976,10 @@ func (d *meanVar) candidates() ([]Blob, error) {
 // trailPresent and nowShare: a candidate across the water's edge less
 // than trailPresent of which is there in the current frame
 // (Features.Present) is mostly the trail of a body that moved, and is
-// placed at its cells whose difference
-// from the water in this frame is at least nowShare of that in the short
-// mean. Measured on the development set's H4: a child stepping in over
-// the edge, its trail on the deck 0.06–0.17 there in the frames before
-// its centre crossed onto the water.
+// placed at its cells whose difference from the water in this frame is
+// at least nowShare of that in the short mean. Measured on the
+// development set's H4: a child stepping in over the edge was 0.06–0.17
+// there in the frames before its centre crossed onto the water.
 const (
 	trailPresent = 0.4
 	nowShare     = 0.5
