@@ -106,7 +106,7 @@ func (p *healthProbe) measure(frame gocv.Mat, t time.Duration) HealthStats {
 	size := src
 	if src.X > healthWidth {
 		size = image.Pt(healthWidth, max(1, int(math.Round(float64(src.Y)*healthWidth/float64(src.X)))))
-		gocv.Resize(frame, &p.small, size, 0, 0, gocv.InterpolationArea)
+		p.shrink(frame, src, size)
 	} else {
 		frame.CopyTo(&p.small)
 	}
@@ -272,6 +272,20 @@ func pairCorrelation(img []byte, w, h, dx, dy int) float64 {
 		return 0
 	}
 	return (sab/n - (sa/n)*(sb/n)) / math.Sqrt(va*vb)
+}
+
+// shrink averages frame (src pixels) down to size into p.small: through
+// areaShrink, OpenCV's area resize bit for bit but several times faster,
+// when size divides src by a whole factor above 2 (every 16:9 frame from
+// 480 pixels wide), else (or for a frame it refuses, one not 8-bit)
+// through OpenCV's resize itself.
+func (p *healthProbe) shrink(frame gocv.Mat, src, size image.Point) {
+	if f := src.X / size.X; f > 2 && src.X == f*size.X && src.Y == f*size.Y {
+		if err := areaShrink(frame, f, &p.small); err == nil {
+			return
+		}
+	}
+	gocv.Resize(frame, &p.small, size, 0, 0, gocv.InterpolationArea)
 }
 
 // Close frees the probe's Mats. Safe to call twice.

@@ -8,7 +8,9 @@
 
 #include <jpeglib.h>
 
+#include <algorithm>
 #include <cstdarg>
+#include <cstdint>
 #include <cstring>
 #include <exception>
 #include <mutex>
@@ -16,6 +18,7 @@
 #include <vector>
 
 #include <opencv2/core.hpp>
+#include <opencv2/core/hal/intrin.hpp>
 #include <opencv2/video/background_segm.hpp>
 #include <opencv2/videoio.hpp>
 
@@ -275,3 +278,58 @@ int sw_jpeg_encode(void* img, int quality, unsigned char** out, unsigned long* o
 }
 
 void sw_jpeg_free(unsigned char* p) { free(p); }
+
+int sw_area_shrink(void* srcp, int f, void* dstp, char* err, int errlen) {
+    try {
+        const cv::Mat& src = *static_cast<const cv::Mat*>(srcp);
+        cv::Mat& dst = *static_cast<cv::Mat*>(dstp);
+        if (src.empty() || src.depth() != CV_8U) {
+            std::snprintf(err, errlen, "area shrink: want an 8-bit image, have type %d", src.type());
+            return -1;
+        }
+        // The column sums are 16-bit: f rows of 255 must fit.
+        if (f < 1 || f > 256 || src.cols % f != 0 || src.rows % f != 0) {
+            std::snprintf(err, errlen, "area shrink: %dx%d is not a whole number of %dx%d blocks", src.cols, src.rows, f, f);
+            return -1;
+        }
+        const int cn = src.channels();
+        const int dw = src.cols / f, dh = src.rows / f, n = src.cols * cn;
+        dst.create(dh, dw, src.type());
+        std::vector<uint16_t> col(n);
+        // The same expression OpenCV's area resize rounds by (the sum times
+        // the single-precision reciprocal of the block's area, rounded to
+        // nearest), so that the result is its result bit for bit.
+        const float scale = 1.f / (f * f);
+        uint16_t* cs = col.data();
+        for (int dy = 0; dy < dh; dy++) {
+            std::fill(col.begin(), col.end(), 0);
+            for (int k = 0; k < f; k++) {
+                const uchar* s = src.ptr<uchar>(dy * f + k);
+                int i = 0;
+#if CV_SIMD
+                const int lanes = cv::v_uint8::nlanes, half = cv::v_uint16::nlanes;
+                for (; i <= n - lanes; i += lanes) {
+                    cv::v_uint16 lo, hi;
+                    cv::v_expand(cv::vx_load(s + i), lo, hi);
+                    cv::v_store(cs + i, cv::vx_load(cs + i) + lo);
+                    cv::v_store(cs + i + half, cv::vx_load(cs + i + half) + hi);
+                }
+#endif
+                for (; i < n; i++) cs[i] += s[i];
+            }
+            uchar* d = dst.ptr<uchar>(dy);
+            for (int dx = 0; dx < dw; dx++) {
+                const uint16_t* b = cs + dx * f * cn;
+                for (int c = 0; c < cn; c++) {
+                    int sum = 0;
+                    for (int k = 0; k < f; k++) sum += b[k * cn + c];
+                    d[dx * cn + c] = cv::saturate_cast<uchar>(sum * scale);
+                }
+            }
+        }
+        return 0;
+    } catch (const std::exception& e) {
+        copyErr(e, err, errlen);
+        return -1;
+    }
+}
