@@ -275,10 +275,10 @@ func pairCorrelation(img []byte, w, h, dx, dy int) float64 {
 }
 
 // shrink averages frame (src pixels) down to size into p.small: through
-// areaShrink, OpenCV's area resize bit for bit but several times faster,
-// when size divides src by a whole factor above 2 (every 16:9 frame from
-// 480 pixels wide), else (or for a frame it refuses, one not 8-bit)
-// through OpenCV's resize itself.
+// areaShrink, OpenCV's area resize bit for bit but two to three times
+// faster, when src is a whole number above 2 of size across and down
+// (480×270, 640×360, 1280×720, 1920×1080 and so on), else (or for a frame
+// it refuses, one not 8-bit) through OpenCV's resize itself.
 func (p *healthProbe) shrink(frame gocv.Mat, src, size image.Point) {
 	if f := src.X / size.X; f > 2 && src.X == f*size.X && src.Y == f*size.Y {
 		if err := areaShrink(frame, f, &p.small); err == nil {
