@@ -295,14 +295,15 @@ int sw_area_shrink(void* srcp, int f, void* dstp, char* err, int errlen) {
         const int cn = src.channels();
         const int dw = src.cols / f, dh = src.rows / f, n = src.cols * cn;
         dst.create(dh, dw, src.type());
-        std::vector<uint16_t> col(n);
+        // On the stack up to a 2 730-pixel-wide BGR row: no allocation per frame.
+        cv::AutoBuffer<uint16_t, 8192> col(n);
         // The same expression OpenCV's area resize rounds by (the sum times
         // the single-precision reciprocal of the block's area, rounded to
         // nearest), so that the result is its result bit for bit.
         const float scale = 1.f / (f * f);
         uint16_t* cs = col.data();
         for (int dy = 0; dy < dh; dy++) {
-            std::fill(col.begin(), col.end(), 0);
+            std::fill(cs, cs + n, 0);
             for (int k = 0; k < f; k++) {
                 const uchar* s = src.ptr<uchar>(dy * f + k);
                 int i = 0;
