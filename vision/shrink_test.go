@@ -32,7 +32,7 @@ func refFrame(name string, w, h int) func(testing.TB) gocv.Mat {
 		tb.Helper()
 		p, err := refdata.Path(name)
 		if err != nil {
-			tb.Skip(err)
+			tb.Fatal(err)
 		}
 		vc, err := gocv.VideoCaptureFile(p)
 		if err != nil {
