@@ -564,28 +564,56 @@ func cErr(rc C.int, buf *[errBufLen]C.char, what string) error {
 }
 
 func (d *meanVar) accumulate(a float64) error {
-	var buf [errBufLen]C.char
-	return cErr(C.sw_pool_accumulate(unsafe.Pointer(d.frame.Ptr()), unsafe.Pointer(d.short.Ptr()), C.double(a), &buf[0], errBufLen), &buf, "short mean")
+	return poolAccumulate(d.frame, &d.short, a)
 }
 
 func (d *meanVar) measureGain(img gocv.Mat) error {
-	var buf [errBufLen]C.char
 	cell := max(1, int(math.Round(d.cfg.LightCell/d.rect.Cell)))
-	return cErr(C.sw_pool_gain(unsafe.Pointer(img.Ptr()), unsafe.Pointer(d.mean.Ptr()), unsafe.Pointer(d.weight.Ptr()),
-		C.int(cell), C.double(0.25), unsafe.Pointer(d.gain.Ptr()), &buf[0], errBufLen), &buf, "illumination")
+	return poolGain(img, d.mean, d.weight, cell, 0.25, &d.gain)
 }
 
 func (d *meanVar) update(img gocv.Mat, noise, aMean, aSlow float64, learn bool) error {
+	p := poolParams{noise2: noise * noise, aMean: aMean, aSlow: aSlow, learnBelow: d.cfg.Low,
+		varClip: varClip, varGain: varGain, glintMin: glintMin, learn: learn}
+	return poolUpdate(img, &d.mean, &d.vari, d.gain, d.water, d.hold, d.extra, d.glint, p, &d.score, &d.contrast)
+}
+
+// poolAccumulate sets short += a (frame − short), frame CV_8UC3 and short
+// CV_32FC3 of its size (made so when it is not); see sw_pool_accumulate.
+func poolAccumulate(frame gocv.Mat, short *gocv.Mat, a float64) error {
 	var buf [errBufLen]C.char
-	p := C.SwPoolParams{noise2: C.double(noise * noise), aMean: C.double(aMean), aSlow: C.double(aSlow), learnBelow: C.double(d.cfg.Low),
-		varClip: C.float(varClip), varGain: C.float(varGain), glintMin: C.float(glintMin)}
-	if learn {
-		p.learn = 1
+	return cErr(C.sw_pool_accumulate(unsafe.Pointer(frame.Ptr()), unsafe.Pointer(short.Ptr()), C.double(a), &buf[0], errBufLen), &buf, "short mean")
+}
+
+// poolGain writes the local illumination ratio of short to mean into
+// gain; see sw_pool_gain.
+func poolGain(short, mean, weight gocv.Mat, cellPx int, minShare float64, gain *gocv.Mat) error {
+	var buf [errBufLen]C.char
+	return cErr(C.sw_pool_gain(unsafe.Pointer(short.Ptr()), unsafe.Pointer(mean.Ptr()), unsafe.Pointer(weight.Ptr()),
+		C.int(cellPx), C.double(minShare), unsafe.Pointer(gain.Ptr()), &buf[0], errBufLen), &buf, "illumination")
+}
+
+// poolParams are the settings of one poolUpdate; see SwPoolParams in
+// shim.h.
+type poolParams struct {
+	noise2, aMean, aSlow, learnBelow float64
+	varClip, varGain, glintMin       float32
+	learn                            bool
+}
+
+// poolUpdate scores img against the model and, with p.learn, teaches it;
+// see sw_pool_update. extra and glint may be empty.
+func poolUpdate(img gocv.Mat, mean, vari *gocv.Mat, gain, water, hold, extra, glint gocv.Mat, p poolParams, score, contrast *gocv.Mat) error {
+	var buf [errBufLen]C.char
+	cp := C.SwPoolParams{noise2: C.double(p.noise2), aMean: C.double(p.aMean), aSlow: C.double(p.aSlow), learnBelow: C.double(p.learnBelow),
+		varClip: C.float(p.varClip), varGain: C.float(p.varGain), glintMin: C.float(p.glintMin)}
+	if p.learn {
+		cp.learn = 1
 	}
-	return cErr(C.sw_pool_update(unsafe.Pointer(img.Ptr()), unsafe.Pointer(d.mean.Ptr()), unsafe.Pointer(d.vari.Ptr()),
-		unsafe.Pointer(d.gain.Ptr()), unsafe.Pointer(d.water.Ptr()), unsafe.Pointer(d.hold.Ptr()),
-		unsafe.Pointer(d.extra.Ptr()), unsafe.Pointer(d.glint.Ptr()), p,
-		unsafe.Pointer(d.score.Ptr()), unsafe.Pointer(d.contrast.Ptr()), &buf[0], errBufLen), &buf, "score")
+	return cErr(C.sw_pool_update(unsafe.Pointer(img.Ptr()), unsafe.Pointer(mean.Ptr()), unsafe.Pointer(vari.Ptr()),
+		unsafe.Pointer(gain.Ptr()), unsafe.Pointer(water.Ptr()), unsafe.Pointer(hold.Ptr()),
+		unsafe.Pointer(extra.Ptr()), unsafe.Pointer(glint.Ptr()), cp,
+		unsafe.Pointer(score.Ptr()), unsafe.Pointer(contrast.Ptr()), &buf[0], errBufLen), &buf, "score")
 }
 
 // structure sets the extra variance at structure in the background: the

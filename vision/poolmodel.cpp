@@ -1,6 +1,10 @@
 // The per-pixel loops of the rectified pool's mean–variance model: one
 // pass each over the grid, where OpenCV's element-wise calls would take
-// a dozen (see meanvar.go for what the model is and why).
+// a dozen (see meanvar.go for what the model is and why). The loops run
+// along each row's channels with OpenCV's universal intrinsics (intrin.hpp
+// must be included for CV_SIMD to be set) and compute every value by the
+// same expression, in the same order, as one pixel at a time would: the
+// results are the same bits (poolmodel_test.go holds them to that).
 #include "shim.h"
 
 #include <algorithm>
@@ -11,6 +15,7 @@
 #include <vector>
 
 #include <opencv2/core.hpp>
+#include <opencv2/core/hal/intrin.hpp>
 
 namespace {
 
@@ -35,10 +40,20 @@ int sw_pool_accumulate(void* framep, void* shortp, double a, char* err, int errl
         if (f.type() != CV_8UC3) throw std::invalid_argument("pool model: frame is not 8-bit BGR");
         if (s.type() != CV_32FC3 || s.size() != f.size()) s.create(f.size(), CV_32FC3);
         const float fa = static_cast<float>(a), fb = 1.0f - fa;
+        const int n = 3 * f.cols;
         for (int y = 0; y < f.rows; ++y) {
             const uchar* fp = f.ptr<uchar>(y);
             float* sp = s.ptr<float>(y);
-            for (int x = 0; x < 3 * f.cols; ++x) sp[x] = fb * sp[x] + fa * static_cast<float>(fp[x]);
+            int x = 0;
+#if CV_SIMD
+            const int lanes = cv::v_float32::nlanes;
+            const cv::v_float32 va = cv::vx_setall_f32(fa), vb = cv::vx_setall_f32(fb);
+            for (; x <= n - lanes; x += lanes) {
+                const cv::v_float32 v = cv::v_cvt_f32(cv::v_reinterpret_as_s32(cv::vx_load_expand_q(fp + x)));
+                cv::v_store(sp + x, vb * cv::vx_load(sp + x) + va * v);
+            }
+#endif
+            for (; x < n; ++x) sp[x] = fb * sp[x] + fa * static_cast<float>(fp[x]);
         }
         return 0;
     } catch (const std::exception& e) {
@@ -62,6 +77,18 @@ int sw_pool_gain(void* shortp, void* meanp, void* weightp, int cellPx, double mi
         const int nx = (size.width + cellPx - 1) / cellPx, ny = (size.height + cellPx - 1) / cellPx;
         std::vector<double> ss(3 * nx * ny, 0.0), ms(3 * nx * ny, 0.0);
         std::vector<int> cnt(nx * ny, 0);
+        // Per column: its cell, and where it falls between cell centres
+        // (the same expressions as per pixel, computed once).
+        std::vector<int> cellX(size.width), x0s(size.width), x1s(size.width);
+        std::vector<float> txs(size.width);
+        for (int x = 0; x < size.width; ++x) {
+            cellX[x] = x / cellPx;
+            float fx = (x + 0.5f) / cellPx - 0.5f;
+            fx = std::min(std::max(fx, 0.0f), static_cast<float>(nx - 1));
+            x0s[x] = static_cast<int>(fx);
+            x1s[x] = std::min(x0s[x] + 1, nx - 1);
+            txs[x] = fx - x0s[x];
+        }
         for (int y = 0; y < size.height; ++y) {
             const float* sp = s.ptr<float>(y);
             const float* mp = m.ptr<float>(y);
@@ -69,7 +96,7 @@ int sw_pool_gain(void* shortp, void* meanp, void* weightp, int cellPx, double mi
             const int cy = y / cellPx;
             for (int x = 0; x < size.width; ++x) {
                 if (!wp[x]) continue;
-                const int k = cy * nx + x / cellPx;
+                const int k = cy * nx + cellX[x];
                 cnt[k]++;
                 for (int c = 0; c < 3; ++c) {
                     ss[3 * k + c] += sp[3 * x + c];
@@ -126,24 +153,37 @@ int sw_pool_gain(void* shortp, void* meanp, void* weightp, int cellPx, double mi
                 }
             }
         }
-        // Bilinear between cell centres, clamped at the border.
+        // Bilinear between cell centres, clamped at the border: first along
+        // the row of cell centres above and the row below (the same for
+        // every grid row between them), then between the two.
+        const int n = 3 * size.width;
+        std::vector<float> above(n), below(n);
+        int rows = -1;
         for (int y = 0; y < size.height; ++y) {
             float fy = (y + 0.5f) / cellPx - 0.5f;
             fy = std::min(std::max(fy, 0.0f), static_cast<float>(ny - 1));
             const int y0 = static_cast<int>(fy), y1 = std::min(y0 + 1, ny - 1);
             const float ty = fy - y0;
-            float* gp = g.ptr<float>(y);
-            for (int x = 0; x < size.width; ++x) {
-                float fx = (x + 0.5f) / cellPx - 0.5f;
-                fx = std::min(std::max(fx, 0.0f), static_cast<float>(nx - 1));
-                const int x0 = static_cast<int>(fx), x1 = std::min(x0 + 1, nx - 1);
-                const float tx = fx - x0;
-                for (int c = 0; c < 3; ++c) {
-                    const float a = r[3 * (y0 * nx + x0) + c] * (1 - tx) + r[3 * (y0 * nx + x1) + c] * tx;
-                    const float b = r[3 * (y1 * nx + x0) + c] * (1 - tx) + r[3 * (y1 * nx + x1) + c] * tx;
-                    gp[3 * x + c] = a * (1 - ty) + b * ty;
+            if (y0 != rows) {
+                for (int x = 0; x < size.width; ++x) {
+                    const int x0 = x0s[x], x1 = x1s[x];
+                    const float tx = txs[x];
+                    for (int c = 0; c < 3; ++c) {
+                        above[3 * x + c] = r[3 * (y0 * nx + x0) + c] * (1 - tx) + r[3 * (y0 * nx + x1) + c] * tx;
+                        below[3 * x + c] = r[3 * (y1 * nx + x0) + c] * (1 - tx) + r[3 * (y1 * nx + x1) + c] * tx;
+                    }
                 }
+                rows = y0;
             }
+            const float wa = 1 - ty;
+            float* gp = g.ptr<float>(y);
+            int i = 0;
+#if CV_SIMD
+            const int lanes = cv::v_float32::nlanes;
+            const cv::v_float32 va = cv::vx_setall_f32(wa), vb = cv::vx_setall_f32(ty);
+            for (; i <= n - lanes; i += lanes) cv::v_store(gp + i, cv::vx_load(above.data() + i) * va + cv::vx_load(below.data() + i) * vb);
+#endif
+            for (; i < n; ++i) gp[i] = above[i] * wa + below[i] * ty;
         }
         return 0;
     } catch (const std::exception& e) {
@@ -214,9 +254,31 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
         const float noise2 = static_cast<float>(p.noise2);
         const float aBg = static_cast<float>(p.aMean), aFg = static_cast<float>(p.aSlow);
         const float below = static_cast<float>(p.learnBelow);
+        const float varClip = p.varClip, varGain = p.varGain, floorGain = 1e-3f;
+        // Three passes per row. The first and last run along the row's
+        // channels without branches (SIMD where OpenCV's universal
+        // intrinsics have it); the middle one sums each pixel's channels
+        // and decides it. Every value is computed by the same expression,
+        // in the same order, as one pass per pixel would: vectors only
+        // compute several pixels at once.
+        const int n = 3 * size.width;
+        std::vector<float> rowBuf(4 * n);
+        float* pxRow = rowBuf.data();  // the image row as float (8-bit images)
+        float* termRow = pxRow + n;    // each channel's squared, normalised residual
+        float* expRow = termRow + n;   // each channel's expected value, gain times mean
+        float* rateRow = expRow + n;   // each channel's learning rate; 0 where it does not learn
+#if CV_SIMD
+        const int lanes = cv::v_float32::nlanes;
+#endif
         for (int y = 0; y < size.height; ++y) {
-            const uchar* ip8 = img8 ? img.ptr<uchar>(y) : nullptr;
-            const float* ipf = img8 ? nullptr : img.ptr<float>(y);
+            const float* px;
+            if (img8) {
+                const uchar* ip8 = img.ptr<uchar>(y);
+                for (int i = 0; i < n; ++i) pxRow[i] = static_cast<float>(ip8[i]);
+                px = pxRow;
+            } else {
+                px = img.ptr<float>(y);
+            }
             float* mp = m.ptr<float>(y);
             float* vp = v.ptr<float>(y);
             const float* gp = g.ptr<float>(y);
@@ -226,41 +288,93 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
             float* cp = con.ptr<float>(y);
             const float* ep = hasExtra ? extra.ptr<float>(y) : nullptr;
             const float* gr = hasGlint ? glint.ptr<float>(y) : nullptr;
+
+            // Pass 1: residual terms, every channel of the row.
+            int i = 0;
+#if CV_SIMD
+            {
+                const cv::v_float32 vn2 = cv::vx_setall_f32(noise2), zero = cv::vx_setzero_f32();
+                for (; i <= n - lanes; i += lanes) {
+                    const cv::v_float32 gc = cv::vx_load(gp + i);
+                    const cv::v_float32 e = gc * cv::vx_load(mp + i);
+                    const cv::v_float32 r = cv::vx_load(px + i) - e;
+                    const cv::v_float32 vv = cv::vx_load(vp + i) + (ep ? cv::vx_load(ep + i) : zero);
+                    cv::v_store(expRow + i, e);
+                    cv::v_store(termRow + i, r * r / (gc * gc * vv + vn2));
+                }
+            }
+#endif
+            for (; i < n; ++i) {
+                const float gc = gp[i];
+                const float e = gc * mp[i];
+                const float r = px[i] - e;
+                const float vv = vp[i] + (ep ? ep[i] : 0.0f);
+                expRow[i] = e;
+                termRow[i] = r * r / (gc * gc * vv + noise2);
+            }
+
+            // Pass 2: each pixel's score, contrast and learning rate.
+            bool any = false;
             for (int x = 0; x < size.width; ++x) {
+                const int k = 3 * x;
                 if (!wp[x]) {
                     sp[x] = 0;
                     cp[x] = 0;
+                    rateRow[k] = rateRow[k + 1] = rateRow[k + 2] = 0;
                     continue;
                 }
                 float d = 0, sum = 0, sumExp = 0;
-                float px[3];
                 for (int c = 0; c < 3; ++c) {
-                    const int i = 3 * x + c;
-                    px[c] = img8 ? static_cast<float>(ip8[i]) : ipf[i];
-                    const float gc = gp[i];
-                    const float e = gc * mp[i];
-                    const float r = px[c] - e;
-                    const float v = vp[i] + (ep ? ep[i] : 0.0f);
-                    d += r * r / (gc * gc * v + noise2);
-                    sum += px[c];
-                    sumExp += e;
+                    d += termRow[k + c];
+                    sum += px[k + c];
+                    sumExp += expRow[k + c];
                 }
                 // Glittering water: only a darkening can be a body.
                 sp[x] = (gr && gr[x] >= p.glintMin && sum > sumExp) ? 0.0f : d;
                 cp[x] = sumExp > 1.0f ? (sum - sumExp) / sumExp : 0.0f;
-                if (!p.learn || hp[x]) continue;
-                const float a = sp[x] < below ? aBg : aFg;
-                if (a <= 0) continue;
-                const float av = std::min(1.0f, a * p.varGain);
-                for (int c = 0; c < 3; ++c) {
-                    const int i = 3 * x + c;
-                    const float gc = gp[i] > 1e-3f ? gp[i] : 1e-3f;
-                    const float r = px[c] / gc - mp[i];
-                    mp[i] += a * r;
-                    // Winsorised: one event cannot blow the variance up.
-                    const float cap = p.varClip * (vp[i] + noise2);
-                    vp[i] += av * (std::min(r * r, cap) - vp[i]);
+                float a = 0;
+                if (p.learn && !hp[x]) a = sp[x] < below ? aBg : aFg;
+                if (!(a > 0)) a = 0;
+                any = any || a > 0;
+                rateRow[k] = rateRow[k + 1] = rateRow[k + 2] = a;
+            }
+            if (!any) continue;
+
+            // Pass 3: mean and variance learn where the rate is above 0.
+            i = 0;
+#if CV_SIMD
+            {
+                const cv::v_float32 zero = cv::vx_setzero_f32(), one = cv::vx_setall_f32(1.0f);
+                const cv::v_float32 vn2 = cv::vx_setall_f32(noise2), vClip = cv::vx_setall_f32(varClip);
+                const cv::v_float32 vGain = cv::vx_setall_f32(varGain), vFloor = cv::vx_setall_f32(floorGain);
+                for (; i <= n - lanes; i += lanes) {
+                    const cv::v_float32 a = cv::vx_load(rateRow + i);
+                    const cv::v_float32 on = a > zero;
+                    if (!cv::v_check_any(on)) continue;
+                    const cv::v_float32 ag = a * vGain;
+                    const cv::v_float32 av = cv::v_select(ag < one, ag, one);
+                    const cv::v_float32 g0 = cv::vx_load(gp + i);
+                    const cv::v_float32 gc = cv::v_select(g0 > vFloor, g0, vFloor);
+                    const cv::v_float32 m0 = cv::vx_load(mp + i), v0 = cv::vx_load(vp + i);
+                    const cv::v_float32 r = cv::vx_load(px + i) / gc - m0;
+                    const cv::v_float32 cap = vClip * (v0 + vn2);
+                    const cv::v_float32 rr = r * r;
+                    const cv::v_float32 clipped = cv::v_select(cap < rr, cap, rr);
+                    cv::v_store(mp + i, cv::v_select(on, m0 + a * r, m0));
+                    cv::v_store(vp + i, cv::v_select(on, v0 + av * (clipped - v0), v0));
                 }
+            }
+#endif
+            for (; i < n; ++i) {
+                const float a = rateRow[i];
+                if (!(a > 0)) continue;
+                const float av = std::min(1.0f, a * varGain);
+                const float gc = gp[i] > floorGain ? gp[i] : floorGain;
+                const float r = px[i] / gc - mp[i];
+                mp[i] += a * r;
+                // Winsorised: one event cannot blow the variance up.
+                const float cap = varClip * (vp[i] + noise2);
+                vp[i] += av * (std::min(r * r, cap) - vp[i]);
             }
         }
         return 0;
