@@ -593,6 +593,13 @@ func poolGain(short, mean, weight gocv.Mat, cellPx int, minShare float64, gain *
 		C.int(cellPx), C.double(minShare), unsafe.Pointer(gain.Ptr()), &buf[0], errBufLen), &buf, "illumination")
 }
 
+// poolGlint updates the glint rate of frame's pixels (rate CV_32FC1,
+// prev CV_8UC1, made so when they are not); see sw_pool_glint.
+func poolGlint(frame gocv.Mat, rate, prev *gocv.Mat, a float64, level int) error {
+	var buf [errBufLen]C.char
+	return cErr(C.sw_pool_glint(unsafe.Pointer(frame.Ptr()), unsafe.Pointer(rate.Ptr()), unsafe.Pointer(prev.Ptr()), C.double(a), C.int(level), &buf[0], errBufLen), &buf, "glints")
+}
+
 // poolParams are the settings of one poolUpdate; see SwPoolParams in
 // shim.h.
 type poolParams struct {
@@ -667,8 +674,7 @@ func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameS
 		return nil, st, err
 	}
 	d.clock.lap(StageRectify)
-	var buf [errBufLen]C.char
-	if err := cErr(C.sw_pool_glint(unsafe.Pointer(d.frame.Ptr()), unsafe.Pointer(d.glint.Ptr()), unsafe.Pointer(d.glintPrev.Ptr()), C.double(d.cfg.rate(glintTime)), C.int(glintLevel), &buf[0], errBufLen), &buf, "glints"); err != nil {
+	if err := poolGlint(d.frame, &d.glint, &d.glintPrev, d.cfg.rate(glintTime), glintLevel); err != nil {
 		return nil, st, err
 	}
 	d.smooth()

@@ -211,7 +211,38 @@ int sw_pool_glint(void* framep, void* ratep, void* prevp, double a, int level, c
             const uchar* fp = f.ptr<uchar>(y);
             float* rp = r.ptr<float>(y);
             uchar* pp = prev.ptr<uchar>(y);
-            for (int x = 0; x < f.cols; ++x) {
+            int x = 0;
+#if CV_SIMD
+            // A channel at or above level is the brightest one being so;
+            // levels outside 1–255 are left to the loop below.
+            if (level >= 1 && level <= 255) {
+                const int bytes = cv::v_uint8::nlanes, lanes = cv::v_float32::nlanes;
+                const cv::v_uint8 vLevel = cv::vx_setall_u8(static_cast<uchar>(level)), bit = cv::vx_setall_u8(1);
+                const cv::v_float32 va = cv::vx_setall_f32(fa), zero = cv::vx_setzero_f32(), one = cv::vx_setall_f32(1.0f);
+                for (; x <= f.cols - bytes; x += bytes) {
+                    cv::v_uint8 b, g, rr;
+                    cv::v_load_deinterleave(fp + 3 * x, b, g, rr);
+                    const cv::v_uint8 on = cv::v_max(cv::v_max(b, g), rr) >= vLevel;
+                    const cv::v_uint8 now = on & bit;
+                    const cv::v_uint8 was = cv::vx_load(pp + x);
+                    cv::v_store(pp + x, now);
+                    // 1 where the pixel toggled, 0 where not, widened to floats.
+                    cv::v_uint16 t16[2];
+                    cv::v_expand(now ^ was, t16[0], t16[1]);
+                    for (int h = 0; h < 2; ++h) {
+                        cv::v_uint32 t32[2];
+                        cv::v_expand(t16[h], t32[0], t32[1]);
+                        for (int q = 0; q < 2; ++q) {
+                            float* rq = rp + x + (2 * h + q) * lanes;
+                            const cv::v_float32 toggled = cv::v_reinterpret_as_f32(t32[q] != cv::vx_setzero_u32());
+                            const cv::v_float32 rv = cv::vx_load(rq);
+                            cv::v_store(rq, rv + va * (cv::v_select(toggled, one, zero) - rv));
+                        }
+                    }
+                }
+            }
+#endif
+            for (; x < f.cols; ++x) {
                 const uchar g = (fp[3 * x] >= level || fp[3 * x + 1] >= level || fp[3 * x + 2] >= level) ? 1 : 0;
                 rp[x] += fa * ((g != pp[x] ? 1.0f : 0.0f) - rp[x]);
                 pp[x] = g;
@@ -315,7 +346,41 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
 
             // Pass 2: each pixel's score, contrast and learning rate.
             bool any = false;
-            for (int x = 0; x < size.width; ++x) {
+            int x = 0;
+#if CV_SIMD
+            {
+                const cv::v_float32 zero = cv::vx_setzero_f32(), one = cv::vx_setall_f32(1.0f);
+                const cv::v_float32 vBelow = cv::vx_setall_f32(below), vBg = cv::vx_setall_f32(aBg), vFg = cv::vx_setall_f32(aFg);
+                const cv::v_float32 vGlint = cv::vx_setall_f32(p.glintMin);
+                const cv::v_uint32 none = cv::vx_setzero_u32();
+                for (; x <= size.width - lanes; x += lanes) {
+                    const int k = 3 * x;
+                    cv::v_float32 t0, t1, t2, p0, p1, p2, e0, e1, e2;
+                    cv::v_load_deinterleave(termRow + k, t0, t1, t2);
+                    cv::v_load_deinterleave(px + k, p0, p1, p2);
+                    cv::v_load_deinterleave(expRow + k, e0, e1, e2);
+                    const cv::v_float32 d = zero + t0 + t1 + t2;
+                    const cv::v_float32 sum = zero + p0 + p1 + p2;
+                    const cv::v_float32 sumExp = zero + e0 + e1 + e2;
+                    const cv::v_float32 wet = cv::v_reinterpret_as_f32(cv::vx_load_expand_q(wp + x) != none);
+                    cv::v_float32 sc = d;
+                    if (gr) sc = cv::v_select((cv::vx_load(gr + x) >= vGlint) & (sum > sumExp), zero, d);
+                    sc = cv::v_select(wet, sc, zero);
+                    const cv::v_float32 co = cv::v_select(sumExp > one, (sum - sumExp) / sumExp, zero);
+                    cv::v_store(sp + x, sc);
+                    cv::v_store(cp + x, cv::v_select(wet, co, zero));
+                    cv::v_float32 a = zero;
+                    if (p.learn) {
+                        const cv::v_float32 unheld = cv::v_reinterpret_as_f32(cv::vx_load_expand_q(hp + x) == none);
+                        a = cv::v_select(wet & unheld, cv::v_select(sc < vBelow, vBg, vFg), zero);
+                        a = cv::v_select(a > zero, a, zero);
+                    }
+                    any = any || cv::v_check_any(a > zero);
+                    cv::v_store_interleave(rateRow + k, a, a, a);
+                }
+            }
+#endif
+            for (; x < size.width; ++x) {
                 const int k = 3 * x;
                 if (!wp[x]) {
                     sp[x] = 0;

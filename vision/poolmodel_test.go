@@ -11,10 +11,10 @@ import (
 
 // The pool model's loops (poolmodel.cpp) run along each row's channels
 // with SIMD where OpenCV's universal intrinsics have it. These tests hold
-// them to the formulas of shim.h computed one pixel at a time in Go's
-// float32 (each operation rounded: the conversions keep the compiler
-// from fusing any), bit for bit, and the
-// short mean to OpenCV's accumulateWeighted. Widths that are not a
+// them (update, gain, short mean, glints) to the formulas of shim.h
+// computed one pixel at a time in Go's float32 (each operation rounded:
+// the conversions keep the compiler from fusing any), bit for bit, and
+// the short mean to OpenCV's accumulateWeighted. Widths that are not a
 // multiple of the vector length exercise the scalar tails.
 
 // poolSizes are grid sizes: one narrower than a vector, odd widths, and
@@ -78,7 +78,7 @@ func requireSameBits(t *testing.T, want, got []float32, what string) {
 	require.Len(t, got, len(want), what)
 	for i := range want {
 		if math.Float32bits(want[i]) != math.Float32bits(got[i]) {
-			t.Fatalf("%s[%d] (pixel %d): want %g (%#08x), got %g (%#08x)", what, i, i/3, want[i], math.Float32bits(want[i]), got[i], math.Float32bits(got[i]))
+			t.Fatalf("%s[%d]: want %g (%#08x), got %g (%#08x)", what, i, want[i], math.Float32bits(want[i]), got[i], math.Float32bits(got[i]))
 		}
 	}
 }
@@ -386,6 +386,44 @@ func TestPoolGainMatchesFormula(t *testing.T) {
 					m.Close()
 				}
 			}
+		}
+	}
+}
+
+func TestPoolGlintMatchesFormula(t *testing.T) {
+	rng := rand.New(rand.NewSource(4))
+	for _, sz := range poolSizes {
+		// 0 and 256 are outside what a byte can hold: every pixel glints, or none.
+		for _, level := range []int{0, 1, 200, 255, 256} {
+			rows, cols := sz[1], sz[0]
+			rate, prev := gocv.NewMat(), gocv.NewMat()
+			n := rows * cols
+			wantRate, wantPrev := make([]float32, n), make([]byte, n)
+			const a = 1.0 / 45
+			for frame := 0; frame < 4; frame++ {
+				img := randBGR(t, rng, rows, cols)
+				// The formula (shim.h): a pixel glints when a channel is at
+				// or above level; rate += a (toggled − rate).
+				b := img.ToBytes()
+				for i := 0; i < n; i++ {
+					var g byte
+					if int(b[3*i]) >= level || int(b[3*i+1]) >= level || int(b[3*i+2]) >= level {
+						g = 1
+					}
+					var toggled float32
+					if g != wantPrev[i] {
+						toggled = 1
+					}
+					wantRate[i] += float32(float32(a) * (toggled - wantRate[i]))
+					wantPrev[i] = g
+				}
+				require.NoError(t, poolGlint(img, &rate, &prev, a, level))
+				requireSameBits(t, wantRate, matFloats(t, rate), "glint rate")
+				require.Equal(t, wantPrev, prev.ToBytes(), "glinting pixels, level %d", level)
+				img.Close()
+			}
+			rate.Close()
+			prev.Close()
 		}
 	}
 }
