@@ -24,12 +24,12 @@ var poolSizes = [][2]int{{1, 3}, {7, 5}, {37, 23}, {101, 40}, {440, 200}}
 // randMat32 is a CV_32FC(cn) Mat of values in [lo, hi) from rng.
 func randMat32(t *testing.T, rng *rand.Rand, rows, cols, cn int, lo, hi float32) gocv.Mat {
 	t.Helper()
-	v := make([]float32, rows*cols*cn)
+	m := gocv.NewMatWithSize(rows, cols, gocv.MatTypeCV32FC1+gocv.MatType((cn-1)<<3))
+	v, err := m.DataPtrFloat32()
+	require.NoError(t, err)
 	for i := range v {
 		v[i] = lo + (hi-lo)*rng.Float32()
 	}
-	m, err := gocv.NewMatFromBytes(rows, cols, gocv.MatTypeCV32FC1+gocv.MatType((cn-1)<<3), float32Bytes(v))
-	require.NoError(t, err)
 	return m
 }
 
@@ -54,15 +54,6 @@ func randBGR(t *testing.T, rng *rand.Rand, rows, cols int) gocv.Mat {
 	m, err := gocv.NewMatFromBytes(rows, cols, gocv.MatTypeCV8UC3, b)
 	require.NoError(t, err)
 	return m
-}
-
-func float32Bytes(v []float32) []byte {
-	b := make([]byte, 4*len(v))
-	for i, f := range v {
-		u := math.Float32bits(f)
-		b[4*i], b[4*i+1], b[4*i+2], b[4*i+3] = byte(u), byte(u>>8), byte(u>>16), byte(u>>24)
-	}
-	return b
 }
 
 func matFloats(t *testing.T, m gocv.Mat) []float32 {
