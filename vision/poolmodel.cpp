@@ -287,11 +287,12 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
         const float below = static_cast<float>(p.learnBelow);
         const float varClip = p.varClip, varGain = p.varGain, floorGain = 1e-3f;
         // Three passes per row. The first and last run along the row's
-        // channels without branches (SIMD where OpenCV's universal
-        // intrinsics have it); the middle one sums each pixel's channels
-        // and decides it. Every value is computed by the same expression,
-        // in the same order, as one pass per pixel would: vectors only
-        // compute several pixels at once.
+        // channels without branches; the middle one takes whole pixels
+        // (the sums of their channels, the masks, the decisions). Each runs
+        // in vectors where OpenCV's universal intrinsics have them, and a
+        // scalar loop finishes the row. Every value is computed by the same
+        // expression, in the same order, as one pass per pixel would:
+        // vectors only compute several pixels at once.
         const int n = 3 * size.width;
         std::vector<float> rowBuf(4 * n);
         float* pxRow = rowBuf.data();  // the image row as float (8-bit images)
