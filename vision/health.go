@@ -344,6 +344,14 @@ type HealthConfig struct {
 	// the longest, up to MaxFrozenHold.
 	CalmMemory    time.Duration
 	MaxFrozenHold time.Duration
+	// StuckShare of the frames of the last StuckWindow being the same
+	// picture as the frame before, bit for bit at the probe's size, makes
+	// the picture frozen whether or not the water was seen moving first:
+	// a camera that freezes over calm water, where the still level cannot
+	// tell, is found late but found. Key frames re-encoding a frozen
+	// picture are why it is a share.
+	StuckShare  float64
+	StuckWindow time.Duration
 	// Recover is how long the picture must be fine again before the fault
 	// is cleared, media time.
 	Recover time.Duration
@@ -370,6 +378,8 @@ func DefaultHealth() HealthConfig {
 		LivelyFor:        3 * time.Second,
 		CalmMemory:       10 * time.Minute,
 		MaxFrozenHold:    8 * time.Second,
+		StuckShare:       0.7,
+		StuckWindow:      10 * time.Second,
 		Recover:          2 * time.Second,
 	}
 }
@@ -412,6 +422,12 @@ func (c HealthConfig) withDefaults() HealthConfig {
 	if c.MaxFrozenHold <= 0 {
 		c.MaxFrozenHold = d.MaxFrozenHold
 	}
+	if c.StuckShare <= 0 {
+		c.StuckShare = d.StuckShare
+	}
+	if c.StuckWindow <= 0 {
+		c.StuckWindow = d.StuckWindow
+	}
 	return c
 }
 
@@ -426,9 +442,11 @@ func (c HealthConfig) Validate() error {
 		return fmt.Errorf("health still level %g: want 0–255", c.StillLevel)
 	case c.FrozenShare < 0 || c.FrozenShare > 1:
 		return fmt.Errorf("health frozen share %g: want 0–1", c.FrozenShare)
+	case c.StuckShare < 0 || c.StuckShare > 1:
+		return fmt.Errorf("health stuck share %g: want 0–1", c.StuckShare)
 	case c.NoiseCorrelation < 0 || c.NoiseCorrelation > 1:
 		return fmt.Errorf("health noise correlation %g: want 0–1", c.NoiseCorrelation)
-	case c.Hold < 0 || c.Recover < 0 || c.FrozenHold < 0 || c.FrozenWindow < 0 || c.LivelyFor < 0 || c.CalmMemory < 0 || c.MaxFrozenHold < 0:
+	case c.Hold < 0 || c.Recover < 0 || c.FrozenHold < 0 || c.FrozenWindow < 0 || c.LivelyFor < 0 || c.CalmMemory < 0 || c.MaxFrozenHold < 0 || c.StuckWindow < 0:
 		return fmt.Errorf("health hold %v / frozen hold %v / frozen window %v / recover %v: want non-negative", c.Hold, c.FrozenHold, c.FrozenWindow, c.Recover)
 	}
 	return nil
@@ -493,6 +511,8 @@ type HealthMonitor struct {
 	movingFrom, stillFrom time.Duration
 	eligible              bool        // the current still spell followed LivelyFor of moving water
 	spells                []calmSpell // still spells that ended on their own, oldest first
+	same                  []stillMark // frames of the last StuckWindow: still = the same picture as the frame before
+	byStuck               bool        // the current still spell is a freeze only by the stuck rule
 }
 
 // NewHealthMonitor returns a monitor that starts in CondOK.
@@ -513,14 +533,29 @@ const minStillFrames = 3
 // changes of calm water sends a live picture that is as still between key
 // frames as a frozen one: the monitor only calls a picture frozen when it
 // stops after the water was seen moving, and it learns how long this
-// camera's water stays still on its own (see frozenHold).
+// camera's water stays still on its own (see frozenHold). A picture that
+// has been the same bit for bit for most of StuckWindow is frozen however
+// still the water was before (see stuck).
 func (m *HealthMonitor) frame(t time.Duration, s HealthStats) (Condition, float64) {
 	f, share := m.stillness(t, s)
+	stuck := m.stuck(t, s, f)
+	if stuck {
+		f = CondFrozen
+	}
+	if m.byStuck && !stuck {
+		// The picture changes again: a spell that only the stuck rule
+		// made a freeze is one no longer, however still the water.
+		m.eligible, m.byStuck = false, false
+	}
 	switch f {
 	case CondFrozen:
 		if m.stillFrom < 0 {
 			m.stillFrom = t
 			m.eligible = m.movingFrom >= 0 && t-m.movingFrom >= m.cfg.LivelyFor
+			m.byStuck = false
+		}
+		if stuck && !m.eligible {
+			m.eligible, m.byStuck = true, true
 		}
 		// A dip shorter than FrozenWindow does not end the spell.
 		m.movingFrom = -1
@@ -545,6 +580,35 @@ func (m *HealthMonitor) frame(t time.Duration, s HealthStats) (Condition, float6
 		m.stillFrom, m.movingFrom = -1, -1
 	}
 	return f, share
+}
+
+// stuck tells whether StuckShare of the frames of the last StuckWindow
+// were the same picture as the frame before (HealthStats.Diff exactly 0).
+// A dark or uniform picture restarts the count, as it does the frozen
+// window; the window must span most of StuckWindow.
+func (m *HealthMonitor) stuck(t time.Duration, s HealthStats, f Condition) bool {
+	if f == CondDark || f == CondUniform {
+		m.same = m.same[:0]
+		return false
+	}
+	if s.HasPrev {
+		m.same = append(m.same, stillMark{t: t, still: s.Diff == 0})
+	}
+	drop := 0
+	for drop < len(m.same) && t-m.same[drop].t > m.cfg.StuckWindow {
+		drop++
+	}
+	m.same = append(m.same[:0], m.same[drop:]...)
+	if len(m.same) < minStillFrames || m.same[len(m.same)-1].t-m.same[0].t < m.cfg.StuckWindow*9/10 {
+		return false
+	}
+	n := 0
+	for _, w := range m.same {
+		if w.still {
+			n++
+		}
+	}
+	return float64(n) >= m.cfg.StuckShare*float64(len(m.same))
 }
 
 // calmSpell is a still spell that ended with the water moving again.

@@ -451,11 +451,33 @@ func TestHealthMonitorHoldAndRecover(t *testing.T) {
 			return keyFrames(at)
 		}, []check{{ms(6300), CondFrozen}, {ms(9000), CondFrozen}, {ms(14000), CondFrozen}}},
 		// Still from the start, with key frames: the water was never seen
-		// moving, so stillness says nothing (an encoder that drops calm
-		// water's small changes sends this from a live camera).
-		{"never seen moving, never frozen", HealthConfig{}, ms(20000), func(at time.Duration) HealthStats {
+		// moving, so the short window says nothing (an encoder that drops
+		// calm water's small changes sends this from a live camera for a
+		// while). But 8 frames in 10 are the same picture bit for bit:
+		// at 9 s the stuck window spans 9 s with 72 of its 91 frames the
+		// same (0.79 ≥ 0.7), and the frozen hold of 1 s ends at 10 s.
+		// From 20 s the camera works again over water as calm as before
+		// (still at the probe, but not the same picture: a leaf drifts):
+		// at 21.3 s under 0.7 of the last 10 s is the same picture, and
+		// 2 s later the fault clears, though the water never moved.
+		{"never seen moving, frozen once stuck", HealthConfig{}, ms(30000), func(at time.Duration) HealthStats {
+			if at >= 20*time.Second {
+				calm := ok
+				calm.Motion, calm.Diff = 0, 0.02
+				return calm
+			}
 			return keyFrames(at + 4*time.Second)
-		}, []check{{ms(20000), CondOK}}},
+		}, []check{{ms(8900), CondOK}, {ms(9900), CondOK}, {ms(10000), CondFrozen}, {ms(20000), CondFrozen},
+			{ms(21000), CondFrozen}, {ms(23200), CondFrozen}, {ms(23400), CondOK}, {ms(30000), CondOK}}},
+		// Calm live water whose every other frame repeats the one before
+		// (half the frames the same, under the stuck share of 0.7; the
+		// tuning scenes' calmest live water had 0.44 in 10 s): never frozen.
+		{"half the frames repeated is live water", HealthConfig{}, ms(30000), func(at time.Duration) HealthStats {
+			if (at/ms(100))%2 == 0 {
+				return still
+			}
+			return ok
+		}, []check{{ms(30000), CondOK}}},
 		// Moving water, then a calm spell of 3 s that ends on its own (a
 		// false fault: it lasts beyond the 1 s hold), moving again, then
 		// another 3 s spell: the hold is now 1.5 × the first spell's
