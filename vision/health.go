@@ -594,21 +594,32 @@ func (m *HealthMonitor) stuck(t time.Duration, s HealthStats, f Condition) bool 
 	if s.HasPrev {
 		m.same = append(m.same, stillMark{t: t, still: s.Diff == 0})
 	}
-	drop := 0
-	for drop < len(m.same) && t-m.same[drop].t > m.cfg.StuckWindow {
-		drop++
-	}
-	m.same = append(m.same[:0], m.same[drop:]...)
+	m.same = keepSince(m.same, t-m.cfg.StuckWindow)
 	if len(m.same) < minStillFrames || m.same[len(m.same)-1].t-m.same[0].t < m.cfg.StuckWindow*9/10 {
 		return false
 	}
+	return float64(stillCount(m.same)) >= m.cfg.StuckShare*float64(len(m.same))
+}
+
+// keepSince drops the marks older than from (they are oldest first),
+// reusing the slice.
+func keepSince(marks []stillMark, from time.Duration) []stillMark {
+	drop := 0
+	for drop < len(marks) && marks[drop].t < from {
+		drop++
+	}
+	return append(marks[:0], marks[drop:]...)
+}
+
+// stillCount is how many of marks are still.
+func stillCount(marks []stillMark) int {
 	n := 0
-	for _, w := range m.same {
+	for _, w := range marks {
 		if w.still {
 			n++
 		}
 	}
-	return float64(n) >= m.cfg.StuckShare*float64(len(m.same))
+	return n
 }
 
 // calmSpell is a still spell that ended with the water moving again.
@@ -654,24 +665,14 @@ func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, fl
 	case s.HasMotion:
 		m.window = append(m.window, stillMark{t: t, still: f == CondFrozen})
 	}
-	drop := 0
-	for drop < len(m.window) && t-m.window[drop].t > m.cfg.FrozenWindow {
-		drop++
-	}
-	m.window = append(m.window[:0], m.window[drop:]...)
+	m.window = keepSince(m.window, t-m.cfg.FrozenWindow)
 	if len(m.window) == 0 {
 		if f == CondFrozen {
 			f = CondOK
 		}
 		return f, 0
 	}
-	still := 0
-	for _, w := range m.window {
-		if w.still {
-			still++
-		}
-	}
-	share := float64(still) / float64(len(m.window))
+	share := float64(stillCount(m.window)) / float64(len(m.window))
 	// The window must hold a few frames and span most of FrozenWindow: the
 	// first frames after opening, and a camera's denoiser settling, are
 	// not a frozen picture.
