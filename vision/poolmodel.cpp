@@ -79,8 +79,14 @@ int sw_pool_gain(void* shortp, void* meanp, void* weightp, int cellPx, double mi
         std::vector<int> cnt(nx * ny, 0);
         // Per column: its cell, and where it falls between cell centres
         // (the same expressions as per pixel, computed once).
-        std::vector<int> cellX(size.width), x0s(size.width), x1s(size.width);
-        std::vector<float> txs(size.width);
+        // On the stack for grids up to 1 170 cells wide: no allocation per frame.
+        cv::AutoBuffer<int, 4096> colInts(3 * size.width);
+        int* cellX = colInts.data();
+        int* x0s = cellX + size.width;
+        int* x1s = x0s + size.width;
+        const int n = 3 * size.width;
+        cv::AutoBuffer<float, 8192> rowFloats(size.width + 2 * n);
+        float* txs = rowFloats.data();
         for (int x = 0; x < size.width; ++x) {
             cellX[x] = x / cellPx;
             float fx = (x + 0.5f) / cellPx - 0.5f;
@@ -156,8 +162,8 @@ int sw_pool_gain(void* shortp, void* meanp, void* weightp, int cellPx, double mi
         // Bilinear between cell centres, clamped at the border: first along
         // the row of cell centres above and the row below (the same for
         // every grid row between them), then between the two.
-        const int n = 3 * size.width;
-        std::vector<float> above(n), below(n);
+        float* above = txs + size.width;
+        float* below = above + n;
         int rows = -1;
         for (int y = 0; y < size.height; ++y) {
             float fy = (y + 0.5f) / cellPx - 0.5f;
@@ -181,7 +187,7 @@ int sw_pool_gain(void* shortp, void* meanp, void* weightp, int cellPx, double mi
 #if CV_SIMD
             const int lanes = cv::v_float32::nlanes;
             const cv::v_float32 va = cv::vx_setall_f32(wa), vb = cv::vx_setall_f32(ty);
-            for (; i <= n - lanes; i += lanes) cv::v_store(gp + i, cv::vx_load(above.data() + i) * va + cv::vx_load(below.data() + i) * vb);
+            for (; i <= n - lanes; i += lanes) cv::v_store(gp + i, cv::vx_load(above + i) * va + cv::vx_load(below + i) * vb);
 #endif
             for (; i < n; ++i) gp[i] = above[i] * wa + below[i] * ty;
         }
@@ -294,7 +300,8 @@ int sw_pool_update(void* imgp, void* meanp, void* varp, void* gainp, void* water
         // expression, in the same order, as one pass per pixel would:
         // vectors only compute several pixels at once.
         const int n = 3 * size.width;
-        std::vector<float> rowBuf(4 * n);
+        // On the stack for grids up to 682 cells wide: no allocation per frame.
+        cv::AutoBuffer<float, 8192> rowBuf(4 * n);
         float* pxRow = rowBuf.data();  // the image row as float (8-bit images)
         float* termRow = pxRow + n;    // each channel's squared, normalised residual
         float* expRow = termRow + n;   // each channel's expected value, gain times mean
