@@ -277,6 +277,10 @@ type Features struct {
 	// from the water (×100): 0 for white light added to the water (a glint,
 	// a reflection of the sky), tens for skin or a coloured suit.
 	Tint float64
+	// Faint is set on a candidate with no core that was kept because
+	// most of it lies in a hold box: a tracked body dimmed below the
+	// threshold. Only a track already in alarm should take it.
+	Faint bool
 	// Wet is the share of Area on the water (the rest is on the deck
 	// around it: a body climbing in or out).
 	Wet float64
@@ -818,6 +822,10 @@ func (d *meanVar) candidates() ([]Blob, error) {
 	}
 	cell := d.rect.Cell
 	cellArea := cell * cell
+	hd, err := d.hold.DataPtrUint8()
+	if err != nil {
+		return nil, err
+	}
 	thr := float32(d.cfg.Threshold)
 	w := d.size.X
 	var out []Blob
@@ -830,7 +838,7 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		by := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_TOP)))
 		bw := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_WIDTH)))
 		bh := int(d.stats.GetIntAt(k, int(gocv.CC_STAT_HEIGHT)))
-		var cnt, core, chromaN int
+		var cnt, core, chromaN, held int
 		var diff [3]float64 // summed difference from the expected water over the core, B, G, R
 		var sx, sy, sxx, syy, sxy, ssum, conSum, chroma, waterChroma float64
 		var peak float32
@@ -844,6 +852,9 @@ func (d *meanVar) candidates() ([]Blob, error) {
 				cnt++
 				if s >= thr {
 					core++
+				}
+				if hd[i] != 0 {
+					held++
 				}
 				peak = max(peak, s)
 				ssum += float64(s)
@@ -885,7 +896,11 @@ func (d *meanVar) candidates() ([]Blob, error) {
 				}
 			}
 		}
-		if core == 0 || cnt == 0 {
+		// A component with no core is kept only inside a hold box, and
+		// only while it is well above the noise: a tracked body that dims
+		// (a cloud over a still child) stays found.
+		faint := core == 0 && 2*held >= cnt && peak >= keepPeak*thr
+		if cnt == 0 || core == 0 && !faint {
 			d.chromas = d.chromas[:0]
 			continue
 		}
@@ -969,6 +984,7 @@ func (d *meanVar) candidates() ([]Blob, error) {
 			// An ellipse's axis is 4 standard deviations; a cell adds its width.
 			Length: (4*math.Sqrt(l1) + 1) * cell,
 			Width:  (4*math.Sqrt(l2) + 1) * cell,
+			Faint:  faint,
 		}
 		if meanDiff > 0 {
 			f.Present = min(2, nowDiff/meanDiff)
@@ -1014,6 +1030,10 @@ func (d *meanVar) candidates() ([]Blob, error) {
 // at least nowShare of that in the short mean. Measured on the
 // development set's H4: a child stepping in over the edge was 0.06–0.17
 // there in the frames before its centre crossed onto the water.
+// keepPeak is the share of Threshold the peak of a candidate without a
+// core must reach to be kept in a hold box (Features.Faint).
+const keepPeak = 0.5
+
 const (
 	trailPresent = 0.4
 	nowShare     = 0.5

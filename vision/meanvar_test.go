@@ -41,6 +41,7 @@ func squareGrid() *Rectification {
 type waterScene struct {
 	rng   *rand.Rand
 	light float64 // 1 is full sun
+	calm  bool    // no ripples: sensor noise only
 	n     int
 	noise []byte
 }
@@ -55,7 +56,7 @@ func (s *waterScene) frame(body image.Rectangle, col color.RGBA) gocv.Mat {
 	base := gocv.NewScalar(190*s.light, 170*s.light, 80*s.light, 0)
 	m := gocv.NewMatWithSizeFromScalar(base, 240, 440, gocv.MatTypeCV8UC3)
 	// Ripples: bright diagonal bands moving across, 0.3 m apart.
-	for k := -10; k < 30; k++ {
+	for k := -10; k < 30 && !s.calm; k++ {
 		x := float64(k*30+(s.n*7)%30) + 20
 		gocv.Line(&m, image.Pt(int(x), 0), image.Pt(int(x)+120, 240), color.RGBA{uint8(215 * s.light), uint8(200 * s.light), uint8(110 * s.light), 0}, 3)
 	}
@@ -198,6 +199,68 @@ func TestMeanVarHoldKeepsStillBody(t *testing.T) {
 		require.Equal(t, 1, c, "frame %d", i)
 	}
 	assert.Greater(t, last[0].Features.Score, 0.8*first[0].Features.Score)
+}
+
+func TestMeanVarHoldKeepsADimmedBody(t *testing.T) {
+	// On calm water, a still body 12 grey levels darker than the water in
+	// each channel is found; then, over 2 s, it fades to 8 levels darker
+	// (a child under a passing cloud, or sinking a little) and stays so
+	// for 10 s. Its peak score falls below the threshold (about 72, then
+	// about 40 on this scene). Held, it is still found, as a faint
+	// candidate; not held, it is not: a faint part of the water is no
+	// candidate.
+	for _, tt := range []struct {
+		name string
+		hold func([]Blob) []image.Rectangle
+		want int
+	}{
+		{"held", holdAll, 1},
+		{"not held", nil, 0},
+	} {
+		t.Run(tt.name, func(t *testing.T) {
+			d := newTestMeanVar(t, nil)
+			defer d.Close()
+			s := newWaterScene()
+			s.calm = true
+			run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
+			body := bodyAt(2.5, 1.2, 0.4)
+			var h []image.Rectangle
+			step := func(below float64) []Blob {
+				// The water is (B, G, R) = (190, 170, 80); colours are
+				// drawn as BGR.
+				v := func(w float64) uint8 { return uint8(math.Round(w - below)) }
+				f := s.frame(body, color.RGBA{R: v(80), G: v(170), B: v(190)})
+				defer f.Close()
+				blobs, _, err := d.Detect(f, h)
+				require.NoError(t, err)
+				if tt.hold != nil {
+					h = tt.hold(blobs)
+				}
+				return blobs
+			}
+			var blobs []Blob
+			for i := 0; i < 21; i++ {
+				blobs = step(12)
+			}
+			require.Len(t, blobs, 1, "12 levels darker")
+			assert.False(t, blobs[0].Features.Faint)
+			assert.GreaterOrEqual(t, blobs[0].Features.Peak, d.cfg.Threshold)
+			for i := 0; i < 120; i++ {
+				blobs = step(math.Max(8, 12-4*float64(i)/20))
+				if i < 30 {
+					continue // the short mean follows for a second
+				}
+				require.Len(t, blobs, tt.want, "frame %d", i)
+				if tt.want == 1 {
+					b := blobs[0]
+					assert.True(t, b.Features.Faint, "frame %d: peak %.0f", i, b.Features.Peak)
+					assert.Less(t, b.Features.Peak, d.cfg.Threshold)
+					assert.InDelta(t, 2.5, b.Plane.X, 0.1)
+					assert.InDelta(t, 1.2, b.Plane.Y, 0.1)
+				}
+			}
+		})
+	}
 }
 
 func TestMeanVarResumeForgetsTheGap(t *testing.T) {

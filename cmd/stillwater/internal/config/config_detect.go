@@ -88,9 +88,9 @@ type DetectConfig struct {
 //     is about length × shoulder breadth × π/4 = 0.74 · 0.22 · 0.785 =
 //     0.13 m², and the generated and independent scenes label 0.11–0.18 m².
 //
-// The default, 0.035 m², sits just under the smallest of these, above a
-// floating leaf (0.003–0.02 m²) and a bird resting on the water (up to
-// 0.03 m²). A candidate's area is measured where it differs from the
+// The default, 0.03 m², sits under the smallest of these and above a
+// floating leaf (0.003–0.02 m²); a bird resting on the water (up to
+// 0.03 m²) can reach it. A candidate's area is measured where it differs from the
 // water by at least half its peak contrast (Features.Half), close to its
 // own outline; the looser outline blurring and the water's noise add
 // around it is not counted.

@@ -181,6 +181,9 @@ func featureText(f vision.Features, n int) string {
 	}
 	fmt.Fprintf(&b, "area %.3f m² (core %.3f, at half contrast %.3f), score %.0f (peak %.0f), contrast %+.2f (%.0f %% brighter), chroma %.1f (top %.1f, water %.1f), %.2f × %.2f m, %.2f m from the edge, end nearest the camera %.2f m out on the deck, %.2f of it there in this frame",
 		f.Area, f.Core, f.Half, f.Score, f.Peak, f.Contrast, 100*f.Bright, f.Chroma, f.ChromaTop, f.Water, f.Length, f.Width, f.Edge, f.Foot, f.Present)
+	if f.Faint {
+		b.WriteString("; faint: below the threshold everywhere, found in a tracked body's held cells")
+	}
 	return b.String()
 }
 

@@ -329,7 +329,9 @@ func (j *judge) companionOf(id int, at homography.Point) (int, float64, bool) {
 	}
 	best, bestD := 0, math.Inf(1)
 	for other, h := range j.tracks {
-		if other == id || !h.raised || len(h.at) == 0 {
+		// A target kept only by faint candidates casts no shadow or wake
+		// worth the name.
+		if other == id || !h.raised || len(h.at) == 0 || h.feats[len(h.feats)-1].Faint {
 			continue
 		}
 		if d := h.at[len(h.at)-1].Dist(at); d <= j.rules.Companion && (d < bestD || d == bestD && other < best) {

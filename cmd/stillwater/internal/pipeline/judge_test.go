@@ -28,13 +28,15 @@ func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
 		second    [2]float64 // where the second track lies, m
 		raised    bool       // the first track has raised its alarm
 		gone      bool       // the first track ended before the second is judged
+		faint     bool       // the first track's latest candidate is faint
 		eligible  bool
 	}{
-		{"shadow 1.2 m from a raised target", 2.0, [2]float64{4.2, 3}, true, false, false},
-		{"3 m away is another body", 2.0, [2]float64{6, 3}, true, false, true},
-		{"first not raised yet: nothing to be a companion of", 2.0, [2]float64{4.2, 3}, false, false, true},
-		{"the raised target ended", 2.0, [2]float64{4.2, 3}, true, true, true},
-		{"rule off", 0, [2]float64{4.2, 3}, true, false, true},
+		{"shadow 1.2 m from a raised target", 2.0, [2]float64{4.2, 3}, true, false, false, false},
+		{"3 m away is another body", 2.0, [2]float64{6, 3}, true, false, false, true},
+		{"first not raised yet: nothing to be a companion of", 2.0, [2]float64{4.2, 3}, false, false, false, true},
+		{"the raised target ended", 2.0, [2]float64{4.2, 3}, true, true, false, true},
+		{"the raised target is only faintly seen now: it casts no shadow", 2.0, [2]float64{4.2, 3}, true, false, true, true},
+		{"rule off", 0, [2]float64{4.2, 3}, true, false, false, true},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -45,7 +47,9 @@ func TestJudgeCompanionOfARaisedTarget(t *testing.T) {
 				now := time.Duration(i) * 100 * time.Millisecond
 				tracks := []poolTrack{{ID: 2, X: c.second[0], Y: c.second[1], Last: now, Features: body()}}
 				if !c.gone || i < 4 {
-					tracks = append(tracks, poolTrack{ID: 1, X: 3, Y: 3, Last: now, Features: body()})
+					f := body()
+					f.Faint = c.faint && i >= 4
+					tracks = append(tracks, poolTrack{ID: 1, X: 3, Y: 3, Last: now, Features: f})
 				}
 				j.observe(now, tracks, nil, nil)
 				if i == 2 && c.raised {

@@ -99,3 +99,46 @@ func TestGateUprightInTheWater(t *testing.T) {
 		})
 	}
 }
+
+// TestGateFaintCandidate: a candidate with no cell at the threshold
+// (vision.Features.Faint, found only because a tracked body was held
+// there) goes on a target already in alarm, near it and at two thirds of
+// a child's body or more; it never starts or feeds a track on its own.
+func TestGateFaintCandidate(t *testing.T) {
+	for _, c := range []struct {
+		name    string
+		alarmed bool
+		at      [2]float64 // the candidate, m; the target is at (4, 2)
+		area    float64
+		ok      bool
+	}{
+		{"beside a target in alarm", true, [2]float64{4.1, 2}, 0.04, true},
+		{"at two thirds of a child's body", true, [2]float64{4.1, 2}, 0.021, true},
+		{"smaller", true, [2]float64{4.1, 2}, 0.018, false},
+		{"1 m from the target", true, [2]float64{5, 2}, 0.04, false},
+		{"the track is not in alarm", false, [2]float64{4.1, 2}, 0.04, false},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			cam := zoneCamera()
+			cal, err := config.NewCalibration(cam)
+			require.NoError(t, err)
+			p, err := New(cam, cal, 10, time.Time{}, time.Now, slog.New(slog.NewTextHandler(io.Discard, nil)), nil)
+			require.NoError(t, err)
+			require.InDelta(t, 0.03, cam.Detect.MinArea, 1e-9)
+			p.Tracks = []poolTrack{{ID: 7, X: 4, Y: 2}}
+			p.alarmed[7] = c.alarmed
+			f := body()
+			f.Area, f.Half, f.Peak, f.Faint = c.area, c.area, 40, true
+			_, ok := p.gate(vision.Result{}, vision.Blob{Plane: &vision.PlaneBlob{X: c.at[0], Y: c.at[1]}, Features: f})
+			require.Equal(t, c.ok, ok)
+			if !ok {
+				require.NotEmpty(t, p.notes)
+				assert.Contains(t, p.notes[len(p.notes)-1].Rejected, "below the threshold everywhere")
+			}
+			// The same candidate with a core is judged as any other.
+			f.Faint = false
+			_, ok = p.gate(vision.Result{}, vision.Blob{Plane: &vision.PlaneBlob{X: c.at[0], Y: c.at[1]}, Features: f})
+			assert.True(t, ok)
+		})
+	}
+}
