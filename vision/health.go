@@ -4,6 +4,7 @@ import (
 	"fmt"
 	"image"
 	"math"
+	"slices"
 	"time"
 
 	"gocv.io/x/gocv"
@@ -34,6 +35,15 @@ type HealthStats struct {
 	// frames. Trimming the most-changed tenth keeps a clock burned into
 	// the picture, or any small overlay, from passing for live water.
 	Motion float64
+	// Changed is the share of the watched cells whose source pixel at the
+	// cell's centre, taken as it is (not averaged), differs in any channel
+	// from the frame before; meaningful when HasPrev. A live camera's
+	// sensor noise reaches some pixels of every frame even where the
+	// water is too calm to move the averaged probe; a frozen picture's
+	// encoder sends no change at all between its key frames. HasChanged
+	// is false when there was no frame before to compare with.
+	Changed    float64
+	HasChanged bool
 	// Correlation is the mean Pearson correlation between each pixel and its
 	// right and lower neighbours, −1…1; 0 for a flat frame. Camera images
 	// of real scenes are strongly correlated at this scale, independent
@@ -75,6 +85,13 @@ type healthProbe struct {
 	mask     []Point
 	cells    []int
 	cellsFor [2]image.Point
+	// at are the byte offsets in the source frame of the pixels at the
+	// watched cells' centres (for a frame of atStep bytes a row, atCh
+	// channels), and samples their values in the frame before (atCh
+	// bytes each; empty when there was none).
+	at            []int
+	atStep, atCh  int
+	samples, next []byte
 }
 
 func (p *healthProbe) init() {
@@ -94,6 +111,7 @@ func (p *healthProbe) watch(mask []Point) {
 func (p *healthProbe) reset() {
 	p.hasPrev = false
 	p.past = p.past[:0]
+	p.samples = p.samples[:0]
 }
 
 // measure computes the statistics of frame (BGR or grey) at media time t
@@ -119,6 +137,7 @@ func (p *healthProbe) measure(frame gocv.Mat, t time.Duration) HealthStats {
 	if p.cellsFor != [2]image.Point{src, size} {
 		p.cells = maskCells(p.mask, src, size)
 		p.cellsFor = [2]image.Point{src, size}
+		p.at, p.atStep = p.at[:0], 0
 		p.hasPrev = false // a new size: nothing earlier compares
 		p.past = p.past[:0]
 	}
@@ -128,6 +147,7 @@ func (p *healthProbe) measure(frame gocv.Mat, t time.Duration) HealthStats {
 	if st.HasPrev {
 		prev = p.prev
 	}
+	st.Changed, st.HasChanged = p.fineChange(frame, src, size)
 	st.Mean, st.Spread, st.Diff, st.Correlation = greyStats(cur, prev, size.X, size.Y)
 	// The newest earlier frame at least MotionLag old, dropping the ones
 	// before it: they will never be the newest such frame again.
@@ -146,6 +166,55 @@ func (p *healthProbe) measure(frame gocv.Mat, t time.Duration) HealthStats {
 	p.prev = cur
 	p.hasPrev = true
 	return st
+}
+
+// fineChange returns HealthStats.Changed for frame and keeps its samples
+// for the next frame; false when there is nothing to compare with (the
+// first frame, another layout) or the frame cannot be read in place.
+func (p *healthProbe) fineChange(frame gocv.Mat, src, size image.Point) (float64, bool) {
+	ch, step := frame.Channels(), frame.Step()
+	data, err := frame.DataPtrUint8()
+	if err != nil || !frame.IsContinuous() || frame.Type()&7 != gocv.MatTypeCV8U {
+		p.samples = p.samples[:0]
+		return 0, false
+	}
+	if p.atStep != step || p.atCh != ch || len(p.at) == 0 && len(p.cells) > 0 {
+		sx, sy := float64(src.X)/float64(size.X), float64(src.Y)/float64(size.Y)
+		p.at = p.at[:0]
+		for _, c := range p.cells {
+			x := min(src.X-1, int((float64(c%size.X)+0.5)*sx))
+			y := min(src.Y-1, int((float64(c/size.X)+0.5)*sy))
+			p.at = append(p.at, y*step+x*ch)
+		}
+		p.atStep, p.atCh = step, ch
+		p.samples = p.samples[:0]
+	}
+	p.next = p.next[:0]
+	for _, o := range p.at {
+		if o+ch > len(data) {
+			p.samples = p.samples[:0]
+			return 0, false
+		}
+		p.next = append(p.next, data[o:o+ch]...)
+	}
+	had := len(p.samples) == len(p.next) && len(p.next) > 0
+	n := 0
+	if had {
+		for i := 0; i < len(p.at); i++ {
+			a, b := p.next[i*ch:i*ch+ch], p.samples[i*ch:i*ch+ch]
+			for k := range a {
+				if a[k] != b[k] {
+					n++
+					break
+				}
+			}
+		}
+	}
+	p.samples, p.next = p.next, p.samples
+	if !had {
+		return 0, false
+	}
+	return float64(n) / float64(len(p.at)), true
 }
 
 // maskCells returns the indices of the cells of a probe-size image whose
@@ -320,6 +389,15 @@ type HealthConfig struct {
 	// StillLevel: a frame whose water changed by at most this much
 	// (HealthStats.Motion, grey levels) since MotionLag earlier is still.
 	StillLevel float64
+	// FineLevel and FineWindow: while the median HealthStats.Changed of
+	// the still frames of the last FineWindow is above FineLevel, the
+	// picture is live however still its water (the sensor's noise still
+	// reaches its pixels) and is not called frozen. A frozen picture's
+	// encoder changes next to nothing between key frames; a median, so
+	// that the few frames after each key frame, where the encoder still
+	// refines the picture, do not count.
+	FineLevel  float64
+	FineWindow time.Duration
 	// FrozenShare of the frames of the last FrozenWindow being still
 	// makes the picture frozen. A share, not every frame: a frozen
 	// picture that the encoder re-codes at each key frame jumps once per
@@ -370,6 +448,8 @@ func DefaultHealth() HealthConfig {
 		DarkLevel:        8,
 		UniformSpread:    2.5,
 		StillLevel:       0.05,
+		FineLevel:        0.01,
+		FineWindow:       3 * time.Second,
 		FrozenShare:      0.6,
 		FrozenWindow:     1500 * time.Millisecond,
 		NoiseCorrelation: 0.35,
@@ -397,6 +477,12 @@ func (c HealthConfig) withDefaults() HealthConfig {
 	}
 	if c.FrozenShare <= 0 {
 		c.FrozenShare = d.FrozenShare
+	}
+	if c.FineLevel <= 0 {
+		c.FineLevel = d.FineLevel
+	}
+	if c.FineWindow <= 0 {
+		c.FineWindow = d.FineWindow
 	}
 	if c.FrozenWindow <= 0 {
 		c.FrozenWindow = d.FrozenWindow
@@ -440,13 +526,15 @@ func (c HealthConfig) Validate() error {
 		return fmt.Errorf("health uniform spread %g: want 0–128", c.UniformSpread)
 	case c.StillLevel < 0 || c.StillLevel > 255:
 		return fmt.Errorf("health still level %g: want 0–255", c.StillLevel)
+	case c.FineLevel < 0 || c.FineLevel > 1:
+		return fmt.Errorf("health fine level %g: want 0–1", c.FineLevel)
 	case c.FrozenShare < 0 || c.FrozenShare > 1:
 		return fmt.Errorf("health frozen share %g: want 0–1", c.FrozenShare)
 	case c.StuckShare < 0 || c.StuckShare > 1:
 		return fmt.Errorf("health stuck share %g: want 0–1", c.StuckShare)
 	case c.NoiseCorrelation < 0 || c.NoiseCorrelation > 1:
 		return fmt.Errorf("health noise correlation %g: want 0–1", c.NoiseCorrelation)
-	case c.Hold < 0 || c.Recover < 0 || c.FrozenHold < 0 || c.FrozenWindow < 0 || c.LivelyFor < 0 || c.CalmMemory < 0 || c.MaxFrozenHold < 0 || c.StuckWindow < 0:
+	case c.Hold < 0 || c.Recover < 0 || c.FrozenHold < 0 || c.FrozenWindow < 0 || c.LivelyFor < 0 || c.CalmMemory < 0 || c.MaxFrozenHold < 0 || c.StuckWindow < 0 || c.FineWindow < 0:
 		return fmt.Errorf("health hold %v / frozen hold %v / frozen window %v / recover %v: want non-negative", c.Hold, c.FrozenHold, c.FrozenWindow, c.Recover)
 	}
 	return nil
@@ -513,6 +601,14 @@ type HealthMonitor struct {
 	spells                []calmSpell // still spells that ended on their own, oldest first
 	same                  []stillMark // frames of the last StuckWindow: still = the same picture as the frame before
 	byStuck               bool        // the current still spell is a freeze only by the stuck rule
+	fine                  []fineMark  // still frames of the last FineWindow and their HealthStats.Changed
+	fineSorted            []float64   // scratch for the median
+}
+
+// fineMark is one still frame's HealthStats.Changed.
+type fineMark struct {
+	t time.Duration
+	v float64
 }
 
 // NewHealthMonitor returns a monitor that starts in CondOK.
@@ -661,11 +757,20 @@ func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, fl
 		// A black or covered picture is still too; the window restarts so
 		// that the picture coming back is not taken for a frozen one.
 		m.window = m.window[:0]
+		m.fine = m.fine[:0]
 		return f, 0
 	case s.HasMotion:
 		m.window = append(m.window, stillMark{t: t, still: f == CondFrozen})
+		if f == CondFrozen && s.HasChanged {
+			m.fine = append(m.fine, fineMark{t: t, v: s.Changed})
+		}
 	}
 	m.window = keepSince(m.window, t-m.cfg.FrozenWindow)
+	drop := 0
+	for drop < len(m.fine) && m.fine[drop].t < t-m.cfg.FineWindow {
+		drop++
+	}
+	m.fine = append(m.fine[:0], m.fine[drop:]...)
 	if len(m.window) == 0 {
 		if f == CondFrozen {
 			f = CondOK
@@ -682,6 +787,10 @@ func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, fl
 		share = 0
 	}
 	switch {
+	case full && share >= m.cfg.FrozenShare && m.liveSensor():
+		// Calm water under a live sensor: not a frozen picture, and not a
+		// calm spell to learn from either.
+		return CondOK, share
 	case full && share >= m.cfg.FrozenShare:
 		return CondFrozen, share
 	case f == CondFrozen:
@@ -693,6 +802,25 @@ func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, fl
 		return CondOK, share
 	}
 	return f, share
+}
+
+// liveSensor reports whether the median HealthStats.Changed of the still
+// frames of the last FineWindow is above FineLevel (see HealthConfig).
+func (m *HealthMonitor) liveSensor() bool {
+	if len(m.fine) < minStillFrames {
+		return false
+	}
+	m.fineSorted = m.fineSorted[:0]
+	for _, f := range m.fine {
+		m.fineSorted = append(m.fineSorted, f.v)
+	}
+	slices.Sort(m.fineSorted)
+	n := len(m.fineSorted)
+	med := m.fineSorted[n/2]
+	if n%2 == 0 {
+		med = (m.fineSorted[n/2-1] + med) / 2
+	}
+	return med > m.cfg.FineLevel
 }
 
 // Observe feeds one frame's statistics at media time t (non-decreasing).

@@ -503,6 +503,34 @@ func TestHealthMonitorHoldAndRecover(t *testing.T) {
 			}
 			return ok
 		}, []check{{ms(3000), CondDark}, {ms(4900), CondDark}, {ms(6900), CondDark}, {ms(7000), CondOK}, {ms(9000), CondOK}}},
+		// Calm water under a live sensor: from 4 s the probe sees no
+		// motion, but 3 % of the cells' pixels change in every frame (the
+		// calm live tuning scenes: 1 % or more in 99 % of their still
+		// frames). Never frozen, and no calm spell is learned: when the
+		// picture does freeze at 20 s (key frames every second, next to
+		// no pixel changing between them, 8 % in the two frames after
+		// each), the median of the last 3 s of still frames falls to the
+		// frozen ones' after about 2.2 s, and with the 1 s hold the fault
+		// is raised at 23.4 s, 3.4 s after the freeze.
+		{"calm water under a live sensor, then frozen", HealthConfig{}, ms(30000), func(at time.Duration) HealthStats {
+			s := keyFrames(at)
+			s.HasChanged = true
+			switch {
+			case at < 20*time.Second:
+				if at >= 4*time.Second {
+					s = still
+					s.Diff = 0.02
+				}
+				s.HasChanged, s.Changed = true, 0.03
+			case at%time.Second < ms(200):
+				s.Changed = 0.9
+			case at%time.Second < ms(400):
+				s.Changed = 0.08
+			default:
+				s.Changed = 0.001
+			}
+			return s
+		}, []check{{ms(6300), CondOK}, {ms(19900), CondOK}, {ms(23300), CondOK}, {ms(23400), CondFrozen}, {ms(30000), CondFrozen}}},
 		{"no motion measure, no freeze", HealthConfig{}, ms(5000), func(time.Duration) HealthStats {
 			s := still
 			s.HasMotion = false
@@ -536,6 +564,93 @@ func TestHealthMonitorHoldAndRecover(t *testing.T) {
 			assert.Empty(t, seen, "unexpected conditions")
 		})
 	}
+}
+
+// TestFineChangeLiveAndFrozen checks the premise of HealthConfig.FineLevel
+// on real footage, opencv-doc's vtest.avi (a fixed camera over a street)
+// and tree.avi (a tree in wind): a live sensor changes pixels all over
+// every frame, so the median HealthStats.Changed is far above the level;
+// the same camera's first frame frozen and re-encoded (libx264 at 10 fps,
+// a key frame a second) changes next to none between its key frames.
+func TestFineChangeLiveAndFrozen(t *testing.T) {
+	level := DefaultHealth().FineLevel
+	median := func(h healthRun) float64 {
+		var v []float64
+		for _, s := range h.stats {
+			if s.HasChanged {
+				v = append(v, s.Changed)
+			}
+		}
+		require.NotEmpty(t, v)
+		sort.Float64s(v)
+		return v[len(v)/2]
+	}
+	for _, ref := range []string{"vtest.avi", "tree.avi"} {
+		t.Run(ref, func(t *testing.T) {
+			p, err := refdata.Path(ref)
+			require.NoError(t, err)
+			live := median(runHealth(t, p, HealthConfig{}, nil))
+			still := filepath.Join(t.TempDir(), "first.png")
+			frozen := filepath.Join(t.TempDir(), "frozen.mp4")
+			ffmpeg(t, "-i", p, "-frames:v", "1", still)
+			ffmpeg(t, "-loop", "1", "-framerate", "10", "-t", "6", "-i", still, "-c:v", "libx264", "-g", "10", "-pix_fmt", "yuv420p", frozen)
+			dead := median(runHealth(t, frozen, HealthConfig{}, nil))
+			report(t, "fine change: %s live median %.4f, its first frame frozen and re-encoded %.4f (level %.3f)", ref, live, dead, level)
+			assert.Greater(t, live, 5*level, "live footage")
+			assert.LessOrEqual(t, dead, level/10, "frozen and re-encoded")
+		})
+	}
+}
+
+// TestFineChangeSamplesSourcePixels: the probe compares the source pixels
+// at its cells' centres as they are. A 640×360 frame has 160×90 probe
+// cells of 4×4 pixels; changing one grey level in a 64×36 block at the
+// top left changes 16×9 of the 14 400 cells' centres, 1 %; a change of
+// 20 levels away from the centres (the first row and column of every
+// cell) changes none, though it moves the averaged probe.
+func TestFineChangeSamplesSourcePixels(t *testing.T) {
+	rng := rand.New(rand.NewSource(3))
+	base := gocv.NewMatWithSize(360, 640, gocv.MatTypeCV8UC3)
+	defer base.Close()
+	b, err := base.DataPtrUint8()
+	require.NoError(t, err)
+	for i := range b {
+		b[i] = byte(40 + rng.Intn(150))
+	}
+	var p healthProbe
+	defer p.Close()
+	s := p.measure(base, 0)
+	assert.False(t, s.HasChanged, "first frame")
+	s = p.measure(base, 100*time.Millisecond)
+	require.True(t, s.HasChanged)
+	assert.Zero(t, s.Changed, "the same frame")
+	block := base.Clone()
+	defer block.Close()
+	c, err := block.DataPtrUint8()
+	require.NoError(t, err)
+	for y := 0; y < 36; y++ {
+		for x := 0; x < 64; x++ {
+			c[(y*640+x)*3+1]++
+		}
+	}
+	s = p.measure(block, 200*time.Millisecond)
+	assert.InDelta(t, 144.0/14400, s.Changed, 1e-12)
+	edges := block.Clone()
+	defer edges.Close()
+	e, err := edges.DataPtrUint8()
+	require.NoError(t, err)
+	for y := 0; y < 360; y++ {
+		for x := 0; x < 640; x++ {
+			if x%4 == 0 || y%4 == 0 {
+				for k := 0; k < 3; k++ {
+					e[(y*640+x)*3+k] += 20
+				}
+			}
+		}
+	}
+	s = p.measure(edges, 300*time.Millisecond)
+	assert.Zero(t, s.Changed, "only pixels off the cells' centres changed")
+	assert.Greater(t, s.Diff, 0.0, "the averaged probe moved")
 }
 
 // TestTrimmedChangeHandWorked: ten cells, nine changed by 1 and one by
