@@ -624,30 +624,29 @@ func TestFineChangeSamplesSourcePixels(t *testing.T) {
 	s = p.measure(base, 100*time.Millisecond)
 	require.True(t, s.HasChanged)
 	assert.Zero(t, s.Changed, "the same frame")
-	block := base.Clone()
-	defer block.Close()
-	c, err := block.DataPtrUint8()
-	require.NoError(t, err)
-	for y := 0; y < 36; y++ {
-		for x := 0; x < 64; x++ {
-			c[(y*640+x)*3+1]++
-		}
-	}
-	s = p.measure(block, 200*time.Millisecond)
-	assert.InDelta(t, 144.0/14400, s.Changed, 1e-12)
-	edges := block.Clone()
-	defer edges.Close()
-	e, err := edges.DataPtrUint8()
-	require.NoError(t, err)
-	for y := 0; y < 360; y++ {
-		for x := 0; x < 640; x++ {
-			if x%4 == 0 || y%4 == 0 {
-				for k := 0; k < 3; k++ {
-					e[(y*640+x)*3+k] += 20
+	// edited is a copy of m with the given channels of the pixels where
+	// at(x, y) raised by the given levels.
+	edited := func(m gocv.Mat, at func(x, y int) bool, channels []int, by byte) gocv.Mat {
+		out := m.Clone()
+		d, err := out.DataPtrUint8()
+		require.NoError(t, err)
+		for y := 0; y < 360; y++ {
+			for x := 0; x < 640; x++ {
+				if at(x, y) {
+					for _, k := range channels {
+						d[(y*640+x)*3+k] += by
+					}
 				}
 			}
 		}
+		return out
 	}
+	block := edited(base, func(x, y int) bool { return x < 64 && y < 36 }, []int{1}, 1)
+	defer block.Close()
+	s = p.measure(block, 200*time.Millisecond)
+	assert.InDelta(t, 144.0/14400, s.Changed, 1e-12)
+	edges := edited(block, func(x, y int) bool { return x%4 == 0 || y%4 == 0 }, []int{0, 1, 2}, 20)
+	defer edges.Close()
 	s = p.measure(edges, 300*time.Millisecond)
 	assert.Zero(t, s.Changed, "only pixels off the cells' centres changed")
 	assert.Greater(t, s.Diff, 0.0, "the averaged probe moved")

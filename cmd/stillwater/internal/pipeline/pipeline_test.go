@@ -59,6 +59,17 @@ func TestStepForgetsTracksWhenModelRestarts(t *testing.T) {
 	}
 }
 
+// newTestProcessor returns the pipeline of cam, at 10 fps, logging
+// nowhere.
+func newTestProcessor(t *testing.T, cam config.CameraConfig) *Processor {
+	t.Helper()
+	cal, err := config.NewCalibration(cam)
+	require.NoError(t, err)
+	p, err := New(cam, cal, 10, time.Time{}, time.Now, slog.New(slog.NewTextHandler(io.Discard, nil)), nil)
+	require.NoError(t, err)
+	return p
+}
+
 // TestGateUprightInTheWater: a candidate whose centre lies beyond the
 // pool's edge but whose end nearest the camera is on the water is a body
 // upright in the water, its upper part seen reaching over the deck (as a
@@ -80,10 +91,7 @@ func TestGateUprightInTheWater(t *testing.T) {
 	} {
 		t.Run(c.name, func(t *testing.T) {
 			cam := zoneCamera()
-			cal, err := config.NewCalibration(cam)
-			require.NoError(t, err)
-			p, err := New(cam, cal, 10, time.Time{}, time.Now, slog.New(slog.NewTextHandler(io.Discard, nil)), nil)
-			require.NoError(t, err)
+			p := newTestProcessor(t, cam)
 			f := body()
 			f.Foot, f.Wet = c.foot, c.wet
 			b := vision.Blob{Plane: &vision.PlaneBlob{X: 8.3, Y: 2, Near: c.near}, Features: f}
@@ -120,10 +128,7 @@ func TestGateFaintCandidate(t *testing.T) {
 	} {
 		t.Run(c.name, func(t *testing.T) {
 			cam := zoneCamera()
-			cal, err := config.NewCalibration(cam)
-			require.NoError(t, err)
-			p, err := New(cam, cal, 10, time.Time{}, time.Now, slog.New(slog.NewTextHandler(io.Discard, nil)), nil)
-			require.NoError(t, err)
+			p := newTestProcessor(t, cam)
 			require.InDelta(t, 0.03, cam.Detect.MinArea, 1e-9)
 			p.Tracks = []poolTrack{{ID: 7, X: 4, Y: 2}}
 			p.alarmed[7] = c.alarmed
