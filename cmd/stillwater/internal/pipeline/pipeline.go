@@ -117,6 +117,18 @@ func unseenDrift(method string) float64 {
 // warm-up, at most 0.022.
 const faintShare = 2.0 / 3
 
+// faintReach, m, and faintSpeed, m/s: a faint candidate goes on a target
+// in alarm only within faintReach of it and while the target keeps still.
+// Measured: the faint candidates of tuning intruder/12's still child lay
+// within 0.05 m of its target (0.1 m/s was too little: the noise of its
+// velocity broke the target once); in the scenario suite's submerged
+// scene, faint candidates of the swimming child's shadow, within the
+// tracker's 0.6 m, drew its target 2–3 m off the child.
+const (
+	faintReach = 0.2
+	faintSpeed = 0.25
+)
+
 // trackGate is how far, m, a detection may lie from a track to continue
 // it.
 const trackGate = 0.6
@@ -337,7 +349,7 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 	case f.Area > d.MaxArea:
 		return reject("large", fmt.Sprintf("too large (%.3f m² > %.3f m²)", f.Area, d.MaxArea))
 	case f.Faint && !p.nearAlarm(c):
-		return reject("faint", fmt.Sprintf("below the threshold everywhere (peak %.0f), and no target in alarm within %.1f m to go on", f.Peak, trackGate))
+		return reject("faint", fmt.Sprintf("below the threshold everywhere (peak %.0f), and no target in alarm keeping still within %.2f m to go on", f.Peak, faintReach))
 	case f.Faint && f.Area < faintShare*d.MinArea:
 		return reject("faint", fmt.Sprintf("below the threshold everywhere (peak %.0f), and smaller than a child's body (%.3f m² < %.3f m²)", f.Peak, f.Area, faintShare*d.MinArea))
 	}
@@ -374,12 +386,14 @@ func featureArgs(f vision.Features) []any {
 	return args
 }
 
-// nearAlarm reports whether a track in alarm was last within the
-// tracker's reach of c: a faint candidate (vision.Features.Faint) may only
-// go on a target already raised, never start or feed one.
+// nearAlarm reports whether a track in alarm and keeping still was last
+// within faintReach of c: a faint candidate (vision.Features.Faint) may
+// only keep such a target where it is, never start or feed a track, nor
+// draw a moving target off its body (the shadow a swimming child casts on
+// the floor is faint too).
 func (p *Processor) nearAlarm(c homography.Point) bool {
 	for _, t := range p.Tracks {
-		if p.alarmed[t.ID] && math.Hypot(t.X-c.X, t.Y-c.Y) <= trackGate {
+		if p.alarmed[t.ID] && math.Hypot(t.X-c.X, t.Y-c.Y) <= faintReach && math.Hypot(t.VX, t.VY) <= faintSpeed {
 			return true
 		}
 	}

@@ -110,8 +110,9 @@ func TestGateUprightInTheWater(t *testing.T) {
 
 // TestGateFaintCandidate: a candidate with no cell at the threshold
 // (vision.Features.Faint, found only because a tracked body was held
-// there) goes on a target already in alarm, near it and at two thirds of
-// a child's body or more; it never starts or feeds a track on its own.
+// there) goes on a target already in alarm that keeps still, within
+// 0.2 m of it and at two thirds of a child's body or more; it never starts
+// or feeds a track on its own, nor draws a moving target away.
 func TestGateFaintCandidate(t *testing.T) {
 	for _, c := range []struct {
 		name    string
@@ -123,7 +124,8 @@ func TestGateFaintCandidate(t *testing.T) {
 		{"beside a target in alarm", true, [2]float64{4.1, 2}, 0.04, true},
 		{"at two thirds of a child's body", true, [2]float64{4.1, 2}, 0.021, true},
 		{"smaller", true, [2]float64{4.1, 2}, 0.018, false},
-		{"1 m from the target", true, [2]float64{5, 2}, 0.04, false},
+		{"0.3 m from the target", true, [2]float64{4.3, 2}, 0.04, false},
+		{"the target is moving", true, [2]float64{4.1, 2}, 0.04, false},
 		{"the track is not in alarm", false, [2]float64{4.1, 2}, 0.04, false},
 	} {
 		t.Run(c.name, func(t *testing.T) {
@@ -131,6 +133,9 @@ func TestGateFaintCandidate(t *testing.T) {
 			p := newTestProcessor(t, cam)
 			require.InDelta(t, 0.03, cam.Detect.MinArea, 1e-9)
 			p.Tracks = []poolTrack{{ID: 7, X: 4, Y: 2}}
+			if c.name == "the target is moving" {
+				p.Tracks[0].VX = 0.4 // a child swimming slowly, m/s
+			}
 			p.alarmed[7] = c.alarmed
 			f := body()
 			f.Area, f.Half, f.Peak, f.Faint = c.area, c.area, 40, true
