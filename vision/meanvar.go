@@ -1023,6 +1023,10 @@ func (d *meanVar) candidates() ([]Blob, error) {
 	return out, nil
 }
 
+// keepPeak is the share of Threshold the peak of a candidate without a
+// core must reach to be kept in a hold box (Features.Faint).
+const keepPeak = 0.5
+
 // trailPresent and nowShare: a candidate across the water's edge less
 // than trailPresent of which is there in the current frame
 // (Features.Present) is mostly the trail of a body that moved, and is
@@ -1030,10 +1034,6 @@ func (d *meanVar) candidates() ([]Blob, error) {
 // at least nowShare of that in the short mean. Measured on the
 // development set's H4: a child stepping in over the edge was 0.06–0.17
 // there in the frames before its centre crossed onto the water.
-// keepPeak is the share of Threshold the peak of a candidate without a
-// core must reach to be kept in a hold box (Features.Faint).
-const keepPeak = 0.5
-
 const (
 	trailPresent = 0.4
 	nowShare     = 0.5
