@@ -37,11 +37,11 @@ type HealthStats struct {
 	Motion float64
 	// Changed is the share of the watched cells whose source pixel at the
 	// cell's centre, taken as it is (not averaged), differs in any channel
-	// from the frame before. A live camera's
-	// sensor noise reaches some pixels of every frame even where the
-	// water is too calm to move the averaged probe; a frozen picture's
-	// encoder sends no change at all between its key frames. HasChanged
-	// is false when there was no frame before to compare with.
+	// from the frame before. A live camera's sensor noise reaches some
+	// pixels of every frame even where the water is too calm to move the
+	// averaged probe; a frozen picture's encoder sends next to no change
+	// between its key frames. HasChanged is false when there was no frame
+	// before to compare with.
 	Changed    float64
 	HasChanged bool
 	// Correlation is the mean Pearson correlation between each pixel and its
