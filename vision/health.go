@@ -583,6 +583,8 @@ type stillMark struct {
 	still bool
 }
 
+func (s stillMark) at() time.Duration { return s.t }
+
 // HealthMonitor turns per-frame statistics into a stable condition: a fault
 // is reported once it has persisted for its hold and cleared once the
 // picture has been fine for Recover. Pure Go; not safe for concurrent use.
@@ -610,6 +612,8 @@ type fineMark struct {
 	t time.Duration
 	v float64
 }
+
+func (f fineMark) at() time.Duration { return f.t }
 
 // NewHealthMonitor returns a monitor that starts in CondOK.
 func NewHealthMonitor(cfg HealthConfig) *HealthMonitor {
@@ -699,9 +703,9 @@ func (m *HealthMonitor) stuck(t time.Duration, s HealthStats, f Condition) bool 
 
 // keepSince drops the marks older than from (they are oldest first),
 // reusing the slice.
-func keepSince(marks []stillMark, from time.Duration) []stillMark {
+func keepSince[M interface{ at() time.Duration }](marks []M, from time.Duration) []M {
 	drop := 0
-	for drop < len(marks) && marks[drop].t < from {
+	for drop < len(marks) && marks[drop].at() < from {
 		drop++
 	}
 	return append(marks[:0], marks[drop:]...)
@@ -766,11 +770,7 @@ func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, fl
 		}
 	}
 	m.window = keepSince(m.window, t-m.cfg.FrozenWindow)
-	drop := 0
-	for drop < len(m.fine) && m.fine[drop].t < t-m.cfg.FineWindow {
-		drop++
-	}
-	m.fine = append(m.fine[:0], m.fine[drop:]...)
+	m.fine = keepSince(m.fine, t-m.cfg.FineWindow)
 	if len(m.window) == 0 {
 		if f == CondFrozen {
 			f = CondOK
