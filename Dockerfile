@@ -1,7 +1,9 @@
-# Build: Debian bookworm with OpenCV 4.6 development files and Go.
+# Build: Debian bookworm with OpenCV 4.6 and FFmpeg 5.1 development files
+# (vision/decode links FFmpeg's libraries directly) and Go.
 FROM golang:1.26-bookworm AS build
 RUN apt-get update \
- && DEBIAN_FRONTEND=noninteractive apt-get install -y --no-install-recommends libopencv-dev libjpeg-dev pkg-config g++ \
+ && DEBIAN_FRONTEND=noninteractive apt-get install -y --no-install-recommends libopencv-dev libjpeg-dev \
+      libavformat-dev libavcodec-dev libswscale-dev libavutil-dev pkg-config g++ \
  && rm -rf /var/lib/apt/lists/*
 WORKDIR /src
 COPY go.mod go.sum ./
@@ -13,11 +15,13 @@ RUN CGO_ENABLED=1 go build -trimpath -ldflags="-s -w" -o /out/stillwater ./cmd/s
 RUN for f in $(ldd /out/stillwater | awk '/=> \//{print $3}'); do \
       dpkg -S "$f" 2>/dev/null || dpkg -S "/usr$f" 2>/dev/null || dpkg -S "${f#/usr}" 2>/dev/null; \
     done | cut -d: -f1 | sort -u > /out/runtime-packages \
- && grep -q libopencv-core /out/runtime-packages
+ && grep -q libopencv-core /out/runtime-packages \
+ && grep -q libavcodec /out/runtime-packages
 
 # Runtime: only the runtime libraries the binary links (the OpenCV 4.6
-# modules: libopencv-core406, -imgproc406, -videoio406, ...), plus curl for
-# the health check.
+# modules: libopencv-core406, -imgproc406, -videoio406, ...; FFmpeg's
+# libavformat59, libavcodec59, libswscale6, libavutil57), plus curl for the
+# health check.
 FROM debian:bookworm-slim
 COPY --from=build /out/runtime-packages /tmp/runtime-packages
 RUN apt-get update \

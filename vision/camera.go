@@ -21,12 +21,11 @@ type SourceConfig struct {
 	// path.
 	URI string
 	// Transport is "tcp" or "udp" for RTSP; empty lets FFmpeg choose (UDP
-	// first, then TCP). Cameras whose RTSP transports differ open one
-	// kind at a time (see ffmpegEnv).
+	// first, then TCP).
 	Transport string
-	// OpenTimeout and ReadTimeout bound the FFmpeg backend's blocking calls
-	// (RTSP, HTTP, files); zero keeps OpenCV's default (30 s). V4L2 devices
-	// use the driver's own wait instead.
+	// OpenTimeout and ReadTimeout bound the decoder's blocking calls
+	// (RTSP, HTTP, files); zero gives 30 s, as OpenCV's capture waited.
+	// V4L2 devices use the driver's own wait instead.
 	OpenTimeout, ReadTimeout time.Duration
 	// Loop plays a file source again from the start at its end instead of
 	// returning io.EOF; media time keeps increasing across passes.
@@ -136,7 +135,7 @@ type Camera struct {
 	sc       SourceConfig
 	dc       DetectorConfig
 	kind     sourceKind
-	cap      *capture
+	cap      backend
 	det      frameDetector
 	frame    gocv.Mat // latest full-resolution BGR frame
 	scratch  gocv.Mat // read target; swapped with frame on success, so a failed read keeps the last frame
@@ -217,40 +216,18 @@ func (c *Camera) open() error {
 	if stuck, since := c.gate.Stuck(); stuck {
 		return fmt.Errorf("%w (blocked for %v)", ErrOpenStuck, time.Since(since).Round(time.Second))
 	}
-	ffmpegEnv.ensure()
 	src, err := c.prepare()
 	if err != nil {
 		return err
 	}
-	wait := c.openWait()
-	deadline := time.Now().Add(wait)
-	api := capFFmpeg
-	openMs, readMs := int(c.sc.OpenTimeout/time.Millisecond), int(c.sc.ReadTimeout/time.Millisecond)
-	if c.kind == kindV4L2 {
-		// The V4L2 backend takes no open-time timeouts; it waits on the
-		// device itself.
-		api, openMs, readMs = capV4L2, 0, 0
-	}
-	r := c.gate.run(wait, func() openResult {
-		release := func() {}
-		if c.kind == kindRTSP {
-			var err error
-			if release, err = ffmpegEnv.acquire(rtspOptions(c.sc.Transport), deadline); err != nil {
-				if src.fd >= 0 {
-					syscall.Close(src.fd)
-				}
-				return openResult{err: err}
-			}
-		}
-		cp, err := openCapture(src.uri, api, openMs, readMs)
-		release() // the backend has read the options
+	r := c.gate.run(c.openWait(), func() openResult {
+		cp, err := c.openBackend(src)
 		if err != nil {
 			if src.fd >= 0 {
 				syscall.Close(src.fd)
 			}
 			return openResult{err: err}
 		}
-		cp.fd = src.fd
 		m := gocv.NewMat()
 		ok, err := cp.read(&m)
 		if err == nil && (!ok || m.Empty()) {
@@ -286,6 +263,28 @@ func (c *Camera) open() error {
 		}
 	}
 	return nil
+}
+
+// openBackend opens the source handed over by prepare: a V4L2 device
+// through OpenCV's capture, anything else as a stream decoded directly
+// (see streamCapture). Once open, the backend owns src.fd and closes it.
+func (c *Camera) openBackend(src backendSource) (backend, error) {
+	if c.kind == kindV4L2 {
+		// OpenCV's V4L2 backend takes no open-time timeouts; it waits on
+		// the device itself.
+		cp, err := openCapture(src.uri, capV4L2, 0, 0)
+		if err != nil {
+			return nil, err
+		}
+		cp.fd = src.fd
+		return cp, nil
+	}
+	s, err := openStream(src.uri, c.sc.Transport, c.sc.OpenTimeout, c.sc.ReadTimeout)
+	if err != nil {
+		return nil, err
+	}
+	s.fd = src.fd
+	return s, nil
 }
 
 func (c *Camera) frameSize() image.Point { return image.Pt(c.frame.Cols(), c.frame.Rows()) }

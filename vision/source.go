@@ -19,21 +19,22 @@ import (
 	"gocv.io/x/gocv"
 )
 
-// Why opens are fenced in here: OpenCV 4.6's FFmpeg backend holds one
-// process-wide mutex across avformat_open_input and
-// avformat_find_stream_info in every capture open, and across the open of
-// every FFmpeg video writer (cap_ffmpeg_impl.hpp; measured here: a file
-// open waited 2.8 s behind an RTSP open to a server that never answered,
-// and without end behind a named pipe with no writer). Reads do not take
-// it. So a source whose open hangs holds up every other camera's open, and
-// any clip writer going through FFmpeg. Three things keep a source from
-// getting there: a named pipe is opened here without blocking and handed
-// to FFmpeg as a descriptor; a network source must answer a request of
-// its own protocol within the open timeout before the backend sees it;
-// and every open runs on a goroutine of its own that is abandoned after
-// its wait (see OpenGate). The FFmpeg options variable is held only by
-// RTSP opens that need another value (see ffmpegEnv). Evidence clips do not use FFmpeg at all (see
-// avi.go).
+// Why opens are fenced in here: an open that hangs must not hold up the
+// camera's goroutine, and a source that hangs every open must not cost a
+// blocked thread per retry. Files and network sources are decoded with
+// FFmpeg's libraries directly (see streamCapture), whose every blocking
+// call is cut off at the source's timeouts; V4L2 devices go through
+// OpenCV's capture, which waits on the device. Three things keep a source
+// from blocking beyond that: a named pipe is opened here without blocking
+// and handed to FFmpeg as a descriptor; a network source must answer a
+// request of its own protocol within the open timeout before the decoder
+// sees it; and every open runs on a goroutine of its own that is abandoned
+// after its wait (see OpenGate). (OpenCV 4.6's FFmpeg capture, used for
+// these sources before, also held one process-wide lock across every open,
+// so one hanging open held up every other camera's: measured here, a file
+// open waited 2.8 s behind an RTSP open to a server that never answered.
+// The direct decoder takes no such lock.) Evidence clips do not use FFmpeg
+// at all (see avi.go).
 
 // Errors of an open that did not complete.
 var (
@@ -66,7 +67,7 @@ type OpenGate struct {
 // openResult is what an open yields: a capture and its first frame, owned
 // by whoever receives the result.
 type openResult struct {
-	cp    *capture
+	cp    backend
 	frame gocv.Mat
 	err   error
 }
@@ -129,85 +130,6 @@ func (g *OpenGate) Stuck() (bool, time.Time) {
 	}
 }
 
-// ffmpegEnv lends the FFmpeg options variable to RTSP opens. OpenCV reads
-// OPENCV_FFMPEG_CAPTURE_OPTIONS inside each FFmpeg open, only after it has
-// its own open lock, so the value an open needs must stay put until that
-// open returns. Any number of opens needing the value the variable holds
-// go ahead at once; one needing another value waits, at most until its
-// own deadline, for no open to be under way, and then sets it. Cameras
-// that share a transport (or set none) therefore never wait for each
-// other here; other sources do not read the variable at all. It is the
-// process environment, hence one per process.
-var ffmpegEnv = &envLease{name: "OPENCV_FFMPEG_CAPTURE_OPTIONS", idle: make(chan struct{})}
-
-type envLease struct {
-	name  string
-	mu    sync.Mutex
-	ready bool   // the variable exists (set before any open of ours)
-	value string // what it holds
-	users int    // opens under way that read it
-	idle  chan struct{}
-}
-
-// ensure makes the variable exist, empty, before the first open: setenv
-// then replaces an entry in place rather than growing the environment
-// under a concurrent getenv. Empty means FFmpeg's own defaults; left unset,
-// OpenCV would add rtsp_flags=prefer_tcp of its own.
-func (e *envLease) ensure() {
-	e.mu.Lock()
-	defer e.mu.Unlock()
-	if !e.ready {
-		os.Setenv(e.name, "")
-		e.ready = true
-	}
-}
-
-// acquire waits until the variable holds v (setting it when no open is
-// under way) and returns the release to call once the open has returned.
-func (e *envLease) acquire(v string, deadline time.Time) (func(), error) {
-	for {
-		e.mu.Lock()
-		if e.users == 0 && (!e.ready || e.value != v) {
-			os.Setenv(e.name, v)
-			e.ready, e.value = true, v
-		}
-		if e.value == v {
-			e.users++
-			e.mu.Unlock()
-			var once sync.Once
-			return func() { once.Do(e.release) }, nil
-		}
-		idle, held := e.idle, e.value
-		e.mu.Unlock()
-		t := time.NewTimer(time.Until(deadline))
-		select {
-		case <-idle:
-			t.Stop()
-		case <-t.C:
-			return nil, fmt.Errorf("%w: another camera's RTSP open with options %q is still under way", ErrOpenTimeout, held)
-		}
-	}
-}
-
-func (e *envLease) release() {
-	e.mu.Lock()
-	defer e.mu.Unlock()
-	e.users--
-	if e.users == 0 {
-		close(e.idle)
-		e.idle = make(chan struct{})
-	}
-}
-
-// rtspOptions is the value of the FFmpeg options variable an RTSP open
-// with this transport needs.
-func rtspOptions(transport string) string {
-	if transport == "" {
-		return ""
-	}
-	return "rtsp_transport;" + transport
-}
-
 // backendSource is what the backend is handed for one open.
 type backendSource struct {
 	uri string
@@ -261,10 +183,10 @@ func (c *Camera) probeTimeout() time.Duration {
 func (c *Camera) openWait() time.Duration {
 	o, r := c.sc.OpenTimeout, c.sc.ReadTimeout
 	if o <= 0 || c.kind == kindV4L2 {
-		o = 30 * time.Second // OpenCV's default
+		o = defaultStreamTimeout
 	}
 	if r <= 0 || c.kind == kindV4L2 {
-		r = 30 * time.Second
+		r = defaultStreamTimeout
 	}
 	return o + r + 2*time.Second
 }

@@ -1,0 +1,203 @@
+// Package decode reads a video stream with FFmpeg's libraries directly,
+// without OpenCV's capture in between.
+//
+// OpenCV 4.6's capture decodes on as many threads as the machine has CPUs
+// and gives no way to say otherwise; with several cameras on a two-core
+// server that costs more CPU per frame than decoding on one thread (see
+// BenchmarkDecode1080p). It also holds one process-wide lock across every
+// open. A Stream decodes on as many threads as it is told (one by default:
+// the caller's own), cuts every blocking call off at a timeout through
+// FFmpeg's interrupt callback, and converts the decoder's planes to packed
+// BGR at the frame's size, bit for bit as OpenCV's capture does, or
+// straight to a smaller size in the same pass.
+//
+// Not safe for concurrent use.
+package decode
+
+// #cgo pkg-config: libavformat libavcodec libswscale libavutil
+// #include <stdlib.h>
+// #include "decode.h"
+import "C"
+
+import (
+	"errors"
+	"fmt"
+	"image"
+	"io"
+	"math"
+	"sort"
+	"strings"
+	"time"
+	"unsafe"
+
+	"gocv.io/x/gocv"
+)
+
+const errLen = 512
+
+// Options tune how a stream is opened and read.
+type Options struct {
+	// Demuxer holds FFmpeg demuxer options, such as "rtsp_transport":
+	// "udp". Keys and values may not contain '=' or a newline.
+	Demuxer map[string]string
+	// Threads is the decoder's thread count: 0 means 1 (decode on the
+	// caller's thread only); a negative count lets FFmpeg choose.
+	Threads int
+	// OpenTimeout bounds Open, ReadTimeout each Next; 0: no bound.
+	OpenTimeout, ReadTimeout time.Duration
+	// Name is what errors call the stream; empty: the url as given. Set
+	// it when the url holds a password.
+	Name string
+}
+
+// Info is what the stream says of itself.
+type Info struct {
+	Size     image.Point
+	FPS      float64       // nominal frame rate, 0 when unknown
+	Duration time.Duration // 0 when unknown (a live stream)
+	Frames   int64         // frames the container declares, 0 when it does not
+	Codec    string
+}
+
+// Frame is the frame Next decoded.
+type Frame struct {
+	// PTS is its presentation time from the stream's start time (as
+	// OpenCV's CAP_PROP_POS_MSEC counts); HasPTS is false when the
+	// stream gave none.
+	PTS    time.Duration
+	HasPTS bool
+	Key    bool // a key frame
+}
+
+// Stream is an open video stream.
+type Stream struct {
+	d       *C.SwDecoder
+	name    string // what errors call the stream (Options.Name)
+	info    Info
+	timeout time.Duration
+}
+
+// Open opens url, a file path or a network address such as rtsp://.
+func Open(url string, o Options) (*Stream, error) {
+	name := o.Name
+	if name == "" {
+		name = url
+	}
+	opts, err := demuxerOptions(o.Demuxer)
+	if err != nil {
+		return nil, fmt.Errorf("decode %s: %w", name, err)
+	}
+	threads := o.Threads
+	switch {
+	case threads == 0:
+		threads = 1
+	case threads < 0:
+		threads = 0 // FFmpeg's choice
+	}
+	cURL, cOpts := C.CString(url), C.CString(opts)
+	defer C.free(unsafe.Pointer(cURL))
+	defer C.free(unsafe.Pointer(cOpts))
+	var buf [errLen]C.char
+	d := C.sw_dec_open(cURL, cOpts, C.int(threads), C.int64_t(o.OpenTimeout.Microseconds()), &buf[0], errLen)
+	if d == nil {
+		return nil, fmt.Errorf("decode %s: %s", name, C.GoString(&buf[0]))
+	}
+	var w, h C.int
+	var fps, dur C.double
+	var frames C.int64_t
+	var codec *C.char
+	C.sw_dec_info(d, &w, &h, &fps, &dur, &frames, &codec)
+	s := &Stream{d: d, name: name, timeout: o.ReadTimeout, info: Info{
+		Size: image.Pt(int(w), int(h)), FPS: float64(fps),
+		Duration: time.Duration(float64(dur) * float64(time.Second)), Frames: int64(frames), Codec: C.GoString(codec),
+	}}
+	if s.info.Size.X <= 0 || s.info.Size.Y <= 0 {
+		s.Close()
+		return nil, fmt.Errorf("decode %s: the video stream gives no frame size", name)
+	}
+	return s, nil
+}
+
+// demuxerOptions renders options as the C side parses them, in key order.
+func demuxerOptions(m map[string]string) (string, error) {
+	keys := make([]string, 0, len(m))
+	for k, v := range m {
+		if k == "" || strings.ContainsAny(k, "=\n") || strings.ContainsRune(v, '\n') {
+			return "", fmt.Errorf("demuxer option %q=%q: keys must be non-empty and free of '=' and newlines, values free of newlines", k, v)
+		}
+		keys = append(keys, k)
+	}
+	sort.Strings(keys)
+	var b strings.Builder
+	for _, k := range keys {
+		fmt.Fprintf(&b, "%s=%s\n", k, m[k])
+	}
+	return b.String(), nil
+}
+
+// Info returns what the stream says of itself.
+func (s *Stream) Info() Info { return s.info }
+
+// Errors returns how many packets or frames the decoder found damaged so
+// far; they are skipped, not fatal.
+func (s *Stream) Errors() int64 { return int64(C.sw_dec_errors(s.d)) }
+
+// Next decodes the next frame; io.EOF at the end of the stream.
+func (s *Stream) Next() (Frame, error) {
+	if s.d == nil {
+		return Frame{}, errors.New("decode: stream closed")
+	}
+	var buf [errLen]C.char
+	switch C.sw_dec_next(s.d, C.int64_t(s.timeout.Microseconds()), &buf[0], errLen) {
+	case 1:
+	case 0:
+		return Frame{}, io.EOF
+	default:
+		return Frame{}, fmt.Errorf("decode %s: %s", s.name, C.GoString(&buf[0]))
+	}
+	f := Frame{Key: C.sw_dec_key(s.d) != 0}
+	if pts := float64(C.sw_dec_pts(s.d)); !math.IsNaN(pts) {
+		f.PTS, f.HasPTS = time.Duration(pts*float64(time.Second)), true
+	}
+	return f, nil
+}
+
+// BGR converts the current frame to packed BGR at size (the frame's own
+// size when size is zero), into dst, reallocated only when its size or
+// type differ. At the frame's own size the pixels are those of OpenCV's
+// capture; smaller, they are averaged over areas, as OpenCV's INTER_AREA
+// does.
+func (s *Stream) BGR(dst *gocv.Mat, size image.Point) error {
+	if s.d == nil {
+		return errors.New("decode: stream closed")
+	}
+	if size == (image.Point{}) {
+		size = s.info.Size
+	}
+	if size.X <= 0 || size.Y <= 0 {
+		return fmt.Errorf("decode %s: output size %v", s.name, size)
+	}
+	if dst.Cols() != size.X || dst.Rows() != size.Y || dst.Type() != gocv.MatTypeCV8UC3 || !dst.IsContinuous() {
+		m := gocv.NewMatWithSize(size.Y, size.X, gocv.MatTypeCV8UC3)
+		dst.Close()
+		*dst = m
+	}
+	data, err := dst.DataPtrUint8()
+	if err != nil {
+		return fmt.Errorf("decode %s: %w", s.name, err)
+	}
+	var buf [errLen]C.char
+	if C.sw_dec_bgr(s.d, (*C.uint8_t)(unsafe.Pointer(&data[0])), C.int(size.X), C.int(size.Y), C.int(dst.Step()), &buf[0], errLen) != 0 {
+		return fmt.Errorf("decode %s: convert: %s", s.name, C.GoString(&buf[0]))
+	}
+	return nil
+}
+
+// Close releases the stream. It is safe to call more than once.
+func (s *Stream) Close() error {
+	if s.d != nil {
+		C.sw_dec_close(s.d)
+		s.d = nil
+	}
+	return nil
+}

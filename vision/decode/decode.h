@@ -1,0 +1,39 @@
+// C side of package decode: a video stream read with FFmpeg's libraries.
+#ifndef STILLWATER_DECODE_H
+#define STILLWATER_DECODE_H
+
+#include <stdint.h>
+
+typedef struct SwDecoder SwDecoder;
+
+// Opens url (a file or a network address). opts holds demuxer options as
+// "key=value" pairs separated by '\n'; threads is the decoder's thread
+// count (1: decode on the caller's thread only); timeout_us bounds the
+// open (0: none). On failure returns NULL and writes why into err.
+SwDecoder *sw_dec_open(const char *url, const char *opts, int threads, int64_t timeout_us, char *err, int errlen);
+
+// Stream facts: frame size, nominal frame rate (0 when unknown), duration
+// in seconds (0 when unknown), the frame count the container declares (0
+// when it does not), and the codec's name.
+void sw_dec_info(SwDecoder *d, int *width, int *height, double *fps, double *duration, int64_t *frames, const char **codec);
+
+// Decodes the next frame. Returns 1 with a frame, 0 at the end of the
+// stream, -1 on an error (written into err). timeout_us bounds the call
+// (0: none). Packets the decoder rejects are counted, not fatal.
+int sw_dec_next(SwDecoder *d, int64_t timeout_us, char *err, int errlen);
+
+// The current frame's presentation time, seconds from the stream's start
+// time (NaN when it has none),
+// whether it is a key frame, and the decode errors counted so far.
+double sw_dec_pts(SwDecoder *d);
+int sw_dec_key(SwDecoder *d);
+int64_t sw_dec_errors(SwDecoder *d);
+
+// Converts the current frame to packed BGR of dst_w × dst_h into dst (rows
+// dst_step bytes apart), scaling by area averaging when smaller. Returns 0,
+// or -1 with err written.
+int sw_dec_bgr(SwDecoder *d, uint8_t *dst, int dst_w, int dst_h, int dst_step, char *err, int errlen);
+
+void sw_dec_close(SwDecoder *d);
+
+#endif
