@@ -22,14 +22,12 @@ import (
 	"stillwater/vision/refdata"
 )
 
-// reference returns the path of an opencv-doc example file, skipping the
-// test when deploy/setup has not fetched them.
+// reference returns the path of an opencv-doc example file. deploy/setup
+// fetches them; a missing one fails the test, as elsewhere in the project.
 func reference(tb testing.TB, name string) string {
 	tb.Helper()
 	p, err := refdata.Path(name)
-	if err != nil {
-		tb.Skip(err)
-	}
+	require.NoError(tb, err)
 	return p
 }
 
@@ -44,9 +42,8 @@ func h264Of(tb testing.TB, src string, frames int, size string) string {
 // directory.
 func encoded(tb testing.TB, src string, frames int, size, name string, codec ...string) string {
 	tb.Helper()
-	if _, err := exec.LookPath("ffmpeg"); err != nil {
-		tb.Skip("ffmpeg not installed (deploy/setup installs it)")
-	}
+	_, err := exec.LookPath("ffmpeg")
+	require.NoError(tb, err, "ffmpeg (deploy/setup installs it)")
 	out := filepath.Join(tb.TempDir(), name)
 	args := []string{"-nostdin", "-loglevel", "error", "-y", "-i", src, "-frames:v", strconv.Itoa(frames)}
 	if size != "" {
