@@ -12,6 +12,8 @@ import (
 	"time"
 
 	"gocv.io/x/gocv"
+
+	"stillwater/vision/decode"
 )
 
 // SourceConfig says where frames come from.
@@ -322,8 +324,16 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 	c.media = r.Media
 	r.Health = c.health.measure(c.frame, r.Media)
 	c.clock.lap(StageChecks)
+	var (
+		pkts     []decode.Packet
+		params   decode.Params
+		copyable bool
+	)
+	if sc, ok := c.cap.(*streamCapture); ok {
+		pkts, params, copyable = sc.packets() // taken even when no clip wants them
+	}
 	if c.ev != nil {
-		if err := c.ev.add(c.frame, r.Media); err != nil {
+		if err := c.ev.add(c.frame, r.Media, pkts, params, copyable); err != nil {
 			return r, fmt.Errorf("frame %d: %w", r.Index, err)
 		}
 	}

@@ -13,6 +13,8 @@ import (
 	"time"
 
 	"gocv.io/x/gocv"
+
+	"stillwater/vision/decode"
 )
 
 // EvidenceConfig sets up the recent-frame buffer and clip recording.
@@ -78,6 +80,10 @@ type evidence struct {
 	fps  float64
 	ring []jpegFrame
 	size image.Point
+	// pk, when not nil, is the pre-roll of a stream whose packets are
+	// kept (see streamCapture.packets): ring stays empty and clips are
+	// MP4 copies of the packets.
+	pk *packetRing
 	// The clip being recorded: path is "" when none. The writer follows
 	// the same rule (a clip ends with the first frame at or past until).
 	path  string
@@ -129,10 +135,19 @@ func (c *Camera) EnableEvidence(cfg EvidenceConfig) error {
 }
 
 // add buffers frame and, while a clip is recorded, hands it to the
-// writer. It never waits for the writer.
-func (e *evidence) add(frame gocv.Mat, media time.Duration) error {
+// writer. It never waits for the writer. When the stream's packets are
+// kept (copyable, see streamCapture.packets) it buffers pkts, the packets
+// read since the frame before, instead of a JPEG of the frame.
+func (e *evidence) add(frame gocv.Mat, media time.Duration, pkts []decode.Packet, params decode.Params, copyable bool) error {
 	if e.cfg.SnapshotsOnly {
 		return nil
+	}
+	if copyable {
+		e.addPackets(frame, media, pkts, params)
+		return nil
+	}
+	if e.pk != nil { // the stream changed to a codec whose packets are not kept
+		e.restart(nil)
 	}
 	data, err := encodeJPEG(frame, e.cfg.Quality)
 	if err != nil {
@@ -163,14 +178,43 @@ func (e *evidence) add(frame gocv.Mat, media time.Duration) error {
 	return nil
 }
 
-// resize ends the clip and drops the buffer after a frame size change.
-func (e *evidence) resize() error {
+// addPackets is add for a stream whose packets are kept.
+func (e *evidence) addPackets(frame gocv.Mat, media time.Duration, pkts []decode.Packet, params decode.Params) {
+	if e.pk == nil || !e.pk.params.Equal(params) {
+		// First packets, or a reopened stream set up otherwise: its
+		// packets cannot follow the old ones in one file.
+		e.restart(&packetRing{params: params})
+	}
+	e.size = image.Pt(frame.Cols(), frame.Rows())
+	kept := e.pk.add(pkts, media, e.cfg.PreRoll, e.fps)
+	if e.path == "" || len(kept) == 0 {
+		return
+	}
+	e.w.packets(packetBatch{media: media, pkts: kept})
+	if media >= e.until {
+		e.path = ""
+	}
+}
+
+// restart ends the clip being recorded and empties the pre-roll, which
+// from now on is pk (nil: JPEG pictures).
+func (e *evidence) restart(pk *packetRing) {
 	clear(e.ring)
 	e.ring = e.ring[:0]
+	e.pk = pk
 	if e.path != "" {
 		e.path = ""
 		e.w.finish()
 	}
+}
+
+// resize ends the clip and drops the buffer after a frame size change.
+func (e *evidence) resize() error {
+	var pk *packetRing
+	if e.pk != nil {
+		pk = &packetRing{params: e.pk.params}
+	}
+	e.restart(pk)
 	return nil
 }
 
@@ -184,12 +228,16 @@ type ClipInfo struct {
 	Path     string        // the file being written
 	Extended bool          // true when a clip was already open and now runs longer
 	Until    time.Duration // media time of the clip's last frame
-	PreRoll  int           // frames handed over from the buffer
+	PreRoll  int           // frames (packets, for an MP4 clip) handed over from the buffer
 }
 
 // StartClip starts a clip at path (a Motion-JPEG .avi) with the buffered
 // pre-roll, and keeps adding every frame Next reads until PostRoll of
-// media time after the latest frame. It returns at once: the camera's
+// media time after the latest frame. For a stream whose packets are kept
+// (H.264, H.265 and MPEG-4 files and network streams) the clip is instead
+// an MP4 of the stream's own packets, from the latest key frame at least
+// PreRoll old, and path's extension becomes .mp4 (ClipInfo.Path says
+// so). It returns at once: the camera's
 // evidence writer creates and writes the file, and reports the finished
 // clip, or its failure, to EvidenceConfig.OnWritten. If a clip is already
 // being recorded it is extended instead and path is ignored. Close
@@ -210,6 +258,22 @@ func (c *Camera) StartClip(path string) (ClipInfo, error) {
 		e.until = until
 		e.w.extend(until)
 		return ClipInfo{Path: e.path, Extended: true, Until: until}, nil
+	}
+	if e.pk != nil {
+		path = strings.TrimSuffix(path, filepath.Ext(path)) + ".mp4"
+		if len(e.pk.ring) == 0 {
+			return ClipInfo{}, fmt.Errorf("start clip %s: no key frame read yet", path)
+		}
+		pre := make([]decode.Packet, len(e.pk.ring))
+		for i, k := range e.pk.ring {
+			pre[i] = k.p
+		}
+		params := e.pk.params
+		if err := e.w.start(clipJob{path: path, until: until, params: &params, prePackets: pre}); err != nil {
+			return ClipInfo{}, fmt.Errorf("start clip %s: %w", path, err)
+		}
+		e.path, e.until = path, until
+		return ClipInfo{Path: path, Until: until, PreRoll: len(pre)}, nil
 	}
 	if len(e.ring) == 0 {
 		return ClipInfo{}, fmt.Errorf("start clip %s: no frame read yet", path)

@@ -10,13 +10,15 @@ import (
 	"time"
 
 	"gocv.io/x/gocv"
+
+	"stillwater/vision/decode"
 )
 
 // EvidenceWritten reports one piece of evidence the writer has finished.
 type EvidenceWritten struct {
 	Kind    string // "snapshot" or "clip"
 	Path    string
-	Frames  int // frames in the clip
+	Frames  int // frames in the clip (packets, for an MP4 of kept packets)
 	Dropped int // frames left out of the clip because the writer was behind
 	// Took is, for a snapshot, the time from the request to the file
 	// being complete; for a clip, from the request to its last frame.
@@ -41,7 +43,11 @@ type clipJob struct {
 	fps   float64
 	size  image.Point
 	pre   []jpegFrame
-	asked time.Time
+	// params, when not nil, make the clip an MP4 of the stream's packets,
+	// prePackets its pre-roll; fps, size and pre are then unused.
+	params     *decode.Params
+	prePackets []decode.Packet
+	asked      time.Time
 }
 
 type snapJob struct {
@@ -53,6 +59,7 @@ type snapJob struct {
 
 type evJob struct {
 	frame  *jpegFrame
+	pk     *packetBatch
 	clip   *clipJob
 	snap   *snapJob
 	extend time.Duration // > 0: the open clip now ends here
@@ -96,6 +103,12 @@ func (w *evidenceWriter) put(j evJob) bool {
 func (w *evidenceWriter) frame(f jpegFrame) {
 	if !w.put(evJob{frame: &f}) {
 		w.dropped.Add(1)
+	}
+}
+
+func (w *evidenceWriter) packets(b packetBatch) {
+	if !w.put(evJob{pk: &b}) {
+		w.dropped.Add(int64(len(b.pkts)))
 	}
 }
 
@@ -153,12 +166,14 @@ func (w *evidenceWriter) run() {
 	defer close(w.done)
 	var (
 		avi      *aviWriter
+		mux      *decode.Muxer
+		base     int64 // the MP4 clip's first decoding time: its zero
 		job      clipJob
 		dropBase int64
 		failed   error
 	)
 	end := func() {
-		if avi == nil && failed == nil {
+		if avi == nil && mux == nil && failed == nil {
 			return
 		}
 		ev := EvidenceWritten{Kind: "clip", Path: job.path, Took: time.Since(job.asked), Dropped: int(w.dropped.Load() - dropBase), Err: failed}
@@ -168,11 +183,32 @@ func (w *evidenceWriter) run() {
 				ev.Err = err
 			}
 		}
+		if mux != nil {
+			ev.Frames = mux.Packets()
+			if err := mux.Close(); err != nil && ev.Err == nil {
+				ev.Err = err
+			}
+		}
 		if ev.Err != nil {
 			ev.Err = fmt.Errorf("clip %s: %w", job.path, ev.Err)
 		}
-		avi, failed = nil, nil
+		avi, mux, failed = nil, nil, nil
 		w.report(ev)
+	}
+	writePacket := func(p decode.Packet) {
+		if mux == nil {
+			return
+		}
+		if mux.Packets() == 0 {
+			base = p.DTS
+		}
+		p.DTS -= base
+		p.PTS -= base
+		if err := mux.WritePacket(p); err != nil {
+			failed = err
+			mux.Close()
+			mux = nil
+		}
 	}
 	write := func(data []byte) {
 		if avi == nil {
@@ -188,6 +224,20 @@ func (w *evidenceWriter) run() {
 		switch {
 		case j.synced != nil:
 			close(j.synced)
+		case j.clip != nil && j.clip.params != nil:
+			end()
+			job, dropBase = *j.clip, w.dropped.Load()
+			m, err := decode.CreateMP4(job.path, *job.params, "")
+			if err != nil {
+				failed = err
+				end()
+				continue
+			}
+			mux = m
+			for _, p := range job.prePackets {
+				writePacket(p)
+			}
+			job.prePackets = nil
 		case j.clip != nil:
 			end()
 			job, dropBase = *j.clip, w.dropped.Load()
@@ -210,13 +260,23 @@ func (w *evidenceWriter) run() {
 			if j.frame.media >= job.until {
 				end()
 			}
+		case j.pk != nil:
+			if mux == nil {
+				continue
+			}
+			for _, p := range j.pk.pkts {
+				writePacket(p)
+			}
+			if j.pk.media >= job.until {
+				end()
+			}
 		case j.extend > 0:
 			job.until = j.extend
 		case j.finish:
 			end()
 		case j.snap != nil:
 			w.writeSnapshot(*j.snap, func() string {
-				if avi != nil {
+				if avi != nil || mux != nil {
 					return job.path
 				}
 				return ""

@@ -12,6 +12,8 @@ import (
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 	"gocv.io/x/gocv"
+
+	"stillwater/vision/decode"
 )
 
 // TestAVIReadsBackInOpenCV writes a clip of JPEG frames with the Go AVI
@@ -82,7 +84,7 @@ func TestRingHoldsOnlyThePreRoll(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			e := &evidence{cfg: EvidenceConfig{PreRoll: 2 * time.Second, Quality: 80}, fps: 10}
 			for i := 0; i < 500; i++ {
-				require.NoError(t, e.add(m, time.Duration(i)*tc.step))
+				require.NoError(t, e.add(m, time.Duration(i)*tc.step, nil, decode.Params{}, false))
 				require.LessOrEqual(t, len(e.ring), e.ringCap())
 			}
 			assert.Equal(t, tc.want, len(e.ring))

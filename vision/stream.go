@@ -39,6 +39,36 @@ type streamCapture struct {
 	// here, handed over as pipe:N), closed after it; -1 when none.
 	fd  int
 	cur decode.Frame
+	// copyable: the codec's packets can go into an MP4 clip as they are
+	// (see packetRing); pending holds those read since the camera last
+	// took them, frames dropped unsearched included.
+	copyable bool
+	params   decode.Params
+	pending  []decode.Packet
+}
+
+// copyableCodec reports whether a clip keeps the codec's packets as they
+// came instead of JPEG pictures of the decoded frames: so for what IP
+// cameras send, where encoding a decoded picture again costs far more
+// than copying its packet. MJPEG and the rest go the JPEG way.
+func copyableCodec(name string) bool {
+	switch name {
+	case "h264", "hevc", "mpeg4":
+		return true
+	}
+	return false
+}
+
+// packets hands over the packets read since the last call and the
+// stream's codec parameters; ok is false for a codec whose packets are
+// not kept. The slice is valid until the next grab.
+func (c *streamCapture) packets() (pk []decode.Packet, p decode.Params, ok bool) {
+	if c.s == nil || !c.copyable {
+		return nil, decode.Params{}, false
+	}
+	pk = c.pending
+	c.pending = c.pending[:0]
+	return pk, c.params, true
 }
 
 // openStream opens uri for the Camera. transport is the RTSP transport
@@ -60,7 +90,11 @@ func openStream(uri string, transport string, openTimeout, readTimeout time.Dura
 	if err != nil {
 		return nil, err
 	}
-	return &streamCapture{s: s, fd: -1}, nil
+	sc := &streamCapture{s: s, fd: -1, copyable: copyableCodec(s.Info().Codec)}
+	if sc.copyable {
+		sc.params = s.Params()
+	}
+	return sc, nil
 }
 
 // defaultStreamTimeout bounds a stream's open and reads when the source
@@ -87,6 +121,9 @@ func (c *streamCapture) grab() (bool, error) {
 		return false, nil
 	}
 	c.cur = f
+	if c.copyable {
+		c.pending = c.s.Packets(c.pending)
+	}
 	return true, nil
 }
 

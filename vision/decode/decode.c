@@ -36,7 +36,42 @@ struct SwDecoder {
 	int have;     // frame holds a decoded frame
 	int64_t deadline; // av_gettime_relative() after which I/O is cut off; 0: none
 	int64_t errors;
+	// The video stream's packets read by the latest sw_dec_next, oldest
+	// first, as references (the bytes are not copied).
+	AVPacket **kept;
+	int nkept, capkept;
 };
+
+// keep adds a reference to pkt to the packets of this read.
+static int keep(SwDecoder *d, AVPacket *pkt) {
+	if (d->nkept == d->capkept) {
+		int n = d->capkept ? 2 * d->capkept : 4;
+		AVPacket **k = realloc(d->kept, n * sizeof *k);
+		if (!k) {
+			return AVERROR(ENOMEM);
+		}
+		for (int i = d->capkept; i < n; i++) {
+			k[i] = NULL;
+		}
+		d->kept = k;
+		d->capkept = n;
+	}
+	if (!d->kept[d->nkept] && !(d->kept[d->nkept] = av_packet_alloc())) {
+		return AVERROR(ENOMEM);
+	}
+	int r = av_packet_ref(d->kept[d->nkept], pkt);
+	if (r == 0) {
+		d->nkept++;
+	}
+	return r;
+}
+
+static void unkeep(SwDecoder *d) {
+	for (int i = 0; i < d->nkept; i++) {
+		av_packet_unref(d->kept[i]);
+	}
+	d->nkept = 0;
+}
 
 static int interrupted(void *opaque) {
 	const SwDecoder *d = opaque;
@@ -151,6 +186,7 @@ int sw_dec_next(SwDecoder *d, int64_t timeout_us, char *err, int errlen) {
 	int r;
 	set_deadline(d, timeout_us);
 	d->have = 0;
+	unkeep(d);
 	for (;;) {
 		r = avcodec_receive_frame(d->ctx, d->frame);
 		if (r == 0) {
@@ -186,6 +222,12 @@ int sw_dec_next(SwDecoder *d, int64_t timeout_us, char *err, int errlen) {
 			return -1;
 		}
 		if (d->pkt->stream_index == d->stream) {
+			if (keep(d, d->pkt) < 0) {
+				snprintf(err, errlen, "keep a packet: out of memory");
+				av_packet_unref(d->pkt);
+				d->deadline = 0;
+				return -1;
+			}
 			r = avcodec_send_packet(d->ctx, d->pkt);
 			if (r < 0 && r != AVERROR(EAGAIN)) {
 				d->errors++; // damaged data: skip the packet, as a player would
@@ -208,6 +250,39 @@ double sw_dec_pts(SwDecoder *d) {
 }
 
 int sw_dec_key(SwDecoder *d) { return d->have && d->frame->key_frame; }
+
+// ticks rescales t from the stream's time base to 1/90000 s from its
+// start time; SW_NO_TIME stays.
+static int64_t ticks(const AVStream *st, int64_t t) {
+	if (t == AV_NOPTS_VALUE) {
+		return SW_NO_TIME;
+	}
+	if (st->start_time != AV_NOPTS_VALUE) {
+		t -= st->start_time;
+	}
+	return av_rescale_q(t, st->time_base, (AVRational){1, SW_TICKS});
+}
+
+int sw_dec_packets(SwDecoder *d) { return d->nkept; }
+
+void sw_dec_packet(SwDecoder *d, int i, const uint8_t **data, int *size, int64_t *pts, int64_t *dts, int64_t *dur, int *key) {
+	const AVStream *st = d->fmt->streams[d->stream];
+	const AVPacket *p = d->kept[i];
+	*data = p->data;
+	*size = p->size;
+	*pts = ticks(st, p->pts);
+	*dts = ticks(st, p->dts);
+	*dur = p->duration > 0 ? av_rescale_q(p->duration, st->time_base, (AVRational){1, SW_TICKS}) : 0;
+	*key = (p->flags & AV_PKT_FLAG_KEY) != 0;
+}
+
+void sw_dec_params(SwDecoder *d, int *codec_id, const uint8_t **extradata, int *extralen, int *delay) {
+	const AVCodecParameters *par = d->fmt->streams[d->stream]->codecpar;
+	*codec_id = par->codec_id;
+	*extradata = par->extradata;
+	*extralen = par->extradata ? par->extradata_size : 0;
+	*delay = par->video_delay;
+}
 
 int64_t sw_dec_errors(SwDecoder *d) { return d->errors; }
 
@@ -250,6 +325,11 @@ void sw_dec_close(SwDecoder *d) {
 	if (!d) {
 		return;
 	}
+	unkeep(d);
+	for (int i = 0; i < d->capkept; i++) {
+		av_packet_free(&d->kept[i]);
+	}
+	free(d->kept);
 	sws_freeContext(d->sws);
 	av_frame_free(&d->frame);
 	av_packet_free(&d->pkt);

@@ -196,6 +196,74 @@ func (s *Stream) BGR(dst *gocv.Mat, size image.Point) error {
 	return nil
 }
 
+// Ticks is the clock of packet times: 90 000 a second.
+const Ticks = C.SW_TICKS
+
+// NoTime marks a packet time the stream did not give.
+const NoTime = math.MinInt64
+
+// Packet is one compressed packet of the video stream, as it came.
+type Packet struct {
+	Data []byte
+	// PTS and DTS are its presentation and decoding times in Ticks from
+	// the stream's start time, NoTime when absent; Duration is 0 when
+	// unknown.
+	PTS, DTS, Duration int64
+	Key                bool
+}
+
+// Packets appends copies of the video packets the latest Next read to
+// dst, oldest first, and returns it: one for most frames, several when the
+// decoder held frames back, none when it only drained what it held.
+func (s *Stream) Packets(dst []Packet) []Packet {
+	if s.d == nil {
+		return dst
+	}
+	n := int(C.sw_dec_packets(s.d))
+	for i := 0; i < n; i++ {
+		var data *C.uint8_t
+		var size, key C.int
+		var pts, dts, dur C.int64_t
+		C.sw_dec_packet(s.d, C.int(i), &data, &size, &pts, &dts, &dur, &key)
+		dst = append(dst, Packet{
+			Data: C.GoBytes(unsafe.Pointer(data), size),
+			PTS:  int64(pts), DTS: int64(dts), Duration: int64(dur), Key: key != 0,
+		})
+	}
+	return dst
+}
+
+// Params describe the stream's codec, enough to write its packets into a
+// file (see Muxer).
+type Params struct {
+	CodecID   int    // FFmpeg's codec id
+	Codec     string // its name, as Info.Codec
+	Size      image.Point
+	Extradata []byte // the codec's set-up data (H.264's parameter sets)
+	Delay     int    // frames the codec may hold back (B-frames)
+}
+
+// Equal reports whether p and q describe the same codec set-up, so that
+// packets of one stream can follow the other's in a file.
+func (p Params) Equal(q Params) bool {
+	return p.CodecID == q.CodecID && p.Size == q.Size && p.Delay == q.Delay && string(p.Extradata) == string(q.Extradata)
+}
+
+// Params returns the stream's codec parameters.
+func (s *Stream) Params() Params {
+	if s.d == nil {
+		return Params{}
+	}
+	var id, n, delay C.int
+	var extra *C.uint8_t
+	C.sw_dec_params(s.d, &id, &extra, &n, &delay)
+	p := Params{CodecID: int(id), Codec: s.info.Codec, Size: s.info.Size, Delay: int(delay)}
+	if n > 0 {
+		p.Extradata = C.GoBytes(unsafe.Pointer(extra), n)
+	}
+	return p
+}
+
 // Close releases the stream. It is safe to call more than once.
 func (s *Stream) Close() error {
 	if s.d != nil {

@@ -34,6 +34,36 @@ int64_t sw_dec_errors(SwDecoder *d);
 // or -1 with err written.
 int sw_dec_bgr(SwDecoder *d, uint8_t *dst, int dst_w, int dst_h, int dst_step, char *err, int errlen);
 
+// Packets: the video stream's packets the latest sw_dec_next read, oldest
+// first (several when the decoder held frames back, none when it only
+// drained). Times are in ticks of 1/SW_TICKS s from the stream's start
+// time, SW_NO_TIME when absent; dur is 0 when unknown. data stays valid
+// until the next sw_dec_next.
+#define SW_TICKS 90000
+#define SW_NO_TIME INT64_MIN
+int sw_dec_packets(SwDecoder *d);
+void sw_dec_packet(SwDecoder *d, int i, const uint8_t **data, int *size, int64_t *pts, int64_t *dts, int64_t *dur, int *key);
+
+// The stream's codec (FFmpeg's AVCodecID), its extradata (valid while d is
+// open) and how many frames it may hold back (B-frames).
+void sw_dec_params(SwDecoder *d, int *codec_id, const uint8_t **extradata, int *extralen, int *delay);
+
 void sw_dec_close(SwDecoder *d);
+
+// SwMux writes video packets into an MP4 file without decoding them.
+typedef struct SwMux SwMux;
+
+// Opens path for a stream of codec_id at width × height with the given
+// extradata and B-frame delay; comment (may be NULL) goes into the file's
+// comment tag. On failure returns NULL and writes why into err.
+SwMux *sw_mux_open(const char *path, int codec_id, int width, int height, const uint8_t *extradata, int extralen, int delay, const char *comment, char *err, int errlen);
+
+// Writes one packet; times in ticks of 1/SW_TICKS s. Returns 0, or -1 with
+// err written.
+int sw_mux_write(SwMux *m, const uint8_t *data, int size, int64_t pts, int64_t dts, int64_t dur, int key, char *err, int errlen);
+
+// Finishes the file (its index) and frees m. Returns 0, or -1 with err
+// written; m is freed either way.
+int sw_mux_close(SwMux *m, char *err, int errlen);
 
 #endif

@@ -1,0 +1,183 @@
+package vision
+
+import (
+	"crypto/sha256"
+	"encoding/hex"
+	"image"
+	"io"
+	"os/exec"
+	"path/filepath"
+	"strconv"
+	"testing"
+	"time"
+
+	"github.com/stretchr/testify/assert"
+	"github.com/stretchr/testify/require"
+	"gocv.io/x/gocv"
+
+	"stillwater/vision/decode"
+	"stillwater/vision/refdata"
+)
+
+// h264Clip re-encodes src to H.264 with ffmpeg (a key frame every
+// keyEvery frames, no B-frames, as IP cameras send).
+func h264Clip(t *testing.T, src string, keyEvery int) string {
+	t.Helper()
+	out := filepath.Join(t.TempDir(), "clip.mp4")
+	b, err := exec.Command("ffmpeg", "-nostdin", "-loglevel", "error", "-y", "-i", src,
+		"-c:v", "libx264", "-g", strconv.Itoa(keyEvery), "-bf", "0", "-pix_fmt", "yuv420p", out).CombinedOutput()
+	require.NoError(t, err, "ffmpeg (deploy/setup installs it): %s", b)
+	return out
+}
+
+// frameSums decodes path with FFmpeg (vision/decode) and returns each
+// frame's SHA-256 and presentation time.
+func frameSums(t *testing.T, path string) ([]string, []time.Duration) {
+	t.Helper()
+	s, err := decode.Open(path, decode.Options{})
+	require.NoError(t, err)
+	defer s.Close()
+	m := gocv.NewMat()
+	defer m.Close()
+	var sums []string
+	var pts []time.Duration
+	for {
+		f, err := s.Next()
+		if err == io.EOF {
+			return sums, pts
+		}
+		require.NoError(t, err)
+		require.NoError(t, s.BGR(&m, image.Point{}))
+		b, err := m.DataPtrUint8()
+		require.NoError(t, err)
+		h := sha256.Sum256(b)
+		sums = append(sums, hex.EncodeToString(h[:]))
+		pts = append(pts, f.PTS)
+	}
+}
+
+// TestPacketClipCopiesTheStream: a camera reading H.264 keeps the
+// stream's packets as its pre-roll instead of JPEG pictures, and its clip
+// is an MP4 of those packets: from the latest key frame at least the
+// pre-roll old, across the seam of a looped file, extended by a second
+// StartClip. Decoded with FFmpeg (the reference), every frame of the clip
+// is identical to the source frame it copies, in order, a frame interval
+// apart.
+func TestPacketClipCopiesTheStream(t *testing.T) {
+	// 3 s at 10 fps, a key frame every second.
+	src := h264Clip(t, smallClip(t, 3), 10)
+	want, _ := frameSums(t, src)
+	require.Len(t, want, 30)
+
+	cam, err := OpenCamera(SourceConfig{URI: src, Loop: true}, DetectorConfig{ProcessWidth: 160})
+	require.NoError(t, err)
+	defer cam.Close()
+	require.NoError(t, cam.EnableEvidence(EvidenceConfig{PreRoll: 2 * time.Second, PostRoll: 3 * time.Second}))
+	var last time.Duration
+	for i := 0; i < 40; i++ { // frames 0–39, a loop after frame 29
+		r, err := cam.Next(nil)
+		require.NoError(t, err)
+		last = r.Media
+	}
+	require.Empty(t, cam.ev.ring, "no JPEG pre-roll for a stream whose packets are kept")
+	info, err := cam.StartClip(filepath.Join(t.TempDir(), "clip.avi"))
+	require.NoError(t, err)
+	assert.Equal(t, ".mp4", filepath.Ext(info.Path))
+	// Frame 39 at 3.9 s: the latest key frame at or before 1.9 s is
+	// frame 10, so the pre-roll is frames 10–39.
+	assert.Equal(t, 30, info.PreRoll)
+	for i := 0; i < 15; i++ { // frames 40–54
+		_, err := cam.Next(nil)
+		require.NoError(t, err)
+	}
+	info2, err := cam.StartClip(filepath.Join(t.TempDir(), "other.avi"))
+	require.NoError(t, err)
+	assert.True(t, info2.Extended)
+	assert.Equal(t, info.Path, info2.Path)
+	n := 55
+	for cam.Recording() != "" {
+		r, err := cam.Next(nil)
+		require.NoError(t, err)
+		require.Less(t, r.Media, last+time.Minute, "clip never finished")
+		n++
+	}
+	cam.ev.w.sync()
+	// Until 3 s after frame 54 (5.4 s): frame 84 ends it.
+	require.Equal(t, 85, n)
+	got, pts := frameSums(t, info.Path)
+	require.Len(t, got, 85-10)
+	for i := range got {
+		require.Equal(t, want[(10+i)%30], got[i], "clip frame %d, source frame %d", i, (10+i)%30)
+		assert.InDelta(t, float64(i)*0.1, (pts[i] - pts[0]).Seconds(), 1e-3, "clip frame %d's time", i)
+	}
+	refdata.Report(t, "mp4 clip of %d packets (pre-roll %d from a key frame) decodes to the source's frames, looped seam included", len(got), info.PreRoll)
+}
+
+// TestPacketRing holds the ring to its rules on made-up packets: it starts
+// at a key frame at least the pre-roll old, never at a packet a decoder
+// cannot start from, stays within its bounds when times barely move, and
+// gives rising decoding times when the stream starts its times again.
+func TestPacketRing(t *testing.T) {
+	pkt := func(i int, key bool) decode.Packet {
+		return decode.Packet{Data: make([]byte, 10), PTS: int64(i) * 9000, DTS: int64(i) * 9000, Duration: 9000, Key: key}
+	}
+	tests := []struct {
+		name     string
+		frames   int
+		keyEvery int
+		step     time.Duration
+		first    int // frame the ring should start at; -1: empty
+	}{
+		// 10 fps, 2 s pre-roll, key every 10: at frame 49 (4.9 s) the
+		// latest key at or before 2.9 s is frame 20.
+		{"key every second", 50, 10, 100 * time.Millisecond, 20},
+		// No key frame at all: nothing a clip could start from.
+		{"no key frame", 50, 0, 100 * time.Millisecond, -1},
+		// Times 0.1 ms apart never age past the pre-roll: the count bound
+		// moves the start to a later key frame.
+		{"stamps 0.1 ms apart", maxRingPackets + 500, 100, 100 * time.Microsecond, -2},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			r := &packetRing{}
+			for i := 0; i < tc.frames; i++ {
+				key := tc.keyEvery > 0 && i%tc.keyEvery == 0
+				r.add([]decode.Packet{pkt(i, key)}, time.Duration(i)*tc.step, 2*time.Second, 10)
+				if len(r.ring) > 0 {
+					require.True(t, r.ring[0].p.Key, "frame %d: the ring starts at a packet no decoder can start from", i)
+				}
+				require.LessOrEqual(t, len(r.ring), maxRingPackets)
+			}
+			switch tc.first {
+			case -1:
+				assert.Empty(t, r.ring)
+			case -2:
+				assert.NotEmpty(t, r.ring)
+				assert.Greater(t, len(r.ring), maxRingPackets-tc.keyEvery)
+			default:
+				require.NotEmpty(t, r.ring)
+				assert.Equal(t, int64(tc.first)*9000, r.ring[0].p.DTS)
+				assert.Len(t, r.ring, tc.frames-tc.first)
+			}
+			assert.Equal(t, 10*len(r.ring), r.bytes)
+		})
+	}
+	t.Run("times start again", func(t *testing.T) {
+		r := &packetRing{}
+		var dts []int64
+		for pass := 0; pass < 3; pass++ {
+			for i := 0; i < 5; i++ {
+				p := pkt(i, i == 0)
+				if pass == 2 {
+					p.PTS, p.DTS = decode.NoTime, decode.NoTime // a stream without times
+				}
+				for _, k := range r.add([]decode.Packet{p}, time.Duration(pass*5+i)*100*time.Millisecond, time.Hour, 10) {
+					dts = append(dts, k.DTS)
+				}
+			}
+		}
+		for i := range dts {
+			assert.Equal(t, int64(i)*9000, dts[i], "packet %d", i)
+		}
+	})
+}
