@@ -17,6 +17,7 @@ import (
 
 	"stillwater/vision/decode"
 	"stillwater/vision/refdata"
+	"stillwater/vision/rtsptest"
 )
 
 // h264Clip re-encodes src to H.264 with ffmpeg (a key frame every
@@ -180,4 +181,57 @@ func TestPacketRing(t *testing.T) {
 			assert.Equal(t, int64(i)*9000, dts[i], "packet %d", i)
 		}
 	})
+}
+
+// TestPacketClipOverRTSP: a camera read over RTSP (rtsp-server-perl relay,
+// ffmpeg pushing MPEG-4 with a key frame every 10 frames, the codec set up
+// by the stream's description) keeps its packets, and its clip decodes
+// (FFmpeg, the reference) from its first frame, a key frame, to as many
+// frames as the camera read from that key frame on, at the stream's size.
+func TestPacketClipOverRTSP(t *testing.T) {
+	if testing.Short() {
+		t.Skip("runs a live RTSP relay")
+	}
+	srv := rtsptest.Start(t, smallClip(t, 4), "pool")
+	cam, err := OpenCamera(SourceConfig{URI: srv.URL(), Transport: "udp", OpenTimeout: 5 * time.Second, ReadTimeout: 2 * time.Second},
+		DetectorConfig{ProcessWidth: 160})
+	require.NoError(t, err)
+	defer cam.Close()
+	require.NoError(t, cam.EnableEvidence(EvidenceConfig{PreRoll: time.Second, PostRoll: time.Second}))
+	for i := 0; i < 25; i++ {
+		_, err := cam.Next(nil)
+		require.NoError(t, err, "frame %d", i)
+	}
+	info, err := cam.StartClip(filepath.Join(t.TempDir(), "live.avi"))
+	require.NoError(t, err)
+	require.Equal(t, ".mp4", filepath.Ext(info.Path))
+	n := 0
+	for cam.Recording() != "" {
+		_, err := cam.Next(nil)
+		require.NoError(t, err)
+		n++
+		require.Less(t, n, 100, "clip never finished")
+	}
+	cam.ev.w.sync()
+	require.GreaterOrEqual(t, info.PreRoll, 10, "a second of 10 fps from a key frame")
+	s, err := decode.Open(info.Path, decode.Options{})
+	require.NoError(t, err)
+	defer s.Close()
+	assert.Equal(t, cam.Size(), s.Info().Size)
+	frames := 0
+	for {
+		f, err := s.Next()
+		if err == io.EOF {
+			break
+		}
+		require.NoError(t, err)
+		if frames == 0 {
+			assert.True(t, f.Key, "the clip starts at a key frame")
+		}
+		frames++
+	}
+	assert.Zero(t, s.Errors(), "damaged packets in the clip")
+	// Every packet kept is a frame: the pre-roll and the frames read after.
+	assert.Equal(t, info.PreRoll+n, frames)
+	refdata.Report(t, "rtsp mpeg4: clip of %d frames (pre-roll %d packets from a key frame), no decode errors", frames, info.PreRoll)
 }
