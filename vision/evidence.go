@@ -84,6 +84,9 @@ type evidence struct {
 	// kept (see streamCapture.packets): ring stays empty and clips are
 	// MP4 copies of the packets.
 	pk *packetRing
+	// gap: a packet of the clip being recorded was left out (the writer
+	// was behind); the clip resumes at the next key frame.
+	gap bool
 	// The clip being recorded: path is "" when none. The writer follows
 	// the same rule (a clip ends with the first frame at or past until).
 	path  string
@@ -190,7 +193,20 @@ func (e *evidence) addPackets(frame gocv.Mat, media time.Duration, pkts []decode
 	if e.path == "" || len(kept) == 0 {
 		return
 	}
-	e.w.packets(packetBatch{media: media, pkts: kept})
+	if e.gap {
+		// Packets after one left out would decode wrong until the next
+		// key frame: leave them out too.
+		k := 0
+		for k < len(kept) && !kept[k].Key {
+			k++
+		}
+		e.w.skipped(k)
+		kept = kept[k:]
+		e.gap = len(kept) == 0
+	}
+	if len(kept) > 0 && !e.w.packets(packetBatch{media: media, pkts: kept}) {
+		e.gap = true
+	}
 	if media >= e.until {
 		e.path = ""
 	}
@@ -272,7 +288,7 @@ func (c *Camera) StartClip(path string) (ClipInfo, error) {
 		if err := e.w.start(clipJob{path: path, until: until, params: &params, prePackets: pre}); err != nil {
 			return ClipInfo{}, fmt.Errorf("start clip %s: %w", path, err)
 		}
-		e.path, e.until = path, until
+		e.path, e.until, e.gap = path, until, false
 		return ClipInfo{Path: path, Until: until, PreRoll: len(pre)}, nil
 	}
 	if len(e.ring) == 0 {

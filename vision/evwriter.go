@@ -106,11 +106,18 @@ func (w *evidenceWriter) frame(f jpegFrame) {
 	}
 }
 
-func (w *evidenceWriter) packets(b packetBatch) {
+// packets queues b for the open clip; false when the queue was full and
+// b is left out (and counted).
+func (w *evidenceWriter) packets(b packetBatch) bool {
 	if !w.put(evJob{pk: &b}) {
 		w.dropped.Add(int64(len(b.pkts)))
+		return false
 	}
+	return true
 }
+
+// skipped counts packets left out of a clip without being queued.
+func (w *evidenceWriter) skipped(n int) { w.dropped.Add(int64(n)) }
 
 func (w *evidenceWriter) start(c clipJob) error {
 	c.asked = time.Now()

@@ -7,7 +7,10 @@ import (
 	"io"
 	"os/exec"
 	"path/filepath"
+	"os"
 	"strconv"
+	"sync"
+	"syscall"
 	"testing"
 	"time"
 
@@ -234,4 +237,92 @@ func TestPacketClipOverRTSP(t *testing.T) {
 	// Every packet kept is a frame: the pre-roll and the frames read after.
 	assert.Equal(t, info.PreRoll+n, frames)
 	refdata.Report(t, "rtsp mpeg4: clip of %d frames (pre-roll %d packets from a key frame), no decode errors", frames, info.PreRoll)
+}
+
+// TestPacketClipGapResumesAtKeyFrame: when the evidence writer falls
+// behind (the clip's file a named pipe nobody reads yet) the packets it
+// cannot take are left out and counted, and so is every packet after them
+// up to the next key frame, since those would decode wrong: the clip,
+// once written, decodes (FFmpeg, the reference) frame for frame to the
+// source's pictures, every packet written is a frame, and it resumes after
+// the gap.
+func TestPacketClipGapResumesAtKeyFrame(t *testing.T) {
+	src := h264Clip(t, smallClip(t, 3), 10)
+	cam, err := OpenCamera(SourceConfig{URI: src, Loop: true}, DetectorConfig{ProcessWidth: 160})
+	require.NoError(t, err)
+	var mu sync.Mutex
+	var written []EvidenceWritten
+	require.NoError(t, cam.EnableEvidence(EvidenceConfig{PreRoll: time.Second, PostRoll: time.Hour, OnWritten: func(ev EvidenceWritten) {
+		mu.Lock()
+		written = append(written, ev)
+		mu.Unlock()
+	}}))
+	for i := 0; i < 15; i++ {
+		_, err := cam.Next(nil)
+		require.NoError(t, err)
+	}
+	dir := t.TempDir()
+	stuck := filepath.Join(dir, "stuck.mp4")
+	require.NoError(t, syscall.Mkfifo(stuck, 0o600))
+	info, err := cam.StartClip(stuck)
+	require.NoError(t, err)
+	next := func(n int) {
+		for i := 0; i < n; i++ {
+			_, err := cam.Next(nil)
+			require.NoError(t, err)
+		}
+	}
+	next(400) // more than the writer's queue holds
+	copied := filepath.Join(dir, "copied.mp4")
+	done := make(chan error, 1)
+	go func() {
+		in, err := os.Open(stuck)
+		if err != nil {
+			done <- err
+			return
+		}
+		defer in.Close()
+		out, err := os.Create(copied)
+		if err != nil {
+			done <- err
+			return
+		}
+		_, err = io.Copy(out, in)
+		if cerr := out.Close(); err == nil {
+			err = cerr
+		}
+		done <- err
+	}()
+	require.Eventually(t, func() bool { return len(cam.ev.w.jobs) == 0 }, 20*time.Second, 10*time.Millisecond, "the writer never drained")
+	next(100)
+	require.NoError(t, cam.Close())
+	require.NoError(t, <-done)
+	mu.Lock()
+	defer mu.Unlock()
+	require.Len(t, written, 1)
+	ev := written[0]
+	require.NoError(t, ev.Err)
+	assert.Equal(t, info.PreRoll+500, ev.Frames+ev.Dropped, "every packet written or counted")
+	assert.Positive(t, ev.Dropped)
+	// After the drain the clip resumes at the next key frame: all but at
+	// most 9 of the last 100 frames are in it.
+	assert.GreaterOrEqual(t, ev.Frames, info.PreRoll+evidenceQueue/2+91)
+
+	// Each frame of the clip is one of the source's pictures: a P-frame
+	// whose reference was left out would decode to another.
+	want, _ := frameSums(t, src)
+	source := map[string]bool{}
+	for _, w := range want {
+		source[w] = true
+	}
+	got, _ := frameSums(t, copied)
+	assert.Equal(t, ev.Frames, len(got))
+	frames, wrong := len(got), 0
+	for _, g := range got {
+		if !source[g] {
+			wrong++
+		}
+	}
+	assert.Zero(t, wrong, "frames of the clip that are none of the source's")
+	report(t, "evidence: mp4 clip behind a blocked writer: %d packets written, %d left out and counted, %d frames decode, each to one of the source's", ev.Frames, ev.Dropped, frames)
 }

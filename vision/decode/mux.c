@@ -73,7 +73,16 @@ SwMux *sw_mux_open(const char *path, int codec_id, int width, int height, const 
 		mux_fail(err, errlen, "create", r);
 		goto bad;
 	}
-	if ((r = avformat_write_header(m->fmt, NULL)) < 0) {
+	// Fragmented: the index goes with each run of packets from a key
+	// frame, flushed to the file as it is cut, so a clip whose writer dies
+	// before the end still plays up to its last whole fragment (a plain
+	// MP4's index is written only at the end).
+	AVDictionary *opts = NULL;
+	av_dict_set(&opts, "movflags", "+frag_keyframe+empty_moov+default_base_moof", 0);
+	m->fmt->flush_packets = 1;
+	r = avformat_write_header(m->fmt, &opts);
+	av_dict_free(&opts);
+	if (r < 0) {
 		mux_fail(err, errlen, "write the header", r);
 		goto bad;
 	}

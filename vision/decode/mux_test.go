@@ -142,3 +142,37 @@ func TestMuxerErrors(t *testing.T) {
 	assert.ErrorContains(t, mw.WritePacket(Packet{}), "empty")
 	assert.ErrorContains(t, mw.WritePacket(Packet{Data: []byte{0}, PTS: NoTime, DTS: NoTime}), "no time")
 }
+
+// TestMP4PlaysBeforeClose: a clip whose writer never finishes (the daemon
+// killed mid-clip) keeps what was written: with key frames every 20, after
+// 60 packets and no Close the file already decodes (FFmpeg, the
+// reference) to the source's first 40 frames, the runs that a later key
+// frame closed; Close adds the last run.
+func TestMP4PlaysBeforeClose(t *testing.T) {
+	src := h264Of(t, reference(t, "vtest.avi"), 60, "320x240")
+	want, _ := decodedFrames(t, src)
+	require.Len(t, want, 60)
+	s, err := Open(src, Options{})
+	require.NoError(t, err)
+	defer s.Close()
+	out := filepath.Join(t.TempDir(), "open.mp4")
+	mw, err := CreateMP4(out, s.Params(), "")
+	require.NoError(t, err)
+	for {
+		_, err := s.Next()
+		if err == io.EOF {
+			break
+		}
+		require.NoError(t, err)
+		for _, p := range s.Packets(nil) {
+			require.NoError(t, mw.WritePacket(p))
+		}
+	}
+	got, _ := decodedFrames(t, out)
+	require.Len(t, got, 40, "frames readable before Close")
+	assert.Equal(t, want[:40], got)
+	require.NoError(t, mw.Close())
+	got, _ = decodedFrames(t, out)
+	assert.Equal(t, want, got, "after Close")
+	refdata.Report(t, "mp4 clip left open: %d of 60 frames readable before Close, all after", 40)
+}
