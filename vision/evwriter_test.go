@@ -92,13 +92,11 @@ func TestRingHoldsOnlyThePreRoll(t *testing.T) {
 	}
 }
 
-// TestEvidenceWriterNeverHoldsUpFrames points a clip at a named pipe with
-// no reader, where the writer's open(2) blocks in the kernel: StartClip
-// and SaveSnapshot return at once, every frame is still read, the frames
-// the writer could not take are counted, and once the pipe has a reader
-// the writer finishes and Close returns.
-func TestEvidenceWriterNeverHoldsUpFrames(t *testing.T) {
-	src := smallClip(t, 2)
+// recordingCamera opens src in a loop with evidence on (pre-roll 1 s,
+// post-roll an hour) and reads 15 frames; reports returns what the
+// evidence writer has reported so far.
+func recordingCamera(t *testing.T, src string) (cam *Camera, reports func() []EvidenceWritten) {
+	t.Helper()
 	cam, err := OpenCamera(SourceConfig{URI: src, Loop: true}, DetectorConfig{ProcessWidth: 160})
 	require.NoError(t, err)
 	var mu sync.Mutex
@@ -112,6 +110,20 @@ func TestEvidenceWriterNeverHoldsUpFrames(t *testing.T) {
 		_, err := cam.Next(nil)
 		require.NoError(t, err)
 	}
+	return cam, func() []EvidenceWritten {
+		mu.Lock()
+		defer mu.Unlock()
+		return append([]EvidenceWritten(nil), written...)
+	}
+}
+
+// TestEvidenceWriterNeverHoldsUpFrames points a clip at a named pipe with
+// no reader, where the writer's open(2) blocks in the kernel: StartClip
+// and SaveSnapshot return at once, every frame is still read, the frames
+// the writer could not take are counted, and once the pipe has a reader
+// the writer finishes and Close returns.
+func TestEvidenceWriterNeverHoldsUpFrames(t *testing.T) {
+	cam, reports := recordingCamera(t, smallClip(t, 2))
 	stuck := filepath.Join(t.TempDir(), "stuck.avi")
 	require.NoError(t, syscall.Mkfifo(stuck, 0o600))
 	t0 := time.Now()
@@ -156,8 +168,7 @@ func TestEvidenceWriterNeverHoldsUpFrames(t *testing.T) {
 	}()
 	require.NoError(t, cam.Close())
 	assert.Greater(t, <-drained, int64(0))
-	mu.Lock()
-	defer mu.Unlock()
+	written := reports()
 	require.Len(t, written, 1)
 	ev := written[0]
 	assert.Equal(t, "clip", ev.Kind)

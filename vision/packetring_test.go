@@ -9,7 +9,6 @@ import (
 	"os/exec"
 	"path/filepath"
 	"strconv"
-	"sync"
 	"syscall"
 	"testing"
 	"time"
@@ -248,19 +247,7 @@ func TestPacketClipOverRTSP(t *testing.T) {
 // the gap.
 func TestPacketClipGapResumesAtKeyFrame(t *testing.T) {
 	src := h264Clip(t, smallClip(t, 3), 10)
-	cam, err := OpenCamera(SourceConfig{URI: src, Loop: true}, DetectorConfig{ProcessWidth: 160})
-	require.NoError(t, err)
-	var mu sync.Mutex
-	var written []EvidenceWritten
-	require.NoError(t, cam.EnableEvidence(EvidenceConfig{PreRoll: time.Second, PostRoll: time.Hour, OnWritten: func(ev EvidenceWritten) {
-		mu.Lock()
-		written = append(written, ev)
-		mu.Unlock()
-	}}))
-	for i := 0; i < 15; i++ {
-		_, err := cam.Next(nil)
-		require.NoError(t, err)
-	}
+	cam, reports := recordingCamera(t, src)
 	dir := t.TempDir()
 	stuck := filepath.Join(dir, "stuck.mp4")
 	require.NoError(t, syscall.Mkfifo(stuck, 0o600))
@@ -297,8 +284,7 @@ func TestPacketClipGapResumesAtKeyFrame(t *testing.T) {
 	next(100)
 	require.NoError(t, cam.Close())
 	require.NoError(t, <-done)
-	mu.Lock()
-	defer mu.Unlock()
+	written := reports()
 	require.Len(t, written, 1)
 	ev := written[0]
 	require.NoError(t, ev.Err)
