@@ -45,7 +45,7 @@ const (
 
 // add puts pkts, read with the frame of media time media, on the timeline
 // and into the ring, drops what the pre-roll no longer needs, and returns
-// the packets as kept (a new slice).
+// the packets as kept (a new slice; empty packets are left out).
 func (r *packetRing) add(pkts []decode.Packet, media, preRoll time.Duration, fps float64) []decode.Packet {
 	if len(pkts) == 0 {
 		return nil
@@ -58,6 +58,9 @@ func (r *packetRing) add(pkts []decode.Packet, media, preRoll time.Duration, fps
 	}
 	out := make([]decode.Packet, 0, len(pkts))
 	for _, p := range pkts {
+		if len(p.Data) == 0 {
+			continue // nothing to decode (some demuxers send side data alone)
+		}
 		p = r.place(p)
 		out = append(out, p)
 		r.ring = append(r.ring, keptPacket{media: media, p: p})

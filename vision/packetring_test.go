@@ -165,6 +165,13 @@ func TestPacketRing(t *testing.T) {
 			assert.Equal(t, 10*len(r.ring), r.bytes)
 		})
 	}
+	t.Run("empty packets left out", func(t *testing.T) {
+		r := &packetRing{}
+		kept := r.add([]decode.Packet{pkt(0, true), {PTS: 9000, DTS: 9000}, pkt(2, false)}, 0, time.Second, 10)
+		require.Len(t, kept, 2)
+		assert.Len(t, r.ring, 2)
+		assert.Equal(t, int64(18000), kept[1].DTS)
+	})
 	t.Run("times start again", func(t *testing.T) {
 		r := &packetRing{}
 		var dts []int64
