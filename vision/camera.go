@@ -222,8 +222,12 @@ func (c *Camera) open() error {
 	if err != nil {
 		return err
 	}
+	keep := c.keepsPackets()
 	r := c.gate.run(c.openWait(), func() openResult {
 		cp, err := c.openBackend(src)
+		if sc, ok := cp.(*streamCapture); ok {
+			sc.keep = keep
+		}
 		if err != nil {
 			if src.fd >= 0 {
 				syscall.Close(src.fd)
@@ -330,7 +334,7 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 		copyable bool
 	)
 	if sc, ok := c.cap.(*streamCapture); ok {
-		pkts, params, copyable = sc.packets() // taken even when no clip wants them
+		pkts, params, copyable = sc.packets()
 	}
 	if c.ev != nil {
 		if err := c.ev.add(c.frame, r.Media, pkts, params, copyable); err != nil {

@@ -131,11 +131,18 @@ func (c *Camera) EnableEvidence(cfg EvidenceConfig) error {
 	if c.ev != nil {
 		c.ev.cfg, c.ev.fps = cfg, fps
 		c.ev.w.setNotify(cfg.OnWritten)
-		return nil
+	} else {
+		c.ev = &evidence{cfg: cfg, fps: fps, w: startEvidenceWriter(cfg.OnWritten)}
 	}
-	c.ev = &evidence{cfg: cfg, fps: fps, w: startEvidenceWriter(cfg.OnWritten)}
+	if sc, ok := c.cap.(*streamCapture); ok {
+		sc.keep = c.keepsPackets()
+	}
 	return nil
 }
+
+// keepsPackets reports whether the camera's clips may want its stream's
+// packets: it keeps evidence, and its clips are not another stream's.
+func (c *Camera) keepsPackets() bool { return c.ev != nil && !c.ev.cfg.SnapshotsOnly }
 
 // add buffers frame and, while a clip is recorded, hands it to the
 // writer. It never waits for the writer. When the stream's packets are

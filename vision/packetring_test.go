@@ -319,3 +319,38 @@ func TestPacketClipGapResumesAtKeyFrame(t *testing.T) {
 	assert.Zero(t, wrong, "frames of the clip that are none of the source's")
 	report(t, "evidence: mp4 clip behind a blocked writer: %d packets written, %d left out and counted, %d frames decode, each to one of the source's", ev.Frames, ev.Dropped, frames)
 }
+
+// TestPacketsCopiedOnlyForClips: a camera keeping no evidence of its own
+// (replay, or clips cut from an evidence stream) copies no packets; once
+// it keeps evidence, every frame's packets are taken.
+func TestPacketsCopiedOnlyForClips(t *testing.T) {
+	src := h264Clip(t, smallClip(t, 1), 10)
+	for _, c := range []struct {
+		name string
+		cfg  *EvidenceConfig
+		want bool
+	}{
+		{"no evidence", nil, false},
+		{"clips from an evidence stream", &EvidenceConfig{SnapshotsOnly: true}, false},
+		{"clips of its own", &EvidenceConfig{}, true},
+	} {
+		t.Run(c.name, func(t *testing.T) {
+			cam, err := OpenCamera(SourceConfig{URI: src, Loop: true}, DetectorConfig{ProcessWidth: 160})
+			require.NoError(t, err)
+			defer cam.Close()
+			if c.cfg != nil {
+				require.NoError(t, cam.EnableEvidence(*c.cfg))
+			}
+			for i := 0; i < 3; i++ {
+				_, err := cam.Next(nil)
+				require.NoError(t, err)
+			}
+			sc := cam.cap.(*streamCapture)
+			require.Empty(t, sc.pending, "Next takes what was copied")
+			ok, err := sc.grab() // one more frame, not taken by the camera
+			require.NoError(t, err)
+			require.True(t, ok)
+			assert.Equal(t, c.want, len(sc.pending) > 0)
+		})
+	}
+}

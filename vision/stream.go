@@ -40,11 +40,13 @@ type streamCapture struct {
 	fd  int
 	cur decode.Frame
 	// copyable: the codec's packets can go into an MP4 clip as they are
-	// (see packetRing); pending holds those read since the camera last
-	// took them, frames dropped unsearched included.
-	copyable bool
-	params   decode.Params
-	pending  []decode.Packet
+	// (see packetRing). keep: a clip may want them (the camera keeps
+	// evidence of its own), so each grab copies them into pending, which
+	// holds those read since the camera last took them, frames dropped
+	// unsearched included. Without keep nothing is copied.
+	copyable, keep bool
+	params         decode.Params
+	pending        []decode.Packet
 }
 
 // copyableCodec reports whether a clip keeps the codec's packets as they
@@ -121,7 +123,7 @@ func (c *streamCapture) grab() (bool, error) {
 		return false, nil
 	}
 	c.cur = f
-	if c.copyable {
+	if c.copyable && c.keep {
 		c.pending = c.s.Packets(c.pending)
 	}
 	return true, nil
