@@ -10,6 +10,7 @@ import (
 	"net/http/httptest"
 	"net/textproto"
 	"stillwater/vision/refdata"
+	"strings"
 	"testing"
 	"time"
 
@@ -190,7 +191,14 @@ func TestRTSPDropAndReconnect(t *testing.T) {
 
 	require.NoError(t, srv.StartPusher())
 	restarted := time.Now()
+	// The relay answers DESCRIBE as soon as the pusher announces the
+	// stream, and may still refuse a SETUP (404) for a moment after: the
+	// daemon retries a reconnect, and so does this test, for up to 5 s.
 	info, err := cam.Reconnect()
+	for err != nil && strings.Contains(err.Error(), "404") && time.Since(restarted) < 5*time.Second {
+		time.Sleep(200 * time.Millisecond)
+		info, err = cam.Reconnect()
+	}
 	require.NoError(t, err)
 	assert.False(t, info.Rebuilt)
 	assert.Equal(t, image.Pt(320, 240), info.Size)
