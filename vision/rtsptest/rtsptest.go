@@ -11,11 +11,13 @@ import (
 	"bufio"
 	"errors"
 	"fmt"
+	"io"
 	"math/rand"
 	"net"
 	"os"
 	"os/exec"
 	"path/filepath"
+	"strconv"
 	"strings"
 	"syscall"
 	"testing"
@@ -221,17 +223,70 @@ func (s *Server) describe() error {
 	}
 	defer c.Close()
 	c.SetDeadline(time.Now().Add(2 * time.Second))
+	r := bufio.NewReader(c)
 	if _, err := fmt.Fprintf(c, "DESCRIBE %s RTSP/1.0\r\nCSeq: 1\r\nAccept: application/sdp\r\n\r\n", s.URL()); err != nil {
 		return err
 	}
-	line, err := bufio.NewReader(c).ReadString('\n')
+	head, err := readReply(r)
 	if err != nil {
+		return fmt.Errorf("describe: %w", err)
+	}
+	n, _ := strconv.Atoi(head["content-length"])
+	body := make([]byte, n)
+	if _, err := io.ReadFull(r, body); err != nil {
+		return fmt.Errorf("describe: %w", err)
+	}
+	// The relay answers DESCRIBE as soon as a pusher announces the stream,
+	// and may refuse a reader's SETUP (404) until the pusher has set up
+	// its track: the stream is served once a SETUP of the track succeeds.
+	track := s.URL()
+	for _, line := range strings.Split(string(body), "\n") {
+		if ctl, ok := strings.CutPrefix(strings.TrimSpace(line), "a=control:"); ok && ctl != "*" {
+			if strings.Contains(ctl, "://") {
+				track = ctl
+			} else {
+				track = s.URL() + "/" + ctl
+			}
+		}
+	}
+	if _, err := fmt.Fprintf(c, "SETUP %s RTSP/1.0\r\nCSeq: 2\r\nTransport: RTP/AVP;unicast;client_port=%d-%d\r\n\r\n", track, s.rtpPort-2, s.rtpPort-1); err != nil {
 		return err
 	}
-	if !strings.Contains(line, " 200 ") {
-		return fmt.Errorf("describe: %s", strings.TrimSpace(line))
+	head, err = readReply(r)
+	if err != nil {
+		return fmt.Errorf("setup %s: %w", track, err)
+	}
+	if sess := strings.SplitN(head["session"], ";", 2)[0]; sess != "" {
+		fmt.Fprintf(c, "TEARDOWN %s RTSP/1.0\r\nCSeq: 3\r\nSession: %s\r\n\r\n", s.URL(), sess)
 	}
 	return nil
+}
+
+// readReply reads an RTSP reply's status line and headers (names in lower
+// case); a status other than 200 is an error.
+func readReply(r *bufio.Reader) (map[string]string, error) {
+	status, err := r.ReadString('\n')
+	if err != nil {
+		return nil, err
+	}
+	head := map[string]string{}
+	for {
+		line, err := r.ReadString('\n')
+		if err != nil {
+			return nil, err
+		}
+		line = strings.TrimSpace(line)
+		if line == "" {
+			break
+		}
+		if k, v, ok := strings.Cut(line, ":"); ok {
+			head[strings.ToLower(strings.TrimSpace(k))] = strings.TrimSpace(v)
+		}
+	}
+	if !strings.Contains(status, " 200 ") {
+		return head, fmt.Errorf("%s", strings.TrimSpace(status))
+	}
+	return head, nil
 }
 
 func freeTCPPort() (int, error) {
