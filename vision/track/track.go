@@ -47,7 +47,7 @@ type Track[F any] struct {
 }
 
 // TrackerConfig tunes association.
-type TrackerConfig struct {
+type TrackerConfig[F any] struct {
 	// Gate is the largest distance from a track's predicted position at
 	// which a detection is still the same object (plane units).
 	Gate float64
@@ -68,19 +68,25 @@ type TrackerConfig struct {
 	// seen in flickering pieces is, rank by distance alone, and the gate is
 	// unchanged. Zero ranks every pair by distance alone.
 	Drift float64
+	// Penalty, when set, adds to the rank of pairing track t with the
+	// (merged) detection d, plane units: what the caller knows of the two
+	// beyond where they are. It orders a track's detections among
+	// themselves (the least penalty among them counts as none), and the
+	// gate still applies to the distance alone.
+	Penalty func(t *Track[F], d Detection[F]) float64
 }
 
 // Tracker associates detections across frames by nearest neighbour within
 // a gate. Not safe for concurrent use.
 type Tracker[F any] struct {
-	cfg    TrackerConfig
+	cfg    TrackerConfig[F]
 	next   int
 	tracks []*Track[F]
 	last   time.Duration
 }
 
 // NewTracker returns an empty tracker.
-func NewTracker[F any](cfg TrackerConfig) *Tracker[F] {
+func NewTracker[F any](cfg TrackerConfig[F]) *Tracker[F] {
 	if cfg.Gate <= 0 {
 		cfg.Gate = 1.0
 	}
@@ -109,10 +115,26 @@ func (t *Tracker[F]) Update(now time.Duration, dets []Detection[F]) []Track[F] {
 	for ti, tr := range t.tracks {
 		dt := (now - tr.Last).Seconds()
 		px, py := tr.X+tr.VX*dt, tr.Y+tr.VY*dt
+		first := len(pairs)
+		least := math.Inf(1)
 		for gi, g := range groups {
 			d := math.Hypot(g.X-px, g.Y-py)
 			if d <= t.cfg.Gate {
-				pairs = append(pairs, pair{ti, gi, d + t.cfg.Drift*math.Max(0, dt-t.cfg.RunGap.Seconds())})
+				rank := d + t.cfg.Drift*math.Max(0, dt-t.cfg.RunGap.Seconds())
+				if t.cfg.Penalty != nil {
+					pen := t.cfg.Penalty(tr, g)
+					rank += pen
+					least = math.Min(least, pen)
+				}
+				pairs = append(pairs, pair{ti, gi, rank})
+			}
+		}
+		// The penalty orders a track's detections among themselves: the
+		// least of them is taken off, so that a track whose detections
+		// all carry one does not yield them to other tracks.
+		if !math.IsInf(least, 1) {
+			for i := first; i < len(pairs); i++ {
+				pairs[i].rank -= least
 			}
 		}
 	}

@@ -10,7 +10,7 @@ import (
 )
 
 func TestTrackerKeepsIDsAndVelocity(t *testing.T) {
-	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.6, MergeRadius: 0.3, MaxMissing: time.Second})
+	tr := NewTracker(TrackerConfig[struct{}]{Gate: 0.6, MergeRadius: 0.3, MaxMissing: time.Second})
 	var got []Track[struct{}]
 	// An object moving at 0.5 m/s along x, seen at 10 fps.
 	for i := 0; i < 20; i++ {
@@ -25,7 +25,7 @@ func TestTrackerKeepsIDsAndVelocity(t *testing.T) {
 }
 
 func TestTrackerMergesSplitBlobs(t *testing.T) {
-	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Second})
+	tr := NewTracker(TrackerConfig[struct{}]{Gate: 0.6, MergeRadius: 0.4, MaxMissing: time.Second})
 	tr.Update(0, []Detection[struct{}]{{X: 2, Y: 2, Area: 0.04}})
 	// An arm splashing beside the head: two blobs, one track.
 	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 2, Y: 2, Area: 0.03}, {X: 2.25, Y: 2, Area: 0.01}})
@@ -36,7 +36,7 @@ func TestTrackerMergesSplitBlobs(t *testing.T) {
 }
 
 func TestTrackerStartsNewTrackBeyondGateAndExpires(t *testing.T) {
-	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.5, MaxMissing: 300 * time.Millisecond})
+	tr := NewTracker(TrackerConfig[struct{}]{Gate: 0.5, MaxMissing: 300 * time.Millisecond})
 	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
 	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 3, Y: 1, Area: 0.04}})
 	require.Len(t, got, 2)
@@ -50,7 +50,7 @@ func TestTrackerStartsNewTrackBeyondGateAndExpires(t *testing.T) {
 // this frame first, then those kept alive without a detection, each group
 // by id.
 func TestTrackerSeenFirst(t *testing.T) {
-	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.5, MaxMissing: time.Second})
+	tr := NewTracker(TrackerConfig[struct{}]{Gate: 0.5, MaxMissing: time.Second})
 	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}, {X: 3, Y: 1, Area: 0.04}, {X: 5, Y: 1, Area: 0.04}})
 	// Track 1 and 3 are missed in the second frame; 2 is seen, and a new
 	// object (4) appears.
@@ -68,7 +68,7 @@ func TestTrackerSeenFirst(t *testing.T) {
 // TestTrackerReset checks that after Reset an object at the same place
 // starts a new track.
 func TestTrackerReset(t *testing.T) {
-	tr := NewTracker[struct{}](TrackerConfig{Gate: 0.5, MaxMissing: time.Second})
+	tr := NewTracker(TrackerConfig[struct{}]{Gate: 0.5, MaxMissing: time.Second})
 	tr.Update(0, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
 	tr.Reset()
 	got := tr.Update(100*time.Millisecond, []Detection[struct{}]{{X: 1, Y: 1, Area: 0.04}})
@@ -99,7 +99,7 @@ func TestTrackerUnseenTrackYields(t *testing.T) {
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
-			tr := NewTracker[struct{}](TrackerConfig{Gate: 0.6, MaxMissing: 3 * time.Second, Drift: c.drift})
+			tr := NewTracker(TrackerConfig[struct{}]{Gate: 0.6, MaxMissing: 3 * time.Second, Drift: c.drift})
 			blob := Detection[struct{}]{X: 5, Y: 3.55, Area: 0.05}
 			// Frame 0: the child at (5, 4) and the blob; then the child
 			// along −y at 0.5 m/s for 0.7 s.
@@ -118,4 +118,69 @@ func TestTrackerUnseenTrackYields(t *testing.T) {
 			assert.Equal(t, 800*time.Millisecond, got[0].Last)
 		})
 	}
+}
+
+// TestTrackerPenalty checks that a pair's penalty reorders competing
+// detections within the gate, and that the gate itself is on distance
+// alone. The case is the tuning scene's: a leaf drifts off a still body
+// that had held a track; the leaf is nearer the track's last position.
+func TestTrackerPenalty(t *testing.T) {
+	type feat struct{ small bool }
+	penalty := func(tr *Track[feat], d Detection[feat]) float64 {
+		if d.Features.small {
+			return 1
+		}
+		return 0
+	}
+	tests := []struct {
+		name    string
+		penalty func(*Track[feat], Detection[feat]) float64
+		wantX   float64 // where track 1 is after the split
+	}{
+		{"nearest by distance alone", nil, 1.1},
+		{"the body before the debris", penalty, 1.35},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			tr := NewTracker(TrackerConfig[feat]{Gate: 0.6, MaxMissing: time.Second, Penalty: tc.penalty})
+			tr.Update(0, []Detection[feat]{{X: 1.2, Y: 1, Area: 0.1}})
+			got := tr.Update(100*time.Millisecond, []Detection[feat]{
+				{X: 1.1, Y: 1, Area: 0.03, Features: feat{small: true}},
+				{X: 1.35, Y: 1, Area: 0.07},
+			})
+			require.Len(t, got, 2)
+			for _, g := range got {
+				if g.ID == 1 {
+					assert.InDelta(t, tc.wantX, g.X, 1e-9)
+				}
+			}
+			// Beyond the gate no penalty pairs a detection with the track.
+			got = tr.Update(200*time.Millisecond, []Detection[feat]{{X: 3, Y: 1, Area: 0.07}})
+			for _, g := range got {
+				if g.X == 3 {
+					assert.Equal(t, 3, g.ID)
+				}
+			}
+		})
+	}
+}
+
+// TestTrackerPenaltyIsRelative checks that a track whose detections all
+// carry a penalty keeps the nearest of them: the penalty does not hand
+// it to another track.
+func TestTrackerPenaltyIsRelative(t *testing.T) {
+	type feat struct{ small bool }
+	penalty := func(tr *Track[feat], d Detection[feat]) float64 {
+		if tr.ID == 1 && d.Features.small {
+			return 1
+		}
+		return 0
+	}
+	tr := NewTracker(TrackerConfig[feat]{Gate: 0.6, MaxMissing: time.Second, Penalty: penalty})
+	tr.Update(0, []Detection[feat]{{X: 1, Y: 1, Area: 0.1}, {X: 1.5, Y: 1, Area: 0.02}})
+	// One small detection between the two tracks, nearer track 1.
+	got := tr.Update(100*time.Millisecond, []Detection[feat]{{X: 1.2, Y: 1, Area: 0.02, Features: feat{small: true}}})
+	require.NotEmpty(t, got)
+	assert.Equal(t, 1, got[0].ID)
+	assert.InDelta(t, 1.2, got[0].X, 1e-9)
 }
