@@ -75,3 +75,7 @@ func (p *PictureFaults) Observe(media time.Duration, s vision.HealthStats, armed
 	}
 	return out
 }
+
+// Frozen reports whether the picture checks find the picture frozen now,
+// armed or not (see Processor.Frozen).
+func (p *PictureFaults) Frozen() bool { return p.mon.Condition() == vision.CondFrozen }

@@ -4,12 +4,14 @@ import (
 	"image"
 	"io"
 	"log/slog"
+	"strings"
 	"testing"
 	"time"
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
 
+	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision"
 )
@@ -151,4 +153,38 @@ func TestGateFaintCandidate(t *testing.T) {
 			assert.True(t, ok)
 		})
 	}
+}
+
+// TestFrozenPictureStartsNoTarget: while the picture checks find the
+// picture frozen, a blob that would alarm starts no target; once the
+// picture moves again it does, and a target already raised goes on
+// through a later freeze.
+func TestFrozenPictureStartsNoTarget(t *testing.T) {
+	blob := vision.Blob{
+		Centroid: vision.Point{X: 300, Y: 200},
+		Box:      image.Rect(292, 192, 308, 208),
+		Contour:  []vision.Point{{X: 292.5, Y: 192.5}, {X: 307.5, Y: 192.5}, {X: 307.5, Y: 207.5}, {X: 292.5, Y: 207.5}},
+	}
+	cam := zoneCamera()
+	cam.Detect.Method = "mog2"
+	p := newTestProcessor(t, cam)
+	starts := func(from, to int) (n int) {
+		for i := from; i < to; i++ {
+			out, _ := p.Step(vision.Result{Index: i, Media: time.Duration(i) * 100 * time.Millisecond, Blobs: []vision.Blob{blob}}, true)
+			for _, m := range out {
+				if m.Kind == alert.KindTarget && strings.Contains(string(m.Data), `"event":"start"`) {
+					n++
+				}
+			}
+		}
+		return n
+	}
+	p.Frozen = true
+	assert.Zero(t, starts(0, 30), "3 s of a frozen picture")
+	p.Frozen = false
+	assert.Equal(t, 1, starts(30, 50), "the picture moves again")
+	p.Frozen = true
+	assert.Zero(t, starts(50, 70))
+	require.Len(t, p.Tracks, 1)
+	assert.True(t, p.alarmed[p.Tracks[0].ID], "the raised target goes on through the freeze")
 }

@@ -184,6 +184,7 @@ func ReplayClip(ctx context.Context, cam config.CameraConfig, prefix string, w i
 			proc.Step(r, true) // probed only, as in the daemon (see watch.go)
 			continue
 		}
+		proc.Frozen = faults.Frozen()
 		msgs, h := proc.Step(r, true)
 		hold = h
 		for _, m := range msgs {

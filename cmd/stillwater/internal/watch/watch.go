@@ -391,6 +391,7 @@ func (w *Camera) frames(ctx context.Context, vc *vision.Camera, st *captureState
 			proc.Step(r, armed) // gives nothing, but hears how the probing ended
 		} else {
 			t1 := time.Now()
+			proc.Frozen = st.health.Frozen()
 			msgs, h := proc.Step(r, armed)
 			st.hold = h
 			w.met.Stage("track", time.Since(t1))
