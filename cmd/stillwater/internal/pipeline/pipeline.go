@@ -375,6 +375,18 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 			c = at
 		}
 	}
+	if n, o := b.Plane.Near, p.judge.rules.Nadir; n != nil && o != nil {
+		// Reaching further beyond its end nearest the camera than half
+		// the smallest child's length, a body is upright, and meets the
+		// water near that end.
+		if rx, ry := n.X-o.X, n.Y-o.Y; rx != 0 || ry != 0 {
+			r := math.Hypot(rx, ry)
+			ux, uy := rx/r, ry/r
+			if reach := (c.X-n.X)*ux + (c.Y-n.Y)*uy; reach > maxReach {
+				c = homography.Point{X: c.X - (reach-maxReach)*ux, Y: c.Y - (reach-maxReach)*uy}
+			}
+		}
+	}
 	switch {
 	case !p.Calibration.Inside(c):
 		return reject("outside", fmt.Sprintf("centre outside the pool (%.2f of it on the water)", f.Wet))
@@ -392,6 +404,14 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 	p.notes = append(p.notes, candidateNote{At: c, Features: f})
 	return detection{X: c.X, Y: c.Y, Area: f.Area, Box: b.Box, Hold: b.Plane.Cells, Features: f, FeatureArea: f.Area}, true
 }
+
+// maxReach is how far, m, a candidate's position may lie beyond its end
+// nearest the camera (vision.PlaneBlob.Near), away from the camera: half
+// the length of the smallest child the alarm is for (WHO Child Growth
+// Standards, length-for-age, girls at 12 months: 74.0 cm), so that a child
+// lying along the line of sight keeps its centre. What reaches further is
+// upright, seen laid away from the camera beyond where it meets the water.
+const maxReach = 0.37
 
 // footOnDeck is how far out on the deck, m, a candidate's end nearest the
 // camera (vision.Features.Foot) must lie for it to stand there: a child in
