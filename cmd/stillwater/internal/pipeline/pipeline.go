@@ -407,11 +407,13 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 
 // maxReach is how far, m, a candidate's position may lie beyond its end
 // nearest the camera (vision.PlaneBlob.Near), away from the camera: half
-// the length of the smallest child the alarm is for (WHO Child Growth
-// Standards, length-for-age, girls at 12 months: 74.0 cm), so that a child
-// lying along the line of sight keeps its centre. What reaches further is
-// upright, seen laid away from the camera beyond where it meets the water.
-const maxReach = 0.37
+// the length of the tallest child the alarm is for, lying along the line
+// of sight (a 5-year-old, the WHO Child Growth Standards' oldest age, is
+// about 110 cm tall: from memory), so that any child lying keeps its
+// centre. What reaches further is upright, seen laid away from the camera
+// beyond where it meets the water. Half the smallest child's length
+// (0.37 m) moved the scenario suite's floating child 0.59 m off.
+const maxReach = 0.55
 
 // footOnDeck is how far out on the deck, m, a candidate's end nearest the
 // camera (vision.Features.Foot) must lie for it to stand there: a child in
