@@ -376,9 +376,9 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 		}
 	}
 	if n, o := b.Plane.Near, p.judge.rules.Nadir; n != nil && o != nil {
-		// Reaching further beyond its end nearest the camera than half
-		// the smallest child's length, a body is upright, and meets the
-		// water near that end.
+		// Reaching further beyond its end nearest the camera than a lying
+		// child's half length (maxReach), a body is upright, and meets
+		// the water near that end.
 		if rx, ry := n.X-o.X, n.Y-o.Y; rx != 0 || ry != 0 {
 			r := math.Hypot(rx, ry)
 			ux, uy := rx/r, ry/r

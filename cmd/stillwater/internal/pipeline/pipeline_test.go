@@ -112,7 +112,7 @@ func TestGateUprightInTheWater(t *testing.T) {
 }
 
 // TestGateUprightReach: a candidate whose position lies further beyond its
-// end nearest the camera than half the smallest child's length (maxReach)
+// end nearest the camera than half the tallest child's length (maxReach)
 // is a body upright, seen laid away from the camera: it is moved back
 // along the line from the point under the camera to maxReach beyond that
 // end, its offset across that line kept. Nearer, or without the camera's
