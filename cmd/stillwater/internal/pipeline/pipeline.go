@@ -375,18 +375,6 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 			c = at
 		}
 	}
-	if n, o := b.Plane.Near, p.judge.rules.Nadir; n != nil && o != nil {
-		// Reaching further beyond its end nearest the camera than a lying
-		// child's half length (maxReach), a body is upright, and meets
-		// the water near that end.
-		if rx, ry := n.X-o.X, n.Y-o.Y; rx != 0 || ry != 0 {
-			r := math.Hypot(rx, ry)
-			ux, uy := rx/r, ry/r
-			if reach := (c.X-n.X)*ux + (c.Y-n.Y)*uy; reach > maxReach {
-				c = homography.Point{X: c.X - (reach-maxReach)*ux, Y: c.Y - (reach-maxReach)*uy}
-			}
-		}
-	}
 	switch {
 	case !p.Calibration.Inside(c):
 		return reject("outside", fmt.Sprintf("centre outside the pool (%.2f of it on the water)", f.Wet))
@@ -404,16 +392,6 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 	p.notes = append(p.notes, candidateNote{At: c, Features: f})
 	return detection{X: c.X, Y: c.Y, Area: f.Area, Box: b.Box, Hold: b.Plane.Cells, Features: f, FeatureArea: f.Area}, true
 }
-
-// maxReach is how far, m, a candidate's position may lie beyond its end
-// nearest the camera (vision.PlaneBlob.Near), away from the camera: half
-// the length of the tallest child the alarm is for, lying along the line
-// of sight (a 5-year-old, the WHO Child Growth Standards' oldest age, is
-// about 110 cm tall: from memory), so that any child lying keeps its
-// centre. What reaches further is upright, seen laid away from the camera
-// beyond where it meets the water. Half the smallest child's length
-// (0.37 m) moved the scenario suite's floating child 0.59 m off.
-const maxReach = 0.55
 
 // footOnDeck is how far out on the deck, m, a candidate's end nearest the
 // camera (vision.Features.Foot) must lie for it to stand there: a child in

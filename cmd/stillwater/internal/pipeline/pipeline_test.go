@@ -13,7 +13,6 @@ import (
 
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
-	"stillwater/homography"
 	"stillwater/vision"
 )
 
@@ -107,39 +106,6 @@ func TestGateUprightInTheWater(t *testing.T) {
 				require.NotEmpty(t, p.notes)
 				assert.True(t, p.notes[len(p.notes)-1].Outside, "counted as outside: %s", p.notes[len(p.notes)-1].Rejected)
 			}
-		})
-	}
-}
-
-// TestGateUprightReach: a candidate whose position lies further beyond its
-// end nearest the camera than half the tallest child's length (maxReach)
-// is a body upright, seen laid away from the camera: it is moved back
-// along the line from the point under the camera to maxReach beyond that
-// end, its offset across that line kept. Nearer, or without the camera's
-// position, it stays where it is.
-func TestGateUprightReach(t *testing.T) {
-	nadir := &homography.Point{X: -2, Y: 2}
-	near := &vision.Point{X: 3, Y: 2}
-	for _, c := range []struct {
-		name  string
-		nadir *homography.Point
-		at    [2]float64
-		want  [2]float64
-	}{
-		{"reaching 0.8 m: upright", nadir, [2]float64{3.8, 2.1}, [2]float64{3 + maxReach, 2.1}},
-		{"reaching 0.3 m: kept", nadir, [2]float64{3.3, 2}, [2]float64{3.3, 2}},
-		{"camera position not known", nil, [2]float64{3.8, 2.1}, [2]float64{3.8, 2.1}},
-	} {
-		t.Run(c.name, func(t *testing.T) {
-			p := newTestProcessor(t, zoneCamera())
-			p.judge.rules.Nadir = c.nadir
-			f := body()
-			f.Wet = 1
-			b := vision.Blob{Plane: &vision.PlaneBlob{X: c.at[0], Y: c.at[1], Near: near}, Features: f}
-			det, ok := p.gate(vision.Result{}, b)
-			require.True(t, ok)
-			assert.InDelta(t, c.want[0], det.X, 1e-9)
-			assert.InDelta(t, c.want[1], det.Y, 1e-9)
 		})
 	}
 }
