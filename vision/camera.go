@@ -225,14 +225,15 @@ func (c *Camera) open() error {
 	keep := c.keepsPackets()
 	r := c.gate.run(c.openWait(), func() openResult {
 		cp, err := c.openBackend(src)
-		if sc, ok := cp.(*streamCapture); ok {
-			sc.keep = keep
-		}
 		if err != nil {
 			if src.fd >= 0 {
 				syscall.Close(src.fd)
 			}
 			return openResult{err: err}
+		}
+		// Set before the first read, so that its packets are kept too.
+		if sc, ok := cp.(*streamCapture); ok {
+			sc.keep = keep
 		}
 		m := gocv.NewMat()
 		ok, err := cp.read(&m)
