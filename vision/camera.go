@@ -134,14 +134,21 @@ func kindOf(uri string) sourceKind {
 // Camera reads frames from a source and runs a Detector over them. It owns
 // the capture and every Mat; Close frees them. Not safe for concurrent use.
 type Camera struct {
-	sc       SourceConfig
-	dc       DetectorConfig
-	kind     sourceKind
-	cap      backend
-	det      frameDetector
-	frame    gocv.Mat // latest full-resolution BGR frame
-	scratch  gocv.Mat // read target; swapped with frame on success, so a failed read keeps the last frame
-	primed   bool     // frame holds an unprocessed first frame
+	sc      SourceConfig
+	dc      DetectorConfig
+	kind    sourceKind
+	cap     backend
+	det     frameDetector
+	frame   gocv.Mat // latest full-resolution BGR frame, unless planar
+	scratch gocv.Mat // read target; swapped with frame on success, so a failed read keeps the last frame
+	primed  bool     // frame holds an unprocessed first frame
+	// planar is true when the latest frame is only in the decoder's
+	// planes (view), not yet in frame: the picture checks and the
+	// detector read the planes, and the frame is converted to BGR only
+	// when something needs it whole (see bgr). bgrOnly turns this off.
+	planar   bool
+	view     decode.Planes
+	bgrOnly  bool
 	fps      float64
 	declared int // frames the file declares, 0 when unknown
 	index    int
@@ -256,6 +263,7 @@ func (c *Camera) open() error {
 	cp := r.cp
 	c.frame.Close()
 	c.frame = r.frame
+	c.planar = false
 	c.cap = cp
 	c.primed = true
 	c.stats.FramesRead++
@@ -327,7 +335,15 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 	r := Result{Index: c.index, Size: c.det.srcSize(), Media: c.mediaTime()}
 	c.index++
 	c.media = r.Media
-	r.Health = c.health.measure(c.frame, r.Media)
+	if c.planar {
+		h, err := c.health.measurePlanes(c.view, r.Media)
+		if err != nil {
+			return r, fmt.Errorf("frame %d: %w", r.Index, err)
+		}
+		r.Health = h
+	} else {
+		r.Health = c.health.measure(c.frame, r.Media)
+	}
 	c.clock.lap(StageChecks)
 	var (
 		pkts     []decode.Packet
@@ -338,14 +354,27 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 		pkts, params, copyable = sc.packets()
 	}
 	if c.ev != nil {
-		if err := c.ev.add(c.frame, r.Media, pkts, params, copyable); err != nil {
+		if err := c.ev.add(r.Size, c.bgr, r.Media, pkts, params, copyable); err != nil {
 			return r, fmt.Errorf("frame %d: %w", r.Index, err)
 		}
 	}
 	if c.rejoin != nil {
 		return c.probe(r)
 	}
-	blobs, st, err := c.det.Detect(c.frame, hold)
+	var (
+		blobs []Blob
+		st    FrameStats
+		err   error
+	)
+	if pd, ok := c.det.(planeDetector); ok && c.planar {
+		blobs, st, err = pd.DetectPlanes(c.view, hold)
+	} else {
+		frame, cerr := c.bgr()
+		if cerr != nil {
+			return r, fmt.Errorf("frame %d: %w", r.Index, cerr)
+		}
+		blobs, st, err = c.det.Detect(frame, hold)
+	}
 	if err != nil {
 		return r, fmt.Errorf("frame %d: %w", r.Index, err)
 	}
@@ -357,7 +386,11 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 // trusted yet, and ends the probing when it is.
 func (c *Camera) probe(r Result) (Result, error) {
 	r.Rejoining = true
-	p, err := c.det.probe(c.frame)
+	frame, err := c.bgr()
+	if err != nil {
+		return r, fmt.Errorf("frame %d: %w", r.Index, err)
+	}
+	p, err := c.det.probe(frame)
 	if err != nil {
 		return r, fmt.Errorf("frame %d: %w", r.Index, err)
 	}
@@ -437,12 +470,16 @@ func (c *Camera) advanceFrame() error {
 		return c.advanceLive()
 	}
 	for tries := 0; ; tries++ {
-		ok, err := c.cap.read(&c.scratch)
+		ok, err := c.cap.grab()
 		if err != nil {
 			return err
 		}
-		if ok && !c.scratch.Empty() {
-			c.frame, c.scratch = c.scratch, c.frame
+		if ok {
+			if ok, err = c.take(); err != nil {
+				return err
+			}
+		}
+		if ok {
 			c.stats.FramesRead++
 			return nil
 		}
@@ -505,16 +542,78 @@ func (c *Camera) advanceLive() error {
 		return err
 	}
 	c.captured = c.started.Add(last.wall - c.lag.behind(last))
-	ok, err := c.cap.retrieve(&c.scratch)
+	ok, err := c.take()
 	if err != nil {
 		return err
 	}
-	if !ok || c.scratch.Empty() {
+	if !ok {
 		c.stats.EmptyReads++
 		return ErrNoFrame
 	}
-	c.frame, c.scratch = c.scratch, c.frame
 	return nil
+}
+
+// planeSource is a backend that can show the frame it grabbed in the
+// decoder's own planes.
+type planeSource interface {
+	planes() (decode.Planes, bool)
+}
+
+// planeDetector is a detector that reads a frame's planes.
+type planeDetector interface {
+	DetectPlanes(p decode.Planes, hold []image.Rectangle) ([]Blob, FrameStats, error)
+}
+
+// take makes the frame just grabbed the latest: left in the decoder's
+// planes when the backend shows them and the detector reads them, else
+// converted into frame (the previous frame stays when that fails).
+func (c *Camera) take() (bool, error) {
+	if ps, ok := c.cap.(planeSource); ok && !c.bgrOnly {
+		if _, ok := c.det.(planeDetector); ok {
+			if v, ok := ps.planes(); ok {
+				c.view, c.planar = v, true
+				return true, nil
+			}
+		}
+	}
+	ok, err := c.cap.retrieve(&c.scratch)
+	if err != nil || !ok || c.scratch.Empty() {
+		return false, err
+	}
+	c.frame, c.scratch = c.scratch, c.frame
+	c.planar = false
+	return true, nil
+}
+
+// bgr returns the latest frame in BGR, converting it first when it is
+// only in the decoder's planes.
+func (c *Camera) bgr() (gocv.Mat, error) {
+	if c.planar {
+		ok, err := c.cap.retrieve(&c.scratch)
+		if err != nil {
+			return c.frame, fmt.Errorf("convert frame: %w", err)
+		}
+		if !ok || c.scratch.Empty() {
+			return c.frame, errors.New("convert frame: no frame")
+		}
+		c.frame, c.scratch = c.scratch, c.frame
+		c.planar = false
+	}
+	return c.frame, nil
+}
+
+// closeCapture closes the capture, converting first a latest frame that
+// is only in its decoder's planes, so that it outlives the decoder.
+func (c *Camera) closeCapture() {
+	if c.cap == nil {
+		return
+	}
+	if c.planar {
+		c.bgr()
+		c.planar = false
+	}
+	c.cap.Close()
+	c.cap = nil
 }
 
 // rewind reopens a looped file at its first frame.
@@ -522,8 +621,7 @@ func (c *Camera) rewind() error {
 	if c.index == c.passBase {
 		return fmt.Errorf("loop %s: the file gave no frames", c.sc.URI)
 	}
-	c.cap.Close()
-	c.cap = nil
+	c.closeCapture()
 	if err := c.open(); err != nil {
 		return fmt.Errorf("loop %s: %w", c.sc.URI, err)
 	}
@@ -549,10 +647,7 @@ func (c *Camera) Reconnect() (ReconnectInfo, error) {
 		return ReconnectInfo{}, errCaptureClosed
 	}
 	info := ReconnectInfo{OldSize: c.det.srcSize()}
-	if c.cap != nil {
-		c.cap.Close()
-		c.cap = nil
-	}
+	c.closeCapture()
 	red := Redact(c.sc.URI)
 	if err := c.open(); err != nil {
 		return info, fmt.Errorf("reconnect camera %q: %w", red, err)
@@ -575,8 +670,7 @@ func (c *Camera) Reconnect() (ReconnectInfo, error) {
 	}
 	det, err := newFrameDetector(dc, info.Size)
 	if err != nil {
-		c.cap.Close()
-		c.cap = nil
+		c.closeCapture()
 		return info, fmt.Errorf("reconnect camera %q: %w", red, err)
 	}
 	c.det.Close()
@@ -618,6 +712,7 @@ func (c *Camera) Close() error {
 		c.det.Close()
 	}
 	c.health.Close()
+	c.planar = false
 	c.frame.Close()
 	c.scratch.Close()
 	if c.cap != nil {

@@ -10,10 +10,13 @@ import "C"
 import (
 	"errors"
 	"fmt"
+	"image"
 	"syscall"
 	"unsafe"
 
 	"gocv.io/x/gocv"
+
+	"stillwater/vision/decode"
 )
 
 const errBufLen = 512
@@ -183,4 +186,45 @@ func areaShrink(src gocv.Mat, f int, dst *gocv.Mat) error {
 		return errors.New(C.GoString(&buf[0]))
 	}
 	return nil
+}
+
+// planeGrey writes into dst the grey picture of p's Y plane averaged down
+// to size (see sw_plane_grey).
+func planeGrey(p decode.Planes, size image.Point, dst *gocv.Mat) error {
+	var buf [errBufLen]C.char
+	if C.sw_plane_grey((*C.uchar)(unsafe.Pointer(&p.Y[0])), C.int(p.YStep), C.int(p.Size.X), C.int(p.Size.Y), C.int(size.X), C.int(size.Y), cBool(p.FullRange), unsafe.Pointer(dst.Ptr()), &buf[0], errBufLen) != 0 {
+		return errors.New(C.GoString(&buf[0]))
+	}
+	return nil
+}
+
+// fixedMaps makes OpenCV's fixed-point remap maps m1, m2 from float maps
+// (see sw_fixed_maps).
+func fixedMaps(mapX, mapY gocv.Mat, m1, m2 *gocv.Mat) error {
+	var buf [errBufLen]C.char
+	if C.sw_fixed_maps(unsafe.Pointer(mapX.Ptr()), unsafe.Pointer(mapY.Ptr()), unsafe.Pointer(m1.Ptr()), unsafe.Pointer(m2.Ptr()), &buf[0], errBufLen) != 0 {
+		return errors.New(C.GoString(&buf[0]))
+	}
+	return nil
+}
+
+// yuvRemap remaps p's planes onto the maps' grid and converts the result
+// to BGR in dst (see sw_yuv_remap): the maps are fixed-point pairs (see
+// fixedMaps); gy, gcb, gcr are scratch.
+func yuvRemap(p decode.Planes, mapX, mapY, cmapX, cmapY gocv.Mat, gy, gcb, gcr, dst *gocv.Mat) error {
+	var buf [errBufLen]C.char
+	if C.sw_yuv_remap((*C.uchar)(unsafe.Pointer(&p.Y[0])), C.int(p.YStep), (*C.uchar)(unsafe.Pointer(&p.Cb[0])), C.int(p.CStep[0]), (*C.uchar)(unsafe.Pointer(&p.Cr[0])), C.int(p.CStep[1]),
+		C.int(p.Size.X), C.int(p.Size.Y), C.int(p.ShiftX), C.int(p.ShiftY), cBool(p.FullRange),
+		unsafe.Pointer(mapX.Ptr()), unsafe.Pointer(mapY.Ptr()), unsafe.Pointer(cmapX.Ptr()), unsafe.Pointer(cmapY.Ptr()),
+		unsafe.Pointer(gy.Ptr()), unsafe.Pointer(gcb.Ptr()), unsafe.Pointer(gcr.Ptr()), unsafe.Pointer(dst.Ptr()), &buf[0], errBufLen) != 0 {
+		return errors.New(C.GoString(&buf[0]))
+	}
+	return nil
+}
+
+func cBool(b bool) C.int {
+	if b {
+		return 1
+	}
+	return 0
 }

@@ -301,10 +301,17 @@ func pointsMat(pts []gocv.Point2f) gocv.Mat {
 // CheckDrift registers the camera's latest full-resolution frame to the
 // drift reference.
 func (c *Camera) CheckDrift(d *Drift) (DriftResult, error) {
-	if c.closed || c.frame.Empty() {
+	if c.closed {
 		return DriftResult{}, errors.New("check drift: no frame read yet")
 	}
-	return d.registerMat(c.frame)
+	frame, err := c.bgr()
+	if err != nil {
+		return DriftResult{}, fmt.Errorf("check drift: %w", err)
+	}
+	if frame.Empty() {
+		return DriftResult{}, errors.New("check drift: no frame read yet")
+	}
+	return d.registerMat(frame)
 }
 
 // Close frees the reference features and Mats. Safe to call twice.

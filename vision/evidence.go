@@ -148,16 +148,20 @@ func (c *Camera) keepsPackets() bool { return c.ev != nil && !c.ev.cfg.Snapshots
 // writer. It never waits for the writer. When the stream's packets are
 // kept (copyable, see streamCapture.packets) it buffers pkts, the packets
 // read since the frame before, instead of a JPEG of the frame.
-func (e *evidence) add(frame gocv.Mat, media time.Duration, pkts []decode.Packet, params decode.Params, copyable bool) error {
+func (e *evidence) add(size image.Point, bgr func() (gocv.Mat, error), media time.Duration, pkts []decode.Packet, params decode.Params, copyable bool) error {
 	if e.cfg.SnapshotsOnly {
 		return nil
 	}
 	if copyable {
-		e.addPackets(frame, media, pkts, params)
+		e.addPackets(size, media, pkts, params)
 		return nil
 	}
 	if e.pk != nil { // the stream changed to a codec whose packets are not kept
 		e.restart(nil)
+	}
+	frame, err := bgr()
+	if err != nil {
+		return fmt.Errorf("evidence: %w", err)
 	}
 	data, err := encodeJPEG(frame, e.cfg.Quality)
 	if err != nil {
@@ -189,13 +193,13 @@ func (e *evidence) add(frame gocv.Mat, media time.Duration, pkts []decode.Packet
 }
 
 // addPackets is add for a stream whose packets are kept.
-func (e *evidence) addPackets(frame gocv.Mat, media time.Duration, pkts []decode.Packet, params decode.Params) {
+func (e *evidence) addPackets(size image.Point, media time.Duration, pkts []decode.Packet, params decode.Params) {
 	if e.pk == nil || !e.pk.params.Equal(params) {
 		// First packets, or a reopened stream set up otherwise: its
 		// packets cannot follow the old ones in one file.
 		e.restart(&packetRing{params: params})
 	}
-	e.size = image.Pt(frame.Cols(), frame.Rows())
+	e.size = size
 	kept := e.pk.add(pkts, media, e.cfg.PreRoll, e.fps)
 	if e.path == "" || len(kept) == 0 {
 		return
@@ -328,10 +332,14 @@ func (c *Camera) SaveSnapshot(path string, a Annotation) error {
 	if c.ev == nil {
 		return errors.New("save snapshot: evidence is not enabled (call EnableEvidence)")
 	}
-	if c.frame.Empty() {
+	frame, err := c.bgr()
+	if err != nil {
+		return fmt.Errorf("save snapshot: %w", err)
+	}
+	if frame.Empty() {
 		return errors.New("save snapshot: no frame read yet")
 	}
-	img := c.frame.Clone()
+	img := frame.Clone()
 	annotate(&img, a)
 	if err := c.ev.w.snapshot(snapJob{path: path, img: img, quality: c.ev.cfg.Quality}); err != nil {
 		img.Close()
@@ -346,10 +354,14 @@ func (c *Camera) Snapshot(a Annotation) ([]byte, error) {
 	if c.closed {
 		return nil, errCaptureClosed
 	}
-	if c.frame.Empty() {
+	frame, err := c.bgr()
+	if err != nil {
+		return nil, fmt.Errorf("snapshot: %w", err)
+	}
+	if frame.Empty() {
 		return nil, errors.New("snapshot: no frame read yet")
 	}
-	img := c.frame.Clone()
+	img := frame.Clone()
 	defer img.Close()
 	annotate(&img, a)
 	q := 80

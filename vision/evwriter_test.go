@@ -1,6 +1,7 @@
 package vision
 
 import (
+	"image"
 	"io"
 	"os"
 	"path/filepath"
@@ -84,7 +85,7 @@ func TestRingHoldsOnlyThePreRoll(t *testing.T) {
 		t.Run(tc.name, func(t *testing.T) {
 			e := &evidence{cfg: EvidenceConfig{PreRoll: 2 * time.Second, Quality: 80}, fps: 10}
 			for i := 0; i < 500; i++ {
-				require.NoError(t, e.add(m, time.Duration(i)*tc.step, nil, decode.Params{}, false))
+				require.NoError(t, e.add(image.Pt(m.Cols(), m.Rows()), func() (gocv.Mat, error) { return m, nil }, time.Duration(i)*tc.step, nil, decode.Params{}, false))
 				require.LessOrEqual(t, len(e.ring), e.ringCap())
 			}
 			assert.Equal(t, tc.want, len(e.ring))

@@ -8,6 +8,8 @@ import (
 	"time"
 
 	"gocv.io/x/gocv"
+
+	"stillwater/vision/decode"
 )
 
 // HealthStats are cheap whole-frame statistics for telling a working camera
@@ -121,9 +123,8 @@ func (p *healthProbe) measure(frame gocv.Mat, t time.Duration) HealthStats {
 		p.init()
 	}
 	src := image.Pt(frame.Cols(), frame.Rows())
-	size := src
-	if src.X > healthWidth {
-		size = image.Pt(healthWidth, max(1, int(math.Round(float64(src.Y)*healthWidth/float64(src.X)))))
+	size := probeSize(src)
+	if size != src {
 		p.shrink(frame, src, size)
 	} else {
 		frame.CopyTo(&p.small)
@@ -134,6 +135,39 @@ func (p *healthProbe) measure(frame gocv.Mat, t time.Duration) HealthStats {
 		p.small.CopyTo(&p.gray)
 	}
 	cur := p.gray.ToBytes()
+	p.sizes(src, size)
+	changed, has := p.fineChange(frame, src, size)
+	return p.finish(cur, size, changed, has, t)
+}
+
+// measurePlanes is measure for a frame given as its decoder's planes: the
+// grey probe is the Y plane's, averaged down, and the fine change is
+// judged on the three planes' bytes at the cells' centres.
+func (p *healthProbe) measurePlanes(v decode.Planes, t time.Duration) (HealthStats, error) {
+	if !p.ready {
+		p.init()
+	}
+	src := v.Size
+	size := probeSize(src)
+	if err := planeGrey(v, size, &p.gray); err != nil {
+		return HealthStats{}, fmt.Errorf("picture checks: %w", err)
+	}
+	cur := p.gray.ToBytes()
+	p.sizes(src, size)
+	changed, has := p.fineChangePlanes(v, src, size)
+	return p.finish(cur, size, changed, has, t), nil
+}
+
+// probeSize is the probe's size for frames of size src.
+func probeSize(src image.Point) image.Point {
+	if src.X <= healthWidth {
+		return src
+	}
+	return image.Pt(healthWidth, max(1, int(math.Round(float64(src.Y)*healthWidth/float64(src.X)))))
+}
+
+// sizes sets up the watched cells for frames of size src probed at size.
+func (p *healthProbe) sizes(src, size image.Point) {
 	if p.cellsFor != [2]image.Point{src, size} {
 		p.cells = maskCells(p.mask, src, size)
 		p.cellsFor = [2]image.Point{src, size}
@@ -141,13 +175,17 @@ func (p *healthProbe) measure(frame gocv.Mat, t time.Duration) HealthStats {
 		p.hasPrev = false // a new size: nothing earlier compares
 		p.past = p.past[:0]
 	}
+}
+
+// finish computes the statistics of the grey probe cur and remembers it.
+func (p *healthProbe) finish(cur []byte, size image.Point, changed float64, hasChanged bool, t time.Duration) HealthStats {
 	var st HealthStats
 	st.HasPrev = p.hasPrev && len(p.prev) == len(cur)
 	var prev []byte
 	if st.HasPrev {
 		prev = p.prev
 	}
-	st.Changed, st.HasChanged = p.fineChange(frame, src, size)
+	st.Changed, st.HasChanged = changed, hasChanged
 	st.Mean, st.Spread, st.Diff, st.Correlation = greyStats(cur, prev, size.X, size.Y)
 	// The newest earlier frame at least MotionLag old, dropping the ones
 	// before it: they will never be the newest such frame again.
@@ -215,6 +253,49 @@ func (p *healthProbe) fineChange(frame gocv.Mat, src, size image.Point) (float64
 		return 0, false
 	}
 	return float64(n) / float64(len(p.at)), true
+}
+
+// fineChangePlanes is fineChange for a frame given as its decoder's
+// planes: a cell changed when its centre's Y, Cb or Cr byte did.
+func (p *healthProbe) fineChangePlanes(v decode.Planes, src, size image.Point) (float64, bool) {
+	// atStep −1 marks offsets into the planes; atCh is unused then.
+	const planar = -1
+	if p.atStep != planar || len(p.at) == 0 && len(p.cells) > 0 {
+		sx, sy := float64(src.X)/float64(size.X), float64(src.Y)/float64(size.Y)
+		p.at = p.at[:0]
+		for _, c := range p.cells {
+			x := min(src.X-1, int((float64(c%size.X)+0.5)*sx))
+			y := min(src.Y-1, int((float64(c/size.X)+0.5)*sy))
+			p.at = append(p.at, x, y)
+		}
+		p.atStep, p.atCh = planar, 0
+		p.samples = p.samples[:0]
+	}
+	p.next = p.next[:0]
+	for i := 0; i+1 < len(p.at); i += 2 {
+		x, y := p.at[i], p.at[i+1]
+		cx, cy := x>>v.ShiftX, y>>v.ShiftY
+		yo, bo, ro := y*v.YStep+x, cy*v.CStep[0]+cx, cy*v.CStep[1]+cx
+		if yo >= len(v.Y) || bo >= len(v.Cb) || ro >= len(v.Cr) {
+			p.samples = p.samples[:0]
+			return 0, false
+		}
+		p.next = append(p.next, v.Y[yo], v.Cb[bo], v.Cr[ro])
+	}
+	had := len(p.samples) == len(p.next) && len(p.next) > 0
+	n := 0
+	if had {
+		for i := 0; i+2 < len(p.next); i += 3 {
+			if p.next[i] != p.samples[i] || p.next[i+1] != p.samples[i+1] || p.next[i+2] != p.samples[i+2] {
+				n++
+			}
+		}
+	}
+	p.samples, p.next = p.next, p.samples
+	if !had {
+		return 0, false
+	}
+	return float64(n) / float64(len(p.at)/2), true
 }
 
 // maskCells returns the indices of the cells of a probe-size image whose

@@ -49,7 +49,11 @@ func GrabFrame(uri, transport string, timeout time.Duration) (image.Image, error
 			return nil, fmt.Errorf("grab frame %q: %w", red, err)
 		}
 	}
-	img, err := matImage(cam.frame)
+	frame, err := cam.bgr()
+	if err != nil {
+		return nil, fmt.Errorf("grab frame %q: %w", red, err)
+	}
+	img, err := matImage(frame)
 	if err != nil {
 		return nil, fmt.Errorf("grab frame %q: %w", red, err)
 	}

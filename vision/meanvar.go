@@ -14,6 +14,8 @@ import (
 	"unsafe"
 
 	"gocv.io/x/gocv"
+
+	"stillwater/vision/decode"
 )
 
 // Rectification is the top-down raster of the pool plane the mean–variance
@@ -332,34 +334,42 @@ type meanVar struct {
 	size image.Point // grid cells
 
 	mapX, mapY gocv.Mat // CV_32FC1 maps
-	water      gocv.Mat // CV_8UC1, 255 on watched cells (water and deck)
-	waterArea  int
-	wet        []byte    // 1 on the water's cells
-	edge       []float32 // distance to the nearest unwatched cell, cells
-	deckDepth  []float32 // distance of a deck cell from the nearest water cell, cells; 0 on the water
-	frame      gocv.Mat  // CV_8UC3 remapped frame
-	short      gocv.Mat  // CV_32FC3 short temporal mean
-	mean, vari gocv.Mat  // CV_32FC3 background
-	gain       gocv.Mat  // CV_32FC3 local illumination ratio
-	glint      gocv.Mat  // CV_32FC1 how often each cell starts or stops glinting
-	glintPrev  gocv.Mat  // CV_8UC1 whether each cell glinted in the last frame
-	extra      gocv.Mat  // CV_32FC3 variance a slight shift of the picture adds at structure
-	gx, gy     gocv.Mat  // CV_32FC3 scratch: the mean's gradient
-	score      gocv.Mat  // CV_32FC1
-	contrast   gocv.Mat  // CV_32FC1
-	weight     gocv.Mat  // CV_8UC1 cells the illumination is measured on
-	hold       gocv.Mat  // CV_8UC1 cells not learned
-	lo, hi     gocv.Mat  // CV_8UC1 thresholded scores
-	fg         gocv.Mat  // CV_8UC1 last frame's candidates, dilated
-	labels     gocv.Mat
-	stats      gocv.Mat
-	cents      gocv.Mat
-	kJoin      gocv.Mat
-	kGrow      gocv.Mat
-	kFill      gocv.Mat // probe: keeps only flat areas of decoder grey
-	gray, prev gocv.Mat // probe: grey rectified frames
-	probeF     gocv.Mat // probe: the frame as float
-	scratch    gocv.Mat
+	// fmapX, fmapY are mapX, mapY in OpenCV's fixed-point form and cmapX,
+	// cmapY those onto a frame's chroma planes, made for chroma shifts
+	// cmapFor; py, pcb, pcr the planes remapped (see rectifyPlanes).
+	fmapX, fmapY gocv.Mat
+	cmapX, cmapY gocv.Mat
+	cmapFor      [2]int
+	cmapReady    bool
+	py, pcb, pcr gocv.Mat
+	water        gocv.Mat // CV_8UC1, 255 on watched cells (water and deck)
+	waterArea    int
+	wet          []byte    // 1 on the water's cells
+	edge         []float32 // distance to the nearest unwatched cell, cells
+	deckDepth    []float32 // distance of a deck cell from the nearest water cell, cells; 0 on the water
+	frame        gocv.Mat  // CV_8UC3 remapped frame
+	short        gocv.Mat  // CV_32FC3 short temporal mean
+	mean, vari   gocv.Mat  // CV_32FC3 background
+	gain         gocv.Mat  // CV_32FC3 local illumination ratio
+	glint        gocv.Mat  // CV_32FC1 how often each cell starts or stops glinting
+	glintPrev    gocv.Mat  // CV_8UC1 whether each cell glinted in the last frame
+	extra        gocv.Mat  // CV_32FC3 variance a slight shift of the picture adds at structure
+	gx, gy       gocv.Mat  // CV_32FC3 scratch: the mean's gradient
+	score        gocv.Mat  // CV_32FC1
+	contrast     gocv.Mat  // CV_32FC1
+	weight       gocv.Mat  // CV_8UC1 cells the illumination is measured on
+	hold         gocv.Mat  // CV_8UC1 cells not learned
+	lo, hi       gocv.Mat  // CV_8UC1 thresholded scores
+	fg           gocv.Mat  // CV_8UC1 last frame's candidates, dilated
+	labels       gocv.Mat
+	stats        gocv.Mat
+	cents        gocv.Mat
+	kJoin        gocv.Mat
+	kGrow        gocv.Mat
+	kFill        gocv.Mat // probe: keeps only flat areas of decoder grey
+	gray, prev   gocv.Mat // probe: grey rectified frames
+	probeF       gocv.Mat // probe: the frame as float
+	scratch      gocv.Mat
 
 	ref      *Reference
 	frames   int // frames the model has learned from
@@ -398,7 +408,7 @@ func newMeanVar(cfg DetectorConfig, src image.Point) (*meanVar, error) {
 	d.mapX = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32F)
 	d.mapY = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32F)
 	d.water = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
-	for _, m := range []*gocv.Mat{&d.frame, &d.score, &d.contrast, &d.lo, &d.hi, &d.labels, &d.stats, &d.cents, &d.gray, &d.prev, &d.probeF, &d.scratch} {
+	for _, m := range []*gocv.Mat{&d.frame, &d.score, &d.contrast, &d.lo, &d.hi, &d.labels, &d.stats, &d.cents, &d.gray, &d.prev, &d.probeF, &d.scratch, &d.fmapX, &d.fmapY, &d.cmapX, &d.cmapY, &d.py, &d.pcb, &d.pcr} {
 		*m = gocv.NewMat()
 	}
 	d.short = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
@@ -550,6 +560,39 @@ func (d *meanVar) rectify(frame gocv.Mat) error {
 	return nil
 }
 
+// rectifyPlanes remaps a frame given as its decoder's planes onto the
+// grid: each plane is remapped (the chroma planes by maps scaled to their
+// size, centred as swscale's unscaled conversion treats them: each
+// chroma sample covers its block of luma pixels) and only the grid's
+// cells are converted to BGR. What rectify gives for the same frame
+// converted in full, but for rounding and the chroma's interpolation.
+func (d *meanVar) rectifyPlanes(p decode.Planes) error {
+	if p.Size != d.src {
+		return fmt.Errorf("detect: frame is %dx%d, detector was set up for %dx%d", p.Size.X, p.Size.Y, d.src.X, d.src.Y)
+	}
+	if !d.cmapReady || d.cmapFor != [2]int{p.ShiftX, p.ShiftY} {
+		// A chroma sample k covers luma pixels k·2^s to (k+1)·2^s − 1:
+		// luma x is chroma (x + 0.5) / 2^s − 0.5.
+		fx, fy := 1/float64(int(1)<<p.ShiftX), 1/float64(int(1)<<p.ShiftY)
+		cx, cy := gocv.NewMat(), gocv.NewMat()
+		defer cx.Close()
+		defer cy.Close()
+		d.mapX.ConvertToWithParams(&cx, gocv.MatTypeCV32F, float32(fx), float32(0.5*fx-0.5))
+		d.mapY.ConvertToWithParams(&cy, gocv.MatTypeCV32F, float32(fy), float32(0.5*fy-0.5))
+		if err := fixedMaps(d.mapX, d.mapY, &d.fmapX, &d.fmapY); err != nil {
+			return fmt.Errorf("detect: %w", err)
+		}
+		if err := fixedMaps(cx, cy, &d.cmapX, &d.cmapY); err != nil {
+			return fmt.Errorf("detect: %w", err)
+		}
+		d.cmapFor, d.cmapReady = [2]int{p.ShiftX, p.ShiftY}, true
+	}
+	if err := yuvRemap(p, d.fmapX, d.fmapY, d.cmapX, d.cmapY, &d.py, &d.pcb, &d.pcr, &d.frame); err != nil {
+		return fmt.Errorf("detect: %w", err)
+	}
+	return nil
+}
+
 // smooth blurs the rectified frame by cfg.Smooth.
 func (d *meanVar) smooth() {
 	sigma := d.cfg.Smooth / d.rect.Cell
@@ -672,12 +715,27 @@ func (d *meanVar) paintHold(hold []image.Rectangle) {
 // candidates) whose cells are not learned, so that a still child is never
 // absorbed.
 func (d *meanVar) Detect(frame gocv.Mat, hold []image.Rectangle) ([]Blob, FrameStats, error) {
-	var st FrameStats
 	d.clock.start()
 	if err := d.rectify(frame); err != nil {
-		return nil, st, err
+		return nil, FrameStats{}, err
 	}
 	d.clock.lap(StageRectify)
+	return d.detect(hold)
+}
+
+// DetectPlanes is Detect for a frame given as its decoder's planes.
+func (d *meanVar) DetectPlanes(p decode.Planes, hold []image.Rectangle) ([]Blob, FrameStats, error) {
+	d.clock.start()
+	if err := d.rectifyPlanes(p); err != nil {
+		return nil, FrameStats{}, err
+	}
+	d.clock.lap(StageRectify)
+	return d.detect(hold)
+}
+
+// detect is Detect after the frame is on the grid.
+func (d *meanVar) detect(hold []image.Rectangle) ([]Blob, FrameStats, error) {
+	var st FrameStats
 	if err := poolGlint(d.frame, &d.glint, &d.glintPrev, d.cfg.rate(glintTime), glintLevel); err != nil {
 		return nil, st, err
 	}
@@ -1196,7 +1254,8 @@ func (d *meanVar) Close() error {
 	}
 	d.closed = true
 	for _, m := range []*gocv.Mat{&d.mapX, &d.mapY, &d.water, &d.frame, &d.short, &d.mean, &d.vari, &d.gain, &d.glint, &d.glintPrev, &d.extra, &d.gx, &d.gy, &d.score, &d.contrast,
-		&d.weight, &d.hold, &d.lo, &d.hi, &d.fg, &d.labels, &d.stats, &d.cents, &d.kJoin, &d.kGrow, &d.kFill, &d.gray, &d.prev, &d.probeF, &d.scratch} {
+		&d.weight, &d.hold, &d.lo, &d.hi, &d.fg, &d.labels, &d.stats, &d.cents, &d.kJoin, &d.kGrow, &d.kFill, &d.gray, &d.prev, &d.probeF, &d.scratch,
+		&d.fmapX, &d.fmapY, &d.cmapX, &d.cmapY, &d.py, &d.pcb, &d.pcr} {
 		m.Close()
 	}
 	return nil

@@ -120,6 +120,23 @@ void sw_jpeg_free(unsigned char* p);
 // most 256. Returns 0, or -1 with the message in err.
 int sw_area_shrink(void* src, int f, void* dst, char* err, int errlen);
 
+// On a decoded frame's own planes (planes.cpp). sw_plane_grey writes into
+// dst (a cv::Mat*) the grey picture of a w × h luma plane averaged down to
+// dw × dh: the grey level BGR conversion and then BT.601's grey weights
+// would give. sw_yuv_remap remaps the Y plane by mapX, mapY and the
+// chroma planes (w >> sx by h >> sy, rounded up) by cmapX, cmapY
+// (bilinear, edges replicated) into gy, gcb, gcr, then converts the
+// three into dst, CV_8UC3 BGR of the maps' size. full is 1 for full-range
+// planes. The maps are OpenCV's fixed-point pair (CV_16SC2, CV_16UC1),
+// which sw_fixed_maps makes from float maps (cv::convertMaps): remap
+// converts float maps to that pair for every call, the same way. All
+// return 0, or -1 with the message in err.
+int sw_fixed_maps(void* mapX, void* mapY, void* m1, void* m2, char* err, int errlen);
+int sw_plane_grey(const unsigned char* y, int step, int w, int h, int dw, int dh, int full, void* dst, char* err, int errlen);
+int sw_yuv_remap(const unsigned char* y, int ystep, const unsigned char* cb, int cbstep, const unsigned char* cr, int crstep,
+                 int w, int h, int sx, int sy, int full, void* mapX, void* mapY, void* cmapX, void* cmapY,
+                 void* gy, void* gcb, void* gcr, void* dst, char* err, int errlen);
+
 #ifdef __cplusplus
 }
 #endif

@@ -139,6 +139,14 @@ func (c *streamCapture) retrieve(dst *gocv.Mat) (bool, error) {
 	return true, nil
 }
 
+// planes shows the frame last grabbed in the decoder's own planes.
+func (c *streamCapture) planes() (decode.Planes, bool) {
+	if c.s == nil {
+		return decode.Planes{}, false
+	}
+	return c.s.Planes()
+}
+
 // get answers the properties the Camera asks for as OpenCV 4.6's FFmpeg
 // capture does: the nominal rate; the declared frame count, else duration
 // × rate; the current frame's time in ms from the stream's start, 0 for

@@ -28,12 +28,14 @@ struct SwDecoder {
 	AVFormatContext *fmt;
 	AVCodecContext *ctx;
 	AVPacket *pkt;
-	AVFrame *frame;
+	AVFrame *frame; // where the decoder writes
+	AVFrame *cur;   // the latest frame decoded: kept through a failed read
 	struct SwsContext *sws;
 	struct sws_key sws_for; // what sws was made for
 	int stream;
 	int flushing; // the demuxer is done: the decoder is being drained
-	int have;     // frame holds a decoded frame
+	int have;     // cur holds a decoded frame
+	int fresh;    // the latest sw_dec_next gave cur
 	int64_t deadline; // av_gettime_relative() after which I/O is cut off; 0: none
 	int64_t errors;
 	// The video stream's packets read by the latest sw_dec_next, oldest
@@ -160,7 +162,8 @@ SwDecoder *sw_dec_open(const char *url, const char *opts, int threads, int64_t t
 	}
 	d->pkt = av_packet_alloc();
 	d->frame = av_frame_alloc();
-	if (!d->pkt || !d->frame) {
+	d->cur = av_frame_alloc();
+	if (!d->pkt || !d->frame || !d->cur) {
 		snprintf(err, errlen, "out of memory");
 		goto bad;
 	}
@@ -185,7 +188,7 @@ void sw_dec_info(SwDecoder *d, int *width, int *height, double *fps, double *dur
 int sw_dec_next(SwDecoder *d, int64_t timeout_us, char *err, int errlen) {
 	int r;
 	set_deadline(d, timeout_us);
-	d->have = 0;
+	d->fresh = 0;
 	unkeep(d);
 	for (;;) {
 		r = avcodec_receive_frame(d->ctx, d->frame);
@@ -193,7 +196,10 @@ int sw_dec_next(SwDecoder *d, int64_t timeout_us, char *err, int errlen) {
 			if (d->frame->decode_error_flags || (d->frame->flags & AV_FRAME_FLAG_CORRUPT)) {
 				d->errors++;
 			}
+			av_frame_unref(d->cur);
+			av_frame_move_ref(d->cur, d->frame);
 			d->have = 1;
+			d->fresh = 1;
 			d->deadline = 0;
 			return 1;
 		}
@@ -239,8 +245,8 @@ int sw_dec_next(SwDecoder *d, int64_t timeout_us, char *err, int errlen) {
 
 double sw_dec_pts(SwDecoder *d) {
 	const AVStream *st = d->fmt->streams[d->stream];
-	int64_t t = d->frame->best_effort_timestamp;
-	if (!d->have || t == AV_NOPTS_VALUE) {
+	int64_t t = d->cur->best_effort_timestamp;
+	if (!d->fresh || t == AV_NOPTS_VALUE) {
 		return NAN;
 	}
 	if (st->start_time != AV_NOPTS_VALUE) {
@@ -249,7 +255,7 @@ double sw_dec_pts(SwDecoder *d) {
 	return t * av_q2d(st->time_base);
 }
 
-int sw_dec_key(SwDecoder *d) { return d->have && d->frame->key_frame; }
+int sw_dec_key(SwDecoder *d) { return d->fresh && d->cur->key_frame; }
 
 // ticks rescales t from the stream's time base to 1/90000 s from its
 // start time; SW_NO_TIME stays.
@@ -295,7 +301,7 @@ int64_t sw_dec_errors(SwDecoder *d) { return d->errors; }
 // (yuvj*) format, which it rewrites to another format internally, and
 // logs a warning each time; MJPEG cameras send that format.
 int sw_dec_bgr(SwDecoder *d, uint8_t *dst, int dst_w, int dst_h, int dst_step, char *err, int errlen) {
-	AVFrame *f = d->frame;
+	AVFrame *f = d->cur;
 	if (!d->have) {
 		snprintf(err, errlen, "no frame decoded");
 		return -1;
@@ -321,6 +327,36 @@ int sw_dec_bgr(SwDecoder *d, uint8_t *dst, int dst_w, int dst_h, int dst_step, c
 	return 0;
 }
 
+int sw_dec_planes(SwDecoder *d, SwPlanes *p) {
+	const AVFrame *f = d->cur;
+	if (!d->have) {
+		return 0;
+	}
+	const AVPixFmtDescriptor *desc = av_pix_fmt_desc_get(f->format);
+	if (!desc || desc->nb_components != 3 || !(desc->flags & AV_PIX_FMT_FLAG_PLANAR) ||
+	    (desc->flags & (AV_PIX_FMT_FLAG_RGB | AV_PIX_FMT_FLAG_PAL | AV_PIX_FMT_FLAG_BE | AV_PIX_FMT_FLAG_ALPHA))) {
+		return 0;
+	}
+	for (int i = 0; i < 3; i++) {
+		if (desc->comp[i].plane != i || desc->comp[i].depth != 8 || desc->comp[i].step != 1 || desc->comp[i].shift != 0 || !f->data[i]) {
+			return 0;
+		}
+	}
+	p->width = f->width;
+	p->height = f->height;
+	p->shift_x = desc->log2_chroma_w;
+	p->shift_y = desc->log2_chroma_h;
+	// swscale, which the BGR conversion uses, counts only the yuvj formats
+	// as full range, whatever the frame's colour_range says.
+	p->full = f->format == AV_PIX_FMT_YUVJ420P || f->format == AV_PIX_FMT_YUVJ422P ||
+	          f->format == AV_PIX_FMT_YUVJ444P || f->format == AV_PIX_FMT_YUVJ440P || f->format == AV_PIX_FMT_YUVJ411P;
+	for (int i = 0; i < 3; i++) {
+		p->data[i] = f->data[i];
+		p->step[i] = f->linesize[i];
+	}
+	return p->step[0] > 0 && p->step[1] > 0 && p->step[2] > 0;
+}
+
 void sw_dec_close(SwDecoder *d) {
 	if (!d) {
 		return;
@@ -332,6 +368,7 @@ void sw_dec_close(SwDecoder *d) {
 	free(d->kept);
 	sws_freeContext(d->sws);
 	av_frame_free(&d->frame);
+	av_frame_free(&d->cur);
 	av_packet_free(&d->pkt);
 	avcodec_free_context(&d->ctx);
 	avformat_close_input(&d->fmt);

@@ -196,6 +196,56 @@ func (s *Stream) BGR(dst *gocv.Mat, size image.Point) error {
 	return nil
 }
 
+// Planes is the current frame in the decoder's own 8-bit Y, Cb and Cr
+// planes, before any conversion. Y holds Size.Y rows of YStep bytes; Cb
+// and Cr hold the chroma rows, (Size >> Shift) rounded up, of CStep[i]
+// bytes. FullRange is true for the full-range (JPEG) formats, which the
+// BGR conversion treats as such; the others are converted as the
+// limited-range BT.601 that swscale assumes. The slices are the decoder's
+// memory: valid until the next Next or Close, and never to be written.
+type Planes struct {
+	Y, Cb, Cr      []byte
+	YStep          int
+	CStep          [2]int
+	Size           image.Point
+	ShiftX, ShiftY int
+	FullRange      bool
+}
+
+// ChromaSize is the size of the chroma planes.
+func (p Planes) ChromaSize() image.Point {
+	return image.Pt((p.Size.X+1<<p.ShiftX-1)>>p.ShiftX, (p.Size.Y+1<<p.ShiftY-1)>>p.ShiftY)
+}
+
+// Planes returns the current frame's planes; false when the frame is not
+// 8-bit planar YUV (or has no frame yet) or is not of the stream's size,
+// when only BGR gives it.
+func (s *Stream) Planes() (Planes, bool) {
+	if s.d == nil {
+		return Planes{}, false
+	}
+	var c C.SwPlanes
+	if C.sw_dec_planes(s.d, &c) == 0 {
+		return Planes{}, false
+	}
+	p := Planes{
+		YStep:     int(c.step[0]),
+		CStep:     [2]int{int(c.step[1]), int(c.step[2])},
+		Size:      image.Pt(int(c.width), int(c.height)),
+		ShiftX:    int(c.shift_x),
+		ShiftY:    int(c.shift_y),
+		FullRange: c.full != 0,
+	}
+	if p.Size != s.info.Size {
+		return Planes{}, false
+	}
+	ch := p.ChromaSize()
+	p.Y = unsafe.Slice((*byte)(unsafe.Pointer(c.data[0])), p.YStep*p.Size.Y)
+	p.Cb = unsafe.Slice((*byte)(unsafe.Pointer(c.data[1])), p.CStep[0]*ch.Y)
+	p.Cr = unsafe.Slice((*byte)(unsafe.Pointer(c.data[2])), p.CStep[1]*ch.Y)
+	return p, true
+}
+
 // Ticks is the clock of packet times: 90 000 a second.
 const Ticks = C.SW_TICKS
 

@@ -34,6 +34,20 @@ int64_t sw_dec_errors(SwDecoder *d);
 // or -1 with err written.
 int sw_dec_bgr(SwDecoder *d, uint8_t *dst, int dst_w, int dst_h, int dst_step, char *err, int errlen);
 
+// The current frame's 8-bit Y, Cb and Cr planes as the decoder left them:
+// the chroma planes are width >> shift_x by height >> shift_y, rounded up;
+// full is 1 for the full-range (JPEG) formats. The pointers stay valid
+// until the next sw_dec_next. sw_dec_planes returns 1, or 0 when the
+// frame is not in such a format (or there is none).
+typedef struct {
+	const uint8_t *data[3];
+	int step[3];
+	int width, height;
+	int shift_x, shift_y;
+	int full;
+} SwPlanes;
+int sw_dec_planes(SwDecoder *d, SwPlanes *p);
+
 // Packets: the video stream's packets the latest sw_dec_next read, oldest
 // first (several when the decoder held frames back, none when it only
 // drained). Times are in ticks of 1/SW_TICKS s from the stream's start
