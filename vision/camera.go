@@ -139,20 +139,22 @@ type Camera struct {
 	kind    sourceKind
 	cap     backend
 	det     frameDetector
-	frame   gocv.Mat // latest full-resolution BGR frame, unless planar
+	frame   gocv.Mat // latest full-resolution frame in BGR (when planar, once converted)
 	scratch gocv.Mat // read target; swapped with frame on success, so a failed read keeps the last frame
 	primed  bool     // frame holds an unprocessed first frame
-	// planar is true when the latest frame is only in the decoder's
-	// planes (view), not yet in frame: the picture checks and the
-	// detector read the planes, and the frame is converted to BGR only
-	// when something needs it whole (see bgr). bgrOnly turns this off.
-	planar   bool
-	view     decode.Planes
-	bgrOnly  bool
-	fps      float64
-	declared int // frames the file declares, 0 when unknown
-	index    int
-	passBase int // index of the first frame of the current file pass
+	// planar is true when the latest frame is in the decoder's planes
+	// (view): the picture checks and the detector read them, and the
+	// frame is converted to BGR into frame only when something needs it
+	// whole (see bgr), after which converted is set. bgrOnly turns this
+	// off.
+	planar    bool
+	converted bool
+	view      decode.Planes
+	bgrOnly   bool
+	fps       float64
+	declared  int // frames the file declares, 0 when unknown
+	index     int
+	passBase  int // index of the first frame of the current file pass
 	// passOffset is the media time a looped file's current pass starts at.
 	passOffset time.Duration
 	started    time.Time
@@ -571,7 +573,7 @@ func (c *Camera) take() (bool, error) {
 	if ps, ok := c.cap.(planeSource); ok && !c.bgrOnly {
 		if _, ok := c.det.(planeDetector); ok {
 			if v, ok := ps.planes(); ok {
-				c.view, c.planar = v, true
+				c.view, c.planar, c.converted = v, true, false
 				return true, nil
 			}
 		}
@@ -586,9 +588,11 @@ func (c *Camera) take() (bool, error) {
 }
 
 // bgr returns the latest frame in BGR, converting it first when it is
-// only in the decoder's planes.
+// only in the decoder's planes. The planes stay the frame the detector
+// reads: the BGR conversion is made for the evidence and the checks that
+// need a whole frame, never fed to the detector in their place.
 func (c *Camera) bgr() (gocv.Mat, error) {
-	if c.planar {
+	if c.planar && !c.converted {
 		ok, err := c.cap.retrieve(&c.scratch)
 		if err != nil {
 			return c.frame, fmt.Errorf("convert frame: %w", err)
@@ -597,7 +601,7 @@ func (c *Camera) bgr() (gocv.Mat, error) {
 			return c.frame, errors.New("convert frame: no frame")
 		}
 		c.frame, c.scratch = c.scratch, c.frame
-		c.planar = false
+		c.converted = true
 	}
 	return c.frame, nil
 }
@@ -609,7 +613,7 @@ func (c *Camera) closeCapture() {
 		return
 	}
 	if c.planar {
-		c.bgr()
+		c.bgr() // on failure the frame before stays
 		c.planar = false
 	}
 	c.cap.Close()
