@@ -250,3 +250,52 @@ func BenchmarkCameraPlanes(b *testing.B) {
 		}
 	}
 }
+
+// TestCameraPlanesKeepTheFrame checks the frame a camera searching the
+// decoder's planes hands out whole: whenever asked (here every fifth
+// frame), the BGR frame must be the frame just searched, byte for byte
+// what the decoder converts for a second reader of the same clip; and
+// once the capture is closed (a reconnect, a loop) the last frame must
+// still be there, converted before the decoder went.
+func TestCameraPlanesKeepTheFrame(t *testing.T) {
+	clip, truth := stageClip(t, image.Pt(640, 360))
+	cam, err := OpenCamera(SourceConfig{URI: clip}, rectifiedCostConfig(t, truth))
+	require.NoError(t, err)
+	defer cam.Close()
+	ref, err := decode.Open(clip, decode.Options{})
+	require.NoError(t, err)
+	defer ref.Close()
+	want := gocv.NewMat()
+	defer want.Close()
+	planar := 0
+	for i := 0; i < 60; i++ {
+		_, err := cam.Next(nil)
+		require.NoError(t, err)
+		_, err = ref.Next()
+		require.NoError(t, err)
+		if cam.planar {
+			planar++
+		}
+		if i%5 != 4 {
+			continue
+		}
+		require.NoError(t, ref.BGR(&want, image.Point{}))
+		got, err := cam.bgr()
+		require.NoError(t, err)
+		_, _, most := diffStats(t, want, got)
+		require.Zero(t, most, "frame %d: the whole frame handed out is not the frame searched", i)
+	}
+	// The first frame comes converted from the open; every other one
+	// stays in the planes.
+	require.Equal(t, 59, planar)
+	_, err = cam.Next(nil)
+	require.NoError(t, err)
+	_, err = ref.Next()
+	require.NoError(t, err)
+	require.NoError(t, ref.BGR(&want, image.Point{}))
+	cam.closeCapture()
+	got, err := cam.bgr()
+	require.NoError(t, err)
+	_, _, most := diffStats(t, want, got)
+	require.Zero(t, most, "the last frame did not outlive its decoder")
+}
