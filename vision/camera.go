@@ -388,11 +388,18 @@ func (c *Camera) Next(hold []image.Rectangle) (Result, error) {
 // trusted yet, and ends the probing when it is.
 func (c *Camera) probe(r Result) (Result, error) {
 	r.Rejoining = true
-	frame, err := c.bgr()
-	if err != nil {
-		return r, fmt.Errorf("frame %d: %w", r.Index, err)
+	var (
+		p   probeStats
+		err error
+	)
+	if pd, ok := c.det.(planeDetector); ok && c.planar {
+		p, err = pd.probePlanes(c.view)
+	} else {
+		var frame gocv.Mat
+		if frame, err = c.bgr(); err == nil {
+			p, err = c.det.probe(frame)
+		}
 	}
-	p, err := c.det.probe(frame)
 	if err != nil {
 		return r, fmt.Errorf("frame %d: %w", r.Index, err)
 	}
@@ -564,6 +571,7 @@ type planeSource interface {
 // planeDetector is a detector that reads a frame's planes.
 type planeDetector interface {
 	DetectPlanes(p decode.Planes, hold []image.Rectangle) ([]Blob, FrameStats, error)
+	probePlanes(p decode.Planes) (probeStats, error)
 }
 
 // take makes the frame just grabbed the latest: left in the decoder's

@@ -1185,10 +1185,24 @@ func (d *meanVar) sourceBox(cells image.Rectangle) (image.Rectangle, []Point) {
 // decoder fill grey, change since the previous probed frame, and the
 // share of water that differs from the model under the local light.
 func (d *meanVar) probe(frame gocv.Mat) (probeStats, error) {
-	st := probeStats{Change: -1, Mismatch: -1}
 	if err := d.rectify(frame); err != nil {
-		return st, err
+		return probeStats{Change: -1, Mismatch: -1}, err
 	}
+	return d.probeRectified()
+}
+
+// probePlanes is probe for a frame given as its decoder's planes, so that
+// the probing compares what the model learned from.
+func (d *meanVar) probePlanes(p decode.Planes) (probeStats, error) {
+	if err := d.rectifyPlanes(p); err != nil {
+		return probeStats{Change: -1, Mismatch: -1}, err
+	}
+	return d.probeRectified()
+}
+
+// probeRectified is probe once the frame is on the grid.
+func (d *meanVar) probeRectified() (probeStats, error) {
+	st := probeStats{Change: -1, Mismatch: -1}
 	if d.waterArea == 0 {
 		return st, nil
 	}

@@ -299,3 +299,40 @@ func TestCameraPlanesKeepTheFrame(t *testing.T) {
 	_, _, most := diffStats(t, want, got)
 	require.Zero(t, most, "the last frame did not outlive its decoder")
 }
+
+// TestCameraPlanesRejoin reconnects a mean–variance camera that searches
+// the decoder's planes to the same picture (the clip opened again, its
+// first frames the same water): the probing after the reconnect must
+// compare the planes with what the model learned from them and keep the
+// background, as it does for frames converted in full.
+func TestCameraPlanesRejoin(t *testing.T) {
+	clip, truth := stageClip(t, image.Pt(640, 360))
+	for _, bgrOnly := range []bool{true, false} {
+		cam, err := OpenCamera(SourceConfig{URI: clip}, rectifiedCostConfig(t, truth))
+		require.NoError(t, err)
+		cam.bgrOnly = bgrOnly
+		for i := 0; i < 80; i++ { // the empty pool, before the child comes at about 6 s
+			_, err := cam.Next(nil)
+			require.NoError(t, err)
+		}
+		_, err = cam.Reconnect()
+		require.NoError(t, err)
+		var out string
+		probedPlanes := 0
+		for i := 0; i < 130 && out == ""; i++ {
+			r, err := cam.Next(nil)
+			require.NoError(t, err)
+			if r.Rejoining && cam.planar {
+				probedPlanes++
+			}
+			out = r.Rejoined
+		}
+		cam.Close()
+		require.Equal(t, RejoinKept, out, "planes %v: the same picture after a reconnect", !bgrOnly)
+		if bgrOnly {
+			require.Zero(t, probedPlanes)
+		} else {
+			require.Positive(t, probedPlanes, "no frame was probed in its planes")
+		}
+	}
+}
