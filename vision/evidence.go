@@ -144,10 +144,11 @@ func (c *Camera) EnableEvidence(cfg EvidenceConfig) error {
 // packets: it keeps evidence, and its clips are not another stream's.
 func (c *Camera) keepsPackets() bool { return c.ev != nil && !c.ev.cfg.SnapshotsOnly }
 
-// add buffers frame and, while a clip is recorded, hands it to the
-// writer. It never waits for the writer. When the stream's packets are
-// kept (copyable, see streamCapture.packets) it buffers pkts, the packets
-// read since the frame before, instead of a JPEG of the frame.
+// add buffers the frame (of size; bgr gives it whole, and is called only
+// when a JPEG of it is made) and, while a clip is recorded, hands it to
+// the writer. It never waits for the writer. When the stream's packets
+// are kept (copyable, see streamCapture.packets) it buffers pkts, the
+// packets read since the frame before, instead of a JPEG of the frame.
 func (e *evidence) add(size image.Point, bgr func() (gocv.Mat, error), media time.Duration, pkts []decode.Packet, params decode.Params, copyable bool) error {
 	if e.cfg.SnapshotsOnly {
 		return nil
