@@ -1,6 +1,7 @@
 package vision
 
 import (
+	"bytes"
 	"fmt"
 	"image"
 	"math"
@@ -235,16 +236,20 @@ func (p *healthProbe) fineChange(frame gocv.Mat, src, size image.Point) (float64
 		}
 		p.next = append(p.next, data[o:o+ch]...)
 	}
+	return p.changedShare(ch)
+}
+
+// changedShare compares the samples just taken (next, ch bytes a cell)
+// with the frame before's, keeps them for the next frame, and returns the
+// share of cells with any byte changed; false when there was nothing to
+// compare with.
+func (p *healthProbe) changedShare(ch int) (float64, bool) {
 	had := len(p.samples) == len(p.next) && len(p.next) > 0
-	n := 0
+	n, cells := 0, len(p.next)/ch
 	if had {
-		for i := 0; i < len(p.at); i++ {
-			a, b := p.next[i*ch:i*ch+ch], p.samples[i*ch:i*ch+ch]
-			for k := range a {
-				if a[k] != b[k] {
-					n++
-					break
-				}
+		for i := 0; i+ch <= len(p.next); i += ch {
+			if !bytes.Equal(p.next[i:i+ch], p.samples[i:i+ch]) {
+				n++
 			}
 		}
 	}
@@ -252,7 +257,7 @@ func (p *healthProbe) fineChange(frame gocv.Mat, src, size image.Point) (float64
 	if !had {
 		return 0, false
 	}
-	return float64(n) / float64(len(p.at)), true
+	return float64(n) / float64(cells), true
 }
 
 // fineChangePlanes is fineChange for a frame given as its decoder's
@@ -282,20 +287,7 @@ func (p *healthProbe) fineChangePlanes(v decode.Planes, src, size image.Point) (
 		}
 		p.next = append(p.next, v.Y[yo], v.Cb[bo], v.Cr[ro])
 	}
-	had := len(p.samples) == len(p.next) && len(p.next) > 0
-	n := 0
-	if had {
-		for i := 0; i+2 < len(p.next); i += 3 {
-			if p.next[i] != p.samples[i] || p.next[i+1] != p.samples[i+1] || p.next[i+2] != p.samples[i+2] {
-				n++
-			}
-		}
-	}
-	p.samples, p.next = p.next, p.samples
-	if !had {
-		return 0, false
-	}
-	return float64(n) / float64(len(p.at)/2), true
+	return p.changedShare(3)
 }
 
 // maskCells returns the indices of the cells of a probe-size image whose

@@ -53,9 +53,12 @@ int sw_plane_grey(const unsigned char* y, int step, int w, int h, int dw, int dh
             cv::resize(src, dst, cv::Size(dw, dh), 0, 0, cv::INTER_AREA);
         }
         if (!full) {
-            cv::Mat lut(1, 256, CV_8UC1);
-            for (int i = 0; i < 256; i++) lut.at<uchar>(i) = static_cast<uchar>(lumaLevel(i, 0));
-            cv::LUT(dst, lut, dst);
+            uchar lut[256];
+            for (int i = 0; i < 256; i++) lut[i] = static_cast<uchar>(lumaLevel(i, 0));
+            for (int r = 0; r < dst.rows; r++) {
+                uchar* d = dst.ptr<uchar>(r);
+                for (int c = 0; c < dst.cols; c++) d[c] = lut[d[c]];
+            }
         }
         return 0;
     } catch (const std::exception& e) {
