@@ -143,6 +143,16 @@ func (j *judge) raised(id int) {
 	}
 }
 
+// age returns how long the judge has seen track id: from its first
+// candidate on the water to its latest.
+func (j *judge) age(id int) time.Duration {
+	h := j.tracks[id]
+	if h == nil || len(h.times) == 0 {
+		return 0
+	}
+	return h.times[len(h.times)-1] - h.born
+}
+
 // summary returns the medians of a track's features over the window, the
 // number of candidates they are of, and its speed over the window, m/s.
 func (j *judge) summary(id int) (vision.Features, int, float64) {
@@ -210,8 +220,11 @@ func (j *judge) eligible(id int) (bool, string) {
 	r := j.rules
 	at := h.at[len(h.at)-1]
 	why := j.unlikeBody(f, speed)
-	if age := h.times[len(h.times)-1] - h.born; why == "" && age > lateAfter && f.Half < lateArea*r.MinArea {
+	if age := j.age(id); why == "" && age > lateAfter && f.Half < lateArea*r.MinArea {
 		why = fmt.Sprintf("seen for %.1f s and only now at a child's size (%.3f m² at half contrast); a track this old must show %.3f m²: floating debris", age.Seconds(), f.Half, lateArea*r.MinArea)
+	}
+	if age := j.age(id); why == "" && age > lateAfter && f.Area < lateWhole {
+		why = fmt.Sprintf("seen for %.1f s and its whole outline only %.3f m²; a track this old must show %.3f m², a child floating face down: floating debris", age.Seconds(), f.Area, lateWhole)
 	}
 	if why == "" {
 		if id2, d, ok := j.companionOf(id, at); ok {
@@ -387,6 +400,18 @@ const (
 	lateAfter = 3 * time.Second
 	lateArea  = 1.35
 )
+
+// lateWhole is the least whole outline (Features.Area), m², of a track
+// seen for longer than lateAfter before it may first alarm: a child
+// floating face down, the body a drowning child lies in, in
+// config.MinBodyArea's derivation from the WHO growth standards (0.74 m ×
+// 0.22 m × π/4 = 0.13 m²). A child that does not raise within seconds of
+// getting in is one the water hid at first; by the time it shows, it
+// shows its body. Measured on the whole tuning set: the five children
+// that raised more than 3 s after their track began had outlines of
+// 0.36-0.72 m²; three of the four false alarms of tracks older than that
+// (drifting leaves, 4.9-71 s old) 0.053-0.078 m², the fourth 0.139 m².
+const lateWhole = 0.13
 
 // beyond reports whether at lies away from the camera behind a body seen
 // on the deck at deck, within beyondAngle of the line from the point

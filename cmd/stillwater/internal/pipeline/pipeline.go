@@ -283,7 +283,7 @@ func (p *Processor) message(r vision.Result, dec alert.Decision) (Message, error
 		if dec.Event == "start" {
 			p.judge.raised(o.Track)
 			f, n, speed := p.judge.summary(o.Track)
-			p.log.Debug("track raised an alarm", append([]any{"track", o.Track, "dwell", dec.Dwell, "x_m", Round3(o.X), "y_m", Round3(o.Y),
+			p.log.Debug("track raised an alarm", append([]any{"track", o.Track, "dwell", dec.Dwell, "tracked", p.judge.age(o.Track), "x_m", Round3(o.X), "y_m", Round3(o.Y),
 				"hits", o.Hits, "speed_mps", Round3(speed), "candidates", n}, featureArgs(f)...)...)
 			p.metrics.Alarm()
 			if p.Evidence != nil {
