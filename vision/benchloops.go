@@ -4,6 +4,7 @@ import (
 	"context"
 	"fmt"
 	"image"
+	"time"
 
 	"gocv.io/x/gocv"
 )
@@ -17,6 +18,15 @@ import (
 // the FFmpeg backend into BGR frames, as Camera does, and returns how many
 // it read.
 func DecodeLoop(ctx context.Context, path string, max int) (int, error) {
+	return DecodeLoopAt(ctx, path, max, 0)
+}
+
+// DecodeLoopAt is DecodeLoop reading frame n no sooner than n/fps after
+// the first, as a camera delivers them; fps ≤ 0 reads as fast as it
+// decodes. Paced, what the machine does between frames (other processes,
+// its own idling) meets the decoder's working set cold each frame, as it
+// meets the daemon's.
+func DecodeLoopAt(ctx context.Context, path string, max int, fps float64) (int, error) {
 	cp, err := openCapture(path, capFFmpeg, 0, 0)
 	if err != nil {
 		return 0, fmt.Errorf("decode loop %s: %w", path, err)
@@ -25,7 +35,13 @@ func DecodeLoop(ctx context.Context, path string, max int) (int, error) {
 	m := gocv.NewMat()
 	defer m.Close()
 	n := 0
+	start := time.Now()
 	for (max <= 0 || n < max) && ctx.Err() == nil {
+		if fps > 0 {
+			if wait := time.Until(start.Add(time.Duration(float64(n) / fps * float64(time.Second)))); wait > 0 {
+				time.Sleep(wait)
+			}
+		}
 		ok, err := cp.read(&m)
 		if err != nil {
 			return n, fmt.Errorf("decode loop %s: frame %d: %w", path, n, err)

@@ -4,6 +4,7 @@ import (
 	"context"
 	"path/filepath"
 	"testing"
+	"time"
 
 	"github.com/stretchr/testify/assert"
 	"github.com/stretchr/testify/require"
@@ -33,6 +34,14 @@ func TestBenchLoops(t *testing.T) {
 	require.NoError(t, err)
 	assert.Equal(t, 20, frames)
 	assert.Zero(t, blobs)
+
+	// Paced at 50 fps, the tenth frame is read no sooner than 9/50 s
+	// after the first.
+	start := time.Now()
+	n, err = DecodeLoopAt(context.Background(), clip, 10, 50)
+	require.NoError(t, err)
+	assert.Equal(t, 10, n)
+	assert.GreaterOrEqual(t, time.Since(start), 180*time.Millisecond)
 
 	_, err = DecodeLoop(context.Background(), "/nonexistent.mp4", 0)
 	assert.ErrorContains(t, err, "/nonexistent.mp4")

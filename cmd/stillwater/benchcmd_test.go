@@ -32,22 +32,22 @@ func TestBenchRefusesBadFlags(t *testing.T) {
 
 // TestBenchReports runs the bench briefly on two cameras of a small
 // generated clip, each with an evidence stream of another size copied
-// without decoding, and checks what it reports: the table, and a JSON
+// without decoding, with the paced yardstick, and checks what it reports: the table, and a JSON
 // line whose figures add up. Nothing here is a speed target: the figures
 // are printed, not asserted.
 func TestBenchReports(t *testing.T) {
 	if testing.Short() {
-		t.Skip("renders two clips and runs the daemon for 8 s")
+		t.Skip("renders two clips, runs the daemon for 8 s and decodes 12 s of clip in real time")
 	}
 	var out, errOut bytes.Buffer
 	err := run(context.Background(), []string{"bench", "-cameras", "2", "-size", "320x180", "-evidence-size", "480x270", "-fps", "10",
-		"-clip-seconds", "12", "-duration", "8s", "-warmup", "3s", "-repeat", "1", "-data-dir", t.TempDir()}, &out, &errOut)
+		"-clip-seconds", "12", "-duration", "8s", "-warmup", "3s", "-repeat", "1", "-paced", "-data-dir", t.TempDir()}, &out, &errOut)
 	require.NoError(t, err, errOut.String())
 	lines := strings.Split(strings.TrimSpace(out.String()), "\n")
 	var r bench.Result
 	require.NoError(t, json.Unmarshal([]byte(lines[len(lines)-1]), &r), "the last line is JSON")
 	table := out.String()
-	for _, want := range []string{"2 camera(s), 320x180 at 10 fps", "evidence stream: 480x270", "frame to publish", "CPU", "memory", "same clip alone", "daemon", "OpenCV pool of 1 thread(s) (opencv_threads 1)"} {
+	for _, want := range []string{"2 camera(s), 320x180 at 10 fps", "evidence stream: 480x270", "frame to publish", "CPU", "memory", "same clip alone", "daemon", "OpenCV pool of 1 thread(s) (opencv_threads 1)", "decode alone at 10 fps"} {
 		assert.Contains(t, table, want)
 	}
 
@@ -73,6 +73,8 @@ func TestBenchReports(t *testing.T) {
 	assert.Positive(t, r.FFmpegDecodeMsPerFrame)
 	assert.Positive(t, r.NaiveMsPerFrame)
 	assert.InDelta(t, r.DaemonMsPerFrame/r.DecodeMsPerFrame, r.RatioDecode, 0.01)
+	assert.Positive(t, r.PacedDecodeMsPerFrame, "-paced decodes the clip alone at its rate")
+	assert.InDelta(t, r.DaemonMsPerFrame/r.PacedDecodeMsPerFrame, r.RatioPacedDecode, 0.01)
 	refdata.Report(t, "bench (2 cameras 320x180 10 fps + 480x270 evidence, 5 s window): %.2f cores, p99 frame to publish %.0f ms over %d messages, %.0f MB resident, daemon %.2f× decode alone",
 		r.Cores, r.LatencyP99ms, r.LatencySamples, r.RSSFinalMB, r.RatioDecode)
 }
