@@ -522,7 +522,7 @@ func DefaultHealth() HealthConfig {
 		UniformSpread:    2.5,
 		StillLevel:       0.05,
 		FineLevel:        0.01,
-		FineWindow:       3 * time.Second,
+		FineWindow:       2 * time.Second,
 		FrozenShare:      0.6,
 		FrozenWindow:     1500 * time.Millisecond,
 		NoiseCorrelation: 0.35,

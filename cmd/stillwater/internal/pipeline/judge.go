@@ -223,9 +223,6 @@ func (j *judge) eligible(id int) (bool, string) {
 	if age := j.age(id); why == "" && age > lateAfter && f.Half < lateArea*r.MinArea {
 		why = fmt.Sprintf("seen for %.1f s and only now at a child's size (%.3f m² at half contrast); a track this old must show %.3f m²: floating debris", age.Seconds(), f.Half, lateArea*r.MinArea)
 	}
-	if age := j.age(id); why == "" && age > lateAfter && f.Area < lateWhole {
-		why = fmt.Sprintf("seen for %.1f s and its whole outline only %.3f m²; a track this old must show %.3f m², a child floating face down: floating debris", age.Seconds(), f.Area, lateWhole)
-	}
 	if why == "" {
 		if id2, d, ok := j.companionOf(id, at); ok {
 			why = fmt.Sprintf("%.1f m from target %d, already raised: its shadow or wake", d, id2)
@@ -400,18 +397,6 @@ const (
 	lateAfter = 3 * time.Second
 	lateArea  = 1.35
 )
-
-// lateWhole is the least whole outline (Features.Area), m², of a track
-// seen for longer than lateAfter before it may first alarm: a child
-// floating face down, the body a drowning child lies in, in
-// config.MinBodyArea's derivation from the WHO growth standards (0.74 m ×
-// 0.22 m × π/4 = 0.13 m²). A child that does not raise within seconds of
-// getting in is one the water hid at first; by the time it shows, it
-// shows its body. Measured on the whole tuning set: the five children
-// that raised more than 3 s after their track began had outlines of
-// 0.36-0.72 m²; three of the four false alarms of tracks older than that
-// (drifting leaves, 4.9-71 s old) 0.053-0.078 m², the fourth 0.139 m².
-const lateWhole = 0.13
 
 // beyond reports whether at lies away from the camera behind a body seen
 // on the deck at deck, within beyondAngle of the line from the point
