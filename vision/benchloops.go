@@ -23,9 +23,9 @@ func DecodeLoop(ctx context.Context, path string, max int) (int, error) {
 
 // DecodeLoopAt is DecodeLoop reading frame n no sooner than n/fps after
 // the first, as a camera delivers them; fps ≤ 0 reads as fast as it
-// decodes. Paced, what the machine does between frames (other processes,
-// its own idling) meets the decoder's working set cold each frame, as it
-// meets the daemon's.
+// decodes. Paced, the decoder works as a camera's does, a frame at a time
+// with the machine idle in between, which costs more a frame than a tight
+// loop (stillwater bench -paced measures how much).
 func DecodeLoopAt(ctx context.Context, path string, max int, fps float64) (int, error) {
 	cp, err := openCapture(path, capFFmpeg, 0, 0)
 	if err != nil {

@@ -32,9 +32,9 @@ func TestBenchRefusesBadFlags(t *testing.T) {
 
 // TestBenchReports runs the bench briefly on two cameras of a small
 // generated clip, each with an evidence stream of another size copied
-// without decoding, with the paced yardstick, and checks what it reports: the table, and a JSON
-// line whose figures add up. Nothing here is a speed target: the figures
-// are printed, not asserted.
+// without decoding, with the paced yardstick, and checks what it
+// reports: the table, and a JSON line whose figures add up. Nothing here
+// is a speed target: the figures are printed, not asserted.
 func TestBenchReports(t *testing.T) {
 	if testing.Short() {
 		t.Skip("renders two clips, runs the daemon for 8 s and decodes 12 s of clip in real time")
