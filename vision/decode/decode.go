@@ -165,11 +165,11 @@ func (s *Stream) Next() (Frame, error) {
 	return f, nil
 }
 
-// BGR converts the frame decoded last (kept through a failed Next) to packed BGR at size (the frame's own
-// size when size is zero), into dst, reallocated only when its size or
-// type differ. At the frame's own size the pixels are those of OpenCV's
-// capture; smaller, they are averaged over areas, as OpenCV's INTER_AREA
-// does.
+// BGR converts the frame decoded last (kept through a failed Next) to
+// packed BGR at size (the frame's own size when size is zero), into dst,
+// reallocated only when its size or type differ. At the frame's own size
+// the pixels are those of OpenCV's capture; smaller, they are averaged
+// over areas, as OpenCV's INTER_AREA does.
 func (s *Stream) BGR(dst *gocv.Mat, size image.Point) error {
 	if s.d == nil {
 		return errors.New("decode: stream closed")
