@@ -9,6 +9,8 @@ import (
 	"net/http"
 	"net/http/httptest"
 	"net/textproto"
+	"os/exec"
+	"path/filepath"
 	"stillwater/vision/refdata"
 	"strings"
 	"testing"
@@ -284,6 +286,54 @@ func BenchmarkNext(b *testing.B) {
 				}
 			}
 			b.ReportMetric(float64(b.Elapsed())/1e6/float64(b.N), "ms/frame")
+		})
+	}
+}
+
+// TestCameraDeblock: a Camera decodes with the codec's deblocking filter
+// only when SourceConfig.Deblock asks. On opencv-doc's vtest.avi (people
+// walking) re-encoded to H.264, the frames of a Camera with Deblock are
+// bit for bit OpenCV's capture's (the reference, a full decode); without
+// it they are not.
+func TestCameraDeblock(t *testing.T) {
+	src, err := refdata.Path("vtest.avi")
+	require.NoError(t, err)
+	clip := filepath.Join(t.TempDir(), "clip.mp4")
+	b, err := exec.Command("ffmpeg", "-nostdin", "-loglevel", "error", "-y", "-i", src, "-frames:v", "30",
+		"-c:v", "libx264", "-g", "15", "-bf", "0", "-pix_fmt", "yuv420p", clip).CombinedOutput()
+	require.NoError(t, err, "ffmpeg (deploy/setup installs it): %s", b)
+	for _, deblock := range []bool{true, false} {
+		t.Run(fmt.Sprintf("deblock=%v", deblock), func(t *testing.T) {
+			ref, err := gocv.VideoCaptureFile(clip)
+			require.NoError(t, err)
+			defer ref.Close()
+			cam, err := OpenCamera(SourceConfig{URI: clip, Deblock: deblock}, DetectorConfig{ProcessWidth: 160})
+			require.NoError(t, err)
+			defer cam.Close()
+			want, diff := gocv.NewMat(), gocv.NewMat()
+			defer want.Close()
+			defer diff.Close()
+			frames, same := 0, 0
+			for ref.Read(&want) && !want.Empty() {
+				_, err := cam.Next(nil)
+				require.NoError(t, err, "frame %d", frames)
+				got, err := cam.bgr()
+				require.NoError(t, err)
+				gocv.AbsDiff(want, got, &diff)
+				flat := diff.Reshape(1, 0)
+				if gocv.CountNonZero(flat) == 0 {
+					same++
+				}
+				flat.Close()
+				frames++
+			}
+			require.Equal(t, 30, frames)
+			if deblock {
+				assert.Equal(t, frames, same, "frames identical to OpenCV's")
+			} else {
+				assert.Less(t, same, frames/2, "frames identical to OpenCV's")
+			}
+			report(t, "vtest h264, deblock %v: %d of %d frames identical to OpenCV's", deblock, same, frames)
 		})
 	}
 }

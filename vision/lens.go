@@ -36,7 +36,8 @@ func GrabFrame(uri, transport string, timeout time.Duration) (image.Image, error
 		}
 		return matImage(m)
 	}
-	cam, err := OpenCamera(SourceConfig{URI: uri, Transport: transport, OpenTimeout: timeout, ReadTimeout: timeout}, DetectorConfig{})
+	// Deblocked: this frame is for a person to click corners on.
+	cam, err := OpenCamera(SourceConfig{URI: uri, Transport: transport, OpenTimeout: timeout, ReadTimeout: timeout, Deblock: true}, DetectorConfig{})
 	if err != nil {
 		return nil, fmt.Errorf("grab frame: %w", err)
 	}

@@ -74,9 +74,10 @@ func (c *streamCapture) packets() (pk []decode.Packet, p decode.Params, ok bool)
 }
 
 // openStream opens uri for the Camera. transport is the RTSP transport
-// ("tcp", "udp" or "" for FFmpeg's choice); the timeouts bound the open
-// and each read (0: defaultStreamTimeout).
-func openStream(uri string, transport string, openTimeout, readTimeout time.Duration) (*streamCapture, error) {
+// ("tcp", "udp" or "" for FFmpeg's choice); skipDeblock leaves out the
+// codec's deblocking filter (decode.Options.SkipDeblock); the timeouts
+// bound the open and each read (0: defaultStreamTimeout).
+func openStream(uri string, transport string, skipDeblock bool, openTimeout, readTimeout time.Duration) (*streamCapture, error) {
 	if openTimeout <= 0 {
 		openTimeout = defaultStreamTimeout
 	}
@@ -84,7 +85,7 @@ func openStream(uri string, transport string, openTimeout, readTimeout time.Dura
 		readTimeout = defaultStreamTimeout
 	}
 	// The Camera's errors name the source, redacted; so do these.
-	o := decode.Options{OpenTimeout: openTimeout, ReadTimeout: readTimeout, Name: Redact(uri)}
+	o := decode.Options{SkipDeblock: skipDeblock, OpenTimeout: openTimeout, ReadTimeout: readTimeout, Name: Redact(uri)}
 	if transport != "" {
 		o.Demuxer = map[string]string{"rtsp_transport": transport}
 	}

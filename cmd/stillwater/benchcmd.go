@@ -37,6 +37,7 @@ func runBench(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	fs.IntVar(&o.Repeat, "repeat", 3, "`runs` of each yardstick loop; the median is reported")
 	fs.IntVar(&o.OpenCVThreads, "opencv-threads", config.DefaultOpenCVThreads, "OpenCV's worker pool `size` for the run, as the config's opencv_threads (0: one per CPU)")
 	fs.BoolVar(&o.Loops, "loops", true, "run the yardsticks (decode alone, ffmpeg decode, plain OpenCV loop) after the cameras")
+	fs.BoolVar(&o.Deblock, "deblock", false, "cameras decode with the codec's deblocking filter, as the camera setting deblock: true")
 	fs.BoolVar(&o.Paced, "paced", false, "with -loops, also decode the clip alone at its frame rate, as the cameras read it (adds the clip's length to the run)")
 	fs.StringVar(&o.DataDir, "data-dir", "", "data `directory` of the daemon (default: a temporary one, removed after)")
 	fs.StringVar(&o.Cache, "cache", "", "render cache `directory` (default: testdata/cache/synth in the checkout, else the user cache)")

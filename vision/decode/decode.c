@@ -106,7 +106,7 @@ static void fail(char *err, int errlen, const char *what, int code) {
 static pthread_once_t log_once = PTHREAD_ONCE_INIT;
 static void log_errors_only(void) { av_log_set_level(AV_LOG_ERROR); }
 
-SwDecoder *sw_dec_open(const char *url, const char *opts, int threads, int64_t timeout_us, char *err, int errlen) {
+SwDecoder *sw_dec_open(const char *url, const char *opts, int threads, int skip_deblock, int64_t timeout_us, char *err, int errlen) {
 	pthread_once(&log_once, log_errors_only);
 	SwDecoder *d = calloc(1, sizeof *d);
 	AVDictionary *dict = NULL;
@@ -156,6 +156,7 @@ SwDecoder *sw_dec_open(const char *url, const char *opts, int threads, int64_t t
 	}
 	d->ctx->thread_count = threads > 0 ? threads : 0;
 	d->ctx->pkt_timebase = d->fmt->streams[d->stream]->time_base;
+	if (skip_deblock) d->ctx->skip_loop_filter = AVDISCARD_ALL;
 	if ((r = avcodec_open2(d->ctx, codec, NULL)) < 0) {
 		fail(err, errlen, "open the decoder", r);
 		goto bad;

@@ -8,9 +8,11 @@ typedef struct SwDecoder SwDecoder;
 
 // Opens url (a file or a network address). opts holds demuxer options as
 // "key=value" pairs separated by '\n'; threads is the decoder's thread
-// count (1: decode on the caller's thread only); timeout_us bounds the
-// open (0: none). On failure returns NULL and writes why into err.
-SwDecoder *sw_dec_open(const char *url, const char *opts, int threads, int64_t timeout_us, char *err, int errlen);
+// count (1: decode on the caller's thread only); skip_deblock set leaves
+// out the codec's in-loop deblocking filter (H.264, HEVC); timeout_us
+// bounds the open (0: none). On failure returns NULL and writes why into
+// err.
+SwDecoder *sw_dec_open(const char *url, const char *opts, int threads, int skip_deblock, int64_t timeout_us, char *err, int errlen);
 
 // Stream facts: frame size, nominal frame rate (0 when unknown), duration
 // in seconds (0 when unknown), the frame count the container declares (0

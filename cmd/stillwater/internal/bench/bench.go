@@ -57,7 +57,10 @@ type Options struct {
 	Paced bool
 	// OpenCVThreads is OpenCV's pool size for the whole run, the daemon's
 	// opencv_threads (1 by default; 0 is OpenCV's default).
-	OpenCVThreads  int
+	OpenCVThreads int
+	// Deblock is the cameras' deblock setting: decode with the codec's
+	// deblocking filter (false: skipped, the default).
+	Deblock        bool
 	DataDir, Cache string
 }
 
@@ -121,6 +124,7 @@ type Result struct {
 
 	CPUs          int        `json:"cpus"`
 	OpenCVThreads int        `json:"opencv_threads"`
+	Deblock       bool       `json:"deblock"`
 	CPUModel      string     `json:"cpu_model"`
 	LoadAvg       [3]float64 `json:"load_avg_start"`
 	LoadEnd       [3]float64 `json:"load_avg_end"`
@@ -196,7 +200,7 @@ type benchCamera struct {
 // after it.
 func Run(ctx context.Context, o Options, log *slog.Logger, progress io.Writer) (Result, error) {
 	res := Result{Cameras: o.Cameras, FPS: o.Fps, Codec: o.Codec, DurationS: o.Duration.Seconds(), WindowS: (o.Duration - o.Warmup).Seconds(),
-		CPUs: runtime.NumCPU(), OpenCVThreads: o.OpenCVThreads, CPUModel: cpuModel(), LoadAvg: loadAvg(), Go: runtime.Version(), Faults: map[string]int{}}
+		CPUs: runtime.NumCPU(), OpenCVThreads: o.OpenCVThreads, Deblock: o.Deblock, CPUModel: cpuModel(), LoadAvg: loadAvg(), Go: runtime.Version(), Faults: map[string]int{}}
 	cam, clip, evClip, clipFrames, err := benchClips(ctx, o, progress)
 	if err != nil {
 		return res, err
@@ -235,6 +239,7 @@ func Run(ctx context.Context, o Options, log *slog.Logger, progress io.Writer) (
 	for i := 0; i < o.Cameras; i++ {
 		c := cam
 		c.ID = fmt.Sprintf("cam%d", i+1)
+		c.Deblock = o.Deblock
 		cfg.Cameras = append(cfg.Cameras, c)
 	}
 	if err := cfg.Validate(); err != nil {
@@ -621,7 +626,7 @@ func (r Result) Print(w io.Writer) {
 	}
 	fmt.Fprintf(w, "machine: %d CPUs (%s), %s, OpenCV pool of %s; load average %.2f %.2f %.2f at the start, %.2f %.2f %.2f at the end\n",
 		r.CPUs, r.CPUModel, r.Go, poolLine(r.OpenCVThreads), r.LoadAvg[0], r.LoadAvg[1], r.LoadAvg[2], r.LoadEnd[0], r.LoadEnd[1], r.LoadEnd[2])
-	fmt.Fprintf(w, "run: %.0f s, measured over the last %.1f s\n\n", r.DurationS, r.WindowS)
+	fmt.Fprintf(w, "run: %.0f s, measured over the last %.1f s; the cameras decode %s\n\n", r.DurationS, r.WindowS, deblockLine(r.Deblock))
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
 	fmt.Fprintln(tw, "camera\tframes/s\tprocessed\tdropped\tframe age max")
 	for _, c := range r.PerCamera {
@@ -663,6 +668,13 @@ func (r Result) Print(w io.Writer) {
 }
 
 // poolLine names OpenCV's pool size as opencv_threads sets it.
+func deblockLine(on bool) string {
+	if on {
+		return "with the deblocking filter (deblock true)"
+	}
+	return "without the deblocking filter (deblock false)"
+}
+
 func poolLine(n int) string {
 	if n == 0 {
 		return "one thread per CPU (opencv_threads 0)"

@@ -128,7 +128,11 @@ func Describe(w io.Writer, path string, cfg config.Config, now time.Time) error 
 		if transport == "" {
 			transport = "backend default"
 		}
-		fmt.Fprintf(w, "  %s  %s (transport %s)\n", cam.ID, vision.Redact(cam.Source), transport)
+		decoded := "deblocking filter skipped"
+		if cam.Deblock {
+			decoded = "deblocked"
+		}
+		fmt.Fprintf(w, "  %s  %s (transport %s; %s)\n", cam.ID, vision.Redact(cam.Source), transport, decoded)
 		if err := describeStreams(w, cfg, cam); err != nil {
 			return err
 		}

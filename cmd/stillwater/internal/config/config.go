@@ -105,6 +105,9 @@ type CameraConfig struct {
 	Realtime bool `yaml:"realtime"`
 	// Loop plays a file source again from the start when it ends.
 	Loop bool `yaml:"loop"`
+	// Deblock decodes source with the codec's deblocking filter, as a
+	// player does; by default it is skipped (see vision.SourceConfig).
+	Deblock bool `yaml:"deblock"`
 	// FrameTimeout is how long without a frame, while armed, before the
 	// camera is reported lost.
 	FrameTimeout Duration `yaml:"frame_timeout"`

@@ -33,6 +33,7 @@ func TestParseConfigMergesDefaults(t *testing.T) {
 	assert.Equal(t, MinBodyArea, d.MinArea)
 	assert.Equal(t, "127.0.0.1:9310", cfg.HTTP.Listen)
 	assert.Equal(t, "stillwater", cfg.Bus.Prefix)
+	assert.False(t, cfg.Cameras[0].Deblock, "the deblocking filter is skipped unless asked for")
 }
 
 func TestParseConfigErrors(t *testing.T) {
@@ -44,6 +45,7 @@ func TestParseConfigErrors(t *testing.T) {
 		{"three corners", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1]]}]`, "corners: 3 given"},
 		{"negative area", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]], detect: {min_area_m2: -1}}]`, "min_area_m2 -1"},
 		{"bad duration", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]], detect: {persist: soon}}]`, `"soon" is not a duration`},
+		{"deblock not a bool", `cameras: [{id: p, source: a.avi, deblock: sometimes, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]]}]`, "line 1: cannot unmarshal !!str `sometimes` into bool"},
 		{"dotted id", `cameras: [{id: a.b, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1],[0,1]]}]`, "cameras[0].id"},
 	}
 	for _, tt := range tests {

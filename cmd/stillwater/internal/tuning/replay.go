@@ -137,7 +137,7 @@ func ReplayClip(ctx context.Context, cam config.CameraConfig, prefix string, w i
 	if err != nil {
 		return st, err
 	}
-	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source}, dc)
+	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source, Deblock: cam.Deblock}, dc)
 	if err != nil {
 		return st, err
 	}

@@ -287,7 +287,7 @@ func LearnReference(ctx context.Context, cam config.CameraConfig, transport stri
 		return vision.Reference{}, nil, fmt.Errorf("detect.method %s keeps no empty-pool reference", cam.Detect.Method)
 	}
 	dc.MeanVar.WarmUp = learn
-	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source, Transport: transport, OpenTimeout: timeout, ReadTimeout: timeout}, dc)
+	vc, err := vision.OpenCamera(vision.SourceConfig{URI: cam.Source, Transport: transport, OpenTimeout: timeout, ReadTimeout: timeout, Deblock: cam.Deblock}, dc)
 	if err != nil {
 		return vision.Reference{}, nil, err
 	}

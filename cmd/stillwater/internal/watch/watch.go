@@ -466,7 +466,7 @@ func (w *Camera) checkDrift(ctx context.Context, st pipeline.DriftStatus) {
 
 func (w *Camera) sourceConfig() vision.SourceConfig {
 	rt := w.frameTimeout()
-	return vision.SourceConfig{URI: w.Cam.Source, Transport: w.Cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.Cam.Loop, Realtime: w.Cam.Realtime, Gate: &w.gate}
+	return vision.SourceConfig{URI: w.Cam.Source, Transport: w.Cam.Transport, OpenTimeout: 5 * time.Second, ReadTimeout: rt, Loop: w.Cam.Loop, Realtime: w.Cam.Realtime, Deblock: w.Cam.Deblock, Gate: &w.gate}
 }
 
 // sleep waits d or until ctx ends; it reports whether ctx is still live.
