@@ -49,7 +49,7 @@ type SourceConfig struct {
 	// deblocking filter, as a player does. Left false, the filter is
 	// skipped (decode.Options.SkipDeblock): it smooths block edges a
 	// detector averaging the picture into cells does not see, and costs
-	// about a fifth of the decoding. Copied packets (the pre-roll and the
+	// 14–22 % of the decoding (see decode.Options.SkipDeblock). Copied packets (the pre-roll and the
 	// alarm clips) are untouched either way; snapshots and the live view
 	// show the frames as decoded.
 	Deblock bool

@@ -216,7 +216,12 @@ func (e *lineError) Error() string { return fmt.Sprintf("line %d: %s", e.line, e
 var (
 	yamlLine    = regexp.MustCompile(`^line (\d+): (.*)$`)
 	yamlUnknown = regexp.MustCompile(`^field (\S+) not found in type config\.(\w+)$`)
+	yamlType    = regexp.MustCompile("^cannot unmarshal !!\\w+ `(.*)` into (bool|int|float64)$")
 )
+
+// typeWants says what a setting of a Go type must be, as an installer
+// reads it.
+var typeWants = map[string]string{"bool": "true or false", "int": "a whole number", "float64": "a number"}
 
 // yamlError rewrites the decoder's message into one naming the line and,
 // for an unknown key, the section it was found in.
@@ -234,6 +239,9 @@ func yamlError(err error) error {
 	text := m[2]
 	if u := yamlUnknown.FindStringSubmatch(text); u != nil {
 		text = fmt.Sprintf("unknown key %q in %s; check its spelling and indentation against deploy/stillwater.example.yaml", u[1], sectionName(u[2]))
+	}
+	if t := yamlType.FindStringSubmatch(text); t != nil {
+		text = fmt.Sprintf("%q is not %s, which the key on this line takes", t[1], typeWants[t[2]])
 	}
 	return &lineError{line: line, msg: text}
 }

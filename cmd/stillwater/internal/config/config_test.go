@@ -45,7 +45,8 @@ func TestParseConfigErrors(t *testing.T) {
 		{"three corners", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1]]}]`, "corners: 3 given"},
 		{"negative area", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]], detect: {min_area_m2: -1}}]`, "min_area_m2 -1"},
 		{"bad duration", `cameras: [{id: p, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]], detect: {persist: soon}}]`, `"soon" is not a duration`},
-		{"deblock not a bool", `cameras: [{id: p, source: a.avi, deblock: sometimes, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]]}]`, "line 1: cannot unmarshal !!str `sometimes` into bool"},
+		{"deblock not a bool", `cameras: [{id: p, source: a.avi, deblock: sometimes, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[100,0],[100,100],[0,100]]}]`, `line 1: "sometimes" is not true or false`},
+		{"length not a number", "data_dir: /x\ncameras:\n  - id: p\n    source: a.avi\n    pool: {length_m: long, width_m: 4}\n", `line 5: "long" is not a number`},
 		{"dotted id", `cameras: [{id: a.b, source: a.avi, pool: {length_m: 8, width_m: 4}, corners: [[0,0],[1,0],[1,1],[0,1]]}]`, "cameras[0].id"},
 	}
 	for _, tt := range tests {
@@ -101,7 +102,7 @@ func TestOpenCVThreads(t *testing.T) {
 		{name: "four per CPU", key: fmt.Sprintf("opencv_threads: %d", most), want: most},
 		{name: "negative", key: "opencv_threads: -1", err: fmt.Sprintf("opencv_threads: -1; want 0 (OpenCV's default, one per CPU) to %d", most)},
 		{name: "too many", key: fmt.Sprintf("opencv_threads: %d", most+1), err: fmt.Sprintf("opencv_threads: %d; want 0", most+1)},
-		{name: "not a number", key: "opencv_threads: two", err: "line 1: cannot unmarshal"},
+		{name: "not a number", key: "opencv_threads: two", err: `line 1: "two" is not a whole number`},
 	}
 	for _, tt := range tests {
 		t.Run(tt.name, func(t *testing.T) {
