@@ -224,7 +224,8 @@ var (
 var typeWants = map[string]string{"bool": "true or false", "int": "a whole number", "float64": "a number"}
 
 // yamlError rewrites the decoder's message into one naming the line and,
-// for an unknown key, the section it was found in.
+// for an unknown key, the section it was found in; for a value of the
+// wrong type, what the key takes.
 func yamlError(err error) error {
 	var te *yaml.TypeError
 	msg := strings.TrimPrefix(err.Error(), "yaml: ")
