@@ -348,6 +348,7 @@ type meanVar struct {
 	edge         []float32 // distance to the nearest unwatched cell, cells
 	deckDepth    []float32 // distance of a deck cell from the nearest water cell, cells; 0 on the water
 	frame        gocv.Mat  // CV_8UC3 remapped frame
+	blurred      gocv.Mat  // CV_8UC3 smooth's output, swapped with frame (a blur in place would copy the frame each time)
 	short        gocv.Mat  // CV_32FC3 short temporal mean
 	mean, vari   gocv.Mat  // CV_32FC3 background
 	gain         gocv.Mat  // CV_32FC3 local illumination ratio
@@ -360,6 +361,7 @@ type meanVar struct {
 	weight       gocv.Mat  // CV_8UC1 cells the illumination is measured on
 	hold         gocv.Mat  // CV_8UC1 cells not learned
 	lo, hi       gocv.Mat  // CV_8UC1 thresholded scores
+	thresh       gocv.Mat  // CV_32FC1 a score thresholded, before it becomes lo or hi (converting in place would allocate both each frame)
 	fg           gocv.Mat  // CV_8UC1 last frame's candidates, dilated
 	labels       gocv.Mat
 	stats        gocv.Mat
@@ -408,7 +410,7 @@ func newMeanVar(cfg DetectorConfig, src image.Point) (*meanVar, error) {
 	d.mapX = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32F)
 	d.mapY = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32F)
 	d.water = gocv.NewMatWithSize(h, w, gocv.MatTypeCV8U)
-	for _, m := range []*gocv.Mat{&d.frame, &d.score, &d.contrast, &d.lo, &d.hi, &d.labels, &d.stats, &d.cents, &d.gray, &d.prev, &d.probeF, &d.scratch, &d.fmapX, &d.fmapY, &d.cmapX, &d.cmapY, &d.py, &d.pcb, &d.pcr} {
+	for _, m := range []*gocv.Mat{&d.frame, &d.blurred, &d.thresh, &d.score, &d.contrast, &d.lo, &d.hi, &d.labels, &d.stats, &d.cents, &d.gray, &d.prev, &d.probeF, &d.scratch, &d.fmapX, &d.fmapY, &d.cmapX, &d.cmapY, &d.py, &d.pcb, &d.pcr} {
 		*m = gocv.NewMat()
 	}
 	d.short = gocv.NewMatWithSize(h, w, gocv.MatTypeCV32FC3)
@@ -600,7 +602,8 @@ func (d *meanVar) smooth() {
 		return
 	}
 	k := 2*int(math.Ceil(2*sigma)) + 1
-	gocv.GaussianBlur(d.frame, &d.frame, image.Pt(k, k), sigma, sigma, gocv.BorderReplicate)
+	gocv.GaussianBlur(d.frame, &d.blurred, image.Pt(k, k), sigma, sigma, gocv.BorderReplicate)
+	d.frame, d.blurred = d.blurred, d.frame
 }
 
 func cErr(rc C.int, buf *[errBufLen]C.char, what string) error {
@@ -797,8 +800,8 @@ func (d *meanVar) detect(hold []image.Rectangle) ([]Blob, FrameStats, error) {
 		d.fg.SetTo(gocv.NewScalar(0, 0, 0, 0))
 		return nil, st, nil
 	}
-	gocv.Threshold(d.score, &d.lo, float32(d.cfg.Low), 255, gocv.ThresholdBinary)
-	d.lo.ConvertTo(&d.lo, gocv.MatTypeCV8U)
+	gocv.Threshold(d.score, &d.thresh, float32(d.cfg.Low), 255, gocv.ThresholdBinary)
+	d.thresh.ConvertTo(&d.lo, gocv.MatTypeCV8U)
 	if d.waterArea > 0 {
 		st.ForegroundFraction = float64(gocv.CountNonZero(d.lo)) / float64(d.waterArea)
 	}
@@ -1229,8 +1232,8 @@ func (d *meanVar) probeRectified() (probeStats, error) {
 		if err := d.update(d.probeF, probeNoise, 0, 0, false); err != nil {
 			return st, err
 		}
-		gocv.Threshold(d.score, &d.hi, float32(d.cfg.Low), 255, gocv.ThresholdBinary)
-		d.hi.ConvertTo(&d.hi, gocv.MatTypeCV8U)
+		gocv.Threshold(d.score, &d.thresh, float32(d.cfg.Low), 255, gocv.ThresholdBinary)
+		d.thresh.ConvertTo(&d.hi, gocv.MatTypeCV8U)
 		st.Mismatch = float64(gocv.CountNonZero(d.hi)) / area
 	}
 	return st, nil
@@ -1267,7 +1270,7 @@ func (d *meanVar) Close() error {
 		return nil
 	}
 	d.closed = true
-	for _, m := range []*gocv.Mat{&d.mapX, &d.mapY, &d.water, &d.frame, &d.short, &d.mean, &d.vari, &d.gain, &d.glint, &d.glintPrev, &d.extra, &d.gx, &d.gy, &d.score, &d.contrast,
+	for _, m := range []*gocv.Mat{&d.mapX, &d.mapY, &d.water, &d.frame, &d.blurred, &d.thresh, &d.short, &d.mean, &d.vari, &d.gain, &d.glint, &d.glintPrev, &d.extra, &d.gx, &d.gy, &d.score, &d.contrast,
 		&d.weight, &d.hold, &d.lo, &d.hi, &d.fg, &d.labels, &d.stats, &d.cents, &d.kJoin, &d.kGrow, &d.kFill, &d.gray, &d.prev, &d.probeF, &d.scratch,
 		&d.fmapX, &d.fmapY, &d.cmapX, &d.cmapY, &d.py, &d.pcb, &d.pcr} {
 		m.Close()
