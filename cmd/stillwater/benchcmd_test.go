@@ -47,7 +47,7 @@ func TestBenchReports(t *testing.T) {
 	var r bench.Result
 	require.NoError(t, json.Unmarshal([]byte(lines[len(lines)-1]), &r), "the last line is JSON")
 	table := out.String()
-	for _, want := range []string{"2 camera(s), 320x180 at 10 fps", "evidence stream: 480x270", "frame to publish", "CPU", "memory", "same clip alone", "daemon", "OpenCV pool of 1 thread(s) (opencv_threads 1)", "decode alone at 10 fps"} {
+	for _, want := range []string{"2 camera(s), 320x180 at 10 fps", "evidence stream: 480x270", "frame to publish", "CPU", "memory", "same clip alone", "daemon", "pipeline alone", "OpenCV pool of 1 thread(s) (opencv_threads 1)", "decode alone at 10 fps"} {
 		assert.Contains(t, table, want)
 	}
 
@@ -73,6 +73,10 @@ func TestBenchReports(t *testing.T) {
 	assert.Positive(t, r.FFmpegDecodeMsPerFrame)
 	assert.Positive(t, r.NaiveMsPerFrame)
 	assert.InDelta(t, r.DaemonMsPerFrame/r.DecodeMsPerFrame, r.RatioDecode, 0.01)
+	assert.Equal(t, r.LoopFrames, r.PipelineFrames, "the pipeline yardstick searches every frame of the clip the others decode")
+	assert.Positive(t, r.PipelineMsPerFrame)
+	assert.InDelta(t, r.PipelineMsPerFrame/r.DecodeMsPerFrame, r.RatioPipelineDecode, 0.01)
+	assert.InDelta(t, r.PipelineMsPerFrame/r.NaiveMsPerFrame, r.RatioPipelineNaive, 0.01)
 	assert.Positive(t, r.PacedDecodeMsPerFrame, "-paced decodes the clip alone at its rate")
 	assert.InDelta(t, r.DaemonMsPerFrame/r.PacedDecodeMsPerFrame, r.RatioPacedDecode, 0.01)
 	refdata.Report(t, "bench (2 cameras 320x180 10 fps + 480x270 evidence, 5 s window): %.2f cores, p99 frame to publish %.0f ms over %d messages, %.0f MB resident, daemon %.2f× decode alone",

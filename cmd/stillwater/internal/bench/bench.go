@@ -180,6 +180,10 @@ type Result struct {
 	DecodeMsPerFrame       float64 `json:"decode_cpu_ms_per_frame,omitempty"`
 	FFmpegDecodeMsPerFrame float64 `json:"ffmpeg_decode_cpu_ms_per_frame,omitempty"`
 	NaiveMsPerFrame        float64 `json:"naive_cpu_ms_per_frame,omitempty"`
+	PipelineMsPerFrame     float64 `json:"pipeline_cpu_ms_per_frame,omitempty"`
+	PipelineFrames         int     `json:"pipeline_frames,omitempty"`
+	RatioPipelineDecode    float64 `json:"pipeline_over_decode,omitempty"`
+	RatioPipelineNaive     float64 `json:"pipeline_over_naive,omitempty"`
 	PacedDecodeMsPerFrame  float64 `json:"paced_decode_cpu_ms_per_frame,omitempty"`
 	RatioPacedDecode       float64 `json:"daemon_over_paced_decode,omitempty"`
 	LoopFrames             int     `json:"loop_frames,omitempty"`
@@ -265,7 +269,7 @@ func Run(ctx context.Context, o Options, log *slog.Logger, progress io.Writer) (
 		return res, err
 	}
 	if o.Loops {
-		if err := benchLoops(ctx, o, clip, clipFrames, &res, progress); err != nil {
+		if err := benchLoops(ctx, o, clip, clipFrames, cfg.Cameras[0], &res, progress); err != nil {
 			return res, err
 		}
 	}
@@ -554,13 +558,19 @@ func percentile(sorted []float64, p float64) float64 {
 }
 
 // benchLoops runs the yardsticks over the clip, repeat times each, and
-// keeps the medians of CPU milliseconds per frame.
-func benchLoops(ctx context.Context, o Options, clip string, frames int, res *Result, progress io.Writer) error {
+// keeps the medians of CPU milliseconds per frame. The last of them is
+// the camera's own pipeline (cam) over the clip as fast as it decodes,
+// which is what `stillwater replay` does: the same work per frame as the
+// daemon's, without its pacing, bus, evidence and HTTP, measured as the
+// yardsticks are.
+func benchLoops(ctx context.Context, o Options, clip string, frames int, cam config.CameraConfig, res *Result, progress io.Writer) error {
 	if frames <= 0 {
 		frames = int(math.Round(res.FPS * o.ClipSeconds))
 	}
 	fmt.Fprintf(progress, "yardsticks over %s (%d frames, %d runs each) ...\n", filepath.Base(clip), frames, o.Repeat)
-	var dec, ff, naive []float64
+	var dec, ff, naive, pipe []float64
+	cam.Source = clip
+	quiet := slog.New(slog.NewTextHandler(io.Discard, nil))
 	for i := 0; i < o.Repeat; i++ {
 		c0 := selfCPU()
 		n, err := vision.DecodeLoop(ctx, clip, frames)
@@ -584,6 +594,14 @@ func benchLoops(ctx context.Context, o Options, clip string, frames int, res *Re
 			return err
 		}
 		naive = append(naive, (selfCPU()-c0)*1000/float64(max(n, 1)))
+
+		c0 = selfCPU()
+		st, err := tuning.ReplayClip(ctx, cam, "stillwater", io.Discard, quiet)
+		if err != nil {
+			return fmt.Errorf("bench: the pipeline over the clip: %w", err)
+		}
+		pipe = append(pipe, (selfCPU()-c0)*1000/float64(max(st.Frames, 1)))
+		res.PipelineFrames = st.Frames
 	}
 	if o.Paced {
 		fmt.Fprintf(progress, "the clip decoded alone at %g fps (%d frames) ...\n", res.FPS, frames)
@@ -600,6 +618,13 @@ func benchLoops(ctx context.Context, o Options, clip string, frames int, res *Re
 	res.DecodeMsPerFrame = pipeline.Round3(medianOf(dec))
 	res.FFmpegDecodeMsPerFrame = pipeline.Round3(medianOf(ff))
 	res.NaiveMsPerFrame = pipeline.Round3(medianOf(naive))
+	res.PipelineMsPerFrame = pipeline.Round3(medianOf(pipe))
+	if res.DecodeMsPerFrame > 0 {
+		res.RatioPipelineDecode = pipeline.Round3(res.PipelineMsPerFrame / res.DecodeMsPerFrame)
+	}
+	if res.NaiveMsPerFrame > 0 {
+		res.RatioPipelineNaive = pipeline.Round3(res.PipelineMsPerFrame / res.NaiveMsPerFrame)
+	}
 	if res.DecodeMsPerFrame > 0 {
 		res.RatioDecode = pipeline.Round3(res.DaemonMsPerFrame / res.DecodeMsPerFrame)
 	}
@@ -663,6 +688,8 @@ func (r Result) Print(w io.Writer) {
 		fmt.Fprintf(tw, "same clip alone\tOpenCV decode %.2f ms/frame, ffmpeg decode (1 thread) %.2f ms/frame, plain OpenCV loop %.2f ms/frame (CPU, median of runs over %d frames)\n",
 			r.DecodeMsPerFrame, r.FFmpegDecodeMsPerFrame, r.NaiveMsPerFrame, r.LoopFrames)
 		fmt.Fprintf(tw, "daemon\t%.2f ms CPU per frame decoded = %.2f× OpenCV decode alone, %.2f× the plain loop\n", r.DaemonMsPerFrame, r.RatioDecode, r.RatioNaive)
+		fmt.Fprintf(tw, "pipeline alone\t%.2f ms CPU per frame = %.2f× OpenCV decode alone, %.2f× the plain loop: the camera's pipeline over the same clip as fast as it decodes, as stillwater replay runs it (decoding, picture checks, detection, tracking, messages; no pacing, bus or evidence; median of runs)\n",
+			r.PipelineMsPerFrame, r.RatioPipelineDecode, r.RatioPipelineNaive)
 	}
 	if r.PacedDecodeMsPerFrame > 0 {
 		fmt.Fprintf(tw, "paced\tOpenCV decode alone at %g fps %.2f ms/frame (CPU, one run); daemon = %.2f× that\n", r.FPS, r.PacedDecodeMsPerFrame, r.RatioPacedDecode)
