@@ -296,6 +296,15 @@ type Features struct {
 	// Edge is the distance from the candidate's centre to the nearest
 	// cell that is not water.
 	Edge float64
+	// ShiftX and ShiftY lead from the candidate's position (PlaneBlob X,
+	// Y, which the rules judge) to where it is reported, plane units: the
+	// centre of its part at a quarter of the score a tenth of its cells
+	// reach, instead of a quarter of its single highest cell. That part
+	// covers more of a body, so its centre sits on the body more steadily;
+	// as the position the rules judge it moved which candidates passed
+	// them, so it only moves what is reported. Zero where the position
+	// is not the strongest part's (a trail across the edge).
+	ShiftX, ShiftY float64
 	// Foot is how far out on the deck the candidate's end nearest the
 	// camera lies (its part at half contrast), from the nearest water: 0
 	// when that end is on the water or the camera's position is not known
@@ -383,6 +392,7 @@ type meanVar struct {
 	settling bool
 	closed   bool
 	chromas  []float64 // scratch: per-cell chroma of one candidate
+	scores   []float32 // scratch: the scores of one candidate's cells
 	clock    *StageClock
 }
 
@@ -911,6 +921,7 @@ func (d *meanVar) candidates() ([]Blob, error) {
 				}
 				s := sc[i]
 				cnt++
+				d.scores = append(d.scores, s)
 				if s >= thr {
 					core++
 				}
@@ -963,15 +974,22 @@ func (d *meanVar) candidates() ([]Blob, error) {
 		faint := core == 0 && 2*held >= cnt && peak >= keepPeak*thr
 		if cnt == 0 || core == 0 && !faint {
 			d.chromas = d.chromas[:0]
+			d.scores = d.scores[:0]
 			continue
 		}
 		// The area at a quarter of the peak score (half its contrast):
 		// close to the object's own outline, where Area also counts the
 		// blur around it.
 		half, bright, wet := 0, 0, 0
-		var hx, hy, nowDiff, meanDiff, nx, ny float64
+		var hx, hy, rx, ry, nowDiff, meanDiff, nx, ny float64
 		nn := 0
 		hthr := max(float32(d.cfg.Low), peak/4)
+		// rx, ry: the centre of the part at a quarter of the score a
+		// tenth of the cells reach, where the candidate is reported
+		// (Features.ShiftX).
+		pthr := max(float32(d.cfg.Low), topScore(d.scores)/4)
+		d.scores = d.scores[:0]
+		pn, trail := 0, false
 		for y := by; y < by+bh; y++ {
 			for x := bx; x < bx+bw; x++ {
 				i := y*w + x
@@ -988,6 +1006,11 @@ func (d *meanVar) candidates() ([]Blob, error) {
 					nx += float64(x) + 0.5
 					ny += float64(y) + 0.5
 					nn++
+				}
+				if sc[i] >= pthr {
+					pn++
+					rx += float64(x) + 0.5
+					ry += float64(y) + 0.5
 				}
 				if sc[i] >= hthr {
 					half++
@@ -1068,11 +1091,16 @@ func (d *meanVar) candidates() ([]Blob, error) {
 			// child (0.45 m by its strongest part).
 			if px, py := nx/float64(nn), ny/float64(nn); !d.fartherFromCamera(px, py, cx, cy) {
 				cx, cy = px, py
+				trail = true
 			}
 		}
 		ci, cj := min(max(int(cx), 0), w-1), min(max(int(cy), 0), d.size.Y-1)
 		f.Edge = float64(d.edge[cj*w+ci]) * cell
 		px, py := d.rect.plane(cx, cy)
+		if half > 0 && pn > 0 && !trail {
+			qx, qy := d.rect.plane(rx/float64(pn), ry/float64(pn))
+			f.ShiftX, f.ShiftY = qx-px, qy-py
+		}
 		cells := image.Rect(bx, by, bx+bw, by+bh)
 		b := Blob{Pixels: cnt, Plane: &PlaneBlob{X: px, Y: py, Cells: cells, Near: near}, Features: f}
 		if c, ok := d.rect.source(cx, cy); ok {
@@ -1287,4 +1315,15 @@ func (c *Camera) Reference() (Reference, bool) {
 		return mv.Reference()
 	}
 	return Reference{}, false
+}
+
+// topScore is the score a tenth of the cells reach (nearest rank): the
+// candidate's peak contrast, as a level most of its brightest part
+// shares rather than its single highest cell. It sorts scores.
+func topScore(scores []float32) float32 {
+	if len(scores) == 0 {
+		return 0
+	}
+	slices.Sort(scores)
+	return scores[int(math.Ceil(0.9*float64(len(scores))))-1]
 }

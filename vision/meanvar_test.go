@@ -473,3 +473,28 @@ func TestEdgeDistance(t *testing.T) {
 	assert.InDelta(t, 1, d[1*7+3], 1e-6)
 	assert.Zero(t, d[0])
 }
+
+// TestTopScore holds topScore to the nearest-rank 90th percentile (the
+// smallest value at least 90 % of the values are not above; the
+// nearest-rank definition of a percentile, common practice in
+// statistics texts).
+func TestTopScore(t *testing.T) {
+	for _, tc := range []struct {
+		name   string
+		scores []float32
+		want   float32
+	}{
+		{"none", nil, 0},
+		{"one cell", []float32{7}, 7},
+		{"ten cells: the ninth", []float32{10, 9, 8, 7, 6, 5, 4, 3, 2, 1}, 9},
+		{"eleven cells: rank ceil(9.9) = 10", []float32{1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11}, 10},
+		{"a single hot cell does not set it", []float32{50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 50, 900}, 50},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			got := topScore(append([]float32(nil), tc.scores...))
+			if got != tc.want {
+				t.Errorf("topScore(%v) = %v, want %v", tc.scores, got, tc.want)
+			}
+		})
+	}
+}

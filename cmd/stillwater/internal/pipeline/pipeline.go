@@ -233,7 +233,9 @@ func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectan
 			// target 0.5 s after the frozen fault was raised).
 			continue
 		}
-		o := alert.Observation{Track: t.ID, X: t.X, Y: t.Y, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits}
+		// Reported where the candidate's part at half its high contrast
+		// lies (vision.Features.ShiftX); the rules above judged t.X, t.Y.
+		o := alert.Observation{Track: t.ID, X: t.X + t.Features.ShiftX, Y: t.Y + t.Features.ShiftY, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits}
 		if d.Method == "meanvar" && !p.alarmed[t.ID] {
 			// Persistence and the share of frames seen count from the
 			// track's current run, not from the sparse flicker it may
@@ -373,6 +375,7 @@ func (p *Processor) gate(r vision.Result, b vision.Blob) (detection, bool) {
 		if at := (homography.Point{X: n.X, Y: n.Y}); p.Calibration.Inside(at) {
 			p.log.Debug("candidate upright in the water: placed at its end nearest the camera", "frame", r.Index, "centre_x_m", Round3(c.X), "centre_y_m", Round3(c.Y), "x_m", Round3(at.X), "y_m", Round3(at.Y))
 			c = at
+			f.ShiftX, f.ShiftY = 0, 0 // reported where it is placed
 		}
 	}
 	switch {
