@@ -498,3 +498,36 @@ func TestTopScore(t *testing.T) {
 		})
 	}
 }
+
+// TestMeanVarReportsWhereMostOfTheBodyIs: a 0.4 m dark square with a
+// small black patch near one side (a dark suit with black hair, say). The
+// patch sets the peak score, so the part at half the peak contrast, where
+// the candidate is judged (Plane.X), lies around it; the part at half the
+// contrast a tenth of the cells reach takes in the whole square, and the
+// shift to it (Features.ShiftX) brings the reported position back to the
+// square's centre.
+func TestMeanVarReportsWhereMostOfTheBodyIs(t *testing.T) {
+	d := newTestMeanVar(t, nil)
+	defer d.Close()
+	s := newWaterScene()
+	run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
+	body := bodyAt(2, 1, 0.4)      // x 1.8–2.2 m
+	patch := bodyAt(2.14, 1, 0.08) // x 2.10–2.18 m, 2 % of the square
+	var blobs []Blob
+	for i := 0; i < 20; i++ {
+		f := s.frame(body, color.RGBA{R: 40, G: 130, B: 150})
+		px := image.Rect(20+patch.Min.X, 20+patch.Min.Y, 20+patch.Max.X, 20+patch.Max.Y)
+		gocv.Rectangle(&f, px, color.RGBA{}, -1)
+		var err error
+		blobs, _, err = d.Detect(f, nil)
+		f.Close()
+		require.NoError(t, err)
+	}
+	require.Len(t, blobs, 1)
+	b := blobs[0]
+	t.Logf("judged %.3f, %.3f; shift %.3f, %.3f; half %.3f", b.Plane.X, b.Plane.Y, b.Features.ShiftX, b.Features.ShiftY, b.Features.Half)
+	assert.Greater(t, b.Plane.X, 2.06, "judged near the patch")
+	assert.InDelta(t, 2.0, b.Plane.X+b.Features.ShiftX, 0.03, "reported at the square's centre")
+	assert.InDelta(t, 1.0, b.Plane.Y+b.Features.ShiftY, 0.03)
+	assert.InDelta(t, 0.0, b.Features.ShiftY, 0.03)
+}

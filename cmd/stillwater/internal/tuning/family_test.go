@@ -237,6 +237,15 @@ func printFamily(w io.Writer, name string, rs []suiteResult, f familyFigures) {
 		rows = append([]ClipScore{pooled(fmt.Sprintf("quiet ×%d", len(quiet)), quiet)}, rows...)
 	}
 	WriteScores(w, rows)
+	var loud []string
+	for _, q := range quiet {
+		if q.False > 0 {
+			loud = append(loud, fmt.Sprintf("%s %d", q.Name, q.False))
+		}
+	}
+	if len(loud) > 0 {
+		fmt.Fprintf(w, "quiet scenes with false alarms: %s\n", strings.Join(loud, ", "))
+	}
 	for _, s := range f.Still {
 		fmt.Fprintf(w, "%s: child still for %.0f s, one track kept %.1f s, %d track breaks\n", s.Name, s.StillFor, s.Tracked, s.Breaks)
 	}
