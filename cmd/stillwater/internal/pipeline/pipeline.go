@@ -104,6 +104,15 @@ func New(cam config.CameraConfig, cal *homography.Calibration, fps float64, epoc
 	return p, nil
 }
 
+// Reported returns where a track is reported, in messages, on the page
+// and on snapshots: the centre of its part at half its high contrast,
+// to which vision.Features.ShiftX and ShiftY lead from the position its
+// rules judge (t.X, t.Y). The same for the mixture-model detectors, whose
+// features are zero.
+func Reported(t track.Track[vision.Features]) homography.Point {
+	return homography.Point{X: t.X + t.Features.ShiftX, Y: t.Y + t.Features.ShiftY}
+}
+
 // debrisPenalty ranks, for a track in alarm, a detection far smaller
 // than a child's body behind any that could be the body: a leaf that
 // drifted over a child keeping still, and merged with it for a while,
@@ -233,9 +242,10 @@ func (p *Processor) Step(r vision.Result, armed bool) ([]Message, []image.Rectan
 			// target 0.5 s after the frozen fault was raised).
 			continue
 		}
-		// Reported where the candidate's part at half its high contrast
-		// lies (vision.Features.ShiftX); the rules above judged t.X, t.Y.
-		o := alert.Observation{Track: t.ID, X: t.X + t.Features.ShiftX, Y: t.Y + t.Features.ShiftY, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits}
+		// The rules above judged t.X, t.Y; the target is reported where
+		// Reported puts it.
+		at := Reported(t)
+		o := alert.Observation{Track: t.ID, X: at.X, Y: at.Y, VX: t.VX, VY: t.VY, Area: t.Area, First: t.First, Last: t.Last, Hits: t.Hits}
 		if d.Method == "meanvar" && !p.alarmed[t.ID] {
 			// Persistence and the share of frames seen count from the
 			// track's current run, not from the sparse flicker it may

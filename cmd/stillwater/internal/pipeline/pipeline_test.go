@@ -188,3 +188,23 @@ func TestFrozenPictureStartsNoTarget(t *testing.T) {
 	require.Len(t, p.Tracks, 1)
 	assert.True(t, p.alarmed[p.Tracks[0].ID], "the raised target goes on through the freeze")
 }
+
+// TestReported: a track is reported at its judged position moved by its
+// candidate's shift (vision.Features.ShiftX, ShiftY); a track of the
+// mixture-model detectors, whose features are zero, where it is judged.
+func TestReported(t *testing.T) {
+	for _, tc := range []struct {
+		name   string
+		tr     poolTrack
+		wx, wy float64
+	}{
+		{"shifted", poolTrack{X: 2.14, Y: 1, Features: vision.Features{ShiftX: -0.14, ShiftY: 0.02}}, 2.0, 1.02},
+		{"no features", poolTrack{X: 3, Y: 4}, 3, 4},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			at := Reported(tc.tr)
+			assert.InDelta(t, tc.wx, at.X, 1e-12)
+			assert.InDelta(t, tc.wy, at.Y, 1e-12)
+		})
+	}
+}

@@ -42,7 +42,8 @@ func NewEvidenceSettings(cfg config.Config) EvidenceSettings {
 func annotation(cam config.CameraConfig, proc *pipeline.Processor, caption string) vision.Annotation {
 	a := vision.Annotation{Outline: pipeline.WaterMask(proc.Calibration), Caption: caption}
 	for _, t := range proc.Tracks {
-		a.Boxes = append(a.Boxes, vision.LabeledBox{Box: t.Box, Label: fmt.Sprintf("track %d  %.2f m, %.2f m%s", t.ID, t.X, t.Y, proc.Why(t.ID))})
+		at := pipeline.Reported(t)
+		a.Boxes = append(a.Boxes, vision.LabeledBox{Box: t.Box, Label: fmt.Sprintf("track %d  %.2f m, %.2f m%s", t.ID, at.X, at.Y, proc.Why(t.ID))})
 	}
 	return a
 }

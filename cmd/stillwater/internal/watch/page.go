@@ -105,10 +105,11 @@ func (w *Camera) answerView(vc *vision.Camera, proc *pipeline.Processor, frames 
 			continue
 		}
 		b := t.Box
-		foot, _ := cal.Pixel(homography.Point{X: t.X, Y: t.Y})
+		at := pipeline.Reported(t)
+		foot, _ := cal.Pixel(at)
 		v.Tracks = append(v.Tracks, console.Track{
 			ID: t.ID, Box: [4]float64{float64(b.Min.X), float64(b.Min.Y), float64(b.Dx()), float64(b.Dy())},
-			At: [2]float64{foot.X, foot.Y}, X: t.X, Y: t.Y, Alarm: proc.Alarmed(t.ID),
+			At: [2]float64{foot.X, foot.Y}, X: at.X, Y: at.Y, Alarm: proc.Alarmed(t.ID),
 		})
 	}
 	var err error
