@@ -860,9 +860,13 @@ func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, fl
 		share = 0
 	}
 	switch {
-	case full && share >= m.cfg.FrozenShare && m.liveSensor():
+	case full && share >= m.cfg.FrozenShare && m.cur != CondFrozen && m.liveSensor():
 		// Calm water under a live sensor: not a frozen picture, and not a
-		// calm spell to learn from either.
+		// calm spell to learn from either. Once a freeze is reported, only
+		// water seen moving ends it: a frozen picture's encoder refining it
+		// after each key frame can read as a live sensor for seconds (fault
+		// seed 25: cleared 5.8 s into a 54 s freeze, raised again 6.5 s
+		// later).
 		return CondOK, share
 	case full && share >= m.cfg.FrozenShare:
 		return CondFrozen, share

@@ -532,6 +532,30 @@ func TestHealthMonitorHoldAndRecover(t *testing.T) {
 			}
 			return s
 		}, []check{{ms(6300), CondOK}, {ms(19900), CondOK}, {ms(22500), CondOK}, {ms(22600), CondFrozen}, {ms(30000), CondFrozen}}},
+		// Frozen at 4 s after moving water, raised at 6.3 s; from 8 s the
+		// encoder goes on refining the frozen picture, 5 % of the cells'
+		// pixels changing in every frame, as a live sensor's would. The
+		// freeze is reported already, so that does not clear it: only
+		// water seen moving does (from 20 s; the stuck rule holds it until
+		// under 0.7 of the last 10 s is the same picture, at 21.4 s, and
+		// it clears 2 s later). Taken for a live sensor, the refined
+		// picture cleared the fault at 11 s.
+		{"a reported freeze refined by its encoder stays frozen", HealthConfig{}, ms(30000), func(at time.Duration) HealthStats {
+			if at >= 20*time.Second {
+				return ok
+			}
+			s := keyFrames(at)
+			s.HasChanged = true
+			switch {
+			case at < 4*time.Second:
+				s.Changed = 0.3
+			case at < 8*time.Second:
+				s.Changed = 0.001
+			default:
+				s.Changed = 0.05
+			}
+			return s
+		}, []check{{ms(6300), CondFrozen}, {ms(12000), CondFrozen}, {ms(19900), CondFrozen}, {ms(23300), CondFrozen}, {ms(23400), CondOK}, {ms(30000), CondOK}}},
 		{"no motion measure, no freeze", HealthConfig{}, ms(5000), func(time.Duration) HealthStats {
 			s := still
 			s.HasMotion = false

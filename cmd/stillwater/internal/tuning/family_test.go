@@ -196,6 +196,9 @@ func judgeFamily(f familyFigures, lim familyLimits) (faultFails, detectFails []s
 	if t.False > l.FalseAlarms {
 		detectFails = append(detectFails, fmt.Sprintf("%d false alarms, want ≤ %d", t.False, l.FalseAlarms))
 	}
+	if t.FaultBreaks > 0 {
+		detectFails = append(detectFails, fmt.Sprintf("%d camera faults cleared while the picture was still bad", t.FaultBreaks))
+	}
 	if t.FaultTargets > 0 {
 		detectFails = append(detectFails, fmt.Sprintf("%d targets raised during camera faults", t.FaultTargets))
 	}
@@ -278,9 +281,9 @@ func printFamily(w io.Writer, name string, rs []suiteResult, f familyFigures) {
 		}
 		still = fmt.Sprintf("shortest %.1f s (%s, still for %.0f s)", lo.Tracked, lo.Name, lo.StillFor)
 	}
-	fmt.Fprintf(w, "%s: intruders detected %d/%d; first alert median %s s, worst %s s; false alarms %d over %.2f h intruder-free (%.2f h of Quiet scenes); still child kept as one track: %s; position error median %s m, p95 %s m; camera faults raised within 3 s %d/%d, targets during faults %d; %d clips, %d frames in %.0f s\n",
+	fmt.Fprintf(w, "%s: intruders detected %d/%d; first alert median %s s, worst %s s; false alarms %d over %.2f h intruder-free (%.2f h of Quiet scenes); still child kept as one track: %s; position error median %s m, p95 %s m; camera faults raised within 3 s %d/%d, cleared while on %d, targets during faults %d; %d clips, %d frames in %.0f s\n",
 		name, t.Detected, t.Presences, FmtNum(Quantile(t.Delays, 0.5), 2), FmtNum(MaxOf(t.Delays), 2), t.False, t.FreeHours, f.QuietHours,
-		still, FmtNum(Quantile(t.Errors, 0.5), 3), FmtNum(Quantile(t.Errors, 0.95), 3), f.FaultsInTime, t.FaultsLabelled, t.FaultTargets,
+		still, FmtNum(Quantile(t.Errors, 0.5), 3), FmtNum(Quantile(t.Errors, 0.95), 3), f.FaultsInTime, t.FaultsLabelled, t.FaultBreaks, t.FaultTargets,
 		len(rs), f.Frames, f.Wall.Seconds())
 }
 
@@ -321,6 +324,7 @@ func runFamilyBench(b *testing.B, name string, clips []suiteClip, gate bool) {
 		b.ReportMetric(float64(f.FaultsInTime), "faults_3s")
 		b.ReportMetric(float64(t.FaultsLabelled), "faults")
 		b.ReportMetric(float64(t.FaultTargets), "fault_targets")
+		b.ReportMetric(float64(t.FaultBreaks), "fault_breaks")
 		b.ReportMetric(f.Wall.Seconds(), "wall_s")
 		faultFails, detectFails := judgeFamily(f, lim)
 		if len(faultFails) > 0 {

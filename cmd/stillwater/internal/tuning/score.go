@@ -60,6 +60,9 @@ type ClipScore struct {
 	FaultDelays    []float64
 	FalseFaults    int
 	FaultTargets   int
+	// FaultBreaks counts picture faults, once raised, cleared while their
+	// labelled fault was still on: the camera called fine while it was not.
+	FaultBreaks int
 	// FaultKinds and FaultEach are the labelled faults in label order:
 	// the fault each should raise, and its delay, s (NaN when never).
 	FaultKinds []string
@@ -219,8 +222,14 @@ func scoreClip(name string, lines []ReplayLine, t synth.Truth, rules scoreRules)
 			if err := json.Unmarshal(l.Msg, &f); err != nil {
 				return cs, fmt.Errorf("score %s: line %d: %w", name, n+1, err)
 			}
-			if !f.Active || !pipeline.IsPictureFault(f.Fault) {
-				continue // a clear, or a fault the picture checks do not raise
+			if !pipeline.IsPictureFault(f.Fault) {
+				continue // a fault the picture checks do not raise
+			}
+			if !f.Active {
+				if i := inFault(l.Media, f.Fault); i >= 0 && !math.IsNaN(faultAt[i]) {
+					cs.FaultBreaks++
+				}
+				continue
 			}
 			if i := inFault(l.Media, f.Fault); i >= 0 {
 				if math.IsNaN(faultAt[i]) {
@@ -268,8 +277,8 @@ type scoreTotal struct {
 	FreeHours                                 float64
 	Delays, Errors                            []float64
 	// Picture faults, as in clipScore.
-	FaultsLabelled, FaultsRaised, FalseFaults, FaultTargets int
-	FaultDelays                                             []float64
+	FaultsLabelled, FaultsRaised, FalseFaults, FaultTargets, FaultBreaks int
+	FaultDelays                                                          []float64
 }
 
 // TotalOf sums the scores of clips.
@@ -288,6 +297,7 @@ func TotalOf(cs []ClipScore) scoreTotal {
 		t.FaultsRaised += c.FaultsRaised
 		t.FalseFaults += c.FalseFaults
 		t.FaultTargets += c.FaultTargets
+		t.FaultBreaks += c.FaultBreaks
 		t.FaultDelays = append(t.FaultDelays, c.FaultDelays...)
 	}
 	return t
@@ -408,9 +418,9 @@ func WriteScores(w io.Writer, cs []ClipScore) {
 	tw.Flush()
 	fmt.Fprintf(w, "first-alert delay: median %s s, worst %s s over %d detections; intruder-free footage %.2f h\n",
 		FmtNum(Quantile(t.Delays, 0.5), 2), FmtNum(MaxOf(t.Delays), 2), len(t.Delays), t.FreeHours)
-	if t.FaultsLabelled > 0 || t.FalseFaults > 0 || t.FaultTargets > 0 {
-		fmt.Fprintf(w, "picture faults: %d of %d raised, delay median %s s, worst %s s; %d raised with none labelled; %d targets while a fault was on\n",
-			t.FaultsRaised, t.FaultsLabelled, FmtNum(Quantile(t.FaultDelays, 0.5), 2), FmtNum(MaxOf(t.FaultDelays), 2), t.FalseFaults, t.FaultTargets)
+	if t.FaultsLabelled > 0 || t.FalseFaults > 0 || t.FaultTargets > 0 || t.FaultBreaks > 0 {
+		fmt.Fprintf(w, "picture faults: %d of %d raised, delay median %s s, worst %s s; %d raised with none labelled; %d targets while a fault was on; %d cleared while the fault was still on\n",
+			t.FaultsRaised, t.FaultsLabelled, FmtNum(Quantile(t.FaultDelays, 0.5), 2), FmtNum(MaxOf(t.FaultDelays), 2), t.FalseFaults, t.FaultTargets, t.FaultBreaks)
 	}
 }
 

@@ -189,7 +189,10 @@ func TestScoreFaults(t *testing.T) {
 	//   5.0 s camera_lost: not a picture fault, ignored
 	//  12.3 s camera_frozen raised during the frozen fault: raised, 2.3 s
 	//  13.0 s a target starts: false alarm, and a target during a fault
-	//  22.6 s camera_frozen cleared: ignored
+	//  15.0 s camera_frozen cleared while the picture is still frozen: a
+	//         fault break
+	//  16.0 s camera_frozen raised again: the fault's delay stays 2.3 s
+	//  22.6 s camera_frozen cleared after the fault ended: no break
 	//  25.5 s camera_noise raised during the black fault: the wrong kind,
 	//         a fault raised with none of its kind labelled (1)
 	//  28.0 s camera_blinded raised after the black fault ended (2)
@@ -201,6 +204,8 @@ func TestScoreFaults(t *testing.T) {
 			faultLine(t, 50, alert.FaultCameraLost, true),
 			faultLine(t, 123, alert.FaultCameraFrozen, true),
 			targetLine(t, 130, 1, "start", 2, 1),
+			faultLine(t, 150, alert.FaultCameraFrozen, false),
+			faultLine(t, 160, alert.FaultCameraFrozen, true),
 			faultLine(t, 226, alert.FaultCameraFrozen, false),
 			faultLine(t, 255, alert.FaultCameraNoise, true),
 			faultLine(t, 280, alert.FaultCameraBlinded, true),
@@ -213,6 +218,7 @@ func TestScoreFaults(t *testing.T) {
 	assert.InDeltaSlice(t, []float64{2.3}, got.FaultDelays, 1e-9)
 	assert.Equal(t, 2, got.FalseFaults)
 	assert.Equal(t, 1, got.FaultTargets)
+	assert.Equal(t, 1, got.FaultBreaks)
 	assert.Equal(t, 1, got.False)
 
 	tot := TotalOf([]ClipScore{got})
@@ -229,7 +235,7 @@ func TestScoreFaults(t *testing.T) {
 
 	var sb strings.Builder
 	WriteScores(&sb, []ClipScore{got})
-	assert.Contains(t, sb.String(), "picture faults: 1 of 2 raised, delay median 2.30 s, worst 2.30 s; 2 raised with none labelled; 1 targets while a fault was on")
+	assert.Contains(t, sb.String(), "picture faults: 1 of 2 raised, delay median 2.30 s, worst 2.30 s; 2 raised with none labelled; 1 targets while a fault was on; 1 cleared while the fault was still on")
 
 	truth.Faults = []synth.Fault{{Kind: "smoke", From: 1, To: 2}}
 	_, err = scoreClip("c", nil, truth, DefaultScoreRules())

@@ -313,7 +313,7 @@ func pooled(name string, cs []ClipScore) ClipScore {
 	}
 	return ClipScore{Name: name, Duration: d, FreeHours: t.FreeHours, Presences: t.Presences, Detected: t.Detected,
 		Delays: t.Delays, False: t.False, Errors: t.Errors, Breaks: t.Breaks,
-		FaultsLabelled: t.FaultsLabelled, FaultsRaised: t.FaultsRaised, FaultDelays: t.FaultDelays, FalseFaults: t.FalseFaults, FaultTargets: t.FaultTargets}
+		FaultsLabelled: t.FaultsLabelled, FaultsRaised: t.FaultsRaised, FaultDelays: t.FaultDelays, FalseFaults: t.FalseFaults, FaultTargets: t.FaultTargets, FaultBreaks: t.FaultBreaks}
 }
 
 // TestScenarioQuick is the suite's quick cousin: three 20 s scenes (wind
