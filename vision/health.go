@@ -676,8 +676,11 @@ type HealthMonitor struct {
 	spells                []calmSpell // still spells that ended on their own, oldest first
 	same                  []stillMark // frames of the last StuckWindow: still = the same picture as the frame before
 	byStuck               bool        // the current still spell is a freeze only by the stuck rule
-	fine                  []fineMark  // still frames of the last FineWindow and their HealthStats.Changed
-	fineSorted            []float64   // scratch for the median
+	// quietFrom is when the frozen window's share of still frames last
+	// reached FrozenShare, live sensor or not; -1 while it is below.
+	quietFrom  time.Duration
+	fine       []fineMark // still frames of the last FineWindow and their HealthStats.Changed
+	fineSorted []float64  // scratch for the median
 }
 
 // fineMark is one still frame's HealthStats.Changed.
@@ -690,7 +693,7 @@ func (f fineMark) at() time.Duration { return f.t }
 
 // NewHealthMonitor returns a monitor that starts in CondOK.
 func NewHealthMonitor(cfg HealthConfig) *HealthMonitor {
-	return &HealthMonitor{cfg: cfg.withDefaults(), cur: CondOK, movingFrom: -1, stillFrom: -1}
+	return &HealthMonitor{cfg: cfg.withDefaults(), cur: CondOK, movingFrom: -1, stillFrom: -1, quietFrom: -1}
 }
 
 // Condition returns the reported condition.
@@ -835,6 +838,7 @@ func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, fl
 		// that the picture coming back is not taken for a frozen one.
 		m.window = m.window[:0]
 		m.fine = m.fine[:0]
+		m.quietFrom = -1
 		return f, 0
 	case s.HasMotion:
 		m.window = append(m.window, stillMark{t: t, still: f == CondFrozen})
@@ -858,6 +862,12 @@ func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, fl
 	full := len(m.window) >= minStillFrames && span >= m.cfg.FrozenWindow*2/3
 	if !full {
 		share = 0
+	}
+	switch {
+	case !full || share < m.cfg.FrozenShare:
+		m.quietFrom = -1
+	case m.quietFrom < 0:
+		m.quietFrom = t
 	}
 	switch {
 	case full && share >= m.cfg.FrozenShare && m.cur != CondFrozen && m.liveSensor():
@@ -916,6 +926,15 @@ func (m *HealthMonitor) Observe(t time.Duration, s HealthStats) HealthReport {
 		m.cand, m.candSince = f, t
 	default:
 		m.cand = f
+	}
+	if m.hasCand && m.cand == CondFrozen && m.candSince == t && m.quietFrom >= 0 && t-m.quietFrom <= m.cfg.FineWindow {
+		// The water stopped while the live-sensor test still called the
+		// picture live: its median lags, and an encoder refining a frozen
+		// picture for a moment after it froze keeps it up (fault seed 41:
+		// 0.75 s). The hold counts from when the water stopped, if that
+		// was within the test's own window; a calm live picture whose
+		// sensor goes quiet long after its water stopped gets no credit.
+		m.candSince = m.quietFrom
 	}
 	if m.hasCand {
 		need := m.cfg.Hold

@@ -556,6 +556,28 @@ func TestHealthMonitorHoldAndRecover(t *testing.T) {
 			}
 			return s
 		}, []check{{ms(6300), CondFrozen}, {ms(12000), CondFrozen}, {ms(19900), CondFrozen}, {ms(23300), CondFrozen}, {ms(23400), CondOK}, {ms(30000), CondOK}}},
+		// Frozen at 4 s after moving water, its encoder refining the
+		// picture for 1.2 s after it froze (3 % of the cells' pixels
+		// changing a frame, as a live sensor's would), then next to
+		// nothing. The probe's window is still from 5.3 s; the median of
+		// the last 2 s of still frames falls under 1 % at 6.2 s. The hold
+		// counts from 5.3 s, and the fault is raised at 6.3 s (2.3 s after
+		// the freeze); counted from 6.2 s it was raised at 7.2 s. (Calm
+		// water under a live sensor, above, gets no such credit: its water
+		// was still for 16 s before the sensor went quiet.)
+		{"a freeze refined by its encoder at first", HealthConfig{}, ms(12000), func(at time.Duration) HealthStats {
+			s := keyFrames(at)
+			s.HasChanged = true
+			switch {
+			case at < 4*time.Second:
+				s.Changed = 0.3
+			case at < ms(5200):
+				s.Changed = 0.03
+			default:
+				s.Changed = 0.001
+			}
+			return s
+		}, []check{{ms(6200), CondOK}, {ms(6300), CondFrozen}, {ms(12000), CondFrozen}}},
 		{"no motion measure, no freeze", HealthConfig{}, ms(5000), func(time.Duration) HealthStats {
 			s := still
 			s.HasMotion = false
