@@ -512,7 +512,7 @@ func TestMeanVarReportsWhereMostOfTheBodyIs(t *testing.T) {
 	s := newWaterScene()
 	run(t, d, s, 80, image.Rectangle{}, color.RGBA{}, nil)
 	body := bodyAt(2, 1, 0.4)      // x 1.8–2.2 m
-	patch := bodyAt(2.14, 1, 0.08) // x 2.10–2.18 m, 2 % of the square
+	patch := bodyAt(2.14, 1, 0.08) // x 2.10–2.18 m, 4 % of the square
 	var blobs []Blob
 	for i := 0; i < 20; i++ {
 		f := s.frame(body, color.RGBA{R: 40, G: 130, B: 150})
