@@ -914,20 +914,23 @@ func (m *HealthMonitor) liveSensor() bool {
 func (m *HealthMonitor) Observe(t time.Duration, s HealthStats) HealthReport {
 	f, share := m.frame(t, s)
 	rep := HealthReport{Frame: f, StillShare: share}
+	started := false // a new candidate's hold starts at this frame
 	switch {
 	case f == m.cur:
 		m.hasCand = false
 	case !m.hasCand:
 		m.cand, m.candSince, m.hasCand = f, t, true
+		started = true
 	case f != m.cand && (m.cur != CondOK || f == CondOK || m.cand == CondOK):
 		// A different candidate starts its own hold, except that from OK
 		// one fault turning into another (dark fading into uniform) keeps
 		// the fault's onset.
 		m.cand, m.candSince = f, t
+		started = true
 	default:
 		m.cand = f
 	}
-	if m.hasCand && m.cand == CondFrozen && m.candSince == t && m.quietFrom >= 0 && t-m.quietFrom <= m.cfg.FineWindow {
+	if started && m.cand == CondFrozen && m.quietFrom >= 0 && t-m.quietFrom <= m.cfg.FineWindow {
 		// The water stopped while the live-sensor test still called the
 		// picture live: its median lags, and an encoder refining a frozen
 		// picture for a moment after it froze keeps it up (fault seed 41:

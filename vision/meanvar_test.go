@@ -35,6 +35,12 @@ func squareGrid() *Rectification {
 	return r
 }
 
+// poolPixels returns the pixels of a rectangle given in pool centimetres
+// (bodyAt's), under squareGrid's mapping.
+func poolPixels(r image.Rectangle) image.Rectangle {
+	return r.Add(image.Pt(20, 20))
+}
+
 // waterScene draws frames of flat water with sensor noise and a moving
 // caustic-like ripple, an optional square body and a light level; the
 // caller closes each frame.
@@ -61,7 +67,7 @@ func (s *waterScene) frame(body image.Rectangle, col color.RGBA) gocv.Mat {
 		gocv.Line(&m, image.Pt(int(x), 0), image.Pt(int(x)+120, 240), color.RGBA{uint8(215 * s.light), uint8(200 * s.light), uint8(110 * s.light), 0}, 3)
 	}
 	if !body.Empty() {
-		px := image.Rect(20+body.Min.X, 20+body.Min.Y, 20+body.Max.X, 20+body.Max.Y)
+		px := poolPixels(body)
 		gocv.Rectangle(&m, px, color.RGBA{uint8(float64(col.R) * s.light), uint8(float64(col.G) * s.light), uint8(float64(col.B) * s.light), 0}, -1)
 	}
 	if s.noise == nil {
@@ -516,8 +522,7 @@ func TestMeanVarReportsWhereMostOfTheBodyIs(t *testing.T) {
 	var blobs []Blob
 	for i := 0; i < 20; i++ {
 		f := s.frame(body, color.RGBA{R: 40, G: 130, B: 150})
-		px := image.Rect(20+patch.Min.X, 20+patch.Min.Y, 20+patch.Max.X, 20+patch.Max.Y)
-		gocv.Rectangle(&f, px, color.RGBA{}, -1)
+		gocv.Rectangle(&f, poolPixels(patch), color.RGBA{}, -1)
 		var err error
 		blobs, _, err = d.Detect(f, nil)
 		f.Close()

@@ -225,19 +225,21 @@ func scoreClip(name string, lines []ReplayLine, t synth.Truth, rules scoreRules)
 			if !pipeline.IsPictureFault(f.Fault) {
 				continue // a fault the picture checks do not raise
 			}
-			if !f.Active {
-				if i := inFault(l.Media, f.Fault); i >= 0 && !math.IsNaN(faultAt[i]) {
+			i := inFault(l.Media, f.Fault)
+			switch {
+			case !f.Active:
+				// Cleared while its labelled fault is still on, after it
+				// was raised.
+				if i >= 0 && !math.IsNaN(faultAt[i]) {
 					cs.FaultBreaks++
 				}
-				continue
-			}
-			if i := inFault(l.Media, f.Fault); i >= 0 {
+			case i >= 0:
 				if math.IsNaN(faultAt[i]) {
 					faultAt[i] = l.Media
 				}
-				continue
+			default:
+				cs.FalseFaults++
 			}
-			cs.FalseFaults++
 		case alert.KindCleared:
 			var c alert.Cleared
 			if err := json.Unmarshal(l.Msg, &c); err != nil {
