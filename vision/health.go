@@ -676,6 +676,12 @@ type HealthMonitor struct {
 	spells                []calmSpell // still spells that ended on their own, oldest first
 	same                  []stillMark // frames of the last StuckWindow: still = the same picture as the frame before
 	byStuck               bool        // the current still spell is a freeze only by the stuck rule
+	// stillRun is when the water last stopped moving: the first measured
+	// frame of the current run of still ones, through dips of moving
+	// frames shorter than a third of FrozenWindow (a frozen picture's
+	// encoder redraws it at each key frame); -1 when it is moving.
+	// movedFrom is when the current dip began, -1 for none.
+	stillRun, movedFrom time.Duration
 	// quietFrom is when the frozen window's share of still frames last
 	// reached FrozenShare, live sensor or not; -1 while it is below.
 	quietFrom  time.Duration
@@ -693,11 +699,18 @@ func (f fineMark) at() time.Duration { return f.t }
 
 // NewHealthMonitor returns a monitor that starts in CondOK.
 func NewHealthMonitor(cfg HealthConfig) *HealthMonitor {
-	return &HealthMonitor{cfg: cfg.withDefaults(), cur: CondOK, movingFrom: -1, stillFrom: -1, quietFrom: -1}
+	return &HealthMonitor{cfg: cfg.withDefaults(), cur: CondOK, movingFrom: -1, stillFrom: -1, quietFrom: -1, stillRun: -1, movedFrom: -1}
 }
 
 // Condition returns the reported condition.
 func (m *HealthMonitor) Condition() Condition { return m.cur }
+
+// StillSince returns when the water last stopped moving (live sensor or
+// not); ok is false while it moves, or after a dark or uniform picture
+// until the water is measured still again.
+func (m *HealthMonitor) StillSince() (since time.Duration, ok bool) {
+	return m.stillRun, m.stillRun >= 0
+}
 
 // minStillFrames is the fewest measured frames the window must hold before
 // it can call the picture frozen.
@@ -756,6 +769,23 @@ func (m *HealthMonitor) frame(t time.Duration, s HealthStats) (Condition, float6
 		m.stillFrom, m.movingFrom = -1, -1
 	}
 	return f, share
+}
+
+// stillSpell follows when the water last stopped moving (stillRun), one
+// measured frame at a time.
+func (m *HealthMonitor) stillSpell(t time.Duration, still bool) {
+	switch {
+	case still:
+		m.movedFrom = -1
+		if m.stillRun < 0 {
+			m.stillRun = t
+		}
+	case m.movedFrom < 0:
+		m.movedFrom = t
+	}
+	if m.movedFrom >= 0 && t-m.movedFrom >= m.cfg.FrozenWindow/3 {
+		m.stillRun = -1
+	}
 }
 
 // stuck tells whether StuckShare of the frames of the last StuckWindow
@@ -838,10 +868,11 @@ func (m *HealthMonitor) stillness(t time.Duration, s HealthStats) (Condition, fl
 		// that the picture coming back is not taken for a frozen one.
 		m.window = m.window[:0]
 		m.fine = m.fine[:0]
-		m.quietFrom = -1
+		m.quietFrom, m.stillRun, m.movedFrom = -1, -1, -1
 		return f, 0
 	case s.HasMotion:
 		m.window = append(m.window, stillMark{t: t, still: f == CondFrozen})
+		m.stillSpell(t, f == CondFrozen)
 		if f == CondFrozen && s.HasChanged {
 			m.fine = append(m.fine, fineMark{t: t, v: s.Changed})
 		}

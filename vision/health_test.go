@@ -757,3 +757,55 @@ func noisyFlat(sz image.Point, level, sigma float64) gocv.Mat {
 	gocv.RandN(&m, gocv.NewScalar(level, level, level, 0), gocv.NewScalar(sigma, sigma, sigma, 0))
 	return m
 }
+
+// TestHealthMonitorStillSince: when the water last stopped moving, through
+// a frozen picture's key-frame redraws (dips of moving frames shorter than
+// a third of FrozenWindow, 0.5 s by default) but not through water that
+// moves again for longer, nor through a black picture.
+func TestHealthMonitorStillSince(t *testing.T) {
+	moving := HealthStats{Mean: 120, Spread: 30, HasPrev: true, Diff: 1, HasMotion: true, Motion: 1, Correlation: 0.9}
+	still := moving
+	still.Diff, still.Motion = 0, 0
+	dark := HealthStats{Mean: 2, Spread: 1, HasPrev: true, Diff: 0.1, HasMotion: true, Motion: 0, Correlation: 0.1}
+	ms := func(v int) time.Duration { return time.Duration(v) * time.Millisecond }
+	type span struct {
+		to time.Duration // this frame's stats until (exclusive)
+		s  HealthStats
+	}
+	tests := []struct {
+		name      string
+		spans     []span
+		end       time.Duration
+		wantOK    bool
+		wantSince time.Duration
+	}{
+		{"moving water", []span{{ms(5000), moving}}, ms(4900), false, 0},
+		{"still from 2 s", []span{{ms(2000), moving}, {ms(9000), still}}, ms(3000), true, ms(2000)},
+		{"a 0.3 s redraw keeps the onset", []span{{ms(2000), moving}, {ms(3000), still}, {ms(3300), moving}, {ms(9000), still}}, ms(4000), true, ms(2000)},
+		{"still through the start of a redraw", []span{{ms(2000), moving}, {ms(3000), still}, {ms(9000), moving}}, ms(3300), true, ms(2000)},
+		{"0.6 s of moving water ends it", []span{{ms(2000), moving}, {ms(3000), still}, {ms(3600), moving}, {ms(9000), still}}, ms(4000), true, ms(3600)},
+		{"water moving again", []span{{ms(2000), moving}, {ms(3000), still}, {ms(9000), moving}}, ms(3600), false, 0},
+		{"a black picture ends it", []span{{ms(2000), still}, {ms(2500), dark}, {ms(9000), still}}, ms(2400), false, 0},
+		{"still again after black", []span{{ms(2000), still}, {ms(2500), dark}, {ms(9000), still}}, ms(3000), true, ms(2500)},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			m := NewHealthMonitor(HealthConfig{})
+			for at := time.Duration(0); at <= tc.end; at += ms(100) {
+				s := tc.spans[len(tc.spans)-1].s
+				for _, sp := range tc.spans {
+					if at < sp.to {
+						s = sp.s
+						break
+					}
+				}
+				m.Observe(at, s)
+			}
+			since, ok := m.StillSince()
+			require.Equal(t, tc.wantOK, ok)
+			if ok {
+				assert.Equal(t, tc.wantSince, since)
+			}
+		})
+	}
+}

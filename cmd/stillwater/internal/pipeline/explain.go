@@ -143,6 +143,10 @@ func (e *explainer) why(p *Processor, r vision.Result, occ *synth.Occupation, pr
 			s = fmt.Sprintf(" track %d at (%.2f, %.2f) m, %.2f m away, had no candidate in this frame (last %.2f s ago)", near.ID, near.X, near.Y, best, (p.tracker.Now() - near.Last).Seconds())
 		case !ok:
 			s = fmt.Sprintf(" track %d at (%.2f, %.2f) m, %.2f m away, may not alarm: %s", near.ID, near.X, near.Y, best, why)
+		case p.Frozen && !p.alarmed[near.ID]:
+			s = fmt.Sprintf(" track %d at (%.2f, %.2f) m, %.2f m away: the picture is reported frozen, and no new target starts", near.ID, near.X, near.Y, best)
+		case p.bornStill(*near, r.Media):
+			s = fmt.Sprintf(" track %d at (%.2f, %.2f) m, %.2f m away, began after the water stopped moving (%.2f s ago): held until the picture checks tell a frozen picture", near.ID, near.X, near.Y, best, (r.Media - p.StillSince).Seconds())
 		case dwell < time.Duration(p.cam.Detect.Persist):
 			s = fmt.Sprintf(" track %d at (%.2f, %.2f) m, %.2f m away, seen for %.2f s of the %v it must last", near.ID, near.X, near.Y, best, dwell.Seconds(), time.Duration(p.cam.Detect.Persist))
 		default:

@@ -79,3 +79,7 @@ func (p *PictureFaults) Observe(media time.Duration, s vision.HealthStats, armed
 // Frozen reports whether the picture checks find the picture frozen now,
 // armed or not (see Processor.Frozen).
 func (p *PictureFaults) Frozen() bool { return p.mon.Condition() == vision.CondFrozen }
+
+// StillSince returns when the water last stopped moving, and whether it is
+// still now (see vision.HealthMonitor.StillSince and Processor.StillSince).
+func (p *PictureFaults) StillSince() (time.Duration, bool) { return p.mon.StillSince() }

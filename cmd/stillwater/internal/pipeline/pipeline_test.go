@@ -189,6 +189,45 @@ func TestFrozenPictureStartsNoTarget(t *testing.T) {
 	assert.True(t, p.alarmed[p.Tracks[0].ID], "the raised target goes on through the freeze")
 }
 
+// TestTrackBornInStillWaterWaits: a track whose run began after the water
+// stopped moving starts no target for the first stillHold (3 s) of the
+// stillness, then does; a track that began before the water stopped starts
+// one after persist as always.
+func TestTrackBornInStillWaterWaits(t *testing.T) {
+	blob := vision.Blob{
+		Centroid: vision.Point{X: 300, Y: 200},
+		Box:      image.Rect(292, 192, 308, 208),
+		Contour:  []vision.Point{{X: 292.5, Y: 192.5}, {X: 307.5, Y: 192.5}, {X: 307.5, Y: 207.5}, {X: 292.5, Y: 207.5}},
+	}
+	cam := zoneCamera()
+	cam.Detect.Method = "mog2"
+	for _, tc := range []struct {
+		name      string
+		stillFrom time.Duration // the water still from here on
+		wantStart time.Duration // media time of the target's start
+	}{
+		{"born after the water stopped", 0, 3 * time.Second},
+		{"born before the water stopped", 500 * time.Millisecond, 700 * time.Millisecond},
+		{"born long into the stillness", -5 * time.Second, 700 * time.Millisecond},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			p := newTestProcessor(t, cam)
+			got := time.Duration(-1)
+			for i := 0; i < 50 && got < 0; i++ {
+				at := time.Duration(i) * 100 * time.Millisecond
+				p.Still, p.StillSince = at >= tc.stillFrom, tc.stillFrom
+				out, _ := p.Step(vision.Result{Index: i, Media: at, Blobs: []vision.Blob{blob}}, true)
+				for _, m := range out {
+					if m.Kind == alert.KindTarget && strings.Contains(string(m.Data), `"event":"start"`) {
+						got = at
+					}
+				}
+			}
+			assert.Equal(t, tc.wantStart, got)
+		})
+	}
+}
+
 // TestReported: a track is reported at its judged position moved by its
 // candidate's shift (vision.Features.ShiftX, ShiftY); a track of the
 // mixture-model detectors, whose features are zero, where it is judged.

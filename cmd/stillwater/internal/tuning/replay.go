@@ -185,6 +185,7 @@ func ReplayClip(ctx context.Context, cam config.CameraConfig, prefix string, w i
 			continue
 		}
 		proc.Frozen = faults.Frozen()
+		proc.StillSince, proc.Still = faults.StillSince()
 		msgs, h := proc.Step(r, true)
 		hold = h
 		for _, m := range msgs {

@@ -392,6 +392,7 @@ func (w *Camera) frames(ctx context.Context, vc *vision.Camera, st *captureState
 		} else {
 			t1 := time.Now()
 			proc.Frozen = st.health.Frozen()
+			proc.StillSince, proc.Still = st.health.StillSince()
 			msgs, h := proc.Step(r, armed)
 			st.hold = h
 			w.met.Stage("track", time.Since(t1))
