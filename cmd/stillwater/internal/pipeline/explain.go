@@ -146,7 +146,7 @@ func (e *explainer) why(p *Processor, r vision.Result, occ *synth.Occupation, pr
 		case p.Frozen && !p.alarmed[near.ID]:
 			s = fmt.Sprintf(" track %d at (%.2f, %.2f) m, %.2f m away: the picture is reported frozen, and no new target starts", near.ID, near.X, near.Y, best)
 		case p.bornStill(*near, r.Media):
-			s = fmt.Sprintf(" track %d at (%.2f, %.2f) m, %.2f m away, began after the water stopped moving (%.2f s ago): held until the picture checks tell a frozen picture", near.ID, near.X, near.Y, best, (r.Media - p.StillSince).Seconds())
+			s = fmt.Sprintf(" track %d at (%.2f, %.2f) m, %.2f m away, began after the water stopped moving %.2f s ago: held for the first %v of the stillness, while a frozen picture would not yet be reported", near.ID, near.X, near.Y, best, (r.Media - p.StillSince).Seconds(), stillHold)
 		case dwell < time.Duration(p.cam.Detect.Persist):
 			s = fmt.Sprintf(" track %d at (%.2f, %.2f) m, %.2f m away, seen for %.2f s of the %v it must last", near.ID, near.X, near.Y, best, dwell.Seconds(), time.Duration(p.cam.Detect.Persist))
 		default:

@@ -14,6 +14,7 @@ import (
 	"stillwater/alert"
 	"stillwater/cmd/stillwater/internal/config"
 	"stillwater/vision"
+	"stillwater/vision/synth"
 )
 
 // TestStepForgetsTracksWhenModelRestarts feeds a mixture-model blob in
@@ -224,6 +225,42 @@ func TestTrackBornInStillWaterWaits(t *testing.T) {
 				}
 			}
 			assert.Equal(t, tc.wantStart, got)
+		})
+	}
+}
+
+// TestExplainHeldByAStillOrFrozenPicture: replay -v says why a track is
+// held back by the picture checks.
+func TestExplainHeldByAStillOrFrozenPicture(t *testing.T) {
+	blob := vision.Blob{
+		Centroid: vision.Point{X: 300, Y: 200},
+		Box:      image.Rect(292, 192, 308, 208),
+		Contour:  []vision.Point{{X: 292.5, Y: 192.5}, {X: 307.5, Y: 192.5}, {X: 307.5, Y: 207.5}, {X: 292.5, Y: 207.5}},
+		Plane:    &vision.PlaneBlob{X: 4, Y: 2},
+		Features: body(), // passes every rule of the judge
+	}
+	cam := zoneCamera()
+	for _, tc := range []struct {
+		name   string
+		frozen bool
+		want   string
+	}{
+		{"still", false, "began after the water stopped moving 1.00 s ago"},
+		{"frozen", true, "the picture is reported frozen"},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			p := newTestProcessor(t, cam)
+			p.Still, p.StillSince, p.Frozen = true, 0, tc.frozen
+			var r vision.Result
+			for i := 0; i <= 10; i++ {
+				r = vision.Result{Index: i, Media: time.Duration(i) * 100 * time.Millisecond, Blobs: []vision.Blob{blob}}
+				p.Step(r, true)
+			}
+			require.Len(t, p.Tracks, 1)
+			occ := &synth.Occupation{X: p.Tracks[0].X, Y: p.Tracks[0].Y}
+			got, reported := (&explainer{far: 1}).why(p, r, occ, true)
+			assert.False(t, reported)
+			assert.Contains(t, got, tc.want)
 		})
 	}
 }
