@@ -26,11 +26,7 @@ import (
 func TestStepForgetsTracksWhenModelRestarts(t *testing.T) {
 	// A 0.3 m square blob at pool (4, 2) m, pixel (300, 200) for
 	// zoneCamera.
-	blob := vision.Blob{
-		Centroid: vision.Point{X: 300, Y: 200},
-		Box:      image.Rect(292, 192, 308, 208),
-		Contour:  []vision.Point{{X: 292.5, Y: 192.5}, {X: 307.5, Y: 192.5}, {X: 307.5, Y: 207.5}, {X: 292.5, Y: 207.5}},
-	}
+	blob := openWaterBlob()
 	tests := []struct {
 		rejoined string
 		wantID   int
@@ -156,16 +152,22 @@ func TestGateFaintCandidate(t *testing.T) {
 	}
 }
 
+// openWaterBlob is a 16-pixel square blob at pixel (300, 200): pool metre
+// (4, 2) under zoneCamera's corners, in open water.
+func openWaterBlob() vision.Blob {
+	return vision.Blob{
+		Centroid: vision.Point{X: 300, Y: 200},
+		Box:      image.Rect(292, 192, 308, 208),
+		Contour:  []vision.Point{{X: 292.5, Y: 192.5}, {X: 307.5, Y: 192.5}, {X: 307.5, Y: 207.5}, {X: 292.5, Y: 207.5}},
+	}
+}
+
 // TestFrozenPictureStartsNoTarget: while the picture checks find the
 // picture frozen, a blob that would alarm starts no target; once the
 // picture moves again it does, and a target already raised goes on
 // through a later freeze.
 func TestFrozenPictureStartsNoTarget(t *testing.T) {
-	blob := vision.Blob{
-		Centroid: vision.Point{X: 300, Y: 200},
-		Box:      image.Rect(292, 192, 308, 208),
-		Contour:  []vision.Point{{X: 292.5, Y: 192.5}, {X: 307.5, Y: 192.5}, {X: 307.5, Y: 207.5}, {X: 292.5, Y: 207.5}},
-	}
+	blob := openWaterBlob()
 	cam := zoneCamera()
 	cam.Detect.Method = "mog2"
 	p := newTestProcessor(t, cam)
@@ -195,11 +197,7 @@ func TestFrozenPictureStartsNoTarget(t *testing.T) {
 // stillness, then does; a track that began before the water stopped starts
 // one after persist as always.
 func TestTrackBornInStillWaterWaits(t *testing.T) {
-	blob := vision.Blob{
-		Centroid: vision.Point{X: 300, Y: 200},
-		Box:      image.Rect(292, 192, 308, 208),
-		Contour:  []vision.Point{{X: 292.5, Y: 192.5}, {X: 307.5, Y: 192.5}, {X: 307.5, Y: 207.5}, {X: 292.5, Y: 207.5}},
-	}
+	blob := openWaterBlob()
 	cam := zoneCamera()
 	cam.Detect.Method = "mog2"
 	for _, tc := range []struct {
@@ -232,13 +230,9 @@ func TestTrackBornInStillWaterWaits(t *testing.T) {
 // TestExplainHeldByAStillOrFrozenPicture: replay -v says why a track is
 // held back by the picture checks.
 func TestExplainHeldByAStillOrFrozenPicture(t *testing.T) {
-	blob := vision.Blob{
-		Centroid: vision.Point{X: 300, Y: 200},
-		Box:      image.Rect(292, 192, 308, 208),
-		Contour:  []vision.Point{{X: 292.5, Y: 192.5}, {X: 307.5, Y: 192.5}, {X: 307.5, Y: 207.5}, {X: 292.5, Y: 207.5}},
-		Plane:    &vision.PlaneBlob{X: 4, Y: 2},
-		Features: body(), // passes every rule of the judge
-	}
+	blob := openWaterBlob()
+	blob.Plane = &vision.PlaneBlob{X: 4, Y: 2} // the same place, for the judge
+	blob.Features = body()                     // passes every rule of the judge
 	cam := zoneCamera()
 	for _, tc := range []struct {
 		name   string
