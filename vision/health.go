@@ -680,7 +680,9 @@ type HealthMonitor struct {
 	// frame of the current run of still ones, through dips of moving
 	// frames shorter than a third of FrozenWindow (a frozen picture's
 	// encoder redraws it at each key frame); -1 when it is moving.
-	// movedFrom is when the current dip began, -1 for none.
+	// movedFrom is when the current dip began, -1 for none. Not stillFrom:
+	// a calm spell lasts through a whole FrozenWindow of moving water and
+	// through the stuck rule, so that a splash would still count as calm.
 	stillRun, movedFrom time.Duration
 	// quietFrom is when the frozen window's share of still frames last
 	// reached FrozenShare, live sensor or not; -1 while it is below.

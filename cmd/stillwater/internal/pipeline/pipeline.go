@@ -76,8 +76,8 @@ type Processor struct {
 	// then, and the mean of a picture that stopped changing converges on
 	// one snapshot of the water, which differs from the learned water as
 	// something new would (gate fault/1000005: a target 0.9 s into a
-	// freeze, 1.1 s before the fault was raised). Something that gets into
-	// the water moves it.
+	// freeze, 1.1 s before the fault was raised). A child getting in makes
+	// the water move; every tuning intruder was raised as before.
 	StillSince time.Duration
 	Still      bool
 
